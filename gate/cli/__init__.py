@@ -1,0 +1,67 @@
+"""The ``roofgate`` command line: one group, one module per command family.
+
+Every exception that is not a user-facing ``RoofgateError`` is turned into an
+internal error (exit 3) here, so a crash never exits 0 (pass) or 1 (findings).
+"""
+
+from __future__ import annotations
+
+import importlib
+import sys
+
+import click
+
+from gate import __version__
+from gate.errors import InternalError
+
+# Modules that each add their commands to ``cli`` through ``register(cli)``.
+_COMMAND_MODULES = (
+    "gate.cli.profile_cmd",
+    "gate.cli.targets_cmd",
+    "gate.cli.gate_cmd",
+    "gate.cli.ci_cmd",
+)
+
+
+class _FailClosedGroup(click.Group):
+    def invoke(self, ctx: click.Context) -> object:
+        try:
+            return super().invoke(ctx)
+        except (click.ClickException, click.exceptions.Exit, click.Abort, KeyboardInterrupt):
+            raise
+        except Exception as exc:  # noqa: BLE001  (the fail-closed boundary: map every crash)
+            if ctx.params.get("debug"):
+                raise
+            detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
+            raise InternalError(
+                f"internal error ({detail}); rerun with --debug and report the traceback"
+            ) from exc
+
+
+@click.group(cls=_FailClosedGroup, context_settings={"help_option_names": ["-h", "--help"]})
+@click.option("--debug", is_flag=True, help="Show tracebacks for internal errors.")
+@click.version_option(__version__, prog_name="roofgate")
+def cli(debug: bool) -> None:
+    """Analytical pre-merge gate for ONNX models on edge accelerator targets.
+
+    Estimates are analytical, not device measurements: confirm on device before release.
+    """
+
+
+def _register_commands() -> None:
+    for name in _COMMAND_MODULES:
+        try:
+            module = importlib.import_module(name)
+        except ModuleNotFoundError as exc:
+            if exc.name != name:  # a real import error inside the module: surface it
+                raise
+            continue
+        module.register(cli)
+
+
+_register_commands()
+
+
+def main() -> None:
+    """Console-script entry point."""
+    sys.exit(cli.main(prog_name="roofgate"))

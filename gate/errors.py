@@ -1,0 +1,61 @@
+"""The one root of user-facing errors, and the exit codes the CLI maps them to.
+
+Exit codes (documented in the README):
+  0  the gate passed (warnings allowed)
+  1  at least one error-severity rule failed
+  2  bad input or usage (unreadable model, bad YAML, unknown target, ...)
+  3  internal error (a bug in roofgate; never reads as pass or as findings)
+"""
+
+from __future__ import annotations
+
+import click
+
+EXIT_PASS = 0
+EXIT_GATE_FAILED = 1
+EXIT_BAD_INPUT = 2
+EXIT_INTERNAL = 3
+
+
+class RoofgateError(click.ClickException):
+    """A problem the user can fix; printed as one line, no traceback."""
+
+    exit_code = EXIT_BAD_INPUT
+
+    def __init__(self, message: str, path: str | None = None) -> None:
+        self.path = path
+        text = f"{path}: {message}" if path else message
+        super().__init__(text)
+
+    def format_message(self) -> str:
+        # One line, always: a model-supplied newline must not forge extra output lines.
+        return " ".join(self.message.splitlines())
+
+
+class InputError(RoofgateError):
+    """The input (model, YAML, snapshot, git ref) cannot be analysed."""
+
+
+class ConfigError(RoofgateError):
+    """A YAML file (target, policy, project config) failed validation.
+
+    Carries every problem found in the file, each already prefixed with its
+    ``file:line: key.path``; the CLI prints them one per line.
+    """
+
+    def __init__(self, problems: list[str]) -> None:
+        self.problems = list(problems)
+        super().__init__(self.problems[0] if self.problems else "invalid configuration")
+
+    def format_message(self) -> str:
+        extra = len(self.problems) - 1
+        lines = [" ".join(p.splitlines()) for p in self.problems]
+        if extra > 0:
+            return "\n".join(lines)
+        return lines[0] if lines else "invalid configuration"
+
+
+class InternalError(RoofgateError):
+    """A bug in roofgate. Distinct exit code so a crash never reads as a pass."""
+
+    exit_code = EXIT_INTERNAL

@@ -1,0 +1,1 @@
+"""Imports every op-family module so that its cost functions register themselves."""

@@ -1,0 +1,172 @@
+"""Flat, serialisable records of a model on a target: the interchange of roofgate.
+
+A ``RunRecord`` is everything later stages need about one model x target: the
+model totals, the target's key figures, and one ``LayerRecord`` per layer, each
+with a mapping of named metrics. Rules, diffs, baselines, shard merging and
+every reporter work from records only, so a result read back from JSON reports
+exactly like the one computed in-process.
+
+Metric names carry their unit (``_bytes``, ``_s``, ``_j``, ``_per_s``); the
+README lists them. Values are ints for counts and bytes, floats otherwise.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+Metric = int | float
+
+# Layer metrics every LayerRecord carries (documented in the README).
+LAYER_METRICS: tuple[str, ...] = (
+    "macs", "flops", "param_count", "param_bytes", "input_bytes", "output_bytes",
+    "arithmetic_intensity", "param_reuse", "cycles", "utilization", "compute_s", "memory_s",
+    "overhead_s", "latency_s", "param_dram_bytes", "act_dram_bytes", "achieved_flops_per_s",
+    "energy_j", "energy_mac_j", "energy_buffer_j", "energy_noc_j", "energy_dram_param_j",
+    "energy_dram_act_j", "energy_static_j",
+)
+
+# Model totals every RunRecord carries.
+MODEL_METRICS: tuple[str, ...] = (
+    "layers", "macs", "flops", "param_count", "param_bytes", "max_layer_param_bytes",
+    "latency_s", "inferences_per_s", "achieved_flops_per_s", "peak_flops_share", "utilization",
+    "energy_j", "energy_mac_j", "energy_buffer_j", "energy_noc_j", "energy_dram_param_j",
+    "energy_dram_act_j", "energy_static_j", "flops_per_j", "peak_flops_per_j_share",
+    "param_dram_bytes", "act_dram_bytes", "coverage_node_share", "coverage_work_share",
+    "unmodelled_nodes",
+)
+
+# Target figures every RunRecord carries (for messages and charts).
+TARGET_FIGURES: tuple[str, ...] = (
+    "peak_flops_per_s", "peak_flops_per_j", "dram_bytes_per_s", "ridge_flop_per_byte",
+    "param_buffer_bytes", "activation_buffer_bytes", "pe_count", "clock_hz",
+)
+
+
+@dataclass(frozen=True, slots=True)
+class LayerRecord:
+    name: str
+    op_type: str
+    signature: str  # op type + input/output shapes and dtypes; used to align renamed layers
+    engine: str
+    bound: str
+    modelled: bool
+    unmodelled_reason: str
+    params_fit: bool
+    activations_fit: bool
+    metrics: Mapping[str, Metric]
+
+    def metric(self, name: str) -> Metric:
+        return self.metrics[name]
+
+
+@dataclass(frozen=True, slots=True)
+class UnmodelledRecord:
+    op_type: str
+    domain: str
+    count: int
+    reason: str
+
+
+@dataclass(frozen=True, slots=True)
+class RunRecord:
+    """One model on one target."""
+
+    model: str  # the model's path as given (repo-relative in checks)
+    model_name: str
+    target: str
+    precision: str
+    metrics: Mapping[str, Metric]
+    target_figures: Mapping[str, Metric]
+    layers: tuple[LayerRecord, ...]
+    unmodelled: tuple[UnmodelledRecord, ...] = ()
+    notes: tuple[str, ...] = ()
+
+    @property
+    def key(self) -> tuple[str, str]:
+        return (self.model, self.target)
+
+    def metric(self, name: str) -> Metric:
+        return self.metrics[name]
+
+    def layer(self, name: str) -> LayerRecord | None:
+        for layer in self.layers:
+            if layer.name == name:
+                return layer
+        return None
+
+
+# --- JSON-ready dicts (the snapshot/result writers add versioning around these) ---
+
+def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:
+    return {
+        "name": layer.name,
+        "op_type": layer.op_type,
+        "signature": layer.signature,
+        "engine": layer.engine,
+        "bound": layer.bound,
+        "modelled": layer.modelled,
+        "unmodelled_reason": layer.unmodelled_reason,
+        "params_fit": layer.params_fit,
+        "activations_fit": layer.activations_fit,
+        "metrics": dict(sorted(layer.metrics.items())),
+    }
+
+
+def layer_from_dict(data: Mapping[str, Any]) -> LayerRecord:
+    return LayerRecord(
+        name=str(data["name"]),
+        op_type=str(data["op_type"]),
+        signature=str(data["signature"]),
+        engine=str(data["engine"]),
+        bound=str(data["bound"]),
+        modelled=bool(data["modelled"]),
+        unmodelled_reason=str(data["unmodelled_reason"]),
+        params_fit=bool(data["params_fit"]),
+        activations_fit=bool(data["activations_fit"]),
+        metrics=_metrics(data["metrics"]),
+    )
+
+
+def run_to_dict(run: RunRecord) -> dict[str, Any]:
+    return {
+        "model": run.model,
+        "model_name": run.model_name,
+        "target": run.target,
+        "precision": run.precision,
+        "metrics": dict(sorted(run.metrics.items())),
+        "target_figures": dict(sorted(run.target_figures.items())),
+        "unmodelled": [
+            {"op_type": u.op_type, "domain": u.domain, "count": u.count, "reason": u.reason}
+            for u in run.unmodelled
+        ],
+        "notes": list(run.notes),
+        "layers": [layer_to_dict(layer) for layer in run.layers],
+    }
+
+
+def run_from_dict(data: Mapping[str, Any]) -> RunRecord:
+    return RunRecord(
+        model=str(data["model"]),
+        model_name=str(data["model_name"]),
+        target=str(data["target"]),
+        precision=str(data["precision"]),
+        metrics=_metrics(data["metrics"]),
+        target_figures=_metrics(data["target_figures"]),
+        layers=tuple(layer_from_dict(item) for item in data["layers"]),
+        unmodelled=tuple(
+            UnmodelledRecord(str(u["op_type"]), str(u["domain"]), int(u["count"]), str(u["reason"]))
+            for u in data["unmodelled"]
+        ),
+        notes=tuple(str(n) for n in data["notes"]),
+    )
+
+
+def _metrics(data: Mapping[str, Any]) -> dict[str, Metric]:
+    out: dict[str, Metric] = {}
+    for key, value in data.items():
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ValueError(f"metric {key!r} is not a number")
+        out[str(key)] = value
+    return out
+

@@ -1,0 +1,101 @@
+"""Reporters: each formats one ``GateResult``; none recomputes anything.
+
+A reporter is a tiny protocol (a name, the command-line option that asks for
+it, and ``write(result, stream)``), one module per format. ``write_report``
+owns the output file: ``-`` means stdout, parent folders are created, and a
+half-written file is removed if the reporter fails.
+"""
+
+from __future__ import annotations
+
+import importlib
+import os
+import sys
+from pathlib import Path
+from typing import Callable, Protocol, TextIO, TypeVar
+
+import click
+
+from gate.errors import InputError
+from gate.result import GateResult
+
+# One module per format; each defines ``REPORTER``.
+_REPORTER_MODULES = (
+    "gate.report.junit",
+    "gate.report.markdown",
+    "gate.report.jsonout",
+    "gate.report.html",
+    "gate.report.sarif",
+)
+
+
+class Reporter(Protocol):
+    name: str  # "junit", "markdown", ...; also the command-line option (--junit PATH)
+    help: str  # one line for --help
+
+    def write(self, result: GateResult, stream: TextIO) -> None: ...
+
+
+def all_reporters() -> list[Reporter]:
+    """Every available reporter, in a fixed order."""
+    out = []
+    for module_name in _REPORTER_MODULES:
+        try:
+            module = importlib.import_module(module_name)
+        except ModuleNotFoundError as exc:
+            if exc.name != module_name:
+                raise
+            continue
+        out.append(module.REPORTER)
+    return out
+
+
+def write_report(reporter: Reporter, result: GateResult, path: str) -> None:
+    """Write one report to ``path`` ('-' = stdout), atomically for files."""
+    if path == "-":
+        reporter.write(result, sys.stdout)
+        return
+    target = Path(path)
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create the folder for this report ({exc.strerror})", path) from None
+    partial = target.with_name(f".{target.name}.partial")
+    try:
+        with open(partial, "w", encoding="utf-8", newline="\n") as stream:
+            reporter.write(result, stream)
+        os.replace(partial, target)
+    except OSError as exc:
+        raise InputError(f"cannot write the {reporter.name} report ({exc.strerror})", path) from None
+    finally:
+        if partial.exists():
+            partial.unlink()
+
+
+def write_reports(result: GateResult, paths: dict[str, str | None]) -> list[str]:
+    """Write every report whose path is set; returns the paths written."""
+    written = []
+    for reporter in all_reporters():
+        path = paths.get(reporter.name)
+        if path:
+            write_report(reporter, result, path)
+            written.append(path)
+    return written
+
+
+F = TypeVar("F", bound=Callable[..., object])
+
+
+def report_options(func: F) -> F:
+    """Add ``--<name> PATH`` for every reporter to a click command (kwargs ``<name>``)."""
+    for reporter in reversed(all_reporters()):
+        func = click.option(
+            f"--{reporter.name}", reporter.name, metavar="PATH", default=None,
+            help=f"{reporter.help} ('-' for stdout).",
+        )(func)
+    return func
+
+
+def report_paths(kwargs: dict[str, object]) -> dict[str, str | None]:
+    """Pick the reporter paths out of a command's kwargs."""
+    return {r.name: kwargs.get(r.name) for r in all_reporters()}  # type: ignore[misc]

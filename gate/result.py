@@ -1,0 +1,231 @@
+"""The one result object every reporter takes: verdicts, diffs and records of a gate run.
+
+A ``GateResult`` is plain data; it round-trips through JSON (``result_to_dict`` /
+``result_from_dict``), which is how sharded audits merge and why a reporter can
+never need anything that is not in it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
+from gate.records import Metric, RunRecord, run_from_dict, run_to_dict
+
+# Verdict / finding statuses.
+PASS = "pass"
+FAIL = "fail"
+WAIVED = "waived"
+
+
+@dataclass(frozen=True, slots=True)
+class Finding:
+    """One place a rule looked at and found wanting (or waived): a layer, or the model."""
+
+    layer: str | None  # None for a model-level finding
+    metric: str
+    value: Metric
+    limit: Metric
+    message: str  # full sentence: what, value, limit, and the remedy
+    status: str  # FAIL or WAIVED
+    waiver_reason: str = ""
+    waiver_expires: str = ""  # ISO date, "" when not waived
+
+
+@dataclass(frozen=True, slots=True)
+class Verdict:
+    """One rule evaluated on one model x target (one JUnit test case)."""
+
+    rule_id: str
+    kind: str
+    severity: str  # "error" or "warning"
+    description: str
+    model: str
+    target: str
+    status: str  # PASS, FAIL (any unwaived finding) or WAIVED (all findings waived)
+    summary: str  # one line for tables and the JUnit message
+    remedy: str
+    findings: tuple[Finding, ...] = ()
+
+    @property
+    def blocks_merge(self) -> bool:
+        return self.status == FAIL and self.severity == "error"
+
+
+@dataclass(frozen=True, slots=True)
+class LayerChange:
+    """A layer matched (or not) between the base and head profile of a model on a target."""
+
+    status: str  # "added", "removed", "changed", "unchanged"
+    base_name: str | None
+    head_name: str | None
+    op_type: str
+    matched_by: str  # "name", "signature", or "" for added/removed
+    deltas: Mapping[str, tuple[Metric, Metric]]  # metric -> (base, head), changed metrics only
+
+
+@dataclass(frozen=True, slots=True)
+class RunDiff:
+    """Base vs head of one model x target: totals and layers."""
+
+    model: str
+    target: str
+    totals: Mapping[str, tuple[Metric, Metric]]  # every model metric -> (base, head)
+    layers: tuple[LayerChange, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class ModelError:
+    """A model that could not be analysed: it fails the gate (fail closed)."""
+
+    model: str
+    message: str
+
+
+@dataclass(frozen=True, slots=True)
+class Entry:
+    """Everything about one model x target in this run."""
+
+    model: str
+    target: str
+    head: RunRecord | None  # None when the model was deleted
+    base: RunRecord | None  # None when there is no baseline (new model, or none given)
+    diff: RunDiff | None
+    verdicts: tuple[Verdict, ...]
+
+    @property
+    def status(self) -> str:
+        if any(v.blocks_merge for v in self.verdicts):
+            return FAIL
+        return PASS
+
+
+@dataclass(frozen=True, slots=True)
+class GateResult:
+    """One run of the gate (profile, check or audit)."""
+
+    command: str  # "gate", "check", "audit"
+    policies: tuple[str, ...]
+    entries: tuple[Entry, ...]  # sorted by (model, target)
+    errors: tuple[ModelError, ...] = ()
+    notes: tuple[str, ...] = ()  # e.g. "no models changed"
+    allow_errors: bool = False  # policy explicitly lets unanalysable models through
+
+    @property
+    def failed_verdicts(self) -> tuple[Verdict, ...]:
+        return tuple(v for e in self.entries for v in e.verdicts if v.status == FAIL)
+
+    @property
+    def exit_code(self) -> int:
+        """0 pass, 1 an error-severity rule failed, 2 a model could not be analysed."""
+        if self.errors and not self.allow_errors:
+            return EXIT_BAD_INPUT
+        if any(v.blocks_merge for e in self.entries for v in e.verdicts):
+            return EXIT_GATE_FAILED
+        return EXIT_PASS
+
+
+# --- JSON-ready dicts -------------------------------------------------------
+
+def result_to_dict(result: GateResult) -> dict[str, Any]:
+    return {
+        "command": result.command,
+        "policies": list(result.policies),
+        "allow_errors": result.allow_errors,
+        "notes": list(result.notes),
+        "errors": [{"model": e.model, "message": e.message} for e in result.errors],
+        "entries": [_entry_to_dict(e) for e in result.entries],
+    }
+
+
+def result_from_dict(data: Mapping[str, Any]) -> GateResult:
+    return GateResult(
+        command=str(data["command"]),
+        policies=tuple(str(p) for p in data["policies"]),
+        allow_errors=bool(data["allow_errors"]),
+        notes=tuple(str(n) for n in data["notes"]),
+        errors=tuple(ModelError(str(e["model"]), str(e["message"])) for e in data["errors"]),
+        entries=tuple(_entry_from_dict(e) for e in data["entries"]),
+    )
+
+
+def _entry_to_dict(entry: Entry) -> dict[str, Any]:
+    return {
+        "model": entry.model,
+        "target": entry.target,
+        "status": entry.status,
+        "head": run_to_dict(entry.head) if entry.head else None,
+        "base": run_to_dict(entry.base) if entry.base else None,
+        "diff": _diff_to_dict(entry.diff) if entry.diff else None,
+        "verdicts": [_verdict_to_dict(v) for v in entry.verdicts],
+    }
+
+
+def _entry_from_dict(data: Mapping[str, Any]) -> Entry:
+    return Entry(
+        model=str(data["model"]),
+        target=str(data["target"]),
+        head=run_from_dict(data["head"]) if data["head"] else None,
+        base=run_from_dict(data["base"]) if data["base"] else None,
+        diff=_diff_from_dict(data["diff"]) if data["diff"] else None,
+        verdicts=tuple(_verdict_from_dict(v) for v in data["verdicts"]),
+    )
+
+
+def _verdict_to_dict(v: Verdict) -> dict[str, Any]:
+    return {
+        "rule_id": v.rule_id, "kind": v.kind, "severity": v.severity,
+        "description": v.description, "model": v.model, "target": v.target,
+        "status": v.status, "summary": v.summary, "remedy": v.remedy,
+        "findings": [
+            {"layer": f.layer, "metric": f.metric, "value": f.value, "limit": f.limit,
+             "message": f.message, "status": f.status, "waiver_reason": f.waiver_reason,
+             "waiver_expires": f.waiver_expires}
+            for f in v.findings
+        ],
+    }
+
+
+def _verdict_from_dict(d: Mapping[str, Any]) -> Verdict:
+    return Verdict(
+        rule_id=str(d["rule_id"]), kind=str(d["kind"]), severity=str(d["severity"]),
+        description=str(d["description"]), model=str(d["model"]), target=str(d["target"]),
+        status=str(d["status"]), summary=str(d["summary"]), remedy=str(d["remedy"]),
+        findings=tuple(
+            Finding(layer=f["layer"], metric=str(f["metric"]), value=f["value"],
+                    limit=f["limit"], message=str(f["message"]), status=str(f["status"]),
+                    waiver_reason=str(f["waiver_reason"]),
+                    waiver_expires=str(f["waiver_expires"]))
+            for f in d["findings"]
+        ),
+    )
+
+
+def _diff_to_dict(diff: RunDiff) -> dict[str, Any]:
+    return {
+        "model": diff.model,
+        "target": diff.target,
+        "totals": {k: list(v) for k, v in sorted(diff.totals.items())},
+        "layers": [
+            {"status": c.status, "base_name": c.base_name, "head_name": c.head_name,
+             "op_type": c.op_type, "matched_by": c.matched_by,
+             "deltas": {k: list(v) for k, v in sorted(c.deltas.items())}}
+            for c in diff.layers
+        ],
+    }
+
+
+def _diff_from_dict(d: Mapping[str, Any]) -> RunDiff:
+    return RunDiff(
+        model=str(d["model"]),
+        target=str(d["target"]),
+        totals={k: (v[0], v[1]) for k, v in d["totals"].items()},
+        layers=tuple(
+            LayerChange(status=str(c["status"]), base_name=c["base_name"],
+                        head_name=c["head_name"], op_type=str(c["op_type"]),
+                        matched_by=str(c["matched_by"]),
+                        deltas={k: (v[0], v[1]) for k, v in c["deltas"].items()})
+            for c in d["layers"]
+        ),
+    )

@@ -1,0 +1,1 @@
+"""Target profiles: declarative YAML descriptions of an accelerator, and the built-in ones."""
