@@ -76,6 +76,9 @@ class Node:
     ``param_inputs`` lists the input positions fed by an initializer (a parameter).
     ``attributes`` holds plain Python values (ints, floats, strings, lists);
     graph-valued attributes (If/Loop/Scan bodies) are in ``subgraphs`` by attribute name.
+    ``const_values`` holds the values of small integer inputs known statically (an
+    initializer or Constant of at most 64 elements stored inline: shapes, axes, trip
+    counts, a boolean condition); weights are never read.
     """
 
     index: int
@@ -87,6 +90,7 @@ class Node:
     attributes: Mapping[str, Any] = field(default_factory=dict)
     param_inputs: frozenset[int] = frozenset()
     subgraphs: Mapping[str, "Graph"] = field(default_factory=dict)
+    const_values: Mapping[int, tuple[int, ...]] = field(default_factory=dict)
 
     def attr(self, name: str, default: Any = None) -> Any:
         return self.attributes.get(name, default)

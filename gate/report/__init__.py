@@ -26,6 +26,7 @@ _REPORTER_MODULES = (
     "gate.report.jsonout",
     "gate.report.html",
     "gate.report.sarif",
+    "gate.report.annotations",
 )
 
 
