@@ -1,0 +1,187 @@
+"""Baseline snapshots: the records of models on targets, saved as versioned JSON.
+
+A snapshot holds, per model and per target, the model totals, the target's key
+figures and every layer's metrics (``gate.records.run_to_dict``), so a later
+run can diff against it and apply regression rules without re-profiling the
+old model. Writing is deterministic: runs sorted by (model, target), keys
+sorted, two-space indent, floats rounded to ``FLOAT_DIGITS`` significant
+digits, a final newline. The same records always give the same bytes, so a
+committed baseline only changes when a figure does.
+
+Layout (version 1)::
+
+    {
+      "format": "roofgate-snapshot",
+      "version": 1,
+      "runs": [ {model, model_name, target, precision, metrics, target_figures,
+                 unmodelled, notes, layers: [ {name, op_type, signature, ..., metrics} ]} ]
+    }
+
+Version history (bump ``SNAPSHOT_VERSION`` on any change a reader must know about,
+and add a line here and in docs/reports.md):
+
+  1  first version.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from pathlib import Path
+from typing import Any, Iterable, Mapping, Sequence
+
+from gate.errors import InputError, InternalError
+from gate.records import RunRecord, run_from_dict, run_to_dict
+
+SNAPSHOT_FORMAT = "roofgate-snapshot"
+SNAPSHOT_VERSION = 1
+FLOAT_DIGITS = 12  # significant digits kept; the diff's float tolerance is below this
+MAX_SNAPSHOT_BYTES = 256 * 1024 * 1024
+
+
+def canonical_json(data: Any) -> str:
+    """``data`` as deterministic JSON text: sorted keys, indent 2, rounded floats, final newline.
+
+    Raises InternalError on a NaN or infinity: records must never carry one, and
+    JSON cannot (``NaN`` is not JSON).
+    """
+    try:
+        text = json.dumps(_rounded(data), sort_keys=True, indent=2, ensure_ascii=False,
+                          allow_nan=False)
+    except ValueError as exc:
+        raise InternalError(f"cannot write JSON with a non-finite number ({exc})") from None
+    return text + "\n"
+
+
+def snapshot_to_dict(runs: Iterable[RunRecord]) -> dict[str, Any]:
+    """The JSON-ready snapshot of ``runs`` (sorted by model, then target)."""
+    ordered = sorted(runs, key=lambda r: r.key)
+    _refuse_duplicates([r.key for r in ordered], "records")
+    return {
+        "format": SNAPSHOT_FORMAT,
+        "version": SNAPSHOT_VERSION,
+        "runs": [run_to_dict(run) for run in ordered],
+    }
+
+
+def dumps_snapshot(runs: Iterable[RunRecord]) -> str:
+    """The snapshot text of ``runs``."""
+    return canonical_json(snapshot_to_dict(runs))
+
+
+def write_snapshot(runs: Iterable[RunRecord], path: str) -> None:
+    """Write a snapshot to ``path`` ('-' = stdout); a file is replaced atomically."""
+    text = dumps_snapshot(runs)
+    if path == "-":
+        import sys
+
+        sys.stdout.write(text)
+        return
+    target = Path(path)
+    partial = target.with_name(f".{target.name}.partial")
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        partial.write_text(text, encoding="utf-8", newline="\n")
+        os.replace(partial, target)
+    except OSError as exc:
+        raise InputError(f"cannot write the baseline snapshot ({exc.strerror})", path) from None
+    finally:
+        if partial.exists():
+            partial.unlink()
+
+
+def read_snapshot(path: str) -> tuple[RunRecord, ...]:
+    """Read a snapshot file; every problem is an InputError naming the file and the fix."""
+    try:
+        size = os.path.getsize(path)
+        if size > MAX_SNAPSHOT_BYTES:
+            raise InputError(f"snapshot is {size} bytes, over the {MAX_SNAPSHOT_BYTES}-byte limit",
+                             path)
+        with open(path, "rb") as stream:
+            raw = stream.read()
+    except OSError as exc:
+        raise InputError(f"cannot read the baseline snapshot ({exc.strerror})", path) from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise InputError("not a roofgate snapshot (not UTF-8 text)", path) from None
+    return loads_snapshot(text, path)
+
+
+def loads_snapshot(text: str, path: str = "<snapshot>") -> tuple[RunRecord, ...]:
+    """Parse snapshot text (``path`` only names it in messages)."""
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"not a roofgate snapshot (invalid JSON at line {exc.lineno}, "
+                         f"column {exc.colno}: {exc.msg})", path) from None
+    check_format(data, SNAPSHOT_FORMAT, SNAPSHOT_VERSION, path,
+                 remedy="regenerate it with `roofgate baseline`")
+    runs_data = data.get("runs")
+    if not isinstance(runs_data, list):
+        raise InputError("snapshot has no 'runs' list; regenerate it with `roofgate baseline`",
+                         path)
+    runs = tuple(_run_from(item, index, path) for index, item in enumerate(runs_data))
+    _refuse_duplicates([r.key for r in runs], path)
+    return runs
+
+
+def check_format(data: Any, expected_format: str, supported_version: int, path: str,
+                 *, remedy: str) -> None:
+    """Refuse a document that is not ``expected_format`` at ``supported_version``, clearly."""
+    if not isinstance(data, Mapping) or data.get("format") != expected_format:
+        found = data.get("format") if isinstance(data, Mapping) else type(data).__name__
+        raise InputError(f"not a {expected_format} file (format is {found!r}); {remedy}", path)
+    version = data.get("version")
+    if isinstance(version, bool) or not isinstance(version, int):
+        raise InputError(f"{expected_format} without an integer 'version'; {remedy}", path)
+    if version > supported_version:
+        raise InputError(
+            f"{expected_format} version {version} was written by a newer roofgate; this one "
+            f"reads version {supported_version}: upgrade roofgate, or {remedy}", path)
+    if version < supported_version:
+        raise InputError(
+            f"{expected_format} version {version} is older than this roofgate reads "
+            f"(version {supported_version}); {remedy}", path)
+
+
+def snapshot_keys(runs: Sequence[RunRecord]) -> list[tuple[str, str]]:
+    """The (model, target) pairs a snapshot holds, sorted."""
+    return sorted(r.key for r in runs)
+
+
+def _run_from(item: Any, index: int, path: str) -> RunRecord:
+    try:
+        if not isinstance(item, Mapping):
+            raise TypeError("not an object")
+        return run_from_dict(item)
+    except KeyError as exc:
+        problem = f"missing key {exc.args[0]!r}"
+    except (TypeError, ValueError, AttributeError) as exc:
+        problem = str(exc)
+    raise InputError(f"runs[{index}]: {problem}; the snapshot is damaged, regenerate it with "
+                     "`roofgate baseline`", path)
+
+
+def _refuse_duplicates(keys: list[tuple[str, str]], where: str) -> None:
+    seen: set[tuple[str, str]] = set()
+    for key in keys:
+        if key in seen:
+            raise InputError(f"two runs of model {key[0]!r} on target {key[1]!r}; "
+                             "each model x target may appear once", where)
+        seen.add(key)
+
+
+def _rounded(value: Any) -> Any:
+    """A copy of ``value`` with every float rounded to FLOAT_DIGITS significant digits."""
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            raise InternalError(f"cannot write a non-finite number ({value}) to JSON")
+        rounded = float(f"{value:.{FLOAT_DIGITS}g}")
+        return 0.0 if rounded == 0 else rounded  # no "-0.0"
+    if isinstance(value, Mapping):
+        return {str(k): _rounded(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_rounded(v) for v in value]
+    return value
