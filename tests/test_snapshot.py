@@ -39,7 +39,7 @@ def test_round_trip_gives_back_equal_records(tmp_path) -> None:
         diff = diff_runs(want, got)
         assert all(same_value(b, h) for b, h in diff.totals.values())
         assert {c.status for c in diff.layers} == {"unchanged"}
-    assert back[1].layers[0].name == HOSTILE_NAME  # control characters survive JSON escaping
+    assert back[0].layers[0].name == HOSTILE_NAME  # control characters survive JSON escaping
     assert not list(tmp_path.glob("deep/.*partial"))
 
 
