@@ -1,0 +1,178 @@
+"""What ``roofgate check`` and ``roofgate audit`` do, apart from the command line.
+
+``run_check`` finds the models changed between the merge base of a ref and
+HEAD, analyses both sides (each read from git into a temporary file, so the
+working tree is never trusted to hold the base) and judges each model on its
+own. ``run_audit`` analyses every model of a zoo (or one shard of it) against
+an optional previous snapshot. Both combine per-model results with
+``gate.audit.combine_results``.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from dataclasses import replace
+from datetime import date
+from pathlib import Path
+from typing import Sequence
+
+from gate import audit as engine
+from gate import gitscan
+from gate.config import ModelGroup, ProjectConfig, resolve_file, resolve_target
+from gate.errors import InputError
+from gate.records import RunRecord
+from gate.result import GateResult, ModelError
+
+
+def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str | None,
+              workers: int, today: date | None = None) -> tuple[GateResult, str]:
+    """Gate the models changed since the merge base of ``base_ref``; (result, title line)."""
+    today = today or engine.utc_today()
+    base_commit = gitscan.merge_base(base_ref, root)
+    changes = gitscan.changed_models(base_commit, root, config.is_model)
+    title = (f"roofgate check: {len(changes)} model(s) changed since {base_ref} "
+             f"(merge base {base_commit[:12]})")
+    if not changes:
+        note = f"No models changed between {base_ref} (merge base {base_commit[:12]}) and HEAD."
+        policies = sorted({resolve_file(config, p) for g in config.groups for p in g.policies})
+        return GateResult("check", tuple(policies), (), notes=(note,)), title
+    stored = engine.base_by_model(_read_snapshot(baseline)) if baseline else None
+    with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
+        jobs, base_jobs, errors = _check_jobs(root, config, changes, base_commit, stored, tmp)
+        analysed = engine.run_jobs([*jobs, *base_jobs], workers)
+    results = []
+    for change in changes:
+        group = _group(config, change)
+        head_runs, head_err = analysed.get(change.path, ([], ""))
+        base_runs, base_err = analysed.get(_base_key(change.path), ([], ""))
+        if stored is not None and change.base_path:
+            base_runs = [replace(r, model=change.path) for r in stored.get(change.base_path, [])]
+        model_errors = [ModelError(change.path, m) for m in (head_err, base_err, *errors.get(
+            change.path, [])) if m]
+        notes = [f"{change.base_path} was renamed to {change.head_path}; compared with the "
+                 "old file."] if change.status == "renamed" else []
+        results.append(engine.judge_model(
+            head_runs, base_runs, _policies(config, group), command="check", today=today,
+            errors=model_errors, notes=notes))
+    return engine.combine_results(results, "check"), title
+
+
+def _base_key(model: str) -> str:
+    return f"\0base\0{model}"
+
+
+def _group(config: ProjectConfig, change: gitscan.ModelChange) -> ModelGroup:
+    for path in (change.head_path, change.base_path):
+        if path is not None:
+            group = config.group_for(path)
+            if group is not None:
+                return group
+    raise AssertionError("changed_models only returns configured models")
+
+
+def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
+                base_commit: str, stored: object, tmp: str,
+                ) -> tuple[list[engine.Job], list[engine.Job], dict[str, list[str]]]:
+    """Write each side's blob to ``tmp`` and make its job; LFS pointers become errors."""
+    jobs, base_jobs, errors = [], [], {}
+    for k, change in enumerate(changes):
+        group = _group(config, change)
+        sides = [("head", "HEAD", change.head_path, change.path, jobs)]
+        if stored is None:
+            sides.append(("base", base_commit, change.base_path, _base_key(change.path), base_jobs))
+        for side, rev, path, key, out in sides:
+            if path is None:
+                continue
+            data = gitscan.read_blob(rev, path, root)
+            if gitscan.is_lfs_pointer(data):
+                errors.setdefault(change.path, []).append(gitscan.lfs_error_message(path, side))
+                continue
+            file = os.path.join(tmp, f"{side}-{k:05d}.onnx")
+            Path(file).write_bytes(data)
+            out.append(replace(_job(config, group, change.path, file), key=key))
+    return jobs, base_jobs, errors
+
+
+def _job(config: ProjectConfig, group: ModelGroup, model: str, file: str) -> engine.Job:
+    return engine.Job(model=model, file=file,
+                      targets=tuple(resolve_target(config, t) for t in group.targets),
+                      dims=tuple(sorted(group.dims.items())), precision=group.precision)
+
+
+def _policies(config: ProjectConfig, group: ModelGroup) -> list[object]:
+    from gate.policy.load import load_policies
+
+    return list(load_policies(resolve_file(config, p) for p in group.policies))
+
+
+def _read_snapshot(path: str) -> list[RunRecord]:
+    from gate.snapshot import read_snapshot
+
+    return list(read_snapshot(path))
+
+
+# --- audit ---------------------------------------------------------------------------
+
+def find_models(root: Path, config: ProjectConfig, paths: Sequence[str]) -> list[str]:
+    """Model files under ``paths`` (default: ``root``) that the config covers, sorted."""
+    found = set()
+    for given in paths or (str(root),):
+        path = Path(given)
+        if not path.exists():
+            raise InputError("no such file or folder", given)
+        files = [path] if path.is_file() else sorted(
+            p for p in path.rglob("*") if p.is_file() and ".git" not in p.parts)
+        for file in files:
+            name = _model_name(root, file)
+            if config.is_model(name) or (path.is_file() and name.endswith(".onnx")):
+                found.add(name)
+    return sorted(found)
+
+
+def _model_name(root: Path, file: Path) -> str:
+    try:
+        return file.resolve().relative_to(root.resolve()).as_posix()
+    except ValueError:
+        return file.as_posix()
+
+
+def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseline: str | None,
+              workers: int, shard: tuple[int, int] | None = None,
+              today: date | None = None) -> tuple[GateResult, list[str]]:
+    """Audit the zoo (or one shard); returns the raw combined result and the full model list."""
+    today = today or engine.utc_today()
+    present = find_models(root, config, paths)
+    stored = engine.base_by_model(_read_snapshot(baseline)) if baseline else {}
+    gone = [m for m in stored if m not in present and _in_scope(root, config, paths, m)]
+    models = sorted({*present, *gone})
+    mine = engine.shard_share(models, *shard) if shard else models
+    jobs = [_job(config, _audit_group(config, m), m, str(root / m)) for m in mine if m in present]
+    analysed = engine.run_jobs(jobs, workers, engine.Progress(label="audit"))
+    results = []
+    for model in mine:
+        head_runs, error = analysed.get(model, ([], ""))
+        errors = [ModelError(model, error)] if error else []
+        results.append(engine.judge_model(
+            head_runs, stored.get(model, []), _policies(config, _audit_group(config, model)),
+            command="audit", today=today, errors=errors))
+    return engine.combine_results(results, "audit"), models
+
+
+def _audit_group(config: ProjectConfig, model: str) -> ModelGroup:
+    group = config.group_for(model)
+    if group is not None:
+        return group
+    return config.groups[0] if config.groups else ModelGroup(("**/*.onnx",), (), ())
+
+
+def _in_scope(root: Path, config: ProjectConfig, paths: Sequence[str], model: str) -> bool:
+    if not config.is_model(model):
+        return False
+    if not paths:
+        return True
+    for given in paths:
+        prefix = _model_name(root, Path(given))
+        if model == prefix or prefix in (".", "") or model.startswith(prefix.rstrip("/") + "/"):
+            return True
+    return False

@@ -1,0 +1,221 @@
+"""``roofgate check``, ``audit``, ``merge`` and ``demo``: the gate as CI runs it.
+
+``check`` compares the models changed on a branch with the merge base (both
+sides read from git, no stored baseline needed); ``audit`` profiles a whole
+model zoo in parallel, optionally as one shard of a CI matrix; ``merge``
+combines shard results into the reports an unsharded audit writes; ``demo``
+shows all of it on a fictional repository built in a temporary folder.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Any
+
+import click
+
+from gate import audit as engine
+from gate.config import DEFAULT_REPORTS, Overrides, ProjectConfig, load_config, parse_dim_bindings
+from gate.report import report_options, report_paths, write_reports
+from gate.report.text import one_line, term_safe
+from gate.result import FAIL, GateResult
+from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
+
+
+def register(cli: click.Group) -> None:
+    cli.add_command(check_command)
+    cli.add_command(audit_command)
+    cli.add_command(merge_command)
+    cli.add_command(demo_command)
+
+
+def _config_options(func: Any) -> Any:
+    for option in reversed((
+        click.option("--config", "config_path", metavar="FILE", default=None,
+                     help="Project config (default: roofgate.yaml at the repository root)."),
+        click.option("--target", "-t", "targets", multiple=True, metavar="NAME|FILE",
+                     help="Target profile for every model (repeatable; overrides the config)."),
+        click.option("--policy", "-p", "policies", multiple=True, metavar="FILE",
+                     help="Policy file for every model (repeatable; overrides the config)."),
+        click.option("--dim", "dims", multiple=True, metavar="NAME=N",
+                     help="Bind a symbolic dim (repeatable; merged over the config's)."),
+        click.option("--precision", default=None, metavar="TYPE",
+                     help="Deploy precision for byte counts (overrides the config)."),
+        click.option("--baseline", default=None, metavar="SNAPSHOT",
+                     help="Compare against this baseline snapshot instead of git / nothing."),
+        click.option("-j", "--jobs", default=1, show_default=True, metavar="N",
+                     type=click.IntRange(min=0), help="Parallel processes (0 = one per CPU)."),
+    )):
+        func = option(func)
+    return report_options(func)
+
+
+def _load(kwargs: dict[str, Any], root: Path) -> ProjectConfig:
+    overrides = Overrides(
+        targets=tuple(_cli_ref(t) for t in kwargs["targets"]),
+        policies=tuple(str(Path(p).resolve()) for p in kwargs["policies"]),
+        dims=parse_dim_bindings(kwargs["dims"]),
+        precision=kwargs["precision"],
+    )
+    return load_config(kwargs["config_path"], root=root, overrides=overrides)
+
+
+def _cli_ref(target: str) -> str:
+    return str(Path(target).resolve()) if _is_file_ref(target) else target
+
+
+def _is_file_ref(text: str) -> bool:
+    return text.endswith((".yaml", ".yml")) or "/" in text or os.sep in text
+
+
+def _paths(kwargs: dict[str, Any], config: ProjectConfig) -> dict[str, str | None]:
+    """Report paths: command-line flags over the config's, the defaults when neither sets any."""
+    chosen: dict[str, str | None] = dict(config.reports or DEFAULT_REPORTS)
+    chosen.update({k: v for k, v in report_paths(kwargs).items() if v})
+    return chosen
+
+
+def _finish(result: GateResult, paths: dict[str, str | None], title: str,
+            extra_written: tuple[str, ...] = ()) -> None:
+    written = write_reports(result, paths)
+    print_summary(result, title, [*written, *extra_written])
+    raise click.exceptions.Exit(result.exit_code)
+
+
+def print_summary(result: GateResult, title: str, written: list[str]) -> None:
+    """A short plain-text summary on stdout: one line per model x target, failures, reports."""
+    click.echo(term_safe(title))
+    for note in result.notes:
+        click.echo(f"  note: {term_safe(note)}")
+    for entry in result.entries:
+        state = "deleted" if entry.head is None else entry.status.upper()
+        click.echo(f"  {state:<7} {term_safe(entry.model)} on {term_safe(entry.target)}")
+        for verdict in entry.verdicts:
+            if verdict.status == FAIL:
+                click.echo(f"          {verdict.severity} {term_safe(verdict.rule_id)}: "
+                           f"{term_safe(one_line(verdict.summary))}")
+    for error in result.errors:
+        click.echo(f"  ERROR   {term_safe(error.model)}: {term_safe(one_line(error.message))}")
+    blocking = sum(1 for e in result.entries for v in e.verdicts if v.blocks_merge)
+    verdict_text = {EXIT_PASS: "PASSED", EXIT_GATE_FAILED: f"FAILED ({blocking} blocking rule "
+                    "failure(s))", EXIT_BAD_INPUT: f"FAILED ({len(result.errors)} model(s) could "
+                    "not be analysed)"}.get(result.exit_code, "FAILED")
+    click.echo(f"Result: {verdict_text}; exit {result.exit_code}")
+    if written:
+        click.echo("Reports: " + ", ".join(term_safe(w) for w in written if w != "-"))
+
+
+# --- check ----------------------------------------------------------------------------
+
+@click.command("check")
+@click.option("--base", "base_ref", required=True, metavar="REF",
+              help="Branch or commit the pull request targets (e.g. origin/main).")
+@_config_options
+def check_command(base_ref: str, **kwargs: Any) -> None:
+    """Gate the ONNX models changed between the merge base of REF and HEAD.
+
+    Both sides are read from git (renames followed; Git LFS files smudged), so
+    no stored baseline is needed; --baseline uses a snapshot for the base side.
+    Exit 0 pass, 1 a rule failed, 2 bad input or an unanalysable model.
+    """
+    from gate.check import run_check
+    from gate.gitscan import repo_root
+
+    root = repo_root(Path.cwd())
+    config = _load(kwargs, root)
+    result, title = run_check(root, config, base_ref, baseline=kwargs["baseline"],
+                              workers=engine.default_workers(kwargs["jobs"]))
+    _finish(result, _paths(kwargs, config), title)
+
+
+# --- audit ----------------------------------------------------------------------------
+
+@click.command("audit")
+@click.argument("paths", nargs=-1, type=click.Path(path_type=str))
+@_config_options
+@click.option("--shard", default=None, metavar="I/N",
+              help="Analyse only shard I of N (sorted round-robin); write --shard-out.")
+@click.option("--shard-out", default=None, metavar="FILE",
+              help="Where a shard writes its result (default roofgate-out/shard-I-of-N.json).")
+@click.option("--snapshot", default=None, metavar="FILE",
+              help="Write a baseline snapshot of this audit (for the next night's trend).")
+def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | None,
+                  snapshot: str | None, **kwargs: Any) -> None:
+    """Profile a whole model zoo (PATHS: files or folders; default: the config's models).
+
+    Progress goes to stderr: a bar on a terminal, plain lines otherwise.
+    --baseline (the previous nightly snapshot) adds the trend: which models
+    got better or worse.
+    """
+    from gate.check import run_audit
+
+    root = Path.cwd()
+    config = _load(kwargs, root)
+    shard_ij = engine.parse_shard(shard) if shard else None
+    result, models = run_audit(root, config, paths, baseline=kwargs["baseline"],
+                               workers=engine.default_workers(kwargs["jobs"]), shard=shard_ij)
+    if shard_ij is not None:
+        index, count = shard_ij
+        out = shard_out or f"roofgate-out/shard-{index}-of-{count}.json"
+        engine.write_shard(out, result, index, count, models)
+        # A shard writes only its shard file unless report flags ask for partial reports.
+        result = engine.with_notes(result, engine.trend_notes(result))
+        _finish(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
+                f"{len(engine.shard_share(models, index, count))} of {len(models)} models", (out,))
+    result = engine.with_notes(result, engine.trend_notes(result))
+    written = _write_snapshot(result, snapshot)
+    _finish(result, _paths(kwargs, config), f"roofgate audit: {len(models)} models", written)
+
+
+def _write_snapshot(result: GateResult, path: str | None) -> tuple[str, ...]:
+    if not path:
+        return ()
+    from gate.snapshot import write_snapshot
+
+    write_snapshot([e.head for e in result.entries if e.head is not None], path)
+    return (path,)
+
+
+# --- merge ----------------------------------------------------------------------------
+
+@click.command("merge")
+@click.argument("shard_files", nargs=-1, required=True, type=click.Path(path_type=str))
+@click.option("--config", "config_path", metavar="FILE", default=None,
+              help="Project config (for its report paths).")
+@click.option("--snapshot", default=None, metavar="FILE",
+              help="Write a baseline snapshot of the merged audit.")
+@report_options
+def merge_command(shard_files: tuple[str, ...], config_path: str | None,
+                  snapshot: str | None, **kwargs: Any) -> None:
+    """Combine `audit --shard` results into the reports an unsharded audit writes.
+
+    Refuses a missing or duplicated shard, or shards from different roofgate
+    versions or checkouts.
+    """
+    config = load_config(config_path, require_targets=False)
+    result = engine.read_shards(list(shard_files))
+    result = engine.with_notes(result, engine.trend_notes(result))
+    written = _write_snapshot(result, snapshot)
+    models = len({e.model for e in result.entries} | {e.model for e in result.errors})
+    _finish(result, _paths(kwargs, config), f"roofgate audit (merged {len(shard_files)} "
+            f"shards): {models} models", written)
+
+
+# --- demo -----------------------------------------------------------------------------
+
+@click.command("demo")
+@click.option("--keep", "keep_dir", default=None, metavar="DIR",
+              help="Build the demo repository in DIR (kept) instead of a temporary folder.")
+def demo_command(keep_dir: str | None) -> None:
+    """Run the gate on a fictional repository (Fernhollow Field Robotics) built on the fly.
+
+    Commits four models, opens a pull-request-like branch that widens one
+    model's last stage (a layer outgrows the parameter buffer) and prunes
+    another, and runs `roofgate check`. The gate failing on the widened model
+    is the designed outcome: the demo exits 0 when that happens.
+    """
+    from gate.demo import run_demo
+
+    raise click.exceptions.Exit(run_demo(keep_dir))
+

@@ -1,0 +1,310 @@
+"""The project configuration file, ``roofgate.yaml``: which models, on which targets, under which policies.
+
+One file at the repository root (or ``--config PATH``) declares everything a
+CI run needs, so the command line in a workflow stays ``roofgate check --base
+main``. Shape (every key optional except ``models`` entries' ``paths``)::
+
+    version: 1
+    targets: [ws-64x64-4mib]            # defaults for every model group
+    policies: [policies/default.yaml]
+    dims: {batch: 1}
+    precision: int8
+    exclude: ["models/**/scratch/*.onnx"]
+    models:
+      - paths: ["models/trailcam/**/*.onnx"]
+        targets: [ws-64x64-4mib, os-16x16-512kib]
+      - paths: ["models/handheld/*.onnx"]
+        dims: {seq: 128}
+    reports: {junit: roofgate-out/junit.xml, markdown: roofgate-out/summary.md,
+              json: roofgate-out/result.json}
+
+A model belongs to the *first* group whose globs match its repository-relative
+path; unset group keys inherit the top-level defaults. Globs use ``/``,
+``*`` and ``?`` stay within one folder, ``**`` spans folders. Command-line
+flags (``--target``, ``--policy``, ``--dim``, ``--precision``, report paths)
+override the file for every group. Without a file, every ``*.onnx`` is a model
+and ``--target`` is required.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field, replace
+from functools import lru_cache
+from pathlib import Path
+from typing import Iterable, Mapping
+
+from gate.errors import ConfigError
+from gate.yamlconf import Section, read_yaml_file, scalar_value
+
+CONFIG_FILE = "roofgate.yaml"
+CONFIG_VERSION = 1
+DEFAULT_MODEL_GLOB = "**/*.onnx"
+DEFAULT_REPORTS: Mapping[str, str] = {
+    "junit": "roofgate-out/junit.xml",
+    "markdown": "roofgate-out/summary.md",
+    "json": "roofgate-out/result.json",
+}
+REPORT_KEYS = ("junit", "markdown", "json", "html", "sarif", "annotations")
+
+
+@dataclass(frozen=True, slots=True)
+class ModelGroup:
+    """Models matched by ``paths`` and how to gate them."""
+
+    paths: tuple[str, ...]
+    targets: tuple[str, ...]
+    policies: tuple[str, ...]
+    dims: Mapping[str, int] = field(default_factory=dict)
+    precision: str | None = None
+
+    def matches(self, rel_path: str) -> bool:
+        return any(glob_match(pattern, rel_path) for pattern in self.paths)
+
+    @property
+    def key(self) -> tuple[object, ...]:
+        """Groups with equal keys can be judged together."""
+        return (self.targets, self.policies, tuple(sorted(self.dims.items())), self.precision)
+
+
+@dataclass(frozen=True, slots=True)
+class ProjectConfig:
+    """The loaded ``roofgate.yaml`` (or the defaults when there is none)."""
+
+    source: str | None  # the file read, None for built-in defaults
+    root: str  # folder relative model paths and policy paths are taken from
+    groups: tuple[ModelGroup, ...]
+    exclude: tuple[str, ...] = ()
+    reports: Mapping[str, str] = field(default_factory=dict)
+
+    def group_for(self, rel_path: str) -> ModelGroup | None:
+        """The first group matching ``rel_path``; None when excluded or unmatched."""
+        if any(glob_match(pattern, rel_path) for pattern in self.exclude):
+            return None
+        for group in self.groups:
+            if group.matches(rel_path):
+                return group
+        return None
+
+    def is_model(self, rel_path: str) -> bool:
+        return self.group_for(rel_path) is not None
+
+
+@dataclass(frozen=True, slots=True)
+class Overrides:
+    """Command-line settings that replace the file's for every group."""
+
+    targets: tuple[str, ...] = ()
+    policies: tuple[str, ...] = ()
+    dims: Mapping[str, int] = field(default_factory=dict)
+    precision: str | None = None
+
+
+def load_config(path: str | Path | None, *, root: str | Path = ".",
+                overrides: Overrides = Overrides(), require_targets: bool = True) -> ProjectConfig:
+    """Read ``path`` (or ``<root>/roofgate.yaml`` if it exists) and apply ``overrides``.
+
+    Raises ConfigError listing every problem of the file at once, and (unless
+    ``require_targets`` is False, for ``merge``) when a group has no target.
+    """
+    root_path = Path(root)
+    if path is None and (root_path / CONFIG_FILE).is_file():
+        path = root_path / CONFIG_FILE
+    if path is None:
+        config = ProjectConfig(None, str(root_path), (
+            ModelGroup((DEFAULT_MODEL_GLOB,), (), ()),))
+    else:
+        config = _read(Path(path))
+    config = apply_overrides(config, overrides)
+    if require_targets:
+        _require_targets(config)
+    return config
+
+
+def apply_overrides(config: ProjectConfig, overrides: Overrides) -> ProjectConfig:
+    """``config`` with command-line settings replacing (dims: merging over) each group's."""
+    groups = tuple(
+        replace(
+            group,
+            targets=overrides.targets or group.targets,
+            policies=overrides.policies or group.policies,
+            dims={**group.dims, **overrides.dims},
+            precision=overrides.precision or group.precision,
+        )
+        for group in config.groups
+    )
+    return replace(config, groups=groups)
+
+
+def parse_dim_bindings(items: Iterable[str]) -> dict[str, int]:
+    """``["batch=1", "seq=128"]`` -> ``{"batch": 1, "seq": 128}`` (ConfigError on a bad item)."""
+    out: dict[str, int] = {}
+    problems = []
+    for item in items:
+        name, sep, value = item.partition("=")
+        if not sep or not name.strip() or not value.strip().isdigit() or int(value) < 1:
+            problems.append(f"--dim {item!r}: expected NAME=POSITIVE_INT, e.g. batch=1")
+            continue
+        out[name.strip()] = int(value)
+    if problems:
+        raise ConfigError(problems)
+    return out
+
+
+# --- reading the file -----------------------------------------------------------
+
+_TOP_KEYS = ("version", "targets", "policies", "dims", "precision", "exclude", "models", "reports")
+
+
+def _read(path: Path) -> ProjectConfig:
+    doc = read_yaml_file(path)
+    top = doc.root_mapping()
+    version = top.get_int("version", CONFIG_VERSION)
+    if version != CONFIG_VERSION:
+        top.bad("version", f"version {version} is not supported (this roofgate reads "
+                f"version {CONFIG_VERSION}); upgrade roofgate or fix the file")
+    defaults = ModelGroup(
+        paths=(DEFAULT_MODEL_GLOB,),
+        targets=tuple(top.get_str_list("targets", []) or []),
+        policies=tuple(top.get_str_list("policies", []) or []),
+        dims=_dims(top),
+        precision=top.get_str("precision"),
+    )
+    exclude = tuple(top.get_str_list("exclude", []) or [])
+    groups = tuple(_group(section, defaults) for section in top.get_sections("models"))
+    if not top.has("models"):
+        groups = (defaults,)
+    reports = _reports(top)
+    for pattern in (*exclude, *(p for g in groups for p in g.paths)):
+        problem = glob_problem(pattern)
+        if problem:
+            doc.problem(top.node, "models" if pattern not in exclude else "exclude",
+                        f"glob {pattern!r}: {problem}")
+    top.finish()
+    doc.raise_if_problems()
+    return ProjectConfig(str(path), str(path.parent), groups, exclude, reports)
+
+
+def _group(section: Section, defaults: ModelGroup) -> ModelGroup:
+    paths = tuple(section.get_str_list("paths", required=True) or [])
+    targets = section.get_str_list("targets")
+    policies = section.get_str_list("policies")
+    dims = _dims(section) if section.has("dims") else None
+    precision = section.get_str("precision")
+    section.finish()
+    return ModelGroup(
+        paths=paths,
+        targets=tuple(targets) if targets is not None else defaults.targets,
+        policies=tuple(policies) if policies is not None else defaults.policies,
+        dims={**defaults.dims, **(dims or {})},
+        precision=precision if precision is not None else defaults.precision,
+    )
+
+
+def _dims(section: Section) -> dict[str, int]:
+    out: dict[str, int] = {}
+    for name, sub, node in section.get_mapping_sections("dims"):
+        value = scalar_value(node)
+        if sub is not None or isinstance(value, bool) or not isinstance(value, int) or value < 1:
+            section.doc.problem(node, f"{section.key_path + '.' if section.key_path else ''}"
+                                f"dims.{name}", "expected a positive whole number")
+            continue
+        out[name] = value
+    return out
+
+
+def _reports(top: Section) -> dict[str, str]:
+    section = top.get_section("reports")
+    if section is None:
+        return {}
+    out = {}
+    for key in REPORT_KEYS:
+        value = section.get_str(key)
+        if value:
+            out[key] = value
+    section.finish()
+    return out
+
+
+def _require_targets(config: ProjectConfig) -> None:
+    where = config.source or "command line"
+    problems = [
+        f"{where}: no targets for models matching {', '.join(g.paths)}; "
+        "add 'targets:' to the file or pass --target"
+        for g in config.groups if not g.targets
+    ]
+    if problems:
+        raise ConfigError(problems)
+
+
+# --- globs ------------------------------------------------------------------------
+
+def glob_problem(pattern: str) -> str:
+    """Why ``pattern`` is not a usable repository-relative glob, or ''."""
+    if not pattern:
+        return "empty pattern"
+    if pattern.startswith("/") or re.match(r"^[A-Za-z]:", pattern):
+        return "use a path relative to the repository root"
+    if "\\" in pattern:
+        return "use '/' between folders"
+    if any(part == ".." for part in pattern.split("/")):
+        return "'..' is not allowed; paths stay inside the repository"
+    return ""
+
+
+def glob_match(pattern: str, rel_path: str) -> bool:
+    """Whether POSIX ``rel_path`` matches ``pattern`` (``**`` spans folders, ``*`` does not)."""
+    return _compile(pattern).fullmatch(rel_path) is not None
+
+
+@lru_cache(maxsize=512)
+def _compile(pattern: str) -> re.Pattern[str]:
+    out, i = [], 0
+    while i < len(pattern):
+        if pattern.startswith("**/", i):
+            out.append("(?:[^/]*/)*")
+            i += 3
+        elif pattern.startswith("**", i):
+            out.append(".*")
+            i += 2
+        elif pattern[i] == "*":
+            out.append("[^/]*")
+            i += 1
+        elif pattern[i] == "?":
+            out.append("[^/]")
+            i += 1
+        elif pattern[i] == "[" and "]" in pattern[i + 2:]:
+            end = pattern.index("]", i + 2)
+            body = pattern[i + 1:end]
+            negate = body.startswith("!")
+            body = re.escape(body[1:] if negate else body).replace("\\-", "-")
+            out.append(f"[{'^' if negate else ''}{body}]")
+            i = end + 1
+        else:
+            out.append(re.escape(pattern[i]))
+            i += 1
+    return re.compile("".join(out), re.DOTALL)
+
+
+def resolve_file(config: ProjectConfig, ref: str) -> str:
+    """A policy or target file named in the config, as a path usable from the current folder.
+
+    Relative paths in the file are taken from the config file's folder; the
+    result is relative to the current folder when it lies inside it (so
+    reports name ``policies/default.yaml``, not an absolute path).
+    """
+    path = Path(ref)
+    if not path.is_absolute():
+        path = Path(config.root) / path
+    absolute = path.resolve()
+    try:
+        return absolute.relative_to(Path.cwd().resolve()).as_posix()
+    except ValueError:
+        return str(absolute)
+
+
+def resolve_target(config: ProjectConfig, ref: str) -> str:
+    """A target as ``load_target`` takes it: a built-in name unchanged, a file resolved."""
+    if ref.endswith((".yaml", ".yml")) or "/" in ref:
+        return resolve_file(config, ref)
+    return ref
