@@ -35,6 +35,9 @@ MAX_FILE_BYTES = 4 * 1024 * 1024
 MAX_NODES_VISITED = 200_000  # an alias bomb expands far beyond this; real files stay far below
 
 _MISSING = object()
+# Scalar tags the getters accept: the YAML core types (anything else, e.g. !!python/..., is refused).
+_PLAIN_TAGS = frozenset(f"tag:yaml.org,2002:{name}" for name in
+                        ("str", "int", "float", "bool", "null", "timestamp"))
 
 
 @dataclass
@@ -116,6 +119,7 @@ def suggest(word: str, choices: list[str]) -> str:
 
 
 _QUANTITY = re.compile(r"^\s*([-+]?[0-9]*\.?[0-9]+(?:[eE][-+]?[0-9]+)?)\s*([A-Za-z/]*)\s*$")
+_PERCENT = re.compile(r"^\s*([-+]?[0-9]*\.?[0-9]+(?:[eE][-+]?[0-9]+)?)\s*%\s*$")
 _PREFIX = {
     "": 1.0, "k": 1e3, "K": 1e3, "M": 1e6, "G": 1e9, "T": 1e12,
     "m": 1e-3, "u": 1e-6, "µ": 1e-6, "n": 1e-9, "p": 1e-12, "f": 1e-15,
@@ -138,7 +142,7 @@ def parse_quantity(text: str, unit: str) -> float | None:
         return number
     if not suffix.endswith(unit):
         return None
-    prefix = suffix[: -len(unit)]
+    prefix = suffix[: len(suffix) - len(unit)]  # not suffix[:-0] (== "") for a unitless count
     if prefix in _BINARY:
         return number * _BINARY[prefix]
     if prefix in _PREFIX:
@@ -208,6 +212,10 @@ class Section:
             return None, _MISSING
         if not isinstance(node, ScalarNode):
             self.doc.problem(node, self._path(key), "expected a single value, not a list or mapping")
+            return None, _MISSING
+        if node.tag not in _PLAIN_TAGS:
+            self.doc.problem(node, self._path(key),
+                             f"the tag '{node.tag}' is not supported; write a plain value")
             return None, _MISSING
         return node, _construct_scalar(node)
 
@@ -282,6 +290,24 @@ class Section:
             return default
         return self._in_range(node, key, parsed, minimum, None, default)
 
+    def get_share(self, key: str, default: float | None = None, *, required: bool = False,
+                  maximum: float = 1.0) -> float | None:
+        """A share as a fraction (``0.3``) or a percentage (``'30%'``); returned as a fraction."""
+        node, value = self._scalar(key, required)
+        if value is _MISSING:
+            return default
+        parsed: float | None = None
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            parsed = float(value)
+        elif isinstance(value, str):
+            match = _PERCENT.match(value)
+            parsed = float(match.group(1)) / 100.0 if match else None
+        if parsed is None:
+            self.doc.problem(node, self._path(key),
+                             f"expected a share like 0.3 or '30%', got '{node.value}'")
+            return default
+        return self._in_range(node, key, parsed, 0.0, maximum, default)
+
     def get_date(self, key: str, default: date | None = None, *, required: bool = False) -> date | None:
         node, value = self._scalar(key, required)
         if value is _MISSING:
@@ -307,7 +333,7 @@ class Section:
         for i, item in enumerate(node.value):
             if not self.doc.count_visit():
                 return out
-            if not isinstance(item, ScalarNode):
+            if not isinstance(item, ScalarNode) or item.tag not in _PLAIN_TAGS:
                 self.doc.problem(item, f"{self._path(key)}[{i}]", "expected text")
                 continue
             out.append(str(_construct_scalar(item)))
