@@ -175,7 +175,7 @@ def _moves(base: RunRecord, head: RunRecord) -> list[tuple[str, float]]:
 
 def _trend_line(model: str, target: str, moves: list[tuple[str, float]]) -> str:
     parts = ", ".join(f"{metric.removesuffix('_s').removesuffix('_j')} {change:+.1%}"
-                      for metric, change in moves)
+                      for metric, change in moves if abs(change) > TREND_MIN_CHANGE)
     return f"{model} on {target}: {parts}"
 
 

@@ -1,0 +1,151 @@
+"""Audit engine: shard deal, order-independent combining, shard files, trend, progress."""
+
+from __future__ import annotations
+
+import io
+import json
+import random
+from dataclasses import replace
+from pathlib import Path
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from gate import audit
+from gate.errors import InputError
+from gate.result import FAIL, ModelError, result_to_dict
+from tests.recordkit import entry, finding, layer, result, run, verdict
+
+
+def per_model_results(count: int = 7) -> list:
+    out = []
+    for k in range(count):
+        model = f"models/m{k}.onnx"
+        base = run(model=model)
+        head = run(model=model, layers=(layer("stem/conv", latency_s=1e-5 * (1 + k % 3)),))
+        status = FAIL if k % 2 else "pass"
+        v = verdict(status=status, model=model, findings=(finding(),) if status == FAIL else ())
+        errors = (ModelError(f"models/bad{k}.onnx", "not ONNX"),) if k == 3 else ()
+        out.append(result(entry(head, base, (v,)), errors=errors, notes=(f"n{k % 2}",),
+                          command="audit"))
+    return out
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.integers(min_value=1, max_value=12), st.integers(min_value=0, max_value=40))
+def test_shards_partition_the_sorted_models(count: int, models_total: int) -> None:
+    models = [f"m/{k:03d}.onnx" for k in range(models_total)]
+    random.Random(count).shuffle(models)
+    shares = [audit.shard_share(models, i, count) for i in range(1, count + 1)]
+    assert sorted(m for share in shares for m in share) == sorted(models)
+    assert max(map(len, shares)) - min(map(len, shares)) <= 1  # balanced within one model
+    assert shares == [audit.shard_share(sorted(models), i, count) for i in range(1, count + 1)]
+
+
+def test_combining_is_order_and_grouping_independent() -> None:
+    parts = per_model_results()
+    whole = audit.combine_results(parts, "audit")
+    shuffled = parts[:]
+    random.Random(1).shuffle(shuffled)
+    grouped = [audit.combine_results(shuffled[:3], "audit"),
+               audit.combine_results(shuffled[3:], "audit")]
+    assert audit.combine_results(grouped, "audit") == whole
+    assert [e.model for e in whole.entries] == sorted(e.model for e in whole.entries)
+    assert whole.notes == ("n0", "n1") and len(whole.errors) == 1
+
+
+def test_allow_errors_only_when_every_erroring_part_allows() -> None:
+    ok = result(entry(run()), command="audit")
+    bad = replace(result(errors=(ModelError("a.onnx", "x"),), command="audit"), allow_errors=True)
+    strict = result(errors=(ModelError("b.onnx", "y"),), command="audit")
+    assert audit.combine_results([ok], "audit").allow_errors is False
+    assert audit.combine_results([ok, bad], "audit").allow_errors is True
+    assert audit.combine_results([ok, bad, strict], "audit").allow_errors is False
+
+
+def write_shards(tmp_path: Path, count: int) -> tuple[list[str], object]:
+    parts = per_model_results()
+    models = [p.entries[0].model for p in parts]
+    paths = []
+    for index in range(1, count + 1):
+        mine = set(audit.shard_share(models, index, count))
+        shard = audit.combine_results([p for p in parts if p.entries[0].model in mine], "audit")
+        path = str(tmp_path / f"shard-{index}.json")
+        audit.write_shard(path, shard, index, count, models)
+        paths.append(path)
+    return paths, audit.combine_results(parts, "audit")
+
+
+def test_shard_files_merge_to_the_unsharded_result(tmp_path: Path) -> None:
+    paths, whole = write_shards(tmp_path, 3)
+    merged = audit.read_shards(list(reversed(paths)))
+    assert json.dumps(result_to_dict(merged)) == json.dumps(result_to_dict(whole))
+
+
+def test_merge_refuses_missing_duplicate_and_foreign_shards(tmp_path: Path) -> None:
+    paths, _ = write_shards(tmp_path, 3)
+    with pytest.raises(InputError, match=r"missing shard\(s\) 2/3"):
+        audit.read_shards([paths[0], paths[2]])
+    with pytest.raises(InputError, match="given twice"):
+        audit.read_shards([paths[0], paths[0], paths[1], paths[2]])
+    other = json.loads(Path(paths[1]).read_text())
+    other["models_digest"] = "0" * 64
+    Path(paths[1]).write_text(json.dumps(other))
+    with pytest.raises(InputError, match="same roofgate version and checkout"):
+        audit.read_shards(paths)
+    other["version"] = 99
+    Path(paths[1]).write_text(json.dumps(other))
+    with pytest.raises(InputError, match="version 99 is not supported"):
+        audit.read_shards(paths)
+    Path(paths[1]).write_text("{not json")
+    with pytest.raises(InputError, match="not a readable shard"):
+        audit.read_shards(paths)
+    with pytest.raises(InputError, match="file not found"):
+        audit.read_shards([str(tmp_path / "nope.json")])
+
+
+@pytest.mark.parametrize("text,expected", [("1/1", (1, 1)), ("3/4", (3, 4))])
+def test_parse_shard(text: str, expected: tuple[int, int]) -> None:
+    assert audit.parse_shard(text) == expected
+
+
+@pytest.mark.parametrize("text", ["0/4", "5/4", "1/0", "a/b", "2", "-1/3"])
+def test_parse_shard_refuses(text: str) -> None:
+    with pytest.raises(InputError, match="--shard"):
+        audit.parse_shard(text)
+
+
+def test_trend_names_better_and_worse_models() -> None:
+    slow = run(model="models/slow.onnx", layers=(layer("a", latency_s=2e-5),))
+    fast = run(model="models/fast.onnx", layers=(layer("a", latency_s=5e-6),))
+    same = run(model="models/same.onnx")
+    base_slow = run(model="models/slow.onnx", layers=(layer("a", latency_s=1e-5),))
+    base_fast = run(model="models/fast.onnx", layers=(layer("a", latency_s=1e-5),))
+    res = result(entry(slow, base_slow), entry(fast, base_fast), entry(same, run(
+        model="models/same.onnx")), entry(run(model="models/new.onnx")))
+    notes = audit.trend_notes(res)
+    assert notes[0].startswith("Trend vs the previous snapshot: 1 worse, 1 better, 1 unchanged")
+    assert "worse: models/slow.onnx on ws-64x64-4mib: latency +100.0%" in notes
+    assert "better: models/fast.onnx on ws-64x64-4mib: latency -50.0%" in notes
+    assert audit.trend_notes(result(entry(run()))) == []  # no previous snapshot: no trend
+
+
+def test_progress_plain_lines_off_a_terminal_and_a_bar_on_one() -> None:
+    plain = io.StringIO()
+    progress = audit.Progress(plain, tty=False)
+    progress(1, 2, "models/a\x1b[2J.onnx")
+    progress(2, 2, "models/b.onnx")
+    assert plain.getvalue().splitlines() == [
+        "roofgate audit: [1/2] models/a\\x1b[2J.onnx", "roofgate audit: [2/2] models/b.onnx"]
+    bar = io.StringIO()
+    progress = audit.Progress(bar, tty=True)
+    progress(1, 4, "a.onnx")
+    progress(4, 4, "b.onnx")
+    text = bar.getvalue()
+    assert text.startswith("\r1/4 [######..................] a.onnx")
+    assert "\r4/4 [########################] b.onnx" in text and text.endswith("\n")
+
+
+def test_default_workers() -> None:
+    assert audit.default_workers(3) == 3 and audit.default_workers(0) >= 1
