@@ -227,11 +227,15 @@ def validate_model(model: onnx.ModelProto) -> None:
     model is checked in a temporary folder next to *empty* placeholder files;
     no weight byte is ever written.
     """
-    with tempfile.TemporaryDirectory(prefix="roofgate-synth-") as folder:
-        for location in external_locations(model):
-            placeholder = Path(folder, location)
-            placeholder.parent.mkdir(parents=True, exist_ok=True)
-            placeholder.touch()
-        model_path = save_model(model, Path(folder, "model.onnx"))
-        onnx.checker.check_model(str(model_path), full_check=True)
+    locations = external_locations(model)
+    if not locations:
+        onnx.checker.check_model(model, full_check=True)
+    else:
+        with tempfile.TemporaryDirectory(prefix="roofgate-synth-") as folder:
+            for location in locations:
+                placeholder = Path(folder, location)
+                placeholder.parent.mkdir(parents=True, exist_ok=True)
+                placeholder.touch()
+            onnx.checker.check_model(str(save_model(model, Path(folder, "model.onnx"))),
+                                     full_check=True)
     onnx.shape_inference.infer_shapes(model, strict_mode=True, check_type=True)
