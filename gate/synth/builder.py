@@ -22,8 +22,9 @@ Weights come in three modes, chosen per build:
 from __future__ import annotations
 
 import tempfile
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Literal, Sequence
+from typing import Any, Literal
 
 import numpy as np
 import onnx
@@ -145,7 +146,7 @@ class GraphBuilder:
         name: str,
         out_names: Sequence[str] | None = None,
         out_dtype: int | None = None,
-        **attrs: object,
+        **attrs: Any,
     ) -> list[str]:
         """Append one node; returns its output names (``<name>.out`` by default).
 

@@ -8,7 +8,8 @@ images and ``[seq, batch, features]`` for the recurrent ops (ONNX layout 0).
 
 from __future__ import annotations
 
-from typing import Literal, Sequence
+from collections.abc import Sequence
+from typing import Any, Literal
 
 from gate.synth.builder import Dim, GraphBuilder, Shape
 
@@ -103,7 +104,9 @@ class NetBuilder(GraphBuilder):
     def gemm(self, x: str, out_features: int, *, name: str, bias: bool = True) -> str:
         """Fully connected layer as Gemm with a ``[out, in]`` weight (transB=1)."""
         batch, in_features = self.shape(x)
-        inputs = [x, self.param(f"{name}.weight", [out_features, int(in_features)])]
+        if not isinstance(in_features, int):
+            raise ValueError(f"{name}: Gemm input features must be static, not {in_features!r}")
+        inputs = [x, self.param(f"{name}.weight", [out_features, in_features])]
         if bias:
             inputs.append(self.param(f"{name}.bias", [out_features]))
         return self.node("Gemm", inputs, [(batch, out_features)], name=name, transB=1)[0]
@@ -177,7 +180,7 @@ class NetBuilder(GraphBuilder):
                                linear_before_reset=1)
 
     def _recurrent(self, op_type: str, gates: int, x: str, hidden: int, name: str,
-                   bidirectional: bool, **extra: object) -> tuple[str, str]:
+                   bidirectional: bool, **extra: Any) -> tuple[str, str]:
         seq, batch, input_size = self.shape(x)
         dirs = 2 if bidirectional else 1
         inputs = [x, self.param(f"{name}.W", [dirs, gates * hidden, int(input_size)]),  # type: ignore[arg-type]
