@@ -26,7 +26,6 @@ from pathlib import Path
 
 import onnx
 import pytest
-from gate.model.loader import load_model
 
 from gate.profile import ModelProfile, profile_model
 from gate.synth import archs, save_model
