@@ -29,6 +29,7 @@ from gate.synth.scenario import (
     WAKEWORD_PATH,
     scenario_models,
     species,
+    write_scenario,
 )
 
 MiB = 1024 * 1024
@@ -72,6 +73,14 @@ def test_scenario_models_are_valid_and_at_the_documented_paths(variant: str,
         folder = tmp_path / Path(path).stem
         folder.mkdir()
         _check_externally(model, folder)
+
+
+def test_write_scenario_writes_only_the_model_files(tmp_path: Path) -> None:
+    written = write_scenario(tmp_path, "pr")
+    found = sorted(p.relative_to(tmp_path).as_posix() for p in tmp_path.rglob("*") if p.is_file())
+    assert found == sorted([SPECIES_PATH, DETECTOR_PATH, WAKEWORD_PATH, NOTES_PATH])
+    assert sorted(written) == sorted(tmp_path / p for p in found)
+    assert all(p.stat().st_size < 100_000 for p in written)
 
 
 def test_builds_are_deterministic() -> None:

@@ -22,12 +22,13 @@ Layer names are stable and readable (``stage4.block1.conv2``, ``rnn1``,
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Literal
 
 import onnx
 
 from gate.synth.archs import basic_block, recurrent_classifier, transformer_encoder
-from gate.synth.builder import WeightsMode
+from gate.synth.builder import WeightsMode, save_model
 from gate.synth.layers import NetBuilder
 
 Variant = Literal["base", "pr"]
@@ -125,3 +126,14 @@ def scenario_models(variant: Variant = "base",
         WAKEWORD_PATH: wakeword(hidden_size=hidden, weights=weights),
         NOTES_PATH: notes_encoder(weights=weights),
     }
+
+
+def write_scenario(root: str | Path, variant: Variant = "base",
+                   weights: WeightsMode = "external") -> list[Path]:
+    """Write the FICTIONAL team's models under ``root`` at their relative paths.
+
+    With external weights only the ``.onnx`` files are written (a few KB each);
+    the weight files they refer to are deliberately never created.
+    """
+    return [save_model(model, Path(root) / relative)
+            for relative, model in scenario_models(variant, weights).items()]
