@@ -1,0 +1,322 @@
+"""The HTML report: well-formed, self-contained, escaped, and its charts match the result.
+
+The roofline checks follow the roofline model (Williams, Waterman & Patterson,
+"Roofline: an insightful visual performance model", CACM 52(4), 2009):
+attainable FLOP/s = min(peak FLOP/s, arithmetic intensity x DRAM bytes/s), the
+ridge point at peak / bandwidth. Well-formedness of the inline SVG is checked
+with an XML parser (inline SVG must be XML, W3C SVG 1.1).
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import re
+import sys
+import xml.etree.ElementTree as ET
+from dataclasses import replace
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pytest
+
+pytest.importorskip("matplotlib")
+
+from gate.errors import InputError  # noqa: E402
+from gate.report import all_reporters, charts, write_report  # noqa: E402
+from gate.report.html import REPORTER, render  # noqa: E402
+from gate.result import FAIL, PASS, Entry, GateResult, ModelError  # noqa: E402
+from tests.reportkit import (  # noqa: E402
+    DRAM_BYTES_PER_S, HOSTILE, PEAK_FLOPS_PER_S, cnn_layers, demo_result, make_layer, make_run,
+    make_verdict,
+)
+
+SVG_NS = "{http://www.w3.org/2000/svg}"
+XLINK_HREF = "{http://www.w3.org/1999/xlink}href"
+VOID = {"meta", "br", "img", "input", "link", "hr", "wbr", "col", "area", "base", "source"}
+
+
+class _Tree(HTMLParser):
+    """Checks every element is closed in order and collects tags, attributes and text."""
+
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.stack: list[str] = []
+        self.elements: list[tuple[str, dict[str, str | None]]] = []
+        self.text: list[str] = []
+        self.problems: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.elements.append((tag, dict(attrs)))
+        if tag not in VOID:
+            self.stack.append(tag)
+
+    def handle_startendtag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.elements.append((tag, dict(attrs)))
+
+    def handle_endtag(self, tag: str) -> None:
+        if not self.stack or self.stack[-1] != tag:
+            self.problems.append(f"</{tag}> closes {self.stack[-1:] or 'nothing'}")
+        else:
+            self.stack.pop()
+
+    def handle_data(self, data: str) -> None:
+        self.text.append(data)
+
+
+def _parse(page: str) -> _Tree:
+    tree = _Tree()
+    tree.feed(page)
+    tree.close()
+    assert not tree.problems, tree.problems[:3]
+    assert not tree.stack, tree.stack
+    return tree
+
+
+def _svgs(page: str) -> list[ET.Element]:
+    return [ET.fromstring(m.group()) for m in re.finditer(r"<svg\b.*?</svg>", page, re.S)]
+
+
+def _by_id(svg: ET.Element, gid: str) -> ET.Element | None:
+    return next((el for el in svg.iter() if el.get("id") == gid), None)
+
+
+def _marks(group: ET.Element) -> list[ET.Element]:
+    """The drawn markers of a scatter group: <use> per point, or one <path> each."""
+    uses = list(group.iter(f"{SVG_NS}use"))
+    if uses:
+        return uses
+    defs = {id(p) for d in group.iter(f"{SVG_NS}defs") for p in d.iter(f"{SVG_NS}path")}
+    return [p for p in group.iter(f"{SVG_NS}path") if id(p) not in defs]
+
+
+def _bar_ids(svg: ET.Element, prefix: str) -> list[int]:
+    """Row numbers of the bars drawn with ids ``<prefix>-<row>``."""
+    pattern = re.compile(re.escape(prefix) + r"-(\d+)$")
+    return sorted(int(m.group(1)) for el in svg.iter() if (m := pattern.match(el.get("id", ""))))
+
+
+def _plottable(run) -> int:
+    return sum(1 for l in run.layers
+               if l.metrics["arithmetic_intensity"] > 0 and l.metrics["achieved_flops_per_s"] > 0)
+
+
+@pytest.fixture(scope="module")
+def demo_page() -> str:
+    return render(demo_result(hostile=True))
+
+
+def test_page_parses_and_every_chart_is_well_formed_svg(demo_page: str) -> None:
+    tree = _parse(demo_page)
+    assert demo_page.startswith("<!DOCTYPE html>")
+    assert [t for t, _a in tree.elements].count("script") == 1
+    svgs = _svgs(demo_page)
+    assert all(svg.tag == f"{SVG_NS}svg" for svg in svgs)
+
+
+def test_one_roofline_and_one_layer_chart_per_model_target(demo_page: str) -> None:
+    result = demo_result(hostile=True)
+    svgs = _svgs(demo_page)
+    rooflines = [s for s in svgs if s.get("data-chart") == "roofline"]
+    layer_charts = [s for s in svgs if s.get("data-chart") == "layers"]
+    assert len(rooflines) == len(layer_charts) == len(result.entries) == 2
+    assert [(s.get("data-model"), s.get("data-target")) for s in rooflines] == \
+        [(e.model, e.target) for e in result.entries]
+    ids = re.findall(r'\bid="([^"]*)"', demo_page)
+    assert len(ids) == len(set(ids))  # every id unique in the page, charts included
+
+
+def test_no_external_references(demo_page: str) -> None:
+    tree = _parse(demo_page)
+    assert not any(tag in {"link", "img", "iframe", "object", "embed", "base"}
+                   for tag, _a in tree.elements)
+    for tag, attrs in tree.elements:
+        for name in ("src", "href", "xlink:href", "action", "poster", "data"):
+            value = attrs.get(name)
+            assert value is None or value.startswith("#"), (tag, name, value)
+    for svg in _svgs(demo_page):
+        for el in svg.iter():
+            href = el.get(XLINK_HREF) or el.get("href")
+            assert href is None or href.startswith("#")
+    assert "@import" not in demo_page and "<!DOCTYPE svg" not in demo_page
+    assert re.findall(r"url\((?!#)", demo_page) == []
+    # The only absolute URLs are XML namespace names (identifiers, never fetched).
+    urls = set(re.findall(r"https?://[^\s\"'<>)]+", demo_page))
+    assert urls <= {"http://www.w3.org/2000/svg", "http://www.w3.org/1999/xlink"}, urls
+    csp = next(a["content"] for t, a in tree.elements if a.get("http-equiv") ==
+               "Content-Security-Policy")
+    assert "default-src 'none'" in csp
+
+
+def test_inline_script_is_the_one_the_policy_allows(demo_page: str) -> None:
+    script = re.search(r"<script>(.*?)</script>", demo_page, re.S).group(1)
+    digest = base64.b64encode(hashlib.sha256(script.encode()).digest()).decode()
+    assert f"'sha256-{digest}'" in demo_page
+
+
+@pytest.mark.parametrize("name", [
+    HOSTILE, "</script><script>alert(1)</script>", "a\"b'c&d", "$\\frac{1}{2}$ cost",
+    "esc\x1b[31mred\nnewline", "]]><!--", "\u202eevil",
+])
+def test_hostile_node_names_are_escaped_everywhere(name: str) -> None:
+    layers = cnn_layers()
+    layers[3] = replace(layers[3], name=name)  # the slowest conv: table, bars and annotation
+    run = make_run(f"models/{name}.onnx", "ws-64x64-4mib", layers)
+    entry = Entry(run.model, run.target, run, None, None,
+                  (make_verdict("params-fit", run.model, run.target, FAIL, layer=name),))
+    page = render(GateResult("check", ("policy.yaml",), (entry,)))
+    tree = _parse(page)
+    assert [t for t, _a in tree.elements].count("script") == 1
+    assert not any(t == "img" for t, _a in tree.elements)
+    assert not any(k.startswith("on") for _t, a in tree.elements for k in a)
+    assert "\x1b" not in page and "<!--" not in page.replace("<!DOCTYPE", "")
+    for svg in _svgs(page):  # still well-formed XML, and the name is text, never markup
+        assert not any(el.tag.endswith("img") or el.tag.endswith("script") for el in svg.iter())
+    if name == HOSTILE:
+        assert HOSTILE not in page
+        assert "&lt;img src=x onerror=alert(1)&gt;" in page
+        texts = "".join(t for svg in _svgs(page) for el in svg.iter(f"{SVG_NS}text")
+                        for t in el.itertext())
+        assert HOSTILE in texts  # shown literally in the chart (bar label), as text
+
+
+def test_roofline_points_and_roof_match_the_records() -> None:
+    result = demo_result()
+    entry = result.entries[1]  # species: base and head, one layer without FLOPs
+    fig, data = charts.roofline_figure(entry.head, entry.base, "t-roof")
+    ax = fig.axes[0]
+    roof = next(l for l in ax.get_lines() if l.get_gid() == "t-roof-roof")
+    ridge = PEAK_FLOPS_PER_S / DRAM_BYTES_PER_S  # 80 FLOP/byte for the made-up target
+    for x, y in roof.get_xydata():  # Williams et al. 2009: min(peak, AI x bandwidth)
+        assert y == pytest.approx(min(PEAK_FLOPS_PER_S, x * DRAM_BYTES_PER_S))
+    assert tuple(roof.get_xydata()[1]) == pytest.approx((ridge, PEAK_FLOPS_PER_S))
+    marker = next(l for l in ax.get_lines() if l.get_gid() == "t-roof-ridge")
+    assert tuple(marker.get_xydata()[0]) == pytest.approx((ridge, PEAK_FLOPS_PER_S))
+    head = next(c for c in ax.collections if c.get_gid() == "t-roof-head-points")
+    expected = sorted((l.metrics["arithmetic_intensity"], l.metrics["achieved_flops_per_s"])
+                      for l in entry.head.layers if l.metrics["flops"] > 0)
+    assert sorted(map(tuple, head.get_offsets().tolist())) == expected  # the records' own floats
+    base = next(c for c in ax.collections if c.get_gid() == "t-roof-base-points")
+    assert len(base.get_offsets()) == _plottable(entry.base)
+    assert data["head-points"] == _plottable(entry.head) == 5
+    assert data["head-unplottable"] == 1  # the Flatten layer (no FLOPs)
+    # marker area grows with the layer's share of latency
+    sizes = dict(zip(map(tuple, head.get_offsets().tolist()), head.get_sizes()))
+    by_latency = sorted((l for l in entry.head.layers if l.metrics["flops"] > 0),
+                        key=lambda l: l.metrics["latency_s"])
+    ordered = [sizes[(l.metrics["arithmetic_intensity"], l.metrics["achieved_flops_per_s"])]
+               for l in by_latency]
+    assert ordered == sorted(ordered)
+
+
+def test_svg_markers_match_the_records(demo_page: str) -> None:
+    result = demo_result(hostile=True)
+    rooflines = [s for s in _svgs(demo_page) if s.get("data-chart") == "roofline"]
+    for svg, entry in zip(rooflines, result.entries):
+        chart = svg.get("id")
+        assert len(_marks(_by_id(svg, f"{chart}-head-points"))) == _plottable(entry.head)
+        assert len(_marks(_by_id(svg, f"{chart}-base-points"))) == _plottable(entry.base)
+        assert int(svg.get("data-head-points")) == _plottable(entry.head)
+        figures = entry.head.target_figures
+        assert float(svg.get("data-peak-flops-per-s")) == figures["peak_flops_per_s"]
+        assert float(svg.get("data-dram-bytes-per-s")) == figures["dram_bytes_per_s"]
+        assert float(svg.get("data-ridge-flop-per-byte")) == pytest.approx(
+            figures["peak_flops_per_s"] / figures["dram_bytes_per_s"])
+        # drawn geometry: the ridge marker sits on the roof's corner, the roof is flat after it
+        path = _by_id(svg, f"{chart}-roof").find(f".//{SVG_NS}path").get("d")
+        vertices = [tuple(map(float, p)) for p in re.findall(r"[ML] ([\d.]+) ([\d.]+)", path)]
+        assert len(vertices) == 3 and vertices[1][1] == pytest.approx(vertices[2][1])
+        assert vertices[0][1] > vertices[1][1]  # the bandwidth slope rises (SVG y grows down)
+        ridge = _marks(_by_id(svg, f"{chart}-ridge"))[0]
+        assert (float(ridge.get("x")), float(ridge.get("y"))) == pytest.approx(vertices[1],
+                                                                              abs=0.01)
+
+
+def test_layer_chart_bars_and_energy_parts_match_the_records(demo_page: str) -> None:
+    result = demo_result(hostile=True)
+    charts_ = [s for s in _svgs(demo_page) if s.get("data-chart") == "layers"]
+    for svg, entry in zip(charts_, result.entries):
+        chart, n = svg.get("id"), len(entry.head.layers)
+        assert int(svg.get("data-layers-shown")) == n
+        assert _bar_ids(svg, f"{chart}-latency") == list(range(n))
+        for metric, _label, _colour in charts.ENERGY_PARTS:
+            assert _bar_ids(svg, f"{chart}-{metric.replace('_', '-')}") == list(range(n))
+    fig, _data = charts.layer_bars_figure(result.entries[1].head, {}, "t-bars")
+    bars = [p.get_width() for p in fig.axes[0].patches]
+    expected = sorted((l.metrics["latency_s"] for l in result.entries[1].head.layers), reverse=True)
+    assert bars == pytest.approx([v * 1e6 for v in expected])  # in microseconds, slowest first
+
+
+def test_huge_model_plots_top_layers_and_says_how_many_were_left_out() -> None:
+    layers = [make_layer(f"block{i}.conv", 10_000 * (i + 1), 500, 20_000) for i in range(420)]
+    run = make_run("models/huge.onnx", "ws-64x64-4mib", layers)
+    entry = Entry(run.model, run.target, run, None, None, ())
+    page = render(GateResult("check", (), (entry,)))
+    roof, bars = _svgs(page)
+    assert len(_marks(_by_id(roof, "e0-roofline-head-points"))) == charts.MAX_ROOFLINE_POINTS
+    assert roof.get("data-head-left-out") == str(420 - charts.MAX_ROOFLINE_POINTS)
+    assert "120 layers with the smallest latency left out" in page
+    assert int(bars.get("data-layers-shown")) == charts.MAX_BAR_LAYERS
+    assert _bar_ids(bars, "e0-layers-latency") == list(range(charts.MAX_BAR_LAYERS))
+    assert "390 layers more in the table below" in page
+    rows = re.search(r"<h3>Layers</h3>.*?<tbody>(.*?)</tbody>", page, re.S).group(1)
+    assert rows.count("<tr") == 420  # the table keeps every layer
+
+
+def test_rules_and_layer_diff_table(demo_page: str) -> None:
+    tree = _parse(demo_page)
+    rules = [(a["data-rule"], a["data-verdict"]) for t, a in tree.elements
+             if t == "tr" and "data-verdict" in a]
+    assert rules == [("params-fit", "waived"), ("min-utilization", "warning"),
+                     ("params-fit", "fail"), ("min-utilization", "pass")]
+    sortable = [a for t, a in tree.elements if t == "table" and a.get("class") == "sortable"]
+    assert len(sortable) == 3  # the overview and one layer table per entry
+    # every numeric cell carries its raw value for sorting
+    cells = re.findall(r'<td class="num[^"]*" data-v="([^"]*)"', demo_page)
+    assert cells and all(v in ("Infinity", "-Infinity") or float(v) == float(v) for v in cells)
+    assert "Split the layer, quantize its weights" in demo_page  # the remedy is shown
+
+
+def test_audit_index_lists_models_by_worst_verdict_with_trend() -> None:
+    result = replace(demo_result(), command="audit",
+                     errors=(ModelError("models/broken.onnx", "not an ONNX file"),))
+    page = render(result)
+    overview = re.search(r'id="overview-table".*?</table>', page, re.S).group()
+    order = re.findall(r'<td class="name">(?:<a href="#e\d+">)?([^<]+)', overview)
+    assert order == ["models/broken.onnx", "models/trailcam/species.onnx",
+                     "models/handheld/wakeword.onnx"]  # not analysed, fail, warning
+    assert "vs previous run" in overview
+    assert "-50.0%" in overview  # the pruned wake-word model's energy and latency dropped
+    assert "Models by worst verdict" in page
+
+
+def test_removed_model_new_model_and_empty_run_render() -> None:
+    base = make_run("models/old.onnx", "t", cnn_layers())
+    removed = Entry(base.model, "t", None, base, None, ())
+    new = make_run("models/new.onnx", "t", cnn_layers())
+    added = Entry(new.model, "t", new, None, None, (make_verdict("r", new.model, "t", PASS),))
+    page = render(GateResult("gate", (), (added, removed)))
+    _parse(page)
+    assert "removed in this change" in page and ">new<" in page
+    assert len([s for s in _svgs(page) if s.get("data-chart") == "roofline"]) == 1
+    empty = render(GateResult("check", (), (), notes=("no models changed",)))
+    _parse(empty)
+    assert "no models changed" in empty and "<svg" not in empty
+
+
+def test_identical_results_give_byte_identical_reports() -> None:
+    assert render(demo_result(hostile=True)) == render(demo_result(hostile=True))
+
+
+def test_registered_as_reporter_with_a_command_line_option() -> None:
+    names = [r.name for r in all_reporters()]
+    assert "html" in names and REPORTER.help
+
+
+def test_missing_matplotlib_names_the_extra_and_leaves_no_file(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setitem(sys.modules, "matplotlib", None)  # import matplotlib -> ImportError
+    target = tmp_path / "report.html"
+    with pytest.raises(InputError, match=r"pip install 'roofgate\[html\]'"):
+        write_report(REPORTER, demo_result(), str(target))
+    assert list(tmp_path.iterdir()) == []
