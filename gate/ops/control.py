@@ -1,0 +1,95 @@
+"""If, Loop and Scan: the cost of their body graphs, where the trip count is known.
+
+Body nodes are costed through the same registry (``cost_function_for``); a body
+node without a cost function, or one that is Unmodelled, makes the whole
+control-flow node Unmodelled with that reason. Loop: body x trip count (M, a
+constant input); with a condition input too, the trip count is an upper bound.
+Scan: body x the scan axis length. If: the taken branch when the condition is
+a constant, else the costlier branch (by FLOPs) as an upper bound with a note.
+Repeated bodies chain their GEMMs (``sequential``): iterations carry state.
+"""
+
+from __future__ import annotations
+
+from contextvars import ContextVar
+
+from gate.model.graph import Graph, Node
+from gate.ops._common import add_work, input_shape, repeat_work
+from gate.ops.registry import OpWork, Unmodelled, cost_function_for, register
+
+MAX_NESTING = 8
+_depth: ContextVar[int] = ContextVar("roofgate_control_depth", default=0)
+
+
+def _body(node: Node, attribute: str) -> Graph:
+    graph = node.subgraphs.get(attribute)
+    if graph is None:
+        raise Unmodelled(f"{node.op_type} body '{attribute}' is not available")
+    return graph
+
+
+def _node_work(body_node: Node) -> OpWork:
+    func = cost_function_for(body_node.domain, body_node.op_type)
+    label = f"body node '{body_node.name}' ({body_node.op_type})"
+    if func is None:
+        raise Unmodelled(f"{label} has no cost model")
+    try:
+        return func(body_node)
+    except Unmodelled as exc:
+        raise Unmodelled(f"{label}: {exc.reason}") from None
+
+
+def graph_work(graph: Graph) -> OpWork:
+    """Total work of every node of ``graph``, nesting depth guarded."""
+    depth = _depth.get()
+    if depth >= MAX_NESTING:
+        raise Unmodelled(f"control flow nested deeper than {MAX_NESTING} levels")
+    token = _depth.set(depth + 1)
+    try:
+        return add_work(_node_work(n) for n in graph.nodes)
+    finally:
+        _depth.reset(token)
+
+
+def _with_note(work: OpWork, note: str) -> OpWork:
+    joined = "; ".join(n for n in (note, work.note) if n)
+    return OpWork(work.macs, work.flops, work.gemms, work.vector_ops, False, joined)
+
+
+@register("Loop")
+def loop(node: Node) -> OpWork:
+    if node.input(0) is None:
+        raise Unmodelled("Loop has no trip count M (it runs until its condition turns false)")
+    trip = node.const_values.get(0)
+    if not trip:
+        raise Unmodelled("Loop trip count M is computed at run time; not modelled")
+    body = graph_work(_body(node, "body"))
+    note = f"Loop body x {trip[0]} iterations"
+    if node.input(1) is not None:
+        note += " (upper bound: the condition may end it early)"
+    return _with_note(repeat_work(body, int(trip[0]), sequential=True), note)
+
+
+@register("Scan")
+def scan(node: Node) -> OpWork:
+    scans = int(node.attr("num_scan_inputs", 0))
+    states = len(node.inputs) - scans
+    if scans < 1 or states < 0:
+        raise Unmodelled(f"Scan with num_scan_inputs={scans} and {len(node.inputs)} inputs")
+    axes = node.attr("scan_input_axes") or [0] * scans
+    first = input_shape(node, states, "scan input")
+    trip = first[int(axes[0]) % len(first)] if first else 0
+    body = graph_work(_body(node, "body"))
+    return _with_note(repeat_work(body, trip, sequential=True), f"Scan body x {trip} steps")
+
+
+@register("If")
+def if_op(node: Node) -> OpWork:
+    cond = node.const_values.get(0)
+    if cond:
+        branch = "then_branch" if cond[0] else "else_branch"
+        return _with_note(graph_work(_body(node, branch)), f"If: condition constant, {branch}")
+    works = {name: graph_work(_body(node, name)) for name in ("then_branch", "else_branch")}
+    name = max(works, key=lambda n: (works[n].flops, works[n].vector_ops))
+    return _with_note(works[name], f"If: condition unknown, counted the costlier "
+                                   f"{name} (upper bound)")

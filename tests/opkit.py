@@ -1,0 +1,109 @@
+"""Builders for op cost-function tests: hand-made Nodes and one-node ONNX models.
+
+``node`` builds a ``Node`` directly. ``inferred_node`` builds a one-node model
+with ``onnx.helper``, runs ``onnx.shape_inference`` (strict) on it and returns
+the ``Node`` with the inferred output shapes, so tests see what the loader will.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+import onnx
+from onnx import TensorProto, helper, numpy_helper
+
+from gate.model.graph import Graph, Node, TensorInfo
+
+OPSET = 21
+
+
+def ti(name: str, shape: Sequence[int | str] | None, dtype: str = "FLOAT") -> TensorInfo:
+    return TensorInfo(name, None if shape is None else tuple(shape), dtype)
+
+
+def node(op_type: str, inputs: Sequence[TensorInfo | Sequence[int | str] | None],
+         outputs: Sequence[TensorInfo | Sequence[int | str] | None] = ((),),
+         attrs: Mapping[str, Any] | None = None, params: Sequence[int] = (),
+         const_values: Mapping[int, tuple[int, ...]] | None = None,
+         subgraphs: Mapping[str, Graph] | None = None, name: str = "n") -> Node:
+    """A Node from shapes (or TensorInfos); an output of None has unknown shape."""
+
+    def info(value: Any, label: str) -> TensorInfo | None:
+        if value is None or isinstance(value, TensorInfo):
+            return value
+        return ti(label, value)
+
+    ins = tuple(info(v, f"in{i}") for i, v in enumerate(inputs))
+    outs = tuple(info(v, f"out{i}") or ti(f"out{i}", None) for i, v in enumerate(outputs))
+    return Node(0, name, op_type, "", ins, outs, dict(attrs or {}), frozenset(params),
+                dict(subgraphs or {}), dict(const_values or {}))
+
+
+def graph(*nodes: Node) -> Graph:
+    return Graph(tuple(nodes), {}, (), ())
+
+
+def _tensor_info(value: onnx.ValueInfoProto) -> TensorInfo:
+    tensor = value.type.tensor_type
+    dtype = TensorProto.DataType.Name(tensor.elem_type)
+    if not tensor.HasField("shape"):
+        return TensorInfo(value.name, None, dtype)
+    dims: list[int | str] = []
+    for dim in tensor.shape.dim:
+        if dim.HasField("dim_value"):
+            dims.append(int(dim.dim_value))
+        else:
+            dims.append(dim.dim_param or "?")
+    return TensorInfo(value.name, tuple(dims), dtype)
+
+
+def _plain(value: Any) -> Any:
+    """Attribute values as the loader gives them: bytes decoded to str."""
+    if isinstance(value, bytes):
+        return value.decode()
+    if isinstance(value, list):
+        return [_plain(v) for v in value]
+    return value
+
+
+def inferred_node(op_type: str, inputs: Sequence[Sequence[int] | None],
+                  attrs: Mapping[str, Any] | None = None, params: Sequence[int] = (),
+                  constants: Mapping[int, np.ndarray] | None = None, n_outputs: int = 1,
+                  dtypes: Mapping[int, int] | None = None, opset: int = OPSET,
+                  domain: str = "") -> Node:
+    """Build, shape-infer (strict) and convert a one-node model.
+
+    ``inputs`` are shapes (None = omitted optional input); ``constants`` become
+    initializers with those values (and ``const_values`` when integral and small);
+    ``params`` are input positions reported as parameters.
+    """
+    constants = dict(constants or {})
+    names = [f"x{i}" if shape is not None else "" for i, shape in enumerate(inputs)]
+    graph_inputs, inits = [], []
+    for i, shape in enumerate(inputs):
+        if shape is None:
+            continue
+        if i in constants:
+            inits.append(numpy_helper.from_array(constants[i], names[i]))
+        else:
+            elem = (dtypes or {}).get(i, TensorProto.FLOAT)
+            graph_inputs.append(helper.make_tensor_value_info(names[i], elem, list(shape)))
+    outs = [f"y{j}" for j in range(n_outputs)]
+    onnx_node = helper.make_node(op_type, names, outs, domain=domain, **dict(attrs or {}))
+    out_infos = [helper.make_tensor_value_info(o, TensorProto.UNDEFINED, None) for o in outs]
+    g = helper.make_graph([onnx_node], "t", graph_inputs, out_infos, inits)
+    model = helper.make_model(g, opset_imports=[helper.make_opsetid("", opset)])
+    model = onnx.shape_inference.infer_shapes(model, strict_mode=True)
+    known = {v.name: _tensor_info(v) for v in
+             [*model.graph.input, *model.graph.value_info, *model.graph.output]}
+    for init in model.graph.initializer:
+        known[init.name] = TensorInfo(init.name, tuple(init.dims),
+                                      TensorProto.DataType.Name(init.data_type))
+    ins = tuple(known[n] if n else None for n in names)
+    const_values = {i: tuple(int(v) for v in np.asarray(a).ravel()) for i, a in constants.items()
+                    if np.asarray(a).dtype.kind in "iub" and np.asarray(a).size <= 64}
+    attributes = {a.name: helper.get_attribute_value(a) for a in onnx_node.attribute}
+    attributes = {k: _plain(v) for k, v in attributes.items()}
+    return Node(0, "n", op_type, domain, ins, tuple(known[o] for o in outs), attributes,
+                frozenset(params) | frozenset(constants), {}, const_values)
