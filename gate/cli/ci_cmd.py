@@ -18,8 +18,8 @@ import click
 from gate import audit as engine
 from gate.config import DEFAULT_REPORTS, Overrides, ProjectConfig, load_config, parse_dim_bindings
 from gate.report import report_options, report_paths, write_reports
-from gate.report.text import one_line, term_safe
-from gate.result import FAIL, GateResult
+from gate.report.text import fmt_delta, one_line, term_safe
+from gate.result import FAIL, Entry, GateResult
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 
 
@@ -83,6 +83,18 @@ def _finish(result: GateResult, paths: dict[str, str | None], title: str,
     raise click.exceptions.Exit(result.exit_code)
 
 
+def _change_text(entry: Entry) -> str:
+    """``  (new)`` or the head-vs-base change of latency and parameter bytes."""
+    if entry.head is not None and entry.base is None:
+        return "  (new)"
+    if entry.diff is None:
+        return ""
+    parts = [f"{label} {fmt_delta(metric, *entry.diff.totals[metric])}"
+             for label, metric in (("latency", "latency_s"), ("params", "param_bytes"))
+             if metric in entry.diff.totals]
+    return f"  ({', '.join(parts)})" if parts else ""
+
+
 def print_summary(result: GateResult, title: str, written: list[str]) -> None:
     """A short plain-text summary on stdout: one line per model x target, failures, reports."""
     click.echo(term_safe(title))
@@ -90,7 +102,8 @@ def print_summary(result: GateResult, title: str, written: list[str]) -> None:
         click.echo(f"  note: {term_safe(note)}")
     for entry in result.entries:
         state = "deleted" if entry.head is None else entry.status.upper()
-        click.echo(f"  {state:<7} {term_safe(entry.model)} on {term_safe(entry.target)}")
+        click.echo(f"  {state:<7} {term_safe(entry.model)} on {term_safe(entry.target)}"
+                   f"{_change_text(entry)}")
         for verdict in entry.verdicts:
             if verdict.status == FAIL:
                 click.echo(f"          {verdict.severity} {term_safe(verdict.rule_id)}: "

@@ -81,8 +81,8 @@ def run_demo(keep_dir: str | None = None, echo: Callable[[str], None] = click.ec
     echo(f"roofgate demo: building a FICTIONAL model repository in {repo}")
     _build_repository(repo, echo)
     echo(f"Running: roofgate check --base main   (in {repo}, on branch {BRANCH})\n")
-    result, written = _check(repo)
-    _print(result, written, echo)
+    result, title, written = _check(repo)
+    _print(result, title, written)
     return _verdict(result, echo, time.monotonic() - started)
 
 
@@ -133,7 +133,7 @@ def _build_repository(repo: Path, echo: Callable[[str], None]) -> None:
          "wakeword's hidden size (256 -> 160)")
 
 
-def _check(repo: Path) -> tuple[GateResult, list[str]]:
+def _check(repo: Path) -> tuple[GateResult, str, list[str]]:
     from gate.check import run_check
     from gate.config import load_config
     from gate.report import write_reports
@@ -142,18 +142,17 @@ def _check(repo: Path) -> tuple[GateResult, list[str]]:
     os.chdir(repo)  # config-relative paths and report names as a user in the repo sees them
     try:
         config = load_config(None, root=repo)
-        result, _title = run_check(repo, config, "main", baseline=None, workers=1)
+        result, title = run_check(repo, config, "main", baseline=None, workers=1)
         written = write_reports(result, dict(config.reports))
-        return result, [str((repo / w).resolve()) for w in written]
+        return result, title, [str((repo / w).resolve()) for w in written]
     finally:
         os.chdir(previous)
 
 
-def _print(result: GateResult, written: list[str], echo: Callable[[str], None]) -> None:
+def _print(result: GateResult, title: str, written: list[str]) -> None:
     from gate.cli.ci_cmd import print_summary
 
-    del echo  # print_summary writes through click.echo like the check command does
-    print_summary(result, "roofgate check: results", written)
+    print_summary(result, title, written)
 
 
 def _verdict(result: GateResult, echo: Callable[[str], None], elapsed_s: float) -> int:
