@@ -130,7 +130,7 @@ def _entry_section(entry: Entry, index: int) -> str:
     parts = [
         f"<section class=\"card st-{status} entry\" id=\"{anchor}\" "
         f"data-model=\"{html_escape(entry.model)}\" data-target=\"{html_escape(entry.target)}\">\n"
-        f"<h2><span class=\"name\">{html_escape(name)}</span> on "
+        f"<h2><span class=\"model\">{html_escape(name)}</span> on "
         f"<code>{html_escape(entry.target)}</code> "
         f"<span class=\"chip v-{status}\">{status}</span></h2>\n"
         f"<p class=\"sub\">model file <code class=\"name\">{html_escape(entry.model)}</code>"

@@ -63,7 +63,7 @@ th[aria-sort=ascending] button::after{content:" \\2191"}
 th[aria-sort=descending] button::after{content:" \\2193"}
 tr.finding td{border-bottom:none;padding-top:0;font-size:.8rem;color:var(--rg-muted)}
 code,.name{font-family:ui-monospace,"Cascadia Mono","DejaVu Sans Mono",monospace;
-font-size:.82rem}.name{overflow-wrap:anywhere}td code{white-space:nowrap}
+font-size:.82rem}.name,.model{overflow-wrap:anywhere}td code{white-space:nowrap}
 a{color:var(--rg-roof)}ul.plain{margin:.3rem 0;padding-left:1.2rem}
 footer{color:var(--rg-muted);font-size:.8rem;margin-top:2rem}
 """

@@ -1,0 +1,208 @@
+"""SARIF 2.1.0 log (``--sarif PATH``): one result per failed rule, for code-scanning uploads.
+
+Follows the OASIS SARIF 2.1.0 standard (Errata 01); the test suite validates
+every log against the standard's JSON schema (vendored in tests/schemas/).
+
+- One ``reportingDescriptor`` per rule id seen in the run (id, short and full
+  description, help text naming the remedy, default level from its severity).
+- One ``result`` per failed verdict (a rule on one model x target), level
+  ``error`` or ``warning`` from the rule severity, located at the model file
+  (repository-relative, under ``%SRCROOT%``; line 1, since code scanning
+  needs a line and the file is binary), with the offending layers as
+  logical locations. A stable ``partialFingerprints`` entry (rule, model,
+  target) lets a code-scanning service track the alert across runs.
+- Waived verdicts appear as results with an accepted external suppression, so a
+  scanner shows them as dismissed rather than open.
+- A model that could not be analysed is a result of the reserved rule
+  ``roofgate/model-not-analysed`` and a tool execution notification.
+
+Only formats the ``GateResult``; JSON escaping makes any model-supplied string safe.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from typing import Any, Sequence, TextIO
+from urllib.parse import quote
+
+from gate import __version__
+from gate.report.text import one_line, shorten, term_safe
+from gate.result import FAIL, WAIVED, Finding, GateResult, Verdict
+
+SARIF_VERSION = "2.1.0"
+SARIF_SCHEMA_URI = (
+    "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
+)
+SRCROOT = "%SRCROOT%"
+MODEL_ERROR_RULE = "roofgate/model-not-analysed"
+FINGERPRINT_KEY = "roofgateVerdict/v1"
+MAX_LOCATIONS = 20  # logical locations (layers) listed per result
+
+
+class SarifReporter:
+    """``--sarif PATH``: failed rules as a SARIF 2.1.0 log."""
+
+    name = "sarif"
+    help = "Write failed rules as a SARIF 2.1.0 log for code-scanning uploads"
+
+    def write(self, result: GateResult, stream: TextIO) -> None:
+        json.dump(sarif_log(result), stream, indent=2, ensure_ascii=True)
+        stream.write("\n")
+
+
+REPORTER = SarifReporter()
+
+
+def sarif_level(severity: str) -> str:
+    """SARIF level of a rule severity: error -> error, warning -> warning, else note."""
+    return severity if severity in ("error", "warning") else "note"
+
+
+def artifact_uri(model_path: str) -> str:
+    """The model path as a relative URI reference (forward slashes, percent-encoded)."""
+    return quote(model_path.replace("\\", "/").removeprefix("./"), safe="/-._~")
+
+
+def sarif_log(result: GateResult) -> dict[str, Any]:
+    """The whole log as JSON-ready data."""
+    verdicts = [v for e in result.entries for v in e.verdicts]
+    rules = _rule_descriptors(verdicts, with_model_error=bool(result.errors))
+    index = {rule["id"]: i for i, rule in enumerate(rules)}
+    results = [_result(v, index[v.rule_id]) for v in verdicts if v.status in (FAIL, WAIVED)]
+    results += [_error_result(e.model, e.message, index[MODEL_ERROR_RULE]) for e in result.errors]
+    run: dict[str, Any] = {
+        "tool": {"driver": {
+            "name": "roofgate", "version": __version__, "semanticVersion": __version__,
+            "rules": rules,
+        }},
+        "originalUriBaseIds": {SRCROOT: {"description": {
+            "text": "The repository root; model paths are relative to it."}}},
+        "invocations": [_invocation(result)],
+        "results": results,
+        "properties": {"command": result.command, "policies": list(result.policies),
+                       "exitCode": result.exit_code},
+    }
+    return {"$schema": SARIF_SCHEMA_URI, "version": SARIF_VERSION, "runs": [run]}
+
+
+def _rule_descriptors(verdicts: Sequence[Verdict], *, with_model_error: bool) -> list[dict[str, Any]]:
+    """One descriptor per rule id (first occurrence wins), sorted by id."""
+    first: dict[str, Verdict] = {}
+    for verdict in verdicts:
+        first.setdefault(verdict.rule_id, verdict)
+    rules = [_descriptor(first[rule_id]) for rule_id in sorted(first)]
+    if with_model_error:
+        rules.append({
+            "id": MODEL_ERROR_RULE, "name": "ModelNotAnalysed",
+            "shortDescription": {"text": "The model file could not be analysed."},
+            "fullDescription": {"text": "roofgate could not load or profile the model file, so "
+                                        "no rule could be checked; the gate fails closed."},
+            "help": {"text": "Remedy: fix the problem named in the message (unreadable or "
+                             "invalid ONNX file, unsupported input shapes), then rerun."},
+            "defaultConfiguration": {"level": "error"},
+        })
+    return rules
+
+
+def _descriptor(verdict: Verdict) -> dict[str, Any]:
+    description = one_line(verdict.description) or verdict.rule_id
+    return {
+        "id": verdict.rule_id,
+        "name": _pascal(verdict.kind) or "Rule",
+        "shortDescription": {"text": shorten(_first_sentence(description), 200)},
+        "fullDescription": {"text": f"{description} (rule kind: {verdict.kind}, "
+                                    f"severity: {verdict.severity})"},
+        "help": {"text": f"Remedy: {one_line(verdict.remedy) or 'see the rule description.'}"},
+        "defaultConfiguration": {"level": sarif_level(verdict.severity)},
+        "properties": {"kind": verdict.kind, "tags": ["roofgate", verdict.kind]},
+    }
+
+
+def _result(verdict: Verdict, rule_index: int) -> dict[str, Any]:
+    failing = [f for f in verdict.findings if f.status == verdict.status] or list(verdict.findings)
+    lines = [f"{verdict.summary} (model {verdict.model}, target {verdict.target})."]
+    lines += [f"- {f.message}" for f in failing[:MAX_LOCATIONS]]
+    if len(failing) > MAX_LOCATIONS:
+        lines.append(f"- ... and {len(failing) - MAX_LOCATIONS} more")
+    if verdict.remedy:
+        lines.append(f"Remedy: {verdict.remedy}")
+    out: dict[str, Any] = {
+        "ruleId": verdict.rule_id,
+        "ruleIndex": rule_index,
+        "kind": "fail",
+        "level": sarif_level(verdict.severity),
+        "message": {"text": term_safe_lines(lines)},
+        "locations": [_location(verdict.model, failing)],
+        "partialFingerprints": {FINGERPRINT_KEY: _fingerprint(verdict)},
+        "properties": {"target": verdict.target, "ruleKind": verdict.kind,
+                       "findings": [_finding_props(f) for f in failing[:MAX_LOCATIONS]]},
+    }
+    if verdict.status == WAIVED:
+        out["suppressions"] = [{
+            "kind": "external", "status": "accepted",
+            "justification": "; ".join(sorted({term_safe(f"{f.waiver_reason} (until "
+                                                         f"{f.waiver_expires or 'no date'})")
+                                               for f in verdict.findings})) or "waived",
+        }]
+    return out
+
+
+def term_safe_lines(lines: Sequence[str]) -> str:
+    """Message text: each line made safe (no control characters), joined by newlines."""
+    return "\n".join(term_safe(line) for line in lines)
+
+
+def _location(model: str, findings: Sequence[Finding]) -> dict[str, Any]:
+    # Code scanning anchors an alert on a line; the model file is binary, so line 1 stands
+    # for the file as a whole (the layers are named in the logical locations).
+    location: dict[str, Any] = {"physicalLocation": {
+        "artifactLocation": {"uri": artifact_uri(model), "uriBaseId": SRCROOT},
+        "region": {"startLine": 1}}}
+    layers = sorted({f.layer for f in findings if f.layer is not None})
+    if layers:
+        location["logicalLocations"] = [
+            {"name": term_safe(layer), "kind": "layer"} for layer in layers[:MAX_LOCATIONS]]
+    return location
+
+
+def _finding_props(finding: Finding) -> dict[str, Any]:
+    return {"layer": None if finding.layer is None else term_safe(finding.layer),
+            "metric": finding.metric, "value": finding.value, "limit": finding.limit}
+
+
+def _fingerprint(verdict: Verdict) -> str:
+    key = "\x1f".join((verdict.rule_id, verdict.model, verdict.target))
+    return hashlib.sha256(key.encode("utf-8", "surrogatepass")).hexdigest()[:32]
+
+
+def _error_result(model: str, message: str, rule_index: int) -> dict[str, Any]:
+    return {
+        "ruleId": MODEL_ERROR_RULE, "ruleIndex": rule_index, "kind": "fail", "level": "error",
+        "message": {"text": term_safe(f"{model}: {message}")},
+        "locations": [_location(model, ())],
+        "partialFingerprints": {FINGERPRINT_KEY: hashlib.sha256(
+            f"{MODEL_ERROR_RULE}\x1f{model}".encode("utf-8", "surrogatepass")).hexdigest()[:32]},
+    }
+
+
+def _invocation(result: GateResult) -> dict[str, Any]:
+    notes = [{"level": "error", "message": {"text": term_safe(f"{e.model}: {e.message}")},
+              "locations": [_location(e.model, ())]} for e in result.errors]
+    invocation: dict[str, Any] = {
+        # Exit code 2 (a model could not be analysed) is an incomplete analysis, not a crash.
+        "executionSuccessful": not (result.errors and not result.allow_errors),
+        "exitCode": result.exit_code,
+    }
+    if notes:
+        invocation["toolExecutionNotifications"] = notes
+    return invocation
+
+
+def _first_sentence(text: str) -> str:
+    end = text.find(". ")
+    return text if end < 0 else text[: end + 1]
+
+
+def _pascal(kind: str) -> str:
+    return "".join(part[:1].upper() + part[1:] for part in kind.replace("-", "_").split("_") if part)

@@ -1,0 +1,91 @@
+"""The HTML report in a real browser: headless Chromium renders it, runs its script, themes it.
+
+Needs Debian's ``chromium`` package (``.ci/run`` installs it in CI). Without it
+the tests are skipped locally and fail in CI (``CI=true``), so CI cannot skip
+them silently. Run locally with ``apt-get install chromium`` and
+``python -m pytest -m browser``.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+from pathlib import Path
+
+import pytest
+
+pytest.importorskip("matplotlib")
+
+from gate.report.html import render  # noqa: E402
+from tests.reportkit import demo_result  # noqa: E402
+
+pytestmark = pytest.mark.browser
+CHROMIUM_FLAGS = (
+    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+    "--disable-background-networking", "--disable-component-update", "--disable-sync",
+    "--hide-scrollbars",
+)
+
+
+def _chromium() -> str:
+    path = shutil.which("chromium") or shutil.which("chromium-browser")
+    if path is None and Path("/usr/bin/chromium").exists():
+        path = "/usr/bin/chromium"
+    if path is None:
+        if os.environ.get("CI") == "true":
+            pytest.fail("chromium is not installed; CI must run the browser test "
+                        "(apt-get install chromium)")
+        pytest.skip("chromium is not installed (apt-get install chromium to run this test)")
+    return path
+
+
+def _run(args: list[str], tmp_path: Path, report: Path) -> subprocess.CompletedProcess[str]:
+    profile = tmp_path / "profile"
+    profile.mkdir(exist_ok=True)
+    cmd = [_chromium(), *CHROMIUM_FLAGS, f"--user-data-dir={profile}", *args, report.as_uri()]
+    return subprocess.run(cmd, capture_output=True, text=True, timeout=120, check=False,
+                          env={**os.environ, "HOME": str(tmp_path)})
+
+
+def _screenshot(tmp_path: Path, report: Path, name: str, *extra: str):
+    from matplotlib.image import imread
+
+    png = tmp_path / f"{name}.png"
+    done = _run([f"--screenshot={png}", "--window-size=1200,900", *extra], tmp_path, report)
+    assert png.exists(), f"no screenshot; chromium said: {done.stderr[-800:]}"
+    pixels = imread(str(png))  # floats in [0, 1], height x width x (3 or 4)
+    return (pixels[:, :, :3] * 255).round().astype("uint8")
+
+
+@pytest.fixture(scope="module")
+def report(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    path = tmp_path_factory.mktemp("browser") / "report.html"
+    path.write_text(render(demo_result(hostile=True)), encoding="utf-8")
+    return path
+
+
+def test_report_renders_with_content_and_follows_the_colour_scheme(
+        tmp_path: Path, report: Path) -> None:
+    import numpy as np
+
+    light = _screenshot(tmp_path, report, "light")
+    assert light.shape[:2] == (900, 1200)
+    colours = np.unique(light.reshape(-1, 3), axis=0)
+    assert len(colours) > 200  # text, charts and tables, not a blank or single-colour page
+    background = np.median(light.reshape(-1, 3), axis=0)
+    differs = np.abs(light.astype(int) - background).sum(axis=2) > 60
+    assert differs.mean() > 0.03  # a real share of the page is drawn on
+    dark = _screenshot(tmp_path, report, "dark", "--force-dark-mode")
+    assert dark.mean() < light.mean() - 60  # prefers-color-scheme: dark switches the palette
+
+
+def test_inline_script_runs_under_the_content_security_policy(
+        tmp_path: Path, report: Path) -> None:
+    done = _run(["--dump-dom"], tmp_path, report)
+    assert done.returncode == 0, done.stderr[-800:]
+    dom = done.stdout
+    assert "<svg" in dom and "roofline" in dom
+    # the sort script turned every header of the sortable tables into a button
+    assert dom.count('title="sort by this column"') >= 10
+    assert "onerror=alert" not in dom.replace("&lt;img src=x onerror=alert(1)&gt;", "")
