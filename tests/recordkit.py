@@ -8,6 +8,8 @@ what the real pipeline produces. Demo names follow the fictional scenario
 
 from __future__ import annotations
 
+import os
+from pathlib import Path
 from typing import Any
 
 from gate.diff import diff_runs
@@ -87,12 +89,13 @@ def _sum_metric(layers: tuple[LayerRecord, ...], name: str) -> int | float:
 
 def finding(layer_name: str | None = "head/gemm", *, metric: str = "param_bytes",
             value: int | float = 5_000_000, limit: int | float = 4_194_304,
-            status: str = FAIL, waiver_reason: str = "", waiver_expires: str = "") -> Finding:
+            status: str = FAIL, waiver_reason: str = "", waiver_expires: str = "",
+            message: str = "") -> Finding:
     where = f"layer '{layer_name}'" if layer_name else "the model"
     return Finding(
         layer=layer_name, metric=metric, value=value, limit=limit,
-        message=(f"{where}: {metric} is {value}, above the limit {limit}; "
-                 "split the layer or quantize its weights"),
+        message=message or (f"{where}: {metric} is {value}, above the limit {limit}; "
+                            "split the layer or quantize its weights"),
         status=status, waiver_reason=waiver_reason, waiver_expires=waiver_expires)
 
 
@@ -140,6 +143,8 @@ def demo_result() -> GateResult:
                              kind="min_layer_metric", findings=(finding(
                                  HOSTILE_NAME, metric="utilization", value=0.0, limit=0.3,
                                  status=WAIVED, waiver_reason="elementwise add, tracked in #12",
+                                 message=f"layer '{HOSTILE_NAME}': utilization is 0.0%, below "
+                                         "the minimum 30.0%; fuse it into the previous layer",
                                  waiver_expires="2026-12-31"),))
     wake_base = run("models/handheld/wakeword.onnx", layers=(
         layer("gru", "GRU", "1x40x64", macs=400_000, param_bytes=300_000, latency_s=2e-3),))
@@ -150,3 +155,22 @@ def demo_result() -> GateResult:
         entry(head_species, base_species, (species_fail, species_waived, verdict("max-latency"))),
         entry(wake_head, wake_base, (verdict("fits-param-buffer", model=wake_head.model),)),
         errors=(ModelError("models/broken<b>|.onnx", "not a valid ONNX file (truncated)"),))
+
+
+# --- golden files ------------------------------------------------------------------
+
+GOLDEN_DIR = Path(__file__).parent / "golden"
+UPDATE_ENV = "ROOFGATE_UPDATE_GOLDEN"
+
+
+def assert_golden(name: str, text: str) -> None:
+    """Compare ``text`` with tests/golden/``name``; rewrite it when ROOFGATE_UPDATE_GOLDEN=1."""
+    path = GOLDEN_DIR / name
+    if os.environ.get(UPDATE_ENV) == "1":
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(text.encode("utf-8"))
+        return
+    assert path.exists(), f"missing golden file {path}; create it with {UPDATE_ENV}=1 pytest"
+    expected = path.read_bytes().decode("utf-8")
+    assert text == expected, (f"{name} differs from its golden file; if the change is "
+                              f"intended, regenerate with {UPDATE_ENV}=1 pytest and review the diff")

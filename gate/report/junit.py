@@ -1,0 +1,183 @@
+"""JUnit XML report: one test suite per model x target, one test case per rule evaluation.
+
+The only module that uses the junit-xml package, wrapped here because of its pitfalls:
+
+* a failure with neither message nor output is silently dropped, so every
+  failure, error and skip here gets both;
+* it deletes XML-invalid characters (carriage returns included) instead of
+  escaping them, so every string goes through ``xml_safe`` first and stays
+  readable (``\\r``, ``\\x00``);
+* properties exist only on test suites, so the key metrics go there;
+* ``TestSuite.to_xml_string`` is deprecated (and warns): we use
+  ``to_xml_report_string``.
+
+Status mapping: an error-severity rule that failed is a ``<failure>``; a
+warning-severity rule that failed passes (it does not block the merge, as the
+exit code says) but carries the findings in ``<system-out>`` and counts in the
+suite's ``warnings`` property; a waived rule is ``<skipped>`` with the reason;
+a model that could not be analysed is an ``<error>`` (never a pass). No
+timestamps or host names are written, so the output is a pure function of the result.
+"""
+
+from __future__ import annotations
+
+from typing import TextIO
+
+from junit_xml import TestCase, TestSuite, to_xml_report_string
+
+from gate.report.text import fmt_metric, xml_safe
+from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, ModelError, Verdict
+
+# Model metrics written as suite properties (raw numbers, unit in the name).
+PROPERTY_METRICS = (
+    "latency_s", "inferences_per_s", "utilization", "macs", "param_bytes",
+    "max_layer_param_bytes", "param_dram_bytes", "energy_j", "coverage_work_share",
+    "unmodelled_nodes",
+)
+MAX_LISTED_FINDINGS = 200  # per test case output; the rest are counted
+
+
+class JunitReporter:
+    name = "junit"
+    help = "Write a JUnit XML report to PATH"
+
+    def write(self, result: GateResult, stream: TextIO) -> None:
+        stream.write(render(result))
+
+
+REPORTER = JunitReporter()
+
+
+def render(result: GateResult) -> str:
+    """The JUnit XML text of ``result``."""
+    suites = [_entry_suite(entry) for entry in result.entries]
+    suites.extend(_error_suite(error, result.allow_errors) for error in result.errors)
+    if not suites:
+        suites.append(_empty_suite(result))
+    return to_xml_report_string(suites, prettyprint=True)
+
+
+def _entry_suite(entry: Entry) -> TestSuite:
+    classname = _x(f"{entry.model} on {entry.target}")
+    cases = [_verdict_case(verdict, classname) for verdict in entry.verdicts]
+    if not cases:
+        case = TestCase(_x("analysed"), classname=classname)
+        case.stdout = _x(_no_rules_text(entry), multiline=True)
+        cases.append(case)
+    warnings = sum(1 for v in entry.verdicts if v.status == FAIL and v.severity != "error")
+    return TestSuite(_x(f"{entry.model} [{entry.target}]"), cases,
+                     properties=_properties(entry, warnings))
+
+
+def _verdict_case(verdict: Verdict, classname: str) -> TestCase:
+    case = TestCase(_x(verdict.rule_id), classname=classname)
+    failing = [f for f in verdict.findings if f.status == FAIL]
+    if verdict.status == FAIL and verdict.severity == "error":
+        case.add_failure_info(message=_x(_failure_message(verdict, failing)),
+                              output=_details(verdict),
+                              failure_type=_x(verdict.kind or "rule"))
+    elif verdict.status == FAIL:
+        case.stdout = f"warning (does not block the merge)\n{_details(verdict)}"
+    elif verdict.status == WAIVED:
+        case.add_skipped_info(message=_x(_waived_message(verdict)),
+                              output=_details(verdict))
+    return case
+
+
+def _failure_message(verdict: Verdict, failing: list[Finding]) -> str:
+    """One line: the rule, the first finding (layer, metric, value, limit) and the remedy."""
+    if not failing:
+        return f"{verdict.rule_id}: {verdict.summary or 'failed'}; {verdict.remedy or _NO_REMEDY}"
+    first = failing[0]
+    more = f" (and {len(failing) - 1} more)" if len(failing) > 1 else ""
+    text = first.message or _finding_text(first)
+    if verdict.remedy and verdict.remedy not in text:
+        text = f"{text}; remedy: {verdict.remedy}"
+    return f"{verdict.rule_id}: {text}{more}"
+
+
+_NO_REMEDY = "see the rule's description in the policy file"
+
+
+def _waived_message(verdict: Verdict) -> str:
+    reasons = sorted({(f.waiver_reason, f.waiver_expires) for f in verdict.findings
+                      if f.status == WAIVED})
+    parts = [f"{r or 'no reason given'}" + (f" (expires {e})" if e else "") for r, e in reasons]
+    return f"waived: {'; '.join(parts) or verdict.summary or 'all findings waived'}"
+
+
+def _details(verdict: Verdict) -> str:
+    """Multi-line text: summary, every finding, the remedy; never empty, each line XML-safe.
+
+    Each line is made safe on its own, so a newline inside a node name shows as
+    ``\\n`` instead of starting a line that looks like another finding.
+    """
+    lines = [f"{verdict.severity} rule {verdict.rule_id} ({verdict.kind}): "
+             f"{verdict.summary or verdict.status}"]
+    if verdict.description:
+        lines.append(f"rule: {verdict.description}")
+    for finding in verdict.findings[:MAX_LISTED_FINDINGS]:
+        line = f"- {finding.message or _finding_text(finding)}"
+        if finding.status == WAIVED:
+            line += f" [waived: {finding.waiver_reason or 'no reason given'}"
+            line += f", expires {finding.waiver_expires}]" if finding.waiver_expires else "]"
+        lines.append(line)
+    hidden = len(verdict.findings) - MAX_LISTED_FINDINGS
+    if hidden > 0:
+        lines.append(f"... and {hidden} more findings (see the JSON report)")
+    lines.append(f"remedy: {verdict.remedy or _NO_REMEDY}")
+    return "\n".join(_x(line) for line in lines)
+
+
+def _finding_text(finding: Finding) -> str:
+    where = f"layer '{finding.layer}'" if finding.layer is not None else "model"
+    return (f"{where}: {finding.metric} = {fmt_metric(finding.metric, finding.value)}, "
+            f"limit {fmt_metric(finding.metric, finding.limit)}")
+
+
+def _properties(entry: Entry, warnings: int) -> dict[str, str]:
+    props = {"model": _x(entry.model), "target": _x(entry.target), "status": entry.status,
+             "warnings": str(warnings)}
+    if entry.head is None:
+        props["model_removed"] = "true"
+        return props
+    props["precision"] = _x(entry.head.precision)
+    for name in PROPERTY_METRICS:
+        if name in entry.head.metrics:
+            props[name] = _number(entry.head.metrics[name])
+            if entry.diff is not None and name in entry.diff.totals:
+                props[f"base_{name}"] = _number(entry.diff.totals[name][0])
+    return props
+
+
+def _no_rules_text(entry: Entry) -> str:
+    if entry.head is None:
+        return "the model was removed; no rules apply"
+    return "profiled; no policy rule applies to this model x target"
+
+
+def _error_suite(error: ModelError, allowed: bool) -> TestSuite:
+    case = TestCase(_x("analyse"), classname=_x(f"{error.model} (unanalysable)"))
+    note = " (let through by the policy's allow_unanalysable)" if allowed else ""
+    message = error.message or "the model could not be analysed"
+    case.add_error_info(message=_x(f"cannot analyse {error.model}: {message}{note}"),
+                        output=_x(f"{error.model}: {message}\nfix the model or its inputs, "
+                                  "then rerun roofgate", multiline=True),
+                        error_type="unanalysable")
+    return TestSuite(_x(f"{error.model} [unanalysable]"), [case],
+                     properties={"model": _x(error.model), "status": "error"})
+
+
+def _empty_suite(result: GateResult) -> TestSuite:
+    case = TestCase("gate", classname="roofgate")
+    case.stdout = _x("\n".join(result.notes) or "nothing to gate", multiline=True)
+    return TestSuite("roofgate", [case], properties={"entries": "0"})
+
+
+def _number(value: int | float) -> str:
+    """A metric as a property value: ints exactly, floats to 12 significant digits."""
+    return str(value) if isinstance(value, int) else f"{value:.12g}"
+
+
+def _x(text: str, *, multiline: bool = False) -> str:
+    return xml_safe(text, multiline=multiline)
