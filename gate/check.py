@@ -41,21 +41,51 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
     with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
         jobs, base_jobs, errors = _check_jobs(root, config, changes, base_commit, stored, tmp)
         analysed = engine.run_jobs([*jobs, *base_jobs], workers)
-    results = []
-    for change in changes:
-        group = _group(config, change)
-        head_runs, head_err = analysed.get(change.path, ([], ""))
-        base_runs, base_err = analysed.get(_base_key(change.path), ([], ""))
-        if stored is not None and change.base_path:
-            base_runs = [replace(r, model=change.path) for r in stored.get(change.base_path, [])]
-        model_errors = [ModelError(change.path, m) for m in (head_err, base_err, *errors.get(
-            change.path, [])) if m]
-        notes = [f"{change.base_path} was renamed to {change.head_path}; compared with the "
-                 "old file."] if change.status == "renamed" else []
-        results.append(engine.judge_model(
-            head_runs, base_runs, _policies(config, group), command="check", today=today,
-            errors=model_errors, notes=notes))
+    policies = _PolicyCache(config)
+    results = [_judge_change(change, analysed, stored, errors.get(change.path, []), policies,
+                             today) for change in changes]
     return engine.combine_results(results, "check"), title
+
+
+def _judge_change(change: gitscan.ModelChange, analysed: dict, stored: dict | None,
+                  lfs_errors: list[str], policies: _PolicyCache, today: date) -> GateResult:
+    """Judge one changed model.
+
+    The head side is what the gate judges: a head that cannot be analysed (or
+    is an LFS pointer) is an error, and then no base is shown (the model is not
+    deleted). A base side that is an LFS pointer is an error too (fetch it); a
+    base that merely fails to analyse (say, the PR replaces a broken file) is
+    a note, and the model is judged as new.
+    """
+    head_runs, head_err = analysed.get(change.path, ([], ""))
+    base_runs, base_err = analysed.get(_base_key(change.path), ([], ""))
+    if stored is not None and change.base_path:
+        base_runs = [replace(r, model=change.path) for r in stored.get(change.base_path, [])]
+    errors = [ModelError(change.path, m) for m in (head_err, *lfs_errors) if m]
+    notes = []
+    if change.status == "renamed":
+        notes.append(f"{change.base_path} was renamed to {change.head_path}; compared with "
+                     "the old file.")
+    if base_err:
+        notes.append(f"{change.path}: the base side could not be analysed, so the model is "
+                     f"judged as new ({base_err})")
+    if errors:
+        base_runs = []
+    return engine.judge_model(head_runs, base_runs, policies.get(_group(policies.config, change)),
+                              command="check", today=today, errors=errors, notes=notes)
+
+
+class _PolicyCache:
+    """Policies per model group, each file set loaded once per run."""
+
+    def __init__(self, config: ProjectConfig) -> None:
+        self.config = config
+        self._loaded: dict[tuple[str, ...], list[object]] = {}
+
+    def get(self, group: ModelGroup) -> list[object]:
+        if group.policies not in self._loaded:
+            self._loaded[group.policies] = _policies(self.config, group)
+        return self._loaded[group.policies]
 
 
 def _base_key(model: str) -> str:
@@ -149,13 +179,15 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
     mine = engine.shard_share(models, *shard) if shard else models
     jobs = [_job(config, _audit_group(config, m), m, str(root / m)) for m in mine if m in present]
     analysed = engine.run_jobs(jobs, workers, engine.Progress(label="audit"))
+    policies = _PolicyCache(config)
     results = []
     for model in mine:
         head_runs, error = analysed.get(model, ([], ""))
         errors = [ModelError(model, error)] if error else []
         results.append(engine.judge_model(
-            head_runs, stored.get(model, []), _policies(config, _audit_group(config, model)),
-            command="audit", today=today, errors=errors))
+            head_runs, [] if error else stored.get(model, []),
+            policies.get(_audit_group(config, model)), command="audit", today=today,
+            errors=errors))
     return engine.combine_results(results, "audit"), models
 
 

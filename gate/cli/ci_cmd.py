@@ -16,6 +16,7 @@ from typing import Any
 import click
 
 from gate import audit as engine
+from gate.diff import same_value
 from gate.config import DEFAULT_REPORTS, Overrides, ProjectConfig, load_config, parse_dim_bindings
 from gate.report import report_options, report_paths, write_reports
 from gate.report.text import fmt_delta, one_line, term_safe
@@ -89,9 +90,11 @@ def _change_text(entry: Entry) -> str:
         return "  (new)"
     if entry.diff is None:
         return ""
-    parts = [f"{label} {fmt_delta(metric, *entry.diff.totals[metric])}"
-             for label, metric in (("latency", "latency_s"), ("params", "param_bytes"))
-             if metric in entry.diff.totals]
+    parts = []
+    for label, metric in (("latency", "latency_s"), ("params", "param_bytes")):
+        if metric in entry.diff.totals:
+            base, head = entry.diff.totals[metric]
+            parts.append(f"{label} {'=' if same_value(base, head) else fmt_delta(metric, base, head)}")
     return f"  ({', '.join(parts)})" if parts else ""
 
 
@@ -115,8 +118,9 @@ def print_summary(result: GateResult, title: str, written: list[str]) -> None:
                     "failure(s))", EXIT_BAD_INPUT: f"FAILED ({len(result.errors)} model(s) could "
                     "not be analysed)"}.get(result.exit_code, "FAILED")
     click.echo(f"Result: {verdict_text}; exit {result.exit_code}")
-    if written:
-        click.echo("Reports: " + ", ".join(term_safe(w) for w in written if w != "-"))
+    files = [term_safe(w) for w in written if w != "-"]
+    if files:
+        click.echo("Reports: " + ", ".join(files))
 
 
 # --- check ----------------------------------------------------------------------------
