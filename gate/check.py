@@ -114,12 +114,16 @@ def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.Mod
         for side, rev, path, key, out in sides:
             if path is None:
                 continue
-            data = gitscan.read_blob(rev, path, root)
-            if gitscan.is_lfs_pointer(data):
+            file = os.path.join(tmp, f"{side}-{k:05d}.onnx")
+            try:
+                real = gitscan.write_blob(rev, path, root, file)
+            except InputError as exc:  # e.g. the LFS smudge filter could not download
+                errors.setdefault(change.path, []).append(
+                    f"{change.path}: cannot read the {side} side from git ({exc.format_message()})")
+                continue
+            if not real:
                 errors.setdefault(change.path, []).append(gitscan.lfs_error_message(path, side))
                 continue
-            file = os.path.join(tmp, f"{side}-{k:05d}.onnx")
-            Path(file).write_bytes(data)
             out.append(replace(_job(config, group, change.path, file), key=key))
     return jobs, base_jobs, errors
 

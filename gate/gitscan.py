@@ -14,7 +14,7 @@ import os
 import subprocess
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import BinaryIO, Callable, Sequence
 
 from gate.errors import InputError
 
@@ -41,12 +41,14 @@ _STATUS = {"A": "added", "D": "deleted", "M": "modified", "R": "renamed", "C": "
            "T": "type-changed"}
 
 
-def git(args: Sequence[str], cwd: str | Path, *, what: str) -> bytes:
-    """Run ``git <args>`` in ``cwd`` and return stdout bytes; InputError naming ``what`` on failure."""
+def git(args: Sequence[str], cwd: str | Path, *, what: str, stdout: BinaryIO | None = None,
+        ) -> bytes:
+    """Run ``git <args>`` in ``cwd``; stdout bytes (or streamed to ``stdout``); InputError on failure."""
     env = {**os.environ, "GIT_TERMINAL_PROMPT": "0", "LC_ALL": "C"}
     try:
         done = subprocess.run(
-            ["git", "-c", "core.quotepath=off", *args], cwd=cwd, capture_output=True,
+            ["git", "-c", "core.quotepath=off", *args], cwd=cwd,
+            stdout=stdout if stdout is not None else subprocess.PIPE, stderr=subprocess.PIPE,
             shell=False, check=False, timeout=GIT_TIMEOUT_S, env=env,
         )
     except FileNotFoundError:
@@ -56,7 +58,7 @@ def git(args: Sequence[str], cwd: str | Path, *, what: str) -> bytes:
     if done.returncode != 0:
         detail = " ".join(done.stderr.decode("utf-8", "replace").split())[:300]
         raise InputError(f"git failed while {what}: {detail or 'exit ' + str(done.returncode)}")
-    return done.stdout
+    return done.stdout or b""
 
 
 def repo_root(cwd: str | Path = ".") -> Path:
@@ -156,6 +158,19 @@ def read_blob(rev: str, path: str, cwd: str | Path) -> bytes:
     """The contents of ``path`` at ``rev``, through the repository's filters (Git LFS smudge)."""
     return git(["cat-file", "--filters", f"{rev}:{path}"], cwd,
                what=f"reading {path} at {rev[:12]}")
+
+
+def write_blob(rev: str, path: str, cwd: str | Path, dest: str | Path) -> bool:
+    """Stream ``path`` at ``rev`` (filtered, as ``read_blob``) into ``dest``; False if an LFS pointer.
+
+    Streaming keeps memory flat for multi-gigabyte models.
+    """
+    with open(dest, "wb") as out:
+        git(["cat-file", "--filters", f"{rev}:{path}"], cwd,
+            what=f"reading {path} at {rev[:12]}", stdout=out)
+    with open(dest, "rb") as back:
+        head = back.read(LFS_POINTER_MAX_BYTES + 1)
+    return not is_lfs_pointer(head)
 
 
 def is_lfs_pointer(data: bytes) -> bool:

@@ -132,3 +132,15 @@ def test_unrelated_histories_explain_shallow_clones(repo: Repo) -> None:
 def test_outside_a_repository(tmp_path: Path) -> None:
     with pytest.raises(InputError, match="inside a git repository"):
         gitscan.repo_root(tmp_path)
+
+
+def test_write_blob_streams_and_flags_lfs_pointers(repo: Repo, tmp_path: Path) -> None:
+    dest = tmp_path / "out.onnx"
+    assert gitscan.write_blob("HEAD", "models/change.onnx", repo.path, dest)
+    assert dest.read_bytes() == b"change-v2" * 50
+    repo.write("models/lfs.onnx", b"version https://git-lfs.github.com/spec/v1\noid sha256:"
+               + b"0" * 64 + b"\nsize 9\n")
+    repo.commit("pointer")
+    assert not gitscan.write_blob("HEAD", "models/lfs.onnx", repo.path, dest)
+    with pytest.raises(InputError, match="reading models/none.onnx"):
+        gitscan.write_blob("HEAD", "models/none.onnx", repo.path, dest)
