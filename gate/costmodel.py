@@ -1,24 +1,29 @@
 """Per-layer cost of a profiled model on one target: cycles, utilization, traffic, latency, energy.
 
-Analytical, not measured: GEMM mapping onto the PE array per dataflow, DRAM
-traffic from buffer fit, latency from the roofline overlap
-(max(compute, memory) + overhead; Williams, Waterman & Patterson, CACM 2009),
-energy from per-access costs. The README documents every formula.
+Analytical, not measured: GEMM mapping onto the PE array per dataflow
+(``gate.targets.dataflow``), DRAM traffic from buffer fit, latency from the
+roofline overlap (max(compute, memory) + overhead; Williams, Waterman &
+Patterson, CACM 2009), energy from per-access costs. docs/costmodel.md documents
+every formula. All arithmetic is closed form per layer: costing N targets costs
+N times one target.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, fields
+from math import ceil
 
-from gate.profile import ModelProfile
-from gate.targets.spec import TargetProfile
+from gate.errors import InputError
+from gate.profile import LayerProfile, ModelProfile
+from gate.targets.dataflow import GemmMapping, map_gemm
+from gate.targets.spec import EngineSpec, TargetProfile, normal_precision
 
 
 @dataclass(frozen=True, slots=True)
 class EnergyBreakdown:
     """Energy by component in joules; the parts sum to ``total_j``. Adds up with ``sum()``."""
 
-    mac_j: float = 0.0
+    mac_j: float = 0.0  # arithmetic: MACs on the array plus operations on the vector unit or host
     buffer_j: float = 0.0  # on-chip buffer reads and writes
     noc_j: float = 0.0  # distributing operands across the PE array
     dram_param_j: float = 0.0
@@ -51,7 +56,7 @@ class LayerCost:
     name: str
     engine: str  # "array", "vector", "host", or "none" (view op / unmodelled)
     cycles: int  # engine cycles for the compute (0 for none)
-    utilization: float  # useful MACs / (PE count x cycles); 0 off the array
+    utilization: float  # useful MACs / (PE count x MACs per PE per cycle x cycles); 0 off the array
     compute_s: float
     memory_s: float  # DRAM time for this layer's traffic
     overhead_s: float
@@ -63,6 +68,9 @@ class LayerCost:
     params_fit: bool  # the layer's parameters fit the parameter (or unified) buffer
     activations_fit: bool  # its input + output activations fit the activation buffer
     energy: EnergyBreakdown
+    precision: str = ""  # precision the layer ran at ("" when it ran nowhere)
+    array_macs: int = 0  # useful MACs done on the PE array
+    modelled: bool = True  # False: the profile could not count this layer; its zeros mean "unknown"
 
 
 @dataclass(frozen=True, slots=True)
@@ -80,12 +88,266 @@ class ModelCost:
     utilization: float  # useful MACs / (PE count x array cycles), over array layers
     peak_flops_per_s: float
     peak_flops_per_j: float
+    notes: tuple[str, ...] = ()
 
     @property
     def inferences_per_s(self) -> float:
         return 1.0 / self.latency_s if self.latency_s > 0 else 0.0
 
 
-def cost_model(profile: ModelProfile, target: TargetProfile) -> ModelCost:
-    """Cost every layer of ``profile`` on ``target``."""
-    raise NotImplementedError  # implemented by the cost-model work
+@dataclass(frozen=True, slots=True)
+class _Context:
+    """What every layer's costing needs from the model-level decisions."""
+
+    target: TargetProfile
+    explicit_precision: str | None  # the deploy precision, when one was asked for
+    model_precision: str
+    weights_resident: bool
+    total_param_bytes: int
+
+
+def cost_model(profile: ModelProfile, target: TargetProfile,
+               weights_resident: bool | None = None) -> ModelCost:
+    """Cost every layer of ``profile`` on ``target``.
+
+    ``weights_resident`` overrides the target's ``weights_resident`` setting
+    (keep all parameters on chip across inferences when they fit).
+    """
+    explicit = _explicit_precision(profile.precision)
+    model_precision = explicit or _dominant_precision(profile, target)
+    target.precision_spec(model_precision)  # InputError naming target and precision
+    wanted = target.weights_resident if weights_resident is None else weights_resident
+    resident = wanted and _weights_fit_on_chip(profile, target)
+    ctx = _Context(target, explicit, model_precision, resident, profile.total_param_bytes)
+    layers = tuple(_cost_layer(layer, ctx) for layer in profile.layers)
+    return _totals(profile, target, ctx, layers, wanted)
+
+
+# ---------------------------------------------------------------- precision
+
+def _explicit_precision(precision: str) -> str | None:
+    if not precision or precision == "native":
+        return None
+    canonical = normal_precision(precision)
+    if canonical is None:
+        raise InputError(f"unknown precision '{precision}'; use one of int4, int8, int16, fp8, "
+                         f"fp16, bf16, fp32")
+    return canonical
+
+
+def _layer_native_precision(layer: LayerProfile) -> str | None:
+    for dtype in layer.input_dtypes[:1] + layer.output_dtypes[:1]:
+        canonical = normal_precision(dtype)
+        if canonical is not None:
+            return canonical
+    return None
+
+
+def _dominant_precision(profile: ModelProfile, target: TargetProfile) -> str:
+    """The native precision carrying the most MACs (or, with no MACs, the most layers)."""
+    weight: dict[str, int] = {}
+    for layer in profile.layers:
+        native = _layer_native_precision(layer)
+        if native is not None:
+            weight[native] = weight.get(native, 0) + max(layer.macs, 0) * 1000 + 1
+    if not weight:
+        return next(iter(target.precisions), "fp32")
+    return max(sorted(weight), key=lambda name: weight[name])
+
+
+def _layer_precision(layer: LayerProfile, ctx: _Context) -> str:
+    return ctx.explicit_precision or _layer_native_precision(layer) or ctx.model_precision
+
+
+# ---------------------------------------------------------------- buffers
+
+def _weights_fit_on_chip(profile: ModelProfile, target: TargetProfile) -> bool:
+    total = profile.total_param_bytes
+    if target.is_unified:
+        largest_act = max((l.input_bytes + l.output_bytes for l in profile.layers), default=0)
+        return total + largest_act <= target.unified_buffer_bytes
+    return total <= target.param_buffer_bytes
+
+
+def _fits(layer: LayerProfile, ctx: _Context) -> tuple[bool, bool]:
+    """(params fit, activations fit) for a layer run on the accelerator."""
+    target = ctx.target
+    act_bytes = layer.input_bytes + layer.output_bytes
+    if not target.is_unified:
+        params_fit = ctx.weights_resident or layer.param_bytes <= target.param_buffer_bytes
+        return params_fit, act_bytes <= target.activation_buffer_bytes
+    held = ctx.total_param_bytes if ctx.weights_resident else layer.param_bytes
+    params_fit = held <= target.unified_buffer_bytes
+    room = target.unified_buffer_bytes - (held if params_fit else 0)
+    return params_fit, act_bytes <= room
+
+
+def _param_dram_bytes(layer: LayerProfile, ctx: _Context, params_fit: bool,
+                      maps: list[tuple[GemmMapping, bool]], gemm_weight_elems: int) -> int:
+    """Once per inference when the parameters fit; else every read the dataflow makes."""
+    if layer.param_bytes <= 0 or ctx.weights_resident:
+        return 0
+    if params_fit or layer.param_count <= 0:
+        return layer.param_bytes
+    fetched = sum(m.weight_reads for m, is_param in maps if is_param)
+    distinct = min(layer.param_count, gemm_weight_elems)
+    extra_elems = max(0, fetched - distinct)
+    return layer.param_bytes + ceil(extra_elems * layer.param_bytes / layer.param_count)
+
+
+# ---------------------------------------------------------------- one layer
+
+def _cost_layer(layer: LayerProfile, ctx: _Context) -> LayerCost:
+    work = layer.work
+    if not layer.modelled or work is None:
+        return _idle(layer, modelled=False)
+    if work.is_view:
+        return _idle(layer, modelled=True)
+    target = ctx.target
+    gemms = [g for g in work.gemms if g.macs > 0]
+    engine = target.engine_for(layer.op_type, layer.domain, bool(gemms))
+    if engine == "array":
+        return _on_array(layer, ctx)
+    spec = target.vector if engine == "vector" else target.host
+    if spec is None:
+        raise InputError(f"target '{target.name}' declares no {engine} engine for layer "
+                         f"'{layer.name}' ({layer.op_type}); add a '{engine}' section",
+                         path=None if target.source == "builtin" else target.source)
+    ops = work.vector_ops + work.macs
+    if ops <= 0 and layer.flops > 0:
+        ops = layer.flops
+    return _on_engine(layer, ctx, engine, spec, ops)
+
+
+def _idle(layer: LayerProfile, modelled: bool) -> LayerCost:
+    return LayerCost(
+        index=layer.index, name=layer.name, engine="none", cycles=0, utilization=0.0,
+        compute_s=0.0, memory_s=0.0, overhead_s=0.0, latency_s=0.0, bound="none",
+        param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=True,
+        activations_fit=True, energy=EnergyBreakdown(), modelled=modelled)
+
+
+def _on_array(layer: LayerProfile, ctx: _Context) -> LayerCost:
+    target = ctx.target
+    work = layer.work
+    assert work is not None
+    precision = _layer_precision(layer, ctx)
+    spec = target.precision_spec(precision)
+    elem_bytes = target.element_bytes(precision)
+    maps = [(map_gemm(g, target.pe_rows, target.pe_cols, target.dataflow), g.weights_are_params)
+            for g in work.gemms if g.macs > 0]
+    weight_elems = sum(g.k * g.n * g.count for g in work.gemms if g.weights_are_params)
+    base_cycles = sum(m.cycles for m, _ in maps)
+    macs = sum(m.macs for m, _ in maps)
+    cycles = ceil(base_cycles / spec.macs_per_pe_per_cycle)
+    array_s = cycles / target.clock_hz
+    extra_ops = work.vector_ops + max(0, work.macs - macs)
+    side_s, side_j = _side_work(target, extra_ops, spec.mac_energy_j)
+    params_fit, acts_fit = _fits(layer, ctx)
+    param_dram = _param_dram_bytes(layer, ctx, params_fit, maps, weight_elems)
+    act_dram = 0 if acts_fit else layer.input_bytes + layer.output_bytes
+    operand_elems = sum(m.weight_reads + m.input_reads + m.output_accesses for m, _ in maps)
+    buffer_bytes = ceil(operand_elems * elem_bytes) + param_dram + act_dram
+    noc_bytes = sum(m.noc_hops for m, _ in maps) * elem_bytes
+    capacity = target.pe_count * spec.macs_per_pe_per_cycle * cycles
+    return _finish(
+        layer, ctx, engine="array", cycles=cycles, utilization=macs / capacity if capacity else 0.0,
+        compute_s=max(array_s, side_s), overhead_s=target.layer_overhead_s,
+        param_dram=param_dram, act_dram=act_dram, buffer_bytes=buffer_bytes,
+        fit=(params_fit, acts_fit), precision=precision, array_macs=macs,
+        arithmetic_j=macs * spec.mac_energy_j + side_j, noc_j=noc_bytes * target.noc_energy_j_per_byte)
+
+
+def _side_work(target: TargetProfile, ops: int, mac_energy_j: float) -> tuple[float, float]:
+    """Elementwise work fused into an array layer (bias, activation): on the vector unit, overlapped."""
+    if ops <= 0:
+        return 0.0, 0.0
+    if target.vector is None:  # fused into the array's output stage: energy at the MAC rate
+        return 0.0, ops * mac_energy_j
+    return ops / target.vector.ops_per_s, ops * target.vector.op_energy_j
+
+
+def _on_engine(layer: LayerProfile, ctx: _Context, engine: str, spec: EngineSpec,
+               ops: int) -> LayerCost:
+    cycles = ceil(ops / spec.ops_per_cycle) if ops > 0 else 0
+    if engine == "host":  # the host reads and writes through DRAM, never the accelerator's buffers
+        params_fit, acts_fit = False, False
+        param_dram = layer.param_bytes
+        act_dram = layer.input_bytes + layer.output_bytes
+        buffer_bytes = 0
+    else:
+        params_fit, acts_fit = _fits(layer, ctx)
+        param_dram = 0 if ctx.weights_resident else layer.param_bytes
+        act_dram = 0 if acts_fit else layer.input_bytes + layer.output_bytes
+        buffer_bytes = layer.param_bytes + layer.input_bytes + layer.output_bytes + param_dram + act_dram
+    return _finish(
+        layer, ctx, engine=engine, cycles=cycles, utilization=0.0,
+        compute_s=cycles / spec.clock_hz, overhead_s=spec.overhead_s, param_dram=param_dram,
+        act_dram=act_dram, buffer_bytes=buffer_bytes, fit=(params_fit, acts_fit),
+        precision=_layer_precision(layer, ctx), array_macs=0, arithmetic_j=ops * spec.op_energy_j,
+        noc_j=0.0)
+
+
+def _finish(layer: LayerProfile, ctx: _Context, *, engine: str, cycles: int, utilization: float,
+            compute_s: float, overhead_s: float, param_dram: int, act_dram: int,
+            buffer_bytes: int, fit: tuple[bool, bool], precision: str, array_macs: int,
+            arithmetic_j: float, noc_j: float) -> LayerCost:
+    """Roofline latency, bound and the energy breakdown of one layer."""
+    target = ctx.target
+    memory_s = (param_dram + act_dram) / target.dram_bytes_per_s
+    latency_s = max(compute_s, memory_s) + overhead_s
+    energy = EnergyBreakdown(
+        mac_j=arithmetic_j,
+        buffer_j=buffer_bytes * target.buffer_energy_j_per_byte,
+        noc_j=noc_j,
+        dram_param_j=param_dram * target.dram_energy_j_per_byte,
+        dram_act_j=act_dram * target.dram_energy_j_per_byte,
+        static_j=target.static_power_w * latency_s,
+    )
+    return LayerCost(
+        index=layer.index, name=layer.name, engine=engine, cycles=cycles,
+        utilization=utilization, compute_s=compute_s, memory_s=memory_s, overhead_s=overhead_s,
+        latency_s=latency_s, bound=_bound(compute_s, memory_s, overhead_s),
+        param_dram_bytes=param_dram, act_dram_bytes=act_dram, buffer_bytes=buffer_bytes,
+        params_fit=fit[0], activations_fit=fit[1], energy=energy, precision=precision,
+        array_macs=array_macs)
+
+
+def _bound(compute_s: float, memory_s: float, overhead_s: float) -> str:
+    if overhead_s > max(compute_s, memory_s):
+        return "overhead"
+    return "memory" if memory_s > compute_s else "compute"
+
+
+# ---------------------------------------------------------------- totals
+
+def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
+            layers: tuple[LayerCost, ...], wanted_resident: bool) -> ModelCost:
+    capacity = 0.0
+    array_macs = 0
+    for cost in layers:
+        if cost.engine == "array":
+            capacity += (target.pe_count * target.precision_spec(cost.precision).macs_per_pe_per_cycle
+                         * cost.cycles)
+            array_macs += cost.array_macs
+    notes = []
+    if wanted_resident and not ctx.weights_resident:
+        notes.append(f"parameters ({profile.total_param_bytes} B) do not fit on chip: "
+                     f"fetched from DRAM every inference")
+    unmodelled = sum(1 for cost in layers if not cost.modelled)
+    if unmodelled:
+        notes.append(f"{unmodelled} unmodelled layer(s) cost nothing here: totals are a lower bound")
+    return ModelCost(
+        target_name=target.name,
+        precision=ctx.model_precision,
+        layers=layers,
+        latency_s=sum(cost.latency_s for cost in layers),
+        energy=sum((cost.energy for cost in layers), EnergyBreakdown()),
+        param_dram_bytes=sum(cost.param_dram_bytes for cost in layers),
+        act_dram_bytes=sum(cost.act_dram_bytes for cost in layers),
+        weights_resident=ctx.weights_resident,
+        utilization=array_macs / capacity if capacity else 0.0,
+        peak_flops_per_s=target.peak_flops_per_s(ctx.model_precision),
+        peak_flops_per_j=target.peak_flops_per_j(ctx.model_precision),
+        notes=tuple(notes),
+    )

@@ -1,0 +1,224 @@
+"""Read and validate one target-profile YAML file into a ``TargetProfile``.
+
+Every problem of a file is collected (file:line: key.path: message, with a
+"did you mean" for misspelled keys and names) and raised as one ``ConfigError``.
+The README (docs/targets.md) documents the schema; keep the two in step.
+"""
+
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+from pathlib import Path
+from types import MappingProxyType
+
+from yaml.nodes import Node, ScalarNode
+
+from gate.targets.spec import (
+    DATAFLOWS,
+    ENGINES,
+    PRECISION_BITS,
+    EngineSpec,
+    PrecisionSpec,
+    TargetProfile,
+    normal_precision,
+)
+from gate.yamlconf import Section, YamlDocument, parse_yaml_bytes, read_yaml_file, scalar_value, suggest
+
+
+def load_target_file(path: str | Path, source: str | None = None) -> TargetProfile:
+    """Load the target profile in ``path``; ConfigError listing every problem found."""
+    return parse_target(read_yaml_file(path), source)
+
+
+def parse_target_bytes(raw: bytes, shown: str, source: str | None = None) -> TargetProfile:
+    """Load a target profile from bytes (``shown`` names it in messages)."""
+    return parse_target(parse_yaml_bytes(raw, shown), source)
+
+
+def parse_target(doc: YamlDocument, source: str | None = None) -> TargetProfile:
+    """Build a ``TargetProfile`` from a composed document, or raise one ConfigError."""
+    root = doc.root_mapping()
+    name = root.get_str("name", required=True)
+    description = root.get_str("description", "")
+    clock_hz = root.get_quantity("clock", "Hz", required=True)
+    array = _read_array(root)
+    buffers = _read_buffers(root)
+    dram_bytes_per_s = _read_dram(root)
+    energy = _read_energy(root)
+    layer_overhead_s = root.get_quantity("layer_overhead", "s", 0.0)
+    vector = _read_engine(root, "vector_unit", clock_hz, required=False)
+    host = _read_engine(root, "host", None, required=True)
+    placement = _read_placement(root, vector is not None or root.has("vector_unit"))
+    weights_resident = root.get_bool("weights_resident", False)
+    root.finish()
+    if name is not None and not _valid_name(name):
+        root.bad("name", f"'{name}' is not a valid target name; use letters, digits, '-', '_' and '.'")
+    if clock_hz is not None and clock_hz <= 0:
+        root.bad("clock", "must be above zero")
+    doc.raise_if_problems()
+    rows, cols, dataflow, precisions = array
+    return TargetProfile(
+        name=name or "", description=description or "", source=source or doc.path,
+        clock_hz=float(clock_hz or 0.0), pe_rows=rows, pe_cols=cols, dataflow=dataflow,
+        param_buffer_bytes=buffers[0], activation_buffer_bytes=buffers[1],
+        unified_buffer_bytes=buffers[2], dram_bytes_per_s=dram_bytes_per_s,
+        precisions=MappingProxyType(precisions), buffer_energy_j_per_byte=energy[0],
+        noc_energy_j_per_byte=energy[1], dram_energy_j_per_byte=energy[2],
+        static_power_w=energy[3], layer_overhead_s=float(layer_overhead_s or 0.0),
+        vector=vector, host=host, placement=MappingProxyType(placement),
+        weights_resident=bool(weights_resident),
+    )
+
+
+def _valid_name(name: str) -> bool:
+    return bool(name) and all(c.isalnum() or c in "-_." for c in name)
+
+
+def _read_array(root: Section) -> tuple[int, int, str, dict[str, PrecisionSpec]]:
+    array = root.get_section("array", required=True)
+    if array is None:
+        return 0, 0, "", {}
+    rows = array.get_int("rows", 0, required=True, minimum=1) or 0
+    cols = array.get_int("cols", 0, required=True, minimum=1) or 0
+    dataflow = array.get_str("dataflow", "", required=True, choices=list(DATAFLOWS)) or ""
+    precisions: dict[str, PrecisionSpec] = {}
+    for name, sub, node in array.get_mapping_sections("precisions"):
+        spec = _read_precision(array, name, sub, node)
+        if spec is not None:
+            precisions[normal_precision(name) or name] = spec
+    if not precisions and array.has("precisions"):
+        array.bad("precisions", "declare at least one precision, e.g. 'int8: {macs_per_pe_per_cycle: 1, "
+                                "energy_per_mac: 0.2 pJ}'")
+    elif not array.has("precisions"):
+        array.bad("precisions", "required key is missing")
+    array.finish()
+    return rows, cols, dataflow, precisions
+
+
+def _read_precision(array: Section, name: str, sub: Section | None,
+                    node: Node) -> PrecisionSpec | None:
+    path = f"{array.key_path}.precisions.{name}"
+    canonical = normal_precision(name)
+    if canonical is None:
+        hint = suggest(name, list(PRECISION_BITS))
+        array.doc.problem(node, path, f"unknown precision '{name}'{hint}; "
+                                      f"known: {', '.join(PRECISION_BITS)}")
+        return None
+    if sub is None:
+        array.doc.problem(node, path, "expected a mapping with macs_per_pe_per_cycle and "
+                                      "energy_per_mac")
+        return None
+    rate = sub.get_number("macs_per_pe_per_cycle", required=True, minimum=0.0)
+    energy = sub.get_quantity("energy_per_mac", "J", required=True)
+    sub.finish()
+    if rate is not None and rate <= 0:
+        sub.bad("macs_per_pe_per_cycle", "must be above zero")
+        return None
+    if rate is None or energy is None:
+        return None
+    return PrecisionSpec(macs_per_pe_per_cycle=rate, mac_energy_j=energy)
+
+
+def _read_buffers(root: Section) -> tuple[int, int, int]:
+    buffers = root.get_section("buffers", required=True)
+    if buffers is None:
+        return 0, 0, 0
+    param = _whole_bytes(buffers, "parameter")
+    act = _whole_bytes(buffers, "activation")
+    unified = _whole_bytes(buffers, "unified")
+    buffers.finish()
+    if unified and (param or act):
+        buffers.bad("unified", "declare either one unified buffer or separate parameter and "
+                               "activation buffers, not both")
+    elif not unified and not (param and act):
+        missing = "parameter" if not param else "activation"
+        buffers.bad(missing, "declare both 'parameter' and 'activation' buffer sizes above zero, "
+                             "or one 'unified' buffer")
+    return param, act, unified
+
+
+def _whole_bytes(section: Section, key: str) -> int:
+    value = section.get_quantity(key, "B", 0.0)
+    if value is None:
+        return 0
+    if value != math.floor(value):
+        section.bad(key, f"must be a whole number of bytes, got {value:g}")
+        return 0
+    return int(value)
+
+
+def _read_dram(root: Section) -> float:
+    dram = root.get_section("dram", required=True)
+    if dram is None:
+        return 0.0
+    bandwidth = dram.get_quantity("bandwidth", "B/s", required=True)
+    dram.finish()
+    if bandwidth is not None and bandwidth <= 0:
+        dram.bad("bandwidth", "must be above zero")
+    return float(bandwidth or 0.0)
+
+
+def _read_energy(root: Section) -> tuple[float, float, float, float]:
+    energy = root.get_section("energy", required=True)
+    if energy is None:
+        return 0.0, 0.0, 0.0, 0.0
+    buffer_j = energy.get_quantity("buffer_per_byte", "J", required=True)
+    noc_j = energy.get_quantity("noc_per_byte", "J", required=True)
+    dram_j = energy.get_quantity("dram_per_byte", "J", required=True)
+    static_w = energy.get_quantity("static_power", "W", 0.0)
+    energy.finish()
+    return (float(buffer_j or 0.0), float(noc_j or 0.0), float(dram_j or 0.0),
+            float(static_w or 0.0))
+
+
+def _read_engine(root: Section, key: str, default_clock_hz: float | None,
+                 required: bool) -> EngineSpec | None:
+    section = root.get_section(key, required=required)
+    if section is None:
+        return None
+    ops = section.get_number("ops_per_cycle", required=True, minimum=0.0)
+    clock = section.get_quantity("clock", "Hz", default_clock_hz, required=default_clock_hz is None)
+    energy = section.get_quantity("energy_per_op", "J", required=True)
+    overhead = section.get_quantity("layer_overhead", "s", 0.0)
+    section.finish()
+    if ops is not None and ops <= 0:
+        section.bad("ops_per_cycle", "must be above zero")
+        return None
+    if clock is not None and clock <= 0:
+        section.bad("clock", "must be above zero")
+        return None
+    if ops is None or clock is None or energy is None:
+        return None
+    return EngineSpec(ops_per_cycle=ops, clock_hz=clock, op_energy_j=energy,
+                      overhead_s=float(overhead or 0.0))
+
+
+def _read_placement(root: Section, has_vector: bool) -> dict[str, str]:
+    placement: dict[str, str] = {}
+    for op_type, _, node in root.get_mapping_sections("placement"):
+        path = f"placement.{op_type}"
+        value = scalar_value(node) if isinstance(node, ScalarNode) else None
+        if not isinstance(value, str) or value not in ENGINES:
+            shown = str(node.value) if isinstance(node, ScalarNode) else "a list or mapping"
+            hint = suggest(shown, list(ENGINES))
+            root.doc.problem(node, path, f"'{shown}' is not one of {', '.join(ENGINES)}{hint}")
+            continue
+        if value == "vector" and not has_vector:
+            root.doc.problem(node, path, "placed on 'vector' but the target declares no vector_unit")
+            continue
+        if ":" not in op_type and op_type not in _onnx_op_types():
+            hint = suggest(op_type, sorted(_onnx_op_types()))
+            root.doc.problem(node, path, f"'{op_type}' is not an ONNX op type{hint}; write ops of "
+                                         f"other domains as 'domain:OpType'")
+            continue
+        placement[op_type] = value
+    return placement
+
+
+@lru_cache(maxsize=1)
+def _onnx_op_types() -> frozenset[str]:
+    """Every op type in ONNX's own operator sets (the names a placement key may use)."""
+    import onnx.defs
+
+    return frozenset(schema.name for schema in onnx.defs.get_all_schemas_with_history())

@@ -1,0 +1,236 @@
+"""Tests for the accelerator cost model (gate.costmodel, gate.targets.dataflow).
+
+External checks: cycle counts against a cycle-level systolic simulator
+(tests/systolic_sim.py) that also multiplies the matrices (numpy checks the
+product); the roofline formula and ridge point against Williams, Waterman &
+Patterson, CACM 2009; energy arithmetic with per-operation energies of the
+45 nm table in Horowitz, ISSCC 2014 (values quoted from memory), hand-computed.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import replace
+from types import MappingProxyType
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from gate.costmodel import EnergyBreakdown, cost_model
+from gate.errors import InputError
+from gate.model.graph import Graph, LoadedModel
+from gate.ops.registry import GemmShape, OpWork
+from gate.profile import Coverage, LayerProfile, ModelProfile, UnmodelledOp
+from gate.targets.dataflow import map_gemm
+from gate.targets.spec import EngineSpec, PrecisionSpec, TargetProfile
+from tests.systolic_sim import simulate_output_stationary, simulate_weight_stationary
+
+PJ = 1e-12
+
+# Horowitz, ISSCC 2014, energy table at 45 nm (from memory): 8-bit int multiply 0.2 pJ,
+# 8-bit int add 0.03 pJ; 32-bit float multiply 3.7 pJ, add 0.9 pJ; 64-bit read of an
+# 8 KB SRAM 10 pJ; 64-bit DRAM access 1.3-2.6 nJ (we take 2.6 nJ).
+HOROWITZ_INT8_MAC_J = (0.2 + 0.03) * PJ
+HOROWITZ_FP32_MAC_J = (3.7 + 0.9) * PJ
+HOROWITZ_SRAM_8KB_J_PER_BYTE = 10 * PJ / 8
+HOROWITZ_DRAM_J_PER_BYTE = 2600 * PJ / 8
+
+
+def make_target(dataflow: str = "weight-stationary", rows: int = 4, cols: int = 4, *,
+                clock_hz: float = 1e9, param_bytes: int = 1 << 20, act_bytes: int = 1 << 20,
+                unified_bytes: int = 0, dram_bytes_per_s: float = 1e10, **changes: object
+                ) -> TargetProfile:
+    """A small test target at one MAC per PE per cycle, no overheads unless asked."""
+    target = TargetProfile(
+        name="test-array", description="test", source="builtin", clock_hz=clock_hz,
+        pe_rows=rows, pe_cols=cols, dataflow=dataflow,
+        param_buffer_bytes=0 if unified_bytes else param_bytes,
+        activation_buffer_bytes=0 if unified_bytes else act_bytes,
+        unified_buffer_bytes=unified_bytes, dram_bytes_per_s=dram_bytes_per_s,
+        precisions=MappingProxyType({
+            "int8": PrecisionSpec(1.0, HOROWITZ_INT8_MAC_J),
+            "fp32": PrecisionSpec(1.0, HOROWITZ_FP32_MAC_J),
+        }),
+        buffer_energy_j_per_byte=HOROWITZ_SRAM_8KB_J_PER_BYTE,
+        noc_energy_j_per_byte=0.0, dram_energy_j_per_byte=HOROWITZ_DRAM_J_PER_BYTE,
+        vector=EngineSpec(ops_per_cycle=8, clock_hz=clock_hz, op_energy_j=0.1 * PJ, overhead_s=0),
+        host=EngineSpec(ops_per_cycle=1, clock_hz=clock_hz, op_energy_j=10 * PJ, overhead_s=0),
+    )
+    return replace(target, **changes)  # type: ignore[arg-type]
+
+
+def gemm_layer(gemms: tuple[GemmShape, ...], *, index: int = 0, name: str = "layer",
+               op_type: str = "MatMul", dtype: str = "INT8", param_count: int | None = None,
+               input_bytes: int | None = None, output_bytes: int | None = None,
+               vector_ops: int = 0) -> LayerProfile:
+    """A layer whose work is ``gemms``; bytes default to one byte per element (int8)."""
+    macs = sum(g.macs for g in gemms)
+    if param_count is None:
+        param_count = sum(g.k * g.n * g.count for g in gemms if g.weights_are_params)
+    size = 1 if dtype == "INT8" else 4
+    ins = sum(g.m * g.k * g.count for g in gemms) * size if input_bytes is None else input_bytes
+    outs = sum(g.m * g.n * g.count for g in gemms) * size if output_bytes is None else output_bytes
+    work = OpWork(macs=macs, flops=2 * macs + vector_ops, gemms=gemms, vector_ops=vector_ops)
+    return LayerProfile(
+        index=index, name=name, op_type=op_type, domain="", input_shapes=(), input_dtypes=(dtype,),
+        output_shapes=(), output_dtypes=(dtype,), param_names=(), param_count=param_count,
+        param_bytes=param_count * size, input_bytes=ins, output_bytes=outs, macs=macs,
+        flops=work.flops, modelled=True, unmodelled_reason="", work=work)
+
+
+def other_layer(op_type: str, *, index: int = 0, vector_ops: int = 0, is_view: bool = False,
+                modelled: bool = True, nbytes: int = 64) -> LayerProfile:
+    work = OpWork(flops=vector_ops, vector_ops=vector_ops, is_view=is_view) if modelled else None
+    return LayerProfile(
+        index=index, name=f"{op_type.lower()}{index}", op_type=op_type, domain="",
+        input_shapes=(), input_dtypes=("INT8",), output_shapes=(), output_dtypes=("INT8",),
+        param_names=(), param_count=0, param_bytes=0, input_bytes=nbytes, output_bytes=nbytes,
+        macs=0, flops=vector_ops, modelled=modelled,
+        unmodelled_reason="" if modelled else "no cost function", work=work)
+
+
+def make_profile(*layers: LayerProfile, precision: str = "native") -> ModelProfile:
+    layers = tuple(replace(layer, index=i) for i, layer in enumerate(layers))
+    model = LoadedModel(path="test.onnx", name="test", graph=Graph((), {}, (), ()), opsets={},
+                        ir_version=8, producer="test", dim_bindings={}, unbound_dims=())
+    unmodelled = [layer for layer in layers if not layer.modelled]
+    coverage = Coverage(
+        nodes_total=len(layers), nodes_modelled=len(layers) - len(unmodelled),
+        work_modelled=sum(layer.macs for layer in layers), work_unmodelled_estimate=0,
+        unmodelled=tuple(UnmodelledOp(u.op_type, "", 1, u.unmodelled_reason) for u in unmodelled))
+    return ModelProfile(
+        model=model, precision=precision, layers=layers, coverage=coverage,
+        total_macs=sum(layer.macs for layer in layers),
+        total_flops=sum(layer.flops for layer in layers),
+        total_param_count=sum(layer.param_count for layer in layers),
+        total_param_bytes=sum(layer.param_bytes for layer in layers))
+
+
+# ------------------------------------------------------------------ cycle oracle
+
+SIMULATORS = {
+    "weight-stationary": simulate_weight_stationary,
+    "output-stationary": simulate_output_stationary,
+}
+small = st.integers(min_value=1, max_value=9)
+
+
+@settings(max_examples=40, deadline=None)
+@given(m=small, k=small, n=small, rows=st.integers(1, 6), cols=st.integers(1, 6),
+       dataflow=st.sampled_from(sorted(SIMULATORS)), seed=st.integers(0, 2**16))
+def test_cycles_and_utilization_equal_the_cycle_level_simulator(m: int, k: int, n: int, rows: int,
+                                                                cols: int, dataflow: str,
+                                                                seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    a, w = rng.integers(-8, 8, (m, k)), rng.integers(-8, 8, (k, n))
+    sim = SIMULATORS[dataflow](a.tolist(), w.tolist(), rows, cols)
+    np.testing.assert_array_equal(np.array(sim.product), a @ w)  # numpy: the array computed A @ W
+    assert sim.macs == m * k * n
+    target = make_target(dataflow, rows, cols)
+    cost = cost_model(make_profile(gemm_layer((GemmShape(m, k, n),))), target)
+    layer = cost.layers[0]
+    assert layer.cycles == sim.cycles
+    assert layer.utilization == pytest.approx(sim.utilization(rows, cols), rel=1e-12)
+    assert cost.utilization == pytest.approx(sim.utilization(rows, cols), rel=1e-12)
+
+
+@pytest.mark.parametrize("dataflow", sorted(SIMULATORS))
+def test_grouped_gemms_cost_each_group_separately(dataflow: str) -> None:
+    # A grouped conv (count = groups) is ``count`` independent GEMMs, run one after another.
+    a, w = np.ones((5, 3)), np.ones((3, 2))
+    one = SIMULATORS[dataflow](a.tolist(), w.tolist(), 4, 4).cycles
+    assert map_gemm(GemmShape(5, 3, 2, count=6), 4, 4, dataflow).cycles == 6 * one
+
+
+def test_half_rate_precision_doubles_the_cycles() -> None:
+    target = make_target(precisions=MappingProxyType({"fp16": PrecisionSpec(0.5, PJ)}))
+    layer = gemm_layer((GemmShape(16, 8, 8),), dtype="FLOAT16")
+    full = map_gemm(GemmShape(16, 8, 8), 4, 4, "weight-stationary").cycles
+    cost = cost_model(make_profile(layer), target).layers[0]
+    assert cost.cycles == 2 * full
+    # utilization is measured against the array's peak at that precision
+    assert cost.utilization == pytest.approx(16 * 8 * 8 / (16 * 0.5 * 2 * full))
+
+
+# ------------------------------------------------------------------ roofline
+
+def test_latency_follows_the_roofline_and_ridge_point() -> None:
+    # Williams, Waterman & Patterson, CACM 2009: attainable FLOP/s =
+    # min(peak FLOP/s, arithmetic intensity x peak bandwidth); ridge = peak / bandwidth.
+    # A vector array with M x N a multiple of its lanes runs at exactly 100 % utilization,
+    # so its compute time is FLOP / peak and the model must land on the roof.
+    target = make_target("vector", 1, 16, clock_hz=1e9, dram_bytes_per_s=4e9)
+    peak = 2 * 16 * 1e9
+    assert target.peak_flops_per_s("int8") == peak
+    assert target.ridge_flop_per_byte("int8") == pytest.approx(peak / 4e9)
+    for m in (1, 2, 4, 16, 64, 256):  # intensities on both sides of the ridge (8 FLOP/byte)
+        gemm = GemmShape(m, 64, 16)
+        layer = gemm_layer((gemm,))  # parameters fit: fetched once; intensity = 2 M
+        cost = cost_model(make_profile(layer), target).layers[0]
+        dram_bytes = cost.param_dram_bytes + cost.act_dram_bytes
+        intensity = layer.flops / dram_bytes
+        attainable = min(peak, intensity * 4e9)
+        assert layer.flops / cost.latency_s == pytest.approx(attainable, rel=1e-9)
+        assert cost.bound == ("memory" if intensity < peak / 4e9 else "compute")
+
+
+def test_overhead_adds_to_the_roofline_time_and_can_bound_a_layer() -> None:
+    target = make_target(layer_overhead_s=1e-3)
+    cost = cost_model(make_profile(gemm_layer((GemmShape(4, 4, 4),))), target).layers[0]
+    assert cost.latency_s == pytest.approx(max(cost.compute_s, cost.memory_s) + 1e-3)
+    assert cost.bound == "overhead"
+
+
+# ------------------------------------------------------------------ energy
+
+def test_energy_with_published_per_operation_energies_matches_hand_computation() -> None:
+    # One int8 GEMM (M=8, K=4, N=4) on a 4x4 weight-stationary array: one tile.
+    # Hand count: MACs 128; buffer: weights 16 + inputs 8*4*1 + outputs 8*4*(2*1-1) = 80 B,
+    # plus the 16 parameter bytes fetched from DRAM into the buffer = 96 B; DRAM: the 16
+    # parameter bytes once (they fit), no spill. Static power 0.5 W over the latency.
+    target = make_target(static_power_w=0.5)
+    layer = gemm_layer((GemmShape(8, 4, 4),))
+    cost = cost_model(make_profile(layer), target).layers[0]
+    assert cost.param_dram_bytes == 16 and cost.act_dram_bytes == 0
+    assert cost.buffer_bytes == 96
+    assert cost.cycles == 4 + (8 + 4 + 4 - 2)  # preload 4 rows, then M + r + c - 2
+    assert cost.energy.mac_j == pytest.approx(128 * 0.23 * PJ)
+    assert cost.energy.buffer_j == pytest.approx(96 * 1.25 * PJ)
+    assert cost.energy.dram_param_j == pytest.approx(16 * 325 * PJ)
+    assert cost.energy.dram_act_j == 0.0
+    assert cost.energy.static_j == pytest.approx(0.5 * 18e-9)
+    parts = sum(cost.energy.as_dict().values())
+    assert cost.energy.total_j == pytest.approx(parts)
+    assert cost.energy.total_j == pytest.approx(
+        (128 * 0.23 + 96 * 1.25 + 16 * 325) * PJ + 0.5 * 18e-9)
+
+
+def test_fp32_layer_uses_the_fp32_mac_energy() -> None:
+    layer = gemm_layer((GemmShape(8, 4, 4),), dtype="FLOAT")
+    cost = cost_model(make_profile(layer), make_target()).layers[0]
+    assert cost.precision == "fp32"
+    assert cost.energy.mac_j == pytest.approx(128 * 4.6 * PJ)  # Horowitz: 3.7 + 0.9 pJ
+    assert cost.param_dram_bytes == 64
+
+
+def test_model_totals_are_sums_of_layers_and_parts_sum_to_total() -> None:
+    profile = make_profile(gemm_layer((GemmShape(64, 32, 16),)), other_layer("Relu", vector_ops=999),
+                           gemm_layer((GemmShape(1, 64, 64),)))
+    cost = cost_model(profile, make_target(static_power_w=0.1, noc_energy_j_per_byte=0.02 * PJ))
+    assert cost.latency_s == pytest.approx(sum(layer.latency_s for layer in cost.layers))
+    assert cost.energy == sum(layer.energy for layer in cost.layers)
+    assert cost.energy.total_j == pytest.approx(sum(cost.energy.as_dict().values()))
+    assert cost.param_dram_bytes == sum(layer.param_dram_bytes for layer in cost.layers)
+    assert cost.inferences_per_s == pytest.approx(1 / cost.latency_s)
+    assert sum([EnergyBreakdown(mac_j=1.0), EnergyBreakdown(static_j=2.0)]).total_j == 3.0
+
+
+def test_peak_flops_per_joule_pays_mac_energy_and_static_power() -> None:
+    target = make_target(static_power_w=0.0)
+    assert target.peak_flops_per_j("int8") == pytest.approx(2 / HOROWITZ_INT8_MAC_J)
+    with_static = make_target(static_power_w=1.0)
+    flops = with_static.peak_flops_per_s("int8")
+    assert with_static.peak_flops_per_j("int8") == pytest.approx(
+        flops / (flops / 2 * HOROWITZ_INT8_MAC_J + 1.0))
