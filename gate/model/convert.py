@@ -1,0 +1,301 @@
+"""Convert an (already inferred) ONNX ``ModelProto`` into the immutable ``gate.model.graph`` types.
+
+Reads shapes and dtypes only. The one exception is ``Node.const_values``: integer
+and boolean constants of at most ``CONST_VALUE_LIMIT`` elements stored inline
+(shape tensors, axes, trip counts, conditions) are read, because cost functions
+need them; a tensor with external data is never read.
+
+Parameters (``Node.param_inputs``) are inputs fed by an initializer (of any dtype),
+or by a ``Constant`` node whose value is a floating tensor or has more than
+``CONST_VALUE_LIMIT`` elements (some exporters emit weights as Constant nodes);
+small integer Constants are metadata and land in ``const_values`` instead.
+
+Dims: an int, a symbolic name (``str``), or ``UNKNOWN_DIM`` ("?") when neither a
+value nor a name is known; a negative dim value is treated as unknown.
+"""
+
+from __future__ import annotations
+
+import os
+from collections import ChainMap
+from pathlib import Path
+from typing import Any, Iterator
+
+import onnx
+from onnx import AttributeProto, TensorProto, helper, numpy_helper
+
+from gate.errors import InputError
+from gate.model.graph import FLOAT_DTYPES, Graph, Node, TensorInfo
+from gate.model.order import topological_order
+
+UNKNOWN_DIM = "?"
+CONST_VALUE_LIMIT = 64
+MAX_SUBGRAPH_DEPTH = 64
+
+_INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", "INT64",
+                         "UINT64", "BOOL", "INT4", "UINT4"})
+_Scope = ChainMap  # name -> value, innermost scope first
+
+
+def dtype_name(elem_type: int) -> str:
+    """ONNX TensorProto data type name, or "UNDEFINED" for an unknown enum value."""
+    try:
+        return TensorProto.DataType.Name(elem_type)
+    except ValueError:
+        return "UNDEFINED"
+
+
+def _dims(shape: onnx.TensorShapeProto) -> tuple[int | str, ...]:
+    out: list[int | str] = []
+    for dim in shape.dim:
+        if dim.HasField("dim_value") and dim.dim_value >= 0:
+            out.append(int(dim.dim_value))
+        elif dim.HasField("dim_param") and dim.dim_param:
+            out.append(dim.dim_param)
+        else:
+            out.append(UNKNOWN_DIM)
+    return tuple(out)
+
+
+def value_info(value: onnx.ValueInfoProto) -> TensorInfo:
+    """A ValueInfoProto as TensorInfo; non-tensor types (sequence, map, optional) have no shape."""
+    kind = value.type.WhichOneof("value")
+    if kind not in ("tensor_type", "sparse_tensor_type"):
+        return TensorInfo(value.name, None, "UNDEFINED")
+    tensor = getattr(value.type, kind)
+    shape = _dims(tensor.shape) if tensor.HasField("shape") else None
+    return TensorInfo(value.name, shape, dtype_name(tensor.elem_type))
+
+
+def tensor_info(tensor: TensorProto, name: str | None = None) -> TensorInfo:
+    """An initializer's (or tensor attribute's) TensorInfo from its dims and dtype only."""
+    return TensorInfo(tensor.name if name is None else name,
+                      tuple(int(d) for d in tensor.dims), dtype_name(tensor.data_type))
+
+
+def _small_int_values(tensor: TensorProto) -> tuple[int, ...] | None:
+    """Values of a small inline integer/boolean tensor, else None (weights are never read)."""
+    if dtype_name(tensor.data_type) not in _INT_DTYPES:
+        return None
+    if tensor.data_location == TensorProto.EXTERNAL:
+        return None
+    count = 1
+    for dim in tensor.dims:
+        count *= int(dim)
+    if count > CONST_VALUE_LIMIT or count < 0:
+        return None
+    try:
+        return tuple(int(v) for v in numpy_helper.to_array(tensor).reshape(-1).tolist())
+    except Exception:  # noqa: BLE001  (malformed inline data: simply not known statically)
+        return None
+
+
+class _Converter:
+    """Converts one model; holds the per-model state (warnings, used layer names)."""
+
+    def __init__(self, path: str) -> None:
+        self.path = path
+        self.warnings: list[str] = []
+
+    def graph(self, proto: onnx.GraphProto, outer: _Scope | None, depth: int) -> Graph:
+        if depth > MAX_SUBGRAPH_DEPTH:
+            raise InputError(f"subgraphs nested deeper than {MAX_SUBGRAPH_DEPTH} levels; "
+                             f"simplify the model's control flow", self.path)
+        infos: dict[str, TensorInfo] = {}
+        params: dict[str, TensorInfo] = {}
+        consts: dict[str, tuple[int, ...]] = {}
+        initializers = self._initializers(proto, infos, params, consts)
+        inputs = tuple(value_info(v) for v in proto.input if v.name not in initializers)
+        for value in (*proto.input, *proto.value_info, *proto.output):
+            if value.name not in initializers or value.type.tensor_type.HasField("shape"):
+                infos.setdefault(value.name, value_info(value))
+        for node in proto.node:  # every produced name is in scope, shaped or not
+            for name in node.output:
+                if name and name not in infos:
+                    infos[name] = TensorInfo(name, None, "UNDEFINED")
+        self._constant_nodes(proto, params, consts)
+        local_known = {v.name for v in proto.input} | set(initializers)
+        outer_infos = None if outer is None else outer["infos"]
+        scope = _Scope(infos) if outer_infos is None else outer_infos.new_child(infos)
+        param_scope = _Scope(params) if outer is None else outer["params"].new_child(params)
+        const_scope = _Scope(consts) if outer is None else outer["consts"].new_child(consts)
+        order = topological_order(
+            proto, lambda name: name in local_known or (outer_infos is not None
+                                                         and name in outer_infos), self.path)
+        ctx = {"infos": scope, "params": param_scope, "consts": const_scope}
+        used_names: set[str] = set()
+        nodes = tuple(self._node(index, proto.node[i], ctx, depth, used_names)
+                      for index, i in enumerate(order))
+        return Graph(nodes=nodes, initializers=initializers, inputs=inputs,
+                     outputs=tuple(scope.get(v.name) or value_info(v) for v in proto.output))
+
+    def _initializers(self, proto: onnx.GraphProto, infos: dict[str, TensorInfo],
+                      params: dict[str, TensorInfo],
+                      consts: dict[str, tuple[int, ...]]) -> dict[str, TensorInfo]:
+        found: dict[str, TensorInfo] = {}
+        duplicates: dict[str, int] = {}
+        pairs = [(t, tensor_info(t)) for t in proto.initializer]
+        pairs += [(s.values, tensor_info(s.values, s.values.name)) for s in proto.sparse_initializer]
+        for index, (tensor, info) in enumerate(pairs):
+            if index >= len(proto.initializer):  # sparse: the dense shape is the tensor's shape
+                sparse = proto.sparse_initializer[index - len(proto.initializer)]
+                info = TensorInfo(info.name, tuple(int(d) for d in sparse.dims), info.dtype)
+            previous = found.get(info.name)
+            if previous is not None:
+                if previous != info:
+                    raise InputError(f"two initializers named '{info.name}' with different "
+                                     f"shapes or types; re-export the model", self.path)
+                duplicates[info.name] = duplicates.get(info.name, 1) + 1
+                continue
+            found[info.name] = info
+            values = _small_int_values(tensor)
+            if values is not None:
+                consts[info.name] = values
+        for name, count in duplicates.items():
+            self.warnings.append(f"{count} initializers share the name '{name}' (identical; "
+                                 f"counted once)")
+        infos.update(found)
+        params.update(found)
+        return found
+
+    def _constant_nodes(self, proto: onnx.GraphProto, params: dict[str, TensorInfo],
+                        consts: dict[str, tuple[int, ...]]) -> None:
+        for node in proto.node:
+            if node.op_type != "Constant" or node.domain not in ("", "ai.onnx") or not node.output:
+                continue
+            for attribute in node.attribute:
+                if attribute.name == "value" and attribute.type == AttributeProto.TENSOR:
+                    info = tensor_info(attribute.t, node.output[0])
+                    values = _small_int_values(attribute.t)
+                    if values is not None:
+                        consts[node.output[0]] = values
+                    elif info.dtype in FLOAT_DTYPES or (info.numel or 0) > CONST_VALUE_LIMIT:
+                        params[node.output[0]] = info
+                elif attribute.name == "value_int":
+                    consts[node.output[0]] = (int(attribute.i),)
+                elif attribute.name == "value_ints" and len(attribute.ints) <= CONST_VALUE_LIMIT:
+                    consts[node.output[0]] = tuple(int(v) for v in attribute.ints)
+
+    def _node(self, index: int, proto: onnx.NodeProto, ctx: dict[str, _Scope], depth: int,
+              used_names: set[str]) -> Node:
+        infos, params, consts = ctx["infos"], ctx["params"], ctx["consts"]
+        inputs = tuple(None if not name else infos.get(name) or TensorInfo(name, None, "UNDEFINED")
+                       for name in proto.input)
+        outputs = tuple(infos.get(name) or TensorInfo(name, None, "UNDEFINED") if name
+                        else TensorInfo("", None, "UNDEFINED") for name in proto.output)
+        attributes: dict[str, Any] = {}
+        subgraphs: dict[str, Graph] = {}
+        for attribute in proto.attribute:
+            if attribute.type == AttributeProto.GRAPH:
+                subgraphs[attribute.name] = self.graph(attribute.g, ctx, depth + 1)
+            elif attribute.type == AttributeProto.GRAPHS:
+                for i, sub in enumerate(attribute.graphs):
+                    subgraphs[f"{attribute.name}[{i}]"] = self.graph(sub, ctx, depth + 1)
+            else:
+                attributes[attribute.name] = _plain_attribute(attribute)
+        return Node(
+            index=index,
+            name=_unique_name(proto.name, proto.op_type, index, used_names),
+            op_type=proto.op_type,
+            domain="" if proto.domain == "ai.onnx" else proto.domain,
+            inputs=inputs,
+            outputs=outputs,
+            attributes=attributes,
+            param_inputs=frozenset(i for i, n in enumerate(proto.input) if n and n in params),
+            subgraphs=subgraphs,
+            const_values={i: consts[n] for i, n in enumerate(proto.input) if n and n in consts},
+        )
+
+
+def _unique_name(name: str, op_type: str, index: int, used: set[str]) -> str:
+    """The node's name; unnamed nodes get ``<op_type>_<index>``, repeats a ``~N`` suffix."""
+    base = name or f"{op_type}_{index}"
+    candidate, n = base, 1
+    while candidate in used:
+        n += 1
+        candidate = f"{base}~{n}"
+    used.add(candidate)
+    return candidate
+
+
+def _plain_attribute(attribute: AttributeProto) -> Any:
+    """A non-graph attribute as a plain Python value (tensors as TensorInfo, never values)."""
+    if attribute.type == AttributeProto.TENSOR:
+        return tensor_info(attribute.t)
+    if attribute.type == AttributeProto.SPARSE_TENSOR:
+        return TensorInfo(attribute.sparse_tensor.values.name,
+                          tuple(int(d) for d in attribute.sparse_tensor.dims),
+                          dtype_name(attribute.sparse_tensor.values.data_type))
+    if attribute.type == AttributeProto.TENSORS:
+        return [tensor_info(t) for t in attribute.tensors]
+    if attribute.type in (AttributeProto.TYPE_PROTO, AttributeProto.TYPE_PROTOS):
+        return str(helper.get_attribute_value(attribute))
+    value = helper.get_attribute_value(attribute)
+    if isinstance(value, bytes):
+        return value.decode("utf-8", errors="replace")
+    if isinstance(value, list):
+        return [v.decode("utf-8", errors="replace") if isinstance(v, bytes) else v for v in value]
+    return value
+
+
+def convert_model(proto: onnx.ModelProto, path: str) -> tuple[Graph, list[str]]:
+    """The model's main graph and the warnings found while converting it."""
+    converter = _Converter(path)
+    graph = converter.graph(proto.graph, None, 0)
+    return graph, converter.warnings
+
+
+def _all_graph_protos(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
+    stack = [graph]
+    while stack:
+        current = stack.pop()
+        yield current
+        for node in current.node:
+            for attribute in node.attribute:
+                if attribute.HasField("g"):
+                    stack.append(attribute.g)
+                stack.extend(attribute.graphs)
+
+
+def collect_symbolic_dims(graph: onnx.GraphProto) -> set[str]:
+    """Every ``dim_param`` declared on a graph input, output or value_info (all scopes)."""
+    names: set[str] = set()
+    for current in _all_graph_protos(graph):
+        for value in (*current.input, *current.output, *current.value_info):
+            for dim in value.type.tensor_type.shape.dim:
+                if dim.HasField("dim_param") and dim.dim_param:
+                    names.add(dim.dim_param)
+    return names
+
+
+def graph_symbolic_dims(graph: Graph) -> set[str]:
+    """Every symbolic dim left on a tensor of ``graph`` or its subgraphs."""
+    names: set[str] = set()
+    stack = [graph]
+    while stack:
+        current = stack.pop()
+        for tensor in current.inputs:
+            names.update(tensor.symbolic_dims())
+        for node in current.nodes:
+            for tensor in (*node.inputs, *node.outputs):
+                if tensor is not None:
+                    names.update(tensor.symbolic_dims())
+            stack.extend(node.subgraphs.values())
+    return names
+
+
+def external_data_warnings(graph: onnx.GraphProto, folder: Path) -> list[str]:
+    """Warnings for external-data locations outside the model's folder (never opened)."""
+    warnings: list[str] = []
+    root = os.path.realpath(folder)
+    for current in _all_graph_protos(graph):
+        for tensor in current.initializer:
+            if tensor.data_location != TensorProto.EXTERNAL:
+                continue
+            location = next((e.value for e in tensor.external_data if e.key == "location"), "")
+            target = os.path.realpath(os.path.join(root, location))
+            if os.path.isabs(location) or os.path.commonpath([root, target]) != root:
+                warnings.append(f"initializer '{tensor.name}' points its external data outside "
+                                f"the model's folder ('{location}'); not opened (roofgate "
+                                f"reads no weights), but do not ship such a model")
+    return warnings

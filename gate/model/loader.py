@@ -1,0 +1,209 @@
+"""Loading an ONNX file for profiling: validate, inline, bind dims, infer shapes, convert.
+
+Weights are never read: the file is parsed with ``load_external_data=False`` and
+every size comes from an initializer's dims and dtype. The steps, in order:
+
+1. refuse what is not a model, with one line naming the file and the remedy
+   (missing, empty, Git LFS pointer, truncated, random bytes, a protobuf that is
+   not a model, no graph, an opset or IR version newer than the installed onnx);
+2. inline local functions (their nodes become ordinary layers);
+3. bind symbolic dims (``--dim batch=1``) on every declared tensor shape;
+4. run onnx shape inference with data propagation (files over 2 GB through the
+   path-based API into a temporary file: the input is never overwritten);
+5. convert to the immutable ``gate.model.graph`` types (``gate.model.convert``).
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+from typing import Mapping
+
+import onnx
+import onnx.inliner
+import onnx.shape_inference
+from google.protobuf.message import DecodeError
+
+from gate.errors import InputError
+from gate.model.convert import collect_symbolic_dims, convert_model, external_data_warnings
+from gate.model.graph import LoadedModel
+
+# Files at least this large go through the path-based shape inference (protobuf's
+# in-memory serialisation limit is 2 GiB).
+PATH_INFERENCE_BYTES = 2 * 1024**3
+
+_LFS_MAGIC = b"version https://git-lfs"
+_VALIDATE_REMEDY = "re-export the model, or check the file is the .onnx model itself"
+
+
+def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = None) -> LoadedModel:
+    """Load ``path`` for profiling, binding the symbolic dims in ``dims``; never reads weights.
+
+    Raises ``InputError`` (exit 2) for anything that is not a usable ONNX model.
+    """
+    text_path = os.fspath(path)
+    bindings = _check_bindings(dict(dims or {}), text_path)
+    size_bytes = _check_file(text_path)
+    proto = _parse(text_path)
+    _validate(proto, text_path)
+    warnings = list(external_data_warnings(proto.graph, Path(text_path).resolve().parent))
+    declared = collect_symbolic_dims(proto.graph)
+    unused = sorted(set(bindings) - declared)
+    warnings.extend(f"--dim {name}={bindings[name]}: the model declares no symbolic dim "
+                    f"'{name}' (binding ignored)" for name in unused)
+    if size_bytes >= PATH_INFERENCE_BYTES:
+        proto, inference_warning = _infer_by_path(text_path, proto)
+        proto = _inline(proto, text_path)
+        _bind_dims(proto.graph, bindings)
+    else:
+        proto = _inline(proto, text_path)
+        _bind_dims(proto.graph, bindings)
+        proto, inference_warning = _infer_in_memory(proto)
+    if inference_warning:
+        warnings.append(inference_warning)
+    graph, more_warnings = convert_model(proto, text_path)
+    warnings.extend(more_warnings)
+    return LoadedModel(
+        path=text_path,
+        name=proto.graph.name or Path(text_path).stem,
+        graph=graph,
+        opsets=_opsets(proto),
+        ir_version=int(proto.ir_version),
+        producer=" ".join(p for p in (proto.producer_name, proto.producer_version) if p),
+        dim_bindings=bindings,
+        unbound_dims=_unbound_dims(graph),
+        warnings=tuple(warnings),
+    )
+
+
+def _check_bindings(dims: dict[str, int], path: str) -> dict[str, int]:
+    for name, value in dims.items():
+        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+            raise InputError(f"dim binding {name}={value!r} is not a non-negative integer; "
+                             f"use --dim {name}=N", path)
+    return dict(sorted(dims.items()))
+
+
+def _check_file(path: str) -> int:
+    """The file's size; refuses missing, empty and Git LFS pointer files."""
+    try:
+        size_bytes = os.path.getsize(path)
+        with open(path, "rb") as handle:
+            head = handle.read(len(_LFS_MAGIC))
+    except FileNotFoundError:
+        raise InputError("model file not found; check the path", path) from None
+    except IsADirectoryError:
+        raise InputError("is a directory, not an ONNX model file; pass the .onnx file", path) from None
+    except OSError as exc:
+        raise InputError(f"cannot read the model file ({exc.strerror}); check its permissions",
+                         path) from None
+    if size_bytes == 0:
+        raise InputError("model file is empty (0 bytes); re-export it or restore it from git",
+                         path)
+    if head.startswith(_LFS_MAGIC):
+        raise InputError("is a Git LFS pointer, not the model; run `git lfs pull` (in CI, "
+                         "check out with LFS enabled)", path)
+    return size_bytes
+
+
+def _parse(path: str) -> onnx.ModelProto:
+    try:
+        return onnx.load(path, load_external_data=False)
+    except DecodeError as exc:
+        hint = ("subgraphs nested too deeply for protobuf" if "Depth" in str(exc)
+                else "truncated, corrupt, or not an ONNX file")
+        raise InputError(f"cannot parse as an ONNX model ({hint}); {_VALIDATE_REMEDY}",
+                         path) from None
+    except (ValueError, RuntimeError, OSError) as exc:
+        raise InputError(f"cannot parse as an ONNX model ({type(exc).__name__}); "
+                         f"{_VALIDATE_REMEDY}", path) from None
+
+
+def _validate(proto: onnx.ModelProto, path: str) -> None:
+    """Refuse protobufs that parsed but are not (complete) models."""
+    if proto.ir_version <= 0:
+        raise InputError(f"not an ONNX model (no IR version: another protobuf, random bytes, "
+                         f"or truncated); {_VALIDATE_REMEDY}", path)
+    if not proto.HasField("graph"):
+        raise InputError(f"ONNX model has no graph (truncated or not a model); "
+                         f"{_VALIDATE_REMEDY}", path)
+    if not proto.opset_import:
+        raise InputError(f"ONNX model declares no opset (truncated?); {_VALIDATE_REMEDY}", path)
+    if proto.ir_version > onnx.IR_VERSION:
+        raise InputError(f"model IR version {proto.ir_version} is newer than the installed onnx "
+                         f"{onnx.__version__} supports (IR {onnx.IR_VERSION}); upgrade onnx "
+                         f"(pip install -U onnx)", path)
+    known = onnx.defs.onnx_opset_version()
+    for opset in proto.opset_import:
+        if opset.domain in ("", "ai.onnx") and opset.version > known:
+            raise InputError(f"model uses ai.onnx opset {opset.version}, newer than the installed "
+                             f"onnx {onnx.__version__} knows (up to {known}); upgrade onnx "
+                             f"(pip install -U onnx)", path)
+
+
+def _inline(proto: onnx.ModelProto, path: str) -> onnx.ModelProto:
+    if not proto.functions:
+        return proto
+    try:
+        return onnx.inliner.inline_local_functions(proto)
+    except Exception as exc:  # noqa: BLE001  (the C++ inliner raises assorted types)
+        raise InputError(f"cannot inline the model's local functions ({type(exc).__name__}: "
+                         f"{str(exc)[:200]}); check the model with onnx.checker", path) from None
+
+
+def _bind_dims(graph: onnx.GraphProto, bindings: Mapping[str, int]) -> None:
+    """Replace bound ``dim_param``s by their values on every declared shape (all scopes)."""
+    if not bindings:
+        return
+    stack = [graph]
+    while stack:
+        current = stack.pop()
+        for value in (*current.input, *current.output, *current.value_info):
+            if not value.type.HasField("tensor_type"):
+                continue
+            for dim in value.type.tensor_type.shape.dim:
+                if dim.HasField("dim_param") and dim.dim_param in bindings:
+                    dim.dim_value = bindings[dim.dim_param]
+        for node in current.node:
+            for attribute in node.attribute:
+                if attribute.HasField("g"):
+                    stack.append(attribute.g)
+                stack.extend(attribute.graphs)
+
+
+def _infer_in_memory(proto: onnx.ModelProto) -> tuple[onnx.ModelProto, str]:
+    try:
+        return onnx.shape_inference.infer_shapes(proto, data_prop=True), ""
+    except Exception as exc:  # noqa: BLE001  (inference failure leaves declared shapes only)
+        return proto, _inference_failed(exc)
+
+
+def _infer_by_path(path: str, proto: onnx.ModelProto) -> tuple[onnx.ModelProto, str]:
+    """Shape inference for models too large to serialise in memory, into a temporary file."""
+    with tempfile.TemporaryDirectory(prefix="roofgate-infer-") as folder:
+        out_path = os.path.join(folder, "inferred.onnx")
+        if os.path.abspath(out_path) == os.path.abspath(path):  # never overwrite the input
+            raise InputError("internal guard: shape inference output equals the input", path)
+        try:
+            onnx.shape_inference.infer_shapes_path(path, out_path, data_prop=True)
+            return onnx.load(out_path, load_external_data=False), ""
+        except Exception as exc:  # noqa: BLE001
+            return proto, _inference_failed(exc)
+
+
+def _inference_failed(exc: Exception) -> str:
+    detail = " ".join(str(exc).split())[:200]
+    return (f"onnx shape inference failed ({type(exc).__name__}: {detail}); "
+            f"only the shapes declared in the file are used")
+
+
+def _opsets(proto: onnx.ModelProto) -> dict[str, int]:
+    return {("" if o.domain == "ai.onnx" else o.domain): int(o.version)
+            for o in proto.opset_import}
+
+
+def _unbound_dims(graph: object) -> tuple[str, ...]:
+    from gate.model.convert import graph_symbolic_dims
+
+    return tuple(sorted(d for d in graph_symbolic_dims(graph) if d != "?"))  # type: ignore[arg-type]
