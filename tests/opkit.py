@@ -7,7 +7,8 @@ the ``Node`` with the inferred output shapes, so tests see what the loader will.
 
 from __future__ import annotations
 
-from typing import Any, Mapping, Sequence
+from typing import Any
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 import onnx
@@ -67,17 +68,12 @@ def _plain(value: Any) -> Any:
     return value
 
 
-def inferred_node(op_type: str, inputs: Sequence[Sequence[int] | None],
-                  attrs: Mapping[str, Any] | None = None, params: Sequence[int] = (),
-                  constants: Mapping[int, np.ndarray] | None = None, n_outputs: int = 1,
-                  dtypes: Mapping[int, int] | None = None, opset: int = OPSET,
-                  domain: str = "") -> Node:
-    """Build, shape-infer (strict) and convert a one-node model.
-
-    ``inputs`` are shapes (None = omitted optional input); ``constants`` become
-    initializers with those values (and ``const_values`` when integral and small);
-    ``params`` are input positions reported as parameters.
-    """
+def one_node_model(op_type: str, inputs: Sequence[Sequence[int] | None],
+                   attrs: Mapping[str, Any] | None = None,
+                   constants: Mapping[int, np.ndarray] | None = None, n_outputs: int = 1,
+                   dtypes: Mapping[int, int] | None = None, opset: int = OPSET,
+                   domain: str = "") -> onnx.ModelProto:
+    """A model of one node; input i is graph input ``x{i}`` (or an initializer if constant)."""
     constants = dict(constants or {})
     names = [f"x{i}" if shape is not None else "" for i, shape in enumerate(inputs)]
     graph_inputs, inits = [], []
@@ -93,17 +89,44 @@ def inferred_node(op_type: str, inputs: Sequence[Sequence[int] | None],
     onnx_node = helper.make_node(op_type, names, outs, domain=domain, **dict(attrs or {}))
     out_infos = [helper.make_tensor_value_info(o, TensorProto.UNDEFINED, None) for o in outs]
     g = helper.make_graph([onnx_node], "t", graph_inputs, out_infos, inits)
-    model = helper.make_model(g, opset_imports=[helper.make_opsetid("", opset)])
+    return helper.make_model(g, opset_imports=[helper.make_opsetid("", opset)])
+
+
+def node_from_model(model: onnx.ModelProto, params: Sequence[int] = ()) -> Node:
+    """Shape-infer (strict) a one-node model and convert its node as the loader would."""
     model = onnx.shape_inference.infer_shapes(model, strict_mode=True)
+    onnx_node = model.graph.node[0]
     known = {v.name: _tensor_info(v) for v in
              [*model.graph.input, *model.graph.value_info, *model.graph.output]}
-    for init in model.graph.initializer:
+    inits = {init.name: init for init in model.graph.initializer}
+    for init in inits.values():
         known[init.name] = TensorInfo(init.name, tuple(init.dims),
                                       TensorProto.DataType.Name(init.data_type))
+    names = list(onnx_node.input)
     ins = tuple(known[n] if n else None for n in names)
-    const_values = {i: tuple(int(v) for v in np.asarray(a).ravel()) for i, a in constants.items()
-                    if np.asarray(a).dtype.kind in "iub" and np.asarray(a).size <= 64}
-    attributes = {a.name: helper.get_attribute_value(a) for a in onnx_node.attribute}
-    attributes = {k: _plain(v) for k, v in attributes.items()}
-    return Node(0, "n", op_type, domain, ins, tuple(known[o] for o in outs), attributes,
-                frozenset(params) | frozenset(constants), {}, const_values)
+    const_values = {}
+    for i, name in enumerate(names):
+        if name in inits:
+            value = numpy_helper.to_array(inits[name])
+            if value.dtype.kind in "iub" and value.size <= 64:
+                const_values[i] = tuple(int(v) for v in value.ravel())
+    attributes = {a.name: _plain(helper.get_attribute_value(a)) for a in onnx_node.attribute}
+    param_positions = frozenset(params) | frozenset(i for i, n in enumerate(names) if n in inits)
+    return Node(0, "n", onnx_node.op_type, onnx_node.domain, ins,
+                tuple(known[o] for o in onnx_node.output), attributes, param_positions, {},
+                const_values)
+
+
+def inferred_node(op_type: str, inputs: Sequence[Sequence[int] | None],
+                  attrs: Mapping[str, Any] | None = None, params: Sequence[int] = (),
+                  constants: Mapping[int, np.ndarray] | None = None, n_outputs: int = 1,
+                  dtypes: Mapping[int, int] | None = None, opset: int = OPSET,
+                  domain: str = "") -> Node:
+    """Build, shape-infer (strict) and convert a one-node model.
+
+    ``inputs`` are shapes (None = omitted optional input); ``constants`` become
+    initializers with those values (and ``const_values`` when integral and small);
+    ``params`` are input positions reported as parameters.
+    """
+    model = one_node_model(op_type, inputs, attrs, constants, n_outputs, dtypes, opset, domain)
+    return node_from_model(model, params)

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from dataclasses import replace
 from math import prod
-from typing import Iterable, Sequence
+from collections.abc import Iterable, Sequence
 
 from gate.model.graph import Node, TensorInfo
 from gate.ops.registry import GemmShape, OpWork, Unmodelled

@@ -7,7 +7,7 @@ formulas are the fallback and are tested against ``onnx.shape_inference``.
 from __future__ import annotations
 
 from math import ceil
-from typing import Sequence
+from collections.abc import Sequence
 
 from gate.model.graph import Node
 from gate.ops._common import int_attr_list, str_attr

@@ -10,7 +10,7 @@ operands, a diagonal, an index summed out of one operand only) are Unmodelled.
 from __future__ import annotations
 
 from math import prod
-from typing import Sequence
+from collections.abc import Sequence
 
 from gate.ops._common import arithmetic, movement
 from gate.ops.registry import OpWork, Unmodelled
@@ -90,7 +90,6 @@ def _contraction(inputs: list[str], output: str, sizes: dict[str, int],
     contracted = [c for c in left if c in right and c not in output]
     rows = [c for c in left if c not in right]
     cols = [c for c in right if c not in left]
-    size = lambda letters: prod(sizes[c] for c in letters)  # noqa: E731
-    gemm = orient_gemm(size(rows), size(contracted), size(cols), size(batch),
-                       bool(params[0]), bool(params[1]), fold_batch=not batch)
+    m, k, n, count = (prod(sizes[c] for c in group) for group in (rows, contracted, cols, batch))
+    gemm = orient_gemm(m, k, n, count, bool(params[0]), bool(params[1]), fold_batch=not batch)
     return arithmetic(0, macs=gemm.macs, gemms=(gemm,))

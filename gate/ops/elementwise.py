@@ -10,7 +10,7 @@ transcendental takes). Comparisons and logic ops count as operations too, so
 
 from __future__ import annotations
 
-from typing import Mapping
+from collections.abc import Mapping
 
 from gate.model.graph import Node
 from gate.ops._common import arithmetic, elementwise_output_elements, movement, str_attr

@@ -9,7 +9,7 @@ input need not be known (common practice, no source).
 
 from __future__ import annotations
 
-from typing import Mapping
+from collections.abc import Mapping
 
 from gate.model.graph import Node
 from gate.ops._common import arithmetic, input_shape, numel, output_shape
