@@ -7,8 +7,8 @@ the ``Node`` with the inferred output shapes, so tests see what the loader will.
 
 from __future__ import annotations
 
-from typing import Any
 from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 import onnx

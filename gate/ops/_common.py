@@ -7,9 +7,9 @@ so no cost function ever turns "unknown" into zero.
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Sequence
 from dataclasses import replace
 from math import prod
-from collections.abc import Iterable, Sequence
 
 from gate.model.graph import Node, TensorInfo
 from gate.ops.registry import GemmShape, OpWork, Unmodelled

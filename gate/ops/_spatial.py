@@ -6,8 +6,8 @@ formulas are the fallback and are tested against ``onnx.shape_inference``.
 
 from __future__ import annotations
 
-from math import ceil
 from collections.abc import Sequence
+from math import ceil
 
 from gate.model.graph import Node
 from gate.ops._common import int_attr_list, str_attr

@@ -9,8 +9,8 @@ operands, a diagonal, an index summed out of one operand only) are Unmodelled.
 
 from __future__ import annotations
 
-from math import prod
 from collections.abc import Sequence
+from math import prod
 
 from gate.ops._common import arithmetic, movement
 from gate.ops.registry import OpWork, Unmodelled
