@@ -1,0 +1,121 @@
+"""Markdown pull-request comment: golden file, escaping of hostile names, the size limit.
+
+Escaping checked against the GitHub Flavored Markdown spec (tables split cells
+on unescaped ``|``, section 4.10; backslash escapes, section 6.1; raw HTML,
+section 6.6) and the 65,536-character comment limit of common code hosts
+(documented limit of the GitHub REST API for issue comments; from memory).
+"""
+
+from __future__ import annotations
+
+import re
+
+from gate.report.markdown import COMMENT_LIMIT_CHARS, MARKER, comment_size, render
+from gate.result import FAIL, GateResult, ModelError
+from tests.recordkit import (
+    HOSTILE_NAME, assert_golden, demo_result, entry, finding, layer, result, run, verdict,
+)
+
+_UNESCAPED_PIPE = re.compile(r"(?<!\\)\|")
+
+
+def _table_rows(text: str) -> list[str]:
+    return [line for line in text.splitlines() if line.startswith("|")]
+
+
+def test_demo_golden() -> None:
+    assert_golden("markdown_demo.md", render(demo_result()))
+
+
+def test_marker_verdict_and_red_line_for_unanalysable_model() -> None:
+    text = render(demo_result())
+    lines = text.splitlines()
+    assert lines[0] == MARKER
+    assert lines[2].startswith("## ") and "could not check every model" in lines[2]
+    assert any("could not analyse" in line and "models/broken&lt;b&gt;\\|.onnx" in line
+               for line in lines)
+
+
+def test_hostile_names_cannot_break_tables_html_or_mention() -> None:
+    text = render(demo_result())
+    for row in _table_rows(text):
+        header_cells = len(_UNESCAPED_PIPE.findall(row))
+        assert header_cells in (8, 12, 5), row  # every row keeps its table's column count
+    assert "<img" not in text and "@all" not in text
+    assert text.count("<details>") == text.count("</details>") == 2
+    for raw in ("\r", "\x00", "\x1b", "\x85"):
+        assert raw not in text
+    assert "\\\\r\\\\n\\# head" not in text  # "# head" cannot start a heading line
+    assert all(not line.startswith("# head") for line in text.splitlines())
+
+
+def test_same_column_count_in_every_row_of_each_table() -> None:
+    text = render(demo_result())
+    blocks = re.split(r"\n(?!\|)", text)
+    for block in blocks:
+        rows = [r for r in block.splitlines() if r.startswith("|")]
+        counts = {len(_UNESCAPED_PIPE.findall(r)) for r in rows}
+        assert len(counts) <= 1, block
+
+
+def test_warnings_only_pass_with_a_warning_mark() -> None:
+    warn = verdict("min-util", status=FAIL, severity="warning",
+                   findings=(finding(metric="utilization", value=0.1, limit=0.3),))
+    text = render(result(entry(run(), run(), (warn,))))
+    assert "roofgate: passed" in text and "1 warning" in text
+    assert "| min-util | \u26a0\ufe0f warning | head/gemm | utilization | 10.0% | 30.0% |" in text
+
+
+def test_no_models_changed_renders_clearly() -> None:
+    text = render(result(notes=("no models changed between main and HEAD",)))
+    assert "roofgate: nothing to check" in text
+    assert "> no models changed between main and HEAD" in text
+    assert "| Model |" not in text
+
+
+def test_unanalysable_model_is_red_even_when_allowed() -> None:
+    res = result(entry(run(), run()), errors=(ModelError("models/x.onnx", "truncated"),))
+    allowed = GateResult(res.command, res.policies, res.entries, res.errors, res.notes, True)
+    text = render(allowed)
+    assert "\U0001f6d1 **could not analyse** models/x.onnx (let through by the policy)" in text
+
+
+def _big_result(models: int = 120, layers: int = 60, findings: int = 25) -> GateResult:
+    entries = []
+    for m in range(models):
+        base_layers = tuple(layer(f"block{i}/conv_{'x' * 40}", macs=1000) for i in range(layers))
+        head_layers = tuple(layer(f"block{i}/conv_{'x' * 40}", macs=1000 + i, latency_s=2e-5)
+                            for i in range(layers))
+        failing = m % 3 == 0
+        verdicts = (verdict("max-param", model=f"models/m{m:03d}.onnx",
+                            status=FAIL if failing else "pass",
+                            findings=tuple(finding(f"block{i}/conv") for i in range(findings))
+                            if failing else ()),)
+        entries.append(entry(run(f"models/m{m:03d}.onnx", layers=head_layers),
+                             run(f"models/m{m:03d}.onnx", layers=base_layers), verdicts))
+    return result(*entries)
+
+
+def test_huge_result_fits_the_comment_limit_and_says_what_was_left_out() -> None:
+    big = _big_result()
+    text = render(big)
+    assert comment_size(text) <= COMMENT_LIMIT_CHARS
+    match = re.search(r"Trimmed to fit the 65,536-character comment limit: (\d+) rows left out",
+                      text)
+    assert match and int(match.group(1)) > 0
+    # The most important rows survive: every failing model is in the summary table.
+    for m in range(0, 120, 3):
+        assert f"| models/m{m:03d}.onnx |" in text
+    assert text.count("<details>") == text.count("</details>")
+
+
+def test_small_budget_still_gives_a_valid_report() -> None:
+    text = render(_big_result(models=30), budget=2_000)
+    assert comment_size(text) <= 2_000
+    assert text.startswith(MARKER) and "roofgate: failed" in text
+    assert "left out" in text or "cut to fit" in text
+
+
+def test_emoji_count_as_two_code_units() -> None:
+    assert comment_size("\u274c") == 1 and comment_size("\U0001f6d1") == 2
+    assert comment_size(HOSTILE_NAME) == len(HOSTILE_NAME)
