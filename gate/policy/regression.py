@@ -1,0 +1,119 @@
+"""The max_regression check: a metric may not get worse than the baseline by more than allowed.
+
+Model level compares the totals; layer level compares layers the diff matched
+(by name, or by signature when a layer was renamed). Added and removed layers
+are not regressions of an existing layer and are ignored here: their cost
+shows in the model totals, which a model-level rule limits.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from gate.policy import spec
+from gate.policy.rules import Breach, Outcome, remedy_of
+from gate.policy.spec import Rule
+from gate.policy.thresholds import regression_bound, regression_exceeds, worsening
+from gate.report.text import fmt_delta, fmt_metric
+from gate.records import Metric, RunRecord
+from gate.result import RunDiff
+
+
+@dataclass(frozen=True, slots=True)
+class _Pair:
+    label: str  # 'Model' or "Layer 'conv5' (Conv)"
+    layer: str | None
+    base: Metric
+    head: Metric
+
+
+def allowed_text(rule: Rule) -> str:
+    """'+5% and +0.2 ms' (or '-5%' for a metric that is better higher)."""
+    sign = "-" if spec.higher_is_better(rule.metric) else "+"
+    parts = []
+    if rule.max_change_pct is not None:
+        parts.append(f"{sign}{rule.max_change_pct:g}%")
+    if rule.max_change_abs is not None:
+        if spec.metric_unit(rule.metric) == "share":
+            parts.append(f"{sign}{rule.max_change_abs * 100:.1f} pp")
+        else:
+            parts.append(f"{sign}{fmt_metric(rule.metric, rule.max_change_abs)}")
+    return " and ".join(parts)
+
+
+def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
+                         diff: RunDiff | None) -> Outcome:
+    if base is None:
+        return Outcome((), 0, "", "no baseline for this model and target; regression not checked")
+    pairs = _model_pairs(rule, head, base, diff) if rule.level == spec.MODEL else \
+        _layer_pairs(rule, head, base, diff)
+    better_higher = spec.higher_is_better(rule.metric)
+    allowed = allowed_text(rule)
+    breaches = []
+    for pair in pairs:
+        if not regression_exceeds(pair.base, pair.head, higher_is_better=better_higher,
+                                  max_pct=rule.max_change_pct, max_abs=rule.max_change_abs):
+            continue
+        change = (f"by {fmt_delta(rule.metric, pair.base, pair.head)}, from "
+                  f"{fmt_metric(rule.metric, pair.base)} to {fmt_metric(rule.metric, pair.head)}")
+        limit = regression_bound(pair.base, higher_is_better=better_higher,
+                                 max_pct=rule.max_change_pct, max_abs=rule.max_change_abs)
+        text = (f"{pair.label}: {rule.metric} regressed {change} against the baseline, beyond "
+                f"the allowed {allowed}")
+        breaches.append(Breach(
+            pair.layer, rule.metric, pair.head, limit,
+            f"{text} (worst allowed {fmt_metric(rule.metric, limit)}): {remedy_of(rule)}.",
+            text,
+            f"{pair.layer or 'model'} {fmt_delta(rule.metric, pair.base, pair.head)}",
+            worsening(pair.base, pair.head, better_higher) / abs(pair.base) if pair.base
+            else float("inf")))
+    what = "model" if rule.level == spec.MODEL else \
+        f"{len(pairs)} matched layer{'s' if len(pairs) != 1 else ''}"
+    return Outcome(tuple(breaches), len(pairs), f"regressed in {rule.metric} beyond {allowed}",
+                   f"{what}: {rule.metric} within {allowed} of the baseline")
+
+
+def _model_pairs(rule: Rule, head: RunRecord, base: RunRecord,
+                 diff: RunDiff | None) -> list[_Pair]:
+    if diff is not None and rule.metric in diff.totals:
+        before, after = diff.totals[rule.metric]
+        return [_Pair("Model", None, before, after)]
+    if rule.metric not in head.metrics or rule.metric not in base.metrics:
+        return []  # an older baseline without this metric: nothing to compare
+    return [_Pair("Model", None, base.metrics[rule.metric], head.metrics[rule.metric])]
+
+
+def _layer_pairs(rule: Rule, head: RunRecord, base: RunRecord,
+                 diff: RunDiff | None) -> list[_Pair]:
+    """Matched layers in scope, with the metric's base and head values."""
+    pairs = []
+    if diff is not None:
+        for change in diff.layers:
+            if change.head_name is None or change.base_name is None:
+                continue  # added or removed
+            if not rule.scope.covers_layer(change.head_name, change.op_type):
+                continue
+            if rule.metric in change.deltas:
+                before, after = change.deltas[rule.metric]
+            else:  # unchanged in this metric
+                layer = head.layer(change.head_name)
+                if layer is None or rule.metric not in layer.metrics:
+                    continue
+                before = after = layer.metrics[rule.metric]
+            pairs.append(_Pair(_label(change.head_name, change.op_type, change.base_name),
+                               change.head_name, before, after))
+        return pairs
+    old = {layer.name: layer for layer in base.layers}
+    for layer in head.layers:  # no diff given: match by name
+        match = old.get(layer.name)
+        if match is None or not rule.scope.covers_layer(layer.name, layer.op_type):
+            continue
+        if rule.metric in layer.metrics and rule.metric in match.metrics:
+            pairs.append(_Pair(_label(layer.name, layer.op_type, layer.name), layer.name,
+                               match.metrics[rule.metric], layer.metrics[rule.metric]))
+    return pairs
+
+
+def _label(head_name: str, op_type: str, base_name: str) -> str:
+    renamed = f", was '{base_name}'" if base_name != head_name else ""
+    return f"Layer '{head_name}' ({op_type}{renamed})"

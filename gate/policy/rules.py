@@ -1,0 +1,251 @@
+"""One pure check per rule kind: a rule and the records in, the places it fails out.
+
+A check never applies waivers or builds Verdicts (``gate.policy.evaluate``
+does); it returns an ``Outcome``: the breaches found, how many places were
+checked, and the one-line phrases the summary is made of. Messages are full
+sentences naming the layer, the metric, the value, the limit and a remedy.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable
+
+from gate.policy import spec
+from gate.policy.spec import Rule
+from gate.policy.thresholds import above_maximum, below_minimum, unmodelled_share
+from gate.report.text import fmt_bytes, fmt_metric, fmt_percent
+from gate.records import LayerRecord, Metric, RunRecord
+from gate.result import RunDiff
+
+DEFAULT_REMEDIES = {
+    spec.MIN_UTILIZATION: "match channel counts to the PE array (multiples of its rows and "
+                          "columns), fuse small layers, or lower the limit",
+    spec.MAX_PARAM_DRAM: "quantize or prune so the parameters stay in the on-chip parameter "
+                         "buffer, or raise the limit",
+    spec.MAX_LATENCY: "speed up the slowest layers, quantize, or raise the limit",
+    spec.MAX_ENERGY: "cut DRAM traffic and MACs in the costliest layers, quantize, or raise "
+                     "the limit",
+    spec.MAX_REGRESSION: "check that the change is intended; if it is, raise the limit or "
+                         "refresh the baseline",
+    spec.MAX_UNMODELLED: "add cost functions for these op types, replace them with modelled "
+                         "ops, or raise the limit",
+    spec.METRIC_LIMIT: "change the model or adjust the limit",
+}
+PARAMS_REMEDY = ("quantize to int8, split the layer, or choose a target with a larger "
+                 "parameter buffer")
+ACTIVATIONS_REMEDY = ("tile the layer, lower the input resolution or batch, or choose a target "
+                      "with a larger activation buffer")
+DEFAULT_REMEDIES[spec.FITS_IN_BUFFER] = f"{PARAMS_REMEDY} (parameters); {ACTIVATIONS_REMEDY} " \
+                                        "(activations)"
+
+
+@dataclass(frozen=True, slots=True)
+class Breach:
+    """One place a rule fails, before waivers are applied."""
+
+    layer: str | None
+    metric: str
+    value: Metric
+    limit: Metric
+    message: str
+    headline: str  # the finding without its remedy: a model-level summary line
+    short: str  # 'conv5 12.4%': the 'worst' part of a layer-level summary
+    badness: float  # how far past the limit, for picking the worst
+
+
+@dataclass(frozen=True, slots=True)
+class Outcome:
+    breaches: tuple[Breach, ...]
+    checked: int  # layers checked (layer level) or 1 (model level); 0 = nothing to check
+    fail_phrase: str  # 'below 30% utilization': summary after '<n> layers'
+    pass_summary: str  # the one line when nothing fails
+
+
+def remedy_of(rule: Rule) -> str:
+    return rule.remedy or DEFAULT_REMEDIES[rule.kind]
+
+
+def _layer_label(layer: LayerRecord) -> str:
+    return f"Layer '{layer.name}' ({layer.op_type})"
+
+
+def _scoped_layers(rule: Rule, head: RunRecord) -> list[LayerRecord]:
+    return [layer for layer in head.layers if rule.scope.covers_layer(layer.name, layer.op_type)]
+
+
+def _model_value(run: RunRecord, metric: str) -> Metric:
+    from gate.errors import InputError  # local: only needed on malformed records
+
+    if metric not in run.metrics:
+        raise InputError(f"the record of {run.model} on {run.target} has no metric '{metric}'; "
+                         "regenerate it (baseline snapshot from an older roofgate?)")
+    return run.metrics[metric]
+
+
+def _layer_value(run: RunRecord, layer: LayerRecord, metric: str) -> Metric:
+    from gate.errors import InputError
+
+    if metric not in layer.metrics:
+        raise InputError(f"layer '{layer.name}' of {run.model} on {run.target} has no metric "
+                         f"'{metric}'; regenerate the record")
+    return layer.metrics[metric]
+
+
+def _ratio(value: float, limit: float, lower_is_bad: bool) -> float:
+    if lower_is_bad:
+        return (limit - value) / limit if limit else 1.0
+    return (value - limit) / limit if limit else float(value > 0)
+
+
+def _top_layers(run: RunRecord, metric: str, count: int = 3) -> str:
+    ranked = sorted(run.layers, key=lambda layer: layer.metrics.get(metric, 0), reverse=True)
+    parts = [f"{layer.name} {fmt_metric(metric, layer.metrics.get(metric, 0))}"
+             for layer in ranked[:count] if layer.metrics.get(metric, 0) > 0]
+    return f" (largest: {', '.join(parts)})" if parts else ""
+
+
+# --- generic limit on one metric (several kinds are this with a fixed metric) ---------------
+
+def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
+                 layer_filter: Callable[[LayerRecord], bool] = lambda layer: True) -> Outcome:
+    """Compare ``metric`` with rule.minimum / rule.maximum at the rule's level."""
+    remedy = remedy_of(rule)
+    bounds = [("minimum", rule.minimum, True), ("maximum", rule.maximum, False)]
+    bounds = [(name, limit, low) for name, limit, low in bounds if limit is not None]
+
+    def judge(value: Metric, label: str, short_name: str) -> Breach | None:
+        for name, limit, low in bounds:
+            failed = below_minimum(value, limit) if low else above_maximum(value, limit)
+            if failed:
+                relation = "is below the" if low else "exceeds the"
+                text = (f"{label}: {what} {fmt_metric(metric, value)} {relation} "
+                        f"{fmt_metric(metric, limit)} {name}")
+                extra = _top_layers(head, metric) if label == "Model" and not low else ""
+                return Breach(None if label == "Model" else short_name, metric, value, limit,
+                              f"{text}{extra}: {remedy}.", text,
+                              f"{short_name} {fmt_metric(metric, value)}",
+                              _ratio(value, limit, low))
+        return None
+
+    limits = " and ".join(f"{'at least' if low else 'at most'} {fmt_metric(metric, limit)}"
+                          for _, limit, low in bounds)
+    if rule.level == spec.MODEL:
+        value = _model_value(head, metric)
+        breach = judge(value, "Model", "model")
+        return Outcome((breach,) if breach else (), 1, f"{what} outside {limits}",
+                       f"{what} {fmt_metric(metric, value)}, limit {limits}")
+    layers = [layer for layer in _scoped_layers(rule, head) if layer_filter(layer)]
+    found = [judge(_layer_value(head, layer, metric), _layer_label(layer), layer.name)
+             for layer in layers]
+    breaches = tuple(b for b in found if b is not None)
+    return Outcome(breaches, len(layers), f"with {what} outside {limits}",
+                   f"{len(layers)} layer{'s' if len(layers) != 1 else ''} checked, "
+                   f"{what} {limits}")
+
+
+def check_min_utilization(rule: Rule, head: RunRecord, base: RunRecord | None,
+                          diff: RunDiff | None) -> Outcome:
+    """PE-array utilization at least ``min``; layers off the array or under ``min_layer_macs``
+    are skipped (utilization is 0 off the array by definition, and tiny layers cannot fill it)."""
+    def on_array(layer: LayerRecord) -> bool:
+        return (layer.modelled and layer.engine == "array"
+                and layer.metrics.get("macs", 0) >= max(rule.min_layer_macs, 1))
+
+    if rule.level == spec.MODEL and not any(on_array(layer) for layer in head.layers):
+        return Outcome((), 0, "", "no layer runs on the PE array; utilization not checked")
+    outcome = _limit_check(rule, head, "utilization", "utilization", on_array)
+    limit = fmt_percent(rule.minimum or 0.0)
+    if rule.level == spec.LAYER:
+        return Outcome(outcome.breaches, outcome.checked, f"below {limit} utilization",
+                       f"{outcome.checked} array layer{'s' if outcome.checked != 1 else ''} with "
+                       f">= {fmt_metric('macs', rule.min_layer_macs)} MACs at or above "
+                       f"{limit} utilization")
+    return outcome
+
+
+def check_max_param_dram(rule: Rule, head: RunRecord, base: RunRecord | None,
+                         diff: RunDiff | None) -> Outcome:
+    return _limit_check(rule, head, "param_dram_bytes", "parameter DRAM traffic per inference")
+
+
+def check_max_latency(rule: Rule, head: RunRecord, base: RunRecord | None,
+                      diff: RunDiff | None) -> Outcome:
+    return _limit_check(rule, head, "latency_s", "latency per inference")
+
+
+def check_max_energy(rule: Rule, head: RunRecord, base: RunRecord | None,
+                     diff: RunDiff | None) -> Outcome:
+    return _limit_check(rule, head, "energy_j", "energy per inference")
+
+
+def check_metric_limit(rule: Rule, head: RunRecord, base: RunRecord | None,
+                       diff: RunDiff | None) -> Outcome:
+    return _limit_check(rule, head, rule.metric, rule.metric)
+
+
+def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
+                         diff: RunDiff | None) -> Outcome:
+    """Each layer's parameters / activations fit the target's on-chip buffers (cost model's call)."""
+    param_buffer = head.target_figures.get("param_buffer_bytes", 0)
+    act_buffer = head.target_figures.get("activation_buffer_bytes", 0)
+    layers = _scoped_layers(rule, head)
+    breaches: list[Breach] = []
+    for layer in layers:
+        if rule.check_params and not layer.params_fit:
+            value = layer.metrics.get("param_bytes", 0)
+            text = (f"{_layer_label(layer)}: parameters {fmt_bytes(value)} exceed the "
+                    f"{fmt_bytes(param_buffer)} parameter buffer of {head.target}")
+            breaches.append(Breach(
+                layer.name, "param_bytes", value, param_buffer,
+                f"{text}: {rule.remedy or PARAMS_REMEDY}.", text,
+                f"{layer.name} {fmt_bytes(value)}", _ratio(value, param_buffer, False)))
+        if rule.check_activations and not layer.activations_fit:
+            value = layer.metrics.get("input_bytes", 0) + layer.metrics.get("output_bytes", 0)
+            text = (f"{_layer_label(layer)}: input and output activations {fmt_bytes(value)} "
+                    f"exceed the {fmt_bytes(act_buffer)} activation buffer of {head.target}")
+            breaches.append(Breach(
+                layer.name, "activation_bytes", value, act_buffer,
+                f"{text}: {rule.remedy or ACTIVATIONS_REMEDY}.", text,
+                f"{layer.name} {fmt_bytes(value)}", _ratio(value, act_buffer, False)))
+    what = {(True, True): "parameters and activations", (True, False): "parameters",
+            (False, True): "activations"}[(rule.check_params, rule.check_activations)]
+    fail_what = what.replace(" and ", " or ")
+    return Outcome(tuple(breaches), len(layers), f"whose {fail_what} do not fit on-chip buffers",
+                   f"{len(layers)} layer{'s' if len(layers) != 1 else ''} checked, {what} fit "
+                   "on-chip buffers")
+
+
+def check_max_unmodelled(rule: Rule, head: RunRecord, base: RunRecord | None,
+                         diff: RunDiff | None) -> Outcome:
+    """The share of the model roofgate cannot cost stays under the limit."""
+    ops = ", ".join(f"{u.op_type} x{u.count} ({u.reason})" if u.reason else
+                    f"{u.op_type} x{u.count}" for u in head.unmodelled)
+    breaches: list[Breach] = []
+    shown: list[str] = []
+    for measure, limit in (("work", rule.max_work_share), ("node", rule.max_node_share)):
+        if limit is None:
+            continue
+        value = unmodelled_share(float(_model_value(head, f"coverage_{measure}_share")))
+        of_what = "the work" if measure == "work" else "the nodes"
+        shown.append(f"{fmt_percent(value)} of {of_what} unmodelled (limit {fmt_percent(limit)})")
+        if above_maximum(value, limit):
+            text = (f"Model: {fmt_percent(value)} of {of_what} is in ops roofgate cannot "
+                    f"cost, above the {fmt_percent(limit)} maximum")
+            breaches.append(Breach(
+                None, f"unmodelled_{measure}_share", value, limit,
+                f"{text}{' (' + ops + ')' if ops else ''}; its figures understate the real "
+                f"cost: {remedy_of(rule)}.", text,
+                f"{fmt_percent(value)} of {of_what}", _ratio(value, limit, False)))
+    return Outcome(tuple(breaches), 1, "unmodelled share above the limit", "; ".join(shown))
+
+
+CHECKS: dict[str, Callable[[Rule, RunRecord, RunRecord | None, RunDiff | None], Outcome]] = {
+    spec.MIN_UTILIZATION: check_min_utilization,
+    spec.MAX_PARAM_DRAM: check_max_param_dram,
+    spec.FITS_IN_BUFFER: check_fits_in_buffer,
+    spec.MAX_LATENCY: check_max_latency,
+    spec.MAX_ENERGY: check_max_energy,
+    spec.MAX_UNMODELLED: check_max_unmodelled,
+    spec.METRIC_LIMIT: check_metric_limit,
+}

@@ -1,0 +1,79 @@
+"""Waivers: let a rule fail on named models/layers, with a reason, until an expiry date.
+
+A waiver without ``layers`` covers every finding of the rule on the models it
+names (the model-level finding and every layer); with ``layers`` it covers only
+findings on matching layers. A waiver holds through its ``expires`` day; from
+the next day the finding fails again, saying which waiver expired and why it
+was granted. Waivers that matched nothing in a run are reported as notes (not
+failures), so stale ones get cleaned up without blocking a merge.
+"""
+
+from __future__ import annotations
+
+from datetime import date
+from typing import Iterable
+
+from gate.policy.globs import match_any
+from gate.policy.rules import Breach
+from gate.policy.spec import Policy, Rule, Waiver
+from gate.policy.thresholds import waiver_active
+from gate.result import FAIL, WAIVED, Finding, Verdict
+
+
+def waiver_covers(waiver: Waiver, rule_id: str, model: str, target: str,
+                  layer: str | None) -> bool:
+    """Whether ``waiver`` applies to a finding of ``rule_id`` on this model/target/layer."""
+    if waiver.rule_id != rule_id or not waiver.scope.covers_model(model, target):
+        return False
+    if not waiver.scope.layers:
+        return True
+    return layer is not None and match_any(waiver.scope.layers, layer)
+
+
+def _pick(waivers: list[Waiver], today: date) -> Waiver | None:
+    """An active waiver if any covers the finding, else the most recently expired one."""
+    active = [w for w in waivers if waiver_active(w.expires.isoformat(), today.isoformat())]
+    if active:
+        return max(active, key=lambda w: w.expires)
+    return max(waivers, key=lambda w: w.expires) if waivers else None
+
+
+def to_finding(breach: Breach, rule: Rule, waivers: Iterable[Waiver], model: str, target: str,
+               today: date) -> Finding:
+    """The Finding for one breach: FAIL, WAIVED, or FAIL because its waiver expired."""
+    covering = [w for w in waivers if waiver_covers(w, rule.id, model, target, breach.layer)]
+    waiver = _pick(covering, today)
+    if waiver is None:
+        return Finding(breach.layer, breach.metric, breach.value, breach.limit, breach.message,
+                       FAIL)
+    expires = waiver.expires.isoformat()
+    if waiver_active(expires, today.isoformat()):
+        return Finding(breach.layer, breach.metric, breach.value, breach.limit, breach.message,
+                       WAIVED, waiver.reason, expires)
+    where = f"layer '{breach.layer}'" if breach.layer is not None else f"model {model}"
+    message = (f"The waiver for {rule.id} on {where} expired on {expires}: {waiver.reason}. "
+               f"{breach.message}")
+    return Finding(breach.layer, breach.metric, breach.value, breach.limit, message, FAIL,
+                   waiver.reason, expires)
+
+
+def unused_waivers(policies: Iterable[Policy], verdicts: Iterable[Verdict]) -> tuple[str, ...]:
+    """One note per waiver that covered no finding in this run (file:line, rule, what to do)."""
+    verdicts = list(verdicts)
+    notes = []
+    for policy in policies:
+        for waiver in policy.waivers:
+            if not any(_used(waiver, verdict) for verdict in verdicts):
+                notes.append(f"{policy.path}:{waiver.line}: the waiver for {waiver.rule_id} "
+                             f"(expires {waiver.expires.isoformat()}) matched no finding in this "
+                             "run; remove it if the problem is fixed")
+    return tuple(notes)
+
+
+def _used(waiver: Waiver, verdict: Verdict) -> bool:
+    return any(
+        finding.waiver_reason == waiver.reason
+        and finding.waiver_expires == waiver.expires.isoformat()
+        and waiver_covers(waiver, verdict.rule_id, verdict.model, verdict.target, finding.layer)
+        for finding in verdict.findings
+    )
