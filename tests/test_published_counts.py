@@ -27,11 +27,9 @@ from pathlib import Path
 import onnx
 import pytest
 
+from gate.model.loader import load_model
 from gate.profile import ModelProfile, profile_model
 from gate.synth import archs, save_model
-
-# TEMPORARY until the loader lands in this branch; removed as soon as it does.
-load_model = pytest.importorskip("gate.model.loader").load_model
 
 G = 10**9
 M = 10**6

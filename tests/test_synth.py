@@ -21,6 +21,8 @@ from hypothesis import strategies as st
 from onnx import TensorProto, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
+from gate.model.loader import load_model
+from gate.profile import profile_model
 from gate.synth import NetBuilder, archs, external_locations, save_model, validate_model
 from gate.synth.scenario import (
     DETECTOR_PATH,
@@ -282,3 +284,19 @@ def test_validate_model_rejects_a_wrong_declared_shape() -> None:
     model.graph.output[0].type.tensor_type.shape.dim[2].dim_value = 5  # inference says 4
     with pytest.raises(Exception, match="differ"):
         validate_model(model)
+
+
+@pytest.mark.parametrize("variant", ["base", "pr"])
+def test_scenario_models_profile_fully_through_the_pipeline(variant: str,
+                                                            tmp_path: Path) -> None:
+    profiles = {}
+    for path in write_scenario(tmp_path, variant):
+        loaded = load_model(path, dims={"seq": 256})
+        profile = profile_model(loaded)
+        assert profile.coverage.nodes_modelled == profile.coverage.nodes_total, path
+        profiles[path.relative_to(tmp_path).as_posix()] = profile
+    biggest = max(profiles[SPECIES_PATH].layers, key=lambda layer: layer.param_bytes)
+    # The numbers the scenario module documents (fp32: 4 bytes a parameter, 9 per 3x3 tap).
+    width = 384 if variant == "pr" else 192
+    assert biggest.name == "stage4.block1.conv2"
+    assert biggest.param_bytes == 4 * 9 * width * width
