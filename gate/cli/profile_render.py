@@ -1,0 +1,254 @@
+"""Formatting for ``roofgate profile``: a text table, JSON and CSV (field names in docs/profile.md).
+
+Only formats: every figure comes from the ``ModelProfile``, the ``ModelCost``
+per target and the ``RunRecord`` built from them. Model-supplied strings have
+control characters stripped in the table; CSV text cells that a spreadsheet
+would run as a formula get a leading apostrophe; JSON escapes by itself.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import unicodedata
+from typing import Any, Sequence
+
+from gate.costmodel import ModelCost
+from gate.model.graph import Shape
+from gate.profile import LayerProfile, ModelProfile
+from gate.records import RunRecord, run_to_dict
+from gate.targets.spec import TargetProfile
+
+FORMAT_NAME = "roofgate-profile"
+FORMAT_VERSION = 1  # 1: first version
+
+Run = tuple[TargetProfile, ModelCost]
+
+CSV_FIELDS: tuple[str, ...] = (
+    "index", "name", "op_type", "domain", "input_shapes", "input_dtypes", "output_shapes",
+    "output_dtypes", "param_names", "param_count", "param_bytes", "input_bytes", "output_bytes",
+    "macs", "flops", "arithmetic_intensity", "param_reuse", "modelled", "unmodelled_reason",
+)
+CSV_TARGET_FIELDS: tuple[str, ...] = (
+    "target", "engine", "bound", "utilization", "cycles", "latency_s", "energy_j",
+    "param_dram_bytes", "act_dram_bytes",
+)
+
+
+def render(fmt: str, profile: ModelProfile, runs: Sequence[Run], records: Sequence[RunRecord]) -> str:
+    """The whole output of ``roofgate profile`` in ``fmt`` (table, json or csv)."""
+    if fmt == "json":
+        return to_json(profile, records)
+    if fmt == "csv":
+        return to_csv(profile, runs)
+    return to_table(profile, runs)
+
+
+# ------------------------------------------------------------------ JSON
+
+def shape_text(shape: Shape | None) -> str:
+    return "?" if shape is None else "x".join(str(d) for d in shape) or "scalar"
+
+
+def layer_dict(layer: LayerProfile, input_names: Sequence[str], output_names: Sequence[str]) -> dict[str, Any]:
+    return {
+        "index": layer.index, "name": layer.name, "op_type": layer.op_type, "domain": layer.domain,
+        "inputs": [None if shape is None and not dtype else
+                   {"name": name, "shape": None if shape is None else list(shape), "dtype": dtype}
+                   for name, shape, dtype in zip(input_names, layer.input_shapes, layer.input_dtypes)],
+        "outputs": [{"name": name, "shape": None if shape is None else list(shape), "dtype": dtype}
+                    for name, shape, dtype in zip(output_names, layer.output_shapes, layer.output_dtypes)],
+        "param_names": list(layer.param_names), "param_count": layer.param_count,
+        "param_bytes": layer.param_bytes, "input_bytes": layer.input_bytes,
+        "output_bytes": layer.output_bytes, "bytes_moved": layer.bytes_moved,
+        "macs": layer.macs, "flops": layer.flops,
+        "arithmetic_intensity": layer.arithmetic_intensity, "param_reuse": layer.param_reuse,
+        "modelled": layer.modelled, "unmodelled_reason": layer.unmodelled_reason,
+        "note": layer.work.note if layer.work else "",
+    }
+
+
+def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[str, Any]:
+    """The JSON document (plain data, stable keys)."""
+    model, coverage = profile.model, profile.coverage
+    nodes = model.graph.nodes
+    return {
+        "format": FORMAT_NAME, "format_version": FORMAT_VERSION,
+        "model": {"path": model.path, "name": model.name, "ir_version": model.ir_version,
+                  "producer": model.producer, "opsets": dict(model.opsets),
+                  "dim_bindings": dict(model.dim_bindings),
+                  "unbound_dims": list(model.unbound_dims), "warnings": list(model.warnings)},
+        "precision": profile.precision,
+        "totals": {"layers": len(profile.layers), "macs": profile.total_macs,
+                   "flops": profile.total_flops, "param_count": profile.total_param_count,
+                   "param_bytes": profile.total_param_bytes,
+                   "max_layer_param_bytes": max((x.param_bytes for x in profile.layers), default=0)},
+        "coverage": {"nodes_total": coverage.nodes_total,
+                     "nodes_modelled": coverage.nodes_modelled,
+                     "node_share": coverage.node_share, "work_modelled": coverage.work_modelled,
+                     "work_unmodelled_estimate": coverage.work_unmodelled_estimate,
+                     "work_share": coverage.work_share,
+                     "unmodelled": [{"op_type": u.op_type, "domain": u.domain, "count": u.count,
+                                     "reason": u.reason} for u in coverage.unmodelled]},
+        "notes": list(profile.notes),
+        "layers": [layer_dict(layer, [t.name if t else "" for t in node.inputs],
+                              [t.name for t in node.outputs])
+                   for layer, node in zip(profile.layers, nodes)],
+        "targets": [run_to_dict(record) for record in records],
+    }
+
+
+def to_json(profile: ModelProfile, records: Sequence[RunRecord]) -> str:
+    return json.dumps(profile_dict(profile, records), sort_keys=True, indent=2) + "\n"
+
+
+# ------------------------------------------------------------------ CSV
+
+def _csv_text(value: str) -> str:
+    """Neutralise spreadsheet formulas in model-supplied text (common practice, no source)."""
+    return "'" + value if value[:1] in ("=", "+", "-", "@", "\t", "\r") else value
+
+
+def _csv_row(layer: LayerProfile) -> list[Any]:
+    return [
+        layer.index, _csv_text(layer.name), _csv_text(layer.op_type), _csv_text(layer.domain),
+        ";".join(shape_text(s) for s in layer.input_shapes), ";".join(layer.input_dtypes),
+        ";".join(shape_text(s) for s in layer.output_shapes), ";".join(layer.output_dtypes),
+        _csv_text(";".join(layer.param_names)), layer.param_count, layer.param_bytes,
+        layer.input_bytes, layer.output_bytes, layer.macs, layer.flops,
+        repr(layer.arithmetic_intensity), repr(layer.param_reuse),
+        "true" if layer.modelled else "false", _csv_text(layer.unmodelled_reason),
+    ]
+
+
+def to_csv(profile: ModelProfile, runs: Sequence[Run]) -> str:
+    """One row per layer; with targets, one row per layer per target (target columns added)."""
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    if not runs:
+        writer.writerow(CSV_FIELDS)
+        writer.writerows(_csv_row(layer) for layer in profile.layers)
+        return out.getvalue()
+    writer.writerow(CSV_FIELDS + CSV_TARGET_FIELDS)
+    for target, cost in runs:
+        for layer, lc in zip(profile.layers, cost.layers):
+            writer.writerow(_csv_row(layer) + [
+                _csv_text(target.name), lc.engine, lc.bound, repr(lc.utilization), lc.cycles,
+                repr(lc.latency_s), repr(lc.energy.total_j), lc.param_dram_bytes,
+                lc.act_dram_bytes])
+    return out.getvalue()
+
+
+# ------------------------------------------------------------------ table
+
+def clean(text: str, limit: int = 0) -> str:
+    """``text`` without control or format characters, cut to ``limit`` characters if given."""
+    text = "".join(ch if unicodedata.category(ch)[0] != "C" else " " for ch in text)
+    if limit and len(text) > limit:
+        return text[: limit - 3] + "..."
+    return text
+
+
+def si(value: float) -> str:
+    """A count with an SI prefix, three significant digits: 1234567 -> '1.23M'."""
+    for factor, suffix in ((1e15, "P"), (1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if abs(value) >= factor:
+            return f"{value / factor:.3g}{suffix}"
+    return f"{value:.3g}" if isinstance(value, float) else str(value)
+
+
+def binary_bytes(value: int) -> str:
+    """Bytes with a binary prefix: 1536 -> '1.5KiB'."""
+    for factor, suffix in ((1 << 40, "TiB"), (1 << 30, "GiB"), (1 << 20, "MiB"), (1 << 10, "KiB")):
+        if value >= factor:
+            return f"{value / factor:.3g}{suffix}"
+    return f"{value}B"
+
+
+def seconds(value: float) -> str:
+    for factor, suffix in ((1.0, "s"), (1e-3, "ms"), (1e-6, "us")):
+        if value >= factor:
+            return f"{value / factor:.3g}{suffix}"
+    return f"{value / 1e-9:.3g}ns"
+
+
+def joules(value: float) -> str:
+    for factor, suffix in ((1.0, "J"), (1e-3, "mJ"), (1e-6, "uJ")):
+        if value >= factor:
+            return f"{value / factor:.3g}{suffix}"
+    return f"{value / 1e-9:.3g}nJ"
+
+
+def _align(rows: list[list[str]], right_from: int) -> list[str]:
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    return ["  ".join(cell.rjust(w) if i >= right_from else cell.ljust(w)
+                      for i, (cell, w) in enumerate(zip(row, widths))).rstrip() for row in rows]
+
+
+def _layer_cells(layer: LayerProfile) -> list[str]:
+    out = ";".join(shape_text(s) for s in layer.output_shapes)
+    counted = layer.modelled
+    return [str(layer.index), clean(layer.name, 40), clean(layer.op_type, 24), clean(out, 24),
+            si(layer.macs) if counted else "-", si(layer.flops) if counted else "-",
+            binary_bytes(layer.param_bytes), binary_bytes(layer.input_bytes),
+            binary_bytes(layer.output_bytes),
+            f"{layer.arithmetic_intensity:.3g}" if counted else "-",
+            f"{layer.param_reuse:.3g}" if counted and layer.param_bytes else "-"]
+
+
+_HEAD = ["#", "layer", "op", "output", "MACs", "FLOPs", "params", "in", "out", "FLOP/B", "MAC/pB"]
+
+
+def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
+    """A readable per-layer table, totals, coverage, unmodelled ops and notes."""
+    model = profile.model
+    dims = " ".join(f"{k}={v}" for k, v in model.dim_bindings.items()) or "none"
+    opsets = ", ".join(f"{domain or 'ai.onnx'} {version}" for domain, version in model.opsets.items())
+    lines = [f"model: {clean(model.name, 80)} ({clean(model.path, 120)})",
+             f"precision: {profile.precision}   dims: {clean(dims, 120)}   "
+             f"opsets: {clean(opsets, 120)}",
+             ""]
+    head = list(_HEAD)
+    for target, _ in runs:
+        head += [f"{clean(target.name, 24)} util", "bound", "latency"]
+    rows = [head]
+    for i, layer in enumerate(profile.layers):
+        cells = _layer_cells(layer)
+        for _, cost in runs:
+            lc = cost.layers[i]
+            cells += [f"{lc.utilization:.0%}" if lc.engine == "array" else "-", lc.bound,
+                      seconds(lc.latency_s) if layer.modelled else "-"]
+        rows.append(cells)
+    lines += _align(rows, right_from=4)
+    lines += ["", *_totals_lines(profile), *_coverage_lines(profile)]
+    for target, cost in runs:
+        lines += _target_lines(target, cost)
+    if profile.notes:
+        lines += ["", "notes:"] + [f"  - {clean(note, 300)}" for note in profile.notes]
+    return "\n".join(lines) + "\n"
+
+
+def _totals_lines(profile: ModelProfile) -> list[str]:
+    return [f"total: {len(profile.layers)} layers, {si(profile.total_macs)} MACs, "
+            f"{si(profile.total_flops)} FLOPs, {si(profile.total_param_count)} parameters "
+            f"({binary_bytes(profile.total_param_bytes)}, shared ones counted once)"]
+
+
+def _coverage_lines(profile: ModelProfile) -> list[str]:
+    cov = profile.coverage
+    lines = [f"coverage: {cov.nodes_modelled}/{cov.nodes_total} layers modelled "
+             f"({cov.node_share:.1%}), work share {cov.work_share:.1%}"]
+    for op in cov.unmodelled:
+        name = f"{op.domain}.{op.op_type}" if op.domain else op.op_type
+        lines.append(f"  unmodelled: {clean(name, 60)} x{op.count}: {clean(op.reason, 200)}")
+    return lines
+
+
+def _target_lines(target: TargetProfile, cost: ModelCost) -> list[str]:
+    return ["", f"on {clean(target.name, 60)} ({cost.precision}): latency {seconds(cost.latency_s)} "
+                f"({cost.inferences_per_s:.3g} inferences/s), energy {joules(cost.energy.total_j)}, "
+                f"array utilization {cost.utilization:.1%}, parameter DRAM "
+                f"{binary_bytes(cost.param_dram_bytes)}, activation DRAM "
+                f"{binary_bytes(cost.act_dram_bytes)}, weights "
+                f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}"]
