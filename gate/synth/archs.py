@@ -82,7 +82,8 @@ def resnet(depth: int = 50, *, num_classes: int = 1000, resolution: int = 224,
                 x = _bottleneck(b, x, width, stride, prefix, downsample)
             else:
                 x = basic_block(b, x, width, stride, prefix)
-    return _finish(b, _classifier(b, x, num_classes), validate)
+    _classifier(b, x, num_classes)
+    return b.build(validate=validate)
 
 
 def _shortcut(b: NetBuilder, x: str, out_channels: int, stride: int, prefix: str) -> str:
@@ -138,7 +139,8 @@ def mobilenet_v1(width: float = 1.0, resolution: int = 224, *, num_classes: int 
         x = b.conv_bn_act(x, b.channels(x), 3, stride=stride, group=b.channels(x),
                           name=f"block{index}.dw")
         x = b.conv_bn_act(x, round(channels * width), 1, name=f"block{index}.pw")
-    return _finish(b, _classifier(b, x, num_classes), validate)
+    _classifier(b, x, num_classes)
+    return b.build(validate=validate)
 
 
 def _divisible(value: float, divisor: int = 8) -> int:
@@ -168,7 +170,8 @@ def mobilenet_v2(width: float = 1.0, resolution: int = 224, *, num_classes: int 
                                    f"block{index}")
     last = _divisible(1280 * max(1.0, width))
     x = b.conv_bn_act(x, last, 1, act="relu6", name="head.conv")
-    return _finish(b, _classifier(b, x, num_classes), validate)
+    _classifier(b, x, num_classes)
+    return b.build(validate=validate)
 
 
 def _inverted_residual(b: NetBuilder, x: str, expansion: int, out_channels: int, stride: int,
@@ -204,7 +207,8 @@ def vgg(depth: int = 16, *, num_classes: int = 1000, resolution: int = 224,
     for index in (1, 2):
         x = b.activation(b.gemm(x, 4096, name=f"head.fc{index}"), "relu",
                          name=f"head.relu{index}")
-    return _finish(b, b.output(b.gemm(x, num_classes, name="head.fc3")), validate)
+    b.output(b.gemm(x, num_classes, name="head.fc3"))
+    return b.build(validate=validate)
 
 
 def vgg16(**options: object) -> onnx.ModelProto:
@@ -236,7 +240,8 @@ def recurrent_classifier(cell: Literal["lstm", "gru"] = "lstm", *, layers: int =
             x = b.reshape(y, [0, 0, 2 * hidden_size], name=f"rnn{index}.merge")
     state = b.transpose(last_state, [1, 0, 2], name="head.transpose")
     state = b.reshape(state, [0, dirs * hidden_size], name="head.merge")
-    return _finish(b, b.output(b.gemm(state, num_classes, name="head.fc")), validate)
+    b.output(b.gemm(state, num_classes, name="head.fc"))
+    return b.build(validate=validate)
 
 
 def lstm_keyword(**options: object) -> onnx.ModelProto:
@@ -270,7 +275,8 @@ def transformer_encoder(*, layers: int = 2, d_model: int = 128, heads: int = 4,
         x = b.linear(x, d_model, name="embed")
     for index in range(1, layers + 1):
         x = _encoder_layer(b, x, heads, ffn_size, f"enc{index}")
-    return _finish(b, b.output(x), validate)
+    b.output(x)
+    return b.build(validate=validate)
 
 
 def _encoder_layer(b: NetBuilder, x: str, heads: int, ffn_size: int, prefix: str) -> str:
@@ -298,7 +304,3 @@ def _encoder_layer(b: NetBuilder, x: str, heads: int, ffn_size: int, prefix: str
     fed = b.add(x, b.linear(hidden, d_model, name=f"{prefix}.ffn.down"),
                 name=f"{prefix}.ffn.residual")
     return b.layer_norm(fed, name=f"{prefix}.norm2")
-
-
-def _finish(b: NetBuilder, _output: str, validate: bool) -> onnx.ModelProto:
-    return b.build(validate=validate)
