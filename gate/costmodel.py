@@ -250,9 +250,11 @@ def _on_array(layer: LayerProfile, ctx: _Context) -> LayerCost:
     buffer_bytes = ceil(operand_elems * elem_bytes) + param_dram + act_dram
     noc_bytes = sum(m.noc_hops for m, _ in maps) * elem_bytes
     capacity = target.pe_count * spec.macs_per_pe_per_cycle * cycles
+    # A separate vector unit overlaps the array; on a vector target it is the same lanes.
+    compute_s = array_s + side_s if target.dataflow == "vector" else max(array_s, side_s)
     return _finish(
         layer, ctx, engine="array", cycles=cycles, utilization=macs / capacity if capacity else 0.0,
-        compute_s=max(array_s, side_s), overhead_s=target.layer_overhead_s,
+        compute_s=compute_s, overhead_s=target.layer_overhead_s,
         param_dram=param_dram, act_dram=act_dram, buffer_bytes=buffer_bytes,
         fit=(params_fit, acts_fit), precision=precision, array_macs=macs,
         arithmetic_j=macs * spec.mac_energy_j + side_j, noc_j=noc_bytes * target.noc_energy_j_per_byte)

@@ -234,3 +234,223 @@ def test_peak_flops_per_joule_pays_mac_energy_and_static_power() -> None:
     flops = with_static.peak_flops_per_s("int8")
     assert with_static.peak_flops_per_j("int8") == pytest.approx(
         flops / (flops / 2 * HOROWITZ_INT8_MAC_J + 1.0))
+
+
+# ------------------------------------------------------------------ memory traffic
+
+def test_parameters_that_do_not_fit_are_refetched_every_recurrent_step() -> None:
+    # An LSTM-like layer: the same K x N recurrent weights used in 10 chained steps.
+    steps, k, n = 10, 32, 128
+    gemm = GemmShape(1, k, n, count=steps, sequential=steps)
+    layer = gemm_layer((gemm,), param_count=k * n, op_type="LSTM")
+    fits = cost_model(make_profile(layer), make_target(param_bytes=k * n)).layers[0]
+    assert fits.params_fit and fits.param_dram_bytes == k * n  # once per inference
+    spills = cost_model(make_profile(layer), make_target(param_bytes=k * n - 1)).layers[0]
+    assert not spills.params_fit and spills.param_dram_bytes == steps * k * n
+    assert spills.memory_s == pytest.approx(steps * k * n / 1e10)
+
+
+def test_output_stationary_refetches_weights_per_row_tile_when_they_do_not_fit() -> None:
+    gemm = GemmShape(m=10, k=8, n=4)  # 3 row tiles of a 4-row array
+    layer = gemm_layer((gemm,))
+    target = make_target("output-stationary", param_bytes=8)
+    assert cost_model(make_profile(layer), target).layers[0].param_dram_bytes == 3 * 8 * 4
+    ws = make_target("weight-stationary", param_bytes=8)  # WS streams all rows past each tile
+    assert cost_model(make_profile(layer), ws).layers[0].param_dram_bytes == 8 * 4
+
+
+def test_activations_spill_when_they_do_not_fit() -> None:
+    layer = gemm_layer((GemmShape(100, 8, 8),))  # 800 B in, 800 B out
+    kept = cost_model(make_profile(layer), make_target(act_bytes=1600)).layers[0]
+    assert kept.activations_fit and kept.act_dram_bytes == 0
+    spilled = cost_model(make_profile(layer), make_target(act_bytes=1599)).layers[0]
+    assert not spilled.activations_fit and spilled.act_dram_bytes == 1600
+    assert spilled.energy.dram_act_j == pytest.approx(1600 * HOROWITZ_DRAM_J_PER_BYTE)
+
+
+def test_unified_buffer_shares_room_between_parameters_and_activations() -> None:
+    layer = gemm_layer((GemmShape(10, 10, 10),))  # 100 B params, 100 B in, 100 B out
+    assert cost_model(make_profile(layer), make_target(unified_bytes=300)).layers[0].activations_fit
+    tight = cost_model(make_profile(layer), make_target(unified_bytes=299)).layers[0]
+    assert tight.params_fit and not tight.activations_fit
+
+
+def test_whole_model_weight_residency_removes_parameter_traffic_when_everything_fits() -> None:
+    profile = make_profile(gemm_layer((GemmShape(4, 16, 16),)), gemm_layer((GemmShape(4, 16, 16),)))
+    resident = cost_model(profile, make_target(param_bytes=512, weights_resident=True))
+    assert resident.weights_resident and resident.param_dram_bytes == 0
+    assert all(layer.energy.dram_param_j == 0 for layer in resident.layers)
+    too_big = cost_model(profile, make_target(param_bytes=511, weights_resident=True))
+    assert not too_big.weights_resident and too_big.param_dram_bytes == 512
+    assert any("do not fit" in note for note in too_big.notes)
+    assert cost_model(profile, make_target(param_bytes=512)).param_dram_bytes == 512
+    assert cost_model(profile, make_target(param_bytes=512), weights_resident=True).weights_resident
+
+
+# ------------------------------------------------------------------ engines and coverage
+
+def test_view_ops_are_free_and_unmodelled_layers_are_marked_not_free() -> None:
+    profile = make_profile(other_layer("Reshape", is_view=True), other_layer("Mystery", modelled=False),
+                           gemm_layer((GemmShape(4, 4, 4),)))
+    cost = cost_model(profile, make_target())
+    view, unknown, gemm = cost.layers
+    assert (view.engine, view.latency_s, view.modelled) == ("none", 0.0, True)
+    assert (unknown.engine, unknown.bound, unknown.modelled) == ("none", "none", False)
+    assert unknown.energy.total_j == 0.0
+    assert gemm.engine == "array"
+    assert any("unmodelled" in note for note in cost.notes)
+
+
+def test_non_gemm_work_runs_on_the_vector_unit_or_as_placed() -> None:
+    relu = other_layer("Relu", vector_ops=800)
+    vec = cost_model(make_profile(relu), make_target()).layers[0]
+    assert vec.engine == "vector" and vec.cycles == 100  # 8 ops per cycle
+    assert vec.energy.mac_j == pytest.approx(800 * 0.1 * PJ)
+    hosted = cost_model(make_profile(relu), make_target(placement={"Relu": "host"})).layers[0]
+    assert hosted.engine == "host" and hosted.cycles == 800
+    assert hosted.act_dram_bytes == 128  # the host reads and writes through DRAM
+    no_vector = cost_model(make_profile(relu), make_target(vector=None)).layers[0]
+    assert no_vector.engine == "host"
+    gemm_on_host = cost_model(make_profile(gemm_layer((GemmShape(4, 4, 4),), op_type="MatMul")),
+                              make_target(placement={"MatMul": "host"})).layers[0]
+    assert gemm_on_host.engine == "host" and gemm_on_host.cycles == 64
+
+
+def test_fused_elementwise_work_overlaps_the_array() -> None:
+    layer = gemm_layer((GemmShape(4, 4, 4),), vector_ops=8000)  # 1000 vector cycles > array cycles
+    cost = cost_model(make_profile(layer), make_target()).layers[0]
+    assert cost.compute_s == pytest.approx(1000 / 1e9)
+    assert cost.cycles == map_gemm(GemmShape(4, 4, 4), 4, 4, "weight-stationary").cycles
+
+
+# ------------------------------------------------------------------ precision
+
+def test_explicit_precision_the_target_lacks_is_refused_naming_both() -> None:
+    profile = make_profile(gemm_layer((GemmShape(4, 4, 4),)), precision="fp16")
+    with pytest.raises(InputError, match=r"test-array.*fp16.*int8, fp32"):
+        cost_model(profile, make_target())
+    with pytest.raises(InputError, match="unknown precision"):
+        cost_model(make_profile(gemm_layer((GemmShape(4, 4, 4),)), precision="fp12"), make_target())
+
+
+def test_precision_follows_explicit_deploy_precision_then_layer_dtypes() -> None:
+    float_layer = gemm_layer((GemmShape(4, 4, 4),), dtype="FLOAT")
+    cost = cost_model(make_profile(float_layer, precision="int8"), make_target())
+    assert cost.precision == "int8" and cost.layers[0].precision == "int8"
+    mixed = make_profile(gemm_layer((GemmShape(64, 64, 64),), dtype="INT8"), float_layer)
+    cost = cost_model(mixed, make_target())
+    assert cost.precision == "int8"  # the precision carrying most MACs
+    assert [layer.precision for layer in cost.layers] == ["int8", "fp32"]
+    assert cost.peak_flops_per_s == make_target().peak_flops_per_s("int8")
+
+
+# ------------------------------------------------------------------ facts of the trade
+
+def test_depthwise_layer_uses_the_array_far_worse_than_a_standard_conv_of_equal_macs() -> None:
+    # Common practice, no source: depthwise convolutions underfill a large systolic array.
+    # 3x3 depthwise over 64 channels at 28x28 (count = 64 GEMMs of 784 x 9 x 1) against a
+    # standard conv with the same MACs (784 x 9 x 64).
+    target = make_target("weight-stationary", 64, 64, param_bytes=4 << 20, act_bytes=2 << 20)
+    depthwise = gemm_layer((GemmShape(784, 9, 1, count=64),), op_type="Conv")
+    standard = gemm_layer((GemmShape(784, 9, 64),), op_type="Conv")
+    assert depthwise.macs == standard.macs
+    dw = cost_model(make_profile(depthwise), target).layers[0]
+    std = cost_model(make_profile(standard), target).layers[0]
+    assert dw.utilization < std.utilization / 20
+    assert dw.latency_s > 20 * std.latency_s
+
+
+def test_costing_many_targets_scales_linearly() -> None:
+    layers = [gemm_layer((GemmShape(196, 576, 128),), index=i) for i in range(400)]
+    profile = make_profile(*layers)
+    targets = [make_target(rows=r, cols=r) for r in (4, 8, 16, 32, 64, 128, 8, 16)]
+    start = time.perf_counter()
+    cost_model(profile, targets[0])
+    one = time.perf_counter() - start
+    start = time.perf_counter()
+    for target in targets:
+        cost_model(profile, target)
+    eight = time.perf_counter() - start
+    assert eight < 1.0 and eight < 8 * one * 3 + 0.05
+
+
+# ------------------------------------------------------------------ facts of the trade, end to end
+
+def _cost_of(proto: object, tmp_path_factory: pytest.TempPathFactory, dims: dict[str, int],
+             target_name: str = "ws-64x64-4mib", precision: str = "int8"):  # noqa: ANN202
+    from gate.model.loader import load_model
+    from gate.profile import profile_model
+    from gate.synth.builder import save_model
+    from gate.targets import load_target
+
+    path = tmp_path_factory.mktemp("models") / "model.onnx"
+    save_model(proto, path)  # type: ignore[arg-type]
+    profile = profile_model(load_model(path, dims), precision)
+    return profile, cost_model(profile, load_target(target_name))
+
+
+def _peak_share(profile: ModelProfile, cost: object) -> float:
+    return profile.total_flops / cost.latency_s / cost.peak_flops_per_s  # type: ignore[attr-defined]
+
+
+@pytest.mark.parametrize("builder", ["resnet18", "resnet50", "vgg16"])
+def test_rebuilt_cnns_reach_a_quarter_to_three_quarters_of_peak_on_the_large_array(
+        builder: str, tmp_path_factory: pytest.TempPathFactory) -> None:
+    # Common practice, no source: standard CNNs at batch 1 on a large systolic edge array
+    # land roughly between 25 % and 75 % of peak throughput.
+    from gate.synth import archs
+
+    profile, cost = _cost_of(getattr(archs, builder)(), tmp_path_factory, {"batch": 1})
+    assert 0.25 <= _peak_share(profile, cost) <= 0.75
+    assert 0.25 <= cost.utilization <= 0.9
+
+
+@pytest.mark.parametrize("hidden, inputs", [(128, 40), (1024, 80)])
+def test_rebuilt_lstm_runs_under_two_percent_of_peak_on_the_large_array(
+        hidden: int, inputs: int, tmp_path_factory: pytest.TempPathFactory) -> None:
+    # Common practice, no source: batch-1 recurrent steps (M = 1) leave a large
+    # weight-stationary array nearly idle.
+    from gate.synth import archs
+
+    proto = archs.recurrent_classifier("lstm", hidden_size=hidden, input_size=inputs)
+    profile, cost = _cost_of(proto, tmp_path_factory, {"batch": 1, "seq": 100})
+    assert _peak_share(profile, cost) < 0.02
+
+
+def test_speech_sized_lstm_energy_is_dominated_by_dram_parameter_traffic(
+        tmp_path_factory: pytest.TempPathFactory) -> None:
+    # Common practice, no source: an LSTM whose weights exceed the parameter buffer
+    # (speech-sized: 2 layers, hidden 1024, 4.2 MiB of recurrent weights per layer at
+    # int8) streams them from DRAM every step, and that traffic dominates its energy.
+    from gate.synth import archs
+
+    proto = archs.recurrent_classifier("lstm", hidden_size=1024, input_size=80)
+    _, cost = _cost_of(proto, tmp_path_factory, {"batch": 1, "seq": 100})
+    parts = cost.energy.as_dict()
+    assert max(parts, key=parts.__getitem__) == "dram_param_j"
+    assert parts["dram_param_j"] > 0.5 * cost.energy.total_j
+    lstm_layers = [layer for layer in cost.layers if layer.name in ("rnn1", "rnn2")]
+    assert lstm_layers and not any(layer.params_fit for layer in lstm_layers)
+
+
+def _single_conv(channels_in: int, channels_out: int, size: int, group: int) -> object:
+    from onnx import TensorProto, helper
+
+    x = helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, channels_in, size, size])
+    y = helper.make_tensor_value_info("y", TensorProto.FLOAT, None)
+    w = helper.make_tensor("w", TensorProto.FLOAT, [channels_out, channels_in // group, 3, 3],
+                           [0.0] * (channels_out * channels_in // group * 9))
+    conv = helper.make_node("Conv", ["x", "w"], ["y"], group=group, pads=[1, 1, 1, 1], name="conv")
+    graph = helper.make_graph([conv], "conv", [x], [y], initializer=[w])
+    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+
+
+@pytest.mark.parametrize("target_name", ["ws-64x64-4mib", "os-16x16-512kib"])
+def test_onnx_depthwise_conv_underfills_the_array_against_a_standard_conv_of_equal_macs(
+        target_name: str, tmp_path_factory: pytest.TempPathFactory) -> None:
+    # Common practice, no source. 3x3 depthwise over 64 channels at 56x56 and a standard
+    # 3x3 conv 64 -> 64 at 7x7 both do 56*56*64*9 = 7*7*64*576 = 1,806,336 MACs.
+    dw_profile, dw = _cost_of(_single_conv(64, 64, 56, 64), tmp_path_factory, {}, target_name)
+    std_profile, std = _cost_of(_single_conv(64, 64, 7, 1), tmp_path_factory, {}, target_name)
+    assert dw_profile.total_macs == std_profile.total_macs == 1_806_336
+    assert dw.utilization < std.utilization / 10
