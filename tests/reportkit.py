@@ -11,7 +11,17 @@ from __future__ import annotations
 from dataclasses import replace
 
 from gate.records import LAYER_METRICS, MODEL_METRICS, TARGET_FIGURES, LayerRecord, RunRecord
-from gate.result import FAIL, PASS, WAIVED, Entry, Finding, GateResult, LayerChange, RunDiff, Verdict
+from gate.result import (
+    FAIL,
+    PASS,
+    WAIVED,
+    Entry,
+    Finding,
+    GateResult,
+    LayerChange,
+    RunDiff,
+    Verdict,
+)
 
 HOSTILE = "<img src=x onerror=alert(1)>"
 PEAK_FLOPS_PER_S = 2.0e12  # a made-up target: 2 TFLOP/s peak, 25 GB/s DRAM (ridge at 80 FLOP/B)

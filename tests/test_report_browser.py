@@ -15,10 +15,10 @@ from pathlib import Path
 
 import pytest
 
-pytest.importorskip("matplotlib")
+from gate.report.html import render
+from tests.reportkit import demo_result
 
-from gate.report.html import render  # noqa: E402
-from tests.reportkit import demo_result  # noqa: E402
+pytest.importorskip("matplotlib")  # the charts need the html extra
 
 pytestmark = pytest.mark.browser
 CHROMIUM_FLAGS = (

@@ -20,16 +20,22 @@ from pathlib import Path
 
 import pytest
 
-pytest.importorskip("matplotlib")
-
-from gate.errors import InputError  # noqa: E402
-from gate.report import all_reporters, charts, write_report  # noqa: E402
-from gate.report.html import REPORTER, render  # noqa: E402
-from gate.result import FAIL, PASS, Entry, GateResult, ModelError  # noqa: E402
-from tests.reportkit import (  # noqa: E402
-    DRAM_BYTES_PER_S, HOSTILE, PEAK_FLOPS_PER_S, cnn_layers, demo_result, make_layer, make_run,
+from gate.errors import InputError
+from gate.report import all_reporters, charts, write_report
+from gate.report.html import REPORTER, render
+from gate.result import FAIL, PASS, Entry, GateResult, ModelError
+from tests.reportkit import (
+    DRAM_BYTES_PER_S,
+    HOSTILE,
+    PEAK_FLOPS_PER_S,
+    cnn_layers,
+    demo_result,
+    make_layer,
+    make_run,
     make_verdict,
 )
+
+pytest.importorskip("matplotlib")  # the charts need the html extra
 
 SVG_NS = "{http://www.w3.org/2000/svg}"
 XLINK_HREF = "{http://www.w3.org/1999/xlink}href"
@@ -74,7 +80,7 @@ def _parse(page: str) -> _Tree:
 
 
 def _svgs(page: str) -> list[ET.Element]:
-    return [ET.fromstring(m.group()) for m in re.finditer(r"<svg\b.*?</svg>", page, re.S)]
+    return [ET.fromstring(m.group()) for m in re.finditer(r"<svg\b.*?</svg>", page, re.DOTALL)]
 
 
 def _by_id(svg: ET.Element, gid: str) -> ET.Element | None:
@@ -149,7 +155,7 @@ def test_no_external_references(demo_page: str) -> None:
 
 
 def test_inline_script_is_the_one_the_policy_allows(demo_page: str) -> None:
-    script = re.search(r"<script>(.*?)</script>", demo_page, re.S).group(1)
+    script = re.search(r"<script>(.*?)</script>", demo_page, re.DOTALL).group(1)
     digest = base64.b64encode(hashlib.sha256(script.encode()).digest()).decode()
     assert f"'sha256-{digest}'" in demo_page
 
@@ -259,7 +265,7 @@ def test_huge_model_plots_top_layers_and_says_how_many_were_left_out() -> None:
     assert int(bars.get("data-layers-shown")) == charts.MAX_BAR_LAYERS
     assert _bar_ids(bars, "e0-layers-latency") == list(range(charts.MAX_BAR_LAYERS))
     assert "390 layers more in the table below" in page
-    rows = re.search(r"<h3>Layers</h3>.*?<tbody>(.*?)</tbody>", page, re.S).group(1)
+    rows = re.search(r"<h3>Layers</h3>.*?<tbody>(.*?)</tbody>", page, re.DOTALL).group(1)
     assert rows.count("<tr") == 420  # the table keeps every layer
 
 
@@ -281,7 +287,7 @@ def test_audit_index_lists_models_by_worst_verdict_with_trend() -> None:
     result = replace(demo_result(), command="audit",
                      errors=(ModelError("models/broken.onnx", "not an ONNX file"),))
     page = render(result)
-    overview = re.search(r'id="overview-table".*?</table>', page, re.S).group()
+    overview = re.search(r'id="overview-table".*?</table>', page, re.DOTALL).group()
     order = re.findall(r'<td class="name">(?:<a href="#e\d+">)?([^<]+)', overview)
     assert order == ["models/broken.onnx", "models/trailcam/species.onnx",
                      "models/handheld/wakeword.onnx"]  # not analysed, fail, warning

@@ -23,7 +23,11 @@ from click.testing import CliRunner
 
 from gate.report import all_reporters, report_options
 from gate.report.sarif import (
-    MODEL_ERROR_RULE, REPORTER, SARIF_SCHEMA_URI, artifact_uri, sarif_level, sarif_log,
+    MODEL_ERROR_RULE,
+    REPORTER,
+    SARIF_SCHEMA_URI,
+    artifact_uri,
+    sarif_level,
 )
 from gate.report.text import term_safe
 from gate.result import FAIL, PASS, WAIVED, Entry, GateResult, ModelError
@@ -191,7 +195,7 @@ def _html_failures(result: GateResult) -> tuple[set, set]:
     page = render(result)
     blocking, warnings = set(), set()
     for section in re.finditer(r'<section [^>]*data-model="([^"]*)" data-target="([^"]*)">(.*?)'
-                               r"</section>", page, re.S):
+                               r"</section>", page, re.DOTALL):
         for rule, verdict in re.findall(r'data-rule="([^"]*)" data-verdict="([^"]*)"',
                                         section.group(3)):
             key = (section.group(1), section.group(2), rule)
@@ -237,8 +241,26 @@ def test_junit_sarif_and_html_agree_on_failed_rules(result: GateResult) -> None:
 @pytest.mark.parametrize("result", [demo_result(), _agreement_result()], ids=["demo", "grid"])
 def test_markdown_agrees_on_failed_rules(result: GateResult) -> None:
     blocking, warnings = _expected(result)
+    assert _markdown_failures(result) == (blocking, warnings)
+
+
+def _unescape(cell: str) -> str:
+    return re.sub(r"\\(.)", r"\1", cell.strip())
+
+
+def _markdown_failures(result: GateResult) -> tuple[set, set]:
+    """(model, target, rule) of the rows of each "Failed rules" table of the PR comment."""
     markdown = pytest.importorskip("gate.report.markdown")
     text = io.StringIO()
     markdown.REPORTER.write(result, text)
-    for model, target, rule in blocking | warnings:
-        assert rule in text.getvalue() and model in text.getvalue()
+    blocking, warnings = set(), set()
+    for block in text.getvalue().split("<details>")[1:]:
+        model = re.search(r"<summary>(.*?): ", block).group(1)
+        for section in block.split("\n#### ")[1:]:
+            target, _, body = section.partition("\n")
+            table = body.partition("**Failed rules**")[2].strip().split("\n\n")[0]
+            for row in table.splitlines()[2:]:
+                cells = row.strip("|").split("|")
+                key = (model, target.strip(), _unescape(cells[0]))
+                (blocking if "error" in cells[1] else warnings).add(key)
+    return blocking, warnings

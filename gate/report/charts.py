@@ -19,8 +19,9 @@ from __future__ import annotations
 import io
 import math
 import re
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Mapping, Sequence
+from typing import Any
 
 from gate.errors import InputError
 from gate.records import LayerRecord, RunRecord
@@ -154,7 +155,7 @@ def figure_to_svg(fig: Any, chart_id: str, data: Mapping[str, object], label: st
                                                   "Format": None, "Type": None})
     svg = buf.getvalue()
     svg = svg[svg.index("<svg"):]  # drop the XML declaration and DOCTYPE (external DTD)
-    svg = re.sub(r"<!--.*?-->", "", svg, flags=re.S)
+    svg = re.sub(r"<!--.*?-->", "", svg, flags=re.DOTALL)
     # matplotlib numbers its unnamed groups per figure (axes_1, text_3): make them page-unique.
     svg = re.sub(r'id="([A-Za-z][A-Za-z0-9.]*_\d+)"', rf'id="{chart_id}-\1"', svg)
     for sentinel, prop in _SENTINELS.items():

@@ -12,13 +12,19 @@ verdicts and the diff.
 
 from __future__ import annotations
 
-from typing import Mapping, Sequence, TextIO
+from collections.abc import Mapping, Sequence
+from typing import TextIO
 
 from gate.records import LayerRecord, Metric, RunRecord
 from gate.report import charts
 from gate.report.html_assets import CONTENT_SECURITY_POLICY, CSS, SCRIPT
-from gate.report.html_tables import (delta_class, entry_anchor, layer_table, overview_table,
-                                     rules_table)
+from gate.report.html_tables import (
+    delta_class,
+    entry_anchor,
+    layer_table,
+    overview_table,
+    rules_table,
+)
 from gate.report.text import fmt_delta, fmt_metric, html_escape
 from gate.result import FAIL, Entry, GateResult
 
@@ -127,14 +133,14 @@ def _entry_section(entry: Entry, index: int) -> str:
     run = entry.head or entry.base
     name = run.model_name if run else entry.model
     status = "fail" if entry.status == FAIL else "pass"
-    parts = [
+    parts = [(
         f"<section class=\"card st-{status} entry\" id=\"{anchor}\" "
         f"data-model=\"{html_escape(entry.model)}\" data-target=\"{html_escape(entry.target)}\">\n"
         f"<h2><span class=\"model\">{html_escape(name)}</span> on "
         f"<code>{html_escape(entry.target)}</code> "
         f"<span class=\"chip v-{status}\">{status}</span></h2>\n"
         f"<p class=\"sub\">model file <code class=\"name\">{html_escape(entry.model)}</code>"
-        f"{_precision(entry.head)}{_baseline_note(entry)}</p>\n"
+        f"{_precision(entry.head)}{_baseline_note(entry)}</p>\n")
     ]
     if entry.head is None:
         parts.append("<p class=\"note\">This model was removed in this change; its rules are "
@@ -230,7 +236,7 @@ def base_latencies(entry: Entry) -> Mapping[str, float]:
     for change in entry.diff.layers:
         if change.head_name is None or change.base_name is None:
             continue
-        layer = base_layers.get(change.base_name)
-        if layer is not None and "latency_s" in layer.metrics:
-            out[change.head_name] = float(layer.metrics["latency_s"])
+        matched = base_layers.get(change.base_name)
+        if matched is not None and "latency_s" in matched.metrics:
+            out[change.head_name] = float(matched.metrics["latency_s"])
     return out

@@ -8,11 +8,11 @@ Every model-supplied string goes through ``html_escape``.
 from __future__ import annotations
 
 import math
-from typing import Sequence
+from collections.abc import Sequence
 
 from gate.records import LayerRecord, Metric, RunRecord
 from gate.report.text import fmt_delta, fmt_metric, fmt_percent, html_escape
-from gate.result import FAIL, PASS, WAIVED, Entry, GateResult, Verdict
+from gate.result import FAIL, PASS, WAIVED, Entry, Finding, GateResult, Verdict
 
 # Worst-first ranks of an entry's verdicts: (rank, css class, label).
 NOT_ANALYSED = (-1, "v-error", "not analysed")
@@ -131,8 +131,8 @@ def _overview_row(entry: Entry, index: int, verdict: tuple[int, str, str]) -> st
     rank, css, label = verdict
     failed = ", ".join(f"<code>{html_escape(v.rule_id)}</code>"
                        for v in entry.verdicts if v.status == FAIL) or "\u2013"
-    cells = [f"<td class=\"name\"><a href=\"#{entry_anchor(index)}\">{html_escape(entry.model)}"
-             f"</a></td>", f"<td><code>{html_escape(entry.target)}</code></td>",
+    cells = [(f"<td class=\"name\"><a href=\"#{entry_anchor(index)}\">"
+              f"{html_escape(entry.model)}</a></td>"), f"<td><code>{html_escape(entry.target)}</code></td>",
              f"<td data-v=\"{rank}\"><span class=\"chip {css}\">{label}</span></td>",
              f"<td>{failed}</td>"]
     for metric in ("latency_s", "energy_j"):
@@ -149,8 +149,8 @@ def _overview_row(entry: Entry, index: int, verdict: tuple[int, str, str]) -> st
 
 def _totals(entry: Entry, metric: str) -> tuple[Metric | None, Metric | None]:
     if entry.diff is not None and metric in entry.diff.totals:
-        base, head = entry.diff.totals[metric]
-        return (base if entry.base else None), (head if entry.head else None)
+        old, new = entry.diff.totals[metric]
+        return (old if entry.base else None), (new if entry.head else None)
     base = entry.base.metrics.get(metric) if entry.base else None
     head = entry.head.metrics.get(metric) if entry.head else None
     return base, head
@@ -176,15 +176,16 @@ def rules_table(verdicts: Sequence[Verdict]) -> str:
     return _table(headers, rows, sortable=False)
 
 
-def _finding_row(finding: object) -> str:
-    layer = getattr(finding, "layer")
-    where = f"layer <span class=\"name\">{html_escape(layer)}</span>" if layer else "model"
+def _finding_row(finding: Finding) -> str:
+    where = "model"
+    if finding.layer is not None:
+        where = f"layer <span class=\"name\">{html_escape(finding.layer)}</span>"
     waiver = ""
-    if getattr(finding, "status") == WAIVED:
-        waiver = (f" <em>Waived: {html_escape(getattr(finding, 'waiver_reason'))}"
-                  f" (until {html_escape(getattr(finding, 'waiver_expires') or 'no date')}).</em>")
+    if finding.status == WAIVED:
+        waiver = (f" <em>Waived: {html_escape(finding.waiver_reason)}"
+                  f" (until {html_escape(finding.waiver_expires or 'no date')}).</em>")
     return (f"<tr class=\"finding\"><td></td><td colspan=\"4\">{where}: "
-            f"{html_escape(getattr(finding, 'message'))}{waiver}</td></tr>")
+            f"{html_escape(finding.message)}{waiver}</td></tr>")
 
 
 # --- layers ---------------------------------------------------------------------

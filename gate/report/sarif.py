@@ -23,7 +23,8 @@ from __future__ import annotations
 
 import hashlib
 import json
-from typing import Any, Sequence, TextIO
+from collections.abc import Sequence
+from typing import Any, TextIO
 from urllib.parse import quote
 
 from gate import __version__
@@ -172,7 +173,7 @@ def _finding_props(finding: Finding) -> dict[str, Any]:
 
 
 def _fingerprint(verdict: Verdict) -> str:
-    key = "\x1f".join((verdict.rule_id, verdict.model, verdict.target))
+    key = f"{verdict.rule_id}\x1f{verdict.model}\x1f{verdict.target}"
     return hashlib.sha256(key.encode("utf-8", "surrogatepass")).hexdigest()[:32]
 
 
