@@ -81,3 +81,10 @@ def test_symbolic_or_unknown_shapes_are_unmodelled():
     with pytest.raises(Unmodelled, match="unknown"):
         from tests.opkit import ti
         cost_function_for("", "Relu")(node("Relu", [ti("x", None)], [None]))
+
+
+def test_dim_left_unknown_by_shape_inference_is_not_called_symbolic():
+    from gate.model.convert import UNKNOWN_DIM
+    with pytest.raises(Unmodelled, match="left unknown") as info:
+        cost_function_for("", "Relu")(node("Relu", [(1, UNKNOWN_DIM)], [None]))
+    assert "--dim" not in info.value.reason

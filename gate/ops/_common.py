@@ -11,6 +11,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import replace
 from math import prod
 
+from gate.model.convert import UNKNOWN_DIM
 from gate.model.graph import Node, TensorInfo
 from gate.ops.registry import GemmShape, OpWork, Unmodelled
 
@@ -24,6 +25,8 @@ def static_shape(tensor: TensorInfo | None, role: str) -> StaticShape:
     if tensor.shape is None:
         raise Unmodelled(f"shape of {role} '{tensor.name}' is unknown (shape inference found no rank)")
     symbolic = tensor.symbolic_dims()
+    if UNKNOWN_DIM in symbolic:
+        raise Unmodelled(f"{role} '{tensor.name}' has a dim shape inference left unknown")
     if symbolic:
         dim = symbolic[0]
         raise Unmodelled(

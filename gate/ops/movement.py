@@ -41,4 +41,5 @@ def dropout(node: Node) -> OpWork:
 @register(*MOVEMENT_OPS)
 def move(node: Node) -> OpWork:
     """Elements written across all outputs (Split writes every piece)."""
-    return movement(sum(numel(output_shape(node, i)) for i in range(len(node.outputs))))
+    written = [i for i, out in enumerate(node.outputs) if out.name]  # "" = omitted output
+    return movement(sum(numel(output_shape(node, i)) for i in written))
