@@ -45,25 +45,30 @@ def dtype_name(elem_type: int) -> str:
         return "UNDEFINED"
 
 
-def _dims(shape: onnx.TensorShapeProto) -> tuple[int | str, ...]:
+def _dims(shape: onnx.TensorShapeProto, declared: frozenset[str] | None) -> tuple[int | str, ...]:
     out: list[int | str] = []
     for dim in shape.dim:
         if dim.HasField("dim_value") and dim.dim_value >= 0:
             out.append(int(dim.dim_value))
-        elif dim.HasField("dim_param") and dim.dim_param:
+        elif dim.HasField("dim_param") and dim.dim_param and (
+                declared is None or dim.dim_param in declared):
             out.append(dim.dim_param)
         else:
             out.append(UNKNOWN_DIM)
     return tuple(out)
 
 
-def value_info(value: onnx.ValueInfoProto) -> TensorInfo:
-    """A ValueInfoProto as TensorInfo; non-tensor types (sequence, map, optional) have no shape."""
+def value_info(value: onnx.ValueInfoProto, declared: frozenset[str] | None = None) -> TensorInfo:
+    """A ValueInfoProto as TensorInfo; non-tensor types (sequence, map, optional) have no shape.
+
+    A ``dim_param`` not in ``declared`` (when given) was invented by shape
+    inference for a data-dependent dim; no ``--dim`` can bind it, so it is unknown.
+    """
     kind = value.type.WhichOneof("value")
     if kind not in ("tensor_type", "sparse_tensor_type"):
         return TensorInfo(value.name, None, "UNDEFINED")
     tensor = getattr(value.type, kind)
-    shape = _dims(tensor.shape) if tensor.HasField("shape") else None
+    shape = _dims(tensor.shape, declared) if tensor.HasField("shape") else None
     return TensorInfo(value.name, shape, dtype_name(tensor.elem_type))
 
 
@@ -93,8 +98,9 @@ def _small_int_values(tensor: TensorProto) -> tuple[int, ...] | None:
 class _Converter:
     """Converts one model; holds the per-model state (warnings, used layer names)."""
 
-    def __init__(self, path: str) -> None:
+    def __init__(self, path: str, declared: frozenset[str] | None) -> None:
         self.path = path
+        self.declared = declared
         self.warnings: list[str] = []
 
     def graph(self, proto: onnx.GraphProto, outer: _Scope | None, depth: int) -> Graph:
@@ -105,10 +111,11 @@ class _Converter:
         params: dict[str, TensorInfo] = {}
         consts: dict[str, tuple[int, ...]] = {}
         initializers = self._initializers(proto, infos, params, consts)
-        inputs = tuple(value_info(v) for v in proto.input if v.name not in initializers)
+        inputs = tuple(value_info(v, self.declared) for v in proto.input
+                       if v.name not in initializers)
         for value in (*proto.input, *proto.value_info, *proto.output):
             if value.name not in initializers or value.type.tensor_type.HasField("shape"):
-                infos.setdefault(value.name, value_info(value))
+                infos.setdefault(value.name, value_info(value, self.declared))
         for node in proto.node:  # every produced name is in scope, shaped or not
             for name in node.output:
                 if name and name not in infos:
@@ -127,7 +134,8 @@ class _Converter:
         nodes = tuple(self._node(index, proto.node[i], ctx, depth, used_names)
                       for index, i in enumerate(order))
         return Graph(nodes=nodes, initializers=initializers, inputs=inputs,
-                     outputs=tuple(scope.get(v.name) or value_info(v) for v in proto.output))
+                     outputs=tuple(scope.get(v.name) or value_info(v, self.declared)
+                                   for v in proto.output))
 
     def _initializers(self, proto: onnx.GraphProto, infos: dict[str, TensorInfo],
                       params: dict[str, TensorInfo],
@@ -238,9 +246,13 @@ def _plain_attribute(attribute: AttributeProto) -> Any:
     return value
 
 
-def convert_model(proto: onnx.ModelProto, path: str) -> tuple[Graph, list[str]]:
-    """The model's main graph and the warnings found while converting it."""
-    converter = _Converter(path)
+def convert_model(proto: onnx.ModelProto, path: str,
+                  declared: frozenset[str] | None = None) -> tuple[Graph, list[str]]:
+    """The model's main graph and the warnings found while converting it.
+
+    ``declared``: the symbolic dims the file itself declares (before inference).
+    """
+    converter = _Converter(path, declared)
     graph = converter.graph(proto.graph, None, 0)
     return graph, converter.warnings
 

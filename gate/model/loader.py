@@ -62,7 +62,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
         proto, inference_warning = _infer_in_memory(proto)
     if inference_warning:
         warnings.append(inference_warning)
-    graph, more_warnings = convert_model(proto, text_path)
+    graph, more_warnings = convert_model(proto, text_path, frozenset(declared))
     warnings.extend(more_warnings)
     return LoadedModel(
         path=text_path,
