@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 from typing import Sequence, TextIO
 
 from gate.diff import ranked_changes
-from gate.report.text import (fmt_delta, fmt_metric, html_escape, md_escape, relative_change,
+from gate.report.text import (fmt_change, fmt_delta, fmt_metric, html_escape, md_escape,
                               shorten)
 from gate.result import FAIL, WAIVED, Entry, GateResult, LayerChange, Verdict
 
@@ -356,12 +356,8 @@ def _layer_cell(change: LayerChange, metric: str) -> str:
         return fmt_metric(metric, head)
     if change.status == "removed":
         return fmt_metric(metric, base)
-    if metric == "utilization" or metric.endswith("_share"):
-        ratio_text = fmt_delta(metric, base, head)
-    else:
-        ratio = relative_change(base, head)
-        ratio_text = "new" if ratio is None else f"{ratio * 100:+.1f}%"
-    return f"{fmt_metric(metric, base)} \u2192 {fmt_metric(metric, head)} ({ratio_text})"
+    return (f"{fmt_metric(metric, base)} \u2192 {fmt_metric(metric, head)} "
+            f"({fmt_change(metric, base, head)})")
 
 
 def _hard_cut(text: str, budget: int) -> str:

@@ -220,6 +220,20 @@ def fmt_delta(name: str, base: Metric, head: Metric) -> str:
     return f"{absolute} (new)" if ratio is None else f"{absolute} ({ratio * 100:+.1f}%)"
 
 
+def fmt_change(name: str, base: Metric, head: Metric) -> str:
+    """The compact change from ``base`` to ``head``: ``+3.0%``, ``-4.2 pp`` for shares,
+    ``+1.50 KiB`` from zero, ``=`` when equal."""
+    if base == head:
+        return "="
+    if name.endswith("_share") or name == "utilization":
+        return f"{(float(head) - float(base)) * 100:+.1f} pp"
+    ratio = relative_change(base, head)
+    if ratio is None:
+        sign = "+" if head > base else "-"
+        return f"{sign}{fmt_metric(name, abs(head - base))}"
+    return f"{ratio * 100:+.1f}%"
+
+
 def _three_digits(value: float) -> str:
     """Three significant digits, fixed-point: 1.23, 12.3, 123."""
     magnitude = abs(value)

@@ -1,0 +1,74 @@
+"""JSON results for machines: the whole ``GateResult``, versioned.
+
+The document is ``gate.result.result_to_dict`` wrapped with a format name and
+version, written deterministically (sorted keys, indent 2, floats rounded to
+12 significant digits, as baseline snapshots are), so the same result always
+gives the same bytes. ``read_result`` reads it back into a ``GateResult``.
+
+Layout::
+
+    {"format": "roofgate-result", "version": 1, "exit_code": 0|1|2,
+     "result": {command, policies, allow_errors, notes, errors, entries: [...]}}
+
+Version history (bump ``RESULT_VERSION`` on any change a reader must know about,
+and add a line here and in docs/reports.md):
+
+  1  first version.
+"""
+
+from __future__ import annotations
+
+import json
+from typing import Any, TextIO
+
+from gate.errors import InputError
+from gate.result import GateResult, result_from_dict, result_to_dict
+from gate.snapshot import canonical_json, check_format
+
+RESULT_FORMAT = "roofgate-result"
+RESULT_VERSION = 1
+
+
+class JsonReporter:
+    name = "json"
+    help = "Write the full result as versioned JSON to PATH"
+
+    def write(self, result: GateResult, stream: TextIO) -> None:
+        stream.write(render(result))
+
+
+REPORTER = JsonReporter()
+
+
+def result_document(result: GateResult) -> dict[str, Any]:
+    """The JSON-ready document of ``result``."""
+    return {"format": RESULT_FORMAT, "version": RESULT_VERSION, "exit_code": result.exit_code,
+            "result": result_to_dict(result)}
+
+
+def render(result: GateResult) -> str:
+    return canonical_json(result_document(result))
+
+
+def loads_result(text: str, path: str = "<result>") -> GateResult:
+    """Parse a JSON result document (``path`` only names it in messages)."""
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"not a roofgate result (invalid JSON at line {exc.lineno}: "
+                         f"{exc.msg})", path) from None
+    check_format(data, RESULT_FORMAT, RESULT_VERSION, path,
+                 remedy="rerun roofgate with this version to write it again")
+    try:
+        return result_from_dict(data["result"])
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        raise InputError(f"damaged roofgate result ({type(exc).__name__}: {exc})", path) from None
+
+
+def read_result(path: str) -> GateResult:
+    try:
+        with open(path, encoding="utf-8") as stream:
+            text = stream.read()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"cannot read the result file ({exc})", path) from None
+    return loads_result(text, path)
