@@ -16,7 +16,7 @@ from math import ceil
 from gate.errors import InputError
 from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
-from gate.targets.spec import EngineSpec, TargetProfile, normal_precision
+from gate.targets.spec import DATAFLOWS, EngineSpec, TargetProfile, normal_precision
 
 
 @dataclass(frozen=True, slots=True)
@@ -113,6 +113,7 @@ def cost_model(profile: ModelProfile, target: TargetProfile,
     ``weights_resident`` overrides the target's ``weights_resident`` setting
     (keep all parameters on chip across inferences when they fit).
     """
+    _check_target(target)
     explicit = _explicit_precision(profile.precision)
     model_precision = explicit or _dominant_precision(profile, target)
     target.precision_spec(model_precision)  # InputError naming target and precision
@@ -121,6 +122,18 @@ def cost_model(profile: ModelProfile, target: TargetProfile,
     ctx = _Context(target, explicit, model_precision, resident, profile.total_param_bytes)
     layers = tuple(_cost_layer(layer, ctx) for layer in profile.layers)
     return _totals(profile, target, ctx, layers, wanted)
+
+
+def _check_target(target: TargetProfile) -> None:
+    """Refuse a hand-built profile the arithmetic would divide by zero on."""
+    for what, value in (("clock", target.clock_hz), ("DRAM bandwidth", target.dram_bytes_per_s),
+                        ("PE count", target.pe_count)):
+        if value <= 0:
+            raise InputError(f"target '{target.name}' has no {what} (got {value}); declare one "
+                             f"above zero")
+    if target.dataflow not in DATAFLOWS:
+        raise InputError(f"target '{target.name}' has unknown dataflow '{target.dataflow}'; "
+                         f"use one of {', '.join(DATAFLOWS)}")
 
 
 # ---------------------------------------------------------------- precision

@@ -20,6 +20,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+Slot = tuple[int, float] | None  # (index the value belongs to, value), or an empty register
+
+
+def _grid(rows: int, cols: int) -> list[list[Slot]]:
+    return [[None] * cols for _ in range(rows)]
+
 
 @dataclass
 class SimResult:
@@ -57,27 +63,26 @@ def _ws_tile(a: list[list[float]], w: list[list[float]], out: list[list[float]],
     weights: list[list[float | None]] = [[None] * c for _ in range(r)]
     cycles = 0
     for t in range(r):
-        weights = [[w[k0 + r - 1 - t][n0 + j] for j in range(c)]] + weights[:-1]
+        fed: list[float | None] = [w[k0 + r - 1 - t][n0 + j] for j in range(c)]
+        weights = [fed, *weights[:-1]]
         cycles += 1
     assert all(weights[i][j] == w[k0 + i][n0 + j] for i in range(r) for j in range(c))
     # Stream: registers hold (row index m, value); None is an empty slot.
-    a_reg: list[list[tuple[int, float] | None]] = [[None] * c for _ in range(r)]
-    p_reg: list[list[tuple[int, float] | None]] = [[None] * c for _ in range(r)]
+    a_reg, p_reg = _grid(r, c), _grid(r, c)
     collected = macs = 0
     t = 0
     while collected < m_dim * c:
-        new_a = [[None] * c for _ in range(r)]
-        new_p = [[None] * c for _ in range(r)]
+        new_a, new_p = _grid(r, c), _grid(r, c)
         for i in range(r):
             for j in range(c):
                 if j == 0:
                     m = t - i
-                    a_in = (m, a[m][k0 + i]) if 0 <= m < m_dim else None
+                    a_in: Slot = (m, a[m][k0 + i]) if 0 <= m < m_dim else None
                 else:
                     a_in = a_reg[i][j - 1]
                 if a_in is None:
                     continue
-                p_in = (a_in[0], 0.0) if i == 0 else p_reg[i - 1][j]
+                p_in: Slot = (a_in[0], 0.0) if i == 0 else p_reg[i - 1][j]
                 assert p_in is not None and p_in[0] == a_in[0], "skew broken"
                 weight = weights[i][j]
                 assert weight is not None
@@ -113,22 +118,20 @@ def _os_tile(a: list[list[float]], w: list[list[float]], out: list[list[float]],
     k_dim = len(w)
     acc = [[0.0] * c for _ in range(r)]
     done = [[0] * c for _ in range(r)]
-    a_reg: list[list[tuple[int, float] | None]] = [[None] * c for _ in range(r)]
-    w_reg: list[list[tuple[int, float] | None]] = [[None] * c for _ in range(r)]
+    a_reg, w_reg = _grid(r, c), _grid(r, c)
     macs = t = 0
     while any(done[i][j] < k_dim for i in range(r) for j in range(c)):
-        new_a = [[None] * c for _ in range(r)]
-        new_w = [[None] * c for _ in range(r)]
+        new_a, new_w = _grid(r, c), _grid(r, c)
         for i in range(r):
             for j in range(c):
                 if j == 0:
                     k = t - i
-                    a_in = (k, a[m0 + i][k]) if 0 <= k < k_dim else None
+                    a_in: Slot = (k, a[m0 + i][k]) if 0 <= k < k_dim else None
                 else:
                     a_in = a_reg[i][j - 1]
                 if i == 0:
                     k = t - j
-                    w_in = (k, w[k][n0 + j]) if 0 <= k < k_dim else None
+                    w_in: Slot = (k, w[k][n0 + j]) if 0 <= k < k_dim else None
                 else:
                     w_in = w_reg[i - 1][j]
                 new_a[i][j], new_w[i][j] = a_in, w_in
@@ -149,7 +152,7 @@ def _os_tile(a: list[list[float]], w: list[list[float]], out: list[list[float]],
         assert out_vals is not None
         for j in range(c):
             out[m0 + out_row][n0 + j] = out_vals[j]
-        pending = [None] + pending[:-1]
+        pending = [None, *pending[:-1]]
         row_of = [-1] + row_of[:-1]
         t += 1
     return t, macs

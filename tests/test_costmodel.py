@@ -377,7 +377,7 @@ def test_costing_many_targets_scales_linearly() -> None:
 # ------------------------------------------------------------------ facts of the trade, end to end
 
 def _cost_of(proto: object, tmp_path_factory: pytest.TempPathFactory, dims: dict[str, int],
-             target_name: str = "ws-64x64-4mib", precision: str = "int8"):  # noqa: ANN202
+             target_name: str = "ws-64x64-4mib", precision: str = "int8"):
     from gate.model.loader import load_model
     from gate.profile import profile_model
     from gate.synth.builder import save_model
@@ -454,3 +454,8 @@ def test_onnx_depthwise_conv_underfills_the_array_against_a_standard_conv_of_equ
     std_profile, std = _cost_of(_single_conv(64, 64, 7, 1), tmp_path_factory, {}, target_name)
     assert dw_profile.total_macs == std_profile.total_macs == 1_806_336
     assert dw.utilization < std.utilization / 10
+
+
+def test_hand_built_target_without_bandwidth_is_refused() -> None:
+    with pytest.raises(InputError, match="no DRAM bandwidth"):
+        cost_model(make_profile(gemm_layer((GemmShape(4, 4, 4),))), make_target(dram_bytes_per_s=0))

@@ -111,13 +111,13 @@ def test_wrong_types_and_units_are_all_reported_at_once() -> None:
 
 @pytest.mark.parametrize("old, new, expected", [
     ("dataflow: output-stationary", "dataflow: weight-stationery",
-     "array.dataflow: 'weight-stationery' is not one of weight-stationary, output-stationary, "
-     "matrix-vector, vector (did you mean 'weight-stationary'?)"),
+     ("array.dataflow: 'weight-stationery' is not one of weight-stationary, output-stationary, "
+      "matrix-vector, vector (did you mean 'weight-stationary'?)")),
     ("    int8: {", "    int7: {", "array.precisions.int7: unknown precision 'int7' (did you mean"),
-    ("  Softmax: host", "  Softmx: host", "placement.Softmx: 'Softmx' is not an ONNX op type "
-                                          "(did you mean 'Softmax'?)"),
-    ("  Softmax: host", "  Softmax: hots", "placement.Softmax: 'hots' is not one of array, vector, "
-                                           "host (did you mean 'host'?)"),
+    ("  Softmax: host", "  Softmx: host",
+     "placement.Softmx: 'Softmx' is not an ONNX op type (did you mean 'Softmax'?)"),
+    ("  Softmax: host", "  Softmax: hots",
+     "placement.Softmax: 'hots' is not one of array, vector, host (did you mean 'host'?)"),
     ("  unified: 1 MiB", "  unified: 1 MiB\n  parameter: 1 MiB", "buffers.unified: declare either"),
     ("  unified: 1 MiB", "  parameter: 1 MiB", "buffers.activation: declare both"),
     ("  unified: 1 MiB", "  unified: 1.5 B", "buffers.unified: must be a whole number of bytes"),

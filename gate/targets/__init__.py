@@ -7,7 +7,7 @@ path of a user's YAML file; built-in profiles ship as package data in
 
 from __future__ import annotations
 
-from functools import lru_cache
+from functools import cache
 from importlib import resources
 from pathlib import Path
 
@@ -74,10 +74,10 @@ def _check_builtin(name: str) -> None:
 
 
 def _builtin_bytes(name: str) -> bytes:
-    return resources.files(_BUILTIN_PACKAGE).joinpath(_BUILTIN_DIR, f"{name}.yaml").read_bytes()
+    return resources.files(_BUILTIN_PACKAGE).joinpath(_BUILTIN_DIR).joinpath(f"{name}.yaml").read_bytes()
 
 
-@lru_cache(maxsize=None)
+@cache
 def _load_builtin(name: str) -> TargetProfile:
     shown = f"gate/targets/builtin/{name}.yaml"
     return parse_target_bytes(_builtin_bytes(name), shown, source="builtin")

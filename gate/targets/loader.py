@@ -23,7 +23,14 @@ from gate.targets.spec import (
     TargetProfile,
     normal_precision,
 )
-from gate.yamlconf import Section, YamlDocument, parse_yaml_bytes, read_yaml_file, scalar_value, suggest
+from gate.yamlconf import (
+    Section,
+    YamlDocument,
+    parse_yaml_bytes,
+    read_yaml_file,
+    scalar_value,
+    suggest,
+)
 
 
 def load_target_file(path: str | Path, source: str | None = None) -> TargetProfile:

@@ -10,9 +10,9 @@ documents every key.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
-from typing import Mapping
 
 from gate.errors import InputError
 
