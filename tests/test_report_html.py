@@ -310,6 +310,21 @@ def test_removed_model_new_model_and_empty_run_render() -> None:
     assert "no models changed" in empty and "<svg" not in empty
 
 
+def test_empty_model_and_non_finite_figures_render_without_warnings() -> None:
+    """Warnings are errors in this suite: NaN/inf must not reach matplotlib's transforms."""
+    layers = cnn_layers()
+    odd = dict(layers[0].metrics, arithmetic_intensity=float("nan"), latency_s=float("inf"))
+    layers[0] = replace(layers[0], metrics=odd)
+    layers[1] = replace(layers[1], metrics=dict(layers[1].metrics, energy_mac_j=float("nan")))
+    run = make_run("models/odd.onnx", "t", layers)
+    empty = make_run("models/empty.onnx", "t", [])
+    page = render(GateResult("check", (), (Entry(empty.model, "t", empty, None, None, ()),
+                                           Entry(run.model, "t", run, None, None, ()))))
+    _parse(page)
+    roofs = [s for s in _svgs(page) if s.get("data-chart") == "roofline"]
+    assert [r.get("data-head-points") for r in roofs] == ["0", "4"]  # NaN intensity: left out
+
+
 def test_identical_results_give_byte_identical_reports() -> None:
     assert render(demo_result(hostile=True)) == render(demo_result(hostile=True))
 

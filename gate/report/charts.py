@@ -98,7 +98,7 @@ def require_matplotlib() -> Any:
 
 def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSelection:
     """The layers of ``run`` placed on its roofline: top ``max_points`` by latency."""
-    total_s = float(run.metrics.get("latency_s", 0.0)) or 1.0
+    total_s = _finite(run.metrics, "latency_s") or 1.0
     plottable, unplottable = [], 0
     for layer in run.layers:
         ai = float(layer.metrics.get("arithmetic_intensity", 0.0))
@@ -111,7 +111,7 @@ def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSe
     points = tuple(
         RoofPoint(layer.name, float(layer.metrics["arithmetic_intensity"]),
                   float(layer.metrics["achieved_flops_per_s"]),
-                  float(layer.metrics.get("latency_s", 0.0)) / total_s)
+                  _finite(layer.metrics, "latency_s") / total_s)
         for layer in ranked[:max_points]
     )
     return RoofSelection(points, max(len(ranked) - max_points, 0), unplottable)
@@ -137,7 +137,13 @@ def chart_label(name: str, max_chars: int = 34) -> str:
 
 
 def _latency_rank(layer: LayerRecord) -> tuple[float, str]:
-    return (-float(layer.metrics.get("latency_s", 0.0)), layer.name)
+    return (-_finite(layer.metrics, "latency_s"), layer.name)
+
+
+def _finite(metrics: Mapping[str, float], name: str) -> float:
+    """A metric as a float, 0 when missing or not finite (never plotted as inf or NaN)."""
+    value = float(metrics.get(name, 0.0))
+    return value if math.isfinite(value) else 0.0
 
 
 def _positive(value: float) -> bool:
@@ -333,9 +339,9 @@ def layer_bars_figure(head: RunRecord, base_latency_s: Mapping[str, float], char
     with rc_context():
         fig = new_figure(10.5, 1.4 + 0.24 * max(len(layers), 3))
         left, right = fig.subplots(1, 2, sharey=True, width_ratios=(1, 1.35))
-        time_scale, time_unit = _scale([float(l.metrics.get("latency_s", 0.0)) for l in layers],
+        time_scale, time_unit = _scale([_finite(l.metrics, "latency_s") for l in layers],
                                        (("s", 1.0), ("ms", 1e-3), ("\u00b5s", 1e-6), ("ns", 1e-9)))
-        bars = left.barh(rows, [float(l.metrics.get("latency_s", 0.0)) / time_scale
+        bars = left.barh(rows, [_finite(l.metrics, "latency_s") / time_scale
                                 for l in layers], color=HEAD, height=0.68)
         _number_bars(bars, f"{chart_id}-latency")
         _draw_base_ticks(left, layers, base_latency_s, time_scale, chart_id)
@@ -358,7 +364,7 @@ def layer_bars_svg(head: RunRecord, base_latency_s: Mapping[str, float], chart_i
 def _draw_base_ticks(ax: Any, layers: Sequence[LayerRecord], base_latency_s: Mapping[str, float],
                      scale: float, chart_id: str) -> None:
     marks = [(row, base_latency_s[l.name] / scale) for row, l in enumerate(layers)
-             if l.name in base_latency_s]
+             if math.isfinite(base_latency_s.get(l.name, math.nan))]
     if marks:
         rows, values = zip(*marks)
         ax.plot(values, rows, marker="|", markersize=13, markeredgewidth=2.2, color=BASE,
@@ -367,12 +373,12 @@ def _draw_base_ticks(ax: Any, layers: Sequence[LayerRecord], base_latency_s: Map
 
 
 def _draw_energy(ax: Any, layers: Sequence[LayerRecord], chart_id: str) -> None:
-    totals = [sum(float(l.metrics.get(m, 0.0)) for m, _n, _c in ENERGY_PARTS) for l in layers]
+    totals = [sum(_finite(l.metrics, m) for m, _n, _c in ENERGY_PARTS) for l in layers]
     scale, unit = _scale(totals, (("J", 1.0), ("mJ", 1e-3), ("\u00b5J", 1e-6), ("nJ", 1e-9),
                                   ("pJ", 1e-12)))
     lefts = [0.0] * len(layers)
     for metric, label, colour in ENERGY_PARTS:
-        widths = [float(l.metrics.get(metric, 0.0)) / scale for l in layers]
+        widths = [_finite(l.metrics, metric) / scale for l in layers]
         bars = ax.barh(range(len(layers)), widths, left=lefts, color=colour, height=0.68,
                        label=label)
         _number_bars(bars, f"{chart_id}-{metric.replace('_', '-')}")
