@@ -11,12 +11,20 @@ from __future__ import annotations
 import textwrap
 from dataclasses import replace
 from datetime import date
+from pathlib import Path
 from typing import Any
 
 import pytest
 
 from gate.errors import InputError
-from gate.policy import allow_unanalysable, evaluate, evaluate_all, unused_waivers
+from gate.pipeline import analyse, judge
+from gate.policy import (
+    allow_unanalysable,
+    evaluate,
+    evaluate_all,
+    load_policies,
+    unused_waivers,
+)
 from gate.policy.load import read_policy
 from gate.policy.spec import Policy
 from gate.policy.thresholds import (
@@ -29,11 +37,13 @@ from gate.policy.thresholds import (
 )
 from gate.records import LAYER_METRICS, MODEL_METRICS, LayerRecord, RunRecord, UnmodelledRecord
 from gate.result import FAIL, PASS, WAIVED, LayerChange, RunDiff, Verdict
+from gate.synth.scenario import SPECIES_PATH, WAKEWORD_PATH, write_scenario
+from gate.targets import load_targets
 from gate.yamlconf import parse_yaml_bytes
 
 MiB = 2**20
 TODAY = date(2026, 12, 2)
-SPECIES = "models/trailcam/species.onnx"
+SPECIES = SPECIES_PATH
 TARGET = "ws-64x64-4mib"
 
 
@@ -354,7 +364,8 @@ def test_verdicts_keep_rule_order_and_carry_rule_fields() -> None:
     verdicts = evaluate(policy, _run(), None, None, today=TODAY)
     assert [(v.rule_id, v.kind, v.severity) for v in verdicts] == [
         ("b", "max_latency", "warning"), ("a", "max_energy", "error")]
-    assert verdicts[0].description == "fast enough" and verdicts[1].remedy == "ask the platform team"
+    assert verdicts[0].description == "fast enough"
+    assert verdicts[1].remedy == "ask the platform team"
     assert all(v.model == SPECIES and v.target == TARGET for v in verdicts)
 
 
@@ -456,3 +467,49 @@ def test_evaluate_all_and_allow_unanalysable() -> None:
     assert allow_unanalysable([lax]) is True
     assert allow_unanalysable([lax, strict]) is False  # fail closed: every policy must allow it
     assert allow_unanalysable([]) is False
+
+
+def test_regression_against_a_baseline_without_the_metric_says_it_was_not_checked() -> None:
+    base = _run()
+    old = replace(base, metrics={k: v for k, v in base.metrics.items() if k != "energy_j"})
+    verdict = _one(_policy("- {id: r, kind: max_regression, metric: energy_j, "
+                           "max_increase_pct: 1}"), _run(), old)
+    assert verdict.status == PASS and "regression not checked" in verdict.summary
+
+
+def test_new_model_passes_regression_rules_saying_there_is_no_baseline() -> None:
+    verdict = _one(_policy("- {id: r, kind: max_regression, metric: latency_s, "
+                           "max_increase_pct: 1}"), _run(), None)
+    assert (verdict.status, verdict.summary) == (
+        PASS, "no baseline for this model and target; regression not checked")
+
+
+# --- end to end on the fictional scenario, through the real pipeline ------------------------
+
+def test_default_policy_on_the_demo_pull_request(tmp_path: Path) -> None:
+    """The demo PR widens the species model's last stage: on the 4 MiB weight-stationary
+    target exactly one layer's parameters overflow the buffer. Its size is worked out from the
+    ONNX Conv weight shape (M x C/group x kH x kW, ONNX operator spec): 384 x 384 x 3 x 3
+    fp32 values = 5,308,416 bytes. The wake-word pruning is an improvement: no regression."""
+    targets = load_targets(["ws-64x64-4mib"])
+    runs: dict[str, list[RunRecord]] = {}
+    for variant in ("base", "pr"):
+        write_scenario(tmp_path / variant, variant)
+        runs[variant] = [r for p in (SPECIES_PATH, WAKEWORD_PATH)
+                         for r in analyse(str(tmp_path / variant / p), targets, shown_path=p)]
+    policies = load_policies([Path(__file__).resolve().parent.parent / "policies/default.yaml"])
+    result = judge(runs["pr"], runs["base"], policies, command="gate", today=TODAY)
+    verdicts = {(e.model, v.rule_id): v for e in result.entries for v in e.verdicts}
+
+    fit = verdicts[(SPECIES_PATH, "params-fit-buffer")]
+    (finding,) = fit.findings
+    assert (fit.status, finding.layer, finding.value) == (FAIL, "stage4.block1.conv2", 5_308_416)
+    assert finding.limit == 4 * MiB
+    assert "parameters 5.06 MiB exceed the 4.00 MiB parameter buffer" in finding.message
+    assert result.exit_code == 1
+
+    base_verdicts = judge(runs["base"], [], policies, command="gate", today=TODAY)
+    assert all(v.status == PASS for e in base_verdicts.entries for v in e.verdicts
+               if v.rule_id == "params-fit-buffer")
+    assert all(v.status == PASS for (model, rule), v in verdicts.items()
+               if model == WAKEWORD_PATH and "regression" in rule)

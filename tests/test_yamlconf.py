@@ -6,6 +6,7 @@ import resource
 import time
 from datetime import date
 from pathlib import Path
+from typing import Callable
 
 import pytest
 
@@ -13,13 +14,14 @@ from gate.errors import ConfigError
 from gate.yamlconf import (
     MAX_FILE_BYTES,
     MAX_NODES_VISITED,
+    Section,
     parse_quantity,
     parse_yaml_bytes,
     read_yaml_file,
 )
 
 
-def _problems(text: str | bytes, read) -> list[str]:  # noqa: ANN001  (a reader callback)
+def _problems(text: str | bytes, read: Callable[[Section], object]) -> list[str]:
     """Run ``read(root_section)`` over ``text``; the problems it recorded, in order."""
     raw = text.encode("utf-8") if isinstance(text, str) else text
     doc = parse_yaml_bytes(raw, "conf.yaml")
@@ -92,16 +94,19 @@ def test_python_tags_are_refused_not_constructed() -> None:
     ("p: lots\n", lambda r: r.get_share("p"),
      "conf.yaml:1: p: expected a share like 0.3 or '30%', got 'lots'"),
     ("x: .nan\n", lambda r: r.get_number("x"), "conf.yaml:1: x: must be a finite number"),
-    ("k: v\n", lambda r: r.get_str("mode", required=True), "conf.yaml:1: mode: required key is missing"),
+    ("k: v\n", lambda r: r.get_str("mode", required=True),
+     "conf.yaml:1: mode: required key is missing"),
     ("c: {a: 1}\n", lambda r: r.get_sections("c"), "conf.yaml:1: c: expected a list"),
     ("c: [1]\n", lambda r: r.get_sections("c"), "conf.yaml:1: c[0]: expected a mapping of keys"),
     ("choice: fast\n", lambda r: r.get_str("choice", choices=["faster", "slow"]),
      "conf.yaml:1: choice: 'fast' is not one of faster, slow (did you mean 'faster'?)"),
     ("a: 1\n<<: {b: 2}\n", lambda r: r.get_int("a"),
      "conf.yaml:2: merge keys ('<<') are not supported"),
-    ("- a\n- b\n", lambda r: None, "conf.yaml:1: the file must hold a mapping of keys at the top level"),
+    ("- a\n- b\n", lambda r: None,
+     "conf.yaml:1: the file must hold a mapping of keys at the top level"),
 ])
-def test_wrong_types_are_reported_with_line_and_key(text: str, getter, expected: str) -> None:  # noqa: ANN001
+def test_wrong_types_are_reported_with_line_and_key(text: str, getter: Callable[[Section], object],
+                                                    expected: str) -> None:
     assert _problems(text, getter)[0] == expected
 
 
@@ -135,7 +140,8 @@ def test_duplicate_keys_are_errors_not_last_one_wins() -> None:
         sub.get_int("x")
         sub.finish()
 
-    assert _problems(text, read) == ["conf.yaml:3: a: duplicate key", "conf.yaml:6: sub.x: duplicate key"]
+    assert _problems(text, read) == ["conf.yaml:3: a: duplicate key",
+                                     "conf.yaml:6: sub.x: duplicate key"]
 
 
 def test_every_problem_of_a_file_is_reported_at_once() -> None:

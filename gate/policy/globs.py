@@ -15,7 +15,7 @@ from functools import lru_cache
 
 
 def normalize_model_path(path: str) -> str:
-    """Forward slashes, no leading './' (so 'models\\\\a.onnx' and './models/a.onnx' match alike)."""
+    """Forward slashes and no leading './', so 'models\\\\a.onnx' and './models/a.onnx' match."""
     text = path.replace("\\", "/")
     while text.startswith("./"):
         text = text[2:]

@@ -217,7 +217,9 @@ def _fields_regression(sec: Section, level: str) -> dict[str, object] | None:
         if sec.has(key):
             sec.get_str(key)
             sec.bad(key, f"'{metric}' is better {'higher' if good == 'decrease' else 'lower'}, "
-                         f"so its regression is a {good}: use 'max_{good}_{key[-3:]}'")
+                         f"so its regression is "
+                         f"{'a decrease' if good == 'decrease' else 'an increase'}: "
+                         f"use 'max_{good}_{key[-3:]}'")
     pct = sec.get_number(f"max_{good}_pct", minimum=0.0)
     unit = spec.metric_unit(metric)
     absolute = (sec.get_share(f"max_{good}_abs") if unit == "share"
@@ -289,9 +291,11 @@ def _read_waiver(sec: Section, rules: dict[str, Rule]) -> Waiver | None:
     sec.finish()
     rule = rules.get(rule_id) if rule_id else None
     if rule_id is not None and rule is None:
-        sec.bad("rule", f"no rule with id '{rule_id}' in this policy{suggest(rule_id, list(rules))}")
+        hint = suggest(rule_id, list(rules))
+        sec.bad("rule", f"no rule with id '{rule_id}' in this policy{hint}")
     if rule is not None and layers and rule.level == spec.MODEL:
-        sec.bad("layers", f"rule '{rule_id}' checks the whole model; its waivers cannot name layers")
+        sec.bad("layers",
+                f"rule '{rule_id}' checks the whole model; its waivers cannot name layers")
     if rule is None or not reason or expires is None or not sec.has("models"):
         return None
     return Waiver(rule_id=rule.id, scope=Scope(models=models, targets=targets, layers=layers),

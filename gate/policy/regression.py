@@ -47,6 +47,9 @@ def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
         return Outcome((), 0, "", "no baseline for this model and target; regression not checked")
     pairs = _model_pairs(rule, head, base, diff) if rule.level == spec.MODEL else \
         _layer_pairs(rule, head, base, diff)
+    if rule.level == spec.MODEL and not pairs:
+        return Outcome((), 0, "", f"the baseline has no '{rule.metric}' (older roofgate?); "
+                                  "regression not checked: refresh the baseline")
     better_higher = spec.higher_is_better(rule.metric)
     allowed = allowed_text(rule)
     breaches = []

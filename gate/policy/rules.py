@@ -186,7 +186,8 @@ def check_metric_limit(rule: Rule, head: RunRecord, base: RunRecord | None,
 
 def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
                          diff: RunDiff | None) -> Outcome:
-    """Each layer's parameters / activations fit the target's on-chip buffers (cost model's call)."""
+    """Each layer's parameters / activations fit the target's on-chip buffers (the cost
+    model decides whether they fit; this check reports it)."""
     param_buffer = head.target_figures.get("param_buffer_bytes", 0)
     act_buffer = head.target_figures.get("activation_buffer_bytes", 0)
     layers = _scoped_layers(rule, head)
