@@ -1,0 +1,190 @@
+"""``roofgate profile`` through the real click group: formats, targets and hostile inputs."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import onnx
+import pytest
+from click.testing import CliRunner
+from onnx import helper, numpy_helper
+
+from gate.cli import cli
+from gate.cli.profile_render import CSV_FIELDS, CSV_TARGET_FIELDS
+from gate.model.loader import load_model
+from gate.profile import profile_model
+from gate.targets import builtin_target_names
+from loadkit import chain, deeply_nested_if, model, save, small_cnn, vi
+
+
+def _run(*args: str):
+    return CliRunner().invoke(cli, ["profile", *args])
+
+
+@pytest.fixture()
+def cnn(tmp_path: Path) -> Path:
+    return save(small_cnn(batch="batch"), tmp_path / "cnn.onnx")
+
+
+def test_table_has_layers_totals_and_coverage(cnn: Path) -> None:
+    result = _run(str(cnn), "--dim", "batch=1")
+    assert result.exit_code == 0, result.output
+    out = result.stdout
+    for name in ("conv1", "relu1", "pool1", "fc", "softmax"):
+        assert name in out
+    assert "total: 9 layers" in out and "coverage: 9/9 layers modelled" in out
+
+
+def test_table_reports_unbound_dim(cnn: Path) -> None:
+    result = _run(str(cnn))
+    assert result.exit_code == 0
+    assert "--dim batch=N" in result.stdout and "coverage: 2/9" in result.stdout
+
+
+def test_json_is_deterministic_and_matches_profile(cnn: Path) -> None:
+    first = _run(str(cnn), "--dim", "batch=2", "--format", "json")
+    second = _run(str(cnn), "--dim", "batch=2", "--format", "json")
+    assert first.exit_code == 0 and first.stdout == second.stdout
+    data = json.loads(first.stdout)
+    assert data["format"] == "roofgate-profile" and data["format_version"] == 1
+    expected = profile_model(load_model(cnn, {"batch": 2}))
+    assert data["totals"]["macs"] == expected.total_macs
+    assert data["totals"]["param_bytes"] == expected.total_param_bytes
+    conv = data["layers"][0]
+    assert conv["name"] == "conv1" and conv["outputs"][0]["shape"] == [2, 8, 8, 8]
+    assert conv["inputs"][1] == {"name": "w1", "shape": [8, 3, 3, 3], "dtype": "FLOAT"}
+    assert conv["macs"] == expected.layers[0].macs and conv["modelled"] is True
+    assert data["coverage"]["node_share"] == 1.0 and data["targets"] == []
+    assert first.stdout == json.dumps(data, sort_keys=True, indent=2) + "\n"  # sorted keys
+
+
+def test_csv_fields_and_rows(cnn: Path) -> None:
+    result = _run(str(cnn), "--dim", "batch=1", "--format", "csv")
+    rows = list(csv.DictReader(io.StringIO(result.stdout)))
+    assert tuple(rows[0]) == CSV_FIELDS and len(rows) == 9
+    assert rows[0]["output_shapes"] == "1x8x8x8" and rows[0]["modelled"] == "true"
+
+
+def test_precision_override_in_output(cnn: Path) -> None:
+    native = json.loads(_run(str(cnn), "--dim", "batch=1", "--format", "json").stdout)
+    int8 = json.loads(_run(str(cnn), "--dim", "batch=1", "--format", "json",
+                           "--precision", "int8").stdout)
+    assert int8["precision"] == "int8" and int8["totals"]["macs"] == native["totals"]["macs"]
+    assert int8["layers"][0]["param_bytes"] * 4 == native["layers"][0]["param_bytes"]
+
+
+def test_targets_side_by_side(cnn: Path) -> None:
+    names = builtin_target_names()[:2]
+    args = [str(cnn), "--dim", "batch=1"] + [a for n in names for a in ("--target", n)]
+    table = _run(*args)
+    assert table.exit_code == 0, table.output
+    assert all(f"on {n} (" in table.stdout for n in names)
+    data = json.loads(_run(*args, "--format", "json").stdout)
+    assert [t["target"] for t in data["targets"]] == names
+    layer = data["targets"][0]["layers"][0]
+    for metric in ("utilization", "latency_s", "energy_j", "param_dram_bytes", "act_dram_bytes"):
+        assert metric in layer["metrics"]
+    rows = list(csv.DictReader(io.StringIO(_run(*args, "--format", "csv").stdout)))
+    assert tuple(rows[0]) == CSV_FIELDS + CSV_TARGET_FIELDS and len(rows) == 9 * len(names)
+
+
+def test_hostile_names_are_cleaned(tmp_path: Path) -> None:
+    nodes = [helper.make_node("Relu", ["x"], ["y"], name="=cmd|evil\x1b[31m\nline")]
+    path = save(model(nodes, [vi("x", [2])], [vi("y", None)]), tmp_path / "m.onnx")
+    table = _run(str(path)).stdout
+    assert "\x1b" not in table and "evil" in table
+    assert not any(line.startswith("line") for line in table.splitlines())
+    rows = list(csv.DictReader(io.StringIO(_run(str(path), "--format", "csv").stdout)))
+    assert rows[0]["name"].startswith("'=")
+    data = json.loads(_run(str(path), "--format", "json").stdout)
+    assert data["layers"][0]["name"] == "=cmd|evil\x1b[31m\nline"  # JSON keeps it, escaped
+
+
+def test_custom_op_reported_as_unmodelled(tmp_path: Path) -> None:
+    proto = model([helper.make_node("Frobnicate", ["x"], ["y"], domain="vendor.x")],
+                  [vi("x", [2])], [vi("y", None)],
+                  extra_opsets=[helper.make_opsetid("vendor.x", 1)])
+    result = _run(str(save(proto, tmp_path / "m.onnx")))
+    assert result.exit_code == 0
+    assert "unmodelled: vendor.x.Frobnicate x1: no cost model" in result.stdout
+
+
+def test_external_data_outside_folder_warns_on_stderr(tmp_path: Path) -> None:
+    proto = model([helper.make_node("MatMul", ["x", "w"], ["y"])], [vi("x", [1, 4])],
+                  [vi("y", None)], [numpy_helper.from_array(np.ones((4, 4), np.float32), "w")])
+    path = tmp_path / "m.onnx"
+    onnx.save_model(proto, str(path), save_as_external_data=True, location="m.bin",
+                    size_threshold=0)
+    saved = onnx.load(str(path), load_external_data=False)
+    saved.graph.initializer[0].external_data[0].value = "../../elsewhere.bin"
+    onnx.save(saved, str(path))
+    result = _run(str(path))
+    assert result.exit_code == 0 and "outside the model's folder" in result.stderr
+
+
+def _write(content: bytes) -> Callable[[Path], Path]:
+    def make(folder: Path) -> Path:
+        path = folder / "bad.onnx"
+        path.write_bytes(content)
+        return path
+    return make
+
+
+def _save(proto_factory: Callable[[], onnx.ModelProto]) -> Callable[[Path], Path]:
+    return lambda folder: save(proto_factory(), folder / "bad.onnx")
+
+
+def _future_opset() -> onnx.ModelProto:
+    proto = chain(1)
+    proto.opset_import[0].version = onnx.defs.onnx_opset_version() + 1
+    return proto
+
+
+def _cycle() -> onnx.ModelProto:
+    nodes = [helper.make_node("Add", ["x", "b"], ["a"], name="loopy"),
+             helper.make_node("Relu", ["a"], ["b"])]
+    return model(nodes, [vi("x", [2])], [vi("b", [2])])
+
+
+HOSTILE = {
+    "empty": (_write(b""), "empty"),
+    "truncated": (_write(small_cnn().SerializeToString()[:100]), "cannot parse"),
+    "random": (_write(np.random.default_rng(1).bytes(2048)), "ONNX"),
+    "lfs": (_write(b"version https://git-lfs.github.com/spec/v1\noid sha256:ab\nsize 9\n"),
+            "git lfs pull"),
+    "not-a-model": (_write(numpy_helper.from_array(np.arange(9)).SerializeToString()), "ONNX"),
+    "no-graph": (_write(onnx.ModelProto(ir_version=8).SerializeToString()), "no graph"),
+    "future-opset": (_save(_future_opset), "upgrade onnx"),
+    "cycle": (_save(_cycle), "cycle"),
+    "too-deep": (_write(deeply_nested_if(300)), "nested too deeply"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(HOSTILE))
+def test_hostile_inputs_exit_2_with_one_line(tmp_path: Path, case: str) -> None:
+    make, expected = HOSTILE[case]
+    path = make(tmp_path)
+    result = _run(str(path))
+    assert result.exit_code == 2, result.output
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and str(path) in lines[0] and expected in lines[0]
+    assert "Traceback" not in result.output and result.stdout == ""
+
+
+@pytest.mark.parametrize("args", [["--dim", "batch"], ["--dim", "batch=-1"], ["--dim", "=3"],
+                                  ["--precision", "int7"], ["--target", "no-such-target"],
+                                  ["--format", "xml"]])
+def test_bad_options_exit_2(cnn: Path, args: list[str]) -> None:
+    result = _run(str(cnn), "--dim", "seq=1", *args) if args[0] != "--dim" else _run(str(cnn), *args)
+    assert result.exit_code == 2, result.output
+    assert "Traceback" not in result.output
+
+
+def test_missing_file_exit_2(tmp_path: Path) -> None:
+    result = _run(str(tmp_path / "absent.onnx"))
+    assert result.exit_code == 2 and "not found" in result.stderr
