@@ -70,6 +70,7 @@ _LEVELS = (
 @dataclass
 class _Render:
     limits: _Limits
+    squeezed: bool  # True when detail was cut to fit the comment limit
     left_out: int = 0
     lines: list[str] = field(default_factory=list)
 
@@ -77,7 +78,8 @@ class _Render:
         """Note that ``total - shown`` rows of ``what`` were left out."""
         if total > shown:
             self.left_out += total - shown
-            self.lines.append(f"\n_{total - shown} more {what} left out to fit the comment; "
+            why = " to fit the comment" if self.squeezed else ""
+            self.lines.append(f"\n_{total - shown} more {what} left out{why}; "
                               "see the JSON or HTML report._")
 
 
@@ -95,8 +97,8 @@ REPORTER = MarkdownReporter()
 def render(result: GateResult, budget: int = DEFAULT_BUDGET) -> str:
     """The comment text, at the most detailed level that fits ``budget`` characters."""
     text = ""
-    for limits in _LEVELS:
-        text = _render(result, limits)
+    for level, limits in enumerate(_LEVELS):
+        text = _render(result, limits, squeezed=level > 0)
         if comment_size(text) <= budget:
             return text
     return _hard_cut(text, budget)
@@ -107,8 +109,8 @@ def comment_size(text: str) -> int:
     return len(text.encode("utf-16-le")) // 2
 
 
-def _render(result: GateResult, limits: _Limits) -> str:
-    out = _Render(limits)
+def _render(result: GateResult, limits: _Limits, *, squeezed: bool = False) -> str:
+    out = _Render(limits, squeezed)
     out.lines += [MARKER, "", _verdict_line(result), ""]
     out.lines.append("_Analytical estimates from the model graph and target profiles, "
                      "not device measurements._")
@@ -120,7 +122,7 @@ def _render(result: GateResult, limits: _Limits) -> str:
         _sections(result, out)
     elif not result.errors:
         out.lines.append("\nNo model x target to gate in this run.")
-    if out.left_out:
+    if out.left_out and squeezed:
         out.lines.insert(3, f"\n_Trimmed to fit the {COMMENT_LIMIT_CHARS:,}-character comment "
                             f"limit: {out.left_out} rows left out._")
     return "\n".join(out.lines) + "\n"
@@ -375,4 +377,5 @@ def _hard_cut(text: str, budget: int) -> str:
 
 def rendered_sizes(result: GateResult) -> Sequence[int]:
     """Size of every detail level (for tests and for tuning ``_LEVELS``)."""
-    return [comment_size(_render(result, limits)) for limits in _LEVELS]
+    return [comment_size(_render(result, limits, squeezed=level > 0))
+            for level, limits in enumerate(_LEVELS)]

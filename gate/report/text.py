@@ -209,7 +209,7 @@ def fmt_delta(name: str, base: Metric, head: Metric) -> str:
     Shares change in percentage points (``-4.2 pp``); an unchanged value is ``=``;
     a change from zero has no percentage (``new``).
     """
-    if base == head:
+    if _same(base, head):
         return "="
     if name.endswith("_share") or name == "utilization":
         return f"{(float(head) - float(base)) * 100:+.1f} pp"
@@ -223,7 +223,7 @@ def fmt_delta(name: str, base: Metric, head: Metric) -> str:
 def fmt_change(name: str, base: Metric, head: Metric) -> str:
     """The compact change from ``base`` to ``head``: ``+3.0%``, ``-4.2 pp`` for shares,
     ``+1.50 KiB`` from zero, ``=`` when equal."""
-    if base == head:
+    if _same(base, head):
         return "="
     if name.endswith("_share") or name == "utilization":
         return f"{(float(head) - float(base)) * 100:+.1f} pp"
@@ -232,6 +232,11 @@ def fmt_change(name: str, base: Metric, head: Metric) -> str:
         sign = "+" if head > base else "-"
         return f"{sign}{fmt_metric(name, abs(head - base))}"
     return f"{ratio * 100:+.1f}%"
+
+
+def _same(base: Metric, head: Metric) -> bool:
+    """Equal, or floats equal up to the rounding a baseline snapshot applies (12 digits)."""
+    return base == head or math.isclose(float(base), float(head), rel_tol=1e-9)
 
 
 def _three_digits(value: float) -> str:
