@@ -297,11 +297,16 @@ def _draw_points(ax: Any, selection: RoofSelection, gid: str, label: str, *,
                alpha=0.72 if filled else 0.95, linewidths=1.0 if filled else 1.3)
 
 
+# Label offsets (points) for the annotated layers, alternating so neighbours do not overlap.
+_LABEL_OFFSETS = ((8, 6, "left"), (8, -12, "left"), (-8, 6, "right"))
+
+
 def _annotate(ax: Any, points: Sequence[RoofPoint]) -> None:
-    for point in points:
+    for point, (dx, dy, align) in zip(points, _LABEL_OFFSETS):
         ax.annotate(chart_label(point.name, 28),
                     (point.intensity_flop_per_byte, point.achieved_flops_per_s),
-                    xytext=(7, 5), textcoords="offset points", fontsize=7.5, color=MUTED)
+                    xytext=(dx, dy), textcoords="offset points", fontsize=7.5, color=MUTED,
+                    ha=align)
 
 
 def _finish_roofline_axes(ax: Any, lo: float, hi: float, head: RoofSelection,
@@ -316,7 +321,7 @@ def _finish_roofline_axes(ax: Any, lo: float, hi: float, head: RoofSelection,
     ax.set_ylim(10.0 ** math.floor(math.log10(bottom) - 0.3), top * 4)
     ax.xaxis.set_major_formatter(FuncFormatter(si_tick))
     ax.yaxis.set_major_formatter(FuncFormatter(si_tick))
-    ax.set_xlabel("arithmetic intensity (FLOP per DRAM byte)")
+    ax.set_xlabel("arithmetic intensity (FLOP per byte of parameters + activations moved)")
     ax.set_ylabel("attainable throughput (FLOP/s)")
     ax.grid(True, which="major", color=GRID, linewidth=0.7)
     ax.set_axisbelow(True)

@@ -210,6 +210,9 @@ def _charts(entry: Entry, anchor: str) -> str:
                        "on log axes)")
     if base is not None:
         caption.append("hollow markers are the base")
+    caption.append("intensity counts every byte a layer moves (parameters, inputs, outputs), "
+                   "so a layer whose activations stay in on-chip buffers can sit above the "
+                   "DRAM bandwidth slope")
     shown, left_out = charts.bar_layers(head)
     bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers")
     bar_caption = f"the {_layers(len(shown))} with the largest latency"

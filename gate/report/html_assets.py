@@ -55,6 +55,7 @@ border-radius:8px}
 table{border-collapse:collapse;width:100%;font-size:.84rem}
 th,td{padding:.3rem .55rem;border-bottom:1px solid var(--rg-grid);text-align:left;
 vertical-align:top}
+td.name{min-width:11rem}
 td.num,th.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 thead th{position:sticky;top:0;background:var(--rg-panel);border-bottom:2px solid var(--rg-line)}
 th button{all:unset;cursor:pointer;font-weight:700}
