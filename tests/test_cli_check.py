@@ -1,0 +1,223 @@
+"""End to end in temporary git repositories: `roofgate check`, `audit`, `merge` through the CLI.
+
+Models are built in code (gate.synth, external-weight references, nothing
+downloaded). Parameter bytes of a Gemm layer are in_features x out_features
+x 4 bytes (fp32) plus the bias (ONNX operator spec, Gemm: B is K x N, C is N),
+so the layer sizes below are worked out by hand.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import pytest
+from xml.etree import ElementTree
+from click.testing import CliRunner
+
+from gate.cli import cli
+from gate.synth.builder import save_model
+from gate.synth.layers import NetBuilder
+from tests.gitkit import Repo
+
+TARGET = "ws-64x64-4mib"
+MIB = 1024 * 1024
+POLICY = """\
+version: 1
+name: test-gate
+rules:
+  - id: params-fit-buffer
+    kind: fits_in_buffer
+    check: params
+"""
+
+
+def fc_model(out_features: int, *, name: str = "fc.grown", in_features: int = 1024):
+    """One Gemm layer: (in x out) fp32 weights + out bias."""
+    b = NetBuilder("fc", weights="external")
+    x = b.input("x", [1, in_features])
+    b.output(b.gemm(x, out_features, name=name))
+    return b.build()
+
+
+@pytest.fixture()
+def repo(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Repo:
+    repo = Repo(tmp_path / "repo")
+    repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n")
+    repo.write("policies/gate.yaml", POLICY)
+    save_model(fc_model(256), repo.path / "models/a.onnx")  # 1 MiB of weights
+    save_model(fc_model(128), repo.path / "models/b.onnx")
+    repo.commit("base")
+    repo.branch("pr")
+    monkeypatch.chdir(repo.path)
+    return repo
+
+
+def check(*args: str) -> tuple[int, str, str]:
+    result = CliRunner().invoke(cli, ["check", "--base", "main", *args])
+    return result.exit_code, result.stdout, result.stderr
+
+
+def test_regressing_change_exits_1_and_junit_names_the_layer(repo: Repo) -> None:
+    save_model(fc_model(2048), repo.path / "models/a.onnx")  # 8 MiB: past a 4 MiB buffer
+    repo.commit("grow fc")
+    code, out, _ = check()
+    assert code == 1, out
+    junit = (repo.path / "roofgate-out/junit.xml").read_text(encoding="utf-8")
+    assert "<failure" in junit and "fc.grown" in junit
+    assert "FAIL" in out and "models/a.onnx" in out and "exit 1" in out
+    result = json.loads((repo.path / "roofgate-out/result.json").read_text())
+    assert "models/b.onnx" not in json.dumps(result)  # unchanged models are not gated
+
+
+def test_clean_change_exits_0(repo: Repo) -> None:
+    save_model(fc_model(64), repo.path / "models/a.onnx")  # smaller: an improvement
+    repo.commit("shrink fc")
+    code, out, _ = check()
+    assert code == 0, out
+    assert (repo.path / "roofgate-out/summary.md").read_text(encoding="utf-8").strip()
+
+
+def test_added_and_deleted_models_are_handled(repo: Repo) -> None:
+    (repo.path / "models/b.onnx").unlink()
+    save_model(fc_model(32, name="fc.new"), repo.path / "models/new.onnx")
+    repo.commit("add and delete")
+    code, out, _ = check()
+    assert code == 0, out
+    data = json.dumps(json.loads((repo.path / "roofgate-out/result.json").read_text()))
+    assert "models/new.onnx" in data and "models/b.onnx" in data
+    assert "deleted" in out
+
+
+def test_renamed_model_is_compared_with_its_old_file(repo: Repo) -> None:
+    (repo.path / "models/moved").mkdir()
+    os.rename(repo.path / "models/a.onnx", repo.path / "models/moved/a2.onnx")
+    repo.commit("move")
+    code, out, _ = check()
+    assert code == 0, out
+    assert "models/a.onnx was renamed to models/moved/a2.onnx" in out
+
+
+def test_no_models_changed(repo: Repo) -> None:
+    repo.write("README.md", "docs only\n")
+    repo.commit("docs")
+    code, out, _ = check()
+    assert code == 0
+    assert "No models changed" in out
+    assert "No models changed" in (repo.path / "roofgate-out/summary.md").read_text()
+
+
+def test_lfs_pointer_is_a_clear_error(repo: Repo) -> None:
+    repo.write("models/a.onnx", "version https://git-lfs.github.com/spec/v1\n"
+               "oid sha256:" + "ab" * 32 + "\nsize 4096\n")
+    repo.commit("lfs pointer")
+    code, out, _ = check()
+    assert code == 2, out
+    assert "git lfs pull" in out and "models/a.onnx" in out
+
+
+@pytest.mark.parametrize("name", [
+    "models/with space.onnx", "models/quote'\"d.onnx", "models/-rf.onnx",
+    "models/ünïcødé 模型.onnx",
+])
+def test_hostile_file_names(repo: Repo, name: str) -> None:
+    save_model(fc_model(4096), repo.path / name)  # 16 MiB: fails the gate
+    repo.commit("hostile name")
+    code, out, _ = check()
+    assert code == 1, out
+    assert name in out
+    tree = ElementTree.parse(repo.path / "roofgate-out/junit.xml")
+    assert any(name in value for case in tree.iter("testcase") for value in case.attrib.values())
+
+
+def test_base_side_from_a_stored_snapshot(repo: Repo) -> None:
+    runner = CliRunner()
+    done = runner.invoke(cli, ["audit", "--snapshot", "base.json", "--json", "audit.json"])
+    assert done.exit_code == 0, done.output
+    save_model(fc_model(64), repo.path / "models/a.onnx")
+    repo.commit("shrink")
+    code, out, _ = check("--baseline", "base.json")
+    assert code == 0, out
+
+
+def test_models_outside_the_config_groups_are_not_gated(repo: Repo) -> None:
+    repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n"
+               "models:\n  - paths: ['models/a.onnx']\n")
+    save_model(fc_model(4096), repo.path / "models/b.onnx")  # would fail, but not configured
+    save_model(fc_model(4096), repo.path / "scratch/c.onnx")
+    repo.commit("unconfigured models")
+    code, out, _ = check()
+    assert code == 0 and "No models changed" in out
+    code, out, _ = check("--config", str(repo.path / "other.yaml"))
+    assert code == 2
+
+
+def test_bad_config_and_unknown_base_exit_2(repo: Repo) -> None:
+    code, out, err = check_with_base("no-such-branch")
+    assert code == 2 and "unknown git revision 'no-such-branch'" in err
+    repo.write("roofgate.yaml", "target: [x]\n")
+    code, out, err = check()
+    assert code == 2 and "did you mean 'targets'" in err
+
+
+def check_with_base(ref: str) -> tuple[int, str, str]:
+    result = CliRunner().invoke(cli, ["check", "--base", ref])
+    return result.exit_code, result.stdout, result.stderr
+
+
+# --- audit and merge -------------------------------------------------------------------
+
+@pytest.fixture()
+def zoo(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    root = tmp_path / "zoo"
+    (root / "policies").mkdir(parents=True)
+    (root / "policies/gate.yaml").write_text(POLICY)
+    (root / "roofgate.yaml").write_text(f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n")
+    for k, width in enumerate((64, 128, 2048, 256, 32)):
+        save_model(fc_model(width), root / f"models/m{k} x.onnx")
+    (root / "models/broken.onnx").write_bytes(b"not an onnx file")
+    monkeypatch.chdir(root)
+    return root
+
+
+def reports(prefix: str) -> list[str]:
+    return ["--junit", f"{prefix}/junit.xml", "--markdown", f"{prefix}/summary.md",
+            "--json", f"{prefix}/result.json"]
+
+
+def read_reports(prefix: str) -> dict[str, bytes]:
+    return {name: Path(prefix, name).read_bytes()
+            for name in ("junit.xml", "summary.md", "result.json")}
+
+
+def test_sharded_audit_merged_equals_unsharded_byte_for_byte(zoo: Path) -> None:
+    runner = CliRunner()
+    one = runner.invoke(cli, ["audit", "-j", "1", *reports("j1")])
+    two = runner.invoke(cli, ["audit", "-j", "2", *reports("j2")])
+    assert one.exit_code == two.exit_code == 2, one.output  # broken.onnx fails closed
+    assert read_reports("j1") == read_reports("j2")
+    shards = []
+    for index in (1, 2, 3):
+        done = runner.invoke(cli, ["audit", "--shard", f"{index}/3",
+                                   "--shard-out", f"shards/s{index}.json"])
+        assert done.exit_code in (0, 1, 2), done.output
+        shards.append(f"shards/s{index}.json")
+    merged = runner.invoke(cli, ["merge", *reversed(shards), *reports("merged")])
+    assert merged.exit_code == one.exit_code, merged.output
+    assert read_reports("merged") == read_reports("j1")
+    assert "not an onnx" in one.stdout.lower() or "broken.onnx" in one.stdout
+    missing = runner.invoke(cli, ["merge", shards[0], shards[2]])
+    assert missing.exit_code == 2 and "missing shard(s) 2/3" in missing.stderr
+
+
+def test_audit_progress_lines_and_trend(zoo: Path) -> None:
+    runner = CliRunner()
+    first = runner.invoke(cli, ["audit", "models/m0 x.onnx", "models/m1 x.onnx",
+                                "--snapshot", "night1.json"])
+    assert first.exit_code == 0, first.output
+    assert "roofgate audit: [2/2]" in first.stderr  # plain progress lines off a terminal
+    save_model(fc_model(512), zoo / "models/m0 x.onnx")
+    second = runner.invoke(cli, ["audit", "models/m0 x.onnx", "models/m1 x.onnx",
+                                 "--baseline", "night1.json"])
+    assert "1 worse" in second.stdout and "worse: models/m0 x.onnx" in second.stdout
