@@ -192,3 +192,20 @@ def test_diff_of_widened_model_lists_the_changed_layers(work, tmp_path) -> None:
 def test_diff_needs_targets_for_models(work) -> None:
     result = _invoke(work, ["diff", "base/species.onnx", "wide/species.onnx"])
     assert result.exit_code == 2 and "--target" in result.stderr
+
+
+# --- the terminal summary the commands print ------------------------------------------
+
+def test_terminal_summary_is_safe_and_ends_with_the_outcome() -> None:
+    from gate.report import terminal
+    from tests.recordkit import HOSTILE_NAME, demo_result, result
+
+    text = terminal.render(demo_result(), ["out/j.xml", "-"])
+    assert "\x1b" not in text and "\r" not in text and "\x00" not in text
+    lines = text.splitlines()
+    assert lines[-2] == "FAILED: 1 model(s) could not be analysed (exit 2)"
+    assert lines[-1] == "reports: out/j.xml"
+    assert any(line.startswith("  FAIL     models/trailcam/species.onnx") for line in lines)
+    assert any("head/gemm" in line for line in lines)
+    assert HOSTILE_NAME not in text  # only its escaped form can appear
+    assert terminal.render(result()).splitlines()[-1] == "PASSED (exit 0)"
