@@ -119,3 +119,32 @@ def test_small_budget_still_gives_a_valid_report() -> None:
 def test_emoji_count_as_two_code_units() -> None:
     assert comment_size("\u274c") == 1 and comment_size("\U0001f6d1") == 2
     assert comment_size(HOSTILE_NAME) == len(HOSTILE_NAME)
+
+
+# --- the shared formatting and escaping helpers (gate/report/text.py) -------------------
+
+def test_units_use_binary_prefixes_and_fixed_digits() -> None:
+    from gate.report.text import fmt_bytes, fmt_change, fmt_delta, fmt_metric, fmt_ms
+
+    # Binary prefixes: KiB = 1024 B, MiB = 1024 KiB (IEC 80000-13).
+    assert [fmt_bytes(v) for v in (0, 1023, 1024, 1536, 4 * 2**20, 5 * 2**30)] == [
+        "0 B", "1023 B", "1.00 KiB", "1.50 KiB", "4.00 MiB", "5.00 GiB"]
+    assert fmt_ms(0.0123) == "12.3 ms" and fmt_ms(0) == "0 ms"
+    assert fmt_metric("utilization", 0.875) == "87.5%"
+    assert fmt_metric("energy_j", 2.5e-6) == "2.50 uJ"
+    assert fmt_delta("param_bytes", 1024, 2048) == "+1.00 KiB (+100.0%)"
+    assert fmt_delta("utilization", 0.5, 0.45) == "-5.0 pp"
+    assert fmt_delta("macs", 0, 5) == "+5 (new)"
+    assert fmt_change("latency_s", 1.0, 1.0 + 1e-13) == "="  # snapshot rounding is no change
+
+
+def test_md_escape_neutralises_every_markup_character() -> None:
+    from gate.report.text import md_escape
+
+    assert md_escape("a|b") == "a\\|b"
+    assert md_escape("*x* _y_ `z` [l](u) ~s~ $m$") == (
+        "\\*x\\* \\_y\\_ \\`z\\` \\[l\\](u) \\~s\\~ \\$m\\$")
+    assert md_escape("<img src=x onerror=alert(1)>") == "&lt;img src=x onerror=alert(1)&gt;"
+    assert md_escape("@team") == "@&#8203;team"
+    assert md_escape("# h") == "\\# h" and md_escape("a # h") == "a # h"
+    assert md_escape("a\nb\r\x1b") == "a\\\\nb\\\\r\\\\x1b"
