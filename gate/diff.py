@@ -47,7 +47,8 @@ def diff_runs(base: RunRecord, head: RunRecord) -> RunDiff:
     )
 
 
-def match_layers(base: Sequence[LayerRecord], head: Sequence[LayerRecord]) -> dict[int, tuple[int, str]]:
+def match_layers(base: Sequence[LayerRecord], head: Sequence[LayerRecord],
+                 ) -> dict[int, tuple[int, str]]:
     """Map head index -> (base index, how matched) for every matched layer."""
     matched: dict[int, tuple[int, str]] = {}
     for b, h in _match_by_name(base, head):
@@ -130,7 +131,8 @@ def _align_rest(base: Sequence[LayerRecord], head: Sequence[LayerRecord],
         gap_base = rest_base[b0 + 1:b1]
         gap_head = rest_head[h0 + 1:h1]
         if gap_base and gap_head:
-            op_pairs = _align([base[i].op_type for i in gap_base], [head[i].op_type for i in gap_head])
+            op_pairs = _align([base[i].op_type for i in gap_base],
+                              [head[i].op_type for i in gap_head])
             out.extend((gap_base[b], gap_head[h], "op_type") for b, h in op_pairs)
     return out
 

@@ -172,5 +172,5 @@ def assert_golden(name: str, text: str) -> None:
         return
     assert path.exists(), f"missing golden file {path}; create it with {UPDATE_ENV}=1 pytest"
     expected = path.read_bytes().decode("utf-8")
-    assert text == expected, (f"{name} differs from its golden file; if the change is "
-                              f"intended, regenerate with {UPDATE_ENV}=1 pytest and review the diff")
+    assert text == expected, (f"{name} differs from its golden file; if the change is intended, "
+                              f"regenerate with {UPDATE_ENV}=1 pytest and review the diff")

@@ -1,4 +1,4 @@
-"""``roofgate gate``, ``baseline`` and ``diff`` through click's CliRunner: exit codes and reports."""
+"""``roofgate gate``, ``baseline`` and ``diff`` through CliRunner: exit codes and reports."""
 
 from __future__ import annotations
 

@@ -14,9 +14,9 @@ import warnings
 import xml.etree.ElementTree as ET
 
 from gate.report.junit import REPORTER, render
-from gate.result import FAIL, WAIVED, ModelError
+from gate.result import FAIL, ModelError
 from tests.recordkit import (
-    HOSTILE_NAME, assert_golden, demo_result, entry, finding, layer, result, run, verdict,
+    assert_golden, demo_result, entry, finding, layer, result, run, verdict,
 )
 
 

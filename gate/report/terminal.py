@@ -112,5 +112,5 @@ def _figures(entry: Entry) -> str:
 
 
 def _t(text: str) -> str:
-    """One line, terminal-safe: a newline in a name shows as ``\\n`` rather than breaking the line."""
+    """One line, terminal-safe: a newline in a name shows as ``\\n``, never breaks the line."""
     return term_safe(text)

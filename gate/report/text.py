@@ -43,7 +43,9 @@ def visible(char: str) -> str:
     if char in _NAMED:
         return _NAMED[char]
     code = ord(char)
-    return f"\\x{code:02x}" if code <= 0xFF else f"\\u{code:04x}" if code <= 0xFFFF else f"\\U{code:08x}"
+    if code <= 0xFF:
+        return f"\\x{code:02x}"
+    return f"\\u{code:04x}" if code <= 0xFFFF else f"\\U{code:08x}"
 
 
 def xml_safe(text: str, *, multiline: bool = False) -> str:
