@@ -13,6 +13,7 @@ it did not. Nothing is downloaded; the models are generated in code.
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import tempfile
 import time
@@ -44,7 +45,6 @@ reports:
   junit: roofgate-out/junit.xml
   markdown: roofgate-out/summary.md
   json: roofgate-out/result.json
-  html: roofgate-out/report.html
 """
 
 POLICY_YAML = """\
@@ -143,7 +143,10 @@ def _check(repo: Path) -> tuple[GateResult, str, list[str]]:
     try:
         config = load_config(None, root=repo)
         result, title = run_check(repo, config, "main", baseline=None, workers=1)
-        written = write_reports(result, dict(config.reports))
+        paths: dict[str, str | None] = dict(config.reports)
+        if importlib.util.find_spec("matplotlib") is not None:  # the optional html extra
+            paths["html"] = "roofgate-out/report.html"
+        written = write_reports(result, paths)
         return result, title, [str((repo / w).resolve()) for w in written]
     finally:
         os.chdir(previous)
