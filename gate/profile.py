@@ -13,7 +13,7 @@ from typing import Iterable
 
 from gate.errors import InputError, InternalError
 from gate.model.convert import UNKNOWN_DIM
-from gate.model.graph import FLOAT_DTYPES, LoadedModel, Node, Shape, TensorInfo
+from gate.model.graph import DTYPE_BITS, FLOAT_DTYPES, LoadedModel, Node, Shape, TensorInfo
 from gate.ops.registry import OpWork, Unmodelled, cost_function_for
 from gate.targets.spec import PRECISION_BITS, normal_precision
 
@@ -157,9 +157,16 @@ def _override_bits(precision: str | None) -> int | None:
 
 def _tensor_bytes(tensor: TensorInfo, override_bits: int | None) -> int | None:
     """Storage bytes at the deploy precision (floating tensors only), None when unknown."""
-    count = tensor.numel
-    bits = tensor.bits_per_element
-    if count is None or bits == 0:
+    shape = tensor.shape
+    if shape is None:
+        return None
+    count = 1
+    for dim in shape:
+        if dim.__class__ is not int:
+            return None
+        count *= dim
+    bits = DTYPE_BITS.get(tensor.dtype, 0)
+    if bits == 0:
         return None
     if override_bits is not None and tensor.dtype in FLOAT_DTYPES:
         bits = override_bits
@@ -232,7 +239,10 @@ def _work(node: Node, unbound: dict[str, int]) -> tuple[OpWork | None, str]:
 
 
 def _sum_bytes(tensors: Iterable[TensorInfo], override_bits: int | None) -> int:
-    return sum(_tensor_bytes(t, override_bits) or 0 for t in tensors)
+    total = 0
+    for tensor in tensors:
+        total += _tensor_bytes(tensor, override_bits) or 0
+    return total
 
 
 def _profile_layer(node: Node, override_bits: int | None, seen_params: dict[str, int],
@@ -255,7 +265,7 @@ def _profile_layer(node: Node, override_bits: int | None, seen_params: dict[str,
         output_shapes=tuple(t.shape for t in node.outputs),
         output_dtypes=tuple(t.dtype for t in node.outputs),
         param_names=tuple(params),
-        param_count=sum(t.numel or 0 for t in params.values()),
+        param_count=sum(seen_params[name] for name in params),
         param_bytes=_sum_bytes(params.values(), override_bits),
         input_bytes=_sum_bytes(activations.values(), override_bits),
         output_bytes=_sum_bytes((t for t in node.outputs if t.name), override_bits),

@@ -123,13 +123,14 @@ class _Converter:
         self._constant_nodes(proto, params, consts)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
-        scope = _Scope(infos) if outer_infos is None else outer_infos.new_child(infos)
-        param_scope = _Scope(params) if outer is None else outer["params"].new_child(params)
-        const_scope = _Scope(consts) if outer is None else outer["consts"].new_child(consts)
+        # Plain dicts at the top level (fast lookups); chained scopes only inside subgraphs.
+        scope: Any = infos if outer is None else outer["infos"].new_child(infos)
+        param_scope: Any = params if outer is None else outer["params"].new_child(params)
+        const_scope: Any = consts if outer is None else outer["consts"].new_child(consts)
         order = topological_order(
             proto, lambda name: name in local_known or (outer_infos is not None
                                                          and name in outer_infos), self.path)
-        ctx = {"infos": scope, "params": param_scope, "consts": const_scope}
+        ctx = {"infos": _chain(scope), "params": _chain(param_scope), "consts": _chain(const_scope)}
         used_names: set[str] = set()
         nodes = tuple(self._node(index, proto.node[i], ctx, depth, used_names)
                       for index, i in enumerate(order))
@@ -186,14 +187,17 @@ class _Converter:
 
     def _node(self, index: int, proto: onnx.NodeProto, ctx: dict[str, _Scope], depth: int,
               used_names: set[str]) -> Node:
-        infos, params, consts = ctx["infos"], ctx["params"], ctx["consts"]
+        infos, params, consts = ctx["infos"].maps[0], ctx["params"].maps[0], ctx["consts"].maps[0]
+        if len(ctx["infos"].maps) > 1:  # inside a subgraph: outer names are visible too
+            infos, params, consts = ctx["infos"], ctx["params"], ctx["consts"]
+        input_names = list(proto.input)  # one read of the protobuf field (reads are not free)
         inputs = tuple(None if not name else infos.get(name) or TensorInfo(name, None, "UNDEFINED")
-                       for name in proto.input)
+                       for name in input_names)
         outputs = tuple(infos.get(name) or TensorInfo(name, None, "UNDEFINED") if name
                         else TensorInfo("", None, "UNDEFINED") for name in proto.output)
         attributes: dict[str, Any] = {}
         subgraphs: dict[str, Graph] = {}
-        for attribute in proto.attribute:
+        for attribute in proto.attribute if len(proto.attribute) else ():
             if attribute.type == AttributeProto.GRAPH:
                 subgraphs[attribute.name] = self.graph(attribute.g, ctx, depth + 1)
             elif attribute.type == AttributeProto.GRAPHS:
@@ -201,18 +205,23 @@ class _Converter:
                     subgraphs[f"{attribute.name}[{i}]"] = self.graph(sub, ctx, depth + 1)
             else:
                 attributes[attribute.name] = _plain_attribute(attribute)
+        op_type, domain = proto.op_type, proto.domain
         return Node(
             index=index,
-            name=_unique_name(proto.name, proto.op_type, index, used_names),
-            op_type=proto.op_type,
-            domain="" if proto.domain == "ai.onnx" else proto.domain,
+            name=_unique_name(proto.name, op_type, index, used_names),
+            op_type=op_type,
+            domain="" if domain == "ai.onnx" else domain,
             inputs=inputs,
             outputs=outputs,
             attributes=attributes,
-            param_inputs=frozenset(i for i, n in enumerate(proto.input) if n and n in params),
+            param_inputs=frozenset(i for i, n in enumerate(input_names) if n and n in params),
             subgraphs=subgraphs,
-            const_values={i: consts[n] for i, n in enumerate(proto.input) if n and n in consts},
+            const_values={i: consts[n] for i, n in enumerate(input_names) if n and n in consts},
         )
+
+
+def _chain(scope: Any) -> ChainMap:
+    return scope if isinstance(scope, ChainMap) else ChainMap(scope)
 
 
 def _unique_name(name: str, op_type: str, index: int, used: set[str]) -> str:
