@@ -44,6 +44,7 @@ def test_table_reports_unbound_dim(cnn: Path) -> None:
     result = _run(str(cnn))
     assert result.exit_code == 0
     assert "--dim batch=N" in result.stdout and "coverage: 2/9" in result.stdout
+    assert "bind them with --dim batch=N" in result.stderr
 
 
 def test_json_is_deterministic_and_matches_profile(cnn: Path) -> None:

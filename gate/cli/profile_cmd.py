@@ -74,4 +74,8 @@ def profile(model: str, dims: dict[str, int], precision: str | None, targets: tu
     records = [build_run_record(model, result, cost, target) for target, cost in runs]
     for warning in loaded.warnings:
         click.echo(f"warning: {' '.join(warning.splitlines())}", err=True)
+    if loaded.unbound_dims:
+        binds = " ".join(f"--dim {' '.join(d.split())}=N" for d in loaded.unbound_dims)
+        click.echo(f"warning: unbound symbolic dims leave layers unmodelled; bind them with "
+                   f"{binds}", err=True)
     click.echo(render(fmt, result, runs, records), nl=False)

@@ -278,6 +278,32 @@ def _all_graph_protos(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
                 stack.extend(attribute.graphs)
 
 
+_DATA_FIELDS = ("raw_data", "float_data", "int32_data", "string_data", "int64_data",
+                "double_data", "uint64_data")
+_SHAPE_DTYPES = frozenset({TensorProto.INT64, TensorProto.INT32})
+
+
+def drop_weight_values(graph: onnx.GraphProto) -> None:
+    """Clear the values of inline initializers nobody needs the values of (all scopes).
+
+    Keeps dims and dtype, so shapes and byte counts are unchanged, and keeps
+    integer tensors small enough to be shapes or indices (data propagation may
+    read them). Shape inference then copies kilobytes instead of the weights.
+    """
+    for current in _all_graph_protos(graph):
+        for tensor in current.initializer:
+            if tensor.data_location == TensorProto.EXTERNAL:
+                continue
+            count = 1
+            for dim in tensor.dims:
+                count *= int(dim)
+            if count <= CONST_VALUE_LIMIT or (tensor.data_type in _SHAPE_DTYPES
+                                              and count <= 64 * CONST_VALUE_LIMIT):
+                continue
+            for name in _DATA_FIELDS:
+                tensor.ClearField(name)
+
+
 def collect_symbolic_dims(graph: onnx.GraphProto) -> set[str]:
     """Every ``dim_param`` declared on a graph input, output or value_info (all scopes)."""
     names: set[str] = set()

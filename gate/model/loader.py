@@ -8,7 +8,8 @@ every size comes from an initializer's dims and dtype. The steps, in order:
    not a model, no graph, an opset or IR version newer than the installed onnx);
 2. inline local functions (their nodes become ordinary layers);
 3. bind symbolic dims (``--dim batch=1``) on every declared tensor shape;
-4. run onnx shape inference with data propagation (files over 2 GB through the
+4. drop inline weight values from memory (shapes and dtypes stay), then run onnx
+   shape inference with data propagation (files over 2 GB through the
    path-based API into a temporary file: the input is never overwritten);
 5. convert to the immutable ``gate.model.graph`` types (``gate.model.convert``).
 """
@@ -26,7 +27,12 @@ import onnx.shape_inference
 from google.protobuf.message import DecodeError
 
 from gate.errors import InputError
-from gate.model.convert import collect_symbolic_dims, convert_model, external_data_warnings
+from gate.model.convert import (
+    collect_symbolic_dims,
+    convert_model,
+    drop_weight_values,
+    external_data_warnings,
+)
 from gate.model.graph import LoadedModel
 
 # Files at least this large go through the path-based shape inference (protobuf's
@@ -49,6 +55,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     _validate(proto, text_path)
     warnings = list(external_data_warnings(proto.graph, Path(text_path).resolve().parent))
     declared = collect_symbolic_dims(proto.graph)
+    drop_weight_values(proto.graph)
     unused = sorted(set(bindings) - declared)
     warnings.extend(f"--dim {name}={bindings[name]}: the model declares no symbolic dim "
                     f"'{name}' (binding ignored)" for name in unused)
