@@ -202,7 +202,7 @@ def _param_dram_bytes(layer: LayerProfile, ctx: _Context, params_fit: bool,
         return 0
     if params_fit or layer.param_count <= 0:
         return layer.param_bytes
-    fetched = sum(m.weight_reads for m, is_param in maps if is_param)
+    fetched = sum(m.weight_fetches for m, is_param in maps if is_param)
     distinct = min(layer.param_count, gemm_weight_elems)
     extra_elems = max(0, fetched - distinct)
     return layer.param_bytes + ceil(extra_elems * layer.param_bytes / layer.param_count)

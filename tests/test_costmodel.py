@@ -257,6 +257,10 @@ def test_output_stationary_refetches_weights_per_row_tile_when_they_do_not_fit()
     assert cost_model(make_profile(layer), target).layers[0].param_dram_bytes == 3 * 8 * 4
     ws = make_target("weight-stationary", param_bytes=8)  # WS streams all rows past each tile
     assert cost_model(make_profile(layer), ws).layers[0].param_dram_bytes == 8 * 4
+    mv = make_target("matrix-vector", param_bytes=8)  # weights streamed again for every row
+    assert cost_model(make_profile(layer), mv).layers[0].param_dram_bytes == 10 * 8 * 4
+    vec = make_target("vector", 1, 16, param_bytes=8)  # a tiled kernel reuses each weight block
+    assert cost_model(make_profile(layer), vec).layers[0].param_dram_bytes == 8 * 4
 
 
 def test_activations_spill_when_they_do_not_fit() -> None:

@@ -29,12 +29,13 @@ class GemmMapping:
     input_reads: int  # elements of the M x K operand read from the buffer
     output_accesses: int  # elements of the M x N result written (and partial sums read back)
     noc_hops: int  # element moves over PE-to-PE links
+    weight_fetches: int  # K x N elements fetched from DRAM when the parameters do not fit
 
 
 def map_gemm(gemm: GemmShape, rows: int, cols: int, dataflow: str) -> GemmMapping:
     """Cycles and operand traffic of ``gemm`` on a ``rows`` x ``cols`` array of ``dataflow``."""
     if gemm.macs <= 0:
-        return GemmMapping(0, 0, 0, 0, 0, 0)
+        return GemmMapping(0, 0, 0, 0, 0, 0, 0)
     mapper = _MAPPERS[dataflow]
     return mapper(gemm, rows, cols)
 
@@ -52,6 +53,7 @@ def _weight_stationary(g: GemmShape, rows: int, cols: int) -> GemmMapping:
         input_reads=g.count * g.m * g.k * tn,  # inputs re-read for every column tile
         output_accesses=g.count * g.m * g.n * (2 * tk - 1),  # partial sums written/read per K tile
         noc_hops=2 * g.macs,  # per MAC: the input arrives from the left, the partial sum from above
+        weight_fetches=g.count * g.k * g.n,
     )
 
 
@@ -67,6 +69,7 @@ def _output_stationary(g: GemmShape, rows: int, cols: int) -> GemmMapping:
         input_reads=g.count * g.m * g.k * tn,  # inputs re-streamed for every column tile
         output_accesses=g.count * g.m * g.n,  # each output written once
         noc_hops=2 * g.macs,  # per MAC: input from the left, weight from above
+        weight_fetches=g.count * g.k * g.n * tm,
     )
 
 
@@ -82,6 +85,7 @@ def _matrix_vector(g: GemmShape, rows: int, cols: int) -> GemmMapping:
         input_reads=g.count * g.m * g.k * tn,
         output_accesses=g.count * g.m * g.n,
         noc_hops=2 * g.macs,  # per MAC: input broadcast to the column, product into the tree
+        weight_fetches=g.count * g.m * g.k * g.n,  # streamed from memory for every row
     )
 
 
@@ -100,6 +104,7 @@ def _vector(g: GemmShape, rows: int, cols: int) -> GemmMapping:
         input_reads=g.macs,
         output_accesses=g.count * g.m * g.n,
         noc_hops=0,  # lane-local: operands come straight from the register file
+        weight_fetches=g.count * g.k * g.n,  # a tiled kernel loops all rows over each weight block
     )
 
 
