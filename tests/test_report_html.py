@@ -341,3 +341,57 @@ def test_missing_matplotlib_names_the_extra_and_leaves_no_file(
     with pytest.raises(InputError, match=r"pip install 'roofgate\[html\]'"):
         write_report(REPORTER, demo_result(), str(target))
     assert list(tmp_path.iterdir()) == []
+
+
+# --- end to end: the audit command on the fictional scenario models ---------------
+
+@pytest.fixture(scope="module")
+def audit_outputs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    """``roofgate audit`` over the four fictional models on two targets, every report."""
+    from click.testing import CliRunner
+
+    from gate.cli import cli
+    from gate.synth.scenario import write_scenario
+
+    root = tmp_path_factory.mktemp("zoo")
+    write_scenario(root)
+    out = {name: root / "out" / f"report.{name}" for name in ("html", "sarif", "json")}
+    policy = Path(__file__).resolve().parents[1] / "policies" / "default.yaml"
+    args = ["audit", str(root / "models"), "-t", "ws-64x64-4mib", "-t", "os-16x16-512kib",
+            "-p", str(policy), *(x for name, path in out.items() for x in (f"--{name}", str(path)))]
+    done = CliRunner().invoke(cli, args)
+    assert done.exit_code in (0, 1), done.output  # pass or gate failed, never an error
+    return out
+
+
+def test_audit_command_writes_a_report_whose_charts_match_its_json_result(
+        audit_outputs: dict[str, Path]) -> None:
+    from gate.report.jsonout import read_result
+
+    result = read_result(str(audit_outputs["json"]))
+    page = audit_outputs["html"].read_text(encoding="utf-8")
+    _parse(page)
+    rooflines = [s for s in _svgs(page) if s.get("data-chart") == "roofline"]
+    assert len(rooflines) == len(result.entries) == 8  # 4 models x 2 targets
+    for svg, entry in zip(rooflines, result.entries):
+        assert (svg.get("data-model"), svg.get("data-target")) == (entry.model, entry.target)
+        group = _by_id(svg, f"{svg.get('id')}-head-points")
+        plotted = len(_marks(group)) if group is not None else 0
+        assert plotted == min(_plottable(entry.head), charts.MAX_ROOFLINE_POINTS)
+        unmodelled = sum(1 for layer in entry.head.layers if not layer.modelled)
+        assert int(svg.get("data-head-unmodelled")) == unmodelled
+        assert plotted > 0 or unmodelled == len(entry.head.layers)  # empty only if unmodelled
+        assert float(svg.get("data-peak-flops-per-s")) == \
+            entry.head.target_figures["peak_flops_per_s"]
+    assert "Models by worst verdict" in page
+    # the notes encoder's sequence length is symbolic and unbound here: said, not plotted as 0
+    assert "60 layers not modelled" in page and "no modelled layer to plot" in page
+    # the SARIF log of the same run names the same blocking failures as the result object
+    import json
+
+    sarif = json.loads(audit_outputs["sarif"].read_text(encoding="utf-8"))
+    errors = {(r["locations"][0]["physicalLocation"]["artifactLocation"]["uri"],
+               r["properties"]["target"], r["ruleId"])
+              for r in sarif["runs"][0]["results"] if r["level"] == "error"}
+    assert errors == {(v.model, v.target, v.rule_id) for v in result.failed_verdicts
+                      if v.blocks_merge}

@@ -81,7 +81,8 @@ class RoofSelection:
 
     points: tuple[RoofPoint, ...]
     left_out: int  # plottable but beyond MAX_ROOFLINE_POINTS (smallest latency first)
-    unplottable: int  # no FLOPs, no traffic or no latency: no place on log-log axes
+    unplottable: int  # modelled, but no FLOPs, traffic or latency: no place on log-log axes
+    unmodelled: int = 0  # not modelled at all (no cost counted): never plotted
 
 
 def require_matplotlib() -> Any:
@@ -99,11 +100,13 @@ def require_matplotlib() -> Any:
 def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSelection:
     """The layers of ``run`` placed on its roofline: top ``max_points`` by latency."""
     total_s = _finite(run.metrics, "latency_s") or 1.0
-    plottable, unplottable = [], 0
+    plottable, unplottable, unmodelled = [], 0, 0
     for layer in run.layers:
         ai = float(layer.metrics.get("arithmetic_intensity", 0.0))
         achieved = float(layer.metrics.get("achieved_flops_per_s", 0.0))
-        if _positive(ai) and _positive(achieved):
+        if not layer.modelled:
+            unmodelled += 1
+        elif _positive(ai) and _positive(achieved):
             plottable.append(layer)
         else:
             unplottable += 1
@@ -114,7 +117,7 @@ def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSe
                   _finite(layer.metrics, "latency_s") / total_s)
         for layer in ranked[:max_points]
     )
-    return RoofSelection(points, max(len(ranked) - max_points, 0), unplottable)
+    return RoofSelection(points, max(len(ranked) - max_points, 0), unplottable, unmodelled)
 
 
 def roof_vertices(peak_flops_per_s: float, dram_bytes_per_s: float,
@@ -191,13 +194,20 @@ def si_tick(value: float, _pos: object = None) -> str:
     return fmt_count(value).replace(".00 ", " ").replace(".0 ", " ")
 
 
-def new_figure(width_in: float, height_in: float) -> Any:
-    """A pyplot-free figure with the report's styling (thread-safe, no global state)."""
+def new_figure(width_in: float, height_in: float, *, left_in: float, right_in: float,
+               bottom_in: float, top_in: float, wspace: float = 0.0) -> Any:
+    """A pyplot-free figure with the report's styling and fixed margins in inches.
+
+    Fixed margins instead of an automatic layout engine: the layout engine measured
+    every tick label and was half the drawing time, and our labels have known sizes.
+    """
     matplotlib = require_matplotlib()
     from matplotlib.figure import Figure
 
     with matplotlib.rc_context(_RC):
-        fig = Figure(figsize=(width_in, height_in), layout="constrained")
+        fig = Figure(figsize=(width_in, height_in))
+    fig.subplots_adjust(left=left_in / width_in, right=1 - right_in / width_in,
+                        bottom=bottom_in / height_in, top=1 - top_in / height_in, wspace=wspace)
     return fig
 
 
@@ -224,7 +234,7 @@ def roofline_figure(head: RunRecord, base: RunRecord | None, chart_id: str,
     head_sel = roof_points(head, max_points)
     base_sel = roof_points(base, max_points) if base is not None else None
     with rc_context():
-        fig = new_figure(9.0, 4.6)
+        fig = new_figure(9.0, 4.6, left_in=0.85, right_in=0.15, bottom_in=0.55, top_in=0.1)
         ax = fig.add_subplot()
         ax.set_xscale("log")
         ax.set_yscale("log")
@@ -237,11 +247,14 @@ def roofline_figure(head: RunRecord, base: RunRecord | None, chart_id: str,
         _draw_points(ax, head_sel, f"{chart_id}-head-points",
                      "head" if base_sel is not None else "layers", filled=True)
         _annotate(ax, head_sel.points[:ANNOTATED_LAYERS])
+        if not head_sel.points:
+            ax.text(0.5, 0.5, "no modelled layer to plot", transform=ax.transAxes,
+                    ha="center", va="center", color=MUTED, fontsize=10)
         _finish_roofline_axes(ax, lo, hi, head_sel, base_sel, peak if has_roof else 0.0)
     data: dict[str, object] = {
         "chart": "roofline", "model": head.model, "target": head.target,
         "head-points": len(head_sel.points), "head-left-out": head_sel.left_out,
-        "head-unplottable": head_sel.unplottable,
+        "head-unplottable": head_sel.unplottable, "head-unmodelled": head_sel.unmodelled,
         "peak-flops-per-s": peak, "dram-bytes-per-s": bandwidth,
         "ridge-flop-per-byte": peak / bandwidth if has_roof else 0.0,
     }
@@ -342,7 +355,8 @@ def layer_bars_figure(head: RunRecord, base_latency_s: Mapping[str, float], char
     layers, left_out = bar_layers(head, max_layers)
     rows = list(range(len(layers)))
     with rc_context():
-        fig = new_figure(10.5, 1.4 + 0.24 * max(len(layers), 3))
+        fig = new_figure(10.5, 1.3 + 0.24 * max(len(layers), 3), left_in=2.25, right_in=0.15,
+                         bottom_in=0.5, top_in=0.55, wspace=0.06)
         left, right = fig.subplots(1, 2, sharey=True, width_ratios=(1, 1.35))
         time_scale, time_unit = _scale([_finite(l.metrics, "latency_s") for l in layers],
                                        (("s", 1.0), ("ms", 1e-3), ("\u00b5s", 1e-6), ("ns", 1e-9)))

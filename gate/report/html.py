@@ -208,6 +208,9 @@ def _charts(entry: Entry, anchor: str) -> str:
     if sel.unplottable:
         caption.append(f"{_layers(sel.unplottable)} without FLOPs or DRAM traffic (no place "
                        "on log axes)")
+    if sel.unmodelled:
+        caption.append(f"{_layers(sel.unmodelled)} not modelled (no cost counted; see the "
+                       "note above)")
     if base is not None:
         caption.append("hollow markers are the base")
     caption.append("intensity counts every byte a layer moves (parameters, inputs, outputs), "
