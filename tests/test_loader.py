@@ -199,6 +199,14 @@ def test_path_based_inference_never_overwrites_input(tmp_path: Path, monkeypatch
     assert by_path.graph == in_memory.graph
 
 
+def test_path_based_inference_with_absent_external_data(tmp_path: Path, monkeypatch) -> None:
+    path = _external_model(tmp_path)
+    (tmp_path / "ext.bin").unlink()
+    monkeypatch.setattr(loader_module, "PATH_INFERENCE_BYTES", 1)
+    loaded = load_model(path)
+    assert loaded.graph.nodes[0].outputs[0].shape == (1, 32) and loaded.warnings == ()
+
+
 # ------------------------------------------------------------------ hostile inputs
 
 

@@ -194,7 +194,9 @@ def _infer_by_path(path: str, proto: onnx.ModelProto) -> tuple[onnx.ModelProto, 
             raise InputError("internal guard: shape inference output equals the input", path)
         try:
             onnx.shape_inference.infer_shapes_path(path, out_path, data_prop=True)
-            return onnx.load(out_path, load_external_data=False), ""
+            inferred = onnx.load(out_path, load_external_data=False)
+            drop_weight_values(inferred.graph)
+            return inferred, ""
         except Exception as exc:  # noqa: BLE001
             return proto, _inference_failed(exc)
 
