@@ -29,11 +29,13 @@ from google.protobuf.message import DecodeError
 from gate.errors import InputError
 from gate.model.convert import (
     collect_symbolic_dims,
+    UNKNOWN_DIM,
     convert_model,
     drop_weight_values,
     external_data_warnings,
+    graph_symbolic_dims,
 )
-from gate.model.graph import LoadedModel
+from gate.model.graph import Graph, LoadedModel
 
 # Files at least this large go through the path-based shape inference (protobuf's
 # in-memory serialisation limit is 2 GiB).
@@ -212,7 +214,5 @@ def _opsets(proto: onnx.ModelProto) -> dict[str, int]:
             for o in proto.opset_import}
 
 
-def _unbound_dims(graph: object) -> tuple[str, ...]:
-    from gate.model.convert import graph_symbolic_dims
-
-    return tuple(sorted(d for d in graph_symbolic_dims(graph) if d != "?"))  # type: ignore[arg-type]
+def _unbound_dims(graph: Graph) -> tuple[str, ...]:
+    return tuple(sorted(d for d in graph_symbolic_dims(graph) if d != UNKNOWN_DIM))
