@@ -148,3 +148,9 @@ def test_md_escape_neutralises_every_markup_character() -> None:
     assert md_escape("@team") == "@&#8203;team"
     assert md_escape("# h") == "\\# h" and md_escape("a # h") == "a # h"
     assert md_escape("a\nb\r\x1b") == "a\\\\nb\\\\r\\\\x1b"
+
+
+def test_expired_waiver_is_named_in_the_failed_rules_table() -> None:
+    lapsed = finding(waiver_reason="approved for the demo", waiver_expires="2027-01-31")
+    text = render(result(entry(run(), verdicts=(verdict(status=FAIL, findings=(lapsed,)),))))
+    assert "waiver expired 2027-01-31 (approved for the demo); split the layer" in text

@@ -25,7 +25,7 @@ from typing import Sequence, TextIO
 from gate.diff import ranked_changes
 from gate.report.text import (fmt_change, fmt_delta, fmt_metric, html_escape, md_escape,
                               shorten)
-from gate.result import FAIL, WAIVED, Entry, GateResult, LayerChange, Verdict
+from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, LayerChange, Verdict
 
 MARKER = "<!-- roofgate-report -->"
 COMMENT_LIMIT_CHARS = 65_536
@@ -294,13 +294,16 @@ def _failed_rules(entry: Entry, out: _Render) -> None:
     out.trimmed(min(max(limit, 1), len(rows)), len(rows), "failed-rule rows")
 
 
-def _finding_row(verdict: Verdict, finding: object) -> str:
+def _finding_row(verdict: Verdict, finding: Finding | None) -> str:
     severity = f"{FAIL_MARK} error" if verdict.severity == "error" else f"{WARN_MARK} warning"
     remedy = md_escape(shorten(verdict.remedy, 300))
     if finding is None:  # a failed rule without findings: show its summary
         return (f"| {md_escape(verdict.rule_id)} | {severity} | model | | | | "
                 f"{md_escape(shorten(verdict.summary, 300))}; {remedy} |")
     where = "model" if finding.layer is None else md_escape(shorten(finding.layer, NAME_CHARS))
+    if finding.waiver_expires:  # a failing finding with a waiver: the waiver has lapsed
+        remedy = (f"waiver expired {md_escape(finding.waiver_expires)} "
+                  f"({md_escape(shorten(finding.waiver_reason, 200))}); {remedy}")
     return (f"| {md_escape(verdict.rule_id)} | {severity} | {where} | "
             f"{md_escape(finding.metric)} | {fmt_metric(finding.metric, finding.value)} | "
             f"{fmt_metric(finding.metric, finding.limit)} | {remedy} |")
