@@ -213,9 +213,9 @@ def _param_dram_bytes(layer: LayerProfile, ctx: _Context, params_fit: bool,
 def _cost_layer(layer: LayerProfile, ctx: _Context) -> LayerCost:
     work = layer.work
     if not layer.modelled or work is None:
-        return _idle(layer, modelled=False)
+        return _idle(layer, ctx, modelled=False)
     if work.is_view:
-        return _idle(layer, modelled=True)
+        return _idle(layer, ctx, modelled=True)
     target = ctx.target
     gemms = [g for g in work.gemms if g.macs > 0]
     engine = target.engine_for(layer.op_type, layer.domain, bool(gemms))
@@ -232,12 +232,14 @@ def _cost_layer(layer: LayerProfile, ctx: _Context) -> LayerCost:
     return _on_engine(layer, ctx, engine, spec, ops)
 
 
-def _idle(layer: LayerProfile, modelled: bool) -> LayerCost:
+def _idle(layer: LayerProfile, ctx: _Context, modelled: bool) -> LayerCost:
+    """No engine time or energy; buffer fit still reported (the byte counts are known)."""
+    params_fit, acts_fit = _fits(layer, ctx)
     return LayerCost(
         index=layer.index, name=layer.name, engine="none", cycles=0, utilization=0.0,
         compute_s=0.0, memory_s=0.0, overhead_s=0.0, latency_s=0.0, bound="none",
-        param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=True,
-        activations_fit=True, energy=EnergyBreakdown(), modelled=modelled)
+        param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=params_fit,
+        activations_fit=acts_fit, energy=EnergyBreakdown(), modelled=modelled)
 
 
 def _on_array(layer: LayerProfile, ctx: _Context) -> LayerCost:

@@ -223,3 +223,14 @@ def test_targets_show_prints_yaml_that_loads_back_to_the_same_profile(tmp_path: 
     assert replace(reloaded, source="builtin") == load_target("os-16x16-512kib")
     missing = CliRunner().invoke(cli, ["targets", "show", "os-16x16"])
     assert missing.exit_code == 2 and "did you mean 'os-16x16-512kib'" in missing.output
+
+
+def test_targets_show_prints_a_user_file_after_checking_it(tmp_path: Path) -> None:
+    good = tmp_path / "mine.yaml"
+    good.write_text(MINIMAL)
+    result = CliRunner().invoke(cli, ["targets", "show", str(good)])
+    assert result.exit_code == 0 and result.output == MINIMAL
+    bad = tmp_path / "bad.yaml"
+    bad.write_text(MINIMAL.replace("rows: 32", "rowz: 32"))
+    result = CliRunner().invoke(cli, ["targets", "show", str(bad)])
+    assert result.exit_code == 2 and "rowz: unknown key (did you mean 'rows'?)" in result.output
