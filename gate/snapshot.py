@@ -43,11 +43,14 @@ MAX_SNAPSHOT_BYTES = 256 * 1024 * 1024
 def canonical_json(data: Any) -> str:
     """``data`` as deterministic JSON text: sorted keys, indent 2, rounded floats, final newline.
 
+    Non-ASCII is written as ``\\uXXXX`` escapes, so any name (even one holding a
+    lone surrogate, which UTF-8 cannot encode) is written and read back exactly.
+
     Raises InternalError on a NaN or infinity: records must never carry one, and
     JSON cannot (``NaN`` is not JSON).
     """
     try:
-        text = json.dumps(_rounded(data), sort_keys=True, indent=2, ensure_ascii=False,
+        text = json.dumps(_rounded(data), sort_keys=True, indent=2, ensure_ascii=True,
                           allow_nan=False)
     except ValueError as exc:
         raise InternalError(f"cannot write JSON with a non-finite number ({exc})") from None

@@ -122,3 +122,11 @@ def test_a_model_target_pair_appears_once() -> None:
 def test_write_to_stdout(capsys) -> None:
     write_snapshot([run()], "-")
     assert json.loads(capsys.readouterr().out)["format"] == "roofgate-snapshot"
+
+
+def test_any_name_survives_even_a_lone_surrogate(tmp_path) -> None:
+    odd = "conv\ud800\u00e9\u2028\U0001f600"
+    path = tmp_path / "odd.json"
+    write_snapshot([run(layers=(layer(odd),))], str(path))
+    assert path.read_bytes().isascii()
+    assert read_snapshot(str(path))[0].layers[0].name == odd
