@@ -33,3 +33,60 @@ def test_every_registered_op_is_in_the_onnx_spec():
 def test_every_op_the_issue_lists_is_modelled():
     modelled = {op for domain, op in modelled_op_types() if domain == ""}
     assert sorted(set(REQUIRED) - modelled) == []
+
+
+# --- Robustness: any node, however malformed, gives OpWork or Unmodelled, never a crash.
+# (The profiler turns any other exception into an internal error, exit 3.)
+
+import pytest  # noqa: E402
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from gate.model.graph import TensorInfo  # noqa: E402
+from gate.ops import Unmodelled, cost_function_for  # noqa: E402
+from tests.opkit import graph, node  # noqa: E402
+
+_DIMS = st.one_of(st.integers(0, 5), st.integers(1, 3), st.sampled_from(["seq", "?"]))
+_SHAPES = st.one_of(st.none(), st.lists(_DIMS, max_size=5).map(tuple))
+_ATTRS = st.fixed_dictionaries({}, optional={
+    "axis": st.integers(-6, 6), "group": st.integers(-1, 4),
+    "kernel_shape": st.lists(st.integers(-1, 3), max_size=3),
+    "strides": st.lists(st.integers(-1, 3), max_size=3), "pads": st.lists(st.integers(-1, 2), max_size=6),
+    "dilations": st.lists(st.integers(-1, 3), max_size=3), "axes": st.lists(st.integers(-5, 5), max_size=3),
+    "output_padding": st.lists(st.integers(-1, 2), max_size=3), "ceil_mode": st.integers(0, 1),
+    "output_shape": st.lists(st.integers(-1, 6), max_size=3), "size": st.integers(-1, 3),
+    "scan_input_axes": st.lists(st.integers(-3, 3), max_size=2), "layout": st.integers(0, 1),
+    "auto_pad": st.sampled_from(["NOTSET", "SAME_UPPER", "VALID", "BOGUS"]),
+    "equation": st.sampled_from(["ij,jk->ik", "...i,...i->...", "ii->i", "ab,bc,cd->ad", "", "i->j"]),
+    "hidden_size": st.integers(0, 4), "direction": st.sampled_from(["forward", "bidirectional", "up"]),
+    "num_scan_inputs": st.integers(-1, 2), "mode": st.sampled_from(["nearest", "linear", "cubic", "x"]),
+    "p": st.integers(0, 3), "num_groups": st.integers(0, 3), "transA": st.integers(0, 1),
+    "activations": st.lists(st.sampled_from(["Sigmoid", "Tanh", "Nope"]), max_size=6),
+    "approximate": st.sampled_from(["none", "tanh", "erf"]), "training_mode": st.integers(0, 1),
+})
+
+
+def _info(shape, i):
+    return None if shape == () and i % 3 == 2 else TensorInfo(f"t{i}", shape, "FLOAT")
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.sampled_from(modelled_op_types()), st.lists(_SHAPES, max_size=9),
+       st.lists(_SHAPES, min_size=1, max_size=3), _ATTRS,
+       st.dictionaries(st.integers(0, 3), st.lists(st.integers(-1, 3), max_size=2).map(tuple)),
+       st.sets(st.integers(0, 8)))
+def test_cost_functions_never_crash(op, in_shapes, out_shapes, attrs, consts, params):
+    body = graph(node("Relu", [(1, 8)], [(1, 8)]))
+    subgraphs = {"body": body, "then_branch": body, "else_branch": body}
+    n = node(op[1], [_info(s, i) for i, s in enumerate(in_shapes)],
+             [TensorInfo(f"o{i}", s, "FLOAT") for i, s in enumerate(out_shapes)],
+             attrs, params=sorted(params), const_values=consts, subgraphs=subgraphs)
+    try:
+        work = cost_function_for(*op)(n)
+    except Unmodelled as exc:
+        assert exc.reason
+        return
+    assert min(work.macs, work.flops, work.vector_ops) >= 0
+    assert work.macs == sum(g.macs for g in work.gemms)
+    assert work.flops in (0, 2 * work.macs + work.vector_ops)
+    assert not (work.is_view and (work.flops or work.vector_ops))

@@ -42,6 +42,11 @@ def window_output_size(size: int, kernel: int, stride: int, dilation: int,
     return steps + 1
 
 
+def _require_positive(name: str, values: Sequence[int]) -> None:
+    if any(v < 1 for v in values):
+        raise Unmodelled(f"{name} {list(values)} must be positive")
+
+
 def window_output_spatial(node: Node, spatial: Sequence[int], kernel: Sequence[int],
                           ceil_mode: bool = False) -> tuple[int, ...]:
     """Output spatial dims of a Conv or windowed pool from its attributes."""
@@ -50,6 +55,8 @@ def window_output_spatial(node: Node, spatial: Sequence[int], kernel: Sequence[i
     dilations = int_attr_list(node, "dilations", rank, 1)
     pads = int_attr_list(node, "pads", 2 * rank, 0)
     mode = auto_pad(node)
+    for name, values in (("kernel", kernel), ("strides", strides), ("dilations", dilations)):
+        _require_positive(name, values)
     return tuple(
         window_output_size(spatial[i], kernel[i], strides[i], dilations[i],
                            pads[i], pads[i + rank], mode, ceil_mode)
@@ -69,11 +76,15 @@ def transpose_output_spatial(node: Node, spatial: Sequence[int],
     out_pad = int_attr_list(node, "output_padding", rank, 0)
     pads = int_attr_list(node, "pads", 2 * rank, 0)
     mode = auto_pad(node)
+    for name, values in (("kernel", kernel), ("strides", strides), ("dilations", dilations)):
+        _require_positive(name, values)
     if mode in ("SAME_UPPER", "SAME_LOWER"):
         return tuple(spatial[i] * strides[i] for i in range(rank))
     if mode == "VALID":
         pads = [0] * (2 * rank)
-    return tuple(
+    sizes = tuple(
         strides[i] * (spatial[i] - 1) + out_pad[i] + (kernel[i] - 1) * dilations[i] + 1
         - pads[i] - pads[i + rank]
         for i in range(rank))
+    _require_positive("output size", sizes)
+    return sizes

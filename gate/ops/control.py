@@ -63,6 +63,8 @@ def loop(node: Node) -> OpWork:
     trip = node.const_values.get(0)
     if not trip:
         raise Unmodelled("Loop trip count M is computed at run time; not modelled")
+    if trip[0] < 0:
+        raise Unmodelled(f"Loop trip count M={trip[0]} is negative")
     body = graph_work(_body(node, "body"))
     note = f"Loop body x {trip[0]} iterations"
     if node.input(1) is not None:

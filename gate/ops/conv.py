@@ -49,6 +49,8 @@ def conv_work(node: Node, x_pos: int = 0, w_pos: int = 1, bias_pos: int | None =
     if channels != group_channels * groups or out_channels % groups:
         raise Unmodelled(f"channels {channels}, weight {w} and group={groups} are inconsistent")
     spatial_out = _output_spatial(node, x, kernel, transposed=False)
+    if any(k < 1 for k in kernel):
+        raise Unmodelled(f"weight {w} has an empty kernel")
     gemm = GemmShape(m=batch * numel(spatial_out), k=group_channels * numel(kernel),
                      n=out_channels // groups, count=groups, weights_are_params=True)
     has_bias = bias_pos is not None and node.input(bias_pos) is not None
@@ -73,6 +75,8 @@ def conv_transpose(node: Node) -> OpWork:
     if w[0] != channels or channels % groups:
         raise Unmodelled(f"channels {channels}, weight {w} and group={groups} are inconsistent")
     out_channels, kernel = w[1] * groups, w[2:]
+    if any(k < 1 for k in kernel):
+        raise Unmodelled(f"weight {w} has an empty kernel")
     gemm = GemmShape(m=batch * numel(x[2:]), k=channels // groups, n=w[1] * numel(kernel),
                      count=groups, weights_are_params=True)
     spatial_out = _output_spatial(node, x, kernel, transposed=True)

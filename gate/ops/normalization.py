@@ -82,7 +82,9 @@ def group_normalization(node: Node) -> OpWork:
 @register("MeanVarianceNormalization")
 def mean_variance_normalization(node: Node) -> OpWork:
     x = input_shape(node, 0, "X")
-    axes = node.attr("axes", [0, 2, 3])
+    axes = [int(a) for a in node.attr("axes", [0, 2, 3])]
+    if any(not -len(x) <= a < len(x) for a in axes):
+        raise Unmodelled(f"axes {axes} are out of range for rank {len(x)}")
     kept = [d for i, d in enumerate(x) if i not in {a % len(x) for a in axes}]
     per_element = MOMENT_NORM_OPS_PER_ELEMENT - 2  # no scale, no bias
     return arithmetic(per_element * numel(x) + MOMENT_NORM_OPS_PER_ROW * numel(kept))
@@ -112,6 +114,8 @@ def lrn(node: Node) -> OpWork:
     """Square-sum over ``size`` neighbours (2 per neighbour), then bias, scale, pow, divide."""
     x = input_shape(node, 0, "X")
     size = int(node.attr("size", 1))
+    if size < 1:
+        raise Unmodelled(f"LRN size={size} must be positive")
     return arithmetic((2 * size + 4) * numel(x))
 
 

@@ -22,7 +22,10 @@ def _kernel(node: Node, spatial_rank: int) -> tuple[int, ...]:
     kernel = node.attr("kernel_shape")
     if not kernel or len(kernel) != spatial_rank:
         raise Unmodelled(f"kernel_shape {kernel} does not match {spatial_rank} spatial dims")
-    return tuple(int(k) for k in kernel)
+    values = tuple(int(k) for k in kernel)
+    if any(k < 1 for k in values):
+        raise Unmodelled(f"kernel_shape {list(values)} must be positive")
+    return values
 
 
 def _pool_output_elements(node: Node, x: tuple[int, ...], kernel: tuple[int, ...]) -> int:
