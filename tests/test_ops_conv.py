@@ -281,7 +281,7 @@ def test_unknown_rank_and_bad_auto_pad_are_unmodelled():
     ("Conv", [(1, 3, 8, 8), (4, 3, 3, 3)], dict(dilations=[0, 1]), "dilations"),
     ("Conv", [(1, 3, 8, 8), (4, 3, 0, 3)], {}, "kernel"),
     ("Conv", [(1, 3, 8, 8), (4, 2, 3, 3)], dict(group=2), "inconsistent"),
-    ("ConvTranspose", [(1, 3, 2, 2), (3, 4, 3, 3)], dict(pads=[5, 5, 5, 5]), "output size"),
+    ("ConvTranspose", [(1, 3, 2, 2), (3, 4, 3, 3)], dict(pads=[5, 5, 5, 5]), "negative"),
     ("MaxPool", [(1, 3, 8, 8)], dict(kernel_shape=[0, 2]), "kernel_shape"),
     ("MaxPool", [(1, 3, 8, 8)], dict(kernel_shape=[2, 2], strides=[0, 1]), "strides"),
 ])

@@ -95,3 +95,12 @@ def test_resize_antialias_and_unknown_output_are_unmodelled():
         _work(node("Resize", [X], [(2, 3, 8, 8)], dict(mode="linear", antialias=1)))
     with pytest.raises(Unmodelled, match="unknown"):
         _work(node("Resize", [X], [None], dict(mode="linear")))
+
+
+def test_scatter_with_reduction_adds_one_op_per_update():
+    consts = {1: np.array([[0], [2]], I64)}
+    plain = inferred_node("ScatterND", [(4, 3), (2, 1), (2, 3)], constants=consts)
+    assert (_work(plain).vector_ops, _work(plain).flops) == (12, 0)
+    added = inferred_node("ScatterND", [(4, 3), (2, 1), (2, 3)], dict(reduction="add"),
+                          constants=consts)
+    assert (_work(added).vector_ops, _work(added).flops) == (12 + 6, 6)

@@ -86,5 +86,6 @@ def transpose_output_spatial(node: Node, spatial: Sequence[int],
         strides[i] * (spatial[i] - 1) + out_pad[i] + (kernel[i] - 1) * dilations[i] + 1
         - pads[i] - pads[i + rank]
         for i in range(rank))
-    _require_positive("output size", sizes)
+    if any(size < 0 for size in sizes):
+        raise Unmodelled(f"output size {list(sizes)} is negative (pads exceed the output)")
     return sizes

@@ -10,14 +10,22 @@ profiler from the tensor sizes) and ``flops`` = 0.
 from __future__ import annotations
 
 from gate.model.graph import Node
-from gate.ops._common import movement, numel, output_shape, view
+from gate.ops._common import (
+    add_work,
+    arithmetic,
+    input_shape,
+    movement,
+    numel,
+    output_shape,
+    str_attr,
+    view,
+)
 from gate.ops.registry import OpWork, register
 
 VIEW_OPS = ("Reshape", "Squeeze", "Unsqueeze", "Flatten", "Identity")
 MOVEMENT_OPS = (
     "Transpose", "Concat", "Split", "Slice", "Gather", "GatherElements", "GatherND",
-    "Pad", "Expand", "Tile", "DepthToSpace", "SpaceToDepth", "ScatterND",
-    "ScatterElements", "ReverseSequence", "Trilu", "OneHot", "ConstantOfShape",
+    "Pad", "Expand", "Tile", "DepthToSpace", "SpaceToDepth", "ReverseSequence", "Trilu", "OneHot", "ConstantOfShape",
     "EyeLike", "CenterCropPad",
 )
 
@@ -43,3 +51,13 @@ def move(node: Node) -> OpWork:
     """Elements written across all outputs (Split writes every piece)."""
     written = [i for i, out in enumerate(node.outputs) if out.name]  # "" = omitted output
     return movement(sum(numel(output_shape(node, i)) for i in written))
+
+
+@register("ScatterND", "ScatterElements")
+def scatter(node: Node) -> OpWork:
+    """A copy of ``data`` with updates written in; reduction="add"/"mul"/"max"/"min" adds
+    one op per update element."""
+    copy = move(node)
+    if str_attr(node, "reduction", "none") == "none":
+        return copy
+    return add_work([copy, arithmetic(numel(input_shape(node, 2, "updates")))])
