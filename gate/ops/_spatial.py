@@ -55,8 +55,8 @@ def window_output_spatial(node: Node, spatial: Sequence[int], kernel: Sequence[i
     dilations = int_attr_list(node, "dilations", rank, 1)
     pads = int_attr_list(node, "pads", 2 * rank, 0)
     mode = auto_pad(node)
-    for name, values in (("kernel", kernel), ("strides", strides), ("dilations", dilations)):
-        _require_positive(name, values)
+    for name, checked in (("kernel", kernel), ("strides", strides), ("dilations", dilations)):
+        _require_positive(name, checked)
     return tuple(
         window_output_size(spatial[i], kernel[i], strides[i], dilations[i],
                            pads[i], pads[i + rank], mode, ceil_mode)
@@ -69,15 +69,17 @@ def transpose_output_spatial(node: Node, spatial: Sequence[int],
     rank = len(spatial)
     explicit = node.attr("output_shape")
     if explicit:
-        values = [int(v) for v in explicit]
-        return tuple(values[-rank:])
+        sizes = tuple(int(v) for v in explicit)[-rank:]
+        if len(sizes) != rank or any(size < 0 for size in sizes):
+            raise Unmodelled(f"output_shape {list(explicit)} does not fit {rank} spatial dims")
+        return sizes
     strides = int_attr_list(node, "strides", rank, 1)
     dilations = int_attr_list(node, "dilations", rank, 1)
     out_pad = int_attr_list(node, "output_padding", rank, 0)
     pads = int_attr_list(node, "pads", 2 * rank, 0)
     mode = auto_pad(node)
-    for name, values in (("kernel", kernel), ("strides", strides), ("dilations", dilations)):
-        _require_positive(name, values)
+    for name, checked in (("kernel", kernel), ("strides", strides), ("dilations", dilations)):
+        _require_positive(name, checked)
     if mode in ("SAME_UPPER", "SAME_LOWER"):
         return tuple(spatial[i] * strides[i] for i in range(rank))
     if mode == "VALID":
