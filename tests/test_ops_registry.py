@@ -7,8 +7,12 @@ with the onnx package) knows every registered (domain, op_type).
 from __future__ import annotations
 
 import onnx.defs
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
-from gate.ops import modelled_op_types
+from gate.model.graph import TensorInfo
+from gate.ops import Unmodelled, cost_function_for, modelled_op_types
+from tests.opkit import graph, node
 
 REQUIRED = (
     "Conv ConvTranspose Gemm MatMul Einsum LSTM GRU RNN BatchNormalization LayerNormalization "
@@ -37,14 +41,6 @@ def test_every_op_the_issue_lists_is_modelled():
 
 # --- Robustness: any node, however malformed, gives OpWork or Unmodelled, never a crash.
 # (The profiler turns any other exception into an internal error, exit 3.)
-
-import pytest  # noqa: E402
-from hypothesis import HealthCheck, given, settings  # noqa: E402
-from hypothesis import strategies as st  # noqa: E402
-
-from gate.model.graph import TensorInfo  # noqa: E402
-from gate.ops import Unmodelled, cost_function_for  # noqa: E402
-from tests.opkit import graph, node  # noqa: E402
 
 _DIMS = st.one_of(st.integers(0, 5), st.integers(1, 3), st.sampled_from(["seq", "?"]))
 _SHAPES = st.one_of(st.none(), st.lists(_DIMS, max_size=5).map(tuple))
