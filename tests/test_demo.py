@@ -1,8 +1,9 @@
-"""`roofgate demo`: builds the fictional repository, fails the gate as designed, exits 0, fast."""
+"""`roofgate demo`: builds the fictional repository, fails the gate as designed, exits 0.
+
+Its run time is measured in bench/run.py (benchmark 6), not here."""
 
 from __future__ import annotations
 
-import time
 from pathlib import Path
 
 from click.testing import CliRunner
@@ -12,12 +13,9 @@ from gate.demo import WIDENED_LAYER, outcome_problems
 from tests.recordkit import demo_result, result
 
 
-def test_demo_runs_as_designed_and_quickly(tmp_path: Path) -> None:
-    started = time.monotonic()
+def test_demo_runs_as_designed(tmp_path: Path) -> None:
     done = CliRunner().invoke(cli, ["demo", "--keep", str(tmp_path / "demo")])
-    elapsed_s = time.monotonic() - started
     assert done.exit_code == 0, done.output
-    assert elapsed_s < 60  # the issue's budget (2-core machine); far below here
     out = done.stdout
     assert "FICTIONAL" in out and "As designed: the gate FAILED" in out
     assert WIDENED_LAYER in out and "models/trailcam/species.onnx" in out

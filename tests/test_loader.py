@@ -357,7 +357,7 @@ def test_custom_domain_op_loads(tmp_path: Path) -> None:
     assert node.domain == "vendor.x" and node.outputs[0].shape is None
 
 
-def test_many_nodes_load_in_linear_time(tmp_path: Path) -> None:
+def test_long_chain_loads_with_every_node_shaped(tmp_path: Path) -> None:
     loaded = load_model(save(chain(5000), tmp_path / "long.onnx"))
     assert len(loaded.graph.nodes) == 5000
     assert loaded.graph.nodes[-1].outputs[0].shape == (1, 16)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import resource
-import time
 from datetime import date
 from pathlib import Path
 from typing import Callable
@@ -171,14 +170,12 @@ def test_billion_laughs_is_refused_quickly_and_without_memory(getter) -> None:  
     # The YAML form of the "billion laughs" entity-expansion attack (known from XML, CVE-2003-1564
     # class): nine nested anchors of ten references each would expand to 10**9 leaves.
     before_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
-    start = time.perf_counter()
     doc = parse_yaml_bytes(_billion_laughs(9), "bomb.yaml")
     root = doc.root_mapping()
     root.free_keys()
     getter(root)
     with pytest.raises(ConfigError, match="expected (text|a mapping of keys)"):  # never expanded
         doc.raise_if_problems()
-    assert time.perf_counter() - start < 5.0
     assert resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - before_kib < 200 * 1024
 
 
