@@ -6,6 +6,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import pytest
 from click.testing import CliRunner
 
 from gate.cli import cli
@@ -37,3 +38,12 @@ def test_outcome_check_notices_a_demo_that_went_wrong() -> None:
     assert outcome_problems(result())  # a passing, empty run is not the designed outcome
     problems = outcome_problems(demo_result())  # hand-made: fails on another layer name
     assert any(WIDENED_LAYER in p for p in problems)
+
+
+def test_demo_accepts_a_relative_keep_folder(tmp_path: Path,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    # The check runs inside the demo repository; a relative --keep must still find its config.
+    monkeypatch.chdir(tmp_path)
+    done = CliRunner().invoke(cli, ["demo", "--keep", "rel"])
+    assert done.exit_code == 0, done.output
+    assert (tmp_path / "rel" / "fernhollow-models" / "roofgate-out" / "junit.xml").is_file()

@@ -88,8 +88,9 @@ def run_demo(keep_dir: str | None = None, echo: Callable[[str], None] = click.ec
 
 def _workdir(keep_dir: str | None) -> Path:
     if keep_dir is None:
-        return Path(tempfile.mkdtemp(prefix="roofgate-demo-"))
-    path = Path(keep_dir)
+        return Path(tempfile.mkdtemp(prefix="roofgate-demo-")).resolve()
+    # Absolute: the check runs inside the repository, where a relative path means nothing.
+    path = Path(keep_dir).resolve()
     if path.exists() and any(path.iterdir()):
         raise InputError("folder is not empty; give a new or empty folder for the demo", keep_dir)
     path.mkdir(parents=True, exist_ok=True)
