@@ -26,7 +26,7 @@ def build_run_record(model_path: str, profile: ModelProfile, cost: ModelCost,
             UnmodelledRecord(u.op_type, u.domain, u.count, u.reason)
             for u in profile.coverage.unmodelled
         ),
-        notes=profile.notes,
+        notes=profile.notes + cost.notes,
     )
 
 
