@@ -50,13 +50,7 @@ def cli(debug: bool) -> None:
 
 def _register_commands() -> None:
     for name in _COMMAND_MODULES:
-        try:
-            module = importlib.import_module(name)
-        except ModuleNotFoundError as exc:
-            if exc.name != name:  # a real import error inside the module: surface it
-                raise
-            continue
-        module.register(cli)
+        importlib.import_module(name).register(cli)
 
 
 _register_commands()
