@@ -87,7 +87,8 @@ def test_added_and_deleted_models_are_handled(repo: Repo) -> None:
     assert code == 0, out
     data = json.dumps(json.loads((repo.path / "roofgate-out/result.json").read_text()))
     assert "models/new.onnx" in data and "models/b.onnx" in data
-    assert "deleted" in out
+    assert "  DELETED  models/b.onnx on ws-64x64-4mib  (no longer present" in out
+    assert "  PASS     models/new.onnx" in out and "new, no baseline" in out
 
 
 def test_renamed_model_is_compared_with_its_old_file(repo: Repo) -> None:

@@ -18,13 +18,24 @@ def test_demo_runs_as_designed(tmp_path: Path) -> None:
     done = CliRunner().invoke(cli, ["demo", "--keep", str(tmp_path / "demo")])
     assert done.exit_code == 0, done.output
     out = done.stdout
-    assert "FICTIONAL" in out and "As designed: the gate FAILED" in out
+    assert "FICTIONAL" in out and "As designed, the gate FAILED" in out
     assert WIDENED_LAYER in out and "models/trailcam/species.onnx" in out
     reports = tmp_path / "demo" / "fernhollow-models" / "roofgate-out"
     junit = (reports / "junit.xml").read_text(encoding="utf-8")
     assert WIDENED_LAYER in junit and "<failure" in junit
     assert (reports / "summary.md").is_file() and (reports / "result.json").is_file()
-    assert str(reports / "junit.xml") in out  # says where the reports are
+    assert f"reports in {reports}/: junit.xml" in out  # says where the reports are
+    assert f"comment it would post: {reports / 'summary.md'}" in out
+    # The failing layer with its value, the buffer it exceeds and the remedy (from the
+    # scenario: 384 x 384 x 3 x 3 fp32 weights = 5,308,416 bytes = 5.06 MiB; 4 MiB buffer).
+    assert "parameters 5.06 MiB exceed the 4.00 MiB parameter buffer" in out
+    assert "remedy: split the layer" in out
+    # The pruned wake-word model is called an improvement, with its parameter change.
+    wake = next(line for line in out.splitlines() if "wakeword.onnx on" in line)
+    assert wake.startswith("  PASS") and wake.endswith("improved")
+    assert "shown as improved, parameters 2.38 MiB -> 984 KiB (-59.6%)" in out
+    # Only the model with a symbolic length is bound: no "binding ignored" note elsewhere.
+    assert "binding ignored" not in (reports / "summary.md").read_text(encoding="utf-8")
 
 
 def test_demo_refuses_a_non_empty_folder(tmp_path: Path) -> None:

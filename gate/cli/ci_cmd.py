@@ -16,12 +16,10 @@ from typing import Any
 import click
 
 from gate import audit as engine
-from gate.diff import same_value
-from gate.config import DEFAULT_REPORTS, Overrides, ProjectConfig, load_config, parse_dim_bindings
-from gate.report import report_options, report_paths, write_reports
-from gate.report.text import fmt_delta, one_line, term_safe
-from gate.result import FAIL, Entry, GateResult
-from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
+from gate.cli.common import dim_option, finish, precision_option, target_option
+from gate.config import DEFAULT_REPORTS, Overrides, ProjectConfig, load_config
+from gate.report import report_options, report_paths
+from gate.result import GateResult
 
 
 def register(cli: click.Group) -> None:
@@ -32,31 +30,35 @@ def register(cli: click.Group) -> None:
 
 
 def _config_options(func: Any) -> Any:
+    """The project-config options of ``check`` and ``audit`` (report options come apart)."""
     for option in reversed((
         click.option("--config", "config_path", metavar="FILE", default=None,
                      help="Project config (default: roofgate.yaml at the repository root)."),
-        click.option("--target", "-t", "targets", multiple=True, metavar="NAME|FILE",
-                     help="Target profile for every model (repeatable; overrides the config)."),
+        target_option("Target profile for every model: a built-in name or a YAML file "
+                      "(repeatable; replaces the config's targets)."),
         click.option("--policy", "-p", "policies", multiple=True, metavar="FILE",
-                     help="Policy file for every model (repeatable; overrides the config)."),
-        click.option("--dim", "dims", multiple=True, metavar="NAME=N",
-                     help="Bind a symbolic dim (repeatable; merged over the config's)."),
-        click.option("--precision", default=None, metavar="TYPE",
-                     help="Deploy precision for byte counts (overrides the config)."),
+                     help="Policy file for every model (repeatable; replaces the config's "
+                          "policies)."),
+        dim_option("Bind a symbolic input dim, e.g. --dim seq=256 (repeatable; merged over "
+                   "the config's dims)."),
+        precision_option("Count tensor bytes at this deploy precision (int8, fp16, ...; "
+                         "replaces the config's)."),
         click.option("--baseline", default=None, metavar="SNAPSHOT",
-                     help="Compare against this baseline snapshot instead of git / nothing."),
+                     help="Baseline snapshot (from `roofgate baseline` or `audit --snapshot`) "
+                          "to compare against instead of the base side from git (check) or "
+                          "nothing (audit)."),
         click.option("-j", "--jobs", default=1, show_default=True, metavar="N",
                      type=click.IntRange(min=0), help="Parallel processes (0 = one per CPU)."),
     )):
         func = option(func)
-    return report_options(func)
+    return func
 
 
 def _load(kwargs: dict[str, Any], root: Path) -> ProjectConfig:
     overrides = Overrides(
         targets=tuple(_cli_ref(t) for t in kwargs["targets"]),
         policies=tuple(str(Path(p).resolve()) for p in kwargs["policies"]),
-        dims=parse_dim_bindings(kwargs["dims"]),
+        dims=kwargs["dims"],
         precision=kwargs["precision"],
     )
     return load_config(kwargs["config_path"], root=root, overrides=overrides)
@@ -77,58 +79,13 @@ def _paths(kwargs: dict[str, Any], config: ProjectConfig) -> dict[str, str | Non
     return chosen
 
 
-def _finish(result: GateResult, paths: dict[str, str | None], title: str,
-            extra_written: tuple[str, ...] = ()) -> None:
-    written = write_reports(result, paths)
-    print_summary(result, title, [*written, *extra_written])
-    raise click.exceptions.Exit(result.exit_code)
-
-
-def _change_text(entry: Entry) -> str:
-    """``  (new)`` or the head-vs-base change of latency and parameter bytes."""
-    if entry.head is not None and entry.base is None:
-        return "  (new)"
-    if entry.diff is None:
-        return ""
-    parts = []
-    for label, metric in (("latency", "latency_s"), ("params", "param_bytes")):
-        if metric in entry.diff.totals:
-            base, head = entry.diff.totals[metric]
-            parts.append(f"{label} {'=' if same_value(base, head) else fmt_delta(metric, base, head)}")
-    return f"  ({', '.join(parts)})" if parts else ""
-
-
-def print_summary(result: GateResult, title: str, written: list[str]) -> None:
-    """A short plain-text summary on stdout: one line per model x target, failures, reports."""
-    click.echo(term_safe(title))
-    for note in result.notes:
-        click.echo(f"  note: {term_safe(note)}")
-    for entry in result.entries:
-        state = "deleted" if entry.head is None else entry.status.upper()
-        click.echo(f"  {state:<7} {term_safe(entry.model)} on {term_safe(entry.target)}"
-                   f"{_change_text(entry)}")
-        for verdict in entry.verdicts:
-            if verdict.status == FAIL:
-                click.echo(f"          {verdict.severity} {term_safe(verdict.rule_id)}: "
-                           f"{term_safe(one_line(verdict.summary))}")
-    for error in result.errors:
-        click.echo(f"  ERROR   {term_safe(error.model)}: {term_safe(one_line(error.message))}")
-    blocking = sum(1 for e in result.entries for v in e.verdicts if v.blocks_merge)
-    verdict_text = {EXIT_PASS: "PASSED", EXIT_GATE_FAILED: f"FAILED ({blocking} blocking rule "
-                    "failure(s))", EXIT_BAD_INPUT: f"FAILED ({len(result.errors)} model(s) could "
-                    "not be analysed)"}.get(result.exit_code, "FAILED")
-    click.echo(f"Result: {verdict_text}; exit {result.exit_code}")
-    files = [term_safe(w) for w in written if w != "-"]
-    if files:
-        click.echo("Reports: " + ", ".join(files))
-
-
 # --- check ----------------------------------------------------------------------------
 
 @click.command("check")
 @click.option("--base", "base_ref", required=True, metavar="REF",
               help="Branch or commit the pull request targets (e.g. origin/main).")
 @_config_options
+@report_options
 def check_command(base_ref: str, **kwargs: Any) -> None:
     """Gate the ONNX models changed between the merge base of REF and HEAD.
 
@@ -143,7 +100,7 @@ def check_command(base_ref: str, **kwargs: Any) -> None:
     config = _load(kwargs, root)
     result, title = run_check(root, config, base_ref, baseline=kwargs["baseline"],
                               workers=engine.default_workers(kwargs["jobs"]))
-    _finish(result, _paths(kwargs, config), title)
+    finish(result, _paths(kwargs, config), title)
 
 
 # --- audit ----------------------------------------------------------------------------
@@ -157,6 +114,7 @@ def check_command(base_ref: str, **kwargs: Any) -> None:
               help="Where a shard writes its result (default roofgate-out/shard-I-of-N.json).")
 @click.option("--snapshot", default=None, metavar="FILE",
               help="Write a baseline snapshot of this audit (for the next night's trend).")
+@report_options
 def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | None,
                   snapshot: str | None, **kwargs: Any) -> None:
     """Profile a whole model zoo (PATHS: files or folders; default: the config's models).
@@ -178,11 +136,11 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
         engine.write_shard(out, result, index, count, models)
         # A shard writes only its shard file unless report flags ask for partial reports.
         result = engine.with_notes(result, engine.trend_notes(result))
-        _finish(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
+        finish(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
                 f"{len(engine.shard_share(models, index, count))} of {len(models)} models", (out,))
     result = engine.with_notes(result, engine.trend_notes(result))
     written = _write_snapshot(result, snapshot)
-    _finish(result, _paths(kwargs, config), f"roofgate audit: {len(models)} models", written)
+    finish(result, _paths(kwargs, config), f"roofgate audit: {len(models)} models", written)
 
 
 def _write_snapshot(result: GateResult, path: str | None) -> tuple[str, ...]:
@@ -215,7 +173,7 @@ def merge_command(shard_files: tuple[str, ...], config_path: str | None,
     result = engine.with_notes(result, engine.trend_notes(result))
     written = _write_snapshot(result, snapshot)
     models = len({e.model for e in result.entries} | {e.model for e in result.errors})
-    _finish(result, _paths(kwargs, config), f"roofgate audit (merged {len(shard_files)} "
+    finish(result, _paths(kwargs, config), f"roofgate audit (merged {len(shard_files)} "
             f"shards): {models} models", written)
 
 

@@ -16,13 +16,13 @@ from typing import Any, Sequence
 
 import click
 
+from gate.cli.common import analysis_options, finish
 from gate.errors import InputError, RoofgateError
 from gate.pipeline import analyse, judge
 from gate.policy import load_policies, unused_waivers
 from gate.policy.globs import normalize_model_path
 from gate.records import RunRecord
 from gate.report import report_options, report_paths, write_reports
-from gate.report import terminal
 from gate.report.text import fmt_change, fmt_metric, shorten, term_safe
 from gate.diff import ranked_changes
 from gate.result import GateResult, ModelError
@@ -38,41 +38,11 @@ def register(cli: click.Group) -> None:
     cli.add_command(diff_command)
 
 
-def _parse_dims(ctx: click.Context, param: click.Parameter,
-                values: tuple[str, ...]) -> dict[str, int]:
-    """``("batch=1",)`` -> ``{"batch": 1}``; a usage error (exit 2) otherwise."""
-    dims: dict[str, int] = {}
-    for text in values:
-        name, sep, number = (part.strip() for part in text.partition("="))
-        if not sep or not name or not number.isdigit():
-            raise click.BadParameter(f"'{text}': expected NAME=N with N a non-negative integer, "
-                                     "e.g. --dim batch=1", ctx=ctx, param=param)
-        if dims.get(name, int(number)) != int(number):
-            raise click.BadParameter(f"'{name}' bound twice ({dims[name]} and {number})",
-                                     ctx=ctx, param=param)
-        dims[name] = int(number)
-    return dims
-
-
-def _analysis_options(func: Any) -> Any:
-    for option in reversed((
-        click.option("--target", "-t", "targets", multiple=True, metavar="NAME|FILE",
-                     help="Target profile: a built-in name or a YAML file (repeatable)."),
-        click.option("--dim", "dims", multiple=True, metavar="NAME=N", callback=_parse_dims,
-                     help="Bind a symbolic dim, e.g. --dim batch=1 (repeatable)."),
-        click.option("--precision", default=None, metavar="TYPE",
-                     help="Deploy precision for byte counts (int8, fp16, ...; default: as "
-                          "exported)."),
-    )):
-        func = option(func)
-    return func
-
-
 # --- gate -----------------------------------------------------------------------------
 
 @click.command("gate")
 @click.argument("models", nargs=-1, required=True, metavar="MODEL...")
-@_analysis_options
+@analysis_options
 @click.option("--policy", "-p", "policies", multiple=True, required=True, metavar="FILE",
               help="Policy file (repeatable; rule ids must be unique across files).")
 @click.option("--baseline", default=None, metavar="SNAPSHOT",
@@ -101,7 +71,7 @@ def gate_command(models: tuple[str, ...], targets: tuple[str, ...], dims: dict[s
                    errors=errors, notes=notes)
     verdicts = [v for entry in result.entries for v in entry.verdicts]
     result = _with_notes(result, unused_waivers(loaded_policies, verdicts))
-    _finish(result, report_paths(kwargs))
+    finish(result, report_paths(kwargs))
 
 
 def _targets(names: Sequence[str]) -> list[TargetProfile]:
@@ -148,18 +118,11 @@ def _day(value: datetime | None) -> date:
     return value.date() if value is not None else datetime.now(timezone.utc).date()
 
 
-def _finish(result: GateResult, paths: dict[str, str | None]) -> None:
-    written = write_reports(result, paths)
-    to_stdout = any(path == "-" for path in paths.values())
-    click.echo(terminal.render(result, written), nl=False, err=to_stdout)
-    raise click.exceptions.Exit(result.exit_code)
-
-
 # --- baseline -------------------------------------------------------------------------
 
 @click.command("baseline")
 @click.argument("models", nargs=-1, required=True, metavar="MODEL...")
-@_analysis_options
+@analysis_options
 @click.option("--output", "-o", required=True, metavar="PATH",
               help="Snapshot file to write ('-' for stdout).")
 def baseline_command(models: tuple[str, ...], targets: tuple[str, ...], dims: dict[str, int],
@@ -187,7 +150,7 @@ def baseline_command(models: tuple[str, ...], targets: tuple[str, ...], dims: di
 @click.command("diff")
 @click.argument("old", metavar="OLD")
 @click.argument("new", metavar="NEW")
-@_analysis_options
+@analysis_options
 @click.option("--limit", default=20, show_default=True, type=click.IntRange(min=0),
               help="Changed layers to list per model x target (0 = all).")
 @report_options

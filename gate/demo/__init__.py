@@ -24,12 +24,15 @@ import click
 
 from gate import gitscan
 from gate.errors import EXIT_GATE_FAILED, EXIT_INTERNAL, EXIT_PASS, InputError
+from gate.report.text import fmt_change, fmt_metric
 from gate.result import FAIL, GateResult
 
 REPO_DIR = "fernhollow-models"
 BRANCH = "pr/widen-species-prune-wakeword"
 WIDENED_LAYER = "stage4.block1.conv2"  # the layer whose weights outgrow the buffer (scenario.py)
 DEMO_TARGET = "ws-64x64-4mib"
+SPECIES = "models/trailcam/species.onnx"
+WAKEWORD = "models/handheld/wakeword.onnx"
 
 CONFIG_YAML = f"""\
 # roofgate project config of the FICTIONAL Fernhollow Field Robotics model repository.
@@ -38,9 +41,11 @@ policies: [policies/fernhollow.yaml]
 models:
   - paths: ["models/trailcam/*.onnx"]
     targets: [{DEMO_TARGET}]
+  - paths: ["models/handheld/notes_encoder.onnx"]
+    targets: [{DEMO_TARGET}]
+    dims: {{seq: 256}}              # its input length is symbolic: gate 256 frames
   - paths: ["models/handheld/*.onnx"]
     targets: [{DEMO_TARGET}]
-    dims: {{seq: 256}}
 reports:
   junit: roofgate-out/junit.xml
   markdown: roofgate-out/summary.md
@@ -78,12 +83,14 @@ def run_demo(keep_dir: str | None = None, echo: Callable[[str], None] = click.ec
     started = time.monotonic()
     work = _workdir(keep_dir)
     repo = work / REPO_DIR
-    echo(f"roofgate demo: building a FICTIONAL model repository in {repo}")
+    echo("roofgate demo: a FICTIONAL team (Fernhollow Field Robotics) opens a pull request; "
+         "nothing is downloaded.")
+    echo(f"Building its model repository in {repo}")
     _build_repository(repo, echo)
-    echo(f"Running: roofgate check --base main   (in {repo}, on branch {BRANCH})\n")
+    echo(f"\nRunning: roofgate check --base main   (in {repo}, on branch {BRANCH})\n")
     result, title, written = _check(repo)
     _print(result, title, written)
-    return _verdict(result, echo, time.monotonic() - started)
+    return _verdict(result, written, echo, time.monotonic() - started)
 
 
 def _workdir(keep_dir: str | None) -> Path:
@@ -154,24 +161,55 @@ def _check(repo: Path) -> tuple[GateResult, str, list[str]]:
 
 
 def _print(result: GateResult, title: str, written: list[str]) -> None:
-    from gate.cli.ci_cmd import print_summary
+    from gate.report import terminal
 
-    print_summary(result, title, written)
+    click.echo(terminal.render(result, written, title), nl=False)
 
 
-def _verdict(result: GateResult, echo: Callable[[str], None], elapsed_s: float) -> int:
+def _verdict(result: GateResult, written: list[str], echo: Callable[[str], None],
+             elapsed_s: float) -> int:
     problems = outcome_problems(result)
     if problems:
         echo("\nThe demo did NOT come out as designed (a roofgate bug; please report it):")
         for problem in problems:
             echo(f"  - {problem}")
         return EXIT_INTERNAL
-    echo(f"\nAs designed: the gate FAILED (it would exit {EXIT_GATE_FAILED} in CI) because "
-         f"layer {WIDENED_LAYER} of models/trailcam/species.onnx no longer fits the "
-         "parameter buffer, and it shows the wake-word model's pruning as an improvement.")
+    echo(f"\nAs designed, the gate FAILED (in CI it would exit {EXIT_GATE_FAILED} and block the "
+         "merge):")
+    echo(f"  - {SPECIES}: {_fit_text(result)}")
+    echo(f"  - {WAKEWORD}: shown as improved, {_improvement_text(result)}")
+    summary = next((w for w in written if w.endswith(".md")), None)
+    if summary:
+        echo(f"The pull-request comment it would post: {summary}")
     echo(f"The demo itself exits {EXIT_PASS} (finished in {elapsed_s:.1f} s). All figures are "
          "analytical estimates for a FICTIONAL company and target.")
     return EXIT_PASS
+
+
+def _fit_text(result: GateResult) -> str:
+    """``layer X holds 5.06 MiB of parameters, over the 4.00 MiB buffer``, from the finding."""
+    for entry in result.entries:
+        for verdict in entry.verdicts:
+            for finding in verdict.findings:
+                if finding.layer == WIDENED_LAYER and finding.status == FAIL:
+                    return (f"layer {WIDENED_LAYER} now holds "
+                            f"{fmt_metric(finding.metric, finding.value)} of parameters, over "
+                            f"the {fmt_metric(finding.metric, finding.limit)} parameter buffer "
+                            f"of {entry.target}")
+    return f"layer {WIDENED_LAYER} no longer fits the parameter buffer"
+
+
+def _improvement_text(result: GateResult) -> str:
+    """``parameters 2.38 MiB -> 984 KiB (-59.6%), latency ...`` of the pruned model."""
+    for entry in result.entries:
+        if entry.model == WAKEWORD and entry.diff is not None:
+            parts = []
+            for label, metric in (("parameters", "param_bytes"), ("latency", "latency_s")):
+                base, head = entry.diff.totals[metric]
+                parts.append(f"{label} {fmt_metric(metric, base)} -> {fmt_metric(metric, head)} "
+                             f"({fmt_change(metric, base, head)})")
+            return ", ".join(parts)
+    return "its parameters fell"
 
 
 def outcome_problems(result: GateResult) -> list[str]:
@@ -182,12 +220,12 @@ def outcome_problems(result: GateResult) -> list[str]:
                         f"got {result.exit_code}")
     failing = [v for e in result.entries for v in e.verdicts
                if v.status == FAIL and v.blocks_merge]
-    if {v.model for v in failing} != {"models/trailcam/species.onnx"}:
+    if {v.model for v in failing} != {SPECIES}:
         problems.append("expected exactly species.onnx to fail, got "
                         f"{sorted({v.model for v in failing}) or 'none'}")
     if not any(f.layer == WIDENED_LAYER for v in failing for f in v.findings):
         problems.append(f"expected a finding naming layer {WIDENED_LAYER}")
-    wake = [e for e in result.entries if e.model == "models/handheld/wakeword.onnx"]
+    wake = [e for e in result.entries if e.model == WAKEWORD]
     if not wake or not all(e.diff and e.diff.totals["param_bytes"][1] <
                            e.diff.totals["param_bytes"][0] for e in wake):
         problems.append("expected wakeword.onnx's parameter bytes to fall")

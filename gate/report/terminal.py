@@ -9,14 +9,20 @@ a node name cannot move the cursor or fake a line.
 
 from __future__ import annotations
 
+import os
+import posixpath
 from typing import Sequence, TextIO
 
+from gate.diff import same_value
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
-from gate.report.text import fmt_change, fmt_metric, shorten, term_safe
-from gate.result import FAIL, WAIVED, Entry, GateResult
+from gate.policy.spec import higher_is_better
+from gate.report.text import fmt_change, fmt_metric, fmt_percent, shorten, term_safe
+from gate.result import FAIL, WAIVED, Entry, GateResult, Verdict
 
 KEY_METRICS = (("latency_s", "latency"), ("utilization", "util"), ("param_bytes", "params"),
                ("energy_j", "energy"))
+# The costs a reader weighs to call a change better or worse (utilization is a means, not a cost).
+COST_METRICS = ("latency_s", "param_bytes", "energy_j")
 MAX_FINDINGS_PER_RULE = 3
 
 
@@ -31,9 +37,13 @@ class TerminalReporter:
 REPORTER = TerminalReporter()
 
 
-def render(result: GateResult, written: Sequence[str] = ()) -> str:
-    """The summary text; ``written`` lists report files to mention at the end."""
-    lines = [f"roofgate {result.command}: {len(result.entries)} model x target pair(s), "
+def render(result: GateResult, written: Sequence[str] = (), title: str | None = None) -> str:
+    """The summary text; ``written`` lists report files to mention at the end.
+
+    ``title`` replaces the default first line (``check`` names the base ref there).
+    """
+    lines = [_t(title) if title is not None else
+             f"roofgate {result.command}: {len(result.entries)} model x target pair(s), "
              f"{len(result.errors)} unanalysable"]
     for note in result.notes:
         lines.append(f"  note: {_t(note)}")
@@ -43,10 +53,19 @@ def render(result: GateResult, written: Sequence[str] = ()) -> str:
         allowed = " (allowed by policy)" if result.allow_errors else ""
         lines.append(f"  ERROR  {_t(error.model)}: {_t(error.message)}{allowed}")
     lines.append(outcome_line(result))
-    files = [_t(path) for path in written if path != "-"]
+    files = [path for path in written if path != "-"]
     if files:
-        lines.append("reports: " + ", ".join(files))
+        lines.append(reports_line(files))
     return "\n".join(lines) + "\n"
+
+
+def reports_line(files: Sequence[str]) -> str:
+    """``reports: a.xml`` or, for several files in one folder, ``reports in DIR/: a, b``."""
+    folders = {posixpath.dirname(path.replace(os.sep, "/")) for path in files}
+    if len(files) > 1 and len(folders) == 1 and "" not in folders:
+        names = ", ".join(_t(posixpath.basename(path.replace(os.sep, "/"))) for path in files)
+        return f"reports in {_t(folders.pop())}/: {names}"
+    return "reports: " + ", ".join(_t(path) for path in files)
 
 
 def outcome_line(result: GateResult) -> str:
@@ -70,21 +89,49 @@ def _entry_lines(entry: Entry) -> list[str]:
     lines = [f"  {status:<8} {_t(entry.model)} on {_t(entry.target)}  {_figures(entry)}"]
     for verdict in entry.verdicts:
         if verdict.status == FAIL:
-            lines.append(f"           {verdict.severity} {_t(verdict.rule_id)}: "
-                         f"{_t(verdict.summary)}")
-            failing = [f for f in verdict.findings if f.status == FAIL]
-            for finding in failing[:MAX_FINDINGS_PER_RULE]:
-                lines.append(f"             - {_t(shorten(finding.message, 300))}")
-            if len(failing) > MAX_FINDINGS_PER_RULE:
-                lines.append(f"             ... and {len(failing) - MAX_FINDINGS_PER_RULE} more")
+            lines.extend(_failed_rule_lines(verdict))
         elif verdict.status == WAIVED:
             lines.append(f"           waived {_t(verdict.rule_id)}: {_t(verdict.summary)}")
     return lines
 
 
+def _failed_rule_lines(verdict: Verdict) -> list[str]:
+    """The rule's summary, its first findings (value and limit), then its remedy once.
+
+    A single finding that restates the summary (model-level rules) replaces it.
+    """
+    failing = [f for f in verdict.findings if f.status == FAIL]
+    messages = [_without_remedy(f.message, verdict.remedy) for f in failing]
+    cut = any(stripped for _, stripped in messages)
+    header = verdict.summary
+    if len(messages) == 1 and verdict.summary and verdict.summary in messages[0][0]:
+        header = _model_prefix_off(messages.pop()[0])
+    lines = [f"           {verdict.severity} {_t(verdict.rule_id)}: {_t(shorten(header, 300))}"]
+    for message, _ in messages[:MAX_FINDINGS_PER_RULE]:
+        lines.append(f"             - {_t(shorten(message, 300))}")
+    if len(failing) > MAX_FINDINGS_PER_RULE:
+        lines.append(f"             ... and {len(failing) - MAX_FINDINGS_PER_RULE} more")
+    if cut:
+        lines.append(f"             remedy: {_t(shorten(verdict.remedy, 300))}")
+    return lines
+
+
+def _model_prefix_off(message: str) -> str:
+    """A model-level finding's text without its ``Model: `` lead-in (the line names the model)."""
+    return message[len("Model: "):] if message.startswith("Model: ") else message
+
+
+def _without_remedy(message: str, remedy: str) -> tuple[str, bool]:
+    """``message`` without a trailing ``": <remedy>."`` (shown once per rule instead)."""
+    tail = f": {remedy}."
+    if remedy and message.endswith(tail) and len(message) > len(tail):
+        return message[: -len(tail)] + ".", True
+    return message, False
+
+
 def _status(entry: Entry) -> str:
     if entry.head is None:
-        return "REMOVED"
+        return "DELETED"
     if entry.status == FAIL:
         return "FAIL"
     if any(v.status == FAIL for v in entry.verdicts):
@@ -95,7 +142,9 @@ def _status(entry: Entry) -> str:
 def _figures(entry: Entry) -> str:
     record = entry.head
     if record is None:
-        return ""
+        return "(no longer present: nothing to gate)"
+    if record.metrics.get("coverage_work_share", 1.0) == 0:
+        return "not costed: no layer could be modelled (see the coverage rule or `profile`)"
     parts = []
     for metric, label in KEY_METRICS:
         if metric not in record.metrics:
@@ -106,9 +155,32 @@ def _figures(entry: Entry) -> str:
             delta = fmt_change(metric, base, head)
             text += "" if delta == "=" else f" ({delta})"
         parts.append(text)
+    share = record.metrics.get("coverage_work_share", 1.0)
+    if share < 1:
+        parts.append(f"only {fmt_percent(share)} of the work modelled (figures too low)")
     if entry.base is None:
         parts.append("new, no baseline")
+    elif _improved(entry):
+        parts.append("improved")
     return ", ".join(parts)
+
+
+def _improved(entry: Entry) -> bool:
+    """No cost metric worse than the baseline and at least one better."""
+    if entry.diff is None:
+        return False
+    better = False
+    for metric in COST_METRICS:
+        if metric not in entry.diff.totals:
+            continue
+        base, head = entry.diff.totals[metric]
+        if same_value(base, head):
+            continue
+        if (head > base) == higher_is_better(metric):
+            better = True
+        else:
+            return False
+    return better
 
 
 def _t(text: str) -> str:
