@@ -203,7 +203,8 @@ def models_digest(models: Iterable[str]) -> str:
     return hashlib.sha256(joined).hexdigest()
 
 
-def shard_to_dict(result: GateResult, index: int, count: int, models: Sequence[str]) -> dict[str, Any]:
+def shard_to_dict(result: GateResult, index: int, count: int,
+                  models: Sequence[str]) -> dict[str, Any]:
     return {
         "format": SHARD_FORMAT, "version": SHARD_VERSION, "roofgate": __version__,
         "shard": {"index": index, "count": count},

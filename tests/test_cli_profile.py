@@ -181,7 +181,8 @@ def test_hostile_inputs_exit_2_with_one_line(tmp_path: Path, case: str) -> None:
                                   ["--precision", "int7"], ["--target", "no-such-target"],
                                   ["--format", "xml"]])
 def test_bad_options_exit_2(cnn: Path, args: list[str]) -> None:
-    result = _run(str(cnn), "--dim", "seq=1", *args) if args[0] != "--dim" else _run(str(cnn), *args)
+    result = (_run(str(cnn), "--dim", "seq=1", *args) if args[0] != "--dim"
+              else _run(str(cnn), *args))
     assert result.exit_code == 2, result.output
     assert "Traceback" not in result.output
 
@@ -189,3 +190,74 @@ def test_bad_options_exit_2(cnn: Path, args: list[str]) -> None:
 def test_missing_file_exit_2(tmp_path: Path) -> None:
     result = _run(str(tmp_path / "absent.onnx"))
     assert result.exit_code == 2 and "not found" in result.stderr
+
+
+# --- the table stays readable on a large model -------------------------------------------
+
+def _hundred_layers() -> onnx.ModelProto:
+    """100 layers: 33 MatMul + Relu + custom-op triples and a last MatMul; the custom op
+    (domain vendor.x) has no cost model, so 33 layers are unmodelled."""
+    nodes, inits = [], []
+    for k in range(33):
+        inits.append(numpy_helper.from_array(np.ones((64, 64), np.float32), f"w{k}"))
+        nodes += [helper.make_node("MatMul", [f"a{k}", f"w{k}"], [f"b{k}"],
+                                   name=f"block{k:02d}.a.rather_long_projection_name.matmul"),
+                  helper.make_node("Relu", [f"b{k}"], [f"c{k}"], name=f"block{k:02d}.relu"),
+                  helper.make_node("Frobnicate", [f"c{k}"], [f"a{k + 1}"], domain="vendor.x",
+                                   name=f"block{k:02d}.custom")]
+    inits.append(numpy_helper.from_array(np.ones((64, 64), np.float32), "w_last"))
+    nodes.append(helper.make_node("MatMul", ["a33", "w_last"], ["y"], name="head"))
+    graph = helper.make_graph(nodes, "hundred", [vi("a0", [1, 64])], [vi("y", None)], inits,
+                              value_info=[vi(f"a{k}", [1, 64]) for k in range(1, 34)])
+    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17),
+                                                   helper.make_opsetid("vendor.x", 1)])
+
+
+def test_table_of_a_hundred_layers_is_aligned_and_shows_coverage(tmp_path: Path) -> None:
+    path = save(_hundred_layers(), tmp_path / "big.onnx")
+    names = builtin_target_names()[:2]
+    done = _run(str(path), *[a for n in names for a in ("-t", n)])
+    assert done.exit_code == 0, done.output
+    lines = done.stdout.splitlines()
+    header = next(i for i, line in enumerate(lines) if line.startswith("#   layer"))
+    assert all(f"-{n}-" in lines[header - 1] for n in names)  # a named group per target
+    rows = lines[header + 1: header + 101]
+    assert [int(r.split()[0]) for r in rows] == list(range(100))
+    # right-aligned numeric columns end at the same place on every row
+    util_end = lines[header].index("util") + len("util")
+    assert all(r[util_end - 1] != " " for r in rows)
+    # 64 x 64 fp32 weights = 16 KiB; 1 x 64 x 64 MACs = 4.1k (ONNX MatMul spec)
+    first = rows[0].split()
+    assert first[4:7] == ["4.1k", "8.19k", "16KiB"]
+    custom = [r for r in rows if ".custom" in r]
+    assert len(custom) == 33 and all(r.rstrip().endswith("!") for r in custom)
+    assert all(not r.rstrip().endswith("!") for r in rows if ".custom" not in r)
+    assert max(len(line) for line in rows) < 220  # names are cut, not allowed to sprawl
+    out = done.stdout
+    assert "total: 100 layers (67 modelled)" in out
+    assert "coverage: 67/100 layers modelled" in out
+    assert "unmodelled: vendor.x.Frobnicate x33" in out
+    assert out.count("lower bounds: only 67/100 layers") == 2  # once per target
+    assert "! layer not modelled" in out and "MAC/pB = MACs per parameter byte" in out
+    assert any(unit in out for unit in ("us", "ms"))
+
+
+def test_dim_and_target_options_read_alike_across_commands() -> None:
+    for command in ("profile", "gate", "baseline", "diff", "check", "audit"):
+        text = CliRunner().invoke(cli, [command, "--help"]).output
+        assert "-t, --target NAME|FILE" in text, command
+        assert "--dim NAME=N" in text and "--precision TYPE" in text, command
+
+
+def test_long_names_are_cut_in_the_middle_and_unbound_models_are_not_costed(
+        tmp_path: Path) -> None:
+    from gate.cli.profile_render import clean
+
+    cut = clean("block07.attention.projection.query.matmul", 20, keep_end=True)
+    assert cut == "block07....ry.matmul" and len(cut) == 20
+    path = save(model([helper.make_node("Relu", ["x"], ["y"], name="r")],
+                      [vi("x", ["batch", 4])], [vi("y", None)]), tmp_path / "u.onnx")
+    out = _run(str(path), "-t", builtin_target_names()[0]).stdout
+    assert "not costed: no layer could be modelled" in out
+    assert "latency 0" not in out  # never a silent zero
+    assert "total: 1 layers (0 modelled)" in out

@@ -41,8 +41,8 @@ def _config_options(func: Any) -> Any:
                           "policies)."),
         dim_option("Bind a symbolic input dim, e.g. --dim seq=256 (repeatable; merged over "
                    "the config's dims)."),
-        precision_option("Count tensor bytes at this deploy precision (int8, fp16, ...; "
-                         "replaces the config's)."),
+        precision_option("Count floating-point tensors' bytes at this deploy precision "
+                         "(int8, fp16, ...; replaces the config's)."),
         click.option("--baseline", default=None, metavar="SNAPSHOT",
                      help="Baseline snapshot (from `roofgate baseline` or `audit --snapshot`) "
                           "to compare against instead of the base side from git (check) or "

@@ -17,10 +17,11 @@ from gate.result import GateResult
 
 F = TypeVar("F", bound=Callable[..., Any])
 
-TARGET_HELP = "Target profile: a built-in name (see `roofgate targets`) or a YAML file (repeatable)."
+TARGET_HELP = ("Target profile: a built-in name (see `roofgate targets`) or a YAML file "
+               "(repeatable).")
 DIM_HELP = "Bind a symbolic input dim, e.g. --dim seq=256 (repeatable)."
-PRECISION_HELP = ("Count tensor bytes at this deploy precision (int4, int8, int16, fp8, fp16, "
-                  "bf16, fp32; default: as exported). MACs never change.")
+PRECISION_HELP = ("Count floating-point tensors' bytes at this deploy precision (int4, int8, "
+                  "int16, fp8, fp16, bf16, fp32; default: as exported). MACs never change.")
 
 
 def parse_dims(ctx: click.Context | None, param: click.Parameter | None,

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import click
 
+from gate.cli.common import dim_option, precision_option, target_option
 from gate.cli.profile_render import render
 from gate.costmodel import cost_model
 from gate.errors import InputError
@@ -24,34 +25,12 @@ def register(cli: click.Group) -> None:
     cli.add_command(profile)
 
 
-def _parse_dims(ctx: click.Context, param: click.Parameter,
-                values: tuple[str, ...]) -> dict[str, int]:
-    """``("batch=1", "seq=128")`` -> ``{"batch": 1, "seq": 128}``; a usage error otherwise."""
-    dims: dict[str, int] = {}
-    for text in values:
-        name, sep, number = text.partition("=")
-        name, number = name.strip(), number.strip()
-        if not sep or not name or not number.isdigit():
-            raise click.BadParameter(f"'{text}': expected NAME=N with N a non-negative integer, "
-                                     f"e.g. --dim batch=1", ctx=ctx, param=param)
-        if name in dims and dims[name] != int(number):
-            raise click.BadParameter(f"'{name}' bound twice ({dims[name]} and {number})",
-                                     ctx=ctx, param=param)
-        dims[name] = int(number)
-    return dims
-
-
 @click.command("profile")
 @click.argument("model", metavar="MODEL")
-@click.option("--dim", "dims", multiple=True, metavar="NAME=N", callback=_parse_dims,
-              help="Bind a symbolic dim, e.g. --dim batch=1 (repeatable).")
-@click.option("--precision", default=None, metavar="NAME",
-              help="Count floating-point tensors' bytes as deployed at this precision "
-                   "(int4, int8, int16, fp8, fp16, bf16, fp32; default: native, as exported). "
-                   "MACs never change.")
-@click.option("--target", "targets", multiple=True, metavar="NAME_OR_FILE",
-              help="Cost the model on a target (built-in name or YAML file; repeatable: "
-                   "several targets give a side-by-side matrix).")
+@target_option("Cost the model on a target: a built-in name (see `roofgate targets`) or a "
+               "YAML file (repeatable: several targets give a side-by-side matrix).")
+@dim_option()
+@precision_option()
 @click.option("--format", "fmt", type=click.Choice(["table", "json", "csv"]), default="table",
               show_default=True, help="table for terminals; json and csv for machines.")
 def profile(model: str, dims: dict[str, int], precision: str | None, targets: tuple[str, ...],
@@ -60,8 +39,9 @@ def profile(model: str, dims: dict[str, int], precision: str | None, targets: tu
 
     Prints each layer's MACs, FLOPs, parameter and activation bytes, arithmetic
     intensity and parameter reuse, the model totals and the op coverage (which
-    layers could not be counted, and why). With --target, adds each target's
-    per-layer utilization, bound, latency, energy and DRAM traffic.
+    layers could not be counted, and why). Each --target adds a group of
+    columns (utilization, bound, latency per layer) and a line of model totals
+    (latency, energy, DRAM traffic); JSON and CSV carry every per-layer figure.
     """
     if not model.strip():
         raise InputError("empty model path; pass the .onnx file to profile")

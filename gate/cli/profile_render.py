@@ -36,7 +36,8 @@ CSV_TARGET_FIELDS: tuple[str, ...] = (
 )
 
 
-def render(fmt: str, profile: ModelProfile, runs: Sequence[Run], records: Sequence[RunRecord]) -> str:
+def render(fmt: str, profile: ModelProfile, runs: Sequence[Run],
+           records: Sequence[RunRecord]) -> str:
     """The whole output of ``roofgate profile`` in ``fmt`` (table, json or csv)."""
     if fmt == "json":
         return to_json(profile, records)
@@ -51,14 +52,17 @@ def shape_text(shape: Shape | None) -> str:
     return "?" if shape is None else "x".join(str(d) for d in shape) or "scalar"
 
 
-def layer_dict(layer: LayerProfile, input_names: Sequence[str], output_names: Sequence[str]) -> dict[str, Any]:
+def layer_dict(layer: LayerProfile, input_names: Sequence[str],
+               output_names: Sequence[str]) -> dict[str, Any]:
     return {
         "index": layer.index, "name": layer.name, "op_type": layer.op_type, "domain": layer.domain,
         "inputs": [None if shape is None and not dtype else
                    {"name": name, "shape": None if shape is None else list(shape), "dtype": dtype}
-                   for name, shape, dtype in zip(input_names, layer.input_shapes, layer.input_dtypes)],
+                   for name, shape, dtype in zip(input_names, layer.input_shapes,
+                                                 layer.input_dtypes)],
         "outputs": [{"name": name, "shape": None if shape is None else list(shape), "dtype": dtype}
-                    for name, shape, dtype in zip(output_names, layer.output_shapes, layer.output_dtypes)],
+                    for name, shape, dtype in zip(output_names, layer.output_shapes,
+                                                  layer.output_dtypes)],
         "param_names": list(layer.param_names), "param_count": layer.param_count,
         "param_bytes": layer.param_bytes, "input_bytes": layer.input_bytes,
         "output_bytes": layer.output_bytes, "bytes_moved": layer.bytes_moved,
@@ -83,7 +87,8 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
         "totals": {"layers": len(profile.layers), "macs": profile.total_macs,
                    "flops": profile.total_flops, "param_count": profile.total_param_count,
                    "param_bytes": profile.total_param_bytes,
-                   "max_layer_param_bytes": max((x.param_bytes for x in profile.layers), default=0)},
+                   "max_layer_param_bytes": max((x.param_bytes for x in profile.layers),
+                                                default=0)},
         "coverage": {"nodes_total": coverage.nodes_total,
                      "nodes_modelled": coverage.nodes_modelled,
                      "node_share": coverage.node_share, "work_modelled": coverage.work_modelled,
@@ -142,10 +147,17 @@ def to_csv(profile: ModelProfile, runs: Sequence[Run]) -> str:
 
 # ------------------------------------------------------------------ table
 
-def clean(text: str, limit: int = 0) -> str:
-    """``text`` without control or format characters, cut to ``limit`` characters if given."""
+def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
+    """``text`` without control or format characters, cut to ``limit`` characters if given.
+
+    ``keep_end`` cuts in the middle instead, so a long dotted layer name keeps
+    both its block prefix and its last part (``block3.attn...q_proj.matmul``).
+    """
     text = "".join(ch if unicodedata.category(ch)[0] != "C" else " " for ch in text)
     if limit and len(text) > limit:
+        if keep_end:
+            head = (limit - 3) // 2
+            return text[:head] + "..." + text[len(text) - (limit - 3 - head):]
         return text[: limit - 3] + "..."
     return text
 
@@ -166,18 +178,30 @@ def binary_bytes(value: int) -> str:
     return f"{value}B"
 
 
-def seconds(value: float) -> str:
-    for factor, suffix in ((1.0, "s"), (1e-3, "ms"), (1e-6, "us")):
-        if value >= factor:
+def _scaled(value: float, units: tuple[tuple[float, str], ...], zero: str) -> str:
+    """``value`` in the first unit it reaches (three significant digits); ``zero`` for 0."""
+    if value == 0:
+        return zero
+    for factor, suffix in units:
+        if abs(value) >= factor:
             return f"{value / factor:.3g}{suffix}"
-    return f"{value / 1e-9:.3g}ns"
+    factor, suffix = units[-1]
+    return f"{value / factor:.3g}{suffix}"
+
+
+def seconds(value: float) -> str:
+    """A time in s, ms, us or ns: 0.00123 -> '1.23ms'; exactly zero -> '0'."""
+    return _scaled(value, ((1.0, "s"), (1e-3, "ms"), (1e-6, "us"), (1e-9, "ns")), "0")
 
 
 def joules(value: float) -> str:
-    for factor, suffix in ((1.0, "J"), (1e-3, "mJ"), (1e-6, "uJ")):
-        if value >= factor:
-            return f"{value / factor:.3g}{suffix}"
-    return f"{value / 1e-9:.3g}nJ"
+    """An energy in J, mJ, uJ or nJ: 0.00123 -> '1.23mJ'; exactly zero -> '0J'."""
+    return _scaled(value, ((1.0, "J"), (1e-3, "mJ"), (1e-6, "uJ"), (1e-9, "nJ")), "0J")
+
+
+def ratio(value: float) -> str:
+    """A ratio with three significant digits and no exponent: 1600.0 -> '1.6k', 0.25 -> '0.25'."""
+    return si(value) if abs(value) >= 1000 else f"{value:.3g}"
 
 
 def _align(rows: list[list[str]], right_from: int) -> list[str]:
@@ -186,69 +210,133 @@ def _align(rows: list[list[str]], right_from: int) -> list[str]:
                       for i, (cell, w) in enumerate(zip(row, widths))).rstrip() for row in rows]
 
 
+def _known(shapes: Sequence[Shape | None]) -> bool:
+    """Every (present) tensor's shape is fully numeric, so its byte count is real, not 0."""
+    return all(shape is not None and all(isinstance(d, int) for d in shape)
+               for shape in shapes if shape != ())
+
+
 def _layer_cells(layer: LayerProfile) -> list[str]:
     out = ";".join(shape_text(s) for s in layer.output_shapes)
     counted = layer.modelled
-    return [str(layer.index), clean(layer.name, 40), clean(layer.op_type, 24), clean(out, 24),
+    return [str(layer.index), clean(layer.name, 40, keep_end=True), clean(layer.op_type, 24),
+            clean(out, 24),
             si(layer.macs) if counted else "-", si(layer.flops) if counted else "-",
-            binary_bytes(layer.param_bytes), binary_bytes(layer.input_bytes),
-            binary_bytes(layer.output_bytes),
-            f"{layer.arithmetic_intensity:.3g}" if counted else "-",
-            f"{layer.param_reuse:.3g}" if counted and layer.param_bytes else "-"]
+            binary_bytes(layer.param_bytes),
+            binary_bytes(layer.input_bytes) if _known(layer.input_shapes) else "?",
+            binary_bytes(layer.output_bytes) if _known(layer.output_shapes) else "?",
+            ratio(layer.arithmetic_intensity) if counted else "-",
+            ratio(layer.param_reuse) if counted and layer.param_bytes else "-"]
 
 
 _HEAD = ["#", "layer", "op", "output", "MACs", "FLOPs", "params", "in", "out", "FLOP/B", "MAC/pB"]
+_TARGET_HEAD = ["util", "bound", "latency"]
+LEGEND = ("columns: FLOP/B = FLOPs per byte of parameters, inputs and outputs (arithmetic "
+          "intensity); MAC/pB = MACs per parameter byte (weight reuse)")
+TARGET_LEGEND = ("target columns: util = share of the PE array kept busy; bound = what limits the "
+                 "layer (compute, memory, overhead, none)")
+MARKS = "marks: - not counted or not applicable"
+UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? size unknown"
 
 
 def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
-    """A readable per-layer table, totals, coverage, unmodelled ops and notes."""
+    """A readable per-layer table, totals, coverage, unmodelled ops and notes.
+
+    With targets, each target adds a group of columns under its name (a
+    side-by-side matrix) and a line of model totals below the table.
+    """
     model = profile.model
     dims = " ".join(f"{k}={v}" for k, v in model.dim_bindings.items()) or "none"
-    opsets = ", ".join(f"{domain or 'ai.onnx'} {version}" for domain, version in model.opsets.items())
+    opsets = ", ".join(f"{domain or 'ai.onnx'} {version}"
+                       for domain, version in model.opsets.items())
     lines = [f"model: {clean(model.name, 80)} ({clean(model.path, 120)})",
              f"precision: {profile.precision}   dims: {clean(dims, 120)}   "
              f"opsets: {clean(opsets, 120)}",
              ""]
-    head = list(_HEAD)
-    for target, _ in runs:
-        head += [f"{clean(target.name, 24)} util", "bound", "latency"]
-    rows = [head]
-    for i, layer in enumerate(profile.layers):
-        cells = _layer_cells(layer)
-        for _, cost in runs:
-            lc = cost.layers[i]
-            cells += [f"{lc.utilization:.0%}" if lc.engine == "array" else "-", lc.bound,
-                      seconds(lc.latency_s) if layer.modelled else "-"]
-        rows.append(cells)
-    lines += _align(rows, right_from=4)
+    flagged = any(not layer.modelled for layer in profile.layers)
+    head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + (["!"] if flagged else [])
+    rows = [head] + [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
+    table = _align(rows, right_from=4)
+    if runs:
+        table.insert(0, _group_line(rows, [clean(target.name, 40) for target, _ in runs]))
+    lines += table
+    lines += ["", LEGEND, *([TARGET_LEGEND] if runs else []),
+              MARKS + (UNMODELLED_MARKS if flagged else "")]
     lines += ["", *_totals_lines(profile), *_coverage_lines(profile)]
     for target, cost in runs:
-        lines += _target_lines(target, cost)
+        lines += _target_lines(target, cost, profile)
     if profile.notes:
         lines += ["", "notes:"] + [f"  - {clean(note, 300)}" for note in profile.notes]
     return "\n".join(lines) + "\n"
 
 
+def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> list[str]:
+    cells = _layer_cells(layer)
+    for _, cost in runs:
+        lc = cost.layers[i]
+        if not layer.modelled:
+            cells += ["-", "-", "-"]
+            continue
+        cells += [f"{lc.utilization:.0%}" if lc.engine == "array" else "-", lc.bound,
+                  seconds(lc.latency_s)]
+    if flagged:
+        cells.append("" if layer.modelled else "!")
+    return cells
+
+
+def _group_line(rows: list[list[str]], names: list[str]) -> str:
+    """The line above the header naming each target over its group of columns."""
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    start = sum(w + 2 for w in widths[:len(_HEAD)])
+    line = " " * start
+    for k, name in enumerate(names):
+        first = len(_HEAD) + k * len(_TARGET_HEAD)
+        span = sum(w + 2 for w in widths[first:first + len(_TARGET_HEAD)]) - 2
+        label = name if len(name) <= span else name[: max(span - 3, 1)] + "..."
+        line += label.center(span, "-" if len(label) + 2 <= span else " ") + "  "
+    return line.rstrip()
+
+
 def _totals_lines(profile: ModelProfile) -> list[str]:
-    return [f"total: {len(profile.layers)} layers, {si(profile.total_macs)} MACs, "
+    cov = profile.coverage
+    modelled = "" if cov.nodes_modelled == cov.nodes_total else f" ({cov.nodes_modelled} modelled)"
+    return [f"total: {len(profile.layers)} layers{modelled}, {si(profile.total_macs)} MACs, "
             f"{si(profile.total_flops)} FLOPs, {si(profile.total_param_count)} parameters "
             f"({binary_bytes(profile.total_param_bytes)}, shared ones counted once)"]
+
+
+MAX_UNMODELLED_LINES = 12
 
 
 def _coverage_lines(profile: ModelProfile) -> list[str]:
     cov = profile.coverage
     lines = [f"coverage: {cov.nodes_modelled}/{cov.nodes_total} layers modelled "
              f"({cov.node_share:.1%}), work share {cov.work_share:.1%}"]
-    for op in cov.unmodelled:
+    for op in cov.unmodelled[:MAX_UNMODELLED_LINES]:
         name = f"{op.domain}.{op.op_type}" if op.domain else op.op_type
         lines.append(f"  unmodelled: {clean(name, 60)} x{op.count}: {clean(op.reason, 200)}")
+    rest = cov.unmodelled[MAX_UNMODELLED_LINES:]
+    if rest:
+        lines.append(f"  ... {len(rest)} more unmodelled groups ({sum(op.count for op in rest)} "
+                     "layers); --format json lists them all")
     return lines
 
 
-def _target_lines(target: TargetProfile, cost: ModelCost) -> list[str]:
-    return ["", f"on {clean(target.name, 60)} ({cost.precision}): latency {seconds(cost.latency_s)} "
-                f"({cost.inferences_per_s:.3g} inferences/s), energy {joules(cost.energy.total_j)}, "
-                f"array utilization {cost.utilization:.1%}, parameter DRAM "
-                f"{binary_bytes(cost.param_dram_bytes)}, activation DRAM "
-                f"{binary_bytes(cost.act_dram_bytes)}, weights "
-                f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}"]
+def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile) -> list[str]:
+    """The model totals on one target; partial coverage makes them lower bounds, said so."""
+    cov = profile.coverage
+    name = clean(target.name, 60)
+    if profile.layers and cov.nodes_modelled == 0:
+        return ["", f"on {name} ({cost.precision}): not costed: no layer could be modelled "
+                    "(see coverage above)"]
+    lines = ["", f"on {name} ({cost.precision}): latency {seconds(cost.latency_s)} "
+                 f"({si(cost.inferences_per_s)} inferences/s), "
+                 f"energy {joules(cost.energy.total_j)}, "
+                 f"array utilization {cost.utilization:.1%}, parameter DRAM "
+                 f"{binary_bytes(cost.param_dram_bytes)}, activation DRAM "
+                 f"{binary_bytes(cost.act_dram_bytes)}, weights "
+                 f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}"]
+    if cov.nodes_modelled < cov.nodes_total:
+        lines.append(f"  lower bounds: only {cov.nodes_modelled}/{cov.nodes_total} layers "
+                     f"({cov.work_share:.1%} of the work) are modelled")
+    return lines

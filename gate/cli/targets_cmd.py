@@ -77,7 +77,8 @@ def _row(profile: TargetProfile) -> tuple[str, ...]:
         buffers = (f"{_binary(profile.param_buffer_bytes)} param + "
                    f"{_binary(profile.activation_buffer_bytes)} act")
     return (profile.name, profile.dataflow, f"{profile.pe_rows}x{profile.pe_cols}",
-            _si(profile.clock_hz, "Hz"), peak, ",".join(profile.precisions), buffers, _si(profile.dram_bytes_per_s, "B/s"),
+            _si(profile.clock_hz, "Hz"), peak, ",".join(profile.precisions), buffers,
+            _si(profile.dram_bytes_per_s, "B/s"),
             ridge, _si(profile.static_power_w, "W"))
 
 
