@@ -59,10 +59,12 @@ def _judge_change(change: gitscan.ModelChange, analysed: dict, stored: dict | No
     """
     head_runs, head_err = analysed.get(change.path, ([], ""))
     base_runs, base_err = analysed.get(_base_key(change.path), ([], ""))
+    notes = []
     if stored is not None and change.base_path:
         base_runs = [replace(r, model=change.path) for r in stored.get(change.base_path, [])]
+        base_runs, skipped = on_head_targets(base_runs, head_runs)
+        notes += skipped
     errors = [ModelError(change.path, m) for m in (head_err, *lfs_errors) if m]
-    notes = []
     if change.status == "renamed":
         notes.append(f"{change.base_path} was renamed to {change.head_path}; compared with "
                      "the old file.")
@@ -188,11 +190,33 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
     for model in mine:
         head_runs, error = analysed.get(model, ([], ""))
         errors = [ModelError(model, error)] if error else []
+        base_runs, notes = stored.get(model, []), []
+        if model in present:  # a model gone from the zoo keeps its base runs: all deleted
+            base_runs, notes = on_head_targets(base_runs, head_runs)
         results.append(engine.judge_model(
-            head_runs, [] if error else stored.get(model, []),
+            head_runs, [] if error else base_runs,
             policies.get(_audit_group(config, model)), command="audit", today=today,
-            errors=errors))
+            errors=errors, notes=notes))
     return engine.combine_results(results, "audit"), models
+
+
+def on_head_targets(base: Sequence[RunRecord], head: Sequence[RunRecord],
+                    ) -> tuple[list[RunRecord], list[str]]:
+    """Baseline runs on the targets the head is costed on, and a note naming the others.
+
+    A snapshot may hold more targets than this run costs (an older config, or a
+    --target override); those runs are no "deleted model", so they are left out.
+    When the head could not be analysed there is nothing to match: all are kept.
+    """
+    if not head:
+        return list(base), []
+    targets = {run.target for run in head}
+    kept = [run for run in base if run.target in targets]
+    others = sorted({run.target for run in base} - targets)
+    if not others:
+        return kept, []
+    return kept, [f"the baseline also holds runs on {', '.join(others)}, which this run does "
+                  "not cost; they are left out of the comparison"]
 
 
 def _audit_group(config: ProjectConfig, model: str) -> ModelGroup:

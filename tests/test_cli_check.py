@@ -222,3 +222,17 @@ def test_audit_progress_lines_and_trend(zoo: Path) -> None:
     second = runner.invoke(cli, ["audit", "models/m0 x.onnx", "models/m1 x.onnx",
                                  "--baseline", "night1.json"])
     assert "1 worse" in second.stdout and "worse: models/m0 x.onnx" in second.stdout
+
+
+def test_audit_leaves_out_baseline_runs_on_targets_it_does_not_cost(zoo: Path) -> None:
+    runner = CliRunner()
+    wide = runner.invoke(cli, ["audit", "models/m0 x.onnx", "-t", TARGET, "-t", "os-16x16-512kib",
+                               "--snapshot", "base.json", "--json", "wide.json"])
+    assert wide.exit_code == 0, wide.output
+    done = runner.invoke(cli, ["audit", "models/m0 x.onnx", "--baseline", "base.json",
+                               "--json", "narrow.json"])
+    assert done.exit_code == 0, done.output
+    assert "DELETED" not in done.stdout and "os-16x16-512kib, which this run does not cost" \
+        in done.stdout
+    assert "  PASS     models/m0 x.onnx on ws-64x64-4mib" in done.stdout
+    assert done.stdout.splitlines()[-3].endswith("unchanged")

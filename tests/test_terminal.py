@@ -64,6 +64,8 @@ def test_improvement_is_named() -> None:
     assert wake.endswith(", improved")  # latency 2 ms -> 1.2 ms, params 300,000 -> 170,000 B
     species = next(line for line in lines if "species.onnx on" in line)
     assert "improved" not in species  # its parameters grew
+    same = _lines(terminal.render(result(entry(run(), run()))))
+    assert same[1].endswith("energy 300 nJ, unchanged")  # 3 layers x 1e-7 J each
 
 
 def test_partial_and_zero_coverage_are_visible() -> None:

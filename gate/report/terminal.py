@@ -160,27 +160,23 @@ def _figures(entry: Entry) -> str:
         parts.append(f"only {fmt_percent(share)} of the work modelled (figures too low)")
     if entry.base is None:
         parts.append("new, no baseline")
-    elif _improved(entry):
-        parts.append("improved")
+    elif trend := _trend(entry):
+        parts.append(trend)
     return ", ".join(parts)
 
 
-def _improved(entry: Entry) -> bool:
-    """No cost metric worse than the baseline and at least one better."""
+def _trend(entry: Entry) -> str:
+    """``improved`` (no cost metric worse, one better), ``unchanged`` (none moved), or ``""``."""
     if entry.diff is None:
-        return False
-    better = False
+        return ""
+    moved = []
     for metric in COST_METRICS:
-        if metric not in entry.diff.totals:
-            continue
-        base, head = entry.diff.totals[metric]
-        if same_value(base, head):
-            continue
-        if (head > base) == higher_is_better(metric):
-            better = True
-        else:
-            return False
-    return better
+        if metric in entry.diff.totals and not same_value(*entry.diff.totals[metric]):
+            base, head = entry.diff.totals[metric]
+            moved.append((head > base) == higher_is_better(metric))
+    if not moved:
+        return "unchanged"
+    return "improved" if all(moved) else ""
 
 
 def _t(text: str) -> str:
