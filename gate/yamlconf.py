@@ -105,10 +105,17 @@ def parse_yaml_bytes(raw: bytes, shown: str) -> YamlDocument:
         line = f":{mark.line + 1}" if mark is not None else ""
         what = exc.problem or exc.context or "syntax error"
         raise ConfigError([f"{shown}{line}: YAML syntax error: {what}"]) from None
+    except yaml.reader.ReaderError as exc:  # a control character YAML does not allow
+        line = text.count("\n", 0, exc.position) + 1
+        char = exc.character
+        code = char if isinstance(char, int) else ord(str(char)[:1] or "?")
+        raise ConfigError([f"{shown}:{line}: character U+{code:04X} is not allowed in YAML; "
+                           "remove it (or quote it as an escape, e.g. \"\\x00\")"]) from None
     except yaml.YAMLError as exc:
         raise ConfigError([f"{shown}: YAML error: {' '.join(str(exc).split())}"]) from None
     except RecursionError:
-        raise ConfigError([f"{shown}: YAML nested too deeply"]) from None
+        raise ConfigError([f"{shown}: YAML nested too deeply; write the values out with less "
+                           "nesting"]) from None
     return YamlDocument(shown, root)
 
 
@@ -285,8 +292,9 @@ class Section:
         else:
             parsed = parse_quantity(str(value), unit)
         if parsed is None:
-            self.doc.problem(node, self._path(key),
-                             f"expected a quantity in {unit} (e.g. '2 M{unit}'), got '{node.value}'")
+            expected = (f"a quantity in {unit} (e.g. '2 M{unit}')" if unit
+                        else "a number (e.g. 2000000 or '2 M')")
+            self.doc.problem(node, self._path(key), f"expected {expected}, got '{node.value}'")
             return default
         return self._in_range(node, key, parsed, minimum, None, default)
 
