@@ -209,3 +209,24 @@ def test_terminal_summary_is_safe_and_ends_with_the_outcome() -> None:
     assert any("head/gemm" in line for line in lines)
     assert HOSTILE_NAME not in text  # only its escaped form can appear
     assert terminal.render(result()).splitlines()[-1] == "PASSED (exit 0)"
+
+
+def test_a_bug_in_roofgate_is_exit_3_not_an_unanalysable_model(work, monkeypatch) -> None:
+    from gate.errors import InternalError
+
+    def broken(*args: object, **kwargs: object) -> None:
+        raise InternalError("cost function for Conv crashed (simulated)")
+
+    monkeypatch.setattr(gate_cmd, "analyse", broken)
+    result = _invoke(work, ["gate", "base/species.onnx", "-t", "ws-64x64-4mib",
+                            "-p", "policy.yaml"])
+    assert result.exit_code == 3 and "simulated" in result.stderr
+
+
+def test_dims_are_positive_on_every_command(work) -> None:
+    for command in (["gate", "base/species.onnx", "-p", "policy.yaml"],
+                    ["baseline", "base/species.onnx", "-o", "-"],
+                    ["profile", "base/species.onnx"], ["audit", "base"]):
+        result = _invoke(work, [*command, "-t", "ws-64x64-4mib", "--dim", "batch=0"])
+        assert result.exit_code == 2, (command, result.output)
+        assert "positive integer" in result.stderr, command

@@ -261,3 +261,11 @@ def test_long_names_are_cut_in_the_middle_and_unbound_models_are_not_costed(
     assert "not costed: no layer could be modelled" in out
     assert "latency 0" not in out  # never a silent zero
     assert "total: 1 layers (0 modelled)" in out
+
+
+def test_unicode_line_separators_in_names_do_not_break_table_lines(tmp_path: Path) -> None:
+    # U+2028 / U+2029 are the Unicode line and paragraph separators (categories Zl, Zp).
+    nodes = [helper.make_node("Relu", ["x"], ["y"], name="a\u2028b\u2029c")]
+    path = save(model(nodes, [vi("x", [1, 4])], [vi("y", [1, 4])]), tmp_path / "m.onnx")
+    out = _run(str(path)).stdout
+    assert "\u2028" not in out and "\u2029" not in out and "a b c" in out

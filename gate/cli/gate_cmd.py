@@ -17,7 +17,7 @@ from typing import Any, Sequence
 import click
 
 from gate.cli.common import analysis_options, finish
-from gate.errors import InputError, RoofgateError
+from gate.errors import InputError, InternalError, RoofgateError
 from gate.pipeline import analyse, judge
 from gate.policy import load_policies, unused_waivers
 from gate.policy.globs import normalize_model_path
@@ -90,6 +90,8 @@ def _analyse_all(models: Sequence[str], targets: Sequence[TargetProfile], dims: 
         shown = normalize_model_path(path)
         try:
             runs.extend(analyse(path, targets, dims=dims, precision=precision, shown_path=shown))
+        except InternalError:
+            raise  # roofgate's own bug (exit 3), not a model that cannot be analysed (exit 2)
         except RoofgateError as exc:
             message = exc.format_message()
             if exc.path and message.startswith(f"{exc.path}: "):

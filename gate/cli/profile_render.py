@@ -147,13 +147,20 @@ def to_csv(profile: ModelProfile, runs: Sequence[Run]) -> str:
 
 # ------------------------------------------------------------------ table
 
+def _unprintable(char: str) -> bool:
+    """Control, format and private characters (category C) and the Unicode line and
+    paragraph separators (Zl, Zp), which some log viewers treat as a new line."""
+    category = unicodedata.category(char)
+    return category[0] == "C" or category in ("Zl", "Zp")
+
+
 def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
     """``text`` without control or format characters, cut to ``limit`` characters if given.
 
     ``keep_end`` cuts in the middle instead, so a long dotted layer name keeps
     both its block prefix and its last part (``block3.attn...q_proj.matmul``).
     """
-    text = "".join(ch if unicodedata.category(ch)[0] != "C" else " " for ch in text)
+    text = "".join(" " if _unprintable(ch) else ch for ch in text)
     if limit and len(text) > limit:
         if keep_end:
             head = (limit - 3) // 2
