@@ -230,3 +230,18 @@ def test_dims_are_positive_on_every_command(work) -> None:
         result = _invoke(work, [*command, "-t", "ws-64x64-4mib", "--dim", "batch=0"])
         assert result.exit_code == 2, (command, result.output)
         assert "positive integer" in result.stderr, command
+
+
+def test_diff_names_both_sides_and_what_moved_on_every_changed_layer(work) -> None:
+    result = _invoke(work, ["diff", "base/species.onnx", "wide/species.onnx", "-t",
+                            "ws-64x64-4mib", "--limit", "0"])
+    assert result.exit_code == 0, result.stderr
+    lines = result.output.splitlines()
+    assert lines[0] == "diff: base/species.onnx (old) -> wide/species.onnx (new)"
+    assert any(line.startswith("  latency ") for line in lines)
+    # head.flatten only moves activation bytes (its input doubles: 192 -> 384 channels,
+    # x 4 bytes fp32), so the line says that rather than ending empty.
+    flatten = next(line for line in lines if "Flatten head.flatten" in line)
+    assert "input_bytes 768 B -> 1.50 KiB (+100.0%)" in flatten
+    conv2 = next(line for line in lines if "stage4.block1.conv2 " in line)
+    assert "params 1.27 MiB -> 5.06 MiB (+300.0%)" in conv2  # 3x3 kernels, 2x in, 2x out

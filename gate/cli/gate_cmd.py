@@ -22,7 +22,7 @@ from gate.pipeline import analyse, judge
 from gate.policy import load_policies, unused_waivers
 from gate.policy.globs import normalize_model_path
 from gate.records import RunRecord
-from gate.report import report_options, report_paths, write_reports
+from gate.report import report_options, report_paths, terminal, write_reports
 from gate.report.text import fmt_change, fmt_metric, shorten, term_safe
 from gate.diff import ranked_changes
 from gate.result import GateResult, ModelError
@@ -153,7 +153,7 @@ def baseline_command(models: tuple[str, ...], targets: tuple[str, ...], dims: di
 @click.argument("old", metavar="OLD")
 @click.argument("new", metavar="NEW")
 @analysis_options
-@click.option("--limit", default=20, show_default=True, type=click.IntRange(min=0),
+@click.option("--limit", default=20, show_default=True, type=click.IntRange(min=0), metavar="N",
               help="Changed layers to list per model x target (0 = all).")
 @report_options
 def diff_command(old: str, new: str, targets: tuple[str, ...], dims: dict[str, int],
@@ -172,7 +172,7 @@ def diff_command(old: str, new: str, targets: tuple[str, ...], dims: dict[str, i
     result = judge(new_runs, old_runs, (), command="diff", today=_day(None), notes=notes)
     written = write_reports(result, report_paths(kwargs))
     to_stdout = any(path == "-" for path in report_paths(kwargs).values())
-    click.echo(render_diff(result, limit, written), nl=False, err=to_stdout)
+    click.echo(render_diff(result, limit, written, (old, new)), nl=False, err=to_stdout)
 
 
 def _is_snapshot(path: str) -> bool:
@@ -232,19 +232,30 @@ def _renamed(run: RunRecord, model: str) -> RunRecord:
                      run.target_figures, run.layers, run.unmodelled, run.notes)
 
 
-def render_diff(result: GateResult, limit: int, written: Sequence[str] = ()) -> str:
-    """The diff as text: totals then the most changed layers, per model x target."""
-    lines = [f"note: {term_safe(n)}" for n in result.notes]
+DIFF_TOTALS = (("latency_s", "latency"), ("energy_j", "energy"), ("macs", "MACs"),
+               ("param_bytes", "params"), ("param_dram_bytes", "param DRAM"),
+               ("utilization", "utilization"))
+DIFF_LAYER_METRICS = (("latency_s", "latency"), ("macs", "MACs"), ("param_bytes", "params"),
+                      ("utilization", "util"))
+
+
+def render_diff(result: GateResult, limit: int, written: Sequence[str] = (),
+                sides: tuple[str, str] | None = None) -> str:
+    """The diff as text: totals then the most changed layers, per model x target.
+
+    ``sides`` names OLD and NEW as given on the command line, for the first line.
+    """
+    lines = [f"diff: {term_safe(sides[0])} (old) -> {term_safe(sides[1])} (new)"] if sides else []
+    lines += [f"note: {term_safe(n)}" for n in result.notes]
     for entry in result.entries:
         lines.append(f"{term_safe(entry.model)} on {term_safe(entry.target)}:")
         if entry.diff is None:
             lines.append("  only in " + ("NEW" if entry.base is None else "OLD"))
             continue
-        for metric in ("latency_s", "energy_j", "macs", "param_bytes", "param_dram_bytes",
-                       "utilization"):
+        for metric, label in DIFF_TOTALS:
             if metric in entry.diff.totals:
                 base, head = entry.diff.totals[metric]
-                lines.append(f"  {metric:<18} {fmt_metric(metric, base):>12} -> "
+                lines.append(f"  {label:<12} {fmt_metric(metric, base):>12} -> "
                              f"{fmt_metric(metric, head):>12}  {fmt_change(metric, base, head)}")
         ranked = ranked_changes(entry.diff)
         shown = ranked if limit == 0 else ranked[:limit]
@@ -255,9 +266,9 @@ def render_diff(result: GateResult, limit: int, written: Sequence[str] = ()) -> 
             lines.append("    " + _change_line(change))
         if len(ranked) > len(shown):
             lines.append(f"    ... {len(ranked) - len(shown)} more (use --limit 0 for all)")
-    files = [term_safe(w) for w in written if w != "-"]
+    files = [w for w in written if w != "-"]
     if files:
-        lines.append("reports: " + ", ".join(files))
+        lines.append(terminal.reports_line(files))
     return "\n".join(lines) + "\n"
 
 
@@ -266,9 +277,12 @@ def _change_line(change: Any) -> str:
     label = term_safe(shorten(name or "", 80))
     if change.status == "changed" and change.base_name != change.head_name:
         label += f" (was {term_safe(shorten(change.base_name or '', 60))})"
+    named = [(metric, text) for metric, text in DIFF_LAYER_METRICS if metric in change.deltas]
+    if not named:  # moved only in figures not listed above (e.g. activation bytes): say which
+        named = [(metric, metric) for metric in sorted(change.deltas)[:2]]
     parts = []
-    for metric in ("latency_s", "macs", "param_bytes", "utilization"):
-        if metric in change.deltas:
-            base, head = change.deltas[metric]
-            parts.append(f"{metric} {fmt_metric(metric, base)} -> {fmt_metric(metric, head)}")
-    return f"{change.status:<8} {term_safe(change.op_type)} {label}  {'; '.join(parts)}"
+    for metric, text in named:
+        base, head = change.deltas[metric]
+        parts.append(f"{text} {fmt_metric(metric, base)} -> {fmt_metric(metric, head)} "
+                     f"({fmt_change(metric, base, head)})")
+    return f"{change.status:<8} {term_safe(change.op_type)} {label}  {'; '.join(parts)}".rstrip()
