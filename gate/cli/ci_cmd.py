@@ -81,7 +81,7 @@ def _paths(kwargs: dict[str, Any], config: ProjectConfig) -> dict[str, str | Non
 
 # --- check ----------------------------------------------------------------------------
 
-@click.command("check")
+@click.command("check", short_help="Gate the models a branch changed (both sides from git).")
 @click.option("--base", "base_ref", required=True, metavar="REF",
               help="Branch or commit the pull request targets (e.g. origin/main).")
 @_config_options
@@ -105,7 +105,7 @@ def check_command(base_ref: str, **kwargs: Any) -> None:
 
 # --- audit ----------------------------------------------------------------------------
 
-@click.command("audit")
+@click.command("audit", short_help="Profile and judge a whole model zoo, optionally sharded.")
 @click.argument("paths", nargs=-1, type=click.Path(path_type=str))
 @_config_options
 @click.option("--shard", default=None, metavar="I/N",
@@ -154,7 +154,7 @@ def _write_snapshot(result: GateResult, path: str | None) -> tuple[str, ...]:
 
 # --- merge ----------------------------------------------------------------------------
 
-@click.command("merge")
+@click.command("merge", short_help="Combine `audit --shard` results into one set of reports.")
 @click.argument("shard_files", nargs=-1, required=True, type=click.Path(path_type=str))
 @click.option("--config", "config_path", metavar="FILE", default=None,
               help="Project config (for its report paths).")
@@ -179,7 +179,7 @@ def merge_command(shard_files: tuple[str, ...], config_path: str | None,
 
 # --- demo -----------------------------------------------------------------------------
 
-@click.command("demo")
+@click.command("demo", short_help="Run the gate on a fictional repository, built on the fly.")
 @click.option("--keep", "keep_dir", default=None, metavar="DIR",
               help="Build the demo repository in DIR (kept) instead of a temporary folder.")
 def demo_command(keep_dir: str | None) -> None:

@@ -40,7 +40,7 @@ def register(cli: click.Group) -> None:
 
 # --- gate -----------------------------------------------------------------------------
 
-@click.command("gate")
+@click.command("gate", short_help="Gate given models on targets under policy files.")
 @click.argument("models", nargs=-1, required=True, metavar="MODEL...")
 @analysis_options
 @click.option("--policy", "-p", "policies", multiple=True, required=True, metavar="FILE",
@@ -122,7 +122,7 @@ def _day(value: datetime | None) -> date:
 
 # --- baseline -------------------------------------------------------------------------
 
-@click.command("baseline")
+@click.command("baseline", short_help="Write a baseline snapshot for later comparisons.")
 @click.argument("models", nargs=-1, required=True, metavar="MODEL...")
 @analysis_options
 @click.option("--output", "-o", required=True, metavar="PATH",
@@ -149,7 +149,7 @@ def baseline_command(models: tuple[str, ...], targets: tuple[str, ...], dims: di
 
 # --- diff -----------------------------------------------------------------------------
 
-@click.command("diff")
+@click.command("diff", short_help="Per-layer diff of two models or snapshots.")
 @click.argument("old", metavar="OLD")
 @click.argument("new", metavar="NEW")
 @analysis_options

@@ -25,7 +25,7 @@ def register(cli: click.Group) -> None:
     cli.add_command(profile)
 
 
-@click.command("profile")
+@click.command("profile", short_help="Per-layer counts and costs of one model.")
 @click.argument("model", metavar="MODEL")
 @target_option("Cost the model on a target: a built-in name (see `roofgate targets`) or a "
                "YAML file (repeatable: several targets give a side-by-side matrix).")

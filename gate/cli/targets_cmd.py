@@ -17,15 +17,17 @@ def register(cli: click.Group) -> None:
     cli.add_command(targets)
 
 
-@click.group(invoke_without_command=True)
+@click.group(invoke_without_command=True,
+             short_help="List the built-in targets; show one as YAML.")
 @click.option("--file", "files", multiple=True, metavar="PATH",
               help="Also list this target YAML file (repeatable).")
 @click.pass_context
 def targets(ctx: click.Context, files: tuple[str, ...]) -> None:
     """List the built-in targets with their key figures.
 
-    Add your own target as a YAML file (see the README's target schema) and
-    pass its path wherever a target name is accepted.
+    Add your own target as a YAML file (schema in docs/targets.md; start from
+    `roofgate targets show NAME`, a commented example) and pass its path
+    wherever a target name is accepted.
     """
     if ctx.invoked_subcommand is not None:
         return
