@@ -340,8 +340,15 @@ def external_data_warnings(graph: onnx.GraphProto, folder: Path) -> list[str]:
             if tensor.data_location != TensorProto.EXTERNAL:
                 continue
             location = next((e.value for e in tensor.external_data if e.key == "location"), "")
-            target = os.path.realpath(os.path.join(root, location))
-            if os.path.isabs(location) or os.path.commonpath([root, target]) != root:
+            try:
+                target = os.path.realpath(os.path.join(root, location)) if location else ""
+            except (ValueError, OSError):  # e.g. an embedded NUL: no file system path at all
+                target = ""
+            if not target:
+                warnings.append(f"initializer '{tensor.name}' has an unusable external-data "
+                                f"location ({location!r}); not opened (roofgate reads no "
+                                f"weights), but re-export the model before shipping it")
+            elif os.path.isabs(location) or os.path.commonpath([root, target]) != root:
                 warnings.append(f"initializer '{tensor.name}' points its external data outside "
                                 f"the model's folder ('{location}'); not opened (roofgate "
                                 f"reads no weights), but do not ship such a model")
