@@ -135,21 +135,23 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
         out = shard_out or f"roofgate-out/shard-{index}-of-{count}.json"
         engine.write_shard(out, result, index, count, models)
         # A shard writes only its shard file unless report flags ask for partial reports.
-        result = engine.with_notes(result, engine.trend_notes(result))
-        finish(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
-                f"{len(engine.shard_share(models, index, count))} of {len(models)} models", (out,))
+        _finish_audit(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
+                      f"{len(engine.shard_share(models, index, count))} of {len(models)} models",
+                      None, (out,))
+    _finish_audit(result, _paths(kwargs, config), f"roofgate audit: {len(models)} models",
+                  snapshot)
+
+
+def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
+                  snapshot: str | None, written: tuple[str, ...] = ()) -> None:
+    """Add the trend notes, write the snapshot if asked, then the reports and the summary."""
     result = engine.with_notes(result, engine.trend_notes(result))
-    written = _write_snapshot(result, snapshot)
-    finish(result, _paths(kwargs, config), f"roofgate audit: {len(models)} models", written)
+    if snapshot:
+        from gate.snapshot import write_snapshot
 
-
-def _write_snapshot(result: GateResult, path: str | None) -> tuple[str, ...]:
-    if not path:
-        return ()
-    from gate.snapshot import write_snapshot
-
-    write_snapshot([e.head for e in result.entries if e.head is not None], path)
-    return (path,)
+        write_snapshot([e.head for e in result.entries if e.head is not None], snapshot)
+        written += (snapshot,)
+    finish(result, paths, title, written)
 
 
 # --- merge ----------------------------------------------------------------------------
@@ -170,11 +172,9 @@ def merge_command(shard_files: tuple[str, ...], config_path: str | None,
     """
     config = load_config(config_path, require_targets=False)
     result = engine.read_shards(list(shard_files))
-    result = engine.with_notes(result, engine.trend_notes(result))
-    written = _write_snapshot(result, snapshot)
     models = len({e.model for e in result.entries} | {e.model for e in result.errors})
-    finish(result, _paths(kwargs, config), f"roofgate audit (merged {len(shard_files)} "
-            f"shards): {models} models", written)
+    _finish_audit(result, _paths(kwargs, config), f"roofgate audit (merged {len(shard_files)} "
+                  f"shards): {models} models", snapshot)
 
 
 # --- demo -----------------------------------------------------------------------------
