@@ -73,8 +73,9 @@ def _judge_change(change: gitscan.ModelChange, analysed: dict, stored: dict | No
                      f"judged as new ({base_err})")
     if errors:
         base_runs = []
-    return engine.judge_model(head_runs, base_runs, policies.get(_group(policies.config, change)),
-                              command="check", today=today, errors=errors, notes=notes)
+    group = _group(policies.config, change)
+    return engine.judge_model(head_runs, base_runs, policies.get(group), command="check",
+                              today=today, errors=errors, notes=[*notes, *unjudged_notes(group)])
 
 
 class _PolicyCache:
@@ -193,11 +194,23 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
         base_runs, notes = stored.get(model, []), []
         if model in present:  # a model gone from the zoo keeps its base runs: all deleted
             base_runs, notes = on_head_targets(base_runs, head_runs)
+        group = _audit_group(config, model)
         results.append(engine.judge_model(
-            head_runs, [] if error else base_runs,
-            policies.get(_audit_group(config, model)), command="audit", today=today,
-            errors=errors, notes=notes))
+            head_runs, [] if error else base_runs, policies.get(group), command="audit",
+            today=today, errors=errors, notes=[*notes, *unjudged_notes(group)]))
     return engine.combine_results(results, "audit"), models
+
+
+# One text for every model without a policy, so per-model notes merge into one line (and
+# sharded and unsharded audits give the same notes).
+UNJUDGED_NOTE = ("some models fall under no policy: they are analysed but no rule judges them, "
+                 "so their PASS means only 'analysed'; add 'policies:' to roofgate.yaml or pass "
+                 "--policy")
+
+
+def unjudged_notes(group: ModelGroup) -> list[str]:
+    """``[UNJUDGED_NOTE]`` when ``group`` names no policy file."""
+    return [] if group.policies else [UNJUDGED_NOTE]
 
 
 def on_head_targets(base: Sequence[RunRecord], head: Sequence[RunRecord],

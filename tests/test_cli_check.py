@@ -236,3 +236,19 @@ def test_audit_leaves_out_baseline_runs_on_targets_it_does_not_cost(zoo: Path) -
         in done.stdout
     assert "  PASS     models/m0 x.onnx on ws-64x64-4mib" in done.stdout
     assert done.stdout.splitlines()[-3].endswith("unchanged")
+
+
+def test_models_under_no_policy_are_called_unjudged_alike_sharded_or_not(zoo: Path) -> None:
+    (zoo / "roofgate.yaml").write_text(f"targets: [{TARGET}]\n")  # no policies
+    (zoo / "models/broken.onnx").unlink()
+    runner = CliRunner()
+    whole = runner.invoke(cli, ["audit", *reports("all")])
+    assert whole.exit_code == 0, whole.output
+    assert "some models fall under no policy" in whole.stdout
+    for k in (1, 2):
+        shard = runner.invoke(cli, ["audit", "--shard", f"{k}/2", "--shard-out", f"s{k}.json"])
+        assert shard.exit_code == 0, shard.output
+    merged = runner.invoke(cli, ["merge", "s1.json", "s2.json", *reports("merged")])
+    assert merged.exit_code == 0, merged.output
+    assert read_reports("all") == read_reports("merged")
+    assert (zoo / "merged/summary.md").read_text().count("fall under no policy") == 1
