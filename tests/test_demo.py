@@ -35,7 +35,9 @@ def test_demo_runs_as_designed(tmp_path: Path) -> None:
     assert wake.startswith("  PASS") and wake.endswith("improved")
     assert "shown as improved, parameters 2.38 MiB -> 984 KiB (-59.6%)" in out
     # Only the model with a symbolic length is bound: no "binding ignored" note elsewhere.
-    assert "binding ignored" not in (reports / "summary.md").read_text(encoding="utf-8")
+    summary = (reports / "summary.md").read_text(encoding="utf-8")
+    assert "binding ignored" not in summary
+    assert "FICTIONAL demo data" in summary  # the reports are labelled, not only the console
 
 
 def test_demo_refuses_a_non_empty_folder(tmp_path: Path) -> None:

@@ -31,6 +31,8 @@ REPO_DIR = "fernhollow-models"
 BRANCH = "pr/widen-species-prune-wakeword"
 WIDENED_LAYER = "stage4.block1.conv2"  # the layer whose weights outgrow the buffer (scenario.py)
 DEMO_TARGET = "ws-64x64-4mib"
+DEMO_NOTE = ("FICTIONAL demo data: Fernhollow Field Robotics, its models and the "
+             f"{DEMO_TARGET} target are invented (`roofgate demo`)")
 SPECIES = "models/trailcam/species.onnx"
 WAKEWORD = "models/handheld/wakeword.onnx"
 
@@ -142,6 +144,7 @@ def _build_repository(repo: Path, echo: Callable[[str], None]) -> None:
 
 
 def _check(repo: Path) -> tuple[GateResult, str, list[str]]:
+    from gate.audit import with_notes
     from gate.check import run_check
     from gate.config import load_config
     from gate.report import write_reports
@@ -151,6 +154,7 @@ def _check(repo: Path) -> tuple[GateResult, str, list[str]]:
     try:
         config = load_config(None, root=repo)
         result, title = run_check(repo, config, "main", baseline=None, workers=1)
+        result = with_notes(result, [DEMO_NOTE])  # the reports say so too, not only stdout
         paths: dict[str, str | None] = dict(config.reports)
         if importlib.util.find_spec("matplotlib") is not None:  # the optional html extra
             paths["html"] = "roofgate-out/report.html"
