@@ -87,3 +87,21 @@ def test_reports_in_one_folder_are_listed_once() -> None:
     assert terminal.reports_line(["junit.xml", "out/summary.md"]) == \
         "reports: junit.xml, out/summary.md"
     assert terminal.reports_line(["a.xml", "b.md"]) == "reports: a.xml, b.md"
+
+
+def test_worst_findings_come_first() -> None:
+    # min-utilization: lower is worse (utilization is better higher, gate.policy.spec)
+    lows = tuple(finding(f"conv{k}", metric="utilization", value=v, limit=0.3,
+                         message=f"conv{k} at {v:.0%}")
+                 for k, v in enumerate((0.25, 0.20, 0.29, 0.05, 0.10)))
+    text = terminal.render(result(entry(run(), verdicts=(
+        verdict("min-util", status=FAIL, findings=lows),))))
+    shown = [line.strip()[2:] for line in _lines(text) if line.startswith("             - ")]
+    assert shown == ["conv3 at 5%", "conv4 at 10%", "conv1 at 20%"]
+    # parameter bytes: higher is worse
+    highs = tuple(finding(f"fc{k}", value=v, limit=100, message=f"fc{k} {v}")
+                  for k, v in enumerate((150, 900, 120)))
+    text = terminal.render(result(entry(run(), verdicts=(
+        verdict(status=FAIL, findings=highs),))))
+    shown = [line.strip()[2:] for line in _lines(text) if line.startswith("             - ")]
+    assert shown == ["fc1 900", "fc0 150", "fc2 120"]

@@ -17,7 +17,7 @@ from gate.diff import same_value
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 from gate.policy.spec import higher_is_better
 from gate.report.text import fmt_change, fmt_metric, fmt_percent, shorten, term_safe
-from gate.result import FAIL, WAIVED, Entry, GateResult, Verdict
+from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, Verdict
 
 KEY_METRICS = (("latency_s", "latency"), ("utilization", "util"), ("param_bytes", "params"),
                ("energy_j", "energy"))
@@ -96,11 +96,12 @@ def _entry_lines(entry: Entry) -> list[str]:
 
 
 def _failed_rule_lines(verdict: Verdict) -> list[str]:
-    """The rule's summary, its first findings (value and limit), then its remedy once.
+    """The rule's summary, its worst findings (value and limit), then its remedy once.
 
     A single finding that restates the summary (model-level rules) replaces it.
     """
-    failing = [f for f in verdict.findings if f.status == FAIL]
+    failing = sorted((f for f in verdict.findings if f.status == FAIL), key=_badness,
+                     reverse=True)
     messages = [_without_remedy(f.message, verdict.remedy) for f in failing]
     cut = any(stripped for _, stripped in messages)
     header = verdict.summary
@@ -114,6 +115,17 @@ def _failed_rule_lines(verdict: Verdict) -> list[str]:
     if cut:
         lines.append(f"             remedy: {_t(shorten(verdict.remedy, 300))}")
     return lines
+
+
+def _badness(finding: Finding) -> float:
+    """How far past its limit a finding is, in the metric's own unit (worst first; ties keep
+    the rule's order). Findings of one rule share a metric, so the amounts compare."""
+    try:
+        value, limit = float(finding.value), float(finding.limit)
+    except (TypeError, ValueError):
+        return 0.0
+    excess = limit - value if higher_is_better(finding.metric) else value - limit
+    return excess if excess == excess else 0.0  # NaN sorts as 'not past'
 
 
 def _model_prefix_off(message: str) -> str:
