@@ -9,12 +9,27 @@ Exit codes (documented in the README):
 
 from __future__ import annotations
 
+import re
+
 import click
 
 EXIT_PASS = 0
 EXIT_GATE_FAILED = 1
 EXIT_BAD_INPUT = 2
 EXIT_INTERNAL = 3
+
+
+# Characters a terminal acts on (escape sequences, bell, backspace, C1 controls) and
+# line separators; messages quote model-supplied names, which may hold any of them.
+_TERMINAL_CONTROL = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029]")
+
+
+def one_safe_line(text: str) -> str:
+    """``text`` as one line with no terminal control characters (shown as ``\\x1b``)."""
+    joined = " ".join(text.splitlines())
+    return _TERMINAL_CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}"
+                                 if ord(m.group()) <= 0xFF else f"\\u{ord(m.group()):04x}",
+                                 joined)
 
 
 class RoofgateError(click.ClickException):
@@ -28,8 +43,9 @@ class RoofgateError(click.ClickException):
         super().__init__(text)
 
     def format_message(self) -> str:
-        # One line, always: a model-supplied newline must not forge extra output lines.
-        return " ".join(self.message.splitlines())
+        # One line, always: a model-supplied newline must not forge extra output lines,
+        # nor an escape sequence in a node name act on the user's terminal.
+        return one_safe_line(self.message)
 
 
 class InputError(RoofgateError):
@@ -49,7 +65,7 @@ class ConfigError(RoofgateError):
 
     def format_message(self) -> str:
         extra = len(self.problems) - 1
-        lines = [" ".join(p.splitlines()) for p in self.problems]
+        lines = [one_safe_line(p) for p in self.problems]
         if extra > 0:
             return "\n".join(lines)
         return lines[0] if lines else "invalid configuration"

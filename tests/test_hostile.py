@@ -849,3 +849,61 @@ def test_debug_shows_the_traceback_of_a_cost_function_bug(tmp_path) -> None:
                            str(path)], capture_output=True, text=True, timeout=60, shell=False,
                           cwd=tmp_path)
     assert done.returncode == 3 and "Traceback" in done.stderr, done.stderr
+
+
+# --- nothing a model says may act on the user's terminal ----------------------------------------
+
+TTY_NAME = "evil\x1b[2J\x1b]0;pwned\x07\x9b31m"
+
+
+def _on_a_terminal(args: list[str], cwd: Path) -> tuple[int, bytes]:
+    """Run roofgate with stdout and stderr on a pseudo-terminal (click strips ANSI codes only
+    when the stream is not a terminal, so CliRunner cannot see this)."""
+    import pty
+    master, slave = pty.openpty()
+    proc = subprocess.Popen([sys.executable, "-c", "from gate.cli import main; main()", *args],
+                            stdout=slave, stderr=slave, stdin=subprocess.DEVNULL, cwd=cwd,
+                            shell=False)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 65536)
+        except OSError:  # EIO once the child has closed the terminal
+            break
+        if not data:
+            break
+        chunks.append(data)
+    proc.wait(timeout=60)
+    os.close(master)
+    return proc.returncode, b"".join(chunks)
+
+
+@pytest.mark.skipif(not hasattr(os, "openpty"), reason="needs a pseudo-terminal")
+def test_error_line_with_hostile_name_is_inert_on_a_terminal(tmp_path) -> None:
+    nodes = [helper.make_node("Relu", ["b"], ["a"], name=TTY_NAME),
+             helper.make_node("Add", ["a", "x"], ["b"], name="r2")]
+    path = tmp_path / "cyclic.onnx"
+    path.write_bytes(model(nodes, [vi("x", [1, 4])], [vi("b", [1, 4])]).SerializeToString())
+    for args in (["profile", str(path)],
+                 ["gate", str(path), "-t", TARGET, "-p", DEFAULT_POLICY]):
+        code, output = _on_a_terminal(args, tmp_path)
+        assert code == 2, output
+        assert b"\x1b" not in output and b"\x07" not in output and b"\xc2\x9b" not in output
+        assert b"evil\\x1b[2J" in output  # shown visibly instead
+
+
+@pytest.mark.skipif(not hasattr(os, "openpty"), reason="needs a pseudo-terminal")
+@pytest.mark.xfail(strict=True, reason="gate/cli/profile_cmd.py echoes loaded.warnings (which "
+                   "quote initializer names and external-data locations) without term_safe")
+def test_profile_warnings_are_inert_on_a_terminal(tmp_path) -> None:
+    tensor = TensorProto(name="w" + TTY_NAME, data_type=TensorProto.FLOAT, dims=[4, 4],
+                         data_location=TensorProto.EXTERNAL)
+    tensor.external_data.add(key="location", value="../" + TTY_NAME)
+    proto = model([helper.make_node("MatMul", ["x", "w" + TTY_NAME], ["y"], name="mm")],
+                  [vi("x", [1, 4])], [vi("y", [1, 4])], [tensor])
+    path = tmp_path / "m.onnx"
+    path.write_bytes(proto.SerializeToString())
+    code, output = _on_a_terminal(["profile", str(path)], tmp_path)
+    assert code == 0, output
+    assert b"\x1b" not in output and b"\x07" not in output, output
