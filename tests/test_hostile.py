@@ -307,13 +307,29 @@ def _head(out: Path) -> dict[str, Any]:
     return entry["head"]
 
 
-def test_zero_dim_counts_zero_without_crashing(tmp_path) -> None:
-    proto = model([helper.make_node("MatMul", ["x", "w"], ["y"], name="mm")],
-                  [vi("x", [0, 16])], [vi("y", None)], [weight("w", [16, 8])])
-    result = gate(save(proto, tmp_path / "zero.onnx"), tmp_path / "out")
+def _strict_json(text: str) -> Any:
+    """json.loads that refuses NaN and Infinity (not JSON; many parsers reject them)."""
+    def refuse(constant: str) -> None:
+        raise AssertionError(f"non-JSON constant {constant}")
+    return json.loads(text, parse_constant=refuse)
+
+
+def test_zero_dims_count_zero_without_crashing(tmp_path) -> None:
+    nodes = [helper.make_node("MatMul", ["x", "w"], ["y"], name="mm"),
+             helper.make_node("Conv", ["e", "k"], ["c"], name="cv"),
+             helper.make_node("Softmax", ["c"], ["s"], name="sm")]
+    proto = model(nodes, [vi("x", [0, 16]), vi("e", [0, 0, 0, 0]), vi("k", [0, 0, 1, 1])],
+                  [vi("y", None), vi("s", None)], [weight("w", [16, 8])])
+    path = save(proto, tmp_path / "zero.onnx")
+    result = gate(path, tmp_path / "out")
     assert result.exit_code in (0, 1)
     assert_no_traceback(result)
     assert _head(tmp_path / "out")["metrics"]["macs"] == 0
+    for name in ("json", "sarif"):  # 0/0 utilization or intensity must not become NaN
+        _strict_json((tmp_path / "out" / FILES[name]).read_text(encoding="utf-8"))
+    profiled = invoke(["profile", str(path), "--format", "json", "--target", TARGET])
+    assert profiled.exit_code == 0
+    _strict_json(profiled.stdout)
 
 
 @pytest.mark.parametrize("big", [2**62, 2**63 - 1])
@@ -612,10 +628,37 @@ def test_same_inputs_give_byte_identical_reports(tmp_path, bad_models) -> None:
         result = invoke(args)
         assert result.exit_code == 2, result.stderr
         outputs.append(out)
+    for name in ("json", "sarif"):
+        _strict_json((outputs[0] / FILES[name]).read_text(encoding="utf-8"))
     for name in [*FILES.values(), "annotations.txt"]:
         first, second = (o / name for o in outputs)
         assert first.read_bytes() == second.read_bytes(), name
         assert str(outputs[0]) not in first.read_text(encoding="utf-8")  # no own path
+
+
+def test_baseline_snapshot_is_byte_identical(tmp_path) -> None:
+    path = save(small_cnn(), tmp_path / "m.onnx")
+    for name in ("a.json", "b.json"):
+        result = invoke(["baseline", str(path), "-t", TARGET, "-t", "vec-dsp-128",
+                         "-o", str(tmp_path / name)])
+        assert result.exit_code == 0, result.stderr
+    assert (tmp_path / "a.json").read_bytes() == (tmp_path / "b.json").read_bytes()
+    _strict_json((tmp_path / "a.json").read_text(encoding="utf-8"))
+
+
+@pytest.mark.parametrize("case", ["empty", "git-lfs-pointer", "cyclic", "opset-too-new"])
+def test_baseline_and_diff_refuse_unanalysable_models(bad_models, tmp_path, case) -> None:
+    path = bad_models[case]
+    good = save(small_cnn(), tmp_path / "good.onnx")
+    snapshot = tmp_path / "snap.json"
+    for args in (["baseline", str(path), "-t", TARGET, "-o", str(snapshot)],
+                 ["diff", str(good), str(path), "-t", TARGET]):
+        result = invoke(args)
+        assert result.exit_code == 2, (args, result.stdout, result.stderr)
+        assert_no_traceback(result)
+        (line,) = result.stderr.strip().splitlines()
+        assert str(path) in line, line
+    assert not snapshot.exists()  # a partial baseline would hide later regressions
 
 
 # --- internal errors and --debug ---------------------------------------------------------------
