@@ -252,3 +252,13 @@ def test_models_under_no_policy_are_called_unjudged_alike_sharded_or_not(zoo: Pa
     assert merged.exit_code == 0, merged.output
     assert read_reports("all") == read_reports("merged")
     assert (zoo / "merged/summary.md").read_text().count("fall under no policy") == 1
+
+
+def test_a_report_flag_without_config_reports_writes_only_that_report(zoo: Path) -> None:
+    # docs/ci.md: the roofgate-out/ defaults apply only with no `reports:` and no report flag.
+    done = CliRunner().invoke(cli, ["audit", "models/m0 x.onnx", "--json", "only.json"])
+    assert done.exit_code == 0, done.output
+    assert (zoo / "only.json").is_file() and not (zoo / "roofgate-out").exists()
+    done = CliRunner().invoke(cli, ["audit", "models/m0 x.onnx"])
+    assert sorted(p.name for p in (zoo / "roofgate-out").iterdir()) == \
+        ["junit.xml", "result.json", "summary.md"]

@@ -74,8 +74,11 @@ def _is_file_ref(text: str) -> bool:
 
 def _paths(kwargs: dict[str, Any], config: ProjectConfig) -> dict[str, str | None]:
     """Report paths: command-line flags over the config's, the defaults when neither sets any."""
+    flags = {k: v for k, v in report_paths(kwargs).items() if v}
+    if not config.reports and flags:  # the defaults stand in only when nothing asks
+        return dict(flags)
     chosen: dict[str, str | None] = dict(config.reports or DEFAULT_REPORTS)
-    chosen.update({k: v for k, v in report_paths(kwargs).items() if v})
+    chosen.update(flags)
     return chosen
 
 
