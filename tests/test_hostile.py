@@ -253,7 +253,21 @@ def _negative_dim() -> onnx.ModelProto:
     return model(nodes, [vi("x", [1, -3]), vi("w", [-3, 4])], [vi("y", None)])
 
 
+def _bad_conv(**attrs: Any) -> onnx.ModelProto:
+    """A Conv whose attributes contradict the ONNX spec, though onnx still infers a shape."""
+    return model([helper.make_node("Conv", ["x", "w"], ["y"], name="cv", **attrs)],
+                 [vi("x", [1, 3, 8, 8])], [vi("y", None)], [weight("w", [4, 3, 3, 3])])
+
+
+def _bad_pool() -> onnx.ModelProto:
+    return model([helper.make_node("MaxPool", ["x"], ["y"], name="mp", kernel_shape=[2, 2],
+                                   auto_pad="<img>")], [vi("x", [1, 3, 8, 8])], [vi("y", None)])
+
+
 UNMODELLED = {
+    "conv-unknown-auto-pad": (lambda: _bad_conv(auto_pad="<img src=x>"), "auto_pad="),
+    "conv-kernel-shape-mismatch": (lambda: _bad_conv(kernel_shape=[5, 5]), "kernel_shape"),
+    "pool-unknown-auto-pad": (_bad_pool, "auto_pad="),
     "custom-domain": (_custom_domain, "FancyOp"),
     "never-shaped": (_never_shaped, "Mystery"),
     "unbound-symbolic-dim": (lambda: small_cnn(batch="N"), "--dim N="),

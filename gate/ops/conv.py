@@ -12,7 +12,7 @@ from __future__ import annotations
 
 from gate.model.graph import Node
 from gate.ops._common import arithmetic, inferred_output_shape, input_shape, numel
-from gate.ops._spatial import transpose_output_spatial, window_output_spatial
+from gate.ops._spatial import auto_pad, transpose_output_spatial, window_output_spatial
 from gate.ops.registry import GemmShape, OpWork, Unmodelled, register
 
 
@@ -30,6 +30,12 @@ def _check_ranks(x: tuple[int, ...], w: tuple[int, ...]) -> None:
 
 def _output_spatial(node: Node, x: tuple[int, ...], kernel: tuple[int, ...],
                     transposed: bool) -> tuple[int, ...]:
+    # Checked even when inference supplied the shape: onnx infers through a bad attribute.
+    auto_pad(node)
+    declared = node.attr("kernel_shape")
+    if declared and tuple(int(k) for k in declared) != tuple(kernel):
+        raise Unmodelled(f"kernel_shape {list(declared)} does not match the weight's kernel "
+                         f"{list(kernel)}")
     inferred = inferred_output_shape(node)
     if inferred is not None and len(inferred) == len(x):
         return inferred[2:]

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from gate.model.graph import Node
 from gate.ops._common import arithmetic, inferred_output_shape, input_shape, numel
-from gate.ops._spatial import window_output_spatial
+from gate.ops._spatial import auto_pad, window_output_spatial
 from gate.ops.registry import OpWork, Unmodelled, register
 
 _FINISH_OPS = {"MaxPool": 0, "AveragePool": 1, "LpPool": 1}
@@ -29,6 +29,7 @@ def _kernel(node: Node, spatial_rank: int) -> tuple[int, ...]:
 
 
 def _pool_output_elements(node: Node, x: tuple[int, ...], kernel: tuple[int, ...]) -> int:
+    auto_pad(node)  # checked even when inference supplied the shape
     inferred = inferred_output_shape(node)
     if inferred is not None and len(inferred) == len(x):
         return numel(inferred)
