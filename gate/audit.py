@@ -75,11 +75,18 @@ def analyse_job(job: Job) -> tuple[str, list[dict[str, Any]], str]:
         message = exc.format_message()
         if exc.path and job.file != job.model:  # a temporary copy: name the model instead
             message = message.replace(str(exc.path), job.model)
-        return job.result_key, [], message
+        return job.result_key, [], error_text(message, job.model)
     except Exception as exc:  # noqa: BLE001  (fail closed: one broken model must not pass)
         detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
-        return job.result_key, [], (f"{job.model}: internal error while analysing ({detail}); "
-                               "rerun with roofgate --debug profile and report it")
+        return job.result_key, [], (f"internal error while analysing ({detail}); "
+                                    "rerun with roofgate --debug profile and report it")
+
+
+def error_text(message: str, model: str) -> str:
+    """``message`` without a leading ``"<model>: "``: every report names the model of a
+    ModelError already, so the path would show twice."""
+    prefix = f"{model}: "
+    return message[len(prefix):] if message.startswith(prefix) and message != prefix else message
 
 
 def run_jobs(jobs: Sequence[Job], workers: int,

@@ -64,7 +64,8 @@ def _judge_change(change: gitscan.ModelChange, analysed: dict, stored: dict | No
         base_runs = [replace(r, model=change.path) for r in stored.get(change.base_path, [])]
         base_runs, skipped = on_head_targets(base_runs, head_runs)
         notes += skipped
-    errors = [ModelError(change.path, m) for m in (head_err, *lfs_errors) if m]
+    errors = [ModelError(change.path, engine.error_text(m, change.path))
+              for m in (head_err, *lfs_errors) if m]
     if change.status == "renamed":
         notes.append(f"{change.base_path} was renamed to {change.head_path}; compared with "
                      "the old file.")
@@ -122,10 +123,11 @@ def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.Mod
                 real = gitscan.write_blob(rev, path, root, file)
             except InputError as exc:  # e.g. the LFS smudge filter could not download
                 errors.setdefault(change.path, []).append(
-                    f"{change.path}: cannot read the {side} side from git ({exc.format_message()})")
+                    f"cannot read the {side} side from git ({exc.format_message()})")
                 continue
             if not real:
-                errors.setdefault(change.path, []).append(gitscan.lfs_error_message(path, side))
+                errors.setdefault(change.path, []).append(
+                    engine.error_text(gitscan.lfs_error_message(path, side), path))
                 continue
             out.append(replace(_job(config, group, change.path, file), key=key))
     return jobs, base_jobs, errors

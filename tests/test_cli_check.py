@@ -262,3 +262,12 @@ def test_a_report_flag_without_config_reports_writes_only_that_report(zoo: Path)
     done = CliRunner().invoke(cli, ["audit", "models/m0 x.onnx"])
     assert sorted(p.name for p in (zoo / "roofgate-out").iterdir()) == \
         ["junit.xml", "result.json", "summary.md"]
+
+
+def test_an_unanalysable_model_is_named_once_per_line(zoo: Path) -> None:
+    done = CliRunner().invoke(cli, ["audit", "models/broken.onnx", "--json", "r.json"])
+    assert done.exit_code == 2, done.output
+    line = next(l for l in done.stdout.splitlines() if l.startswith("  ERROR"))
+    assert line.count("models/broken.onnx") == 1, line
+    message = json.loads(Path("r.json").read_text())["result"]["errors"][0]["message"]
+    assert not message.startswith("models/broken.onnx")

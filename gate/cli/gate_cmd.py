@@ -16,6 +16,7 @@ from typing import Any, Sequence
 
 import click
 
+from gate.audit import error_text
 from gate.cli.common import analysis_options, finish
 from gate.errors import InputError, InternalError, RoofgateError
 from gate.pipeline import analyse, judge
@@ -93,10 +94,9 @@ def _analyse_all(models: Sequence[str], targets: Sequence[TargetProfile], dims: 
         except InternalError:
             raise  # roofgate's own bug (exit 3), not a model that cannot be analysed (exit 2)
         except RoofgateError as exc:
-            message = exc.format_message()
-            if exc.path and message.startswith(f"{exc.path}: "):
-                message = message[len(str(exc.path)) + 2:]  # reports name the model already
-            errors.append(ModelError(shown, message))
+            message = error_text(exc.format_message(), str(exc.path)) if exc.path else \
+                exc.format_message()
+            errors.append(ModelError(shown, message))  # reports name the model already
     return runs, errors
 
 

@@ -16,6 +16,7 @@ from gate.costmodel import cost_model
 from gate.errors import InputError
 from gate.model.loader import load_model
 from gate.profile import profile_model
+from gate.report.text import one_line, term_safe
 from gate.summarize import build_run_record
 from gate.targets import load_target
 
@@ -52,10 +53,10 @@ def profile(model: str, dims: dict[str, int], precision: str | None, targets: tu
         target = load_target(name)
         runs.append((target, cost_model(result, target)))
     records = [build_run_record(model, result, cost, target) for target, cost in runs]
-    for warning in loaded.warnings:
-        click.echo(f"warning: {' '.join(warning.splitlines())}", err=True)
+    for warning in loaded.warnings:  # they quote model-supplied names: made terminal-safe
+        click.echo(f"warning: {term_safe(one_line(warning))}", err=True)
     if loaded.unbound_dims:
-        binds = " ".join(f"--dim {' '.join(d.split())}=N" for d in loaded.unbound_dims)
+        binds = " ".join(f"--dim {term_safe(one_line(d))}=N" for d in loaded.unbound_dims)
         click.echo(f"warning: unbound symbolic dims leave layers unmodelled; bind them with "
                    f"{binds}", err=True)
     click.echo(render(fmt, result, runs, records), nl=False)
