@@ -951,8 +951,6 @@ def test_error_line_with_hostile_name_is_inert_on_a_terminal(tmp_path) -> None:
 
 
 @pytest.mark.skipif(not hasattr(os, "openpty"), reason="needs a pseudo-terminal")
-@pytest.mark.xfail(strict=True, reason="gate/cli/profile_cmd.py echoes loaded.warnings (which "
-                   "quote initializer names and external-data locations) without term_safe")
 def test_profile_warnings_are_inert_on_a_terminal(tmp_path) -> None:
     tensor = TensorProto(name="w" + TTY_NAME, data_type=TensorProto.FLOAT, dims=[4, 4],
                          data_location=TensorProto.EXTERNAL)
