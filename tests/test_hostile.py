@@ -993,9 +993,6 @@ def test_check_fails_closed_and_is_deterministic(repo, tmp_path) -> None:
     assert "git lfs pull" in json.dumps(data["result"]["errors"])
 
 
-@pytest.mark.xfail(strict=True, reason="gate/audit.py _analyse_job keeps the model path at the "
-                   "start of ModelError.message (gate_cmd strips it), so check/audit reports "
-                   "read 'broken.onnx: broken.onnx: cannot parse ...'")
 def test_check_names_an_unanalysable_model_once_per_line(repo, tmp_path) -> None:
     (repo.path / "broken.onnx").write_bytes(b"\x08\x07junk")
     repo.commit("broken")
