@@ -1000,3 +1000,31 @@ def test_check_names_an_unanalysable_model_once_per_line(repo, tmp_path) -> None
     assert code == 2
     markdown = (first / "summary.md").read_text(encoding="utf-8")
     assert "broken.onnx: broken.onnx" not in markdown
+
+
+def test_hostile_policy_strings_are_escaped_too(tmp_path) -> None:
+    """A pull request can edit the policy file: its remedy, description and waiver reason
+    reach the PR comment, JUnit and annotations, so they are escaped like node names."""
+    text = json.dumps("<img src=x onerror=alert(3)>|`</details>\n::error::forged @all")
+    policy = tmp_path / "p.yaml"
+    policy.write_text(f"""version: 1
+name: {text}
+description: {text}
+rules:
+  - {{id: fits, kind: fits_in_buffer, check: params, remedy: {text}, description: {text}}}
+  - {{id: util, kind: min_utilization, min: 90%, severity: warning, remedy: {text}}}
+waivers:
+  - {{rule: util, models: ["**"], reason: {text}, expires: 2099-01-01}}
+""", encoding="utf-8")
+    path = save(model([helper.make_node("MatMul", ["x", "w"], ["y"], name="mm")],
+                      [vi("x", [1, 2048])], [vi("y", None)], [weight("w", [2048, 2048])]),
+                tmp_path / "m.onnx")
+    result = gate(path, tmp_path / "out", policy=str(policy))
+    assert result.exit_code == 1, result.stderr
+    markdown = (tmp_path / "out" / FILES["markdown"]).read_text(encoding="utf-8")
+    assert "onerror" in markdown and "<img" not in markdown and "@all" not in markdown
+    assert [ln for ln in markdown.splitlines() if "details>" in ln] == ["<details>", "</details>"]
+    _assert_table_rows_keep_their_columns(markdown)
+    assert "<img" not in (tmp_path / "out" / FILES["html"]).read_text(encoding="utf-8")
+    ET.parse(tmp_path / "out" / FILES["junit"])
+    assert all(line.startswith("::") for line in result.stdout.splitlines())
