@@ -73,6 +73,9 @@ class Coverage:
     ``work_share`` weighs each node by its work: MACs where modelled, and for
     an unmodelled node its output element count as a lower-bound proxy (it must
     at least write each output once), so an unmodelled node always lowers it.
+    When some unmodelled node's output size is itself unknown, its work cannot be
+    bounded at all; the share then falls back to at most the node share, so a model
+    the tool cannot size never reads as nearly fully covered (fail closed).
     """
 
     nodes_total: int
@@ -80,6 +83,7 @@ class Coverage:
     work_modelled: int
     work_unmodelled_estimate: int
     unmodelled: tuple[UnmodelledOp, ...]
+    unsized_unmodelled_nodes: int = 0  # unmodelled nodes whose output size is unknown
 
     @property
     def node_share(self) -> float:
@@ -88,7 +92,10 @@ class Coverage:
     @property
     def work_share(self) -> float:
         total = self.work_modelled + self.work_unmodelled_estimate
-        return self.work_modelled / total if total else self.node_share
+        share = self.work_modelled / total if total else self.node_share
+        if self.unsized_unmodelled_nodes:
+            return min(share, self.node_share)
+        return share
 
 
 @dataclass(frozen=True, slots=True)
@@ -282,6 +289,7 @@ def _profile_layer(node: Node, override_bits: int | None, seen_params: dict[str,
 def _coverage(layers: tuple[LayerProfile, ...]) -> Coverage:
     groups: dict[tuple[str, str, str], int] = {}
     work_unmodelled = 0
+    unsized = 0
     for layer in layers:
         if layer.modelled:
             continue
@@ -289,6 +297,7 @@ def _coverage(layers: tuple[LayerProfile, ...]) -> Coverage:
         groups[key] = groups.get(key, 0) + 1
         elements = sum(_numel(shape) for shape in layer.output_shapes)
         work_unmodelled += max(1, elements)  # an unmodelled layer always lowers coverage
+        unsized += any(not _is_sized(shape) for shape in layer.output_shapes)
     unmodelled = tuple(UnmodelledOp(op, domain, count, reason) for (op, domain, reason), count
                        in sorted(groups.items(), key=lambda item: (-item[1], item[0])))
     modelled = [layer for layer in layers if layer.modelled]
@@ -298,7 +307,12 @@ def _coverage(layers: tuple[LayerProfile, ...]) -> Coverage:
         work_modelled=sum(layer.macs for layer in modelled),
         work_unmodelled_estimate=work_unmodelled,
         unmodelled=unmodelled,
+        unsized_unmodelled_nodes=unsized,
     )
+
+
+def _is_sized(shape: Shape | None) -> bool:
+    return shape is not None and all(isinstance(d, int) and d >= 0 for d in shape)
 
 
 def _numel(shape: Shape | None) -> int:

@@ -172,3 +172,19 @@ def test_conv_shapes_and_macs_against_reference(tmp_path_factory, batch: int, ci
     assert layer.output_shapes[0] == out.shape
     assert layer.macs == out.size * cin * kernel * kernel
     assert float(out.flat[0]) == cin * kernel * kernel  # each output sums that many products
+
+
+def test_unsized_unknown_op_never_reads_as_nearly_covered(tmp_path: Path) -> None:
+    # A custom op whose output shape no inference can know, feeding 49 modelled MatMuls:
+    # the unknown op's work cannot be bounded, so the work share may not exceed the node
+    # share (fail closed), although the MatMuls carry all the MACs we can count.
+    nodes = [helper.make_node("Mystery", ["x"], ["m"], name="mystery", domain="example.custom")]
+    nodes += [helper.make_node("MatMul", ["x" if i == 0 else f"h{i - 1}", "w"], [f"h{i}"],
+                               name=f"mm{i}") for i in range(49)]
+    proto = helper.make_model(
+        helper.make_graph(nodes, "g", [vi("x", [1, 64])], [vi("h48", [1, 64]), vi("m", None)],
+                          [weight("w", [64, 64])]),
+        opset_imports=[helper.make_opsetid("", 17), helper.make_opsetid("example.custom", 1)])
+    coverage = _profile(proto, tmp_path).coverage
+    assert coverage.nodes_modelled == 49 and coverage.unsized_unmodelled_nodes == 1
+    assert coverage.work_share <= coverage.node_share == 49 / 50
