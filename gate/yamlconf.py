@@ -102,9 +102,9 @@ def parse_yaml_bytes(raw: bytes, shown: str) -> YamlDocument:
         root = yaml.compose(text, Loader=yaml.SafeLoader)
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
-        line = f":{mark.line + 1}" if mark is not None else ""
+        where = f":{mark.line + 1}" if mark is not None else ""
         what = exc.problem or exc.context or "syntax error"
-        raise ConfigError([f"{shown}{line}: YAML syntax error: {what}"]) from None
+        raise ConfigError([f"{shown}{where}: YAML syntax error: {what}"]) from None
     except yaml.reader.ReaderError as exc:  # a control character YAML does not allow
         line = text.count("\n", 0, exc.position) + 1
         char = exc.character
@@ -262,7 +262,7 @@ class Section:
         if value is _MISSING:
             return default
         if isinstance(value, bool) or not isinstance(value, int):
-            self.doc.problem(node, self._path(key), f"expected a whole number, got '{node.value}'")
+            self.doc.problem(node, self._path(key), f"expected a whole number, got '{_text(node)}'")
             return default
         if minimum is not None and value < minimum:
             self.doc.problem(node, self._path(key), f"must be at least {minimum}")
@@ -275,7 +275,7 @@ class Section:
         if value is _MISSING:
             return default
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            self.doc.problem(node, self._path(key), f"expected a number, got '{node.value}'")
+            self.doc.problem(node, self._path(key), f"expected a number, got '{_text(node)}'")
             return default
         return self._in_range(node, key, float(value), minimum, maximum, default)
 
@@ -294,7 +294,7 @@ class Section:
         if parsed is None:
             expected = (f"a quantity in {unit} (e.g. '2 M{unit}')" if unit
                         else "a number (e.g. 2000000 or '2 M')")
-            self.doc.problem(node, self._path(key), f"expected {expected}, got '{node.value}'")
+            self.doc.problem(node, self._path(key), f"expected {expected}, got '{_text(node)}'")
             return default
         return self._in_range(node, key, parsed, minimum, None, default)
 
@@ -312,7 +312,7 @@ class Section:
             parsed = float(match.group(1)) / 100.0 if match else None
         if parsed is None:
             self.doc.problem(node, self._path(key),
-                             f"expected a share like 0.3 or '30%', got '{node.value}'")
+                             f"expected a share like 0.3 or '30%', got '{_text(node)}'")
             return default
         return self._in_range(node, key, parsed, 0.0, maximum, default)
 
@@ -322,7 +322,7 @@ class Section:
             return default
         if isinstance(value, date):
             return value
-        self.doc.problem(node, self._path(key), f"expected a date like 2027-01-31, got '{node.value}'")
+        self.doc.problem(node, self._path(key), f"expected a date like 2027-01-31, got '{_text(node)}'")
         return default
 
     def get_str_list(self, key: str, default: list[str] | None = None, *,
@@ -409,6 +409,11 @@ class Section:
             self.doc.problem(node, self._path(key), f"must be at most {maximum:g}")
             return default
         return value
+
+
+def _text(node: Node | None) -> str:
+    """A node's source text for messages ('' when there is no node)."""
+    return str(node.value) if isinstance(node, ScalarNode) else ""
 
 
 def scalar_value(node: Node) -> Any:
