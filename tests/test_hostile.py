@@ -488,7 +488,8 @@ YAML_CASES = {
     "non-utf8": (b"version: 1\nname: caf\xe9\nrules: []\n", ":2:", "save the file as UTF-8"),
     "not-a-mapping": ("- just\n- a list\n", ":1:", "mapping"),
     "nul-character": ("version: 1\nname: x\x00\nrules: []\n", ":2:", "remove it"),
-    "utf-16": ("version: 1\nname: x\nrules: []\n".encode("utf-16"), ":1:", "save the file as UTF-8"),
+    "utf-16": ("version: 1\nname: x\nrules: []\n".encode("utf-16"), ":1:",
+               "save the file as UTF-8"),
     "nested-5000-deep": ("version: 1\nname: x\nrules: " + "[" * 5000 + "]" * 5000 + "\n", "",
                          "less nesting"),
     "too-large": ("version: 1\nname: x\n" + "#" * (5 * 1024 * 1024) + "\nrules: []\n", "",
@@ -964,7 +965,7 @@ def test_profile_warnings_are_inert_on_a_terminal(tmp_path) -> None:
     assert b"\x1b" not in output and b"\x07" not in output, output
 
 
-# --- check: unanalysable files from git, determinism ------------------------------------------------
+# --- check: unanalysable files from git, determinism -----------------------------------------
 
 def _check_twice(repo: Repo, tmp_path: Path) -> tuple[Path, Path, int]:
     import shutil
