@@ -29,7 +29,9 @@ CHROMIUM_FLAGS = (
 
 
 def _chromium() -> str:
-    path = shutil.which("chromium") or shutil.which("chromium-browser")
+    # Debian's chromium here and in .ci/run; hosted GitHub runners ship Google Chrome instead.
+    path = (shutil.which("chromium") or shutil.which("chromium-browser")
+            or shutil.which("google-chrome") or shutil.which("google-chrome-stable"))
     if path is None and Path("/usr/bin/chromium").exists():
         path = "/usr/bin/chromium"
     if path is None:
