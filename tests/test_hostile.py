@@ -299,9 +299,10 @@ def test_unmodelled_sliver_is_reported_and_strict_policy_fails_it(tmp_path) -> N
     nodes = [helper.make_node("Conv", ["x", "w"], ["c"], name="conv", pads=[1, 1, 1, 1])]
     nodes += [helper.make_node("Conv", [f"c{i}" if i else "c", "w"], [f"c{i + 1}"],
                                name=f"conv{i}", pads=[1, 1, 1, 1]) for i in range(6)]
-    nodes.append(helper.make_node("Tiny", ["c6"], ["y"], domain="com.acme", name="tiny"))
-    proto = model(nodes, [vi("x", [1, 64, 32, 32])], [vi("y", None)],
-                  [weight("w", [64, 64, 3, 3])], extra_opsets=[ACME])
+    nodes.append(helper.make_node("Tiny", ["t"], ["u"], domain="com.acme", name="tiny"))
+    proto = model(nodes, [vi("x", [1, 64, 32, 32]), vi("t", [1, 1])],
+                  [vi("c6", None), vi("u", [1, 1])], [weight("w", [64, 64, 3, 3])],
+                  extra_opsets=[ACME])
     path = save(proto, tmp_path / "sliver.onnx")
     lenient = gate(path, tmp_path / "default")
     assert lenient.exit_code == 0, lenient.stderr
