@@ -233,7 +233,7 @@ KIND_CASES = [
                                                                  "no cost function"),)),
      None, FAIL, [None],
      ["Model: 20.0% of the work is in ops roofgate cannot cost, above the 5.0% maximum "
-      "(FancyOp x2 (no cost function))"]),
+      "(FancyOp x2: no cost function)"]),
     ("unmodelled node share",
      "- {id: c, kind: max_unmodelled, max_node_share: 0%, max_work_share: 50%}",
      _run(coverage_node_share=0.9, coverage_work_share=0.99), None, FAIL, [None],
@@ -241,7 +241,8 @@ KIND_CASES = [
     ("metric limit with min and max",
      "- {id: m, kind: metric_limit, level: layer, metric: act_dram_bytes, max: 1 MiB}",
      _run(_layer("a", act_dram_bytes=2 * MiB), _layer("b")), None, FAIL, ["a"],
-     ["Layer 'a' (Conv): act_dram_bytes 2.00 MiB exceeds the 1.00 MiB maximum"]),
+     ["Layer 'a' (Conv): activation DRAM traffic [act_dram_bytes] 2.00 MiB exceeds the "
+      "1.00 MiB maximum"]),
     ("metric limit minimum",
      "- {id: m, kind: metric_limit, metric: inferences_per_s, min: 1000}",
      _run(inferences_per_s=500.0), None, FAIL, [None], ["is below the"]),
@@ -251,7 +252,7 @@ KIND_CASES = [
     ("model regression",
      "- {id: r, kind: max_regression, metric: latency_s, max_increase_pct: 5}",
      _run(_layer("conv1", latency_s=1.2e-3)), _run(_layer("conv1")), FAIL, [None],
-     ["Model: latency_s regressed by +0.2 ms (+20.0%), from 1 ms to 1.2 ms against the "
+     ["Model: latency [latency_s] regressed by +0.2 ms (+20.0%), from 1 ms to 1.2 ms against the "
       "baseline, beyond the allowed +5% (worst allowed 1.05 ms)"]),
     ("model regression better-higher metric",
      "- {id: r, kind: max_regression, metric: utilization, max_decrease_abs: 5%}",
@@ -263,7 +264,7 @@ KIND_CASES = [
      "- {id: r, kind: max_regression, level: layer, metric: param_bytes, max_increase_pct: 10}",
      _run(_layer("a", param_bytes=200_000), _layer("b"), _layer("new", param_bytes=10 * MiB)),
      _run(_layer("a", param_bytes=100_000), _layer("b")), FAIL, ["a"],
-     ["Layer 'a' (Conv): param_bytes regressed by +97.7 KiB (+100.0%)"]),
+     ["Layer 'a' (Conv): parameter size [param_bytes] regressed by +97.7 KiB (+100.0%)"]),
 ]
 
 
@@ -300,7 +301,7 @@ def test_layer_regression_follows_the_diff_through_a_rename() -> None:
     assert finding.layer == "backbone/conv_a" and finding.value == 3e-3
     assert finding.limit == pytest.approx(1.5e-3)
     assert "Layer 'backbone/conv_a' (Conv, was 'conv_a')" in finding.message
-    assert verdict.summary.startswith("1 layer regressed in latency_s beyond +50%; worst: "
+    assert verdict.summary.startswith("1 layer regressed in latency beyond +50%; worst: "
                                       "backbone/conv_a +2 ms (+200.0%)")
 
 
@@ -318,6 +319,42 @@ def test_missing_metric_in_a_record_fails_closed() -> None:
     with pytest.raises(InputError, match="has no metric 'latency_s'"):
         evaluate(_policy("- {id: t, kind: max_latency, max: 1 ms}"), broken, None, None,
                  today=TODAY)
+
+
+def test_unmodelled_ops_are_grouped_by_reason_and_nodes_take_a_plural_verb() -> None:
+    unbound = "symbolic dim 'seq' unbound: bind it with --dim seq=N"
+    head = _run(coverage_node_share=0.0, coverage_work_share=0.0, unmodelled=(
+        UnmodelledRecord("Add", "", 17, unbound), UnmodelledRecord("MatMul", "", 17, unbound),
+        UnmodelledRecord("FancyOp", "com.example", 2, "no cost function")))
+    verdict = _one(_policy("- {id: c, kind: max_unmodelled, max_work_share: 5%, "
+                           "max_node_share: 20%}"), head)
+    work, nodes = verdict.findings
+    for finding in (work, nodes):
+        assert finding.message.count("bind it with") == 1
+        assert f"(Add x17, MatMul x17: {unbound}; FancyOp x2: no cost function)" in \
+            finding.message
+    assert "100.0% of the nodes are in ops roofgate cannot cost" in nodes.message
+    assert "nodes is" not in verdict.summary
+
+
+@pytest.mark.parametrize("check", ["params", "activations", "both"])
+def test_fits_in_buffer_messages_end_with_the_verdict_remedy(check: str) -> None:
+    spill = _layer("fc", params_fit=False, activations_fit=False)
+    verdict = _one(_policy(f"- {{id: fit, kind: fits_in_buffer, check: {check}}}"), _run(spill))
+    assert verdict.findings
+    for finding in verdict.findings:  # the terminal strips exactly this tail to show it once
+        assert finding.message.endswith(f": {verdict.remedy}.")
+
+
+def test_messages_name_metrics_readably_with_the_key_once() -> None:
+    base = _run(_layer("conv1", energy_j=1e-4))
+    head = _run(_layer("conv1", energy_j=2e-4))
+    verdict = _one(_policy("- {id: r, kind: max_regression, metric: energy_j, "
+                           "max_increase_pct: 5}"), head, base)
+    (finding,) = verdict.findings
+    assert finding.message.startswith("Model: energy [energy_j] regressed by +100 uJ")
+    assert finding.message.count("energy_j") == 1
+    assert "energy [energy_j] no worse than +5%" in verdict.description
 
 
 # --- scoping ---------------------------------------------------------------------------------

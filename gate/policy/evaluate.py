@@ -101,10 +101,13 @@ def describe(rule: Rule) -> str:
                  (("work", rule.max_work_share), ("nodes", rule.max_node_share)) if v is not None]
         return "unmodelled share " + " and ".join(parts)
     if rule.kind == spec.MAX_REGRESSION:
-        return f"{where} {rule.metric} no worse than {allowed_text(rule)} against the baseline"
+        return (f"{where} {spec.metric_phrase(rule.metric)} no worse than {allowed_text(rule)} "
+                "against the baseline")
     metric = {spec.MAX_PARAM_DRAM: "param_dram_bytes", spec.MAX_LATENCY: "latency_s",
               spec.MAX_ENERGY: "energy_j"}.get(rule.kind, rule.metric)
     limits = [f"at least {fmt_metric(metric, rule.minimum)}" if rule.minimum is not None
               else "", f"at most {fmt_metric(metric, rule.maximum)}"
               if rule.maximum is not None else ""]
-    return f"{where} {metric} " + " and ".join(x for x in limits if x)
+    named = spec.metric_phrase(metric) if rule.kind == spec.METRIC_LIMIT else \
+        spec.metric_label(metric)
+    return f"{where} {named} " + " and ".join(x for x in limits if x)

@@ -61,8 +61,8 @@ def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
                   f"{fmt_metric(rule.metric, pair.base)} to {fmt_metric(rule.metric, pair.head)}")
         limit = regression_bound(pair.base, higher_is_better=better_higher,
                                  max_pct=rule.max_change_pct, max_abs=rule.max_change_abs)
-        text = (f"{pair.label}: {rule.metric} regressed {change} against the baseline, beyond "
-                f"the allowed {allowed}")
+        text = (f"{pair.label}: {spec.metric_phrase(rule.metric)} regressed {change} against "
+                f"the baseline, beyond the allowed {allowed}")
         breaches.append(Breach(
             pair.layer, rule.metric, pair.head, limit,
             f"{text} (worst allowed {fmt_metric(rule.metric, limit)}): {remedy_of(rule)}.",
@@ -72,8 +72,9 @@ def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
             else float("inf")))
     what = "model" if rule.level == spec.MODEL else \
         f"{len(pairs)} matched layer{'s' if len(pairs) != 1 else ''}"
-    return Outcome(tuple(breaches), len(pairs), f"regressed in {rule.metric} beyond {allowed}",
-                   f"{what}: {rule.metric} within {allowed} of the baseline")
+    label = spec.metric_label(rule.metric)
+    return Outcome(tuple(breaches), len(pairs), f"regressed in {label} beyond {allowed}",
+                   f"{what}: {label} within {allowed} of the baseline")
 
 
 def _model_pairs(rule: Rule, head: RunRecord, base: RunRecord,

@@ -28,16 +28,20 @@ DEFAULT_REMEDIES = {
                      "the limit",
     spec.MAX_REGRESSION: "check that the change is intended; if it is, raise the limit or "
                          "refresh the baseline",
-    spec.MAX_UNMODELLED: "add cost functions for these op types, replace them with modelled "
-                         "ops, or raise the limit",
+    spec.MAX_UNMODELLED: "bind unbound symbolic dims with --dim, add cost functions for these "
+                         "op types, replace them with modelled ops, or raise the limit",
     spec.METRIC_LIMIT: "change the model or adjust the limit",
 }
-PARAMS_REMEDY = ("quantize to int8, split the layer, or choose a target with a larger "
-                 "parameter buffer")
-ACTIVATIONS_REMEDY = ("tile the layer, lower the input resolution or batch, or choose a target "
-                      "with a larger activation buffer")
-DEFAULT_REMEDIES[spec.FITS_IN_BUFFER] = f"{PARAMS_REMEDY} (parameters); {ACTIVATIONS_REMEDY} " \
-                                        "(activations)"
+# fits_in_buffer suggests fixes for what the rule checks: (params, activations) -> remedy.
+FITS_REMEDIES = {
+    (True, False): "quantize to int8, split the layer, or choose a target with a larger "
+                   "parameter buffer",
+    (False, True): "tile the layer, lower the input resolution or batch, or choose a target "
+                   "with a larger activation buffer",
+    (True, True): "quantize to int8 or split the layer (parameters), tile it or lower the "
+                  "input resolution or batch (activations), or choose a target with larger "
+                  "on-chip buffers",
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -63,7 +67,13 @@ class Outcome:
 
 
 def remedy_of(rule: Rule) -> str:
-    return rule.remedy or DEFAULT_REMEDIES[rule.kind]
+    """The one remedy of a rule: its own text, or its kind's default. Every finding's message
+    ends with it and the Verdict carries it, so reporters can show it once per rule."""
+    if rule.remedy:
+        return rule.remedy
+    if rule.kind == spec.FITS_IN_BUFFER:
+        return FITS_REMEDIES[(rule.check_params, rule.check_activations)]
+    return DEFAULT_REMEDIES[rule.kind]
 
 
 def _layer_label(layer: LayerRecord) -> str:
@@ -108,8 +118,14 @@ def _top_layers(run: RunRecord, metric: str, count: int = 3) -> str:
 # --- generic limit on one metric (several kinds are this with a fixed metric) ---------------
 
 def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
-                 layer_filter: Callable[[LayerRecord], bool] = lambda layer: True) -> Outcome:
-    """Compare ``metric`` with rule.minimum / rule.maximum at the rule's level."""
+                 layer_filter: Callable[[LayerRecord], bool] = lambda layer: True,
+                 what_in_message: str = "") -> Outcome:
+    """Compare ``metric`` with rule.minimum / rule.maximum at the rule's level.
+
+    ``what`` names the metric in summaries; ``what_in_message`` (default ``what``) in each
+    finding's sentence, where it may add the policy-file key.
+    """
+    named = what_in_message or what
     remedy = remedy_of(rule)
     bounds = [("minimum", rule.minimum, True), ("maximum", rule.maximum, False)]
     bounds = [(name, limit, low) for name, limit, low in bounds if limit is not None]
@@ -119,7 +135,7 @@ def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
             failed = below_minimum(value, limit) if low else above_maximum(value, limit)
             if failed:
                 relation = "is below the" if low else "exceeds the"
-                text = (f"{label}: {what} {fmt_metric(metric, value)} {relation} "
+                text = (f"{label}: {named} {fmt_metric(metric, value)} {relation} "
                         f"{fmt_metric(metric, limit)} {name}")
                 extra = _top_layers(head, metric) if label == "Model" and not low else ""
                 return Breach(None if label == "Model" else short_name, metric, value, limit,
@@ -181,7 +197,8 @@ def check_max_energy(rule: Rule, head: RunRecord, base: RunRecord | None,
 
 def check_metric_limit(rule: Rule, head: RunRecord, base: RunRecord | None,
                        diff: RunDiff | None) -> Outcome:
-    return _limit_check(rule, head, rule.metric, rule.metric)
+    return _limit_check(rule, head, rule.metric, spec.metric_label(rule.metric),
+                        what_in_message=spec.metric_phrase(rule.metric))
 
 
 def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
@@ -191,6 +208,7 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
     param_buffer = head.target_figures.get("param_buffer_bytes", 0)
     act_buffer = head.target_figures.get("activation_buffer_bytes", 0)
     layers = _scoped_layers(rule, head)
+    remedy = remedy_of(rule)
     breaches: list[Breach] = []
     for layer in layers:
         if rule.check_params and not layer.params_fit:
@@ -199,7 +217,7 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
                     f"{fmt_bytes(param_buffer)} parameter buffer of {head.target}")
             breaches.append(Breach(
                 layer.name, "param_bytes", value, param_buffer,
-                f"{text}: {rule.remedy or PARAMS_REMEDY}.", text,
+                f"{text}: {remedy}.", text,
                 f"{layer.name} {fmt_bytes(value)}", _ratio(value, param_buffer, False)))
         if rule.check_activations and not layer.activations_fit:
             value = layer.metrics.get("input_bytes", 0) + layer.metrics.get("output_bytes", 0)
@@ -207,7 +225,7 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
                     f"exceed the {fmt_bytes(act_buffer)} activation buffer of {head.target}")
             breaches.append(Breach(
                 layer.name, "activation_bytes", value, act_buffer,
-                f"{text}: {rule.remedy or ACTIVATIONS_REMEDY}.", text,
+                f"{text}: {remedy}.", text,
                 f"{layer.name} {fmt_bytes(value)}", _ratio(value, act_buffer, False)))
     what = {(True, True): "parameters and activations", (True, False): "parameters",
             (False, True): "activations"}[(rule.check_params, rule.check_activations)]
@@ -220,18 +238,17 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
 def check_max_unmodelled(rule: Rule, head: RunRecord, base: RunRecord | None,
                          diff: RunDiff | None) -> Outcome:
     """The share of the model roofgate cannot cost stays under the limit."""
-    ops = ", ".join(f"{u.op_type} x{u.count} ({u.reason})" if u.reason else
-                    f"{u.op_type} x{u.count}" for u in head.unmodelled)
+    ops = _unmodelled_ops(head)
     breaches: list[Breach] = []
     shown: list[str] = []
     for measure, limit in (("work", rule.max_work_share), ("node", rule.max_node_share)):
         if limit is None:
             continue
         value = unmodelled_share(float(_model_value(head, f"coverage_{measure}_share")))
-        of_what = "the work" if measure == "work" else "the nodes"
+        of_what, verb = ("the work", "is") if measure == "work" else ("the nodes", "are")
         shown.append(f"{fmt_percent(value)} of {of_what} unmodelled (limit {fmt_percent(limit)})")
         if above_maximum(value, limit):
-            text = (f"Model: {fmt_percent(value)} of {of_what} is in ops roofgate cannot "
+            text = (f"Model: {fmt_percent(value)} of {of_what} {verb} in ops roofgate cannot "
                     f"cost, above the {fmt_percent(limit)} maximum")
             breaches.append(Breach(
                 None, f"unmodelled_{measure}_share", value, limit,
@@ -239,6 +256,16 @@ def check_max_unmodelled(rule: Rule, head: RunRecord, base: RunRecord | None,
                 f"cost: {remedy_of(rule)}.", text,
                 f"{fmt_percent(value)} of {of_what}", _ratio(value, limit, False)))
     return Outcome(tuple(breaches), 1, "unmodelled share above the limit", "; ".join(shown))
+
+
+def _unmodelled_ops(head: RunRecord) -> str:
+    """'Add x17, MatMul x17: <reason>; FancyOp x2: no cost function': the unmodelled op types
+    grouped by reason, so a reason shared by many op types is written once."""
+    groups: dict[str, list[str]] = {}
+    for item in head.unmodelled:
+        groups.setdefault(item.reason, []).append(f"{item.op_type} x{item.count}")
+    return "; ".join(", ".join(ops) + (f": {reason}" if reason else "")
+                     for reason, ops in groups.items())
 
 
 CHECKS: dict[str, Callable[[Rule, RunRecord, RunRecord | None, RunDiff | None], Outcome]] = {

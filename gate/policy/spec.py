@@ -61,6 +61,45 @@ def metric_unit(metric: str) -> str:
     return ""
 
 
+# Readable names of the record metrics (gate/records.py) for messages; the key itself is what a
+# policy file writes, so messages show it once in brackets beside the label.
+METRIC_LABELS: dict[str, str] = {
+    "layers": "layer count", "macs": "MACs", "flops": "FLOPs",
+    "param_count": "parameter count", "param_bytes": "parameter size",
+    "max_layer_param_bytes": "largest layer parameter size", "input_bytes": "input size",
+    "output_bytes": "output size", "activation_bytes": "activation size",
+    "arithmetic_intensity": "arithmetic intensity", "param_reuse": "parameter reuse",
+    "cycles": "cycles", "utilization": "utilization", "compute_s": "compute time",
+    "memory_s": "memory time", "overhead_s": "overhead time", "latency_s": "latency",
+    "inferences_per_s": "inferences per second", "achieved_flops_per_s": "achieved FLOP/s",
+    "peak_flops_share": "share of peak FLOP/s", "param_dram_bytes": "parameter DRAM traffic",
+    "act_dram_bytes": "activation DRAM traffic", "energy_j": "energy",
+    "energy_mac_j": "MAC energy", "energy_buffer_j": "buffer energy",
+    "energy_noc_j": "on-chip network energy", "energy_dram_param_j": "parameter DRAM energy",
+    "energy_dram_act_j": "activation DRAM energy", "energy_static_j": "static energy",
+    "flops_per_j": "FLOPs per joule", "peak_flops_per_j_share": "share of peak FLOPs per joule",
+    "coverage_node_share": "modelled share of nodes",
+    "coverage_work_share": "modelled share of work", "unmodelled_nodes": "unmodelled nodes",
+}
+_UNIT_SUFFIXES = ("_bytes", "_per_s", "_per_j", "_s", "_j")
+
+
+def metric_label(metric: str) -> str:
+    """A readable name for ``metric``: 'latency' for ``latency_s``; unknown keys lose their
+    unit suffix and underscores."""
+    if metric in METRIC_LABELS:
+        return METRIC_LABELS[metric]
+    stem = next((metric[: -len(s)] for s in _UNIT_SUFFIXES if metric.endswith(s)), metric)
+    return (stem or metric).replace("_", " ")
+
+
+def metric_phrase(metric: str) -> str:
+    """The label with the policy-file key in brackets, 'latency [latency_s]', for the first
+    mention in a message; just the key when the label would only repeat it."""
+    label = metric_label(metric)
+    return metric if label == metric else f"{label} [{metric}]"
+
+
 @dataclass(frozen=True, slots=True)
 class Scope:
     """Where a rule (or a waiver) applies: model path globs, target names, layers, op types.
