@@ -888,9 +888,6 @@ main()
 """
 
 
-@pytest.mark.xfail(strict=True, reason="gate/cli/__init__.py re-raises crashes under --debug, "
-                   "so Python exits 1 (reads as 'gate failed'); it should print the traceback "
-                   "and still exit 3")
 def test_debug_crash_still_exits_3(tmp_path) -> None:
     path = save(small_cnn(), tmp_path / "m.onnx")
     done = subprocess.run([sys.executable, "-c", _DEBUG_SCRIPT, "--debug", "gate", str(path),
@@ -899,9 +896,6 @@ def test_debug_crash_still_exits_3(tmp_path) -> None:
     assert "Traceback" in done.stderr and done.returncode == 3
 
 
-@pytest.mark.xfail(strict=True, reason="gate/profile.py wraps a cost-function crash in "
-                   "InternalError (a ClickException), which the CLI group passes through even "
-                   "under --debug, so the message's 'rerun with --debug' shows no traceback")
 def test_debug_shows_the_traceback_of_a_cost_function_bug(tmp_path) -> None:
     path = save(small_cnn(), tmp_path / "m.onnx")
     done = subprocess.run([sys.executable, "-c", _DEBUG_COST_FUNCTION, "--debug", "profile",

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import importlib
 import sys
+import traceback
 
 import click
 
@@ -27,15 +28,24 @@ class _FailClosedGroup(click.Group):
     def invoke(self, ctx: click.Context) -> object:
         try:
             return super().invoke(ctx)
+        except InternalError as exc:
+            if ctx.params.get("debug"):
+                _print_traceback(exc.__cause__ or exc)
+            raise
         except (click.ClickException, click.exceptions.Exit, click.Abort, KeyboardInterrupt):
             raise
         except Exception as exc:  # noqa: BLE001  (the fail-closed boundary: map every crash)
             if ctx.params.get("debug"):
-                raise
+                _print_traceback(exc)
             detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
             raise InternalError(
                 f"internal error ({detail}); rerun with --debug and report the traceback"
             ) from exc
+
+
+def _print_traceback(exc: BaseException) -> None:
+    """Under --debug: the full traceback on stderr; the exit code stays 3 (never 1 or 0)."""
+    traceback.print_exception(type(exc), exc, exc.__traceback__, file=sys.stderr)
 
 
 @click.group(cls=_FailClosedGroup, context_settings={"help_option_names": ["-h", "--help"]})
