@@ -30,11 +30,11 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass, field, replace
-from functools import lru_cache
 from pathlib import Path
 from typing import Iterable, Mapping
 
 from gate.errors import ConfigError
+from gate.globs import path_glob_problem, path_match
 from gate.yamlconf import Section, read_yaml_file, scalar_value
 
 CONFIG_FILE = "roofgate.yaml"
@@ -249,41 +249,12 @@ def glob_problem(pattern: str) -> str:
         return "use '/' between folders"
     if any(part == ".." for part in pattern.split("/")):
         return "'..' is not allowed; paths stay inside the repository"
-    return ""
+    return path_glob_problem(pattern)
 
 
 def glob_match(pattern: str, rel_path: str) -> bool:
     """Whether POSIX ``rel_path`` matches ``pattern`` (``**`` spans folders, ``*`` does not)."""
-    return _compile(pattern).fullmatch(rel_path) is not None
-
-
-@lru_cache(maxsize=512)
-def _compile(pattern: str) -> re.Pattern[str]:
-    out, i = [], 0
-    while i < len(pattern):
-        if pattern.startswith("**/", i):
-            out.append("(?:[^/]*/)*")
-            i += 3
-        elif pattern.startswith("**", i):
-            out.append(".*")
-            i += 2
-        elif pattern[i] == "*":
-            out.append("[^/]*")
-            i += 1
-        elif pattern[i] == "?":
-            out.append("[^/]")
-            i += 1
-        elif pattern[i] == "[" and "]" in pattern[i + 2:]:
-            end = pattern.index("]", i + 2)
-            body = pattern[i + 1:end]
-            negate = body.startswith("!")
-            body = re.escape(body[1:] if negate else body).replace("\\-", "-")
-            out.append(f"[{'^' if negate else ''}{body}]")
-            i = end + 1
-        else:
-            out.append(re.escape(pattern[i]))
-            i += 1
-    return re.compile("".join(out), re.DOTALL)
+    return path_match(pattern, rel_path)
 
 
 def resolve_file(config: ProjectConfig, ref: str) -> str:
