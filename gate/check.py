@@ -15,7 +15,8 @@ import tempfile
 from dataclasses import replace
 from datetime import date
 from pathlib import Path
-from typing import Sequence
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 from gate import audit as engine
 from gate import gitscan
@@ -23,6 +24,11 @@ from gate.config import ModelGroup, ProjectConfig, resolve_file, resolve_target
 from gate.errors import InputError
 from gate.records import RunRecord
 from gate.result import GateResult, ModelError
+
+if TYPE_CHECKING:  # loaded lazily at run time (only when a group names policies)
+    from gate.policy.spec import Policy
+
+_Analysed = dict[str, tuple[list[RunRecord], str]]  # model key -> (runs, error text)
 
 
 def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str | None,
@@ -35,8 +41,8 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
              f"(merge base {base_commit[:12]})")
     if not changes:
         note = f"No models changed between {base_ref} (merge base {base_commit[:12]}) and HEAD."
-        policies = sorted({resolve_file(config, p) for g in config.groups for p in g.policies})
-        return GateResult("check", tuple(policies), (), notes=(note,)), title
+        files = sorted({resolve_file(config, p) for g in config.groups for p in g.policies})
+        return GateResult("check", tuple(files), (), notes=(note,)), title
     stored = engine.base_by_model(_read_snapshot(baseline)) if baseline else None
     with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
         jobs, base_jobs, errors = _check_jobs(root, config, changes, base_commit, stored, tmp)
@@ -47,7 +53,8 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
     return engine.combine_results(results, "check"), title
 
 
-def _judge_change(change: gitscan.ModelChange, analysed: dict, stored: dict | None,
+def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
+                  stored: Mapping[str, list[RunRecord]] | None,
                   lfs_errors: list[str], policies: _PolicyCache, today: date) -> GateResult:
     """Judge one changed model.
 
@@ -59,7 +66,7 @@ def _judge_change(change: gitscan.ModelChange, analysed: dict, stored: dict | No
     """
     head_runs, head_err = analysed.get(change.path, ([], ""))
     base_runs, base_err = analysed.get(_base_key(change.path), ([], ""))
-    notes = []
+    notes: list[str] = []
     if stored is not None and change.base_path:
         base_runs = [replace(r, model=change.path) for r in stored.get(change.base_path, [])]
         base_runs, skipped = on_head_targets(base_runs, head_runs)
@@ -84,9 +91,9 @@ class _PolicyCache:
 
     def __init__(self, config: ProjectConfig) -> None:
         self.config = config
-        self._loaded: dict[tuple[str, ...], list[object]] = {}
+        self._loaded: dict[tuple[str, ...], list[Policy]] = {}
 
-    def get(self, group: ModelGroup) -> list[object]:
+    def get(self, group: ModelGroup) -> list[Policy]:
         if group.policies not in self._loaded:
             self._loaded[group.policies] = _policies(self.config, group)
         return self._loaded[group.policies]
@@ -109,7 +116,9 @@ def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.Mod
                 base_commit: str, stored: object, tmp: str,
                 ) -> tuple[list[engine.Job], list[engine.Job], dict[str, list[str]]]:
     """Write each side's blob to ``tmp`` and make its job; LFS pointers become errors."""
-    jobs, base_jobs, errors = [], [], {}
+    jobs: list[engine.Job] = []
+    base_jobs: list[engine.Job] = []
+    errors: dict[str, list[str]] = {}
     for k, change in enumerate(changes):
         group = _group(config, change)
         sides = [("head", "HEAD", change.head_path, change.path, jobs)]
@@ -139,7 +148,7 @@ def _job(config: ProjectConfig, group: ModelGroup, model: str, file: str) -> eng
                       dims=tuple(sorted(group.dims.items())), precision=group.precision)
 
 
-def _policies(config: ProjectConfig, group: ModelGroup) -> list[object]:
+def _policies(config: ProjectConfig, group: ModelGroup) -> list[Policy]:
     from gate.policy.load import load_policies
 
     return list(load_policies(resolve_file(config, p) for p in group.policies))
@@ -193,7 +202,8 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
     for model in mine:
         head_runs, error = analysed.get(model, ([], ""))
         errors = [ModelError(model, error)] if error else []
-        base_runs, notes = stored.get(model, []), []
+        base_runs = stored.get(model, [])
+        notes: list[str] = []
         if model in present:  # a model gone from the zoo keeps its base runs: all deleted
             base_runs, notes = on_head_targets(base_runs, head_runs)
         group = _audit_group(config, model)

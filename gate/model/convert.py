@@ -34,7 +34,7 @@ MAX_SUBGRAPH_DEPTH = 64
 
 _INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", "INT64",
                          "UINT64", "BOOL", "INT4", "UINT4"})
-_Scope = ChainMap  # name -> value, innermost scope first
+_Scope = ChainMap[str, Any]  # name -> value, innermost scope first
 
 
 def dtype_name(elem_type: int) -> str:
@@ -103,7 +103,8 @@ class _Converter:
         self.declared = declared
         self.warnings: list[str] = []
 
-    def graph(self, proto: onnx.GraphProto, outer: _Scope | None, depth: int) -> Graph:
+    def graph(self, proto: onnx.GraphProto, outer: dict[str, _Scope] | None,
+              depth: int) -> Graph:
         if depth > MAX_SUBGRAPH_DEPTH:
             raise InputError(f"subgraphs nested deeper than {MAX_SUBGRAPH_DEPTH} levels; "
                              f"simplify the model's control flow", self.path)
@@ -220,7 +221,7 @@ class _Converter:
         )
 
 
-def _chain(scope: Any) -> ChainMap:
+def _chain(scope: Any) -> _Scope:
     return scope if isinstance(scope, ChainMap) else ChainMap(scope)
 
 
@@ -324,9 +325,9 @@ def graph_symbolic_dims(graph: Graph) -> set[str]:
         for tensor in current.inputs:
             names.update(tensor.symbolic_dims())
         for node in current.nodes:
-            for tensor in (*node.inputs, *node.outputs):
-                if tensor is not None:
-                    names.update(tensor.symbolic_dims())
+            for maybe in (*node.inputs, *node.outputs):  # an omitted optional input is None
+                if maybe is not None:
+                    names.update(maybe.symbolic_dims())
             stack.extend(node.subgraphs.values())
     return names
 

@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import re
 from pathlib import Path
-from typing import Callable, Iterable
+from collections.abc import Callable, Iterable
+from typing import TypedDict
 
 from gate.errors import ConfigError
 from gate.policy import spec
@@ -22,7 +23,24 @@ from gate.yamlconf import Section, YamlDocument, read_yaml_file, suggest
 POLICY_FORMAT_VERSION = 1
 _RULE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
 _LAYER_KEYS = ("layers", "exclude_layers", "op_types")
-_FieldReader = Callable[[Section, str], "dict[str, object] | None"]
+
+
+class _KindFields(TypedDict, total=False):
+    """The ``Rule`` fields one kind sets (the rest keep their defaults)."""
+
+    metric: str
+    minimum: float | None
+    maximum: float | None
+    min_layer_macs: int
+    check_params: bool
+    check_activations: bool
+    max_change_pct: float | None
+    max_change_abs: float | None
+    max_node_share: float | None
+    max_work_share: float | None
+
+
+_FieldReader = Callable[[Section, str], "_KindFields | None"]
 
 
 def load_policy(path: str | Path) -> Policy:
@@ -165,9 +183,9 @@ def _threshold(sec: Section, key: str, unit: str, *, required: bool) -> float | 
     return sec.get_quantity(key, unit, required=required)
 
 
-def _fields_min_utilization(sec: Section, level: str) -> dict[str, object] | None:
+def _fields_min_utilization(sec: Section, level: str) -> _KindFields | None:
     minimum = sec.get_share("min", required=True)
-    fields: dict[str, object] = {"minimum": minimum}
+    fields: _KindFields = {"minimum": minimum}
     if level == spec.LAYER:
         macs = sec.get_quantity("min_layer_macs", "", 1.0, minimum=0.0)
         fields["min_layer_macs"] = int(macs if macs is not None else 1)
@@ -178,13 +196,13 @@ def _fields_min_utilization(sec: Section, level: str) -> dict[str, object] | Non
 
 
 def _fields_max(unit: str) -> _FieldReader:
-    def read(sec: Section, level: str) -> dict[str, object] | None:
+    def read(sec: Section, level: str) -> _KindFields | None:
         maximum = _threshold(sec, "max", unit, required=True)
         return {"maximum": maximum} if maximum is not None else None
     return read
 
 
-def _fields_fits(sec: Section, level: str) -> dict[str, object] | None:
+def _fields_fits(sec: Section, level: str) -> _KindFields | None:
     check = sec.get_str("check", "both", choices=["params", "activations", "both"]) or "both"
     return {"check_params": check in ("params", "both"),
             "check_activations": check in ("activations", "both")}
@@ -205,7 +223,7 @@ def _read_metric(sec: Section, level: str) -> str | None:
     return metric
 
 
-def _fields_regression(sec: Section, level: str) -> dict[str, object] | None:
+def _fields_regression(sec: Section, level: str) -> _KindFields | None:
     metric = _read_metric(sec, level)
     if metric is None:
         for key in ("max_increase_pct", "max_increase_abs", "max_decrease_pct", "max_decrease_abs"):
@@ -230,7 +248,7 @@ def _fields_regression(sec: Section, level: str) -> dict[str, object] | None:
     return {"metric": metric, "max_change_pct": pct, "max_change_abs": absolute}
 
 
-def _fields_unmodelled(sec: Section, level: str) -> dict[str, object] | None:
+def _fields_unmodelled(sec: Section, level: str) -> _KindFields | None:
     work = sec.get_share("max_work_share")
     nodes = sec.get_share("max_node_share")
     if work is None and nodes is None:
@@ -239,7 +257,7 @@ def _fields_unmodelled(sec: Section, level: str) -> dict[str, object] | None:
     return {"max_work_share": work, "max_node_share": nodes}
 
 
-def _fields_metric_limit(sec: Section, level: str) -> dict[str, object] | None:
+def _fields_metric_limit(sec: Section, level: str) -> _KindFields | None:
     metric = _read_metric(sec, level)
     if metric is None:
         sec.get_str("min"), sec.get_str("max")  # mark known; their unit depends on the metric

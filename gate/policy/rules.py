@@ -127,8 +127,11 @@ def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
     """
     named = what_in_message or what
     remedy = remedy_of(rule)
-    bounds = [("minimum", rule.minimum, True), ("maximum", rule.maximum, False)]
-    bounds = [(name, limit, low) for name, limit, low in bounds if limit is not None]
+    bounds: list[tuple[str, float, bool]] = []  # (name, limit, lower values are bad)
+    if rule.minimum is not None:
+        bounds.append(("minimum", rule.minimum, True))
+    if rule.maximum is not None:
+        bounds.append(("maximum", rule.maximum, False))
 
     def judge(value: Metric, label: str, short_name: str) -> Breach | None:
         for name, limit, low in bounds:

@@ -58,7 +58,7 @@ class _Annotation:
     message: str
 
 
-def annotations(result: GateResult) -> list[_Annotation]:
+def collect_annotations(result: GateResult) -> list[_Annotation]:
     """Every annotation the result calls for, errors first, in report order."""
     out = [_Annotation("error", e.model, "roofgate: model not analysed", e.message)
            for e in result.errors]
@@ -82,7 +82,7 @@ def render(result: GateResult) -> list[str]:
     """The workflow-command lines, capped per kind with a summarising last line."""
     lines: list[str] = []
     for kind in ("error", "warning"):
-        items = [a for a in annotations(result) if a.kind == kind]
+        items = [a for a in collect_annotations(result) if a.kind == kind]
         shown = items if len(items) <= MAX_PER_KIND else items[: MAX_PER_KIND - 1]
         for item in shown:
             lines.append(command(kind, shorten(item.message, MAX_MESSAGE_CHARS),
