@@ -19,10 +19,11 @@ import json
 import os
 import shutil
 import sys
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime, timezone
 from pathlib import Path
-from typing import Any, Callable, Iterable, Mapping, Sequence, TextIO
+from typing import Any, TextIO
 
 from gate import __version__
 from gate.errors import InputError, RoofgateError
@@ -161,9 +162,9 @@ def trend_notes(result: GateResult) -> list[str]:
             same += 1
     if not (worse or better or same):
         return []
-    lines = [f"Trend vs the previous snapshot: {len(worse)} worse, {len(better)} better, "
-             f"{same} unchanged (latency or energy moved by more than "
-             f"{TREND_MIN_CHANGE:.0%})."]
+    lines = [(f"Trend vs the previous snapshot: {len(worse)} worse, {len(better)} better, "
+              f"{same} unchanged (latency or energy moved by more than "
+              f"{TREND_MIN_CHANGE:.0%}).")]
     for label, items in (("worse", worse), ("better", better)):
         lines += [f"{label}: {item}" for item in items[:TREND_MAX_LINES]]
         if len(items) > TREND_MAX_LINES:

@@ -12,10 +12,10 @@ from __future__ import annotations
 
 import os
 import tempfile
+from collections.abc import Mapping, Sequence
 from dataclasses import replace
 from datetime import date
 from pathlib import Path
-from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING
 
 from gate import audit as engine
@@ -240,8 +240,8 @@ def on_head_targets(base: Sequence[RunRecord], head: Sequence[RunRecord],
     others = sorted({run.target for run in base} - targets)
     if not others:
         return kept, []
-    return kept, [f"the baseline also holds runs on {', '.join(others)}, which this run does "
-                  "not cost; they are left out of the comparison"]
+    return kept, [(f"the baseline also holds runs on {', '.join(others)}, which this run does "
+                   "not cost; they are left out of the comparison")]
 
 
 def _audit_group(config: ProjectConfig, model: str) -> ModelGroup:

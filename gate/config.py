@@ -29,9 +29,9 @@ and ``--target`` is required.
 from __future__ import annotations
 
 import re
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Iterable, Mapping
 
 from gate.errors import ConfigError
 from gate.globs import path_glob_problem, path_match

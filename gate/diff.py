@@ -22,8 +22,9 @@ whose floats are rounded, does not show every layer as changed.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from difflib import SequenceMatcher
-from typing import Sequence
+from itertools import pairwise
 
 from gate.records import LayerRecord, Metric, RunRecord
 from gate.result import LayerChange, RunDiff
@@ -127,7 +128,7 @@ def _align_rest(base: Sequence[LayerRecord], head: Sequence[LayerRecord],
     out.extend((rest_base[b], rest_head[h], "signature") for b, h in signature_pairs)
     # Between two signature-aligned runs, align what is left by op type.
     bounds = [(-1, -1), *signature_pairs, (len(rest_base), len(rest_head))]
-    for (b0, h0), (b1, h1) in zip(bounds, bounds[1:]):
+    for (b0, h0), (b1, h1) in pairwise(bounds):
         gap_base = rest_base[b0 + 1:b1]
         gap_head = rest_head[h0 + 1:h1]
         if gap_base and gap_head:

@@ -12,9 +12,10 @@ from __future__ import annotations
 
 import os
 import subprocess
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import BinaryIO, Callable, Sequence
+from typing import BinaryIO
 
 from gate.errors import InputError
 

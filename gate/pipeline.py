@@ -9,9 +9,9 @@ returns the ``GateResult`` all reporters format. ``gate``, ``check`` and
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from dataclasses import replace
 from datetime import date
-from typing import Mapping, Sequence
 
 from gate.costmodel import cost_model
 from gate.diff import diff_runs

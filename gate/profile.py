@@ -7,9 +7,9 @@ energy) are computed from it by ``gate.costmodel``; reporters only format.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
 from math import prod
-from typing import Iterable
 
 from gate.errors import InputError, InternalError
 from gate.model.convert import UNKNOWN_DIM
@@ -239,7 +239,7 @@ def _work(node: Node, unbound: dict[str, int]) -> tuple[OpWork | None, str]:
         return func(node), ""
     except Unmodelled as exc:
         return None, exc.reason or "not modelled"
-    except Exception as exc:  # noqa: BLE001  (a cost-function bug must not read as a result)
+    except Exception as exc:  # a cost-function bug must not read as a result
         raise InternalError(f"cost function for {node.op_type} failed on layer '{node.name}' "
                             f"({type(exc).__name__}: {exc}); rerun with --debug and report "
                             f"it") from exc

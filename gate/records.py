@@ -12,8 +12,9 @@ README lists them. Values are ints for counts and bytes, floats otherwise.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
 Metric = int | float
 

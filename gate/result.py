@@ -7,8 +7,9 @@ never need anything that is not in it.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 from gate.records import Metric, RunRecord, run_from_dict, run_to_dict

@@ -28,8 +28,9 @@ from __future__ import annotations
 import json
 import math
 import os
+from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
 
 from gate.errors import InputError, InternalError
 from gate.records import RunRecord, run_from_dict, run_to_dict

@@ -34,7 +34,7 @@ class _FailClosedGroup(click.Group):
             raise
         except (click.ClickException, click.exceptions.Exit, click.Abort, KeyboardInterrupt):
             raise
-        except Exception as exc:  # noqa: BLE001  (the fail-closed boundary: map every crash)
+        except Exception as exc:  # the fail-closed boundary: map every crash
             if ctx.params.get("debug"):
                 _print_traceback(exc)
             detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]

@@ -8,7 +8,8 @@ summary, exit with the result's code.
 
 from __future__ import annotations
 
-from typing import Any, Callable, Sequence, TypeVar
+from collections.abc import Callable, Sequence
+from typing import Any, TypeVar
 
 import click
 

@@ -10,14 +10,16 @@ per-layer diff of two models or two snapshots (or one of each).
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from datetime import date, datetime, timezone
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any
 
 import click
 
 from gate.audit import error_text
 from gate.cli.common import analysis_options, finish
+from gate.diff import ranked_changes
 from gate.errors import InputError, InternalError, RoofgateError
 from gate.pipeline import analyse, judge
 from gate.policy import load_policies, unused_waivers
@@ -25,7 +27,6 @@ from gate.policy.globs import normalize_model_path
 from gate.records import RunRecord
 from gate.report import report_options, report_paths, terminal, write_reports
 from gate.report.text import fmt_change, fmt_metric, shorten, term_safe
-from gate.diff import ranked_changes
 from gate.result import GateResult, ModelError
 from gate.snapshot import read_snapshot, write_snapshot
 from gate.targets import load_targets

@@ -12,7 +12,8 @@ import csv
 import io
 import json
 import unicodedata
-from typing import Any, Sequence
+from collections.abc import Sequence
+from typing import Any
 
 from gate.costmodel import ModelCost
 from gate.model.graph import Shape
@@ -257,8 +258,8 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
     opsets = ", ".join(f"{domain or 'ai.onnx'} {version}"
                        for domain, version in model.opsets.items())
     lines = [f"model: {clean(model.name, 80)} ({clean(model.path, 120)})",
-             f"precision: {profile.precision}   dims: {clean(dims, 120)}   "
-             f"opsets: {clean(opsets, 120)}",
+             (f"precision: {profile.precision}   dims: {clean(dims, 120)}   "
+              f"opsets: {clean(opsets, 120)}"),
              ""]
     flagged = any(not layer.modelled for layer in profile.layers)
     head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + (["!"] if flagged else [])
@@ -307,9 +308,9 @@ def _group_line(rows: list[list[str]], names: list[str]) -> str:
 def _totals_lines(profile: ModelProfile) -> list[str]:
     cov = profile.coverage
     modelled = "" if cov.nodes_modelled == cov.nodes_total else f" ({cov.nodes_modelled} modelled)"
-    return [f"total: {len(profile.layers)} layers{modelled}, {si(profile.total_macs)} MACs, "
-            f"{si(profile.total_flops)} FLOPs, {si(profile.total_param_count)} parameters "
-            f"({binary_bytes(profile.total_param_bytes)}, shared ones counted once)"]
+    return [(f"total: {len(profile.layers)} layers{modelled}, {si(profile.total_macs)} MACs, "
+             f"{si(profile.total_flops)} FLOPs, {si(profile.total_param_count)} parameters "
+             f"({binary_bytes(profile.total_param_bytes)}, shared ones counted once)")]
 
 
 MAX_UNMODELLED_LINES = 12
@@ -317,8 +318,8 @@ MAX_UNMODELLED_LINES = 12
 
 def _coverage_lines(profile: ModelProfile) -> list[str]:
     cov = profile.coverage
-    lines = [f"coverage: {cov.nodes_modelled}/{cov.nodes_total} layers modelled "
-             f"({cov.node_share:.1%}), work share {cov.work_share:.1%}"]
+    lines = [(f"coverage: {cov.nodes_modelled}/{cov.nodes_total} layers modelled "
+              f"({cov.node_share:.1%}), work share {cov.work_share:.1%}")]
     for op in cov.unmodelled[:MAX_UNMODELLED_LINES]:
         name = f"{op.domain}.{op.op_type}" if op.domain else op.op_type
         lines.append(f"  unmodelled: {clean(name, 60)} x{op.count}: {clean(op.reason, 200)}")
@@ -334,15 +335,15 @@ def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile)
     cov = profile.coverage
     name = clean(target.name, 60)
     if profile.layers and cov.nodes_modelled == 0:
-        return ["", f"on {name} ({cost.precision}): not costed: no layer could be modelled "
-                    "(see coverage above)"]
-    lines = ["", f"on {name} ({cost.precision}): latency {seconds(cost.latency_s)} "
-                 f"({si(cost.inferences_per_s)} inferences/s), "
-                 f"energy {joules(cost.energy.total_j)}, "
-                 f"array utilization {cost.utilization:.1%}, parameter DRAM "
-                 f"{binary_bytes(cost.param_dram_bytes)}, activation DRAM "
-                 f"{binary_bytes(cost.act_dram_bytes)}, weights "
-                 f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}"]
+        return ["", (f"on {name} ({cost.precision}): not costed: no layer could be modelled "
+                     "(see coverage above)")]
+    lines = ["", (f"on {name} ({cost.precision}): latency {seconds(cost.latency_s)} "
+                  f"({si(cost.inferences_per_s)} inferences/s), "
+                  f"energy {joules(cost.energy.total_j)}, "
+                  f"array utilization {cost.utilization:.1%}, parameter DRAM "
+                  f"{binary_bytes(cost.param_dram_bytes)}, activation DRAM "
+                  f"{binary_bytes(cost.act_dram_bytes)}, weights "
+                  f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}")]
     if cov.nodes_modelled < cov.nodes_total:
         lines.append(f"  lower bounds: only {cov.nodes_modelled}/{cov.nodes_total} layers "
                      f"({cov.work_share:.1%} of the work) are modelled")

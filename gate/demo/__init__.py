@@ -17,8 +17,8 @@ import importlib.util
 import os
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
-from typing import Callable
 
 import click
 

@@ -18,8 +18,9 @@ from __future__ import annotations
 
 import os
 from collections import ChainMap
+from collections.abc import Iterator
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 import onnx
 from onnx import AttributeProto, TensorProto, helper, numpy_helper

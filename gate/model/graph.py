@@ -7,9 +7,10 @@ no ``--dim`` binding resolved; ``shape is None`` means the rank is unknown.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from math import prod
-from typing import Any, Mapping
+from typing import Any
 
 Dim = int | str
 Shape = tuple[Dim, ...]
@@ -89,7 +90,7 @@ class Node:
     outputs: tuple[TensorInfo, ...]
     attributes: Mapping[str, Any] = field(default_factory=dict)
     param_inputs: frozenset[int] = frozenset()
-    subgraphs: Mapping[str, "Graph"] = field(default_factory=dict)
+    subgraphs: Mapping[str, Graph] = field(default_factory=dict)
     const_values: Mapping[int, tuple[int, ...]] = field(default_factory=dict)
 
     def attr(self, name: str, default: Any = None) -> Any:

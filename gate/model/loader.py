@@ -18,8 +18,8 @@ from __future__ import annotations
 
 import os
 import tempfile
+from collections.abc import Mapping
 from pathlib import Path
-from typing import Mapping
 
 import onnx
 import onnx.inliner
@@ -28,8 +28,8 @@ from google.protobuf.message import DecodeError
 
 from gate.errors import InputError
 from gate.model.convert import (
-    collect_symbolic_dims,
     UNKNOWN_DIM,
+    collect_symbolic_dims,
     convert_model,
     drop_weight_values,
     external_data_warnings,

@@ -4,6 +4,7 @@ Importing this package imports every family module so their ``@register``
 decorators run; ``cost_function_for`` is the one lookup the profiler uses.
 """
 
+from gate.ops import _families  # noqa: F401  (imports the family modules for registration)
 from gate.ops.registry import (  # noqa: F401  (re-exported API)
     GemmShape,
     OpWork,
@@ -12,4 +13,3 @@ from gate.ops.registry import (  # noqa: F401  (re-exported API)
     modelled_op_types,
     register,
 )
-from gate.ops import _families  # noqa: F401  (imports the family modules for registration)

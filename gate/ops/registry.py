@@ -10,8 +10,8 @@ to mean "don't know".
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 from gate.model.graph import Node
 

@@ -8,16 +8,16 @@ scoped away from the model or target yield no Verdict at all; a deleted model
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from datetime import date
-from typing import Iterable
 
 from gate.policy import spec
 from gate.policy.regression import allowed_text, check_max_regression
 from gate.policy.rules import CHECKS, Outcome, remedy_of
 from gate.policy.spec import Policy, Rule
-from gate.report.text import fmt_metric, fmt_percent
 from gate.policy.waivers import to_finding
 from gate.records import RunRecord
+from gate.report.text import fmt_metric, fmt_percent
 from gate.result import FAIL, PASS, WAIVED, Finding, RunDiff, Verdict
 
 _CHECKS = {**CHECKS, spec.MAX_REGRESSION: check_max_regression}

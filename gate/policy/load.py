@@ -9,8 +9,8 @@ refused the same way as in target profiles.
 from __future__ import annotations
 
 import re
-from pathlib import Path
 from collections.abc import Callable, Iterable
+from pathlib import Path
 from typing import TypedDict
 
 from gate.errors import ConfigError

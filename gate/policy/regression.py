@@ -14,8 +14,8 @@ from gate.policy import spec
 from gate.policy.rules import Breach, Outcome, remedy_of
 from gate.policy.spec import Rule
 from gate.policy.thresholds import regression_bound, regression_exceeds, worsening
-from gate.report.text import fmt_delta, fmt_metric
 from gate.records import Metric, RunRecord
+from gate.report.text import fmt_delta, fmt_metric
 from gate.result import RunDiff
 
 

@@ -8,14 +8,14 @@ sentences naming the layer, the metric, the value, the limit and a remedy.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 from gate.policy import spec
 from gate.policy.spec import Rule
 from gate.policy.thresholds import above_maximum, below_minimum, unmodelled_share
-from gate.report.text import fmt_bytes, fmt_metric, fmt_percent
 from gate.records import LayerRecord, Metric, RunRecord
+from gate.report.text import fmt_bytes, fmt_metric, fmt_percent
 from gate.result import RunDiff
 
 DEFAULT_REMEDIES = {

@@ -52,7 +52,7 @@ def metric_unit(metric: str) -> str:
         return "share"
     if metric.endswith("_bytes"):
         return "B"
-    if metric.endswith("_per_s") or metric.endswith("_per_j"):
+    if metric.endswith(("_per_s", "_per_j")):
         return ""
     if metric.endswith("_s"):
         return "s"

@@ -10,8 +10,8 @@ failures), so stale ones get cleaned up without blocking a merge.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from datetime import date
-from typing import Iterable
 
 from gate.policy.globs import match_any
 from gate.policy.rules import Breach

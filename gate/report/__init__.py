@@ -11,8 +11,9 @@ from __future__ import annotations
 import importlib
 import os
 import sys
+from collections.abc import Callable
 from pathlib import Path
-from typing import Callable, Protocol, TextIO, TypeVar
+from typing import Protocol, TextIO, TypeVar
 
 import click
 

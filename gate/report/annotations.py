@@ -103,8 +103,7 @@ class AnnotationsReporter:
     help = "Write GitHub Actions annotations (workflow commands) for failures"
 
     def write(self, result: GateResult, stream: TextIO) -> None:
-        for line in render(result):
-            stream.write(line + "\n")
+        stream.writelines(line + "\n" for line in render(result))
 
 
 REPORTER = AnnotationsReporter()

@@ -112,8 +112,8 @@ def _details(verdict: Verdict) -> str:
     Each line is made safe on its own, so a newline inside a node name shows as
     ``\\n`` instead of starting a line that looks like another finding.
     """
-    lines = [f"{verdict.severity} rule {verdict.rule_id} ({verdict.kind}): "
-             f"{verdict.summary or verdict.status}"]
+    lines = [(f"{verdict.severity} rule {verdict.rule_id} ({verdict.kind}): "
+              f"{verdict.summary or verdict.status}")]
     if verdict.description:
         lines.append(f"rule: {verdict.description}")
     for finding in verdict.findings[:MAX_LISTED_FINDINGS]:
@@ -174,7 +174,7 @@ def _empty_suite(result: GateResult) -> TestSuite:
     return TestSuite("roofgate", [case], properties={"entries": "0"})
 
 
-def _number(value: int | float) -> str:
+def _number(value: float) -> str:
     """A metric as a property value: ints exactly, floats to 12 significant digits."""
     return str(value) if isinstance(value, int) else f"{value:.12g}"
 

@@ -19,12 +19,12 @@ Every model-supplied string (paths, node names, messages) goes through
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Sequence, TextIO
+from typing import TextIO
 
 from gate.diff import ranked_changes
-from gate.report.text import (fmt_change, fmt_delta, fmt_metric, html_escape, md_escape,
-                              shorten)
+from gate.report.text import fmt_change, fmt_delta, fmt_metric, html_escape, md_escape, shorten
 from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, LayerChange, Verdict
 
 MARKER = "<!-- roofgate-report -->"
@@ -249,8 +249,8 @@ def _has_details(entry: Entry) -> bool:
 
 def _model_section(model: str, entries: list[Entry], out: _Render) -> None:
     worst = _status_cell(entries[0])
-    out.lines += ["", "<details>", f"<summary>{_summary_text(shorten(model, 200))}: "
-                  f"{html_escape(worst)}</summary>"]
+    out.lines += ["", "<details>", (f"<summary>{_summary_text(shorten(model, 200))}: "
+                   f"{html_escape(worst)}</summary>")]
     for entry in entries:
         out.lines += ["", f"#### {md_escape(entry.target)}"]
         _notes(entry, out)

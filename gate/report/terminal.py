@@ -9,9 +9,11 @@ a node name cannot move the cursor or fake a line.
 
 from __future__ import annotations
 
+import math
 import os
 import posixpath
-from typing import Sequence, TextIO
+from collections.abc import Sequence
+from typing import TextIO
 
 from gate.diff import same_value
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
@@ -125,12 +127,12 @@ def _badness(finding: Finding) -> float:
     except (TypeError, ValueError):
         return 0.0
     excess = limit - value if higher_is_better(finding.metric) else value - limit
-    return excess if excess == excess else 0.0  # NaN sorts as 'not past'
+    return 0.0 if math.isnan(excess) else excess  # NaN sorts as 'not past'
 
 
 def _model_prefix_off(message: str) -> str:
     """A model-level finding's text without its ``Model: `` lead-in (the line names the model)."""
-    return message[len("Model: "):] if message.startswith("Model: ") else message
+    return message.removeprefix("Model: ")
 
 
 def _without_remedy(message: str, remedy: str) -> tuple[str, bool]:
