@@ -20,11 +20,13 @@ Typical use::
 from __future__ import annotations
 
 import difflib
+import math
 import re
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import date
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 import yaml
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
@@ -109,13 +111,13 @@ def parse_yaml_bytes(raw: bytes, shown: str) -> YamlDocument:
         line = text.count("\n", 0, exc.position) + 1
         char = exc.character
         code = char if isinstance(char, int) else ord(str(char)[:1] or "?")
-        raise ConfigError([f"{shown}:{line}: character U+{code:04X} is not allowed in YAML; "
-                           "remove it (or quote it as an escape, e.g. \"\\x00\")"]) from None
+        raise ConfigError([(f"{shown}:{line}: character U+{code:04X} is not allowed in YAML; "
+                            "remove it (or quote it as an escape, e.g. \"\\x00\")")]) from None
     except yaml.YAMLError as exc:
         raise ConfigError([f"{shown}: YAML error: {' '.join(str(exc).split())}"]) from None
     except RecursionError:
-        raise ConfigError([f"{shown}: YAML nested too deeply; write the values out with less "
-                           "nesting"]) from None
+        raise ConfigError([(f"{shown}: YAML nested too deeply; write the values out with less "
+                            "nesting")]) from None
     return YamlDocument(shown, root)
 
 
@@ -399,7 +401,7 @@ class Section:
 
     def _in_range(self, node: Node | None, key: str, value: float, minimum: float | None,
                   maximum: float | None, default: float | None) -> float | None:
-        if value != value or value in (float("inf"), float("-inf")):
+        if isinstance(value, float) and not math.isfinite(value):  # NaN or infinite
             self.doc.problem(node, self._path(key), "must be a finite number")
             return default
         if minimum is not None and value < minimum:
