@@ -23,6 +23,7 @@ import pytest
 from gate.errors import InputError
 from gate.report import all_reporters, charts, write_report
 from gate.report.html import REPORTER, render
+from gate.report.text import fmt_joules
 from gate.result import FAIL, PASS, Entry, GateResult, ModelError
 from tests.reportkit import (
     DRAM_BYTES_PER_S,
@@ -251,6 +252,13 @@ def test_layer_chart_bars_and_energy_parts_match_the_records(demo_page: str) -> 
     bars = [p.get_width() for p in fig.axes[0].patches]
     expected = sorted((l.metrics["latency_s"] for l in result.entries[1].head.layers), reverse=True)
     assert bars == pytest.approx([v * 1e6 for v in expected])  # in microseconds, slowest first
+
+
+def test_micro_is_spelled_the_same_in_tables_and_chart_axes(demo_page: str) -> None:
+    axes = set(re.findall(r"(?:latency|energy per inference) \(([^)]*)\)", demo_page))
+    assert axes == {"us", "uJ"}  # the demo's layers take microseconds and microjoules
+    assert fmt_joules(45.6e-6) == "45.6 uJ"  # the tables' formatter, same spelling
+    assert not any(micro in demo_page for micro in ("\u00b5", "\u03bc", "&micro;", "&#181;"))
 
 
 def test_huge_model_plots_top_layers_and_says_how_many_were_left_out() -> None:

@@ -25,7 +25,7 @@ from typing import Any
 
 from gate.errors import InputError
 from gate.records import LayerRecord, RunRecord
-from gate.report.text import fmt_count, shorten, term_safe
+from gate.report.text import ENERGY_UNITS, TIME_UNITS, fmt_count, shorten, term_safe
 
 INSTALL_HINT = "the HTML report needs matplotlib: pip install 'roofgate[html]'"
 
@@ -359,7 +359,7 @@ def layer_bars_figure(head: RunRecord, base_latency_s: Mapping[str, float], char
                          bottom_in=0.5, top_in=0.55, wspace=0.06)
         left, right = fig.subplots(1, 2, sharey=True, width_ratios=(1, 1.35))
         time_scale, time_unit = _scale([_finite(l.metrics, "latency_s") for l in layers],
-                                       (("s", 1.0), ("ms", 1e-3), ("\u00b5s", 1e-6), ("ns", 1e-9)))
+                                       TIME_UNITS)
         bars = left.barh(rows, [_finite(l.metrics, "latency_s") / time_scale
                                 for l in layers], color=HEAD, height=0.68)
         _number_bars(bars, f"{chart_id}-latency")
@@ -393,8 +393,7 @@ def _draw_base_ticks(ax: Any, layers: Sequence[LayerRecord], base_latency_s: Map
 
 def _draw_energy(ax: Any, layers: Sequence[LayerRecord], chart_id: str) -> None:
     totals = [sum(_finite(l.metrics, m) for m, _n, _c in ENERGY_PARTS) for l in layers]
-    scale, unit = _scale(totals, (("J", 1.0), ("mJ", 1e-3), ("\u00b5J", 1e-6), ("nJ", 1e-9),
-                                  ("pJ", 1e-12)))
+    scale, unit = _scale(totals, ENERGY_UNITS)
     lefts = [0.0] * len(layers)
     for metric, label, colour in ENERGY_PARTS:
         widths = [_finite(l.metrics, metric) / scale for l in layers]

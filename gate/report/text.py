@@ -1,9 +1,11 @@
 """Shared formatting and escaping for every reporter.
 
 Formatting: numbers with their unit (bytes as B/KiB/MiB/GiB, shares as %,
-seconds as ms or us, joules as mJ/uJ, counts with SI prefixes) and deltas
-between a base and a head value, so every format writes the same figure the
-same way.
+seconds as ms, joules as mJ/uJ, counts with SI prefixes) and deltas between a
+base and a head value, so every format writes the same figure the same way.
+Micro is written ``u`` in every report, chart axes included (``TIME_UNITS``,
+``ENERGY_UNITS``): plain ASCII survives every CI log, console and XML consumer,
+and it is what target and policy files are written with (``2 us``).
 
 Escaping: node and model names come from the model file, i.e. from whoever
 wrote it. They may hold markdown syntax, HTML, mentions, newlines and control
@@ -131,6 +133,11 @@ def html_escape(text: str) -> str:
 # --- numbers -----------------------------------------------------------------
 
 _BINARY_UNITS = ("B", "KiB", "MiB", "GiB", "TiB", "PiB")
+# Decimal unit ladders (unit, size in base units), largest first, shared with the charts.
+TIME_UNITS: tuple[tuple[str, float], ...] = (("s", 1.0), ("ms", 1e-3), ("us", 1e-6),
+                                             ("ns", 1e-9))
+ENERGY_UNITS: tuple[tuple[str, float], ...] = (("J", 1.0), ("mJ", 1e-3), ("uJ", 1e-6),
+                                               ("nJ", 1e-9), ("pJ", 1e-12))
 _SI_PREFIXES = ((1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k"))
 
 
@@ -171,7 +178,7 @@ def fmt_ms(seconds: Metric) -> str:
 def fmt_joules(joules: Metric) -> str:
     """Energy with a fitting prefix: ``1.23 mJ``, ``45.6 uJ``."""
     value = float(joules)
-    for scale, unit in ((1.0, "J"), (1e-3, "mJ"), (1e-6, "uJ"), (1e-9, "nJ")):
+    for unit, scale in ENERGY_UNITS:
         if abs(value) >= scale:
             return f"{_three_digits(value / scale)} {unit}"
     return "0 J" if value == 0 else f"{_three_digits(value / 1e-12)} pJ"
