@@ -154,3 +154,15 @@ def test_expired_waiver_is_named_in_the_failed_rules_table() -> None:
     lapsed = finding(waiver_reason="approved for the demo", waiver_expires="2027-01-31")
     text = render(result(entry(run(), verdicts=(verdict(status=FAIL, findings=(lapsed,)),))))
     assert "waiver expired 2027-01-31 (approved for the demo); split the layer" in text
+
+
+def test_a_changed_layer_whose_columns_are_all_equal_names_what_did_change() -> None:
+    """A reshape on a narrower tensor changes only its activation sizes and energy: the row
+    must not read 'changed | = | = | = | =' (the change has to be visible somewhere)."""
+    base = run(layers=(layer("stem/conv"), layer("head/merge", "Reshape", macs=0, param_bytes=0,
+                                                 input_bytes=1024, energy_j=2e-7)))
+    head = run(layers=(layer("stem/conv"), layer("head/merge", "Reshape", macs=0, param_bytes=0,
+                                                 input_bytes=640, energy_j=1.5e-7)))
+    rows = [row for row in _table_rows(render(result(entry(head, base)))) if "head/merge" in row]
+    assert rows == ["| head/merge | Reshape | changed: energy -25.0%, input size -37.5% "
+                    "| = | = | = | = |"]

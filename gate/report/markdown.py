@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 from typing import TextIO
 
 from gate.diff import ranked_changes
+from gate.policy.spec import metric_label
 from gate.report.text import fmt_change, fmt_delta, fmt_metric, html_escape, md_escape, shorten
 from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, LayerChange, Verdict
 
@@ -39,6 +40,10 @@ SUMMARY_METRICS = (("latency_s", "Latency"), ("utilization", "PE util."),
 DELTA_METRICS = (("latency_s", "Latency"), ("param_bytes", "Params"), ("energy_j", "Energy"))
 LAYER_METRICS = (("latency_s", "Latency"), ("macs", "MACs"), ("param_bytes", "Params"),
                  ("utilization", "PE util."))
+# A changed layer whose shown columns are all "=" names up to two metrics that did change,
+# picked in this order (then by name), in its Change cell.
+OTHER_METRICS_FIRST = ("energy_j", "act_dram_bytes", "param_dram_bytes", "input_bytes",
+                       "output_bytes", "flops", "cycles", "param_count")
 
 FAIL_MARK, WARN_MARK, PASS_MARK, ERROR_MARK = "\u274c", "\u26a0\ufe0f", "\u2705", "\U0001f6d1"
 
@@ -344,12 +349,23 @@ def _changed_layers(entry: Entry, out: _Render) -> None:
 def _layer_row(change: LayerChange) -> str:
     name = change.head_name if change.head_name is not None else change.base_name or ""
     what = change.status
+    if change.status == "changed" and not any(m in change.deltas for m, _ in LAYER_METRICS):
+        what += f": {_other_changes(change)}"  # else the row would read all "="
     if change.status != "added" and change.status != "removed" and change.base_name != name:
         what += f" (was {md_escape(shorten(change.base_name or '', NAME_CHARS))})"
     cells = [md_escape(shorten(name, NAME_CHARS)), md_escape(change.op_type), what]
     for metric, _ in LAYER_METRICS:
         cells.append(_layer_cell(change, metric))
     return "| " + " | ".join(cells) + " |"
+
+
+def _other_changes(change: LayerChange, count: int = 2) -> str:
+    """'energy -0.8%, input size -37.5%': what changed in a layer outside the table's columns."""
+    if not change.deltas:
+        return "shapes or types only"
+    order = {metric: rank for rank, metric in enumerate(OTHER_METRICS_FIRST)}
+    picked = sorted(change.deltas, key=lambda m: (order.get(m, len(order)), m))[:count]
+    return ", ".join(f"{metric_label(m)} {fmt_change(m, *change.deltas[m])}" for m in picked)
 
 
 def _layer_cell(change: LayerChange, metric: str) -> str:
