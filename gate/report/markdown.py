@@ -310,7 +310,8 @@ def _finding_row(verdict: Verdict, finding: Finding | None) -> str:
         remedy = (f"waiver expired {md_escape(finding.waiver_expires)} "
                   f"({md_escape(shorten(finding.waiver_reason, 200))}); {remedy}")
     return (f"| {md_escape(verdict.rule_id)} | {severity} | {where} | "
-            f"{md_escape(finding.metric)} | {fmt_metric(finding.metric, finding.value)} | "
+            f"{md_escape(metric_label(finding.metric))} | "
+            f"{fmt_metric(finding.metric, finding.value)} | "
             f"{fmt_metric(finding.metric, finding.limit)} | {remedy} |")
 
 
