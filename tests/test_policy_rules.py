@@ -550,3 +550,11 @@ def test_default_policy_on_the_demo_pull_request(tmp_path: Path) -> None:
                if v.rule_id == "params-fit-buffer")
     assert all(v.status == PASS for (model, rule), v in verdicts.items()
                if model == WAKEWORD_PATH and "regression" in rule)
+
+
+def test_layer_limit_summary_says_which_side_of_the_limit() -> None:
+    head = _run(_layer("a", act_dram_bytes=2 * MiB), _layer("b"))
+    verdict = _one(_policy("- {id: m, kind: metric_limit, level: layer, metric: act_dram_bytes, "
+                           "max: 1 MiB}"), head)
+    assert verdict.summary == ("1 layer with activation DRAM traffic above 1.00 MiB; worst: "
+                               "a 2.00 MiB")

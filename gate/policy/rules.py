@@ -149,16 +149,18 @@ def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
 
     limits = " and ".join(f"{'at least' if low else 'at most'} {fmt_metric(metric, limit)}"
                           for _, limit, low in bounds)
+    past = " or ".join(f"{'below' if low else 'above'} {fmt_metric(metric, limit)}"
+                       for _, limit, low in bounds)  # 'above 1 ms', not 'outside at most 1 ms'
     if rule.level == spec.MODEL:
         value = _model_value(head, metric)
         breach = judge(value, "Model", "model")
-        return Outcome((breach,) if breach else (), 1, f"{what} outside {limits}",
+        return Outcome((breach,) if breach else (), 1, f"{what} {past}",
                        f"{what} {fmt_metric(metric, value)}, limit {limits}")
     layers = [layer for layer in _scoped_layers(rule, head) if layer_filter(layer)]
     found = [judge(_layer_value(head, layer, metric), _layer_label(layer), layer.name)
              for layer in layers]
     breaches = tuple(b for b in found if b is not None)
-    return Outcome(breaches, len(layers), f"with {what} outside {limits}",
+    return Outcome(breaches, len(layers), f"with {what} {past}",
                    f"{len(layers)} layer{'s' if len(layers) != 1 else ''} checked, "
                    f"{what} {limits}")
 
