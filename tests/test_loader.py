@@ -361,3 +361,19 @@ def test_long_chain_loads_with_every_node_shaped(tmp_path: Path) -> None:
     loaded = load_model(save(chain(5000), tmp_path / "long.onnx"))
     assert len(loaded.graph.nodes) == 5000
     assert loaded.graph.nodes[-1].outputs[0].shape == (1, 16)
+
+
+def test_names_that_are_not_utf8_load_with_visible_escapes(tmp_path: Path) -> None:
+    # ONNX string fields are proto2 strings: protobuf's Python runtime returns invalid UTF-8
+    # as bytes (found by the fuzz run). Names must reach reports as text, linkage intact.
+    nodes = [helper.make_node("Relu", ["x"], ["NAMEX"], name="NAMEY"),
+             helper.make_node("Relu", ["NAMEX"], ["y"], name="second")]
+    raw = model(nodes, [vi("x", [1, 4])], [vi("y", [1, 4])]).SerializeToString()
+    assert raw.count(b"NAMEX") == 2 and raw.count(b"NAMEY") == 1
+    path = tmp_path / "bad_utf8.onnx"
+    path.write_bytes(raw.replace(b"NAMEX", b"\xe3AMEX").replace(b"NAMEY", b"\xffAMEY"))
+    loaded = load_model(path)
+    first, second = loaded.graph.nodes
+    assert first.name == "\\xffAMEY" and first.outputs[0].name == "\\xe3AMEX"
+    assert second.inputs[0].name == "\\xe3AMEX" and second.outputs[0].shape == (1, 4)
+    assert any("not valid UTF-8" in w for w in loaded.warnings)

@@ -36,6 +36,7 @@ from gate.model.convert import (
     graph_symbolic_dims,
 )
 from gate.model.graph import Graph, LoadedModel
+from gate.model.text import repair_text_fields
 
 # Files at least this large go through the path-based shape inference (protobuf's
 # in-memory serialisation limit is 2 GiB).
@@ -56,6 +57,10 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     proto = _parse(text_path)
     _validate(proto, text_path)
     warnings = list(external_data_warnings(proto.graph, Path(text_path).resolve().parent))
+    repaired = repair_text_fields(proto)
+    if repaired:
+        warnings.append(f"{repaired} name(s) in the model are not valid UTF-8; they are shown "
+                        "with \\xNN escapes (re-export the model to fix them)")
     declared = collect_symbolic_dims(proto.graph)
     drop_weight_values(proto.graph)
     unused = sorted(set(bindings) - declared)

@@ -1,0 +1,85 @@
+"""Repair text fields that are not valid UTF-8, so no name reaches a report as bytes.
+
+ONNX's protobuf schema (proto2) lets string fields hold any bytes; protobuf's
+Python runtime then hands them back as ``bytes``. A mutated or hand-edited file
+can carry such a node or tensor name. Names are only labels (and links between
+nodes, which stay consistent because every occurrence is decoded the same
+way), so we decode them with visible ``\\xNN`` escapes instead of refusing the
+model, and the loader says how many it repaired.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator, MutableSequence
+
+import onnx
+
+
+def repair_text_fields(model: onnx.ModelProto) -> int:
+    """Decode every bytes-valued name in ``model`` in place; returns how many were repaired."""
+    repaired = 0
+    for holder, field in _text_fields(model):
+        value = getattr(holder, field)
+        if isinstance(value, bytes):
+            setattr(holder, field, _decode(value))
+            repaired += 1
+    for repeated in _repeated_text_fields(model):
+        for i, value in enumerate(repeated):
+            if isinstance(value, bytes):
+                repeated[i] = _decode(value)
+                repaired += 1
+    return repaired
+
+
+def _decode(value: bytes) -> str:
+    return value.decode("utf-8", errors="backslashreplace")
+
+
+def _graphs(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
+    stack = [graph]
+    while stack:  # iterative: nesting depth is bounded by protobuf, not by our stack
+        current = stack.pop()
+        yield current
+        for node in current.node:
+            for attribute in node.attribute:
+                if attribute.type == onnx.AttributeProto.GRAPH:
+                    stack.append(attribute.g)
+                elif attribute.type == onnx.AttributeProto.GRAPHS:
+                    stack.extend(attribute.graphs)
+
+
+def _text_fields(model: onnx.ModelProto) -> Iterator[tuple[object, str]]:
+    yield model, "producer_name"
+    yield model, "producer_version"
+    for opset in model.opset_import:
+        yield opset, "domain"
+    for graph in _graphs(model.graph):
+        yield graph, "name"
+        for node in graph.node:
+            yield node, "name"
+            yield node, "op_type"
+            yield node, "domain"
+        for value in (*graph.input, *graph.output, *graph.value_info):
+            yield value, "name"
+        for tensor in graph.initializer:
+            yield tensor, "name"
+    for function in model.functions:
+        yield function, "name"
+        yield function, "domain"
+        for node in function.node:
+            yield node, "name"
+            yield node, "op_type"
+            yield node, "domain"
+
+
+def _repeated_text_fields(model: onnx.ModelProto) -> Iterator[MutableSequence[str]]:
+    for graph in _graphs(model.graph):
+        for node in graph.node:
+            yield node.input
+            yield node.output
+    for function in model.functions:
+        yield function.input
+        yield function.output
+        for node in function.node:
+            yield node.input
+            yield node.output
