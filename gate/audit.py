@@ -27,6 +27,7 @@ from typing import Any, TextIO
 
 from gate import __version__
 from gate.errors import InputError, RoofgateError
+from gate.outfile import open_output
 from gate.records import RunRecord, run_from_dict, run_to_dict
 from gate.result import GateResult, ModelError, result_from_dict, result_to_dict
 
@@ -225,12 +226,8 @@ def write_shard(path: str, result: GateResult, index: int, count: int,
                 models: Sequence[str]) -> None:
     data = json.dumps(shard_to_dict(result, index, count, models), indent=1, sort_keys=True,
                       allow_nan=False)
-    target = Path(path)
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        target.write_text(data + "\n", encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"cannot write the shard result ({exc.strerror})", path) from None
+    with open_output(path, "shard result") as stream:
+        stream.write(data + "\n")
 
 
 def read_shards(paths: Sequence[str]) -> GateResult:

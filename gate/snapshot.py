@@ -29,10 +29,10 @@ import json
 import math
 import os
 from collections.abc import Iterable, Mapping, Sequence
-from pathlib import Path
 from typing import Any
 
 from gate.errors import InputError, InternalError
+from gate.outfile import open_output
 from gate.records import RunRecord, run_from_dict, run_to_dict
 
 SNAPSHOT_FORMAT = "roofgate-snapshot"
@@ -99,22 +99,8 @@ def dumps_snapshot(runs: Iterable[RunRecord]) -> str:
 def write_snapshot(runs: Iterable[RunRecord], path: str) -> None:
     """Write a snapshot to ``path`` ('-' = stdout); a file is replaced atomically."""
     text = dumps_snapshot(runs)
-    if path == "-":
-        import sys
-
-        sys.stdout.write(text)
-        return
-    target = Path(path)
-    partial = target.with_name(f".{target.name}.partial")
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        partial.write_text(text, encoding="utf-8", newline="\n")
-        os.replace(partial, target)
-    except OSError as exc:
-        raise InputError(f"cannot write the baseline snapshot ({exc.strerror})", path) from None
-    finally:
-        if partial.exists():
-            partial.unlink()
+    with open_output(path, "baseline snapshot") as stream:
+        stream.write(text)
 
 
 def read_snapshot(path: str) -> tuple[RunRecord, ...]:

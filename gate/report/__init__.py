@@ -9,15 +9,12 @@ half-written file is removed if the reporter fails.
 from __future__ import annotations
 
 import importlib
-import os
-import sys
 from collections.abc import Callable
-from pathlib import Path
 from typing import Protocol, TextIO, TypeVar
 
 import click
 
-from gate.errors import InputError
+from gate.outfile import open_output
 from gate.result import GateResult
 
 # One module per format; each defines ``REPORTER``.
@@ -45,24 +42,8 @@ def all_reporters() -> list[Reporter]:
 
 def write_report(reporter: Reporter, result: GateResult, path: str) -> None:
     """Write one report to ``path`` ('-' = stdout), atomically for files."""
-    if path == "-":
-        reporter.write(result, sys.stdout)
-        return
-    target = Path(path)
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise InputError(f"cannot create the folder for this report ({exc.strerror})", path) from None
-    partial = target.with_name(f".{target.name}.partial")
-    try:
-        with open(partial, "w", encoding="utf-8", newline="\n") as stream:
-            reporter.write(result, stream)
-        os.replace(partial, target)
-    except OSError as exc:
-        raise InputError(f"cannot write the {reporter.name} report ({exc.strerror})", path) from None
-    finally:
-        if partial.exists():
-            partial.unlink()
+    with open_output(path, f"{reporter.name} report") as stream:
+        reporter.write(result, stream)
 
 
 def write_reports(result: GateResult, paths: dict[str, str | None]) -> list[str]:
