@@ -123,13 +123,8 @@ def read_snapshot(path: str) -> tuple[RunRecord, ...]:
 
 def loads_snapshot(text: str, path: str = "<snapshot>") -> tuple[RunRecord, ...]:
     """Parse snapshot text (``path`` only names it in messages)."""
-    try:
-        data = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"not a roofgate snapshot (invalid JSON at line {exc.lineno}, "
-                         f"column {exc.colno}: {exc.msg})", path) from None
-    check_format(data, SNAPSHOT_FORMAT, SNAPSHOT_VERSION, path,
-                 remedy="regenerate it with `roofgate baseline`")
+    data = load_versioned_json(text, path, "snapshot", SNAPSHOT_FORMAT, SNAPSHOT_VERSION,
+                               remedy="regenerate it with `roofgate baseline`")
     runs_data = data.get("runs")
     if not isinstance(runs_data, list):
         raise InputError("snapshot has no 'runs' list; regenerate it with `roofgate baseline`",
@@ -137,6 +132,18 @@ def loads_snapshot(text: str, path: str = "<snapshot>") -> tuple[RunRecord, ...]
     runs = tuple(_run_from(item, index, path) for index, item in enumerate(runs_data))
     _refuse_duplicates([r.key for r in runs], path)
     return runs
+
+
+def load_versioned_json(text: str, path: str, what: str, expected_format: str,
+                        supported_version: int, *, remedy: str) -> Mapping[str, Any]:
+    """Parse a versioned roofgate JSON document (snapshot, result), refusing others clearly."""
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"not a roofgate {what} (invalid JSON at line {exc.lineno}, "
+                         f"column {exc.colno}: {exc.msg})", path) from None
+    check_format(data, expected_format, supported_version, path, remedy=remedy)
+    return data  # type: ignore[no-any-return]  # check_format proved it is a mapping
 
 
 def check_format(data: Any, expected_format: str, supported_version: int, path: str,

@@ -18,12 +18,11 @@ and add a line here and in docs/reports.md):
 
 from __future__ import annotations
 
-import json
 from typing import Any, TextIO
 
 from gate.errors import InputError
 from gate.result import GateResult, result_from_dict, result_to_dict
-from gate.snapshot import canonical_json, check_format
+from gate.snapshot import canonical_json, load_versioned_json
 
 RESULT_FORMAT = "roofgate-result"
 RESULT_VERSION = 1
@@ -52,13 +51,8 @@ def render(result: GateResult) -> str:
 
 def loads_result(text: str, path: str = "<result>") -> GateResult:
     """Parse a JSON result document (``path`` only names it in messages)."""
-    try:
-        data = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"not a roofgate result (invalid JSON at line {exc.lineno}: "
-                         f"{exc.msg})", path) from None
-    check_format(data, RESULT_FORMAT, RESULT_VERSION, path,
-                 remedy="rerun roofgate with this version to write it again")
+    data = load_versioned_json(text, path, "result", RESULT_FORMAT, RESULT_VERSION,
+                               remedy="rerun roofgate with this version to write it again")
     try:
         return result_from_dict(data["result"])
     except (KeyError, TypeError, ValueError, AttributeError) as exc:
