@@ -218,26 +218,28 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
     for layer in layers:
         if rule.check_params and not layer.params_fit:
             value = layer.metrics.get("param_bytes", 0)
-            text = (f"{_layer_label(layer)}: parameters {fmt_bytes(value)} exceed the "
-                    f"{fmt_bytes(param_buffer)} parameter buffer of {head.target}")
-            breaches.append(Breach(
-                layer.name, "param_bytes", value, param_buffer,
-                f"{text}: {remedy}.", text,
-                f"{layer.name} {fmt_bytes(value)}", _ratio(value, param_buffer, False)))
+            breaches.append(_buffer_breach(layer, "param_bytes", value, "parameters",
+                                           param_buffer, "parameter", head.target, remedy))
         if rule.check_activations and not layer.activations_fit:
             value = layer.metrics.get("input_bytes", 0) + layer.metrics.get("output_bytes", 0)
-            text = (f"{_layer_label(layer)}: input and output activations {fmt_bytes(value)} "
-                    f"exceed the {fmt_bytes(act_buffer)} activation buffer of {head.target}")
-            breaches.append(Breach(
-                layer.name, "activation_bytes", value, act_buffer,
-                f"{text}: {remedy}.", text,
-                f"{layer.name} {fmt_bytes(value)}", _ratio(value, act_buffer, False)))
+            breaches.append(_buffer_breach(layer, "activation_bytes", value,
+                                           "input and output activations", act_buffer,
+                                           "activation", head.target, remedy))
     what = {(True, True): "parameters and activations", (True, False): "parameters",
             (False, True): "activations"}[(rule.check_params, rule.check_activations)]
     fail_what = what.replace(" and ", " or ")
     return Outcome(tuple(breaches), len(layers), f"whose {fail_what} do not fit on-chip buffers",
                    f"{len(layers)} layer{'s' if len(layers) != 1 else ''} checked, {what} fit "
                    "on-chip buffers")
+
+
+def _buffer_breach(layer: LayerRecord, metric: str, value: Metric, what: str, buffer: Metric,
+                   buffer_kind: str, target: str, remedy: str) -> Breach:
+    """One layer whose ``what`` (``value`` bytes) exceed the target's ``buffer_kind`` buffer."""
+    text = (f"{_layer_label(layer)}: {what} {fmt_bytes(value)} exceed the "
+            f"{fmt_bytes(buffer)} {buffer_kind} buffer of {target}")
+    return Breach(layer.name, metric, value, buffer, f"{text}: {remedy}.", text,
+                  f"{layer.name} {fmt_bytes(value)}", _ratio(value, buffer, False))
 
 
 def check_max_unmodelled(rule: Rule, head: RunRecord, base: RunRecord | None,
