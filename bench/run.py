@@ -22,8 +22,9 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 HERE = Path(__file__).resolve().parent
 TARGET = "ws-64x64-4mib"
@@ -228,8 +229,8 @@ def bench_weights(work: Path, runs: int, quick: bool) -> list[str]:
 
 def _chain_model(nodes: int):  # -> onnx.ModelProto
     """A chain of small Conv / Relu / Add layers, ``nodes`` long."""
-    from onnx import TensorProto, helper, numpy_helper
     import numpy as np
+    from onnx import TensorProto, helper, numpy_helper
 
     weight = numpy_helper.from_array(np.zeros((8, 8, 1, 1), np.float32), "w")
     graph_nodes, x = [], "x"

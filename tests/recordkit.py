@@ -88,7 +88,7 @@ def _sum_metric(layers: tuple[LayerRecord, ...], name: str) -> int | float:
 
 
 def finding(layer_name: str | None = "head/gemm", *, metric: str = "param_bytes",
-            value: int | float = 5_000_000, limit: int | float = 4_194_304,
+            value: float = 5_000_000, limit: float = 4_194_304,
             status: str = FAIL, waiver_reason: str = "", waiver_expires: str = "",
             message: str = "") -> Finding:
     where = f"layer '{layer_name}'" if layer_name else "the model"

@@ -17,7 +17,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from gate.report.annotations import (
-    MAX_PER_KIND, REPORTER, command, escape_data, escape_property, render,
+    MAX_PER_KIND,
+    REPORTER,
+    command,
+    escape_data,
+    escape_property,
+    render,
 )
 from gate.result import FAIL, ModelError
 from tests.recordkit import HOSTILE_NAME, demo_result, entry, finding, result, run, verdict

@@ -11,9 +11,9 @@ from __future__ import annotations
 import json
 import os
 from pathlib import Path
+from xml.etree import ElementTree
 
 import pytest
-from xml.etree import ElementTree
 from click.testing import CliRunner
 
 from gate.cli import cli

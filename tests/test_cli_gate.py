@@ -10,8 +10,7 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-import gate.cli.gate_cmd as gate_cmd
-from gate.cli import cli
+from gate.cli import cli, gate_cmd
 from gate.report.markdown import MARKER
 from gate.synth.builder import save_model
 from gate.synth.scenario import SPECIES_PR_LAST_WIDTH, species, wakeword

@@ -5,13 +5,14 @@ from __future__ import annotations
 import csv
 import io
 import json
+from collections.abc import Callable
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import onnx
 import pytest
 from click.testing import CliRunner
+from loadkit import chain, deeply_nested_if, model, save, small_cnn, vi
 from onnx import helper, numpy_helper
 
 from gate.cli import cli
@@ -19,7 +20,6 @@ from gate.cli.profile_render import CSV_FIELDS, CSV_TARGET_FIELDS
 from gate.model.loader import load_model
 from gate.profile import profile_model
 from gate.targets import builtin_target_names
-from loadkit import chain, deeply_nested_if, model, save, small_cnn, vi
 
 
 def _run(*args: str):

@@ -7,8 +7,14 @@ from pathlib import Path
 import pytest
 
 from gate.config import (
-    DEFAULT_MODEL_GLOB, Overrides, glob_match, glob_problem, load_config, parse_dim_bindings,
-    resolve_file, resolve_target,
+    DEFAULT_MODEL_GLOB,
+    Overrides,
+    glob_match,
+    glob_problem,
+    load_config,
+    parse_dim_bindings,
+    resolve_file,
+    resolve_target,
 )
 from gate.errors import ConfigError
 

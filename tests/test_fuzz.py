@@ -15,6 +15,7 @@ import os
 from collections import Counter
 from pathlib import Path
 
+import numpy as np
 import onnx
 import pytest
 import yaml
@@ -22,7 +23,6 @@ from click.testing import CliRunner
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
-import numpy as np
 
 from gate.cli import cli
 

@@ -29,9 +29,9 @@ import pytest
 from click.testing import CliRunner, Result
 from onnx import TensorProto, helper, numpy_helper
 
-import gate.ops.registry as registry
-import gate.pipeline as pipeline
+from gate import pipeline
 from gate.cli import cli
+from gate.ops import registry
 from tests.gitkit import Repo
 from tests.loadkit import deeply_nested_if, model, save, small_cnn, vi, weight
 from tests.recordkit import HOSTILE_NAME

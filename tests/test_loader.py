@@ -9,13 +9,13 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
+from loadkit import chain, deeply_nested_if, loop_model, model, save, small_cnn, vi, weight
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
 import gate.model.loader as loader_module
 from gate.errors import InputError
 from gate.model.loader import load_model
-from loadkit import (chain, deeply_nested_if, loop_model, model, save, small_cnn, vi, weight)
 
 
 def _shapes_by_name(loaded) -> dict[str, tuple]:

@@ -9,7 +9,7 @@ from math import prod
 import onnx
 import pytest
 
-import gate.pipeline as pipeline
+from gate import pipeline
 from gate.errors import InputError, RoofgateError
 from gate.pipeline import analyse, judge
 from gate.policy import load_policy

@@ -9,14 +9,14 @@ import onnx
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from loadkit import chain, loop_model, model, save, small_cnn, vi, weight
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-import gate.ops.registry as registry
 from gate.errors import InputError, InternalError
 from gate.model.loader import load_model
+from gate.ops import registry
 from gate.profile import profile_model
-from loadkit import chain, loop_model, model, save, small_cnn, vi, weight
 
 
 def _profile(proto: onnx.ModelProto, folder: Path, precision: str | None = None, **dims: int):

@@ -9,7 +9,12 @@ import pytest
 
 from gate.errors import InputError
 from gate.report.jsonout import (
-    REPORTER, RESULT_FORMAT, RESULT_VERSION, loads_result, read_result, render,
+    REPORTER,
+    RESULT_FORMAT,
+    RESULT_VERSION,
+    loads_result,
+    read_result,
+    render,
 )
 from gate.result import result_to_dict
 from tests.recordkit import HOSTILE_NAME, demo_result, result

@@ -16,7 +16,14 @@ import xml.etree.ElementTree as ET
 from gate.report.junit import REPORTER, render
 from gate.result import FAIL, ModelError
 from tests.recordkit import (
-    assert_golden, demo_result, entry, finding, layer, result, run, verdict,
+    assert_golden,
+    demo_result,
+    entry,
+    finding,
+    layer,
+    result,
+    run,
+    verdict,
 )
 
 

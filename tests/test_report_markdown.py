@@ -13,7 +13,15 @@ import re
 from gate.report.markdown import COMMENT_LIMIT_CHARS, MARKER, comment_size, render
 from gate.result import FAIL, GateResult, ModelError
 from tests.recordkit import (
-    HOSTILE_NAME, assert_golden, demo_result, entry, finding, layer, result, run, verdict,
+    HOSTILE_NAME,
+    assert_golden,
+    demo_result,
+    entry,
+    finding,
+    layer,
+    result,
+    run,
+    verdict,
 )
 
 _UNESCAPED_PIPE = re.compile(r"(?<!\\)\|")

@@ -10,7 +10,11 @@ import pytest
 from gate.diff import diff_runs, same_value
 from gate.errors import InputError, InternalError
 from gate.snapshot import (
-    SNAPSHOT_VERSION, canonical_json, dumps_snapshot, loads_snapshot, read_snapshot,
+    SNAPSHOT_VERSION,
+    canonical_json,
+    dumps_snapshot,
+    loads_snapshot,
+    read_snapshot,
     write_snapshot,
 )
 from tests.recordkit import HOSTILE_NAME, layer, run

@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 import resource
+from collections.abc import Callable
 from datetime import date
 from pathlib import Path
-from typing import Callable
 
 import pytest
 
@@ -112,7 +112,7 @@ def test_wrong_types_are_reported_with_line_and_key(text: str, getter: Callable[
 def test_unknown_keys_get_did_you_mean_and_nested_key_paths() -> None:
     text = "name: x\nclok: 1 GHz\nrules:\n  - id: a\n    severty: error\n"
 
-    def read(root):  # noqa: ANN001, ANN202
+    def read(root):
         root.get_str("name")
         root.get_quantity("clock", "Hz")
         for rule in root.get_sections("rules"):
@@ -132,7 +132,7 @@ def test_duplicate_keys_are_errors_not_last_one_wins() -> None:
     # PyYAML's safe_load silently keeps the last value; the reader must refuse instead.
     text = "a: 1\nb: 2\na: 3\nsub:\n  x: 1\n  x: 2\n"
 
-    def read(root):  # noqa: ANN001, ANN202
+    def read(root):
         root.get_int("a")
         root.get_int("b")
         sub = root.get_section("sub")
@@ -166,7 +166,7 @@ def _billion_laughs(levels: int) -> bytes:
     lambda r: r.get_sections("bomb"),
     lambda r: [r.get_str_list(f"a{i}") for i in range(9)],
 ])
-def test_billion_laughs_is_refused_quickly_and_without_memory(getter) -> None:  # noqa: ANN001
+def test_billion_laughs_is_refused_quickly_and_without_memory(getter) -> None:
     # The YAML form of the "billion laughs" entity-expansion attack (known from XML, CVE-2003-1564
     # class): nine nested anchors of ten references each would expand to 10**9 leaves.
     before_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
@@ -197,7 +197,7 @@ def test_self_referencing_anchor_does_not_hang() -> None:
     assert _expand(doc, doc.root) == MAX_NODES_VISITED - 2  # two visits charged by the getter
 
 
-def _expand(doc, node) -> int:  # noqa: ANN001
+def _expand(doc, node) -> int:
     """Walk every node as a naive recursive reader would, charging the budget; nodes visited."""
     stack, visited = [node], 0
     while stack:
