@@ -14,7 +14,18 @@ from gate.model.graph import TensorInfo
 from gate.ops import Unmodelled, cost_function_for, modelled_op_types
 from tests.opkit import graph, node
 
-REQUIRED = ["Conv", "ConvTranspose", "Gemm", "MatMul", "Einsum", "LSTM", "GRU", "RNN", "BatchNormalization", "LayerNormalization", "InstanceNormalization", "Softmax", "MaxPool", "AveragePool", "GlobalAveragePool", "GlobalMaxPool", "ReduceSum", "ReduceMean", "ReduceMax", "Resize", "Reshape", "Transpose", "Concat", "Split", "Slice", "Gather", "Pad", "Expand", "Flatten", "Squeeze", "Unsqueeze", "QLinearConv", "QLinearMatMul", "ConvInteger", "MatMulInteger", "QuantizeLinear", "DequantizeLinear", "Constant", "If", "Loop", "Scan", "Add", "Sub", "Mul", "Div", "Pow", "Max", "Min", "Sum", "Mean", "Relu", "LeakyRelu", "PRelu", "Sigmoid", "Tanh", "HardSigmoid", "HardSwish", "Gelu", "Erf", "Exp", "Log", "Sqrt", "Reciprocal", "Neg", "Abs", "Clip", "Elu", "Selu", "Softplus", "Softsign", "Sign", "Floor", "Ceil", "Round", "Where", "Equal", "Less", "Greater", "Not", "And", "Or", "Cast"]
+REQUIRED = [
+    "Conv", "ConvTranspose", "Gemm", "MatMul", "Einsum", "LSTM", "GRU", "RNN",
+    "BatchNormalization", "LayerNormalization", "InstanceNormalization", "Softmax", "MaxPool",
+    "AveragePool", "GlobalAveragePool", "GlobalMaxPool", "ReduceSum", "ReduceMean",
+    "ReduceMax", "Resize", "Reshape", "Transpose", "Concat", "Split", "Slice", "Gather", "Pad",
+    "Expand", "Flatten", "Squeeze", "Unsqueeze", "QLinearConv", "QLinearMatMul", "ConvInteger",
+    "MatMulInteger", "QuantizeLinear", "DequantizeLinear", "Constant", "If", "Loop", "Scan",
+    "Add", "Sub", "Mul", "Div", "Pow", "Max", "Min", "Sum", "Mean", "Relu", "LeakyRelu",
+    "PRelu", "Sigmoid", "Tanh", "HardSigmoid", "HardSwish", "Gelu", "Erf", "Exp", "Log",
+    "Sqrt", "Reciprocal", "Neg", "Abs", "Clip", "Elu", "Selu", "Softplus", "Softsign", "Sign",
+    "Floor", "Ceil", "Round", "Where", "Equal", "Less", "Greater", "Not", "And", "Or", "Cast"
+]
 
 
 def test_at_least_sixty_op_types():
