@@ -152,8 +152,8 @@ def assert_fully_modelled(path: str) -> None:
 def bench_demo(work: Path, runs: int, quick: bool) -> list[str]:
     """6. The README's main job, `roofgate demo`, end to end (the issue's budget: 1 minute)."""
     m = measure("cli", ["demo", "--keep", str(work / "demo")], 1)
-    return [f"| 6 | `roofgate demo` end to end (absolute) | {m['seconds']:.1f} s, "
-            f"{mib(m['peak_bytes'])} | - | < 60 s on 2 cores |"]
+    return [(f"| 6 | `roofgate demo` end to end (absolute) | {m['seconds']:.1f} s, "
+            f"{mib(m['peak_bytes'])} | - | < 60 s on 2 cores |")]
 
 
 def bench_floor(work: Path, runs: int, quick: bool) -> list[str]:
@@ -169,8 +169,8 @@ def bench_floor(work: Path, runs: int, quick: bool) -> list[str]:
     gate = measure("cli", ["gate", path, "--target", TARGET, "--policy", POLICY,
                            "--json", str(work / "gate.json")], runs)
     label = "ResNet-18" if quick else "ResNet-50"
-    rows = [f"| 1 | {label} inline weights: floor (onnx.load + shape inference) | "
-            f"{floor['seconds']:.2f} s, {mib(floor['peak_bytes'])} | 1.00x | |"]
+    rows = [(f"| 1 | {label} inline weights: floor (onnx.load + shape inference) | "
+            f"{floor['seconds']:.2f} s, {mib(floor['peak_bytes'])} | 1.00x | |")]
     for name, m in (("`roofgate profile` (1 target)", profile),
                     ("`roofgate gate` (1 target, 1 policy)", gate)):
         rows.append(f"| 1 | {name} | {m['seconds']:.2f} s, {mib(m['peak_bytes'])} | "
@@ -220,11 +220,11 @@ def bench_weights(work: Path, runs: int, quick: bool) -> list[str]:
     m_small = measure("cli", ["profile", small, *args], runs, env)
     m_big = measure("cli", ["profile", big, *args], runs, env)
     opened = m_small["opened"] + m_big["opened"]
-    return [f"| 2 | external weights 4 KiB vs 4 GiB (`roofgate profile`) | "
+    return [(f"| 2 | external weights 4 KiB vs 4 GiB (`roofgate profile`) | "
             f"{m_small['seconds']:.3f} s vs {m_big['seconds']:.3f} s | "
             f"time {ratio(m_big['seconds'], m_small['seconds'])}, "
             f"memory {ratio(m_big['peak_bytes'], m_small['peak_bytes'])}; "
-            f"data file opened: {'YES ' + ', '.join(opened) if opened else 'never'} | <= 1.1x |"]
+            f"data file opened: {'YES ' + ', '.join(opened) if opened else 'never'} | <= 1.1x |")]
 
 
 def _chain_model(nodes: int):  # -> onnx.ModelProto
@@ -300,10 +300,10 @@ def bench_zoo(work: Path, runs: int, quick: bool) -> list[str]:
                              "--json", str(work / "merged.json")], runs)["seconds"]
     same = (work / "a1.json").read_bytes() == (work / "merged.json").read_bytes()
     return [
-        f"| 4 | zoo audit -j 1 vs -j 2 | {j1['seconds']:.2f} s vs {j2['seconds']:.2f} s | "
-        f"speed-up {ratio(j1['seconds'], j2['seconds'])} | > 1x (judging and reports stay serial) |",
-        f"| 4 | 4 shards (sum) + merge vs unsharded -j 1 | {shards:.2f} s + {merged:.2f} s | "
-        f"{ratio(shards + merged, j1['seconds'])}; merged JSON identical: {same} | ~1x, identical |",
+        (f"| 4 | zoo audit -j 1 vs -j 2 | {j1['seconds']:.2f} s vs {j2['seconds']:.2f} s | "
+        f"speed-up {ratio(j1['seconds'], j2['seconds'])} | > 1x (judging and reports stay serial) |"),
+        (f"| 4 | 4 shards (sum) + merge vs unsharded -j 1 | {shards:.2f} s + {merged:.2f} s | "
+        f"{ratio(shards + merged, j1['seconds'])}; merged JSON identical: {same} | ~1x, identical |"),
     ]
 
 
@@ -320,8 +320,8 @@ def bench_targets(work: Path, runs: int, quick: bool) -> list[str]:
     one = measure("cli", ["profile", path, "--target", names[0], "--format", "json"], runs)
     args = [a for name in eight for a in ("--target", name)]
     many = measure("cli", ["profile", path, *args, "--format", "json"], runs)
-    return [f"| 5 | ResNet-18 on 1 vs 8 targets | {one['seconds']:.2f} s vs {many['seconds']:.2f} s | "
-            f"{ratio(many['seconds'], one['seconds'])} | well under 8x (load once) |"]
+    return [(f"| 5 | ResNet-18 on 1 vs 8 targets | {one['seconds']:.2f} s vs {many['seconds']:.2f} s | "
+            f"{ratio(many['seconds'], one['seconds'])} | well under 8x (load once) |")]
 
 
 def main() -> None:

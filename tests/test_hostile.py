@@ -476,16 +476,16 @@ def test_alias_bomb_policy_is_refused_without_expanding(tmp_path, case) -> None:
 YAML_CASES = {
     "syntax": ("version: 1\nname: x\nrules:\n  - {id: a, kind: fits_in_buffer\n",
                ":5:", "syntax error"),
-    "wrong-type": ("version: 1\nname: x\nrules:\n  - id: a\n    kind: fits_in_buffer\n"
-                   "    check: params\n    severity: 3\n", ":7: rules[0].severity:",
+    "wrong-type": (("version: 1\nname: x\nrules:\n  - id: a\n    kind: fits_in_buffer\n"
+                   "    check: params\n    severity: 3\n"), ":7: rules[0].severity:",
                    "not one of error, warning"),
-    "unknown-key": ("version: 1\nname: x\nrules:\n  - id: a\n    kind: fits_in_buffer\n"
-                    "    chek: params\n", ":6: rules[0].chek:", "did you mean 'check'?"),
-    "duplicate-rule-id": ("version: 1\nname: x\nrules:\n  - {id: a, kind: fits_in_buffer, "
-                          "check: params}\n  - {id: a, kind: fits_in_buffer, check: both}\n",
+    "unknown-key": (("version: 1\nname: x\nrules:\n  - id: a\n    kind: fits_in_buffer\n"
+                    "    chek: params\n"), ":6: rules[0].chek:", "did you mean 'check'?"),
+    "duplicate-rule-id": (("version: 1\nname: x\nrules:\n  - {id: a, kind: fits_in_buffer, "
+                          "check: params}\n  - {id: a, kind: fits_in_buffer, check: both}\n"),
                           ":5: rules[1].id:", "duplicate rule id 'a'"),
-    "python-tag": ("version: 1\nname: !!python/object/apply:os.system [\"exit 1\"]\n"
-                   "rules: []\n", ":2: name:", "expected a single value"),
+    "python-tag": (("version: 1\nname: !!python/object/apply:os.system [\"exit 1\"]\n"
+                   "rules: []\n"), ":2: name:", "expected a single value"),
     "non-utf8": (b"version: 1\nname: caf\xe9\nrules: []\n", ":2:", "save the file as UTF-8"),
     "not-a-mapping": ("- just\n- a list\n", ":1:", "mapping"),
     "nul-character": ("version: 1\nname: x\x00\nrules: []\n", ":2:", "remove it"),
@@ -495,8 +495,8 @@ YAML_CASES = {
                          "less nesting"),
     "too-large": ("version: 1\nname: x\n" + "#" * (5 * 1024 * 1024) + "\nrules: []\n", "",
                   "is it YAML?"),
-    "unitless-quantity": ("version: 1\nname: x\nrules:\n  - {id: a, kind: metric_limit, "
-                          "metric: macs, max: lots}\n", ":4: rules[0].max:", "expected a number"),
+    "unitless-quantity": (("version: 1\nname: x\nrules:\n  - {id: a, kind: metric_limit, "
+                          "metric: macs, max: lots}\n"), ":4: rules[0].max:", "expected a number"),
     "nan-threshold": ("version: 1\nname: x\nrules:\n  - {id: a, kind: max_latency, max: .nan}\n",
                       ":4: rules[0].max:", "finite"),
 }

@@ -114,9 +114,9 @@ BAD_POLICIES = [
     ("typo in the kind", """
         rules:
           - {id: a, kind: max_latncy, max: 5 ms}
-     """, [":3: rules[0].kind: 'max_latncy' is not one of min_utilization, max_param_dram, "
+     """, [(":3: rules[0].kind: 'max_latncy' is not one of min_utilization, max_param_dram, "
            "fits_in_buffer, max_latency, max_energy, max_regression, max_unmodelled, metric_limit "
-           "(did you mean 'max_latency'?)"]),
+           "(did you mean 'max_latency'?)")]),
     ("key of another kind", """
         rules:
           - {id: a, kind: fits_in_buffer, max: 1 MiB}
@@ -143,35 +143,35 @@ BAD_POLICIES = [
     ("unknown metric with suggestion", """
         rules:
           - {id: a, kind: max_regression, metric: latency, max_increase_pct: 5}
-     """, [":3: rules[0].metric: unknown model metric 'latency' (did you mean 'latency_s'?); "
-           "docs/policies.md lists the metrics"]),
+     """, [(":3: rules[0].metric: unknown model metric 'latency' (did you mean 'latency_s'?); "
+           "docs/policies.md lists the metrics")]),
     ("layer metric at model level", """
         rules:
           - {id: a, kind: metric_limit, metric: bound, max: 1}
           - {id: b, kind: metric_limit, metric: input_bytes, max: 1 MiB}
      """, [":3: rules[0].metric: unknown model metric 'bound'; docs/policies.md lists the metrics",
-           ":4: rules[1].metric: unknown model metric 'input_bytes' (it is a layer metric: set "
-           "level); docs/policies.md lists the metrics"]),
+           (":4: rules[1].metric: unknown model metric 'input_bytes' (it is a layer metric: set "
+           "level); docs/policies.md lists the metrics")]),
     ("regression in the wrong direction", """
         rules:
           - {id: a, kind: max_regression, metric: utilization, max_increase_pct: 5}
           - {id: b, kind: max_regression, metric: latency_s, max_decrease_pct: 5}
-     """, [":3: rules[0].max_increase_pct: 'utilization' is better higher, so its regression is a "
-           "decrease: use 'max_decrease_pct'",
-           ":3: rules[0].metric: give 'max_decrease_pct' and/or 'max_decrease_abs' for "
-           "'utilization'",
-           ":4: rules[1].max_decrease_pct: 'latency_s' is better lower, so its regression is "
-           "an increase: use 'max_increase_pct'",
-           ":4: rules[1].metric: give 'max_increase_pct' and/or 'max_increase_abs' for "
-           "'latency_s'"]),
+     """, [(":3: rules[0].max_increase_pct: 'utilization' is better higher, so its regression is a "
+           "decrease: use 'max_decrease_pct'"),
+           (":3: rules[0].metric: give 'max_decrease_pct' and/or 'max_decrease_abs' for "
+           "'utilization'"),
+           (":4: rules[1].max_decrease_pct: 'latency_s' is better lower, so its regression is "
+           "an increase: use 'max_increase_pct'"),
+           (":4: rules[1].metric: give 'max_increase_pct' and/or 'max_increase_abs' for "
+           "'latency_s'")]),
     ("layer keys on a model rule", """
         rules:
           - {id: a, kind: max_latency, max: 5 ms, layers: [conv1], min_layer_macs: 1}
           - {id: b, kind: min_utilization, min: 0.3, min_layer_macs: 1M}
      """, [":3: rules[0].layers: 'layers' applies only to rules with level: layer",
            ":3: rules[0].min_layer_macs: unknown key (did you mean 'layers'?)",
-           ":4: rules[1].min_layer_macs: 'min_layer_macs' applies only to rules with level: "
-           "layer"]),
+           (":4: rules[1].min_layer_macs: 'min_layer_macs' applies only to rules with level: "
+           "layer")]),
     ("fixed levels", """
         rules:
           - {id: a, kind: fits_in_buffer, level: model}
@@ -206,13 +206,13 @@ BAD_POLICIES = [
           - {rule: lat, models: ["**"], layers: [conv1], reason: x, expires: 2027-01-01}
           - {rule: lat, models: ["**"], expires: 2027-01-01, owner: me}
      """, [":6: waivers[0].rule: no rule with id 'utl' in this policy (did you mean 'util'?)",
-           ":7: waivers[1].models: required key is missing (use '**' to waive the rule for every "
-           "model)",
+           (":7: waivers[1].models: required key is missing (use '**' to waive the rule for every "
+           "model)"),
            ":7: waivers[1].expires: expected a date like 2027-01-31, got 'soon'",
-           ":7: waivers[1].reason: a waiver needs a reason (why the rule may fail, and who "
-           "decided)",
-           ":8: waivers[2].layers: rule 'lat' checks the whole model; its waivers cannot name "
-           "layers",
+           (":7: waivers[1].reason: a waiver needs a reason (why the rule may fail, and who "
+           "decided)"),
+           (":8: waivers[2].layers: rule 'lat' checks the whole model; its waivers cannot name "
+           "layers"),
            ":9: waivers[3].reason: required key is missing",
            ":9: waivers[3].owner: unknown key"]),
     ("wrong shapes", """

@@ -183,8 +183,8 @@ KIND_CASES = [
     ("fits params fails with the CEO's example sentence",
      "- {id: fit, kind: fits_in_buffer, check: params}",
      _run(_layer("conv1"), _WIDE), None, FAIL, ["stage4/conv"],
-     ["Layer 'stage4/conv' (Conv): parameters 1.30 MiB exceed the 1.00 MiB parameter buffer "
-      "of ws-64x64-4mib: quantize to int8, split the layer"]),
+     [("Layer 'stage4/conv' (Conv): parameters 1.30 MiB exceed the 1.00 MiB parameter buffer "
+      "of ws-64x64-4mib: quantize to int8, split the layer")]),
     ("fits activations fails",
      "- {id: fit, kind: fits_in_buffer, check: activations}",
      _run(_SPILL, _WIDE), None, FAIL, ["stem/conv"],
@@ -212,16 +212,16 @@ KIND_CASES = [
      "- {id: d, kind: max_param_dram, max: 1 MiB}",
      _run(_layer("a", param_dram_bytes=MiB), _layer("b", param_dram_bytes=MiB // 2)), None,
      FAIL, [None],
-     ["Model: parameter DRAM traffic per inference 1.50 MiB exceeds the 1.00 MiB maximum "
-      "(largest: a 1.00 MiB, b 512 KiB)"]),
+     [("Model: parameter DRAM traffic per inference 1.50 MiB exceeds the 1.00 MiB maximum "
+      "(largest: a 1.00 MiB, b 512 KiB)")]),
     ("param DRAM per layer",
      "- {id: d, kind: max_param_dram, level: layer, max: 600 KiB}",
      _run(_layer("a", param_dram_bytes=MiB), _layer("b", param_dram_bytes=MiB // 2)), None,
      FAIL, ["a"], []),
     ("latency fails",
      "- {id: t, kind: max_latency, max: 1.5 ms}", _run(), None, FAIL, [None],
-     ["Model: latency per inference 2 ms exceeds the 1.5 ms maximum (largest: conv1 1 ms, "
-      "relu1 1 ms)"]),
+     [("Model: latency per inference 2 ms exceeds the 1.5 ms maximum (largest: conv1 1 ms, "
+      "relu1 1 ms)")]),
     ("latency at the limit passes",
      "- {id: t, kind: max_latency, max: 2 ms}", _run(), None, PASS, [], []),
     ("energy fails",
@@ -232,8 +232,8 @@ KIND_CASES = [
      _run(coverage_work_share=0.8, unmodelled=(UnmodelledRecord("FancyOp", "com.example", 2,
                                                                  "no cost function"),)),
      None, FAIL, [None],
-     ["Model: 20.0% of the work is in ops roofgate cannot cost, above the 5.0% maximum "
-      "(FancyOp x2: no cost function)"]),
+     [("Model: 20.0% of the work is in ops roofgate cannot cost, above the 5.0% maximum "
+      "(FancyOp x2: no cost function)")]),
     ("unmodelled node share",
      "- {id: c, kind: max_unmodelled, max_node_share: 0%, max_work_share: 50%}",
      _run(coverage_node_share=0.9, coverage_work_share=0.99), None, FAIL, [None],
@@ -241,8 +241,8 @@ KIND_CASES = [
     ("metric limit with min and max",
      "- {id: m, kind: metric_limit, level: layer, metric: act_dram_bytes, max: 1 MiB}",
      _run(_layer("a", act_dram_bytes=2 * MiB), _layer("b")), None, FAIL, ["a"],
-     ["Layer 'a' (Conv): activation DRAM traffic [act_dram_bytes] 2.00 MiB exceeds the "
-      "1.00 MiB maximum"]),
+     [("Layer 'a' (Conv): activation DRAM traffic [act_dram_bytes] 2.00 MiB exceeds the "
+      "1.00 MiB maximum")]),
     ("metric limit minimum",
      "- {id: m, kind: metric_limit, metric: inferences_per_s, min: 1000}",
      _run(inferences_per_s=500.0), None, FAIL, [None], ["is below the"]),
@@ -252,8 +252,8 @@ KIND_CASES = [
     ("model regression",
      "- {id: r, kind: max_regression, metric: latency_s, max_increase_pct: 5}",
      _run(_layer("conv1", latency_s=1.2e-3)), _run(_layer("conv1")), FAIL, [None],
-     ["Model: latency [latency_s] regressed by +0.2 ms (+20.0%), from 1 ms to 1.2 ms against the "
-      "baseline, beyond the allowed +5% (worst allowed 1.05 ms)"]),
+     [("Model: latency [latency_s] regressed by +0.2 ms (+20.0%), from 1 ms to 1.2 ms against the "
+      "baseline, beyond the allowed +5% (worst allowed 1.05 ms)")]),
     ("model regression better-higher metric",
      "- {id: r, kind: max_regression, metric: utilization, max_decrease_abs: 5%}",
      _run(utilization=0.40), _run(utilization=0.50), FAIL, [None], ["-10.0 pp"]),

@@ -172,5 +172,5 @@ def test_a_changed_layer_whose_columns_are_all_equal_names_what_did_change() -> 
     head = run(layers=(layer("stem/conv"), layer("head/merge", "Reshape", macs=0, param_bytes=0,
                                                  input_bytes=640, energy_j=1.5e-7)))
     rows = [row for row in _table_rows(render(result(entry(head, base)))) if "head/merge" in row]
-    assert rows == ["| head/merge | Reshape | changed: energy -25.0%, input size -37.5% "
-                    "| = | = | = | = |"]
+    assert rows == [("| head/merge | Reshape | changed: energy -25.0%, input size -37.5% "
+                    "| = | = | = | = |")]

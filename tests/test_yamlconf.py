@@ -69,8 +69,8 @@ def test_python_tags_are_refused_not_constructed() -> None:
     problems = _problems("x: !!python/name:os.system\nn: !!python/object/apply:os.getpid []\n",
                          lambda r: (r.get_str("x"), r.get_int("n")))
     assert problems == [
-        "conf.yaml:1: x: the tag 'tag:yaml.org,2002:python/name:os.system' is not supported; "
-        "write a plain value",
+        ("conf.yaml:1: x: the tag 'tag:yaml.org,2002:python/name:os.system' is not supported; "
+        "write a plain value"),
         "conf.yaml:2: n: expected a single value, not a list or mapping",
     ]
 
@@ -186,8 +186,8 @@ def test_recursive_reader_stops_at_the_node_budget() -> None:
     with pytest.raises(ConfigError) as info:
         doc.raise_if_problems()
     assert info.value.problems == [
-        f"bomb.yaml: document expands to more than {MAX_NODES_VISITED} nodes "
-        "(anchors/aliases nested too deeply?); write the values out plainly"]
+        (f"bomb.yaml: document expands to more than {MAX_NODES_VISITED} nodes "
+        "(anchors/aliases nested too deeply?); write the values out plainly")]
 
 
 def test_self_referencing_anchor_does_not_hang() -> None:
