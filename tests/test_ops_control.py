@@ -61,8 +61,8 @@ def test_unmodelled_body_node_names_itself():
 
 
 def test_scan_trip_count_is_the_scan_axis_length():
-    scan = node("Scan", [(1, 8), (4, 7, 8)], [(1, 8)], dict(num_scan_inputs=1,
-                scan_input_axes=[1]), subgraphs={"body": _body()})
+    scan = node("Scan", [(1, 8), (4, 7, 8)], [(1, 8)], {"num_scan_inputs": 1,
+                "scan_input_axes": [1]}, subgraphs={"body": _body()})
     work = _cost(scan)
     assert work.macs == 7 * 64 and work.gemms[0].sequential == 7
 

@@ -68,16 +68,16 @@ def _brute_force_conv(x, w, groups, strides, dilations, pads):
 def conv_configs(draw):
     rank = draw(st.integers(1, 2))
     groups = draw(st.integers(1, 3))
-    cfg = dict(
-        batch=draw(st.integers(1, 2)), groups=groups,
-        cin=groups * draw(st.integers(1, 2)), cout=groups * draw(st.integers(1, 2)),
-        size=[draw(st.integers(3, 7)) for _ in range(rank)],
-        kernel=[draw(st.integers(1, 3)) for _ in range(rank)],
-        strides=[draw(st.integers(1, 2)) for _ in range(rank)],
-        dilations=[draw(st.integers(1, 2)) for _ in range(rank)],
-        pads=[draw(st.integers(0, 2)) for _ in range(2 * rank)],
-        auto_pad=draw(st.sampled_from(["NOTSET", "SAME_UPPER", "SAME_LOWER", "VALID"])),
-    )
+    cfg = {
+        "batch": draw(st.integers(1, 2)), "groups": groups,
+        "cin": groups * draw(st.integers(1, 2)), "cout": groups * draw(st.integers(1, 2)),
+        "size": [draw(st.integers(3, 7)) for _ in range(rank)],
+        "kernel": [draw(st.integers(1, 3)) for _ in range(rank)],
+        "strides": [draw(st.integers(1, 2)) for _ in range(rank)],
+        "dilations": [draw(st.integers(1, 2)) for _ in range(rank)],
+        "pads": [draw(st.integers(0, 2)) for _ in range(2 * rank)],
+        "auto_pad": draw(st.sampled_from(["NOTSET", "SAME_UPPER", "SAME_LOWER", "VALID"])),
+    }
     for i in range(rank):
         extent = (cfg["kernel"][i] - 1) * cfg["dilations"][i] + 1
         assume(extent <= cfg["size"][i])
@@ -86,8 +86,8 @@ def conv_configs(draw):
 
 
 def _conv_attrs(cfg: dict) -> dict:
-    attrs = dict(group=cfg["groups"], strides=cfg["strides"], dilations=cfg["dilations"],
-                 kernel_shape=cfg["kernel"], auto_pad=cfg["auto_pad"])
+    attrs = {"group": cfg["groups"], "strides": cfg["strides"], "dilations": cfg["dilations"],
+                 "kernel_shape": cfg["kernel"], "auto_pad": cfg["auto_pad"]}
     if cfg["auto_pad"] == "NOTSET":
         attrs["pads"] = cfg["pads"]
     return attrs
@@ -172,7 +172,7 @@ def test_pool_size_formula_matches_onnx_shape_inference(cfg, ceil_mode, op_type)
 def test_ceil_mode_window_in_right_padding_is_dropped_per_spec():
     # ONNX MaxPool spec: "Sliding windows that would start in the right padded region
     # are ignored"; onnx.reference agrees (2), onnx 1.23 shape inference says 3.
-    attrs = dict(kernel_shape=[2], strides=[2], pads=[1, 1], ceil_mode=1)
+    attrs = {"kernel_shape": [2], "strides": [2], "pads": [1, 1], "ceil_mode": 1}
     assert _reference_output_shape("MaxPool", (1, 1, 3), attrs) == (1, 1, 2)
     assert window_output_spatial(node("MaxPool", [(1, 1, 3)], [None], attrs), [3], [2],
                                  ceil_mode=True) == (2,)
@@ -183,14 +183,14 @@ def test_ceil_mode_window_in_right_padding_is_dropped_per_spec():
 def transpose_configs(draw):
     rank = draw(st.integers(1, 2))
     groups = draw(st.integers(1, 2))
-    cfg = dict(
-        batch=draw(st.integers(1, 2)), groups=groups,
-        cin=groups * draw(st.integers(1, 2)), cout_g=draw(st.integers(1, 2)),
-        size=[draw(st.integers(2, 5)) for _ in range(rank)],
-        kernel=[draw(st.integers(1, 3)) for _ in range(rank)],
-        strides=[draw(st.integers(1, 3)) for _ in range(rank)],
-        dilations=[draw(st.integers(1, 2)) for _ in range(rank)],
-    )
+    cfg = {
+        "batch": draw(st.integers(1, 2)), "groups": groups,
+        "cin": groups * draw(st.integers(1, 2)), "cout_g": draw(st.integers(1, 2)),
+        "size": [draw(st.integers(2, 5)) for _ in range(rank)],
+        "kernel": [draw(st.integers(1, 3)) for _ in range(rank)],
+        "strides": [draw(st.integers(1, 3)) for _ in range(rank)],
+        "dilations": [draw(st.integers(1, 2)) for _ in range(rank)],
+    }
     cfg["output_padding"] = [draw(st.integers(0, s - 1)) for s in cfg["strides"]]
     cfg["pads"] = [draw(st.integers(0, k - 1)) for k in cfg["kernel"] * 2]
     return cfg
@@ -222,8 +222,8 @@ def test_conv_transpose_macs_and_size_match_reference(cfg):
     rank = len(cfg["size"])
     x = rng.standard_normal((cfg["batch"], cfg["cin"], *cfg["size"])).astype(np.float32)
     w = rng.standard_normal((cfg["cin"], cfg["cout_g"], *cfg["kernel"])).astype(np.float32)
-    attrs = dict(group=cfg["groups"], strides=cfg["strides"], dilations=cfg["dilations"],
-                 pads=cfg["pads"], output_padding=cfg["output_padding"])
+    attrs = {"group": cfg["groups"], "strides": cfg["strides"], "dilations": cfg["dilations"],
+                 "pads": cfg["pads"], "output_padding": cfg["output_padding"]}
     full, macs = _brute_force_conv_transpose(x, w, cfg["groups"], cfg["strides"],
                                              cfg["dilations"], cfg["pads"], cfg["output_padding"])
     if cfg["groups"] == 1:  # onnx.reference 1.23 ConvTranspose mis-reshapes grouped weights
@@ -238,7 +238,7 @@ def test_conv_transpose_macs_and_size_match_reference(cfg):
 
 def test_depthwise_maps_to_one_gemm_per_channel():
     n = inferred_node("Conv", [(1, 32, 56, 56), (64, 1, 3, 3)],
-                      dict(group=32, pads=[1, 1, 1, 1]), params=[1])
+                      {"group": 32, "pads": [1, 1, 1, 1]}, params=[1])
     (gemm,) = cost_function_for("", "Conv")(n).gemms
     assert (gemm.m, gemm.k, gemm.n, gemm.count) == (56 * 56, 9, 2, 32)
     assert gemm.weights_are_params
@@ -271,19 +271,19 @@ def test_unknown_rank_and_bad_auto_pad_are_unmodelled():
         cost_function_for("", "Conv")(node("Conv", [None, (4, 3, 3, 3)], [None]))
     with pytest.raises(Unmodelled, match="unknown"):
         cost_function_for("", "Conv")(node("Conv", [ti("x", None), (4, 3, 3, 3)], [None]))
-    bad = node("Conv", [(1, 3, 8, 8), (4, 3, 3, 3)], [None], dict(auto_pad="SOMETIMES"))
+    bad = node("Conv", [(1, 3, 8, 8), (4, 3, 3, 3)], [None], {"auto_pad": "SOMETIMES"})
     with pytest.raises(Unmodelled, match="auto_pad"):
         cost_function_for("", "Conv")(bad)
 
 
 @pytest.mark.parametrize("op,shapes,attrs,reason", [
-    ("Conv", [(1, 3, 8, 8), (4, 3, 3, 3)], dict(strides=[0, 1]), "strides"),
-    ("Conv", [(1, 3, 8, 8), (4, 3, 3, 3)], dict(dilations=[0, 1]), "dilations"),
+    ("Conv", [(1, 3, 8, 8), (4, 3, 3, 3)], {"strides": [0, 1]}, "strides"),
+    ("Conv", [(1, 3, 8, 8), (4, 3, 3, 3)], {"dilations": [0, 1]}, "dilations"),
     ("Conv", [(1, 3, 8, 8), (4, 3, 0, 3)], {}, "kernel"),
-    ("Conv", [(1, 3, 8, 8), (4, 2, 3, 3)], dict(group=2), "inconsistent"),
-    ("ConvTranspose", [(1, 3, 2, 2), (3, 4, 3, 3)], dict(pads=[5, 5, 5, 5]), "negative"),
-    ("MaxPool", [(1, 3, 8, 8)], dict(kernel_shape=[0, 2]), "kernel_shape"),
-    ("MaxPool", [(1, 3, 8, 8)], dict(kernel_shape=[2, 2], strides=[0, 1]), "strides"),
+    ("Conv", [(1, 3, 8, 8), (4, 2, 3, 3)], {"group": 2}, "inconsistent"),
+    ("ConvTranspose", [(1, 3, 2, 2), (3, 4, 3, 3)], {"pads": [5, 5, 5, 5]}, "negative"),
+    ("MaxPool", [(1, 3, 8, 8)], {"kernel_shape": [0, 2]}, "kernel_shape"),
+    ("MaxPool", [(1, 3, 8, 8)], {"kernel_shape": [2, 2], "strides": [0, 1]}, "strides"),
 ])
 def test_invalid_window_attributes_are_unmodelled(op, shapes, attrs, reason):
     with pytest.raises(Unmodelled, match=reason):

@@ -23,7 +23,7 @@ INPUT_DTYPE = {"Not": TensorProto.BOOL, "And": TensorProto.BOOL, "Or": TensorPro
                "BitwiseAnd": TensorProto.INT32, "BitwiseOr": TensorProto.INT32,
                "BitwiseXor": TensorProto.INT32, "BitShift": TensorProto.UINT32,
                "Mod": TensorProto.INT32}
-EXTRA_ATTRS = {"BitShift": dict(direction="LEFT")}
+EXTRA_ATTRS = {"BitShift": {"direction": "LEFT"}}
 OPSET_FOR = {"Swish": 24, "Mish": 22}
 
 
@@ -71,7 +71,7 @@ def test_prelu_where_and_variadic():
 
 @pytest.mark.parametrize("approximate", sorted(GELU_OPS_PER_ELEMENT))
 def test_gelu_modes(approximate):
-    n = inferred_node("Gelu", [SHAPE], dict(approximate=approximate), opset=20)
+    n = inferred_node("Gelu", [SHAPE], {"approximate": approximate}, opset=20)
     assert cost_function_for("", "Gelu")(n).flops == GELU_OPS_PER_ELEMENT[approximate] * 24
 
 

@@ -88,7 +88,7 @@ def test_gemm_counts(trans_a, trans_b, alpha, beta, bias, extra_per_out):
     m, k, n = 5, 7, 3
     a = (k, m) if trans_a else (m, k)
     b = (n, k) if trans_b else (k, n)
-    attrs = dict(transA=trans_a, transB=trans_b, alpha=alpha, beta=beta)
+    attrs = {"transA": trans_a, "transB": trans_b, "alpha": alpha, "beta": beta}
     g_node = inferred_node("Gemm", [a, b, (n,) if bias else None], attrs, params=[1, 2])
     work = cost_function_for("", "Gemm")(g_node)
     assert g_node.outputs[0].shape == (m, n)  # onnx shape inference agrees on the output
@@ -136,17 +136,17 @@ def test_einsum_macs_equal_brute_force_loop_nest(equation, shapes, params):
     a, b = (rng.standard_normal(s) for s in shapes)
     expected, macs = _brute_force_einsum(equation, a, b)
     np.testing.assert_allclose(expected, np.einsum(equation, a, b))
-    n = inferred_node("Einsum", shapes, dict(equation=equation), params=params)
+    n = inferred_node("Einsum", shapes, {"equation": equation}, params=params)
     work = cost_function_for("", "Einsum")(n)
     assert work.macs == macs == sum(g.macs for g in work.gemms)
     assert all(g.weights_are_params == bool(params) for g in work.gemms)
 
 
 def test_einsum_single_operand_forms():
-    transpose = node("Einsum", [(3, 4)], [(4, 3)], dict(equation="ij->ji"))
+    transpose = node("Einsum", [(3, 4)], [(4, 3)], {"equation": "ij->ji"})
     work = cost_function_for("", "Einsum")(transpose)
     assert (work.flops, work.vector_ops, work.macs) == (0, 12, 0)
-    row_sum = node("Einsum", [(3, 4)], [(3,)], dict(equation="ij->i"))
+    row_sum = node("Einsum", [(3, 4)], [(3,)], {"equation": "ij->i"})
     assert cost_function_for("", "Einsum")(row_sum).flops == 12
 
 
@@ -156,7 +156,7 @@ def test_einsum_single_operand_forms():
     ("ij,jk->k", [(2, 3), (3, 4)], "one operand only"),
 ])
 def test_einsum_unsupported_forms_are_unmodelled(equation, shapes, reason):
-    n = node("Einsum", shapes, [None], dict(equation=equation))
+    n = node("Einsum", shapes, [None], {"equation": equation})
     with pytest.raises(Unmodelled, match=reason):
         cost_function_for("", "Einsum")(n)
 

@@ -26,7 +26,7 @@ VIEWS = [
     ("Reshape", [X, (2,)], {}, {1: np.array([6, 16], I64)}),
     ("Squeeze", [(1, 3, 4), (1,)], {}, {1: np.array([0], I64)}),
     ("Unsqueeze", [X, (1,)], {}, {1: np.array([0], I64)}),
-    ("Flatten", [X], dict(axis=1), {}),
+    ("Flatten", [X], {"axis": 1}, {}),
     ("Identity", [X], {}, {}),
     ("Dropout", [X], {}, {}),
     ("Shape", [X], {}, {}),
@@ -45,16 +45,16 @@ def test_views_need_no_shapes():
 
 
 MOVES = [
-    ("Transpose", [X], dict(perm=[0, 2, 3, 1]), {}, 96),
-    ("Concat", [X, X], dict(axis=1), {}, 192),
-    ("Split", [X], dict(axis=1, num_outputs=3), {}, 96),
+    ("Transpose", [X], {"perm": [0, 2, 3, 1]}, {}, 96),
+    ("Concat", [X, X], {"axis": 1}, {}, 192),
+    ("Split", [X], {"axis": 1, "num_outputs": 3}, {}, 96),
     ("Slice", [X, (1,), (1,)], {}, {1: np.array([1], I64), 2: np.array([3], I64)}, 1 * 3 * 4 * 4),
-    ("Gather", [X, (5,)], dict(axis=1), {1: np.array([0, 1, 2, 0, 1], I64)}, 2 * 5 * 16),
+    ("Gather", [X, (5,)], {"axis": 1}, {1: np.array([0, 1, 2, 0, 1], I64)}, 2 * 5 * 16),
     ("Pad", [X, (8,)], {}, {1: np.array([0, 0, 1, 1, 0, 0, 1, 1], I64)}, 2 * 3 * 6 * 6),
     ("Expand", [(3, 1), (2,)], {}, {1: np.array([3, 5], I64)}, 15),
     ("Tile", [X, (4,)], {}, {1: np.array([1, 2, 1, 1], I64)}, 192),
-    ("DepthToSpace", [(1, 8, 2, 2)], dict(blocksize=2), {}, 32),
-    ("SpaceToDepth", [(1, 2, 4, 4)], dict(blocksize=2), {}, 32),
+    ("DepthToSpace", [(1, 8, 2, 2)], {"blocksize": 2}, {}, 32),
+    ("SpaceToDepth", [(1, 2, 4, 4)], {"blocksize": 2}, {}, 32),
     ("ConstantOfShape", [(2,)], {}, {1: None}, 12),
 ]
 
@@ -69,7 +69,7 @@ def test_movement_counts_elements_written(op, inputs, attrs, consts, written):
 
 
 def test_cast_is_movement_and_constant_is_view():
-    cast = inferred_node("Cast", [X], dict(to=TensorProto.FLOAT16))
+    cast = inferred_node("Cast", [X], {"to": TensorProto.FLOAT16})
     assert (_work(cast).vector_ops, _work(cast).flops) == (96, 0)
     assert _work(node("Constant", [], [(3,)])).is_view
 
@@ -79,7 +79,7 @@ def test_cast_is_movement_and_constant_is_view():
     ("linear", [1, 1, 1, 2], 3),
 ])
 def test_resize_interpolates_changed_axes(mode, scales, expected_per_output):
-    n = inferred_node("Resize", [X, None, (4,)], dict(mode=mode),
+    n = inferred_node("Resize", [X, None, (4,)], {"mode": mode},
                       constants={2: np.array(scales, np.float32)})
     outputs = int(np.prod(n.outputs[0].shape))
     work = _work(n)
@@ -92,15 +92,15 @@ def test_resize_interpolates_changed_axes(mode, scales, expected_per_output):
 
 def test_resize_antialias_and_unknown_output_are_unmodelled():
     with pytest.raises(Unmodelled, match="antialias"):
-        _work(node("Resize", [X], [(2, 3, 8, 8)], dict(mode="linear", antialias=1)))
+        _work(node("Resize", [X], [(2, 3, 8, 8)], {"mode": "linear", "antialias": 1}))
     with pytest.raises(Unmodelled, match="unknown"):
-        _work(node("Resize", [X], [None], dict(mode="linear")))
+        _work(node("Resize", [X], [None], {"mode": "linear"}))
 
 
 def test_scatter_with_reduction_adds_one_op_per_update():
     consts = {1: np.array([[0], [2]], I64)}
     plain = inferred_node("ScatterND", [(4, 3), (2, 1), (2, 3)], constants=consts)
     assert (_work(plain).vector_ops, _work(plain).flops) == (12, 0)
-    added = inferred_node("ScatterND", [(4, 3), (2, 1), (2, 3)], dict(reduction="add"),
+    added = inferred_node("ScatterND", [(4, 3), (2, 1), (2, 3)], {"reduction": "add"},
                           constants=consts)
     assert (_work(added).vector_ops, _work(added).flops) == (12 + 6, 6)

@@ -26,14 +26,14 @@ def test_batch_normalization_inference():
 
 
 def test_batch_normalization_training_mode_is_unmodelled():
-    n = node("BatchNormalization", [X, (8,), (8,), (8,), (8,)], [X], dict(training_mode=1))
+    n = node("BatchNormalization", [X, (8,), (8,), (8,), (8,)], [X], {"training_mode": 1})
     with pytest.raises(Unmodelled, match="training_mode"):
         cost_function_for("", "BatchNormalization")(n)
 
 
 @pytest.mark.parametrize("axis,rows", [(-1, 80), (1, 2), (0, 1)])
 def test_layer_normalization_rows_follow_axis(axis, rows):
-    work = _work("LayerNormalization", [X, X[axis:] if axis else X, None], dict(axis=axis))
+    work = _work("LayerNormalization", [X, X[axis:] if axis else X, None], {"axis": axis})
     per_element = nm.MOMENT_NORM_OPS_PER_ELEMENT - 1  # no bias input
     assert work.flops == per_element * 400 + nm.MOMENT_NORM_OPS_PER_ROW * rows
 
@@ -41,12 +41,12 @@ def test_layer_normalization_rows_follow_axis(axis, rows):
 def test_instance_and_group_normalization():
     inst = _work("InstanceNormalization", [X, (8,), (8,)])
     assert inst.flops == nm.MOMENT_NORM_OPS_PER_ELEMENT * 400 + nm.MOMENT_NORM_OPS_PER_ROW * 16
-    group = _work("GroupNormalization", [X, (8,), (8,)], dict(num_groups=4))
+    group = _work("GroupNormalization", [X, (8,), (8,)], {"num_groups": 4})
     assert group.flops == nm.MOMENT_NORM_OPS_PER_ELEMENT * 400 + nm.MOMENT_NORM_OPS_PER_ROW * 8
 
 
 def test_rms_normalization():
-    work = _work("RMSNormalization", [X, (5,)], dict(axis=-1), opset=23)
+    work = _work("RMSNormalization", [X, (5,)], {"axis": -1}, opset=23)
     assert work.flops == nm.RMS_NORM_OPS_PER_ELEMENT * 400 + nm.RMS_NORM_OPS_PER_ROW * 80
 
 
@@ -58,12 +58,12 @@ def test_softmax_family():
 
 
 def test_other_normalizations_are_positive_and_invariant():
-    for op, attrs in [("LpNormalization", dict(p=2)), ("LRN", dict(size=3)),
-                      ("MeanVarianceNormalization", dict(axes=[0, 2, 3]))]:
+    for op, attrs in [("LpNormalization", {"p": 2}), ("LRN", {"size": 3}),
+                      ("MeanVarianceNormalization", {"axes": [0, 2, 3]})]:
         work = _work(op, [X], attrs)
         assert work.flops == work.vector_ops > 400
 
 
 def test_bad_axis_is_unmodelled():
     with pytest.raises(Unmodelled, match="axis"):
-        cost_function_for("", "Softmax")(node("Softmax", [X], [X], dict(axis=7)))
+        cost_function_for("", "Softmax")(node("Softmax", [X], [X], {"axis": 7}))

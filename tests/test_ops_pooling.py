@@ -15,7 +15,7 @@ from tests.opkit import inferred_node, node
 @pytest.mark.parametrize("op,per_window,finish", [("MaxPool", 1, 0), ("AveragePool", 1, 1),
                                                    ("LpPool", 2, 1)])
 def test_windowed_pools(op, per_window, finish):
-    attrs = dict(kernel_shape=[3, 3], strides=[2, 2], pads=[1, 1, 1, 1])
+    attrs = {"kernel_shape": [3, 3], "strides": [2, 2], "pads": [1, 1, 1, 1]}
     n = inferred_node(op, [(1, 16, 32, 32)], attrs)
     assert n.outputs[0].shape == (1, 16, 16, 16)
     work = cost_function_for("", op)(n)

@@ -39,7 +39,7 @@ def _recurrent_node(op, seq, batch, size, hidden, direction, layout, bias, peeph
     rng = np.random.default_rng(3)
     constants = {i: rng.standard_normal(s).astype(np.float32) * 0.1
                  for i, s in enumerate(inputs) if i > 0 and s is not None}
-    attrs = dict(hidden_size=hidden, direction=direction, layout=layout)
+    attrs = {"hidden_size": hidden, "direction": direction, "layout": layout}
     model = one_node_model(op, inputs, attrs, constants=constants)
     if run:  # the spec's executable reference accepts these shapes
         out = ReferenceEvaluator(model).run(None, {"x0": rng.standard_normal(x).astype(np.float32)})
@@ -86,16 +86,16 @@ def test_gru_linear_before_reset_changes_the_chain_not_the_macs():
 
 
 def test_weight_shape_mismatch_and_unknown_activation_are_unmodelled():
-    bad = node("LSTM", [(5, 1, 3), (1, 16, 3), (1, 16, 4)], [None], dict(hidden_size=5))
+    bad = node("LSTM", [(5, 1, 3), (1, 16, 3), (1, 16, 4)], [None], {"hidden_size": 5})
     with pytest.raises(Unmodelled, match="spec shapes"):
         cost_function_for("", "LSTM")(bad)
     odd = node("RNN", [(5, 1, 3), (1, 4, 3), (1, 4, 4)], [None],
-               dict(hidden_size=4, activations=["Gaussian"]))
+               {"hidden_size": 4, "activations": ["Gaussian"]})
     with pytest.raises(Unmodelled, match="Gaussian"):
         cost_function_for("", "RNN")(odd)
 
 
 def test_symbolic_sequence_length_is_unmodelled():
-    n = node("GRU", [("frames", 1, 3), (1, 12, 3), (1, 12, 4)], [None], dict(hidden_size=4))
+    n = node("GRU", [("frames", 1, 3), (1, 12, 3), (1, 12, 4)], [None], {"hidden_size": 4})
     with pytest.raises(Unmodelled, match="--dim frames=N"):
         cost_function_for("", "GRU")(n)

@@ -19,9 +19,9 @@ X = (4, 6, 5)
 @pytest.mark.parametrize("op", sorted(REDUCE_OPS))
 def test_reductions_visit_every_input_element(op):
     if op.startswith("Arg"):
-        n = inferred_node(op, [X], dict(axis=1, keepdims=0))
+        n = inferred_node(op, [X], {"axis": 1, "keepdims": 0})
     else:
-        n = inferred_node(op, [X, (1,)], dict(keepdims=0), constants={1: np.array([1])})
+        n = inferred_node(op, [X, (1,)], {"keepdims": 0}, constants={1: np.array([1])})
     assert n.outputs[0].shape == (4, 5)
     per_input, per_output = REDUCE_OPS[op]
     work = cost_function_for("", op)(n)
@@ -31,7 +31,7 @@ def test_reductions_visit_every_input_element(op):
 def test_cumsum_and_topk():
     cum = inferred_node("CumSum", [X, ()], constants={1: np.array(1)})
     assert cost_function_for("", "CumSum")(cum).flops == 120
-    top = inferred_node("TopK", [X, (1,)], dict(axis=-1), constants={1: np.array([3])}, n_outputs=2)
+    top = inferred_node("TopK", [X, (1,)], {"axis": -1}, constants={1: np.array([3])}, n_outputs=2)
     assert top.outputs[0].shape == (4, 6, 3)
     assert cost_function_for("", "TopK")(top).flops == 120 * (3).bit_length()
 
