@@ -155,10 +155,10 @@ def test_models_outside_the_config_groups_are_not_gated(repo: Repo) -> None:
 
 
 def test_bad_config_and_unknown_base_exit_2(repo: Repo) -> None:
-    code, out, err = check_with_base("no-such-branch")
+    code, _out, err = check_with_base("no-such-branch")
     assert code == 2 and "unknown git revision 'no-such-branch'" in err
     repo.write("roofgate.yaml", "target: [x]\n")
-    code, out, err = check()
+    code, _out, err = check()
     assert code == 2 and "did you mean 'targets'" in err
 
 

@@ -155,7 +155,7 @@ def test_baseline_is_byte_identical_and_drives_regressions(work, tmp_path) -> No
         wide.write_bytes(original)
     document = json.loads(result.stdout)
     (entry,) = document["result"]["entries"]
-    regression = [v for v in entry["verdicts"] if v["rule_id"] == "latency-regression"][0]
+    regression = next(v for v in entry["verdicts"] if v["rule_id"] == "latency-regression")
     assert regression["status"] == "fail" and entry["diff"] is not None
 
 

@@ -38,9 +38,9 @@ def test_failure_keeps_the_previous_complete_file(tmp_path: Path) -> None:
 def test_unwritable_place_is_one_input_error(tmp_path: Path) -> None:
     blocker = tmp_path / "file"
     blocker.write_text("x")
-    with pytest.raises(InputError, match="cannot write the snapshot"):
-        with open_output(str(blocker / "inside.json"), "snapshot") as stream:
-            stream.write("{}")
+    with (pytest.raises(InputError, match="cannot write the snapshot"),
+          open_output(str(blocker / "inside.json"), "snapshot") as stream):
+        stream.write("{}")
 
 
 def test_dash_is_stdout(capsys: pytest.CaptureFixture[str]) -> None:
