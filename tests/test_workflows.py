@@ -90,6 +90,24 @@ def test_project_ci_tests_every_supported_python() -> None:
     assert "python -m pytest" in runs(workflow) and "roofgate demo" in runs(workflow)
 
 
+def test_project_ci_lints_with_pinned_tools_and_never_cancels_main() -> None:
+    workflow = load("ci.yml")
+    text = runs(workflow)
+    assert "ruff check gate tests bench" in text and "mypy gate" in text
+    assert 'pip install -e ".[lint]"' in text
+    # tomllib is Python >= 3.11 and roofgate supports 3.10: read the extra's lines directly.
+    pyproject = (ROOT / "pyproject.toml").read_text()
+    lint_extra = re.findall(r'^    "([^"]+)",$', pyproject.split("\nlint = [", 1)[1].split("]")[0],
+                            re.MULTILINE)
+    assert {r.split("==")[0] for r in lint_extra} == {"ruff", "mypy"}
+    assert all(re.fullmatch(r"[a-z]+==[0-9.]+", r) for r in lint_extra), "exact pins"
+    # Superseded runs are cancelled on pull requests only: the expression is false on push.
+    concurrency = workflow["concurrency"]
+    assert concurrency["cancel-in-progress"] == "${{ github.event_name == 'pull_request' }}"
+    assert "github.sha" in concurrency["group"]  # each push to main is its own group
+    assert "wheel-smoke.sh" in text
+
+
 def test_pull_request_workflow() -> None:
     workflow = load("roofgate-pr.yml")
     assert list(workflow["on"]) == ["pull_request"]
