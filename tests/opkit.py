@@ -130,3 +130,115 @@ def inferred_node(op_type: str, inputs: Sequence[Sequence[int] | None],
     """
     model = one_node_model(op_type, inputs, attrs, constants, n_outputs, dtypes, opset, domain)
     return node_from_model(model, params)
+
+
+# --- Fused ops against their decomposition into standard ops (gate/ops/attention.py, contrib*).
+
+def scalar_nodes(name: str, value: float) -> list[onnx.NodeProto]:
+    """A float scalar built without a parameter: ConstantOfShape of an empty shape.
+
+    A float Constant or initializer would count as a model parameter; the fused ops
+    carry such scalars as attributes, so their decompositions must not add parameters.
+    """
+    shape = helper.make_tensor(f"{name}_shape", TensorProto.INT64, [0], [])
+    return [helper.make_node("Constant", [], [f"{name}_shape"], value=shape),
+            helper.make_node("ConstantOfShape", [f"{name}_shape"], [name],
+                             value=helper.make_tensor(f"{name}_v", TensorProto.FLOAT, [1], [value]))]
+
+
+def int_constant(name: str, values: Sequence[int]) -> onnx.NodeProto:
+    """A small INT64 Constant (shapes, axes): metadata, not a parameter."""
+    return helper.make_node("Constant", [], [name], value=helper.make_tensor(
+        name, TensorProto.INT64, [len(values)], list(values)))
+
+
+def graph_model(nodes: Sequence[onnx.NodeProto], inputs: Mapping[str, Sequence[int]],
+                outputs: Sequence[str], inits: Mapping[str, np.ndarray] | None = None,
+                opset: int = OPSET, contrib: bool = False,
+                dtypes: Mapping[str, int] | None = None) -> onnx.ModelProto:
+    """A model of ``nodes``: float graph inputs of the given shapes, untyped outputs."""
+    graph_inputs = [helper.make_tensor_value_info(n, (dtypes or {}).get(n, TensorProto.FLOAT),
+                                                  list(s)) for n, s in inputs.items()]
+    graph_outputs = [helper.make_tensor_value_info(n, TensorProto.UNDEFINED, None) for n in outputs]
+    initializers = [numpy_helper.from_array(v, n) for n, v in (inits or {}).items()]
+    g = helper.make_graph(list(nodes), "t", graph_inputs, graph_outputs, initializers)
+    opsets = [helper.make_opsetid("", opset)]
+    if contrib:
+        opsets.append(helper.make_opsetid("com.microsoft", 1))
+    return helper.make_model(g, opset_imports=opsets)
+
+
+def traced_macs(model: onnx.ModelProto, feeds: Mapping[str, np.ndarray]) -> int:
+    """MACs of every MatMul/Gemm/Conv, from the arrays ``onnx.reference`` actually feeds them.
+
+    An execution trace: every node output becomes a graph output, the reference
+    evaluator runs the model, and each matrix op's MACs come from its real operands.
+    """
+    from onnx.reference import ReferenceEvaluator
+
+    traced = onnx.ModelProto()
+    traced.CopyFrom(model)
+    declared = {o.name for o in traced.graph.output}
+    extra = [o for n in traced.graph.node for o in n.output if o and o not in declared]
+    traced.graph.output.extend(helper.make_empty_tensor_value_info(o) for o in extra)
+    names = [o.name for o in traced.graph.output]
+    values = dict(zip(names, ReferenceEvaluator(traced).run(None, dict(feeds))))
+    values.update(feeds)
+    values.update((i.name, numpy_helper.to_array(i)) for i in traced.graph.initializer)
+    return sum(_node_macs(n, values) for n in traced.graph.node)
+
+
+def _node_macs(n: onnx.NodeProto, values: Mapping[str, np.ndarray]) -> int:
+    """MACs of one matrix node from its operands (numpy matmul / Gemm / Conv semantics)."""
+    if n.op_type == "MatMul":
+        a, b = (values[i] for i in n.input[:2])
+        a2 = a.reshape(1, -1) if a.ndim == 1 else a
+        b2 = b.reshape(-1, 1) if b.ndim == 1 else b
+        batch = np.broadcast_shapes(a2.shape[:-2], b2.shape[:-2])
+        return int(np.prod(batch, dtype=np.int64)) * a2.shape[-2] * a2.shape[-1] * b2.shape[-1]
+    if n.op_type == "Gemm":
+        y = values[n.output[0]]
+        a = values[n.input[0]]
+        k = a.shape[0] if _attr(n, "transA") else a.shape[1]
+        return int(y.size * k)
+    if n.op_type == "Conv":
+        y, w = values[n.output[0]], values[n.input[1]]
+        return int(y.size * np.prod(w.shape[1:]))
+    return 0
+
+
+def _attr(n: onnx.NodeProto, name: str) -> Any:
+    return next((helper.get_attribute_value(a) for a in n.attribute if a.name == name), None)
+
+
+def profile_totals(model: onnx.ModelProto, folder: Any, name: str) -> dict[str, int]:
+    """Load ``model`` through the real loader, profile it, and return the totals to compare.
+
+    ``boundary_bytes``: bytes of the graph's activation inputs and outputs (what a
+    fused op reads and writes); ``layer_io_bytes``: what the layers read and write
+    (a decomposition also moves its intermediates). Every layer must be modelled.
+    """
+    from gate.model.loader import load_model
+    from gate.profile import profile_model
+
+    path = folder / f"{name}.onnx"
+    onnx.save(model, str(path))
+    profile = profile_model(load_model(path))
+    unmodelled = [(layer.name, layer.unmodelled_reason) for layer in profile.layers
+                  if not layer.modelled]
+    assert unmodelled == []
+    graph_tensors = (*profile.model.graph.inputs, *profile.model.graph.outputs)
+    return {
+        "macs": profile.total_macs, "flops": profile.total_flops,
+        "params": profile.total_param_count, "param_bytes": profile.total_param_bytes,
+        "boundary_bytes": sum(t.nbytes or 0 for t in graph_tensors),
+        "layer_io_bytes": sum(layer.input_bytes + layer.output_bytes for layer in profile.layers),
+    }
+
+
+def assert_fused_equals_decomposition(fused: dict[str, int], parts: dict[str, int]) -> None:
+    """The fused op does the decomposition's arithmetic on its parameters, reading and
+    writing only the decomposition's boundary tensors."""
+    for key in ("macs", "flops", "params", "param_bytes", "boundary_bytes"):
+        assert fused[key] == parts[key], key
+    assert fused["layer_io_bytes"] == fused["boundary_bytes"]
