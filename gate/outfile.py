@@ -1,37 +1,312 @@
-"""The one owner of output files: '-' is stdout, folders are created, writes are atomic.
+"""The one owner of output files: where they may go and how they are written.
 
-A report, snapshot or shard file is written to a hidden partial file next to
-its target and moved into place only when complete, so a crash never leaves a
-half-written file that a later step could read as a result.
+'-' is stdout; folders are created. A file is first written to a partial file
+created exclusively (``O_EXCL``, never through a symbolic link) under a name
+unique to this process, then renamed into place, so a crash never leaves a
+half-written file that a later step could read as a result, and a link
+committed under a partial-file name is never followed.
+
+A set of reports is written as one unit (``write_files``): every partial file
+is complete before the first rename, and the report folders are locked
+(``flock``) while the set is renamed in, so two runs writing the same folder
+leave one run's complete set, never a mix. ``remove_stale`` deletes the reports
+of an earlier run at the start, so an early exit cannot leave an old PASS.
+
+``OutputRules`` says where a run may write (``check_output_paths``): a path
+from the project config must resolve inside the working tree; no path may lie
+in a ``.git`` folder or land on a file the run reads (models, policies, the
+config, targets, baselines).
 """
 
 from __future__ import annotations
 
+import errno
 import os
+import secrets
 import sys
-from collections.abc import Iterator
-from contextlib import contextmanager
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import ExitStack, contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
 
 from gate.errors import InputError
 
+try:  # POSIX; elsewhere the folder lock is skipped (one run per folder then)
+    import fcntl
+except ImportError:  # pragma: no cover - not on Linux or macOS
+    fcntl = None  # type: ignore[assignment]
+
+PARTIAL_PREFIX = ".roofgate-"
+PARTIAL_SUFFIX = ".partial"
+NAME_MAX_BYTES = 255  # longest file name ext4, XFS, APFS and NTFS accept (POSIX NAME_MAX)
+_CREATE_FLAGS = (os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0)
+                 | getattr(os, "O_CLOEXEC", 0))
+
+
+@dataclass(frozen=True, slots=True)
+class OutputRules:
+    """Where a run may write its reports.
+
+    ``root``: paths must resolve inside this folder (None: anywhere, for paths
+    the person running the command typed). ``typed``: paths given on the
+    command line, exempt from ``root`` (the person running the command chose
+    them; a pull request can only change the config's). ``inputs``: files the
+    run reads, which no output may replace. ``is_model``: whether a
+    root-relative path is a model of the project (those are inputs too).
+    """
+
+    root: str | None = None
+    inputs: tuple[str, ...] = ()
+    is_model: Callable[[str], bool] | None = None
+    typed: tuple[str, ...] = ()
+
+
+# The rules of a command whose every output path is typed by the person running it: anywhere
+# but inside .git (an empty set of inputs).
+TYPED_PATHS = OutputRules()
+
+
+def check_output_paths(paths: Mapping[str, str], rules: OutputRules) -> None:
+    """Refuse (InputError, exit 2) an output path outside where ``rules`` allow, or one used twice.
+
+    ``paths`` maps what is written ("junit report") to its path ('-' = stdout).
+    """
+    inputs = {_real(p) for p in rules.inputs if p and p != "-"}
+    seen: dict[Path, str] = {}
+    for what, path in paths.items():
+        if path == "-":
+            continue
+        target = placed_path(path, what)
+        reason = _placement_problem(target, path, rules, inputs)
+        if reason:
+            raise InputError(f"the {what} may not be written here: {reason}; choose a path "
+                             "inside the working tree, such as roofgate-out/", path)
+        if target in seen:
+            raise InputError(f"the {what} and the {seen[target]} would be written to the same "
+                             "file; give each report its own path", path)
+        seen[target] = what
+
+
+def placed_path(path: str, what: str) -> Path:
+    """The absolute path ``path`` writes to: its folder with links resolved, then its name."""
+    given = Path(path)
+    if given.name in ("", ".", "..") or path.endswith(("/", os.sep)):
+        raise InputError(f"the {what} may not be written here: the path names a folder, not "
+                         "a file; give a file path such as roofgate-out/result.json", path)
+    try:
+        return given.parent.resolve() / given.name
+    except (OSError, RuntimeError) as exc:  # a link loop in the folder
+        raise InputError(f"cannot resolve the folder of the {what} ({exc})", path) from None
+
+
+def _placement_problem(target: Path, path: str, rules: OutputRules, inputs: set[Path]) -> str:
+    if len(os.fsencode(target.name)) > NAME_MAX_BYTES:
+        return f"the file name is too long ({len(os.fsencode(target.name))} bytes; " \
+               f"file systems allow {NAME_MAX_BYTES})"
+    if ".git" in target.parts:
+        return "it lies inside a .git folder (git's own files)"
+    root = Path(rules.root).resolve() if rules.root is not None else None
+    if root is not None and path not in rules.typed and not target.is_relative_to(root):
+        return f"it resolves to {target}, outside the working tree {root}"
+    if target in inputs:
+        return "it is a file this run reads (a model, policy, config, target or baseline)"
+    if target.suffix.lower() == ".onnx":
+        return "it is a model path"
+    if root is not None and rules.is_model is not None and target.is_relative_to(root) \
+            and rules.is_model(target.relative_to(root).as_posix()):
+        return "it is a model path"
+    return ""
+
+
+def _real(path: str) -> Path:
+    try:
+        return Path(path).resolve()
+    except (OSError, RuntimeError):
+        return Path(os.path.abspath(path))
+
+
+# --- writing ---------------------------------------------------------------------------
+
+def write_files(files: Sequence[tuple[str, str, str]]) -> None:
+    """Write every ``(path, what, text)`` as one unit; '-' paths go to stdout last.
+
+    All partial files are written before any is renamed into place; the
+    folders are locked during the renames; if a rename fails, the files of
+    this set already moved in are removed again, so no mix is left.
+    """
+    on_disk = [(placed_path(p, what), p, what, text) for p, what, text in files if p != "-"]
+    folders = sorted({target.parent for target, *_ in on_disk})
+    for target, path, what, _ in on_disk:
+        _make_folder(target.parent, path, what)
+    with _locked(folders):
+        partials: list[tuple[Path, Path, str, str]] = []
+        try:
+            for target, path, what, text in on_disk:
+                partials.append((_write_partial(target.parent, text, path, what),
+                                 target, path, what))
+            _rename_all(partials)
+        finally:
+            for partial, *_ in partials:
+                _unlink_quietly(partial)
+    for path, _, text in files:
+        if path == "-":
+            write_stdout(text)
+
+
+def write_text(path: str, text: str, what: str) -> None:
+    """Write one file ('-' = stdout) atomically."""
+    write_files([(path, what, text)])
+
 
 @contextmanager
 def open_output(path: str, what: str) -> Iterator[TextIO]:
-    """A text stream for ``path`` ('-' = stdout); ``what`` names the file in errors."""
+    """A text stream for ``path`` ('-' = stdout); the file appears only when the block succeeds."""
     if path == "-":
         yield sys.stdout
         return
-    target = Path(path)
-    partial = target.with_name(f".{target.name}.partial")
+    target = placed_path(path, what)
+    _make_folder(target.parent, path, what)
+    partial = _new_partial(target.parent, path, what)
     try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        with open(partial, "w", encoding="utf-8", newline="\n") as stream:
-            yield stream
-        os.replace(partial, target)
-    except OSError as exc:
-        raise InputError(f"cannot write the {what} ({exc.strerror})", path) from None
+        try:
+            with os.fdopen(partial[1], "w", encoding="utf-8", newline="\n") as stream:
+                yield stream
+        except OSError as exc:
+            raise _write_error(exc, path, what) from None
+        with _locked([target.parent]):
+            _rename_all([(partial[0], target, path, what)])
     finally:
-        if partial.exists():
-            partial.unlink()
+        _unlink_quietly(partial[0])
+
+
+def write_stdout(text: str) -> None:
+    """Write ``text`` to stdout; a full or closed stdout is bad output (exit 2), not a crash."""
+    try:
+        sys.stdout.write(text)
+        sys.stdout.flush()
+    except OSError as exc:
+        raise InputError(f"cannot write to standard output ({exc.strerror}); "
+                         "check where stdout is redirected") from None
+
+
+def remove_stale(paths: Sequence[str]) -> None:
+    """Delete the files at ``paths`` (reports of an earlier run) and partial files of dead runs.
+
+    Called at the start of a run, after ``check_output_paths``, so an early
+    exit cannot leave an old report that reads as this run's result.
+    """
+    files = [p for p in paths if p != "-"]
+    folders = sorted({placed_path(p, "report").parent for p in files})
+    existing = [f for f in folders if f.is_dir()]
+    with _locked(existing):
+        for path in files:
+            _unlink_or_fail(placed_path(path, "report"), path)
+        for folder in existing:
+            _remove_dead_partials(folder)
+
+
+def _rename_all(partials: Sequence[tuple[Path, Path, str, str]]) -> None:
+    done: list[Path] = []
+    try:
+        for partial, target, path, what in partials:
+            if target.is_dir() and not target.is_symlink():
+                raise InputError(f"cannot write the {what} (a folder is in the way)", path)
+            try:
+                os.replace(partial, target)
+            except OSError as exc:
+                raise _write_error(exc, path, what) from None
+            done.append(target)
+    except BaseException:
+        for target in done:
+            _unlink_quietly(target)
+        raise
+
+
+def _write_partial(folder: Path, text: str, path: str, what: str) -> Path:
+    name, fd = _new_partial(folder, path, what)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as stream:
+            stream.write(text)
+    except OSError as exc:
+        _unlink_quietly(name)
+        raise _write_error(exc, path, what) from None
+    return name
+
+
+def _new_partial(folder: Path, path: str, what: str) -> tuple[Path, int]:
+    """A new, empty partial file in ``folder``, created exclusively (never through a link)."""
+    name = folder / f"{PARTIAL_PREFIX}{os.getpid()}-{secrets.token_hex(8)}{PARTIAL_SUFFIX}"
+    try:
+        return name, os.open(name, _CREATE_FLAGS, 0o666)
+    except OSError as exc:
+        raise _write_error(exc, path, what) from None
+
+
+def _make_folder(folder: Path, path: str, what: str) -> None:
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise _write_error(exc, path, what) from None
+
+
+def _write_error(exc: OSError, path: str, what: str) -> InputError:
+    reason = exc.strerror or type(exc).__name__
+    if exc.errno == errno.ENAMETOOLONG:
+        reason = "the file name is too long for the file system"
+    return InputError(f"cannot write the {what} ({reason})", path)
+
+
+@contextmanager
+def _locked(folders: Sequence[Path]) -> Iterator[None]:
+    """Hold an exclusive ``flock`` on each folder (sorted, so two runs never deadlock)."""
+    with ExitStack() as stack:
+        if fcntl is not None:
+            for folder in sorted(set(folders)):
+                fd = os.open(folder, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+                stack.callback(os.close, fd)
+                fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+
+
+def _remove_dead_partials(folder: Path) -> None:
+    """Partial files left by runs that were killed (their process no longer exists)."""
+    try:
+        names = [n for n in os.listdir(folder)
+                 if n.startswith(PARTIAL_PREFIX) and n.endswith(PARTIAL_SUFFIX)]
+    except OSError:
+        return
+    for name in names:
+        pid_text = name[len(PARTIAL_PREFIX):].split("-", 1)[0]
+        if pid_text.isdigit() and not _alive(int(pid_text)):
+            _unlink_quietly(folder / name)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError):
+        return True
+    return True
+
+
+def _unlink_or_fail(target: Path, path: str) -> None:
+    """Remove a file or link at ``target`` (a folder there is left for the write to refuse)."""
+    try:
+        if target.is_dir() and not target.is_symlink():
+            return
+        target.unlink()
+    except FileNotFoundError:
+        pass
+    except OSError as exc:
+        raise InputError(f"cannot remove the report of an earlier run ({exc.strerror})",
+                         path) from None
+
+
+def _unlink_quietly(path: Path) -> None:
+    try:
+        path.unlink()
+    except OSError:
+        pass

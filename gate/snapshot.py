@@ -32,7 +32,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
 from gate.errors import InputError, InternalError
-from gate.outfile import open_output
+from gate.outfile import write_text
 from gate.records import RunRecord, run_from_dict, run_to_dict
 
 SNAPSHOT_FORMAT = "roofgate-snapshot"
@@ -97,10 +97,18 @@ def dumps_snapshot(runs: Iterable[RunRecord]) -> str:
 
 
 def write_snapshot(runs: Iterable[RunRecord], path: str) -> None:
-    """Write a snapshot to ``path`` ('-' = stdout); a file is replaced atomically."""
+    """Write a snapshot to ``path`` ('-' = stdout); a file is replaced atomically.
+
+    A snapshot larger than ``read_snapshot`` accepts is refused (exit 2) rather
+    than written: it could never be used as a baseline.
+    """
     text = dumps_snapshot(runs)
-    with open_output(path, "baseline snapshot") as stream:
-        stream.write(text)
+    size_bytes = len(text)  # ASCII only (ensure_ascii), so characters are bytes
+    if size_bytes > MAX_SNAPSHOT_BYTES:
+        raise InputError(f"the snapshot would be {size_bytes} bytes, over the "
+                         f"{MAX_SNAPSHOT_BYTES}-byte limit a baseline may have; write one "
+                         "snapshot per part of the zoo (audit PATHS --snapshot ...)", path)
+    write_text(path, text, "baseline snapshot")
 
 
 def read_snapshot(path: str) -> tuple[RunRecord, ...]:

@@ -16,8 +16,16 @@ from typing import Any
 import click
 
 from gate import audit as engine
-from gate.cli.common import dim_option, finish, precision_option, target_option
-from gate.config import DEFAULT_REPORTS, Overrides, ProjectConfig, load_config
+from gate.cli.common import dim_option, finish, precision_option, start_reports, target_option
+from gate.config import (
+    DEFAULT_REPORTS,
+    Overrides,
+    ProjectConfig,
+    load_config,
+    resolve_file,
+    resolve_target,
+)
+from gate.outfile import TYPED_PATHS, OutputRules
 from gate.report import report_options, report_paths
 from gate.result import GateResult
 
@@ -82,6 +90,19 @@ def _paths(kwargs: dict[str, Any], config: ProjectConfig) -> dict[str, str | Non
     return chosen
 
 
+def _output_rules(kwargs: dict[str, Any], config: ProjectConfig, root: Path,
+                  inputs: tuple[str, ...] = ()) -> OutputRules:
+    """Reports stay inside the working tree (unless typed on the command line), out of
+    ``.git``, and off every file the run reads: config, policies, targets, baseline, models."""
+    read = [config.source or "", kwargs.get("baseline") or "", *inputs]
+    read += [resolve_file(config, p) for g in config.groups for p in g.policies]
+    read += [resolve_target(config, t) for g in config.groups for t in g.targets
+             if _is_file_ref(t)]
+    typed = tuple(v for v in report_paths(kwargs).values() if v)
+    return OutputRules(root=str(root), inputs=tuple(r for r in read if r),
+                       is_model=config.is_model, typed=typed)
+
+
 # --- check ----------------------------------------------------------------------------
 
 @click.command("check", short_help="Gate the models a branch changed (both sides from git).")
@@ -101,9 +122,11 @@ def check_command(base_ref: str, **kwargs: Any) -> None:
 
     root = repo_root(Path.cwd())
     config = _load(kwargs, root)
+    paths, rules = _paths(kwargs, config), _output_rules(kwargs, config, root)
+    start_reports(paths, rules)
     result, title = run_check(root, config, base_ref, baseline=kwargs["baseline"],
                               workers=engine.default_workers(kwargs["jobs"]))
-    finish(result, _paths(kwargs, config), title)
+    finish(result, paths, title, rules=rules)
 
 
 # --- audit ----------------------------------------------------------------------------
@@ -130,6 +153,8 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
 
     root = Path.cwd()
     config = _load(kwargs, root)
+    rules = _output_rules(kwargs, config, root)
+    start_reports(_paths(kwargs, config) if shard is None else report_paths(kwargs), rules)
     shard_ij = engine.parse_shard(shard) if shard else None
     result, models = run_audit(root, config, paths, baseline=kwargs["baseline"],
                                workers=engine.default_workers(kwargs["jobs"]), shard=shard_ij)
@@ -140,13 +165,14 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
         # A shard writes only its shard file unless report flags ask for partial reports.
         _finish_audit(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
                       f"{len(engine.shard_share(models, index, count))} of {len(models)} models",
-                      None, (out,))
+                      None, (out,), rules)
     _finish_audit(result, _paths(kwargs, config), f"roofgate audit: {len(models)} models",
-                  snapshot)
+                  snapshot, rules=rules)
 
 
 def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
-                  snapshot: str | None, written: tuple[str, ...] = ()) -> None:
+                  snapshot: str | None, written: tuple[str, ...] = (),
+                  rules: OutputRules = TYPED_PATHS) -> None:
     """Add the trend notes, write the snapshot if asked, then the reports and the summary."""
     result = engine.with_notes(result, engine.trend_notes(result))
     if snapshot:
@@ -154,7 +180,7 @@ def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
 
         write_snapshot([e.head for e in result.entries if e.head is not None], snapshot)
         written += (snapshot,)
-    finish(result, paths, title, written)
+    finish(result, paths, title, written, rules)
 
 
 # --- merge ----------------------------------------------------------------------------
@@ -174,10 +200,13 @@ def merge_command(shard_files: tuple[str, ...], config_path: str | None,
     versions or checkouts.
     """
     config = load_config(config_path, require_targets=False)
+    paths = _paths(kwargs, config)
+    rules = _output_rules({**kwargs, "baseline": None}, config, Path.cwd(), shard_files)
+    start_reports(paths, rules)
     result = engine.read_shards(list(shard_files))
     models = len({e.model for e in result.entries} | {e.model for e in result.errors})
-    _finish_audit(result, _paths(kwargs, config), f"roofgate audit (merged {len(shard_files)} "
-                  f"shards): {models} models", snapshot)
+    _finish_audit(result, paths, f"roofgate audit (merged {len(shard_files)} "
+                  f"shards): {models} models", snapshot, rules=rules)
 
 
 # --- demo -----------------------------------------------------------------------------

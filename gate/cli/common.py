@@ -13,7 +13,8 @@ from typing import Any, TypeVar
 
 import click
 
-from gate.report import terminal, write_reports
+from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, remove_stale
+from gate.report import report_targets, terminal, write_reports
 from gate.result import GateResult
 
 F = TypeVar("F", bound=Callable[..., Any])
@@ -69,10 +70,21 @@ def analysis_options(func: F) -> F:
     return func
 
 
+def start_reports(paths: dict[str, str | None], rules: OutputRules) -> None:
+    """Before any analysis: refuse report paths ``rules`` forbid, delete an earlier run's reports.
+
+    So an early exit (bad input, a crash) never leaves an old report that
+    reads as this run's result.
+    """
+    targets = report_targets(paths)
+    check_output_paths(targets, rules)
+    remove_stale(list(targets.values()))
+
+
 def finish(result: GateResult, paths: dict[str, str | None], title: str | None = None,
-           extra_written: Sequence[str] = ()) -> None:
+           extra_written: Sequence[str] = (), rules: OutputRules = TYPED_PATHS) -> None:
     """Write the reports, print the summary (to stderr when a report goes to stdout), exit."""
-    written = write_reports(result, paths)
+    written = write_reports(result, paths, rules)
     to_stdout = any(path == "-" for path in paths.values())
     click.echo(terminal.render(result, [*written, *extra_written], title), nl=False,
                err=to_stdout)

@@ -18,9 +18,10 @@ from typing import Any
 import click
 
 from gate.audit import error_text
-from gate.cli.common import analysis_options, finish
+from gate.cli.common import analysis_options, finish, start_reports
 from gate.diff import ranked_changes
 from gate.errors import InputError, InternalError, RoofgateError
+from gate.outfile import OutputRules
 from gate.pipeline import analyse, judge
 from gate.policy import load_policies, unused_waivers
 from gate.policy.globs import normalize_model_path
@@ -62,6 +63,8 @@ def gate_command(models: tuple[str, ...], targets: tuple[str, ...], dims: dict[s
     2 bad input or a model that could not be analysed (unless every policy sets
     allow_unanalysable), 3 internal error.
     """
+    rules = OutputRules(inputs=(*models, *policies, *targets, baseline or ""))
+    start_reports(report_paths(kwargs), rules)
     loaded_targets = _targets(targets)
     loaded_policies = load_policies(policies)
     base_runs = read_snapshot(baseline) if baseline else ()
@@ -73,7 +76,7 @@ def gate_command(models: tuple[str, ...], targets: tuple[str, ...], dims: dict[s
                    errors=errors, notes=notes)
     verdicts = [v for entry in result.entries for v in entry.verdicts]
     result = _with_notes(result, unused_waivers(loaded_policies, verdicts))
-    finish(result, report_paths(kwargs))
+    finish(result, report_paths(kwargs), rules=rules)
 
 
 def _targets(names: Sequence[str]) -> list[TargetProfile]:
@@ -165,13 +168,15 @@ def diff_command(old: str, new: str, targets: tuple[str, ...], dims: dict[str, i
     exporter that renames every node still gives a meaningful diff. Models need
     --target; snapshots carry their targets. Exits 0 after printing the diff.
     """
+    rules = OutputRules(inputs=(old, new, *targets))
+    start_reports(report_paths(kwargs), rules)
     loaded_targets = _targets(targets) if targets else []
     new_runs = _side(new, loaded_targets, dims, precision, None)
     shown = _single_model(new_runs)
     old_runs = _side(old, loaded_targets, dims, precision, shown)
     old_runs, new_runs, notes = _pair_up(old_runs, new_runs)
     result = judge(new_runs, old_runs, (), command="diff", today=_day(None), notes=notes)
-    written = write_reports(result, report_paths(kwargs))
+    written = write_reports(result, report_paths(kwargs), rules)
     to_stdout = any(path == "-" for path in report_paths(kwargs).values())
     click.echo(render_diff(result, limit, written, (old, new)), nl=False, err=to_stdout)
 

@@ -106,7 +106,8 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
 
 
 def to_json(profile: ModelProfile, records: Sequence[RunRecord]) -> str:
-    return json.dumps(profile_dict(profile, records), sort_keys=True, indent=2) + "\n"
+    return json.dumps(profile_dict(profile, records), sort_keys=True, indent=2,
+                      allow_nan=False) + "\n"
 
 
 # ------------------------------------------------------------------ CSV

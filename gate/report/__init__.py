@@ -1,20 +1,23 @@
 """Reporters: each formats one ``GateResult``; none recomputes anything.
 
 A reporter is a tiny protocol (a name, the command-line option that asks for
-it, and ``write(result, stream)``), one module per format. ``write_report``
-owns the output file: ``-`` means stdout, parent folders are created, and a
-half-written file is removed if the reporter fails.
+it, and ``write(result, stream)``), one module per format. ``write_reports``
+renders every asked-for report in memory first and hands them to
+``gate.outfile`` only when every renderer succeeded, so no report file can
+contradict the exit code (a renderer that fails leaves no report at all,
+never a "passed" beside an internal error).
 """
 
 from __future__ import annotations
 
 import importlib
+import io
 from collections.abc import Callable
 from typing import Protocol, TextIO, TypeVar
 
 import click
 
-from gate.outfile import open_output
+from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, write_files, write_text
 from gate.result import GateResult
 
 # One module per format; each defines ``REPORTER``.
@@ -40,21 +43,39 @@ def all_reporters() -> list[Reporter]:
     return [importlib.import_module(name).REPORTER for name in _REPORTER_MODULES]
 
 
+def render_report(reporter: Reporter, result: GateResult) -> str:
+    """One report as text, in memory."""
+    stream = io.StringIO()
+    reporter.write(result, stream)
+    return stream.getvalue()
+
+
 def write_report(reporter: Reporter, result: GateResult, path: str) -> None:
-    """Write one report to ``path`` ('-' = stdout), atomically for files."""
-    with open_output(path, f"{reporter.name} report") as stream:
-        reporter.write(result, stream)
+    """Render one report, then write it to ``path`` ('-' = stdout), atomically for files."""
+    write_text(path, render_report(reporter, result), f"{reporter.name} report")
 
 
-def write_reports(result: GateResult, paths: dict[str, str | None]) -> list[str]:
-    """Write every report whose path is set; returns the paths written."""
-    written = []
+def report_targets(paths: dict[str, str | None]) -> dict[str, str]:
+    """``{"junit report": path, ...}`` for every report whose path is set."""
+    return {f"{r.name} report": paths[r.name] for r in all_reporters()  # type: ignore[misc]
+            if paths.get(r.name)}
+
+
+def write_reports(result: GateResult, paths: dict[str, str | None],
+                  rules: OutputRules = TYPED_PATHS) -> list[str]:
+    """Render every report whose path is set, then write them all; returns the paths written.
+
+    Paths are checked against ``rules`` first (exit 2 when one may not be
+    written); nothing is written unless every renderer succeeded.
+    """
+    check_output_paths(report_targets(paths), rules)
+    rendered = []
     for reporter in all_reporters():
         path = paths.get(reporter.name)
         if path:
-            write_report(reporter, result, path)
-            written.append(path)
-    return written
+            rendered.append((path, f"{reporter.name} report", render_report(reporter, result)))
+    write_files(rendered)
+    return [path for path, _, _ in rendered]
 
 
 F = TypeVar("F", bound=Callable[..., object])

@@ -65,7 +65,7 @@ def parse_target(doc: YamlDocument, source: str | None = None) -> TargetProfile:
         root.bad("clock", "must be above zero")
     doc.raise_if_problems()
     rows, cols, dataflow, precisions = array
-    return TargetProfile(
+    return _figures_in_range(doc, TargetProfile(
         name=name or "", description=description or "", source=source or doc.path,
         clock_hz=float(clock_hz or 0.0), pe_rows=rows, pe_cols=cols, dataflow=dataflow,
         param_buffer_bytes=buffers[0], activation_buffer_bytes=buffers[1],
@@ -75,7 +75,46 @@ def parse_target(doc: YamlDocument, source: str | None = None) -> TargetProfile:
         static_power_w=energy[3], layer_overhead_s=float(layer_overhead_s or 0.0),
         vector=vector, host=host, placement=MappingProxyType(placement),
         weights_resident=bool(weights_resident),
-    )
+    ))
+
+
+# The range a target figure (in SI base units) may take when not zero. Beyond it, figures
+# derived from it (1 / bandwidth, bytes x energy, cycles / clock) can overflow a float to
+# infinity or round to zero. Common practice, no source: real figures lie within 1e-18..1e18.
+FIGURE_MIN = 1e-30
+FIGURE_MAX = 1e30
+
+
+def _figures_in_range(doc: YamlDocument, target: TargetProfile) -> TargetProfile:
+    """``target`` unchanged, or one ConfigError naming each figure out of range.
+
+    Why: a figure that passes as finite may still give an infinite latency or
+    energy (``bandwidth: 1e-320 B/s``), and no infinity may reach a report.
+    """
+    figures: list[tuple[str, float, str]] = [
+        ("clock", target.clock_hz, "Hz"), ("dram.bandwidth", target.dram_bytes_per_s, "B/s"),
+        ("energy.buffer_per_byte", target.buffer_energy_j_per_byte, "J"),
+        ("energy.noc_per_byte", target.noc_energy_j_per_byte, "J"),
+        ("energy.dram_per_byte", target.dram_energy_j_per_byte, "J"),
+        ("energy.static_power", target.static_power_w, "W"),
+        ("layer_overhead", target.layer_overhead_s, "s")]
+    for name, spec in target.precisions.items():
+        key = f"array.precisions.{name}"
+        figures += [(f"{key}.macs_per_pe_per_cycle", spec.macs_per_pe_per_cycle, ""),
+                    (f"{key}.energy_per_mac", spec.mac_energy_j, "J")]
+    for key, engine in (("vector_unit", target.vector), ("host", target.host)):
+        if engine is not None:
+            figures += [(f"{key}.ops_per_cycle", engine.ops_per_cycle, ""),
+                        (f"{key}.clock", engine.clock_hz, "Hz"),
+                        (f"{key}.energy_per_op", engine.op_energy_j, "J"),
+                        (f"{key}.layer_overhead", engine.overhead_s, "s")]
+    for key, value, unit in figures:
+        if value != 0 and not FIGURE_MIN <= abs(value) <= FIGURE_MAX:
+            doc.problem(None, key, f"{value:g} {unit} is outside the range a target figure may "
+                        f"take ({FIGURE_MIN:g} to {FIGURE_MAX:g} {unit}); figures derived from "
+                        "it would overflow".replace("  ", " "))
+    doc.raise_if_problems()
+    return target
 
 
 def _valid_name(name: str) -> bool:

@@ -1,0 +1,307 @@
+"""A hostile or careless pull request, through the public command line on real git repositories.
+
+Each case builds a throwaway repository (tests/gitkit.py), commits the base on
+``main``, makes the pull request's change on a branch and runs ``roofgate``
+as CI would. Every case asserts the exit code, the message, and that nothing
+outside the places a run may write changed: the hash of every file of the
+working tree outside the report folder, and of ``.git/config``, before and
+after. Models are built in code with gate/synth (nothing downloaded).
+
+Parameter bytes of a Gemm layer are in_features x out_features x 4 (fp32) plus
+the bias (ONNX operator specification, Gemm: B is K x N, C is N).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner, Result
+
+from gate.cli import cli
+from gate.synth.builder import save_model
+from gate.synth.layers import NetBuilder
+from tests.gitkit import Repo
+
+WORKTREE = Path(__file__).resolve().parents[1]
+TARGET = "ws-64x64-4mib"
+REPORT_DIR = "roofgate-out"
+POLICY = """\
+version: 1
+name: pr-gate
+rules:
+  - {id: params-fit-buffer, kind: fits_in_buffer, check: params}
+  - {id: latency-regression, kind: max_regression, metric: latency_s, max_increase_pct: 10}
+"""
+CONFIG = f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\nmodels:\n  - paths: ['models/**/*.onnx']\n"
+
+
+def fc_model(out_features: int, *, in_features: int = 1024, name: str = "fc"):
+    """One Gemm layer: (in x out) fp32 weights + out bias (external weights, no data)."""
+    builder = NetBuilder("fc", weights="external")
+    x = builder.input("x", [1, in_features])
+    builder.output(builder.gemm(x, out_features, name=name))
+    return builder.build()
+
+
+# --- the repository and its fingerprint -------------------------------------------------
+
+def make_repo(tmp_path: Path, config: str = CONFIG, extra: dict[str, str] | None = None) -> Repo:
+    """``main`` holds the config, the policy and models/a.onnx (1 MiB of weights); on branch ``pr``."""
+    repo = Repo(tmp_path / "repo")
+    repo.write("roofgate.yaml", config)
+    repo.write("policies/gate.yaml", POLICY)
+    for rel, text in (extra or {}).items():
+        repo.write(rel, text)
+    save_model(fc_model(256), repo.path / "models/a.onnx")
+    repo.commit("base")
+    repo.branch("pr")
+    return repo
+
+
+def fingerprint(repo: Repo) -> dict[str, str]:
+    """sha256 of every file (and link target) outside ``.git`` and roofgate-out, and of .git/config."""
+    found: dict[str, str] = {}
+    for folder, dirs, files in os.walk(repo.path):
+        rel_folder = Path(folder).relative_to(repo.path)
+        if rel_folder.parts[:1] in ((".git",), (REPORT_DIR,)):
+            dirs[:] = []
+            continue
+        for name in [*files, *(d for d in dirs if (Path(folder) / d).is_symlink())]:
+            path = Path(folder) / name
+            rel = (rel_folder / name).as_posix()
+            data = os.readlink(path).encode() if path.is_symlink() else path.read_bytes()
+            found[rel] = hashlib.sha256(data).hexdigest()
+    found[".git/config"] = hashlib.sha256((repo.path / ".git/config").read_bytes()).hexdigest()
+    return found
+
+
+def check(repo: Repo, *args: str) -> Result:
+    """``roofgate check --base main`` in ``repo`` (in process, stdout and stderr apart)."""
+    cwd = os.getcwd()
+    os.chdir(repo.path)
+    try:
+        return CliRunner().invoke(cli, ["check", "--base", "main", *args])
+    finally:
+        os.chdir(cwd)
+
+
+def run_cli(repo: Repo, *args: str) -> subprocess.CompletedProcess[str]:
+    """``roofgate ARGS`` as a separate process of this worktree's code (for signals, concurrency)."""
+    env = {**os.environ, "PYTHONPATH": str(WORKTREE)}
+    return subprocess.run([sys.executable, "-c", "from gate.cli import main; main()", *args],
+                          cwd=repo.path, env=env, capture_output=True, text=True, check=False)
+
+
+def reports(repo: Repo) -> dict[str, str]:
+    folder = repo.path / REPORT_DIR
+    if not folder.is_dir():
+        return {}
+    return {p.name: p.read_text(encoding="utf-8") for p in sorted(folder.iterdir())}
+
+
+def assert_clean_exit(result: Result, code: int, needle: str) -> None:
+    output = result.stdout + result.stderr
+    assert result.exit_code == code, output
+    assert needle in output, output
+    assert "Traceback" not in output
+
+
+# --- 2. reports only where they belong --------------------------------------------------
+
+@pytest.mark.parametrize("key, path, reason", [
+    ("json", ".git/config", "inside a .git folder"),
+    ("junit", ".git/hooks/pre-commit", "inside a .git folder"),
+    ("json", "../../x.json", "outside the working tree"),
+    ("json", "/tmp/roofgate-hostile-abs.json", "outside the working tree"),
+    ("markdown", "models/a.onnx", "model path"),
+    ("markdown", "models/notes.md", ""),  # allowed: inside the tree, not an input
+    ("json", "policies/gate.yaml", "a file this run reads"),
+    ("json", "roofgate.yaml", "a file this run reads"),
+    ("junit", "roofgate-out/", "folder, not a file"),
+    ("junit", "roofgate-out/..", "folder, not a file"),
+])
+def test_config_report_paths_stay_in_the_tree(tmp_path: Path, key: str, path: str,
+                                              reason: str) -> None:
+    repo = make_repo(tmp_path, CONFIG + f"reports: {{{key}: '{path}'}}\n")
+    save_model(fc_model(200), repo.path / "models/a.onnx")
+    repo.commit("shrink")
+    before = fingerprint(repo)
+    result = check(repo)
+    if not reason:
+        assert result.exit_code == 0, result.stdout + result.stderr
+        assert "roofgate: passed" in (repo.path / path).read_text(encoding="utf-8")
+    else:
+        assert_clean_exit(result, 2, "may not be written here")
+        assert reason in result.stderr
+        assert not Path("/tmp/roofgate-hostile-abs.json").exists()
+        assert not (tmp_path / "x.json").exists()
+    after = fingerprint(repo)
+    if not reason:
+        assert after.pop("models/notes.md")  # the one file this run may add outside roofgate-out
+    assert after == before
+
+
+def test_committed_links_at_partial_names_are_never_followed(tmp_path: Path) -> None:
+    """Links committed where the old fixed partial names were: the reports still land in place."""
+    outside = tmp_path / "outside.md"
+    outside.write_text("untouched\n")
+    repo = make_repo(tmp_path)
+    (repo.path / REPORT_DIR).mkdir()
+    os.symlink(outside, repo.path / REPORT_DIR / ".summary.md.partial")
+    os.symlink("../.git/config", repo.path / REPORT_DIR / ".junit.xml.partial")
+    save_model(fc_model(200), repo.path / "models/a.onnx")
+    repo.commit("shrink, and links where partial files were")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert result.exit_code == 0, result.stdout + result.stderr
+    assert outside.read_text() == "untouched\n"
+    assert fingerprint(repo) == before
+    for name in ("junit.xml", "summary.md", "result.json"):
+        written = repo.path / REPORT_DIR / name
+        assert written.is_file() and not written.is_symlink()
+    assert not [p for p in (repo.path / REPORT_DIR).iterdir() if p.name.startswith(".roofgate-")]
+
+
+def test_a_linked_report_folder_leading_out_of_the_tree_is_refused(tmp_path: Path) -> None:
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    repo = make_repo(tmp_path)
+    os.symlink(elsewhere, repo.path / REPORT_DIR)
+    repo.commit("report folder is a link")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 2, "outside the working tree")
+    assert list(elsewhere.iterdir()) == []
+    assert fingerprint(repo) == before
+
+
+def test_stale_reports_are_removed_when_the_run_exits_early(tmp_path: Path) -> None:
+    repo = make_repo(tmp_path)
+    (repo.path / "models/a.onnx").write_bytes(b"not an onnx model")
+    repo.commit("break the model")
+    folder = repo.path / REPORT_DIR
+    folder.mkdir()
+    for name in ("junit.xml", "summary.md", "result.json"):
+        (folder / name).write_text("an old PASS\n")
+    dead_partial = folder / ".roofgate-999999999-0123456789abcdef.partial"  # from a killed run
+    dead_partial.write_text("half")
+    before = fingerprint(repo)
+    result = check(repo, "--target", "no-such-target")
+    assert_clean_exit(result, 2, "no-such-target")
+    assert "an old PASS" not in "".join(reports(repo).values())
+    assert not dead_partial.exists()
+    assert fingerprint(repo) == before
+
+
+def test_a_failing_renderer_leaves_no_report_beside_the_exit_code(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from gate.report import jsonout
+
+    def broken(result: object) -> str:
+        raise ValueError("Out of range float values are not JSON compliant")
+
+    monkeypatch.setattr(jsonout, "render", broken)
+    repo = make_repo(tmp_path)
+    save_model(fc_model(200), repo.path / "models/a.onnx")
+    repo.commit("shrink")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 3, "internal error")
+    assert reports(repo) == {}  # no junit.xml or summary.md saying "passed"
+    assert fingerprint(repo) == before
+
+
+def test_an_overflowing_target_figure_is_refused_before_anything_is_written(
+        tmp_path: Path) -> None:
+    from gate.targets import builtin_target_yaml
+
+    text = builtin_target_yaml(TARGET).replace("name: ws-64x64-4mib", "name: slow-bus")
+    lines = [("  bandwidth: 1e-320 B/s" if line.strip().startswith("bandwidth:") else line)
+             for line in text.splitlines()]
+    config = CONFIG.replace(TARGET, "targets/slow.yaml")
+    repo = make_repo(tmp_path, config, {"targets/slow.yaml": "\n".join(lines) + "\n"})
+    save_model(fc_model(200), repo.path / "models/a.onnx")
+    repo.commit("shrink")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 2, "dram.bandwidth: 9.99989e-321 B/s is outside the range")
+    written = reports(repo)  # the model could not be costed: every report says so
+    assert json.loads(written["result.json"])["exit_code"] == 2
+    assert "passed" not in written["summary.md"] and "<failure" in written["junit.xml"] or \
+        "<error" in written["junit.xml"]
+    profiled = run_cli(repo, "profile", "models/a.onnx", "-t", "targets/slow.yaml",
+                       "--format", "json")
+    assert profiled.returncode == 2 and "Infinity" not in profiled.stdout, profiled
+    assert fingerprint(repo) == before
+
+
+def test_a_snapshot_the_reader_would_refuse_is_never_written(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from gate import snapshot
+
+    repo = make_repo(tmp_path)
+    monkeypatch.setattr(snapshot, "MAX_SNAPSHOT_BYTES", 2000)  # one run is ~3 kB
+    before = fingerprint(repo)
+    cwd = os.getcwd()
+    os.chdir(repo.path)
+    try:
+        result = CliRunner().invoke(cli, ["baseline", "models/a.onnx", "-t", TARGET,
+                                          "-o", f"{REPORT_DIR}/base.json"])
+    finally:
+        os.chdir(cwd)
+    assert_clean_exit(result, 2, "over the 2000-byte limit")
+    assert not (repo.path / REPORT_DIR / "base.json").exists()
+    assert fingerprint(repo) == before
+
+
+@pytest.mark.parametrize("length", [251, 255, 256])
+def test_long_report_names_are_written_or_refused_cleanly(tmp_path: Path, length: int) -> None:
+    repo = make_repo(tmp_path)
+    save_model(fc_model(200), repo.path / "models/a.onnx")
+    repo.commit("shrink")
+    name = "r" * (length - 5) + ".json"
+    before = fingerprint(repo)
+    result = check(repo, "--json", f"{REPORT_DIR}/{name}")
+    if length <= 255:
+        assert result.exit_code == 0, result.stdout + result.stderr
+        assert json.loads((repo.path / REPORT_DIR / name).read_text())["exit_code"] == 0
+    else:
+        assert_clean_exit(result, 2, "file name is too long")
+        assert reports(repo) == {}
+    assert fingerprint(repo) == before
+
+
+def test_two_concurrent_runs_leave_one_runs_reports_or_an_error(tmp_path: Path) -> None:
+    """Two checks on different targets write the same folder at once: never a mix."""
+    repo = make_repo(tmp_path)
+    save_model(fc_model(200), repo.path / "models/a.onnx")
+    repo.commit("shrink")
+    before = fingerprint(repo)
+    env = {**os.environ, "PYTHONPATH": str(WORKTREE)}
+    for _ in range(3):
+        runs = [subprocess.Popen(
+            [sys.executable, "-c", "from gate.cli import main; main()", "check", "--base",
+             "main", "--target", target], cwd=repo.path, env=env,
+            stdout=subprocess.PIPE, stderr=subprocess.PIPE) for target in
+            (TARGET, "os-16x16-512kib")]
+        codes = [run.wait() for run in runs]
+        for run in runs:
+            run.stdout.close()  # type: ignore[union-attr]
+            run.stderr.close()  # type: ignore[union-attr]
+        assert set(codes) <= {0, 1, 2}, codes
+        written = reports(repo)
+        if written:
+            assert sorted(written) == ["junit.xml", "result.json", "summary.md"]
+            named = {t for t in (TARGET, "os-16x16-512kib") if t in written["result.json"]}
+            assert len(named) == 1, "reports of two runs are mixed"
+            (target,) = named
+            assert target in written["junit.xml"] and target in written["summary.md"]
+            other = ({TARGET, "os-16x16-512kib"} - named).pop()
+            assert other not in written["junit.xml"] + written["summary.md"]
+    assert fingerprint(repo) == before
