@@ -13,6 +13,8 @@ import re
 
 import click
 
+from gate.logsafe import defuse_runner_markers
+
 EXIT_PASS = 0
 EXIT_GATE_FAILED = 1
 EXIT_BAD_INPUT = 2
@@ -25,8 +27,9 @@ _TERMINAL_CONTROL = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029]")
 
 
 def one_safe_line(text: str) -> str:
-    """``text`` as one line with no terminal control characters (shown as ``\\x1b``)."""
-    joined = " ".join(text.splitlines())
+    """``text`` as one line with no terminal control characters (shown as ``\\x1b``)
+    and no CI runner log marker (``##[error]``; see gate/logsafe)."""
+    joined = defuse_runner_markers(" ".join(text.splitlines()))
     return _TERMINAL_CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}"
                                  if ord(m.group()) <= 0xFF else f"\\u{ord(m.group()):04x}",
                                  joined)

@@ -32,6 +32,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
 from gate.errors import InputError, InternalError
+from gate.logsafe import defuse_json_markers
 from gate.outfile import write_text
 from gate.records import RunRecord, run_from_dict, run_to_dict
 
@@ -45,13 +46,14 @@ def canonical_json(data: Any) -> str:
     """``data`` as deterministic JSON text: sorted keys, indent 2, rounded floats, final newline.
 
     Non-ASCII is written as ``\\uXXXX`` escapes, so any name (even one holding a
-    lone surrogate, which UTF-8 cannot encode) is written and read back exactly.
+    lone surrogate, which UTF-8 cannot encode) is written and read back exactly;
+    ``##`` is written ``#\\u0023`` so no line can carry a CI runner marker.
 
     Raises InternalError on a NaN or infinity: records must never carry one, and
     JSON cannot (``NaN`` is not JSON).
     """
     try:
-        text = _pretty(_rounded(data), "")
+        text = defuse_json_markers(_pretty(_rounded(data), ""))
     except ValueError as exc:
         raise InternalError(f"cannot write JSON with a non-finite number ({exc})") from None
     return text + "\n"

@@ -305,3 +305,62 @@ def test_two_concurrent_runs_leave_one_runs_reports_or_an_error(tmp_path: Path) 
             other = ({TARGET, "os-16x16-512kib"} - named).pop()
             assert other not in written["junit.xml"] + written["summary.md"]
     assert fingerprint(repo) == before
+
+
+# --- 4. nothing model-supplied steers the log or the comment ------------------------------
+
+# Runner log commands: GitHub's legacy "##[cmd]" anywhere in a line and "::cmd::" at its
+# start (GitHub Actions workflow-command documentation), Azure's "##vso[" and TeamCity's
+# "##teamcity[" (from memory of their documentation).
+LOG_MARKERS = ("##[", "##vso[", "##teamcity[")
+HOSTILE_LAYER = ("#123 GH-7 @admin https://evil.example/x www.evil.example ##[error]forged "
+                 "##[add-mask]secret ##[stop-commands]tok ##vso[task.complete]")
+HOSTILE_MODEL = "models/##[error]pwned ::warning::x.onnx"
+
+
+def assert_log_inert(text: str) -> None:
+    """No runner marker in any line; ``::`` opens only roofgate's own annotation lines."""
+    for line in text.splitlines():
+        assert not any(marker in line for marker in LOG_MARKERS), line
+        assert not line.lstrip().startswith("::") or line.startswith("::error file=models/"), line
+
+
+def test_model_text_cannot_forge_runner_commands_or_links(tmp_path: Path) -> None:
+    repo = make_repo(tmp_path)
+    save_model(fc_model(2048, name=HOSTILE_LAYER), repo.path / HOSTILE_MODEL)  # 8 MiB: fails
+    save_model(fc_model(200, name=HOSTILE_LAYER), repo.path / "models/a.onnx")
+    repo.commit("hostile names")
+    before = fingerprint(repo)
+    result = check(repo, "--annotations", "-", "--markdown", f"{REPORT_DIR}/summary.md",
+                   "--json", f"{REPORT_DIR}/result.json")
+    assert result.exit_code == 1, result.stdout + result.stderr
+    assert "#\\x23[error]forged" in result.stdout  # shown, defused
+    assert_log_inert(result.stdout + result.stderr)
+    markdown = reports(repo)["summary.md"]
+    assert_log_inert(markdown)
+    for link in ("https://", "www.evil", "#123", "GH-7", "@admin"):
+        assert link not in markdown, link
+    assert "https&#8203;://evil.example" in markdown and "#&#8203;123" in markdown
+    data = json.loads(reports(repo)["result.json"])  # JSON reads back the exact names
+    assert HOSTILE_MODEL in {e["model"] for e in data["result"]["entries"]}
+    assert "##[" not in reports(repo)["result.json"]
+    for fmt in ("table", "csv", "json"):
+        shown = run_cli(repo, "profile", HOSTILE_MODEL, "-t", TARGET, "--format", fmt)
+        assert shown.returncode == 0, shown.stderr
+        assert_log_inert(shown.stdout + shown.stderr)
+        if fmt == "json":
+            names = {layer["name"] for layer in json.loads(shown.stdout)["layers"]}
+            assert HOSTILE_LAYER in names
+    diffed = run_cli(repo, "diff", "models/a.onnx", HOSTILE_MODEL, "-t", TARGET)
+    assert diffed.returncode == 0 and "forged" in diffed.stdout, diffed.stderr
+    assert_log_inert(diffed.stdout + diffed.stderr)
+    audited = run_cli(repo, "audit", "--json", f"{REPORT_DIR}/audit.json")
+    assert audited.returncode == 1 and "[2/2]" in audited.stderr, audited.stderr
+    assert_log_inert(audited.stdout + audited.stderr)
+    broken = repo.path / "models/##[error]broken.onnx"
+    broken.write_bytes(b"not a model")
+    refused = run_cli(repo, "profile", str(broken.relative_to(repo.path)))
+    assert refused.returncode == 2 and "broken.onnx" in refused.stderr
+    assert_log_inert(refused.stdout + refused.stderr)
+    broken.unlink()
+    assert fingerprint(repo) == before

@@ -16,6 +16,7 @@ from collections.abc import Sequence
 from typing import Any
 
 from gate.costmodel import ModelCost
+from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
 from gate.records import RunRecord, run_to_dict
@@ -42,9 +43,9 @@ def render(fmt: str, profile: ModelProfile, runs: Sequence[Run],
     """The whole output of ``roofgate profile`` in ``fmt`` (table, json or csv)."""
     if fmt == "json":
         return to_json(profile, records)
-    if fmt == "csv":
-        return to_csv(profile, runs)
-    return to_table(profile, runs)
+    if fmt == "csv":  # CSV keeps model text as is, apart from runner markers (gate/logsafe)
+        return defuse_runner_markers(to_csv(profile, runs))
+    return defuse_runner_markers(to_table(profile, runs))
 
 
 # ------------------------------------------------------------------ JSON
@@ -106,8 +107,8 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
 
 
 def to_json(profile: ModelProfile, records: Sequence[RunRecord]) -> str:
-    return json.dumps(profile_dict(profile, records), sort_keys=True, indent=2,
-                      allow_nan=False) + "\n"
+    return defuse_json_markers(json.dumps(profile_dict(profile, records), sort_keys=True,
+                                          indent=2, allow_nan=False)) + "\n"
 
 
 # ------------------------------------------------------------------ CSV

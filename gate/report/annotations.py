@@ -19,6 +19,7 @@ import re
 from dataclasses import dataclass
 from typing import TextIO
 
+from gate.logsafe import defuse_runner_markers
 from gate.report.text import shorten, visible
 from gate.result import FAIL, GateResult
 
@@ -44,10 +45,14 @@ def command(kind: str, message: str, **properties: str) -> str:
     Terminal control characters (escape sequences) are made visible first; the
     message keeps its line breaks (as ``%0A``), properties are one line.
     """
-    message = _CONTROLS.sub(lambda m: visible(m.group()), message)
-    props = ",".join(f"{key}={escape_property(_CONTROLS.sub(lambda m: visible(m.group()), v))}"
-                     for key, v in properties.items())
+    message = _visible(message)
+    props = ",".join(f"{key}={escape_property(_visible(v))}" for key, v in properties.items())
     return f"::{kind} {props}::{escape_data(message)}" if props else f"::{kind}::{escape_data(message)}"
+
+
+def _visible(text: str) -> str:
+    """Controls shown visibly (``\\x1b``), runner markers defused (``#\\x23[``; gate/logsafe)."""
+    return defuse_runner_markers(_CONTROLS.sub(lambda m: visible(m.group()), text))
 
 
 @dataclass(frozen=True, slots=True)

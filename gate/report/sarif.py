@@ -28,6 +28,7 @@ from typing import Any, TextIO
 from urllib.parse import quote
 
 from gate import __version__
+from gate.logsafe import defuse_json_markers
 from gate.report.text import one_line, shorten, term_safe
 from gate.result import FAIL, WAIVED, Finding, GateResult, Verdict
 
@@ -48,7 +49,8 @@ class SarifReporter:
     help = "Write failed rules as a SARIF 2.1.0 log for code-scanning uploads"
 
     def write(self, result: GateResult, stream: TextIO) -> None:
-        json.dump(sarif_log(result), stream, indent=2, ensure_ascii=True)
+        stream.write(defuse_json_markers(json.dumps(sarif_log(result), indent=2,
+                                                    ensure_ascii=True, allow_nan=False)))
         stream.write("\n")
 
 

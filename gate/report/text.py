@@ -22,6 +22,7 @@ import html
 import math
 import re
 
+from gate.logsafe import defuse_runner_markers
 from gate.records import Metric
 
 # --- characters ----------------------------------------------------------------
@@ -66,8 +67,9 @@ def xml_safe(text: str, *, multiline: bool = False) -> str:
 
 
 def term_safe(text: str) -> str:
-    """``text`` safe to print on a terminal: no escape sequences, one line."""
-    return _TERM_BAD.sub(lambda m: visible(m.group()), text)
+    """``text`` safe to print on a terminal and in a CI log: no escape sequences, one
+    line, no runner log marker (``##[error]``, ``::`` at the start; see gate/logsafe)."""
+    return defuse_runner_markers(_TERM_BAD.sub(lambda m: visible(m.group()), text))
 
 
 def one_line(text: str) -> str:
@@ -92,13 +94,20 @@ _MD_LEADING = frozenset("#-+=")
 # HTML-encoded: no raw HTML survives; a zero-width space after @ stops mentions
 # (GitHub resolves mentions on the rendered text, so an entity alone would not).
 _MD_ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "@": "@&#8203;"}
+# Also broken by a zero-width space: the starts of what GitHub turns into links by itself
+# (bare URLs "https://", "www.", "GH-123"; "#123" is handled beside the other characters).
+_ZERO_WIDTH = "&#8203;"
+_DIGITS = frozenset("0123456789")
+_MD_AUTOLINK = re.compile(r"(?i)(?<![a-z0-9])(?:https?|ftp|mailto|xmpp)(?=:)"
+                          r"|(?i:(?<![a-z0-9])www)(?=\.)|(?i:(?<![a-z0-9])gh)(?=-[0-9])")
 
 
 def md_escape(text: str) -> str:
     """``text`` as literal characters in GitHub-flavoured markdown, safe in a table cell.
 
-    No markup, link, raw HTML, mention, math or table break survives; newlines
-    and control characters become visible escapes, so the text stays on one line.
+    No markup, link, raw HTML, mention, math or table break survives, nor an
+    autolink (bare URL, ``www.``, ``#123``, ``GH-123``); newlines and control
+    characters become visible escapes, so the text stays on one line.
     """
     text = term_safe(text)  # newlines -> "\n" text, escape sequences -> "\x1b"
     out = []
@@ -109,7 +118,9 @@ def md_escape(text: str) -> str:
             out.append("\\" + char)
         else:
             out.append(char)
-    return "".join(out)
+        if char == "#" and text[position + 1:position + 2] in _DIGITS:
+            out.append(_ZERO_WIDTH)  # "#123" would link an issue or pull request
+    return _MD_AUTOLINK.sub(lambda m: m.group() + _ZERO_WIDTH, "".join(out))
 
 
 def md_code(text: str) -> str:
