@@ -218,7 +218,7 @@ def _cost_layer(layer: LayerProfile, ctx: _Context) -> LayerCost:
         return _idle(layer, ctx, modelled=True)
     target = ctx.target
     gemms = [g for g in work.gemms if g.macs > 0]
-    engine = target.engine_for(layer.op_type, layer.domain, bool(gemms))
+    engine = target.engine_for(layer.op_type, layer.domain, bool(gemms), conv_kind(layer))
     if engine == "array":
         return _on_array(layer, ctx)
     spec = target.vector if engine == "vector" else target.host
@@ -230,6 +230,24 @@ def _cost_layer(layer: LayerProfile, ctx: _Context) -> LayerCost:
     if ops <= 0 and layer.flops > 0:
         ops = layer.flops
     return _on_engine(layer, ctx, engine, spec, ops)
+
+
+def conv_kind(layer: LayerProfile) -> str:
+    """"depthwise" (one input channel per group), "grouped" (group > 1) or "" for a layer.
+
+    Any op whose type names a convolution (Conv, ConvInteger, QLinearConv,
+    ConvTranspose, ...) with one GEMM shape of ``count`` > 1 groups; its first
+    input is the data, channels on axis 1.
+    """
+    work = layer.work
+    if work is None or "Conv" not in layer.op_type or len(work.gemms) != 1:
+        return ""
+    groups = work.gemms[0].count
+    if groups <= 1:
+        return ""
+    data = layer.input_shapes[0] if layer.input_shapes else None
+    channels = data[1] if data is not None and len(data) > 1 else None
+    return "depthwise" if channels == groups else "grouped"
 
 
 def _idle(layer: LayerProfile, ctx: _Context, modelled: bool) -> LayerCost:

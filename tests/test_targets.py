@@ -137,7 +137,24 @@ def test_each_problem_names_its_key_and_what_to_do(old: str, new: str, expected:
 
 def test_vector_placement_needs_a_vector_unit() -> None:
     text = MINIMAL.replace("vector_unit:\n  ops_per_cycle: 64\n  energy_per_op: 0.5 pJ\n", "")
-    assert any("declares no vector_unit" in p for p in problems_of(text))
+    problem = next(p for p in problems_of(text) if "declares no vector_unit" in p)
+    assert problem.startswith("mine.yaml:28: placement.com.example:FancyOp:")
+    assert "add a 'vector_unit' section or place it on 'array' or 'host'" in problem
+
+
+def test_depthwise_and_grouped_convs_can_be_placed() -> None:
+    text = MINIMAL.replace("  Softmax: host\n", "  Softmax: host\n  depthwise-conv: vector\n"
+                                                 "  grouped-conv: array\n")
+    target = load_text(text)
+    assert target.placement["depthwise-conv"] == "vector"  # type: ignore[attr-defined]
+    assert target.engine_for("Conv", "", True, "depthwise") == "vector"  # type: ignore[attr-defined]
+    assert target.engine_for("Conv", "", True, "grouped") == "array"  # type: ignore[attr-defined]
+    problems = problems_of(MINIMAL.replace("  Softmax: host\n", "  depthwise: vector\n"))
+    assert ("mine.yaml:30: placement.depthwise: 'depthwise' is not an ONNX op type (did you mean "
+            "'depthwise-conv'?)") in problems[0]
+    no_vector = text.replace("vector_unit:\n  ops_per_cycle: 64\n  energy_per_op: 0.5 pJ\n", "")
+    assert any(p.startswith("mine.yaml:28: placement.depthwise-conv: placed on 'vector' but the "
+                            "target declares no vector_unit") for p in problems_of(no_vector))
 
 
 def test_yaml_syntax_errors_and_non_mappings_fail_cleanly() -> None:

@@ -15,6 +15,7 @@ from types import MappingProxyType
 from yaml.nodes import Node, ScalarNode
 
 from gate.targets.spec import (
+    CONV_KINDS,
     DATAFLOWS,
     ENGINES,
     PRECISION_BITS,
@@ -251,15 +252,23 @@ def _read_placement(root: Section, has_vector: bool) -> dict[str, str]:
             root.doc.problem(node, path, f"'{shown}' is not one of {', '.join(ENGINES)}{hint}")
             continue
         if value == "vector" and not has_vector:
-            root.doc.problem(node, path, "placed on 'vector' but the target declares no vector_unit")
+            root.doc.problem(node, path, "placed on 'vector' but the target declares no "
+                                         "vector_unit; add a 'vector_unit' section or place it "
+                                         "on 'array' or 'host'")
             continue
-        if ":" not in op_type and op_type not in _onnx_op_types():
-            hint = suggest(op_type, sorted(_onnx_op_types()))
+        if not _placeable(op_type):
+            hint = suggest(op_type, sorted(_onnx_op_types()) + list(CONV_KINDS.values()))
             root.doc.problem(node, path, f"'{op_type}' is not an ONNX op type{hint}; write ops of "
-                                         f"other domains as 'domain:OpType'")
+                                         f"other domains as 'domain:OpType', or use "
+                                         f"{' or '.join(CONV_KINDS.values())}")
             continue
         placement[op_type] = value
     return placement
+
+
+def _placeable(key: str) -> bool:
+    """An ONNX op type, 'domain:OpType', or a kind of convolution (``depthwise-conv``)."""
+    return ":" in key or key in _onnx_op_types() or key in CONV_KINDS.values()
 
 
 @lru_cache(maxsize=1)

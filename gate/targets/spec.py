@@ -19,6 +19,12 @@ from gate.errors import InputError
 DATAFLOWS = ("weight-stationary", "output-stationary", "matrix-vector", "vector")
 ENGINES = ("array", "vector", "host")
 
+# Placement keys that name a kind of convolution rather than an op type: a depthwise
+# conv (one input channel per group) and any other grouped conv (group > 1).
+CONV_KINDS: Mapping[str, str] = MappingProxyType({
+    "depthwise": "depthwise-conv", "grouped": "grouped-conv",
+})
+
 # Precision names a profile may declare, with their element size in bits.
 PRECISION_BITS: Mapping[str, int] = MappingProxyType({
     "int4": 4, "int8": 8, "int16": 16, "fp8": 8, "fp16": 16, "bf16": 16, "fp32": 32,
@@ -140,9 +146,16 @@ class TargetProfile:
     def activation_capacity_bytes(self) -> int:
         return self.activation_buffer_bytes or self.unified_buffer_bytes
 
-    def engine_for(self, op_type: str, domain: str, has_gemms: bool) -> str:
-        """Where a layer runs: placement first, then GEMMs on the array, the rest on the vector unit or host."""
-        placed = self.placement.get(f"{domain}:{op_type}" if domain else op_type)
+    def engine_for(self, op_type: str, domain: str, has_gemms: bool, conv_kind: str = "") -> str:
+        """Where a layer runs: placement first, then GEMMs on the array, the rest on the vector unit or host.
+
+        ``conv_kind`` ("depthwise", "grouped" or "") lets a placement of
+        ``depthwise-conv`` or ``grouped-conv`` decide before the op type; a
+        depthwise conv falls back to ``grouped-conv`` when only that is placed.
+        """
+        placed = self._conv_kind_placement(conv_kind)
+        if placed is None:
+            placed = self.placement.get(f"{domain}:{op_type}" if domain else op_type)
         if placed is None:
             placed = "array" if has_gemms else "vector"
         if placed == "array" and not has_gemms:
@@ -150,3 +163,13 @@ class TargetProfile:
         if placed == "vector" and self.vector is None:
             placed = "host"
         return placed
+
+    def _conv_kind_placement(self, conv_kind: str) -> str | None:
+        if not conv_kind:
+            return None
+        kinds = ("depthwise", "grouped") if conv_kind == "depthwise" else (conv_kind,)
+        for kind in kinds:
+            placed = self.placement.get(CONV_KINDS[kind])
+            if placed is not None:
+                return placed
+        return None
