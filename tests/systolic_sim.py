@@ -24,7 +24,7 @@ Slow on purpose (pure Python): use small GEMMs only.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 Slot = tuple[int, float] | None  # (index the value belongs to, value), or an empty register
@@ -79,23 +79,12 @@ def _ws_tile(a: list[list[float]], w: list[list[float]], out: list[list[float]],
     collected = macs = 0
     t = 0
     while collected < m_dim * c:
-        new_a, new_p = _grid(r, c), _grid(r, c)
-        for i in range(r):
-            for j in range(c):
-                if j == 0:
-                    m = t - i
-                    a_in: Slot = (m, a[m][k0 + i]) if 0 <= m < m_dim else None
-                else:
-                    a_in = a_reg[i][j - 1]
-                if a_in is None:
-                    continue
-                p_in: Slot = (a_in[0], 0.0) if i == 0 else p_reg[i - 1][j]
-                assert p_in is not None and p_in[0] == a_in[0], "skew broken"
-                weight = weights[i][j]
-                assert weight is not None
-                new_a[i][j] = a_in
-                new_p[i][j] = (a_in[0], p_in[1] + weight * a_in[1])
-                macs += 1
+        def feed(i: int, t: int = t) -> Slot:
+            m = t - i
+            return (m, a[m][k0 + i]) if 0 <= m < m_dim else None
+
+        new_a, new_p, stepped = _ws_step(a_reg, p_reg, weights, feed, lambda i, j, m: True)
+        macs += stepped
         a_reg, p_reg = new_a, new_p
         t += 1
         for j in range(c):
@@ -104,6 +93,31 @@ def _ws_tile(a: list[list[float]], w: list[list[float]], out: list[list[float]],
                 out[done[0]][n0 + j] += done[1]
                 collected += 1
     return cycles + t, macs
+
+
+def _ws_step(a_reg: list[list[Slot]], p_reg: list[list[Slot]],
+             weights: Sequence[Sequence[float | None]], feed: Callable[[int], Slot],
+             useful: Callable[[int, int, int], bool]) -> tuple[list[list[Slot]], list[list[Slot]], int]:
+    """One clock of a weight-stationary array; ``feed(i)`` enters row i from the left.
+
+    Returns the new input and partial-sum registers and the useful MACs performed.
+    """
+    r, c = len(weights), len(weights[0])
+    new_a, new_p = _grid(r, c), _grid(r, c)
+    macs = 0
+    for i in range(r):
+        for j in range(c):
+            a_in = feed(i) if j == 0 else a_reg[i][j - 1]
+            if a_in is None:
+                continue
+            p_in: Slot = (a_in[0], 0.0) if i == 0 else p_reg[i - 1][j]
+            assert p_in is not None and p_in[0] == a_in[0], "skew broken"
+            weight = weights[i][j]
+            assert weight is not None
+            new_a[i][j] = a_in
+            new_p[i][j] = (a_in[0], p_in[1] + weight * a_in[1])
+            macs += useful(i, j, a_in[0])
+    return new_a, new_p, macs
 
 
 def simulate_output_stationary(a: list[list[float]], w: list[list[float]], rows: int,
@@ -193,7 +207,7 @@ def _one_group_at_a_time(dataflow: str, a_groups: list[Matrix], w_groups: list[M
     simulate = simulate_weight_stationary if dataflow == "weight-stationary" else \
         simulate_output_stationary
     results = [simulate(a, w, rows, cols) for a, w in zip(a_groups, w_groups)]
-    product = [sum((r.product[m] for r in results), []) for m in range(len(a_groups[0]))]
+    product = [[value for r in results for value in r.product[m]] for m in range(len(a_groups[0]))]
     return SimResult(sum(r.cycles for r in results), sum(r.macs for r in results), product)
 
 
@@ -247,24 +261,17 @@ def _ws_pass(blocks: list[_Block], out: Matrix) -> tuple[int, int]:
     a_reg, p_reg = _grid(r, c), _grid(r, c)
     collected = macs = t = 0
     while collected < wanted:
-        new_a, new_p = _grid(r, c), _grid(r, c)
-        for i in range(r):
-            row_block = blocks[i // k_dim]
-            for j in range(c):
-                if j == 0:
-                    m = t - i
-                    # Rows past a shorter chunk's end carry zeros: the skew stays intact.
-                    value = row_block.a[m][i % k_dim] if 0 <= m < len(row_block.a) else 0.0
-                    a_in: Slot = (m, value) if 0 <= m < longest else None
-                else:
-                    a_in = a_reg[i][j - 1]
-                if a_in is None:
-                    continue
-                p_in: Slot = (a_in[0], 0.0) if i == 0 else p_reg[i - 1][j]
-                assert p_in is not None and p_in[0] == a_in[0], "skew broken"
-                new_a[i][j] = a_in
-                new_p[i][j] = (a_in[0], p_in[1] + weights[i][j] * a_in[1])
-                macs += int(i // k_dim == j // n_dim and a_in[0] < len(row_block.a))
+        def feed(i: int, t: int = t) -> Slot:
+            m, chunk = t - i, blocks[i // k_dim].a
+            # Rows past a shorter chunk's end carry zeros: the skew stays intact.
+            value = chunk[m][i % k_dim] if 0 <= m < len(chunk) else 0.0
+            return (m, value) if 0 <= m < longest else None
+
+        def useful(i: int, j: int, m: int) -> bool:
+            return i // k_dim == j // n_dim and m < len(blocks[i // k_dim].a)
+
+        new_a, new_p, stepped = _ws_step(a_reg, p_reg, weights, feed, useful)
+        macs += stepped
         a_reg, p_reg = new_a, new_p
         t += 1
         for j in range(c):
