@@ -140,7 +140,7 @@ def mib(n: float) -> str:
 
 def assert_fully_modelled(path: str) -> None:
     """A benchmark input the tool cannot fully see would time nothing: refuse it."""
-    from gate.pipeline import analyse
+    from gate.jobs import analyse
     from gate.targets import load_target
 
     (record,) = analyse(path, [load_target(TARGET)])
@@ -166,13 +166,13 @@ def bench_floor(work: Path, runs: int, quick: bool) -> list[str]:
     assert_fully_modelled(path)
     floor = measure("floor", [path], runs)
     profile = measure("cli", ["profile", path, "--target", TARGET, "--format", "json"], runs)
-    gate = measure("cli", ["gate", path, "--target", TARGET, "--policy", POLICY,
+    gate = measure("cli", ["evaluate", path, "--target", TARGET, "--policy", POLICY,
                            "--json", str(work / "gate.json")], runs)
     label = "ResNet-18" if quick else "ResNet-50"
     rows = [(f"| 1 | {label} inline weights: floor (onnx.load + shape inference) | "
             f"{floor['seconds']:.2f} s, {mib(floor['peak_bytes'])} | 1.00x | |")]
     for name, m in (("`roofgate profile` (1 target)", profile),
-                    ("`roofgate gate` (1 target, 1 policy)", gate)):
+                    ("`roofgate evaluate` (1 target, 1 policy)", gate)):
         rows.append(f"| 1 | {name} | {m['seconds']:.2f} s, {mib(m['peak_bytes'])} | "
                     f"time {ratio(m['seconds'], floor['seconds'])}, "
                     f"memory {ratio(m['peak_bytes'], floor['peak_bytes'])} | time <= 1.3x |")

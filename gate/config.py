@@ -76,6 +76,9 @@ class ProjectConfig:
     groups: tuple[ModelGroup, ...]
     exclude: tuple[str, ...] = ()
     reports: Mapping[str, str] = field(default_factory=dict)
+    # The top-level settings: what a model given on the command line that no group
+    # covers is analysed with.
+    defaults: ModelGroup = ModelGroup((DEFAULT_MODEL_GLOB,), (), ())
 
     def group_for(self, rel_path: str) -> ModelGroup | None:
         """The first group matching ``rel_path``; None when excluded or unmatched."""
@@ -89,6 +92,18 @@ class ProjectConfig:
     def is_model(self, rel_path: str) -> bool:
         return self.group_for(rel_path) is not None
 
+    def settings_for(self, file: str | Path) -> ModelGroup:
+        """How to analyse ``file`` (a path from the current folder) given by name on the
+        command line: its group when one covers it, else the top-level settings."""
+        path = Path(file).resolve()
+        try:
+            rel = path.relative_to(Path(self.root).resolve()).as_posix()
+        except ValueError:
+            return self.defaults
+        group = self.group_for(rel) if not any(
+            glob_match(p, rel) for p in self.exclude) else None
+        return group or self.defaults
+
 
 @dataclass(frozen=True, slots=True)
 class Overrides:
@@ -100,16 +115,31 @@ class Overrides:
     precision: str | None = None
 
 
+def find_config(start: str | Path = ".") -> Path | None:
+    """The ``roofgate.yaml`` in ``start`` or the nearest folder above it.
+
+    The search stops at the first folder holding ``.git`` (the repository
+    root), so a file outside the repository is never picked up.
+    """
+    folder = Path(start).resolve()
+    for candidate in (folder, *folder.parents):
+        if (candidate / CONFIG_FILE).is_file():
+            return candidate / CONFIG_FILE
+        if (candidate / ".git").exists():
+            return None
+    return None
+
+
 def load_config(path: str | Path | None, *, root: str | Path = ".",
                 overrides: Overrides = Overrides(), require_targets: bool = True) -> ProjectConfig:
-    """Read ``path`` (or ``<root>/roofgate.yaml`` if it exists) and apply ``overrides``.
+    """Read ``path`` (or the ``roofgate.yaml`` found from ``root`` upward) and apply ``overrides``.
 
     Raises ConfigError listing every problem of the file at once, and (unless
-    ``require_targets`` is False, for ``merge``) when a group has no target.
+    ``require_targets`` is False) when a group has no target.
     """
     root_path = Path(root)
-    if path is None and (root_path / CONFIG_FILE).is_file():
-        path = root_path / CONFIG_FILE
+    if path is None:
+        path = find_config(root_path)
     if path is None:
         config = ProjectConfig(None, str(root_path), (
             ModelGroup((DEFAULT_MODEL_GLOB,), (), ()),))
@@ -131,9 +161,9 @@ def apply_overrides(config: ProjectConfig, overrides: Overrides) -> ProjectConfi
             dims={**group.dims, **overrides.dims},
             precision=overrides.precision or group.precision,
         )
-        for group in config.groups
+        for group in (*config.groups, config.defaults)
     )
-    return replace(config, groups=groups)
+    return replace(config, groups=groups[:-1], defaults=groups[-1])
 
 
 def parse_dim_bindings(items: Iterable[str]) -> dict[str, int]:
@@ -182,7 +212,7 @@ def _read(path: Path) -> ProjectConfig:
                         f"glob {pattern!r}: {problem}")
     top.finish()
     doc.raise_if_problems()
-    return ProjectConfig(str(path), str(path.parent), groups, exclude, reports)
+    return ProjectConfig(str(path), str(path.parent), groups, exclude, reports, defaults)
 
 
 def _group(section: Section, defaults: ModelGroup) -> ModelGroup:

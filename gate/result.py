@@ -106,7 +106,7 @@ class Entry:
 class GateResult:
     """One run of the gate (profile, check or audit)."""
 
-    command: str  # "gate", "check", "audit"
+    command: str  # "evaluate", "check", "audit", "diff"
     policies: tuple[str, ...]
     entries: tuple[Entry, ...]  # sorted by (model, target)
     errors: tuple[ModelError, ...] = ()

@@ -122,7 +122,7 @@ def entry(head: RunRecord | None, base: RunRecord | None = None,
 
 
 def result(*entries: Entry, errors: tuple[ModelError, ...] = (), notes: tuple[str, ...] = (),
-           command: str = "gate") -> GateResult:
+           command: str = "evaluate") -> GateResult:
     ordered = tuple(sorted(entries, key=lambda e: (e.model, e.target)))
     return GateResult(command=command, policies=("policies/gate.yaml",), entries=ordered,
                       errors=errors, notes=notes)

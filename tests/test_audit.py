@@ -12,7 +12,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from gate import audit
+from gate import jobs, judge, shards, trend
 from gate.errors import InputError
 from gate.result import FAIL, ModelError, result_to_dict
 from tests.recordkit import entry, finding, layer, result, run, verdict
@@ -37,20 +37,20 @@ def per_model_results(count: int = 7) -> list:
 def test_shards_partition_the_sorted_models(count: int, models_total: int) -> None:
     models = [f"m/{k:03d}.onnx" for k in range(models_total)]
     random.Random(count).shuffle(models)
-    shares = [audit.shard_share(models, i, count) for i in range(1, count + 1)]
+    shares = [shards.shard_share(models, i, count) for i in range(1, count + 1)]
     assert sorted(m for share in shares for m in share) == sorted(models)
     assert max(map(len, shares)) - min(map(len, shares)) <= 1  # balanced within one model
-    assert shares == [audit.shard_share(sorted(models), i, count) for i in range(1, count + 1)]
+    assert shares == [shards.shard_share(sorted(models), i, count) for i in range(1, count + 1)]
 
 
 def test_combining_is_order_and_grouping_independent() -> None:
     parts = per_model_results()
-    whole = audit.combine_results(parts, "audit")
+    whole = judge.combine_results(parts, "audit")
     shuffled = parts[:]
     random.Random(1).shuffle(shuffled)
-    grouped = [audit.combine_results(shuffled[:3], "audit"),
-               audit.combine_results(shuffled[3:], "audit")]
-    assert audit.combine_results(grouped, "audit") == whole
+    grouped = [judge.combine_results(shuffled[:3], "audit"),
+               judge.combine_results(shuffled[3:], "audit")]
+    assert judge.combine_results(grouped, "audit") == whole
     assert [e.model for e in whole.entries] == sorted(e.model for e in whole.entries)
     assert whole.notes == ("n0", "n1") and len(whole.errors) == 1
 
@@ -59,9 +59,9 @@ def test_allow_errors_only_when_every_erroring_part_allows() -> None:
     ok = result(entry(run()), command="audit")
     bad = replace(result(errors=(ModelError("a.onnx", "x"),), command="audit"), allow_errors=True)
     strict = result(errors=(ModelError("b.onnx", "y"),), command="audit")
-    assert audit.combine_results([ok], "audit").allow_errors is False
-    assert audit.combine_results([ok, bad], "audit").allow_errors is True
-    assert audit.combine_results([ok, bad, strict], "audit").allow_errors is False
+    assert judge.combine_results([ok], "audit").allow_errors is False
+    assert judge.combine_results([ok, bad], "audit").allow_errors is True
+    assert judge.combine_results([ok, bad, strict], "audit").allow_errors is False
 
 
 def write_shards(tmp_path: Path, count: int) -> tuple[list[str], object]:
@@ -69,51 +69,51 @@ def write_shards(tmp_path: Path, count: int) -> tuple[list[str], object]:
     models = [p.entries[0].model for p in parts]
     paths = []
     for index in range(1, count + 1):
-        mine = set(audit.shard_share(models, index, count))
-        shard = audit.combine_results([p for p in parts if p.entries[0].model in mine], "audit")
+        mine = set(shards.shard_share(models, index, count))
+        shard = judge.combine_results([p for p in parts if p.entries[0].model in mine], "audit")
         path = str(tmp_path / f"shard-{index}.json")
-        audit.write_shard(path, shard, index, count, models)
+        shards.write_shard(path, shard, index, count, models)
         paths.append(path)
-    return paths, audit.combine_results(parts, "audit")
+    return paths, judge.combine_results(parts, "audit")
 
 
 def test_shard_files_merge_to_the_unsharded_result(tmp_path: Path) -> None:
     paths, whole = write_shards(tmp_path, 3)
-    merged = audit.read_shards(list(reversed(paths)))
+    merged = shards.read_shards(list(reversed(paths)))
     assert json.dumps(result_to_dict(merged)) == json.dumps(result_to_dict(whole))
 
 
 def test_merge_refuses_missing_duplicate_and_foreign_shards(tmp_path: Path) -> None:
     paths, _ = write_shards(tmp_path, 3)
     with pytest.raises(InputError, match=r"missing shard\(s\) 2/3"):
-        audit.read_shards([paths[0], paths[2]])
+        shards.read_shards([paths[0], paths[2]])
     with pytest.raises(InputError, match="given twice"):
-        audit.read_shards([paths[0], paths[0], paths[1], paths[2]])
+        shards.read_shards([paths[0], paths[0], paths[1], paths[2]])
     other = json.loads(Path(paths[1]).read_text())
     other["models_digest"] = "0" * 64
     Path(paths[1]).write_text(json.dumps(other))
     with pytest.raises(InputError, match="same roofgate version and checkout"):
-        audit.read_shards(paths)
+        shards.read_shards(paths)
     other["version"] = 99
     Path(paths[1]).write_text(json.dumps(other))
     with pytest.raises(InputError, match="version 99 is not supported"):
-        audit.read_shards(paths)
+        shards.read_shards(paths)
     Path(paths[1]).write_text("{not json")
     with pytest.raises(InputError, match="not a readable shard"):
-        audit.read_shards(paths)
+        shards.read_shards(paths)
     with pytest.raises(InputError, match="file not found"):
-        audit.read_shards([str(tmp_path / "nope.json")])
+        shards.read_shards([str(tmp_path / "nope.json")])
 
 
 @pytest.mark.parametrize("text,expected", [("1/1", (1, 1)), ("3/4", (3, 4))])
 def test_parse_shard(text: str, expected: tuple[int, int]) -> None:
-    assert audit.parse_shard(text) == expected
+    assert shards.parse_shard(text) == expected
 
 
 @pytest.mark.parametrize("text", ["0/4", "5/4", "1/0", "a/b", "2", "-1/3"])
 def test_parse_shard_refuses(text: str) -> None:
     with pytest.raises(InputError, match="--shard"):
-        audit.parse_shard(text)
+        shards.parse_shard(text)
 
 
 def test_trend_names_better_and_worse_models() -> None:
@@ -124,22 +124,22 @@ def test_trend_names_better_and_worse_models() -> None:
     base_fast = run(model="models/fast.onnx", layers=(layer("a", latency_s=1e-5),))
     res = result(entry(slow, base_slow), entry(fast, base_fast), entry(same, run(
         model="models/same.onnx")), entry(run(model="models/new.onnx")))
-    notes = audit.trend_notes(res)
+    notes = trend.trend_notes(res)
     assert notes[0].startswith("Trend vs the previous snapshot: 1 worse, 1 better, 1 unchanged")
     assert "worse: models/slow.onnx on ws-64x64-4mib: latency +100.0%" in notes
     assert "better: models/fast.onnx on ws-64x64-4mib: latency -50.0%" in notes
-    assert audit.trend_notes(result(entry(run()))) == []  # no previous snapshot: no trend
+    assert trend.trend_notes(result(entry(run()))) == []  # no previous snapshot: no trend
 
 
 def test_progress_plain_lines_off_a_terminal_and_a_bar_on_one() -> None:
     plain = io.StringIO()
-    progress = audit.Progress(plain, tty=False)
+    progress = jobs.Progress(plain, tty=False)
     progress(1, 2, "models/a\x1b[2J.onnx")
     progress(2, 2, "models/b.onnx")
     assert plain.getvalue().splitlines() == [
         "roofgate audit: [1/2] models/a\\x1b[2J.onnx", "roofgate audit: [2/2] models/b.onnx"]
     bar = io.StringIO()
-    progress = audit.Progress(bar, tty=True)
+    progress = jobs.Progress(bar, tty=True)
     progress(1, 4, "a.onnx")
     progress(4, 4, "b.onnx")
     text = bar.getvalue()
@@ -148,4 +148,28 @@ def test_progress_plain_lines_off_a_terminal_and_a_bar_on_one() -> None:
 
 
 def test_default_workers() -> None:
-    assert audit.default_workers(3) == 3 and audit.default_workers(0) >= 1
+    assert jobs.default_workers(3) == 3 and jobs.default_workers(0) >= 1
+
+
+def test_a_bug_in_a_worker_process_stops_the_run_as_an_internal_error(tmp_path, monkeypatch):
+    """A worker cannot send its exception back (tracebacks do not pickle): it sends the text,
+    and run_jobs raises it as an InternalError (exit 3), never as a model error."""
+    from gate.errors import InternalError
+    from gate.synth.builder import save_model
+    from gate.synth.layers import NetBuilder
+
+    def crash(*args, **kwargs):
+        raise ZeroDivisionError("simulated bug")
+
+    b = NetBuilder("fc")
+    b.output(b.gemm(b.input("x", [1, 16]), 8, name="fc"))
+    save_model(b.build(), tmp_path / "m.onnx")
+    job = jobs.Job(model="models/m.onnx", file=str(tmp_path / "m.onnx"),
+                   targets=("ws-64x64-4mib",))
+    monkeypatch.setattr(jobs, "cost_model", crash)
+    outcome = jobs._analyse_job_in_worker(job)
+    assert outcome.internal.startswith("ZeroDivisionError: simulated bug") and not outcome.runs
+    assert not outcome.error  # not blamed on the model
+    monkeypatch.setattr(jobs, "_analyse_in_process", jobs._analyse_job_in_worker)
+    with pytest.raises(InternalError, match="models/m.onnx.*ZeroDivisionError"):
+        jobs.run_jobs([job], workers=1)

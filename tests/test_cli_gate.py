@@ -1,4 +1,4 @@
-"""``roofgate gate``, ``baseline`` and ``diff`` through CliRunner: exit codes and reports."""
+"""``roofgate evaluate``, ``baseline`` and ``diff`` through CliRunner: exit codes and reports."""
 
 from __future__ import annotations
 
@@ -10,7 +10,8 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from gate.cli import cli, gate_cmd
+from gate import jobs
+from gate.cli import cli
 from gate.report.markdown import MARKER
 from gate.synth.builder import save_model
 from gate.synth.scenario import SPECIES_PR_LAST_WIDTH, species, wakeword
@@ -61,25 +62,25 @@ def _invoke(work: Path, args: list[str]):
 
 
 CASES = [
-    ("pass", ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml"], 0),
-    ("error rule fails", ["gate", "wide/species.onnx", "-t", "ws-64x64-4mib", "-p",
+    ("pass", ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml"], 0),
+    ("error rule fails", ["evaluate", "wide/species.onnx", "-t", "ws-64x64-4mib", "-p",
                           "policy.yaml"], 1),
-    ("waived before expiry", ["gate", "wide/species.onnx", "-t", "ws-64x64-4mib", "-p",
+    ("waived before expiry", ["evaluate", "wide/species.onnx", "-t", "ws-64x64-4mib", "-p",
                               "waived.yaml", "--date", "2026-12-31"], 0),
-    ("waiver expired", ["gate", "wide/species.onnx", "-t", "ws-64x64-4mib", "-p", "waived.yaml",
+    ("waiver expired", ["evaluate", "wide/species.onnx", "-t", "ws-64x64-4mib", "-p", "waived.yaml",
                         "--date", "2027-01-01"], 1),
-    ("unanalysable model", ["gate", "base/species.onnx", "broken.onnx", "-t", "ws-64x64-4mib",
+    ("unanalysable model", ["evaluate", "base/species.onnx", "broken.onnx", "-t", "ws-64x64-4mib",
                             "-p", "policy.yaml"], 2),
-    ("missing model", ["gate", "absent.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml"], 2),
-    ("bad policy", ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "bad.yaml"], 2),
-    ("no target", ["gate", "base/species.onnx", "-p", "policy.yaml"], 2),
-    ("unknown target", ["gate", "base/species.onnx", "-t", "nope", "-p", "policy.yaml"], 2),
-    ("no policy", ["gate", "base/species.onnx", "-t", "ws-64x64-4mib"], 2),
-    ("bad date", ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
+    ("missing model", ["evaluate", "absent.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml"], 2),
+    ("bad policy", ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "bad.yaml"], 2),
+    ("no target", ["evaluate", "base/species.onnx", "-p", "policy.yaml"], 2),
+    ("unknown target", ["evaluate", "base/species.onnx", "-t", "nope", "-p", "policy.yaml"], 2),
+    ("no policy", ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib"], 2),
+    ("bad date", ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
                   "--date", "31/12/2026"], 2),
-    ("newer baseline", ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
+    ("newer baseline", ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
                         "--baseline", "future.json"], 2),
-    ("bad dim", ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
+    ("bad dim", ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
                  "--dim", "batch"], 2),
 ]
 
@@ -92,7 +93,7 @@ def test_exit_codes(work, label, args, code) -> None:
 
 
 def test_bad_input_is_one_clear_line(work) -> None:
-    result = _invoke(work, ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p",
+    result = _invoke(work, ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p",
                             "policy.yaml", "--baseline", "future.json"])
     assert "future.json" in result.stderr and "newer roofgate" in result.stderr
 
@@ -101,8 +102,8 @@ def test_crash_exits_3_never_0_or_1(work, monkeypatch) -> None:
     def boom(*args, **kwargs):
         raise ZeroDivisionError("simulated bug")
 
-    monkeypatch.setattr(gate_cmd, "analyse", boom)
-    result = _invoke(work, ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p",
+    monkeypatch.setattr(jobs, "analyse", boom)
+    result = _invoke(work, ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p",
                             "policy.yaml"])
     assert result.exit_code == 3
     assert "internal error" in result.stderr and "ZeroDivisionError" in result.stderr
@@ -111,7 +112,7 @@ def test_crash_exits_3_never_0_or_1(work, monkeypatch) -> None:
 def test_reports_hold_failures_and_unanalysable_models(work, tmp_path) -> None:
     out = tmp_path / "out"
     result = _invoke(work, [
-        "gate", "wide/species.onnx", "broken.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
+        "evaluate", "wide/species.onnx", "broken.onnx", "-t", "ws-64x64-4mib", "-p", "policy.yaml",
         "--junit", str(out / "j.xml"), "--markdown", str(out / "s.md"),
         "--json", str(out / "r.json")])
     assert result.exit_code == 2
@@ -129,7 +130,7 @@ def test_reports_hold_failures_and_unanalysable_models(work, tmp_path) -> None:
 
 
 def test_json_to_stdout_keeps_the_summary_on_stderr(work) -> None:
-    result = _invoke(work, ["gate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p",
+    result = _invoke(work, ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib", "-p",
                             "policy.yaml", "--json", "-"])
     assert result.exit_code == 0
     assert json.loads(result.stdout)["exit_code"] == 0
@@ -149,7 +150,7 @@ def test_baseline_is_byte_identical_and_drives_regressions(work, tmp_path) -> No
     original = wide.read_bytes()
     try:
         wide.write_bytes((work / "wide" / "species.onnx").read_bytes())
-        result = _invoke(work, ["gate", "base/species.onnx", "-t", "os-16x16-512kib", "-p",
+        result = _invoke(work, ["evaluate", "base/species.onnx", "-t", "os-16x16-512kib", "-p",
                                 "policy.yaml", "--baseline", str(first), "--json", "-"])
     finally:
         wide.write_bytes(original)
@@ -216,14 +217,14 @@ def test_a_bug_in_roofgate_is_exit_3_not_an_unanalysable_model(work, monkeypatch
     def broken(*args: object, **kwargs: object) -> None:
         raise InternalError("cost function for Conv crashed (simulated)")
 
-    monkeypatch.setattr(gate_cmd, "analyse", broken)
-    result = _invoke(work, ["gate", "base/species.onnx", "-t", "ws-64x64-4mib",
+    monkeypatch.setattr(jobs, "analyse", broken)
+    result = _invoke(work, ["evaluate", "base/species.onnx", "-t", "ws-64x64-4mib",
                             "-p", "policy.yaml"])
     assert result.exit_code == 3 and "simulated" in result.stderr
 
 
 def test_dims_are_positive_on_every_command(work) -> None:
-    for command in (["gate", "base/species.onnx", "-p", "policy.yaml"],
+    for command in (["evaluate", "base/species.onnx", "-p", "policy.yaml"],
                     ["baseline", "base/species.onnx", "-o", "-"],
                     ["profile", "base/species.onnx"], ["audit", "base"]):
         result = _invoke(work, [*command, "-t", "ws-64x64-4mib", "--dim", "batch=0"])

@@ -16,7 +16,7 @@ from loadkit import chain, deeply_nested_if, model, save, small_cnn, vi
 from onnx import helper, numpy_helper
 
 from gate.cli import cli
-from gate.cli.profile_render import CSV_FIELDS, CSV_TARGET_FIELDS
+from gate.report.profile_text import CSV_FIELDS, CSV_TARGET_FIELDS
 from gate.model.loader import load_model
 from gate.profile import profile_model
 from gate.targets import builtin_target_names
@@ -243,7 +243,7 @@ def test_table_of_a_hundred_layers_is_aligned_and_shows_coverage(tmp_path: Path)
 
 
 def test_dim_and_target_options_read_alike_across_commands() -> None:
-    for command in ("profile", "gate", "baseline", "diff", "check", "audit"):
+    for command in ("profile", "evaluate", "baseline", "diff", "check", "audit"):
         text = CliRunner().invoke(cli, [command, "--help"]).output
         assert "-t, --target NAME|FILE" in text, command
         assert "--dim NAME=N" in text and "--precision TYPE" in text, command
@@ -251,7 +251,7 @@ def test_dim_and_target_options_read_alike_across_commands() -> None:
 
 def test_long_names_are_cut_in_the_middle_and_unbound_models_are_not_costed(
         tmp_path: Path) -> None:
-    from gate.cli.profile_render import clean
+    from gate.report.profile_text import clean
 
     cut = clean("block07.attention.projection.query.matmul", 20, keep_end=True)
     assert cut == "block07....ry.matmul" and len(cut) == 20

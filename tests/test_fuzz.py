@@ -57,7 +57,7 @@ def _run_gate(model_path: Path, out: Path, *extra: str) -> tuple[int, dict | Non
     if json_path.exists():
         json_path.unlink()
     result = CliRunner().invoke(
-        cli, ["gate", str(model_path), "--target", TARGET, "--policy", POLICY,
+        cli, ["evaluate", str(model_path), "--target", TARGET, "--policy", POLICY,
               "--json", str(json_path), *extra])
     assert result.exit_code in (0, 1, 2), (result.exit_code, result.output, result.exception)
     assert "Traceback" not in result.output
@@ -186,8 +186,8 @@ def test_random_yaml_never_crashes(tmp_path_factory: pytest.TempPathFactory,
     doc = folder / "doc.yaml"
     doc.write_bytes(document)
     runner = CliRunner()
-    for args in (["gate", str(model), "--target", TARGET, "--policy", str(doc)],
-                 ["gate", str(model), "--target", str(doc), "--policy", POLICY],
+    for args in (["evaluate", str(model), "--target", TARGET, "--policy", str(doc)],
+                 ["evaluate", str(model), "--target", str(doc), "--policy", POLICY],
                  ["audit", str(model), "--config", str(doc)]):
         result = runner.invoke(cli, args)
         assert result.exit_code in (0, 1, 2), (args, result.output, result.exception)

@@ -1,7 +1,7 @@
 """Fail closed, lose nothing, leak nothing: hostile inputs through the public command line.
 
 Every case goes through ``gate.cli.cli`` with click's ``CliRunner`` (stdout and
-stderr apart), as a user or a CI job would hit it: ``roofgate gate`` writing
+stderr apart), as a user or a CI job would hit it: ``roofgate evaluate`` writing
 every report, ``roofgate profile``, and ``roofgate check`` in a throwaway git
 repository. Models are built in code with ``onnx.helper`` (nothing downloaded).
 
@@ -29,7 +29,7 @@ import pytest
 from click.testing import CliRunner, Result
 from onnx import TensorProto, helper, numpy_helper
 
-from gate import pipeline
+from gate import jobs as pipeline
 from gate.cli import cli
 from gate.ops import registry
 from tests.gitkit import Repo
@@ -54,8 +54,8 @@ def invoke(args: list[str]) -> Result:
 
 def gate(model_path: Path | str, out: Path, *, policy: str = DEFAULT_POLICY,
          extra: tuple[str, ...] = ()) -> Result:
-    """``roofgate gate MODEL`` writing every report under ``out``, annotations on stdout."""
-    args = ["gate", str(model_path), "--target", TARGET, "--policy", policy]
+    """``roofgate evaluate MODEL`` writing every report under ``out``, annotations on stdout."""
+    args = ["evaluate", str(model_path), "--target", TARGET, "--policy", policy]
     for name in REPORTS:
         args += [f"--{name}", str(out / FILES[name])]
     return invoke([*args, "--annotations", "-", *extra])
@@ -636,7 +636,7 @@ def test_same_inputs_give_byte_identical_reports(tmp_path, bad_models) -> None:
     outputs = []
     for run in ("one", "two"):
         out = tmp_path / run
-        args = ["gate", str(good), str(hostile), str(bad_models["truncated-half"]),
+        args = ["evaluate", str(good), str(hostile), str(bad_models["truncated-half"]),
                 "-t", TARGET, "-t", "os-16x16-512kib", "-p", DEFAULT_POLICY,
                 "--date", "2026-06-01", "--annotations", str(out / "annotations.txt")]
         for name in REPORTS:
@@ -707,10 +707,10 @@ def test_cost_function_crash_is_internal_not_bad_input(tmp_path, monkeypatch) ->
 
 _DEBUG_SCRIPT = """
 import sys
-import gate.pipeline
+import gate.jobs
 def crash(*args, **kwargs):
     raise ZeroDivisionError("simulated bug")
-gate.pipeline.cost_model = crash
+gate.jobs.cost_model = crash
 from gate.cli import main
 sys.argv = ["roofgate", *sys.argv[1:]]
 main()
@@ -720,7 +720,7 @@ main()
 @pytest.mark.parametrize("debug", [False, True])
 def test_debug_shows_the_traceback_and_normal_runs_do_not(tmp_path, debug) -> None:
     path = save(small_cnn(), tmp_path / "m.onnx")
-    args = [*(["--debug"] if debug else []), "gate", str(path), "-t", TARGET,
+    args = [*(["--debug"] if debug else []), "evaluate", str(path), "-t", TARGET,
             "-p", DEFAULT_POLICY]
     done = subprocess.run([sys.executable, "-c", _DEBUG_SCRIPT, *args], capture_output=True,
                           text=True, timeout=60, shell=False, check=False, cwd=tmp_path)
@@ -890,7 +890,7 @@ main()
 
 def test_debug_crash_still_exits_3(tmp_path) -> None:
     path = save(small_cnn(), tmp_path / "m.onnx")
-    done = subprocess.run([sys.executable, "-c", _DEBUG_SCRIPT, "--debug", "gate", str(path),
+    done = subprocess.run([sys.executable, "-c", _DEBUG_SCRIPT, "--debug", "evaluate", str(path),
                            "-t", TARGET, "-p", DEFAULT_POLICY], capture_output=True, text=True,
                           timeout=60, shell=False, check=False, cwd=tmp_path)
     assert "Traceback" in done.stderr and done.returncode == 3
@@ -939,7 +939,7 @@ def test_error_line_with_hostile_name_is_inert_on_a_terminal(tmp_path) -> None:
     path = tmp_path / "cyclic.onnx"
     path.write_bytes(model(nodes, [vi("x", [1, 4])], [vi("b", [1, 4])]).SerializeToString())
     for args in (["profile", str(path)],
-                 ["gate", str(path), "-t", TARGET, "-p", DEFAULT_POLICY]):
+                 ["evaluate", str(path), "-t", TARGET, "-p", DEFAULT_POLICY]):
         code, output = _on_a_terminal(args, tmp_path)
         assert code == 2, output
         assert b"\x1b" not in output and b"\x07" not in output and b"\xc2\x9b" not in output

@@ -9,9 +9,10 @@ from math import prod
 import onnx
 import pytest
 
-from gate import pipeline
+from gate import jobs as pipeline
 from gate.errors import InputError, RoofgateError
-from gate.pipeline import analyse, judge
+from gate.jobs import analyse
+from gate.judge import judge
 from gate.policy import load_policy
 from gate.result import FAIL, PASS, WAIVED, ModelError
 from gate.synth.builder import save_model
@@ -111,7 +112,7 @@ def test_analyse_end_to_end_widened_stage_fails_the_buffer_rule(tmp_path) -> Non
         rules:
           - {id: fit, kind: fits_in_buffer, check: params, severity: error}
         """)
-    result = judge(head, base, [policy], command="gate", today=date(2026, 12, 2))
+    result = judge(head, base, [policy], command="evaluate", today=date(2026, 12, 2))
     (entry,) = result.entries
     assert entry.status == FAIL and result.exit_code == 1
     (finding,) = [f for f in entry.verdicts[0].findings if f.status == FAIL]
@@ -135,7 +136,7 @@ def test_judge_pairs_by_model_and_target_and_sorts(tmp_path) -> None:
     policy = _limit_policy(tmp_path)
     head = [run("b.onnx"), run("a.onnx", "t2"), run("a.onnx", "t1")]
     base = [run("a.onnx", "t1"), run("gone.onnx", "t1")]
-    result = judge(head, base, [policy], command="gate", today=date(2026, 1, 1),
+    result = judge(head, base, [policy], command="evaluate", today=date(2026, 1, 1),
                    errors=[ModelError("z.onnx", "broken"), ModelError("c.onnx", "broken")])
     assert [e.key if hasattr(e, "key") else (e.model, e.target) for e in result.entries] == [
         ("a.onnx", "t1"), ("a.onnx", "t2"), ("b.onnx", "ws-64x64-4mib"),
@@ -149,7 +150,7 @@ def test_judge_pairs_by_model_and_target_and_sorts(tmp_path) -> None:
     # "head/gemm" has 2048 parameter bytes, over 1 KiB: a failure naming the layer.
     assert a1.verdicts[0].status == FAIL
     assert [f.layer for f in a1.verdicts[0].findings] == ["head/gemm"]
-    shuffled = judge(list(reversed(head)), list(reversed(base)), [policy], command="gate",
+    shuffled = judge(list(reversed(head)), list(reversed(base)), [policy], command="evaluate",
                      today=date(2026, 1, 1))
     assert [(e.model, e.target) for e in shuffled.entries] == [
         (e.model, e.target) for e in result.entries]
@@ -162,8 +163,8 @@ def test_waiver_expiry_on_a_fixed_clock(tmp_path) -> None:
              expires: 2027-01-31}
         """)
     head = [run("m.onnx")]
-    on_the_day = judge(head, [], [policy], command="gate", today=date(2027, 1, 31))
-    day_after = judge(head, [], [policy], command="gate", today=date(2027, 2, 1))
+    on_the_day = judge(head, [], [policy], command="evaluate", today=date(2027, 1, 31))
+    day_after = judge(head, [], [policy], command="evaluate", today=date(2027, 2, 1))
     (held,) = on_the_day.entries[0].verdicts
     (lapsed,) = day_after.entries[0].verdicts
     assert held.status == WAIVED and on_the_day.exit_code == 0
@@ -181,11 +182,11 @@ def test_judge_without_policies_or_records() -> None:
 
 def test_judge_refuses_duplicate_records() -> None:
     with pytest.raises(InputError, match="appears twice"):
-        judge([run(), run()], [], [], command="gate", today=date(2026, 1, 1))
+        judge([run(), run()], [], [], command="evaluate", today=date(2026, 1, 1))
 
 
 def test_passing_rule_passes(tmp_path) -> None:
     policy = _limit_policy(tmp_path)
     small = run(layers=(layer("tiny", param_bytes=100),))
-    result = judge([small], [], [policy], command="gate", today=date(2026, 1, 1))
+    result = judge([small], [], [policy], command="evaluate", today=date(2026, 1, 1))
     assert result.entries[0].verdicts[0].status == PASS and result.exit_code == 0

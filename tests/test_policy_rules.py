@@ -17,7 +17,8 @@ from typing import Any
 import pytest
 
 from gate.errors import InputError
-from gate.pipeline import analyse, judge
+from gate.jobs import analyse
+from gate.judge import judge
 from gate.policy import (
     allow_unanalysable,
     evaluate,
@@ -535,7 +536,7 @@ def test_default_policy_on_the_demo_pull_request(tmp_path: Path) -> None:
         runs[variant] = [r for p in (SPECIES_PATH, WAKEWORD_PATH)
                          for r in analyse(str(tmp_path / variant / p), targets, shown_path=p)]
     policies = load_policies([Path(__file__).resolve().parent.parent / "policies/default.yaml"])
-    result = judge(runs["pr"], runs["base"], policies, command="gate", today=TODAY)
+    result = judge(runs["pr"], runs["base"], policies, command="evaluate", today=TODAY)
     verdicts = {(e.model, v.rule_id): v for e in result.entries for v in e.verdicts}
 
     fit = verdicts[(SPECIES_PATH, "params-fit-buffer")]
@@ -545,7 +546,7 @@ def test_default_policy_on_the_demo_pull_request(tmp_path: Path) -> None:
     assert "parameters 5.06 MiB exceed the 4.00 MiB parameter buffer" in finding.message
     assert result.exit_code == 1
 
-    base_verdicts = judge(runs["base"], [], policies, command="gate", today=TODAY)
+    base_verdicts = judge(runs["base"], [], policies, command="evaluate", today=TODAY)
     assert all(v.status == PASS for e in base_verdicts.entries for v in e.verdicts
                if v.rule_id == "params-fit-buffer")
     assert all(v.status == PASS for (model, rule), v in verdicts.items()

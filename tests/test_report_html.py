@@ -309,7 +309,7 @@ def test_removed_model_new_model_and_empty_run_render() -> None:
     removed = Entry(base.model, "t", None, base, None, ())
     new = make_run("models/new.onnx", "t", cnn_layers())
     added = Entry(new.model, "t", new, None, None, (make_verdict("r", new.model, "t", PASS),))
-    page = render(GateResult("gate", (), (added, removed)))
+    page = render(GateResult("evaluate", (), (added, removed)))
     _parse(page)
     assert "removed in this change" in page and ">new<" in page
     assert len([s for s in _svgs(page) if s.get("data-chart") == "roofline"]) == 1

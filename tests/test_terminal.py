@@ -23,7 +23,7 @@ def _lines(text: str) -> list[str]:
 def test_title_replaces_the_default_first_line() -> None:
     text = terminal.render(result(), (), "roofgate check: 0 model(s) changed since main")
     assert _lines(text)[0] == "roofgate check: 0 model(s) changed since main"
-    assert _lines(terminal.render(result()))[0].startswith("roofgate gate: 0 model x target")
+    assert _lines(terminal.render(result()))[0].startswith("roofgate evaluate: 0 model x target")
 
 
 def test_remedy_is_shown_once_per_rule_not_per_finding() -> None:

@@ -19,12 +19,24 @@ from gate.errors import InternalError
 _COMMAND_MODULES = (
     "gate.cli.profile_cmd",
     "gate.cli.targets_cmd",
-    "gate.cli.gate_cmd",
+    "gate.cli.files_cmd",
     "gate.cli.ci_cmd",
 )
 
+# ``--help`` lists commands in the order of the workflow, not alphabetically: the CI
+# commands first, then the ones on files given by name, then the helpers. A command
+# missing here is listed after these, alphabetically.
+COMMAND_ORDER = ("check", "audit", "merge", "evaluate", "profile", "diff", "baseline",
+                 "targets", "init", "demo")
+
 
 class _FailClosedGroup(click.Group):
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        """Commands in workflow order (``COMMAND_ORDER``), the rest after them."""
+        names = super().list_commands(ctx)
+        rank = {name: k for k, name in enumerate(COMMAND_ORDER)}
+        return sorted(names, key=lambda name: (rank.get(name, len(rank)), name))
+
     def invoke(self, ctx: click.Context) -> object:
         try:
             return super().invoke(ctx)

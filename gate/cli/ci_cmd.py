@@ -9,21 +9,21 @@ shows all of it on a fictional repository built in a temporary folder.
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 from typing import Any
 
 import click
 
-from gate import audit as engine
-from gate.cli.common import dim_option, finish, precision_option, start_reports, target_option
-from gate.config import (
-    DEFAULT_REPORTS,
-    Overrides,
-    ProjectConfig,
-    load_config,
-    resolve_file,
-    resolve_target,
+from gate.cli.common import (
+    chosen_reports,
+    config_option,
+    dim_option,
+    finish,
+    load_project,
+    output_rules,
+    precision_option,
+    start_reports,
+    target_option,
 )
 from gate.outfile import TYPED_PATHS, OutputRules
 from gate.report import report_options, report_paths
@@ -40,8 +40,7 @@ def register(cli: click.Group) -> None:
 def _config_options(func: Any) -> Any:
     """The project-config options of ``check`` and ``audit`` (report options come apart)."""
     for option in reversed((
-        click.option("--config", "config_path", metavar="FILE", default=None,
-                     help="Project config (default: roofgate.yaml at the repository root)."),
+        config_option(),
         target_option("Target profile for every model: a built-in name or a YAML file "
                       "(repeatable; replaces the config's targets)."),
         click.option("--policy", "-p", "policies", multiple=True, metavar="FILE",
@@ -62,47 +61,6 @@ def _config_options(func: Any) -> Any:
     return func
 
 
-def _load(kwargs: dict[str, Any], root: Path) -> ProjectConfig:
-    overrides = Overrides(
-        targets=tuple(_cli_ref(t) for t in kwargs["targets"]),
-        policies=tuple(str(Path(p).resolve()) for p in kwargs["policies"]),
-        dims=kwargs["dims"],
-        precision=kwargs["precision"],
-    )
-    return load_config(kwargs["config_path"], root=root, overrides=overrides)
-
-
-def _cli_ref(target: str) -> str:
-    return str(Path(target).resolve()) if _is_file_ref(target) else target
-
-
-def _is_file_ref(text: str) -> bool:
-    return text.endswith((".yaml", ".yml")) or "/" in text or os.sep in text
-
-
-def _paths(kwargs: dict[str, Any], config: ProjectConfig) -> dict[str, str | None]:
-    """Report paths: command-line flags over the config's, the defaults when neither sets any."""
-    flags = {k: v for k, v in report_paths(kwargs).items() if v}
-    if not config.reports and flags:  # the defaults stand in only when nothing asks
-        return dict(flags)
-    chosen: dict[str, str | None] = dict(config.reports or DEFAULT_REPORTS)
-    chosen.update(flags)
-    return chosen
-
-
-def _output_rules(kwargs: dict[str, Any], config: ProjectConfig, root: Path,
-                  inputs: tuple[str, ...] = ()) -> OutputRules:
-    """Reports stay inside the working tree (unless typed on the command line), out of
-    ``.git``, and off every file the run reads: config, policies, targets, baseline, models."""
-    read = [config.source or "", kwargs.get("baseline") or "", *inputs]
-    read += [resolve_file(config, p) for g in config.groups for p in g.policies]
-    read += [resolve_target(config, t) for g in config.groups for t in g.targets
-             if _is_file_ref(t)]
-    typed = tuple(v for v in report_paths(kwargs).values() if v)
-    return OutputRules(root=str(root), inputs=tuple(r for r in read if r),
-                       is_model=config.is_model, typed=typed)
-
-
 # --- check ----------------------------------------------------------------------------
 
 @click.command("check", short_help="Gate the models a branch changed (both sides from git).")
@@ -117,15 +75,16 @@ def check_command(base_ref: str, **kwargs: Any) -> None:
     no stored baseline is needed; --baseline uses a snapshot for the base side.
     Exit 0 pass, 1 a rule failed, 2 bad input or an unanalysable model.
     """
-    from gate.check import run_check
+    from gate.ci import run_check
     from gate.gitscan import repo_root
+    from gate.jobs import default_workers
 
     root = repo_root(Path.cwd())
-    config = _load(kwargs, root)
-    paths, rules = _paths(kwargs, config), _output_rules(kwargs, config, root)
+    config = load_project(kwargs, root=Path.cwd(), require_targets=True)
+    paths, rules = chosen_reports(kwargs, config), output_rules(kwargs, config, root)
     start_reports(paths, rules)
     result, title = run_check(root, config, base_ref, baseline=kwargs["baseline"],
-                              workers=engine.default_workers(kwargs["jobs"]))
+                              workers=default_workers(kwargs["jobs"]))
     finish(result, paths, title, rules=rules)
 
 
@@ -149,24 +108,26 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
     --baseline (the previous nightly snapshot) adds the trend: which models
     got better or worse.
     """
-    from gate.check import run_audit
+    from gate.ci import run_audit
+    from gate.jobs import default_workers
+    from gate.shards import parse_shard, shard_share, write_shard
 
-    root = Path.cwd()
-    config = _load(kwargs, root)
-    rules = _output_rules(kwargs, config, root)
-    start_reports(_paths(kwargs, config) if shard is None else report_paths(kwargs), rules)
-    shard_ij = engine.parse_shard(shard) if shard else None
+    config = load_project(kwargs, require_targets=True)
+    root = Path(config.root) if config.source else Path.cwd()
+    rules = output_rules(kwargs, config, Path.cwd())
+    start_reports(chosen_reports(kwargs, config) if shard is None else report_paths(kwargs), rules)
+    shard_ij = parse_shard(shard) if shard else None
     result, models = run_audit(root, config, paths, baseline=kwargs["baseline"],
-                               workers=engine.default_workers(kwargs["jobs"]), shard=shard_ij)
+                               workers=default_workers(kwargs["jobs"]), shard=shard_ij)
     if shard_ij is not None:
         index, count = shard_ij
         out = shard_out or f"roofgate-out/shard-{index}-of-{count}.json"
-        engine.write_shard(out, result, index, count, models)
+        write_shard(out, result, index, count, models)
         # A shard writes only its shard file unless report flags ask for partial reports.
         _finish_audit(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
-                      f"{len(engine.shard_share(models, index, count))} of {len(models)} models",
+                      f"{len(shard_share(models, index, count))} of {len(models)} models",
                       None, (out,), rules)
-    _finish_audit(result, _paths(kwargs, config), f"roofgate audit: {len(models)} models",
+    _finish_audit(result, chosen_reports(kwargs, config), f"roofgate audit: {len(models)} models",
                   snapshot, rules=rules)
 
 
@@ -174,7 +135,10 @@ def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
                   snapshot: str | None, written: tuple[str, ...] = (),
                   rules: OutputRules = TYPED_PATHS) -> None:
     """Add the trend notes, write the snapshot if asked, then the reports and the summary."""
-    result = engine.with_notes(result, engine.trend_notes(result))
+    from gate.judge import with_notes
+    from gate.trend import trend_notes
+
+    result = with_notes(result, trend_notes(result))
     if snapshot:
         from gate.snapshot import write_snapshot
 
@@ -187,8 +151,8 @@ def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
 
 @click.command("merge", short_help="Combine `audit --shard` results into one set of reports.")
 @click.argument("shard_files", nargs=-1, required=True, type=click.Path(path_type=str))
-@click.option("--config", "config_path", metavar="FILE", default=None,
-              help="Project config (for its report paths).")
+@config_option("Project config, for its report paths (default: the roofgate.yaml in the "
+               "current folder or the nearest one above it).")
 @click.option("--snapshot", default=None, metavar="FILE",
               help="Write a baseline snapshot of the merged audit.")
 @report_options
@@ -199,11 +163,13 @@ def merge_command(shard_files: tuple[str, ...], config_path: str | None,
     Refuses a missing or duplicated shard, or shards from different roofgate
     versions or checkouts.
     """
-    config = load_config(config_path, require_targets=False)
-    paths = _paths(kwargs, config)
-    rules = _output_rules({**kwargs, "baseline": None}, config, Path.cwd(), shard_files)
+    from gate.shards import read_shards
+
+    config = load_project({"config_path": config_path})
+    paths = chosen_reports(kwargs, config)
+    rules = output_rules({**kwargs, "baseline": None}, config, Path.cwd(), shard_files)
     start_reports(paths, rules)
-    result = engine.read_shards(list(shard_files))
+    result = read_shards(list(shard_files))
     models = len({e.model for e in result.entries} | {e.model for e in result.errors})
     _finish_audit(result, paths, f"roofgate audit (merged {len(shard_files)} "
                   f"shards): {models} models", snapshot, rules=rules)

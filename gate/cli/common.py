@@ -1,20 +1,33 @@
 """Options and the closing step shared by several commands, so they read and behave alike.
 
-Every command that costs a model takes the same ``--target/-t``, ``--dim`` and
-``--precision`` options (same names, metavars, help and parsing); every command
-that judges a result ends the same way: write the reports, print the terminal
-summary, exit with the result's code.
+Every command that costs a model takes the same ``--config``, ``--target/-t``,
+``--dim`` and ``--precision`` options (same names, metavars, help and
+parsing) and reads the project config the same way (``load_project``: the
+``roofgate.yaml`` found from the current folder upward, or ``--config``, with
+the flags replacing its settings); every command that judges a result ends the
+same way: write the reports, print the terminal summary, exit with the
+result's code.
 """
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable, Sequence
+from pathlib import Path
 from typing import Any, TypeVar
 
 import click
 
+from gate.config import (
+    DEFAULT_REPORTS,
+    Overrides,
+    ProjectConfig,
+    load_config,
+    resolve_file,
+    resolve_target,
+)
 from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, remove_stale
-from gate.report import report_targets, terminal, write_reports
+from gate.report import report_paths, report_targets, terminal, write_reports
 from gate.result import GateResult
 
 F = TypeVar("F", bound=Callable[..., Any])
@@ -63,9 +76,19 @@ def precision_option(help_text: str = PRECISION_HELP) -> Callable[[F], F]:
     return click.option("--precision", default=None, metavar="TYPE", help=help_text)
 
 
+CONFIG_HELP = ("Project config (default: the roofgate.yaml in the current folder or the nearest "
+               "one above it, up to the repository root).")
+
+
+def config_option(help_text: str = CONFIG_HELP) -> Callable[[F], F]:
+    """``--config FILE`` into ``config_path`` (None: search for roofgate.yaml)."""
+    return click.option("--config", "config_path", metavar="FILE", default=None, help=help_text)
+
+
 def analysis_options(func: F) -> F:
-    """``--target/-t``, ``--dim`` and ``--precision`` with their standard help."""
-    for option in reversed((target_option(), dim_option(), precision_option())):
+    """``--config``, ``--target/-t``, ``--dim`` and ``--precision`` with their standard help."""
+    for option in reversed((config_option(), target_option(), dim_option(),
+                            precision_option())):
         func = option(func)
     return func
 
@@ -79,6 +102,57 @@ def start_reports(paths: dict[str, str | None], rules: OutputRules) -> None:
     targets = report_targets(paths)
     check_output_paths(targets, rules)
     remove_stale(list(targets.values()))
+
+
+def load_project(kwargs: dict[str, Any], *, root: str | Path = ".", policies: bool = True,
+                 require_targets: bool = False) -> ProjectConfig:
+    """The project config with the command-line flags in ``kwargs`` replacing its settings.
+
+    Paths given on the command line are taken from the current folder; paths in
+    the file from the file's folder.
+    """
+    overrides = Overrides(
+        targets=tuple(_cli_ref(t) for t in kwargs.get("targets", ())),
+        policies=tuple(str(Path(p).resolve()) for p in kwargs.get("policies", ()))
+        if policies else (),
+        dims=kwargs.get("dims") or {},
+        precision=kwargs.get("precision"),
+    )
+    return load_config(kwargs.get("config_path"), root=root, overrides=overrides,
+                       require_targets=require_targets)
+
+
+def _cli_ref(target: str) -> str:
+    return str(Path(target).resolve()) if _is_file_ref(target) else target
+
+
+def _is_file_ref(text: str) -> bool:
+    return text.endswith((".yaml", ".yml")) or "/" in text or os.sep in text
+
+
+def chosen_reports(kwargs: dict[str, Any], config: ProjectConfig,
+                   defaults: bool = True) -> dict[str, str | None]:
+    """Report paths: command-line flags over the config's; the defaults (when ``defaults``)
+    stand in only when neither asks for any report."""
+    flags = {k: v for k, v in report_paths(kwargs).items() if v}
+    if not config.reports and (flags or not defaults):
+        return dict(flags)
+    chosen: dict[str, str | None] = dict(config.reports or DEFAULT_REPORTS)
+    chosen.update(flags)
+    return chosen
+
+
+def output_rules(kwargs: dict[str, Any], config: ProjectConfig, root: str | Path,
+                 inputs: Sequence[str] = ()) -> OutputRules:
+    """Reports stay inside the working tree (unless typed on the command line), out of
+    ``.git``, and off every file the run reads: config, policies, targets, baseline, models."""
+    read = [config.source or "", kwargs.get("baseline") or "", *inputs]
+    groups = (*config.groups, config.defaults)
+    read += [resolve_file(config, p) for g in groups for p in g.policies]
+    read += [resolve_target(config, t) for g in groups for t in g.targets if _is_file_ref(t)]
+    typed = tuple(v for v in report_paths(kwargs).values() if v)
+    return OutputRules(root=str(root), inputs=tuple(r for r in read if r),
+                       is_model=config.is_model, typed=typed)
 
 
 def finish(result: GateResult, paths: dict[str, str | None], title: str | None = None,

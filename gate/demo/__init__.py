@@ -144,9 +144,9 @@ def _build_repository(repo: Path, echo: Callable[[str], None]) -> None:
 
 
 def _check(repo: Path) -> tuple[GateResult, str, list[str]]:
-    from gate.audit import with_notes
-    from gate.check import run_check
+    from gate.ci import run_check
     from gate.config import load_config
+    from gate.judge import with_notes
     from gate.report import write_reports
 
     previous = Path.cwd()

@@ -1,7 +1,7 @@
 """The max_regression check: a metric may not get worse than the baseline by more than allowed.
 
-Model level compares the totals; layer level compares layers the diff matched
-(by name, or by signature when a layer was renamed). Added and removed layers
+Model level compares the totals; layer level compares layers the one layer
+matcher (``gate.diff``) paired (by name, or by signature when a layer was renamed). Added and removed layers
 are not regressions of an existing layer and are ignored here: their cost
 shows in the model totals, which a model-level rule limits.
 """
@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from gate.diff import diff_runs
 from gate.policy import spec
 from gate.policy.rules import Breach, Outcome, remedy_of
 from gate.policy.spec import Rule
@@ -89,32 +90,32 @@ def _model_pairs(rule: Rule, head: RunRecord, base: RunRecord,
 
 def _layer_pairs(rule: Rule, head: RunRecord, base: RunRecord,
                  diff: RunDiff | None) -> list[_Pair]:
-    """Matched layers in scope, with the metric's base and head values."""
+    """Matched layers in scope, with the metric's base and head values.
+
+    The layers are paired by the one matcher (``gate.diff``); without a diff
+    given, it is computed here. The diff lists layers in head order, so the
+    k-th change with a head side is ``head.layers[k]`` (no search by name).
+    """
+    if diff is None:
+        diff = diff_runs(base, head)
     pairs = []
-    if diff is not None:
-        for change in diff.layers:
-            if change.head_name is None or change.base_name is None:
-                continue  # added or removed
-            if not rule.scope.covers_layer(change.head_name, change.op_type):
-                continue
-            if rule.metric in change.deltas:
-                before, after = change.deltas[rule.metric]
-            else:  # unchanged in this metric
-                layer = head.layer(change.head_name)
-                if layer is None or rule.metric not in layer.metrics:
-                    continue
-                before = after = layer.metrics[rule.metric]
-            pairs.append(_Pair(_label(change.head_name, change.op_type, change.base_name),
-                               change.head_name, before, after))
-        return pairs
-    old = {layer.name: layer for layer in base.layers}
-    for layer in head.layers:  # no diff given: match by name
-        match = old.get(layer.name)
-        if match is None or not rule.scope.covers_layer(layer.name, layer.op_type):
+    head_index = -1
+    for change in diff.layers:
+        if change.head_name is not None:
+            head_index += 1
+        if change.head_name is None or change.base_name is None:
+            continue  # added or removed
+        if not rule.scope.covers_layer(change.head_name, change.op_type):
             continue
-        if rule.metric in layer.metrics and rule.metric in match.metrics:
-            pairs.append(_Pair(_label(layer.name, layer.op_type, layer.name), layer.name,
-                               match.metrics[rule.metric], layer.metrics[rule.metric]))
+        if rule.metric in change.deltas:
+            before, after = change.deltas[rule.metric]
+        else:  # unchanged in this metric
+            layer = head.layers[head_index]
+            if rule.metric not in layer.metrics:
+                continue
+            before = after = layer.metrics[rule.metric]
+        pairs.append(_Pair(_label(change.head_name, change.op_type, change.base_name),
+                           change.head_name, before, after))
     return pairs
 
 

@@ -40,7 +40,7 @@ KEY_FIGURES: tuple[tuple[str, str, bool], ...] = (
     ("act_dram_bytes", "activation DRAM traffic", True),
     ("coverage_work_share", "work modelled", False),
 )
-_TITLES = {"gate": "pull-request gate", "check": "model check", "audit": "model zoo audit"}
+_TITLES = {"evaluate": "model evaluation", "check": "model check", "audit": "model zoo audit"}
 
 
 class HtmlReporter:

@@ -1,55 +1,35 @@
-"""The two stages every command runs: ``analyse`` a model into records, ``judge`` records.
+"""From records to the one ``GateResult``: pair head and base, diff, evaluate policies, combine.
 
-``analyse`` loads and profiles a model once, then costs that one profile on
-every target and flattens each into a ``RunRecord``. ``judge`` pairs head and
-base records by (model, target), diffs each pair, evaluates every policy and
-returns the ``GateResult`` all reporters format. ``gate``, ``check`` and
-``audit`` differ only in where the records come from.
+``judge`` pairs head and base records by (model, target), diffs each pair,
+evaluates every policy and returns the ``GateResult`` all reporters format.
+Every command judges one model at a time (with that model's policies) and
+combines the per-model results with ``combine_results``, which is
+order-independent: ``-j 1``, ``-j 8`` and a sharded audit merged with
+``roofgate merge`` give the same result, and so byte-identical reports.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
-from dataclasses import replace
-from datetime import date
+from collections.abc import Iterable, Mapping, Sequence
+from datetime import date, datetime, timezone
 
-from gate.costmodel import cost_model
 from gate.diff import diff_runs
 from gate.errors import InputError
-from gate.model.loader import load_model
 from gate.policy import allow_unanalysable, evaluate
 from gate.policy.spec import Policy
-from gate.profile import profile_model
 from gate.records import RunRecord
 from gate.result import Entry, GateResult, ModelError, Verdict
-from gate.summarize import build_run_record
-from gate.targets.spec import TargetProfile
 
 
-def analyse(path: str, targets: Sequence[TargetProfile], *, dims: Mapping[str, int] = {},
-            precision: str | None = None, shown_path: str | None = None) -> list[RunRecord]:
-    """One record per target for the model at ``path`` (named ``shown_path`` in reports).
-
-    Loads and profiles once for all targets. Load warnings (for example external
-    data that was not opened) are kept as record notes so reports show them.
-    Raises ``RoofgateError`` subclasses for input that cannot be analysed.
-    """
-    _refuse_duplicate_targets(targets)
-    loaded = load_model(path, dict(dims))
-    profile = profile_model(loaded, precision)
-    name = shown_path if shown_path is not None else path
-    records = []
-    for target in targets:
-        record = build_run_record(name, profile, cost_model(profile, target), target)
-        extra = tuple(w for w in loaded.warnings if w not in record.notes)
-        records.append(replace(record, notes=record.notes + extra) if extra else record)
-    return records
+def utc_today() -> date:
+    """Today's date in UTC (waiver expiry is judged against it)."""
+    return datetime.now(timezone.utc).date()
 
 
 def judge(head: Sequence[RunRecord], base: Sequence[RunRecord], policies: Sequence[Policy], *,
           command: str, today: date, errors: Sequence[ModelError] = (),
           notes: Sequence[str] = ()) -> GateResult:
-    """Pair, diff and evaluate: the one ``GateResult`` of this run.
+    """Pair, diff and evaluate: the ``GateResult`` of these records.
 
     A (model, target) in ``head`` only is new (no diff); in ``base`` only, the
     model was removed (no verdicts: rules judge what would be merged). Entries
@@ -91,10 +71,33 @@ def _index(runs: Sequence[RunRecord], side: str) -> dict[tuple[str, str], RunRec
     return out
 
 
-def _refuse_duplicate_targets(targets: Sequence[TargetProfile]) -> None:
-    seen: set[str] = set()
-    for target in targets:
-        if target.name in seen:
-            raise InputError(f"target '{target.name}' is given twice; results are keyed by "
-                             "target name, so give each target once")
-        seen.add(target.name)
+def combine_results(results: Iterable[GateResult], command: str) -> GateResult:
+    """One GateResult from many; order-independent, so shards merge like an unsharded run."""
+    results = list(results)
+    errors = tuple(sorted({(e.model, e.message) for r in results for e in r.errors}))
+    erroring = [r for r in results if r.errors]
+    return GateResult(
+        command=command,
+        policies=tuple(sorted({p for r in results for p in r.policies})),
+        entries=tuple(sorted((e for r in results for e in r.entries),
+                             key=lambda e: (e.model, e.target))),
+        errors=tuple(ModelError(m, msg) for m, msg in errors),
+        notes=tuple(sorted({n for r in results for n in r.notes})),
+        allow_errors=bool(erroring) and all(r.allow_errors for r in erroring),
+    )
+
+
+def with_notes(result: GateResult, notes: Sequence[str]) -> GateResult:
+    """``result`` with ``notes`` placed before its own (each note once)."""
+    if not notes:
+        return result
+    return GateResult(result.command, result.policies, result.entries, result.errors,
+                      tuple(dict.fromkeys((*notes, *result.notes))), result.allow_errors)
+
+
+def base_by_model(runs: Iterable[RunRecord]) -> Mapping[str, list[RunRecord]]:
+    """Group baseline records by model path."""
+    out: dict[str, list[RunRecord]] = {}
+    for run in runs:
+        out.setdefault(run.model, []).append(run)
+    return out

@@ -1,11 +1,12 @@
-"""What ``roofgate check`` and ``roofgate audit`` do, apart from the command line.
+"""CI glue: from the project config and a repository to jobs and one judged result.
 
 ``run_check`` finds the models changed between the merge base of a ref and
 HEAD, analyses both sides (each read from git into a temporary file, so the
 working tree is never trusted to hold the base) and judges each model on its
 own. ``run_audit`` analyses every model of a zoo (or one shard of it) against
-an optional previous snapshot. Both combine per-model results with
-``gate.audit.combine_results``.
+an optional previous snapshot. ``run_files`` judges model files given by name.
+All three analyse through ``gate.jobs.run_jobs`` and combine per-model results
+with ``gate.combine_results``.
 """
 
 from __future__ import annotations
@@ -18,23 +19,26 @@ from datetime import date
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from gate import audit as engine
 from gate import gitscan
+from gate import jobs as engine
 from gate.config import ModelGroup, ProjectConfig, resolve_file, resolve_target
 from gate.errors import InputError
+from gate.globs import normalize_path as normalize_model_path
+from gate.judge import base_by_model, combine_results, judge, utc_today, with_notes
 from gate.records import RunRecord
 from gate.result import GateResult, ModelError
+from gate.shards import shard_share
 
 if TYPE_CHECKING:  # loaded lazily at run time (only when a group names policies)
     from gate.policy.spec import Policy
 
-_Analysed = dict[str, tuple[list[RunRecord], str]]  # model key -> (runs, error text)
+_Analysed = engine.Analysed
 
 
 def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str | None,
               workers: int, today: date | None = None) -> tuple[GateResult, str]:
     """Gate the models changed since the merge base of ``base_ref``; (result, title line)."""
-    today = today or engine.utc_today()
+    today = today or utc_today()
     base_commit = gitscan.merge_base(base_ref, root)
     changes = gitscan.changed_models(base_commit, root, config.is_model)
     title = (f"roofgate check: {len(changes)} model(s) changed since {base_ref} "
@@ -43,14 +47,14 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
         note = f"No models changed between {base_ref} (merge base {base_commit[:12]}) and HEAD."
         files = sorted({resolve_file(config, p) for g in config.groups for p in g.policies})
         return GateResult("check", tuple(files), (), notes=(note,)), title
-    stored = engine.base_by_model(_read_snapshot(baseline)) if baseline else None
+    stored = base_by_model(_read_snapshot(baseline)) if baseline else None
     with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
         jobs, base_jobs, errors = _check_jobs(root, config, changes, base_commit, stored, tmp)
         analysed = engine.run_jobs([*jobs, *base_jobs], workers)
     policies = _PolicyCache(config)
     results = [_judge_change(change, analysed, stored, errors.get(change.path, []), policies,
                              today) for change in changes]
-    return engine.combine_results(results, "check"), title
+    return combine_results(results, "check"), title
 
 
 def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
@@ -82,7 +86,7 @@ def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
     if errors:
         base_runs = []
     group = _group(policies.config, change)
-    return engine.judge_model(head_runs, base_runs, policies.get(group), command="check",
+    return judge(head_runs, base_runs, policies.get(group), command="check",
                               today=today, errors=errors, notes=[*notes, *unjudged_notes(group)])
 
 
@@ -97,6 +101,11 @@ class _PolicyCache:
         if group.policies not in self._loaded:
             self._loaded[group.policies] = _policies(self.config, group)
         return self._loaded[group.policies]
+
+    def all(self) -> list[Policy]:
+        """Every policy loaded so far, each once."""
+        unique = {p.path: p for loaded in self._loaded.values() for p in loaded}
+        return list(unique.values())
 
 
 def _base_key(model: str) -> str:
@@ -189,12 +198,12 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
               workers: int, shard: tuple[int, int] | None = None,
               today: date | None = None) -> tuple[GateResult, list[str]]:
     """Audit the zoo (or one shard); returns the raw combined result and the full model list."""
-    today = today or engine.utc_today()
+    today = today or utc_today()
     present = find_models(root, config, paths)
-    stored = engine.base_by_model(_read_snapshot(baseline)) if baseline else {}
+    stored = base_by_model(_read_snapshot(baseline)) if baseline else {}
     gone = [m for m in stored if m not in present and _in_scope(root, config, paths, m)]
     models = sorted({*present, *gone})
-    mine = engine.shard_share(models, *shard) if shard else models
+    mine = shard_share(models, *shard) if shard else models
     jobs = [_job(config, _audit_group(config, m), m, str(root / m)) for m in mine if m in present]
     analysed = engine.run_jobs(jobs, workers, engine.Progress(label="audit"))
     policies = _PolicyCache(config)
@@ -207,10 +216,10 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
         if model in present:  # a model gone from the zoo keeps its base runs: all deleted
             base_runs, notes = on_head_targets(base_runs, head_runs)
         group = _audit_group(config, model)
-        results.append(engine.judge_model(
+        results.append(judge(
             head_runs, [] if error else base_runs, policies.get(group), command="audit",
             today=today, errors=errors, notes=[*notes, *unjudged_notes(group)]))
-    return engine.combine_results(results, "audit"), models
+    return combine_results(results, "audit"), models
 
 
 # One text for every model without a policy, so per-model notes merge into one line (and
@@ -261,3 +270,107 @@ def _in_scope(root: Path, config: ProjectConfig, paths: Sequence[str], model: st
         if model == prefix or prefix in (".", "") or model.startswith(prefix.rstrip("/") + "/"):
             return True
     return False
+
+
+# --- model files given by name -----------------------------------------------------
+
+NO_POLICY_TEXT = ("no policy applies to this model, so nothing would judge it; pass -p FILE, "
+                  "add 'policies:' to roofgate.yaml, or pass -p default for the bundled policy")
+NO_TARGET_TEXT = ("give at least one --target (a built-in name, see `roofgate targets`, or a "
+                  "target YAML file), or add 'targets:' to roofgate.yaml")
+
+
+def file_jobs(config: ProjectConfig, models: Sequence[str], *, need_policy: bool = False,
+              ) -> list[tuple[engine.Job, ModelGroup]]:
+    """One job per model file given by name (each once), with the settings that apply to it.
+
+    A file a model group covers takes that group's targets, dims and precision;
+    any other file takes the config's top-level settings (command-line flags
+    already replaced both). InputError when a file ends up with no target (or,
+    when ``need_policy``, no policy: nothing would judge it).
+    """
+    out = []
+    for path in dict.fromkeys(models):
+        group = config.settings_for(path)
+        if not group.targets:
+            raise InputError(NO_TARGET_TEXT, path)
+        if need_policy and not group.policies:
+            raise InputError(NO_POLICY_TEXT, path)
+        job = _job(config, group, normalize_model_path(path), path)
+        out.append((job, group))
+    return out
+
+
+def run_files(config: ProjectConfig, models: Sequence[str], *, baseline: str | None,
+              today: date | None = None) -> GateResult:
+    """Judge model files given by name (``roofgate evaluate``), against a snapshot if given."""
+    from gate.policy import unused_waivers
+
+    today = today or utc_today()
+    planned = file_jobs(config, models, need_policy=True)
+    _load_targets_once(planned)
+    stored = base_by_model(_read_snapshot(baseline)) if baseline else {}
+    analysed = engine.run_jobs([job for job, _ in planned], workers=1)
+    policies = _PolicyCache(config)
+    results = []
+    for job, group in planned:
+        head_runs, error = analysed[job.result_key]
+        wanted = {run.target for run in head_runs}
+        base_runs = [r for r in stored.get(job.model, []) if r.target in wanted]
+        notes = _baseline_notes(baseline, job.model, head_runs, base_runs)
+        results.append(judge(head_runs, base_runs, policies.get(group), command="evaluate",
+                             today=today, errors=[ModelError(job.model, error)] if error else [],
+                             notes=[*notes, *unjudged_notes(group)]))
+    result = combine_results(results, "evaluate")
+    verdicts = [v for entry in result.entries for v in entry.verdicts]
+    return with_notes(result, unused_waivers(policies.all(), verdicts))
+
+
+def _load_targets_once(planned: Sequence[tuple[engine.Job, ModelGroup]]) -> None:
+    """Load every target up front: a bad target file is one config error, not one per model."""
+    from gate.targets import load_targets
+
+    load_targets(tuple(dict.fromkeys(t for job, _ in planned for t in job.targets)))
+
+
+def _baseline_notes(baseline: str | None, model: str, head: Sequence[RunRecord],
+                    base: Sequence[RunRecord]) -> list[str]:
+    if not baseline:
+        return ["no baseline given: no diffs, and regression rules compare against nothing"]
+    if head and not base:
+        return [f"{model}: not in the baseline {baseline}; judged as a new model"]
+    return []
+
+
+def analyse_files(config: ProjectConfig, models: Sequence[str],
+                  ) -> tuple[list[RunRecord], list[ModelError], int]:
+    """Records of model files given by name (``roofgate baseline``): (runs, errors, targets)."""
+    planned = file_jobs(config, models)
+    _load_targets_once(planned)
+    analysed = engine.run_jobs([job for job, _ in planned], workers=1)
+    runs = [run for job, _ in planned for run in analysed[job.result_key][0]]
+    errors = [ModelError(job.model, analysed[job.result_key][1]) for job, _ in planned
+              if analysed[job.result_key][1]]
+    return runs, errors, len({t for job, _ in planned for t in job.targets})
+
+
+def diff_sides(config: ProjectConfig, old: str, new: str, *,
+               explicit_targets: bool) -> GateResult:
+    """The unjudged result of ``roofgate diff OLD NEW`` (each a model or a snapshot)."""
+    from gate.compare import pair_sides, single_model
+
+    new_runs = _diff_side(config, new, None, explicit_targets)
+    old_runs = _diff_side(config, old, single_model(new_runs), explicit_targets)
+    old_runs, new_runs, notes = pair_sides(old_runs, new_runs)
+    return judge(new_runs, old_runs, (), command="diff", today=utc_today(), notes=notes)
+
+
+def _diff_side(config: ProjectConfig, path: str, shown: str | None,
+               explicit_targets: bool) -> list[RunRecord]:
+    from gate.compare import is_snapshot, read_side
+    from gate.targets import load_targets
+
+    group = config.defaults if is_snapshot(path) else config.settings_for(path)
+    names = group.targets if explicit_targets or not is_snapshot(path) else ()
+    targets = load_targets(tuple(dict.fromkeys(resolve_target(config, t) for t in names)))
+    return read_side(path, targets, group.dims, group.precision, shown)

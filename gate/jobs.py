@@ -1,0 +1,244 @@
+"""The one analysis path: load, profile and cost models into records, with one error mapping.
+
+Every command that analyses a model (``profile``, ``evaluate``, ``baseline``,
+``diff``, ``check``, ``audit``) comes through here:
+
+* ``analyse_model`` loads a model once, profiles it once, costs that profile
+  on every target and builds one ``RunRecord`` per target. It raises
+  ``RoofgateError`` for input roofgate cannot analyse.
+* ``run_jobs`` analyses many ``Job``s (in worker processes when asked) and
+  maps each failure in one place: a model roofgate cannot analyse becomes an
+  error message for that model (the run fails closed on it, unless a policy
+  sets ``allow_unanalysable``); anything else is roofgate's own bug and stops
+  the whole run as an ``InternalError`` (exit 3), whatever the policy says.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import os
+import shutil
+import sys
+import traceback
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, replace
+from typing import Any, TextIO
+
+from gate.costmodel import ModelCost, cost_model
+from gate.errors import InputError, InternalError, RoofgateError, one_safe_line
+from gate.model.loader import LoadedModel, load_model
+from gate.profile import ModelProfile, profile_model
+from gate.records import RunRecord, run_from_dict, run_to_dict
+from gate.summarize import build_run_record
+from gate.targets.spec import TargetProfile
+
+
+@dataclass(frozen=True, slots=True)
+class Job:
+    """Analyse one model file on some targets (plain data: crosses process boundaries)."""
+
+    model: str  # how reports name the model (repository-relative path)
+    file: str  # the file to load (may be a temporary copy of a git blob)
+    targets: tuple[str, ...]  # built-in names or absolute paths
+    dims: tuple[tuple[str, int], ...] = ()
+    precision: str | None = None
+    key: str = ""  # what results are keyed by (default: ``model``), e.g. to tell base from head
+
+    @property
+    def result_key(self) -> str:
+        return self.key or self.model
+
+
+@dataclass(frozen=True, slots=True)
+class Analysis:
+    """Everything one model's analysis produced: the profile, each target's cost and record."""
+
+    loaded: LoadedModel
+    profile: ModelProfile
+    costs: tuple[tuple[TargetProfile, ModelCost], ...]
+    records: tuple[RunRecord, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class JobOutcome:
+    """What a worker sends back: records as JSON-ready dicts, or why there are none."""
+
+    key: str
+    runs: tuple[dict[str, Any], ...] = ()
+    error: str = ""  # the model cannot be analysed (exit 2 unless allow_unanalysable)
+    internal: str = ""  # roofgate's own bug (exit 3, always)
+
+
+Analysed = dict[str, tuple[list[RunRecord], str]]  # result key -> (runs, error text or '')
+
+
+# --- one model ----------------------------------------------------------------------
+
+def analyse_model(path: str, targets: Sequence[TargetProfile], *,
+                  dims: Mapping[str, int] | None = None, precision: str | None = None,
+                  shown_path: str | None = None) -> Analysis:
+    """Load and profile the model at ``path`` once, cost it on every target.
+
+    Records name the model ``shown_path`` (default ``path``). Load warnings (for
+    example external data that was not opened) are kept as record notes so
+    reports show them. Raises ``RoofgateError`` for input that cannot be analysed.
+    """
+    _refuse_duplicate_targets(targets)
+    loaded = load_model(path, dict(dims or {}))
+    profile = profile_model(loaded, precision)
+    name = shown_path if shown_path is not None else path
+    costs = tuple((target, cost_model(profile, target)) for target in targets)
+    records = []
+    for target, cost in costs:
+        record = build_run_record(name, profile, cost, target)
+        extra = tuple(w for w in loaded.warnings if w not in record.notes)
+        records.append(replace(record, notes=record.notes + extra) if extra else record)
+    return Analysis(loaded, profile, costs, tuple(records))
+
+
+def analyse(path: str, targets: Sequence[TargetProfile], *,
+            dims: Mapping[str, int] | None = None, precision: str | None = None,
+            shown_path: str | None = None) -> list[RunRecord]:
+    """The records of ``analyse_model`` (one per target)."""
+    return list(analyse_model(path, targets, dims=dims, precision=precision,
+                              shown_path=shown_path).records)
+
+
+def _refuse_duplicate_targets(targets: Sequence[TargetProfile]) -> None:
+    seen: set[str] = set()
+    for target in targets:
+        if target.name in seen:
+            raise InputError(f"target '{target.name}' is given twice; results are keyed by "
+                             "target name, so give each target once")
+        seen.add(target.name)
+
+
+# --- the error mapping ----------------------------------------------------------------
+
+def model_error_text(exc: RoofgateError, model: str, file: str | None = None) -> str:
+    """The one-line message of a model roofgate cannot analyse, without a leading model path.
+
+    Every report names the model of a ModelError already; a temporary copy
+    (a git blob written to a file) is named by its model path instead.
+    """
+    message = exc.format_message()
+    if exc.path and file is not None and file != model and str(exc.path) == file:
+        message = message.replace(file, model)
+    return error_text(message, model)
+
+
+def error_text(message: str, model: str) -> str:
+    """``message`` without a leading ``"<model>: "``: every report names the model of a
+    ModelError already, so the path would show twice."""
+    prefix = f"{model}: "
+    return message[len(prefix):] if message.startswith(prefix) and message != prefix else message
+
+
+def analyse_job(job: Job) -> JobOutcome:
+    """Analyse ``job``; a model that cannot be analysed comes back as an error message.
+
+    Anything but a ``RoofgateError`` (and an ``InternalError`` too) propagates:
+    it is roofgate's bug, never a property of the model.
+    """
+    from gate.targets import load_target
+
+    try:
+        targets = [load_target(name) for name in job.targets]
+        runs = analyse(job.file, targets, dims=dict(job.dims), precision=job.precision,
+                       shown_path=job.model)
+    except InternalError:
+        raise
+    except RoofgateError as exc:
+        return JobOutcome(job.result_key, error=model_error_text(exc, job.model, job.file))
+    return JobOutcome(job.result_key, runs=tuple(run_to_dict(r) for r in runs))
+
+
+def _analyse_job_in_worker(job: Job) -> JobOutcome:
+    """``analyse_job`` in a worker process: a bug travels back as text (tracebacks do not
+    pickle), and the parent raises it as an InternalError."""
+    try:
+        return analyse_job(job)
+    except Exception as exc:  # noqa: BLE001  (reported to the parent, which exits 3)
+        detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
+        trace = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+        return JobOutcome(job.result_key, internal=f"{detail}\n{trace}")
+
+
+def internal_error(model: str, detail: str) -> InternalError:
+    """The InternalError of a bug met while analysing ``model`` (exit 3, whatever the policy)."""
+    return InternalError(f"internal error while analysing {one_safe_line(model)} "
+                         f"({detail.splitlines()[0]}); rerun with --debug and report it")
+
+
+# --- many models --------------------------------------------------------------------
+
+def run_jobs(jobs: Sequence[Job], workers: int,
+             progress: Callable[[int, int, str], None] | None = None) -> Analysed:
+    """Analyse every job (in ``workers`` processes when > 1); results keyed by result key.
+
+    Raises ``InternalError`` on the first bug met, in-process or in a worker.
+    """
+    out: Analysed = {}
+    total = len(jobs)
+
+    def keep(outcome: JobOutcome, model: str) -> None:
+        if outcome.internal:
+            raise internal_error(model, outcome.internal)
+        out[outcome.key] = ([run_from_dict(d) for d in outcome.runs], outcome.error)
+        if progress:
+            progress(len(out), total, model)
+
+    if workers <= 1 or total <= 1:
+        for job in jobs:
+            keep(_analyse_in_process(job), job.model)
+        return out
+    with concurrent.futures.ProcessPoolExecutor(max_workers=min(workers, total)) as pool:
+        futures = {pool.submit(_analyse_job_in_worker, job): job for job in jobs}
+        for future in concurrent.futures.as_completed(futures):
+            keep(future.result(), futures[future].model)
+    return out
+
+
+def _analyse_in_process(job: Job) -> JobOutcome:
+    """``analyse_job`` in this process; a bug becomes an InternalError caused by it (so
+    ``--debug`` shows its traceback)."""
+    try:
+        return analyse_job(job)
+    except InternalError:
+        raise
+    except Exception as exc:
+        detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
+        raise internal_error(job.model, detail) from exc
+
+
+def default_workers(requested: int) -> int:
+    """``-j 0`` means one worker per CPU."""
+    return requested if requested > 0 else (os.cpu_count() or 1)
+
+
+class Progress:
+    """Progress on stderr: a redrawn bar on a terminal, plain lines otherwise."""
+
+    def __init__(self, stream: TextIO | None = None, *, tty: bool | None = None,
+                 label: str = "audit") -> None:
+        self.stream = stream if stream is not None else sys.stderr
+        self.tty = self.stream.isatty() if tty is None else tty
+        self.label = label
+
+    def __call__(self, done: int, total: int, model: str) -> None:
+        from gate.report.text import term_safe
+
+        name = term_safe(model)
+        if not self.tty:
+            self.stream.write(f"roofgate {self.label}: [{done}/{total}] {name}\n")
+            self.stream.flush()
+            return
+        width = shutil.get_terminal_size((80, 20)).columns
+        bar_cells = 24
+        filled = bar_cells * done // max(total, 1)
+        head = f"\r{done:>{len(str(total))}}/{total} [{'#' * filled}{'.' * (bar_cells - filled)}] "
+        room = max(width - len(head), 10)
+        self.stream.write(head + name[-room:].ljust(room)[:room])
+        if done == total:
+            self.stream.write("\n")
+        self.stream.flush()
