@@ -28,7 +28,7 @@ from typing import Any
 
 HERE = Path(__file__).resolve().parent
 TARGET = "ws-64x64-4mib"
-POLICY = str(HERE.parent / "policies" / "default.yaml")
+POLICY = str(HERE.parent / "gate" / "policies" / "default.yaml")
 
 
 # --- worker side: one task, one process -------------------------------------

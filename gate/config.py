@@ -33,6 +33,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
+from gate.bundled import names_a_file
 from gate.errors import ConfigError
 from gate.globs import path_glob_problem, path_match
 from gate.yamlconf import Section, read_yaml_file, scalar_value
@@ -288,12 +289,16 @@ def glob_match(pattern: str, rel_path: str) -> bool:
 
 
 def resolve_file(config: ProjectConfig, ref: str) -> str:
-    """A policy or target file named in the config, as a path usable from the current folder.
+    """A policy or target named in the config, as the loaders take it.
 
-    Relative paths in the file are taken from the config file's folder; the
-    result is relative to the current folder when it lies inside it (so
-    reports name ``policies/default.yaml``, not an absolute path).
+    A built-in name (``default``, ``ws-64x64-4mib``: no folder separator, no
+    .yaml suffix) is returned unchanged. Relative paths in the file are taken
+    from the config file's folder; the result is relative to the current folder
+    when it lies inside it (so reports name ``policies/default.yaml``, not an
+    absolute path).
     """
+    if not names_a_file(ref):
+        return ref
     path = Path(ref)
     if not path.is_absolute():
         path = Path(config.root) / path
@@ -306,6 +311,4 @@ def resolve_file(config: ProjectConfig, ref: str) -> str:
 
 def resolve_target(config: ProjectConfig, ref: str) -> str:
     """A target as ``load_target`` takes it: a built-in name unchanged, a file resolved."""
-    if ref.endswith((".yaml", ".yml")) or "/" in ref:
-        return resolve_file(config, ref)
-    return ref
+    return resolve_file(config, ref)

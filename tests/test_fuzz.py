@@ -31,7 +31,7 @@ FUZZ = settings(max_examples=EXAMPLES, deadline=None, derandomize=not os.environ
     "ROOFGATE_FUZZ_RANDOM"), suppress_health_check=[HealthCheck.function_scoped_fixture,
                                                      HealthCheck.too_slow])
 TARGET = "ws-64x64-4mib"
-POLICY = str(Path(__file__).resolve().parent.parent / "policies" / "default.yaml")
+POLICY = str(Path(__file__).resolve().parent.parent / "gate" / "policies" / "default.yaml")
 CASES: Counter[str] = Counter()  # read by bench/fuzz.py
 
 

@@ -37,8 +37,8 @@ from tests.loadkit import deeply_nested_if, model, save, small_cnn, vi, weight
 from tests.recordkit import HOSTILE_NAME
 
 REPO_ROOT = Path(__file__).resolve().parents[1]
-DEFAULT_POLICY = str(REPO_ROOT / "policies" / "default.yaml")
-STRICT_POLICY = str(REPO_ROOT / "policies" / "strict.yaml")
+DEFAULT_POLICY = str(REPO_ROOT / "gate" / "policies" / "default.yaml")
+STRICT_POLICY = str(REPO_ROOT / "gate" / "policies" / "strict.yaml")
 TARGET = "ws-64x64-4mib"
 ACME = helper.make_opsetid("com.acme", 1)
 REPORTS = ("junit", "markdown", "json", "sarif", "html")

@@ -16,7 +16,7 @@ from gate.policy import load_policies, load_policy
 from gate.policy.globs import match_any, match_model
 from gate.policy.spec import KINDS, LAYER, MODEL
 
-POLICY_DIR = Path(__file__).resolve().parent.parent / "policies"
+POLICY_DIR = Path(__file__).resolve().parent.parent / "gate" / "policies"
 
 
 def _write(tmp_path: Path, text: str, name: str = "p.yaml") -> Path:

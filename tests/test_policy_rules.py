@@ -535,7 +535,7 @@ def test_default_policy_on_the_demo_pull_request(tmp_path: Path) -> None:
         write_scenario(tmp_path / variant, variant)
         runs[variant] = [r for p in (SPECIES_PATH, WAKEWORD_PATH)
                          for r in analyse(str(tmp_path / variant / p), targets, shown_path=p)]
-    policies = load_policies([Path(__file__).resolve().parent.parent / "policies/default.yaml"])
+    policies = load_policies([Path(__file__).resolve().parent.parent / "gate/policies/default.yaml"])
     result = judge(runs["pr"], runs["base"], policies, command="evaluate", today=TODAY)
     verdicts = {(e.model, v.rule_id): v for e in result.entries for v in e.verdicts}
 

@@ -364,7 +364,7 @@ def audit_outputs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     root = tmp_path_factory.mktemp("zoo")
     write_scenario(root)
     out = {name: root / "out" / f"report.{name}" for name in ("html", "sarif", "json")}
-    policy = Path(__file__).resolve().parents[1] / "policies" / "default.yaml"
+    policy = Path(__file__).resolve().parents[1] / "gate" / "policies" / "default.yaml"
     args = ["audit", str(root / "models"), "-t", "ws-64x64-4mib", "-t", "os-16x16-512kib",
             "-p", str(policy), *(x for name, path in out.items() for x in (f"--{name}", str(path)))]
     done = CliRunner().invoke(cli, args)

@@ -43,9 +43,9 @@ def _config_options(func: Any) -> Any:
         config_option(),
         target_option("Target profile for every model: a built-in name or a YAML file "
                       "(repeatable; replaces the config's targets)."),
-        click.option("--policy", "-p", "policies", multiple=True, metavar="FILE",
-                     help="Policy file for every model (repeatable; replaces the config's "
-                          "policies)."),
+        click.option("--policy", "-p", "policies", multiple=True, metavar="NAME|FILE",
+                     help="Policy for every model: a built-in name (default, strict, nightly) "
+                          "or a YAML file (repeatable; replaces the config's policies)."),
         dim_option("Bind a symbolic input dim, e.g. --dim seq=256 (repeatable; merged over "
                    "the config's dims)."),
         precision_option("Count floating-point tensors' bytes at this deploy precision "

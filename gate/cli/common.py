@@ -11,13 +11,13 @@ result's code.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any, TypeVar
 
 import click
 
+from gate.bundled import looks_like_path, names_a_file
 from gate.config import (
     DEFAULT_REPORTS,
     Overrides,
@@ -113,8 +113,7 @@ def load_project(kwargs: dict[str, Any], *, root: str | Path = ".", policies: bo
     """
     overrides = Overrides(
         targets=tuple(_cli_ref(t) for t in kwargs.get("targets", ())),
-        policies=tuple(str(Path(p).resolve()) for p in kwargs.get("policies", ()))
-        if policies else (),
+        policies=tuple(_cli_ref(p) for p in kwargs.get("policies", ())) if policies else (),
         dims=kwargs.get("dims") or {},
         precision=kwargs.get("precision"),
     )
@@ -122,12 +121,9 @@ def load_project(kwargs: dict[str, Any], *, root: str | Path = ".", policies: bo
                        require_targets=require_targets)
 
 
-def _cli_ref(target: str) -> str:
-    return str(Path(target).resolve()) if _is_file_ref(target) else target
-
-
-def _is_file_ref(text: str) -> bool:
-    return text.endswith((".yaml", ".yml")) or "/" in text or os.sep in text
+def _cli_ref(ref: str) -> str:
+    """A target or policy from the command line: a built-in name unchanged, a file made absolute."""
+    return str(Path(ref).resolve()) if looks_like_path(ref) else ref
 
 
 def chosen_reports(kwargs: dict[str, Any], config: ProjectConfig,
@@ -148,8 +144,8 @@ def output_rules(kwargs: dict[str, Any], config: ProjectConfig, root: str | Path
     ``.git``, and off every file the run reads: config, policies, targets, baseline, models."""
     read = [config.source or "", kwargs.get("baseline") or "", *inputs]
     groups = (*config.groups, config.defaults)
-    read += [resolve_file(config, p) for g in groups for p in g.policies]
-    read += [resolve_target(config, t) for g in groups for t in g.targets if _is_file_ref(t)]
+    read += [resolve_file(config, p) for g in groups for p in g.policies if names_a_file(p)]
+    read += [resolve_target(config, t) for g in groups for t in g.targets if names_a_file(t)]
     typed = tuple(v for v in report_paths(kwargs).values() if v)
     return OutputRules(root=str(root), inputs=tuple(r for r in read if r),
                        is_model=config.is_model, typed=typed)

@@ -44,9 +44,10 @@ def register(cli: click.Group) -> None:
 @click.command("evaluate", short_help="Judge model files given by name (no git needed).")
 @click.argument("models", nargs=-1, required=True, metavar="MODEL...")
 @analysis_options
-@click.option("--policy", "-p", "policies", multiple=True, metavar="FILE",
-              help="Policy file (repeatable; rule ids must be unique across files; replaces "
-                   "the config's policies).")
+@click.option("--policy", "-p", "policies", multiple=True, metavar="NAME|FILE",
+              help="Policy: a built-in name (default, strict, nightly) or a YAML file "
+                   "(repeatable; rule ids must be unique across policies; replaces the "
+                   "config's policies).")
 @click.option("--baseline", default=None, metavar="SNAPSHOT",
               help="Baseline snapshot (from `roofgate baseline`) for diffs and regression rules.")
 @click.option("--date", "today", default=None, metavar="YYYY-MM-DD",

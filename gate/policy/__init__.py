@@ -2,7 +2,7 @@
 
 Typical use::
 
-    policies = load_policies(["policies/default.yaml"])   # ConfigError lists every problem
+    policies = load_policies(["default", "team.yaml"])   # built-in names or files
     verdicts = evaluate_all(policies, head, base, diff, today=date.today())
     notes = unused_waivers(policies, all_verdicts)         # for GateResult.notes
 
@@ -12,12 +12,18 @@ The schema and every rule kind are documented in docs/policies.md.
 from __future__ import annotations
 
 from gate.policy.evaluate import allow_unanalysable, describe, evaluate, evaluate_all
-from gate.policy.load import POLICY_FORMAT_VERSION, load_policies, load_policy
+from gate.policy.load import (
+    POLICY_FORMAT_VERSION,
+    builtin_policy_names,
+    builtin_policy_yaml,
+    load_policies,
+    load_policy,
+)
 from gate.policy.spec import HIGHER_IS_BETTER, KINDS, Policy, Rule, Scope, Waiver
 from gate.policy.waivers import unused_waivers
 
 __all__ = [
     "HIGHER_IS_BETTER", "KINDS", "POLICY_FORMAT_VERSION", "Policy", "Rule", "Scope", "Waiver",
-    "allow_unanalysable", "describe", "evaluate", "evaluate_all", "load_policies", "load_policy",
+    "allow_unanalysable", "builtin_policy_names", "builtin_policy_yaml", "describe", "evaluate", "evaluate_all", "load_policies", "load_policy",
     "unused_waivers",
 ]

@@ -1,7 +1,9 @@
 """Read policy YAML files into ``Policy`` values, reporting every problem of a file at once.
 
 Each problem names the file, line, key path and, for typos, a suggestion; the
-schema is documented in docs/policies.md. A file is read with the shared
+schema is documented in docs/policies.md. A reference that is not a path names a
+built-in policy (``default``, ``strict``, ``nightly``: package data in
+``gate/policies/``), the way built-in targets are named. A file is read with the shared
 validating reader (``gate.yamlconf``), so alias bombs and non-UTF-8 bytes are
 refused the same way as in target profiles.
 """
@@ -13,16 +15,19 @@ from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import TypedDict
 
+from gate.bundled import bundled_bytes, bundled_names, looks_like_path
 from gate.errors import ConfigError
 from gate.policy import spec
 from gate.policy.globs import pattern_problem
 from gate.policy.spec import Policy, Rule, Scope, Waiver
 from gate.records import LAYER_METRICS, MODEL_METRICS
-from gate.yamlconf import Section, YamlDocument, read_yaml_file, suggest
+from gate.yamlconf import Section, YamlDocument, parse_yaml_bytes, read_yaml_file, suggest
 
 POLICY_FORMAT_VERSION = 1
 _RULE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
 _LAYER_KEYS = ("layers", "exclude_layers", "op_types")
+_BUILTIN_PACKAGE = "gate"
+_BUILTIN_DIR = "policies"
 
 
 class _KindFields(TypedDict, total=False):
@@ -43,12 +48,35 @@ class _KindFields(TypedDict, total=False):
 _FieldReader = Callable[[Section, str], "_KindFields | None"]
 
 
-def load_policy(path: str | Path) -> Policy:
-    """Load and validate one policy file; raises ConfigError listing all its problems."""
-    doc = read_yaml_file(path)
+def load_policy(name_or_path: str | Path) -> Policy:
+    """Load and validate a built-in policy by name or a policy file by path.
+
+    Raises ConfigError listing all the problems (an unknown name lists the built-ins).
+    """
+    text = str(name_or_path)
+    if looks_like_path(text):
+        doc = read_yaml_file(text)
+    else:
+        doc = parse_yaml_bytes(builtin_policy_yaml(text).encode("utf-8"),
+                               f"gate/policies/{text}.yaml")
     policy = read_policy(doc)
     doc.raise_if_problems()
     return policy
+
+
+def builtin_policy_names() -> list[str]:
+    """Names of the policies that ship with roofgate, sorted."""
+    return bundled_names(_BUILTIN_PACKAGE, _BUILTIN_DIR)
+
+
+def builtin_policy_yaml(name: str) -> str:
+    """The commented YAML of a built-in policy (a starting point to copy and edit)."""
+    names = builtin_policy_names()
+    if name not in names:
+        message = (f"unknown policy '{name}'{suggest(name, names)}; built-in policies: "
+                   f"{', '.join(names)}; or give the path of a policy YAML file")
+        raise ConfigError([message])
+    return bundled_bytes(_BUILTIN_PACKAGE, _BUILTIN_DIR, name).decode("utf-8")
 
 
 def load_policies(paths: Iterable[str | Path]) -> tuple[Policy, ...]:

@@ -8,9 +8,9 @@ path of a user's YAML file; built-in profiles ship as package data in
 from __future__ import annotations
 
 from functools import cache
-from importlib import resources
 from pathlib import Path
 
+from gate.bundled import bundled_bytes, bundled_names, looks_like_path
 from gate.errors import InputError
 from gate.targets.loader import load_target_file, parse_target_bytes
 from gate.targets.spec import TargetProfile
@@ -25,8 +25,7 @@ _BUILTIN_DIR = "builtin"
 
 def builtin_target_names() -> list[str]:
     """Names of the built-in targets, sorted."""
-    folder = resources.files(_BUILTIN_PACKAGE).joinpath(_BUILTIN_DIR)
-    return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
+    return bundled_names(_BUILTIN_PACKAGE, _BUILTIN_DIR)
 
 
 def builtin_target_yaml(name: str) -> str:
@@ -43,7 +42,7 @@ def load_target(name_or_path: str | Path) -> TargetProfile:
     built-in name, and an unknown one raises InputError listing the built-ins.
     """
     text = str(name_or_path)
-    if _looks_like_path(text):
+    if looks_like_path(text):
         return load_target_file(text)
     _check_builtin(text)
     return _load_builtin(text)
@@ -61,11 +60,6 @@ def load_targets(names_or_paths: list[str] | tuple[str, ...]) -> list[TargetProf
     return targets
 
 
-def _looks_like_path(text: str) -> bool:
-    return ("/" in text or "\\" in text or text.endswith((".yaml", ".yml"))
-            or Path(text).is_file())
-
-
 def _check_builtin(name: str) -> None:
     names = builtin_target_names()
     if name not in names:
@@ -74,7 +68,7 @@ def _check_builtin(name: str) -> None:
 
 
 def _builtin_bytes(name: str) -> bytes:
-    return resources.files(_BUILTIN_PACKAGE).joinpath(_BUILTIN_DIR).joinpath(f"{name}.yaml").read_bytes()
+    return bundled_bytes(_BUILTIN_PACKAGE, _BUILTIN_DIR, name)
 
 
 @cache
