@@ -3,16 +3,24 @@
 Git is always run as an argument list (``shell=False``) with ``-z`` output
 and ``--`` before paths, so file names with spaces, quotes, leading dashes,
 newlines or any unicode pass through untouched and are never interpreted by a
-shell. Contents are read with ``git cat-file --filters`` so Git LFS files are
-smudged to the real model when the LFS objects are present; a model that is
-still an LFS pointer is reported with the command that fetches it.
+shell.
+
+Contents are read as committed (``git cat-file blob``). A blob that is a Git LFS
+pointer is resolved through the LFS filter (``git lfs smudge``) when the commit
+it comes from tracks the path with LFS in its *own* ``.gitattributes`` files
+(nested ones too; never the working tree's, which belong to HEAD: a pull request
+that moves models into or out of LFS has different attributes on each side) and
+the LFS object is already in the local store; nothing is downloaded here. A
+model that stays a pointer is reported with the command that fetches it.
 """
 
 from __future__ import annotations
 
 import os
+import re
 import subprocess
-from collections.abc import Callable, Sequence
+import tempfile
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import BinaryIO
@@ -43,14 +51,17 @@ _STATUS = {"A": "added", "D": "deleted", "M": "modified", "R": "renamed", "C": "
 
 
 def git(args: Sequence[str], cwd: str | Path, *, what: str, stdout: BinaryIO | None = None,
-        ) -> bytes:
-    """Run ``git <args>`` in ``cwd``; stdout bytes (or streamed to ``stdout``); InputError on failure."""
-    env = {**os.environ, "GIT_TERMINAL_PROMPT": "0", "LC_ALL": "C"}
+        stdin: BinaryIO | None = None, env: Mapping[str, str] | None = None) -> bytes:
+    """Run ``git <args>`` in ``cwd``; stdout bytes (or streamed to ``stdout``); InputError on failure.
+
+    ``stdin`` feeds a file to git; ``env`` adds variables (e.g. a temporary index).
+    """
+    full_env = {**os.environ, "GIT_TERMINAL_PROMPT": "0", "LC_ALL": "C", **(env or {})}
     try:
         done = subprocess.run(
-            ["git", "-c", "core.quotepath=off", *args], cwd=cwd,
+            ["git", "-c", "core.quotepath=off", *args], cwd=cwd, stdin=stdin,
             stdout=stdout if stdout is not None else subprocess.PIPE, stderr=subprocess.PIPE,
-            shell=False, check=False, timeout=GIT_TIMEOUT_S, env=env,
+            shell=False, check=False, timeout=GIT_TIMEOUT_S, env=full_env,
         )
     except FileNotFoundError:
         raise InputError("git is not installed or not on PATH; install git") from None
@@ -77,10 +88,39 @@ def resolve_commit(ref: str, cwd: str | Path) -> str:
         out = git(["rev-parse", "--verify", "--quiet", "--end-of-options", f"{ref}^{{commit}}"],
                   cwd, what=f"resolving '{ref}'")
     except InputError:
-        raise InputError(
-            f"unknown git revision '{ref}'; fetch it first (e.g. git fetch origin {ref}, or "
-            "actions/checkout with fetch-depth: 0)") from None
+        raise InputError(f"unknown git revision '{ref}'; fetch it first: "
+                         f"{fetch_hint(ref, cwd)}") from None
     return out.decode("ascii").strip()
+
+
+_COMMIT_ID = re.compile(r"^[0-9a-fA-F]{7,64}$")
+
+
+def fetch_hint(ref: str, cwd: str | Path) -> str:
+    """A fetch command that makes ``ref`` resolvable, also in a shallow single-branch clone.
+
+    ``git fetch origin main`` only updates FETCH_HEAD when the clone's refspec
+    covers one branch (GitLab's default clone), so a remote-tracking name gets an
+    explicit refspec that creates it.
+    """
+    remotes = _remotes(cwd)
+    remote, _, branch = ref.partition("/")
+    if branch and remote in remotes:
+        command = f"git fetch {remote} {branch}:refs/remotes/{remote}/{branch}"
+    elif _COMMIT_ID.match(ref):
+        command = f"git fetch origin {ref}"
+    else:
+        command = f"git fetch origin {ref}:refs/remotes/origin/{ref}, then --base origin/{ref}"
+    return (f"{command} (or pass the base commit's SHA; in CI fetch full history: "
+            "actions/checkout with fetch-depth: 0, GitLab GIT_DEPTH: 0)")
+
+
+def _remotes(cwd: str | Path) -> set[str]:
+    try:
+        out = git(["remote"], cwd, what="listing remotes")
+    except InputError:
+        return set()
+    return set(out.decode("utf-8", "replace").split())
 
 
 def merge_base(ref: str, cwd: str | Path, head: str = "HEAD") -> str:
@@ -156,22 +196,85 @@ def _classify(letter: str, old: str | None, new: str | None,
 
 
 def read_blob(rev: str, path: str, cwd: str | Path) -> bytes:
-    """The contents of ``path`` at ``rev``, through the repository's filters (Git LFS smudge)."""
-    return git(["cat-file", "--filters", f"{rev}:{path}"], cwd,
-               what=f"reading {path} at {rev[:12]}")
+    """The contents of ``path`` at ``rev`` (an LFS pointer resolved as ``write_blob`` does)."""
+    with tempfile.TemporaryDirectory(prefix="roofgate-blob-") as tmp:
+        dest = Path(tmp) / "blob"
+        write_blob(rev, path, cwd, dest)
+        return dest.read_bytes()
 
 
 def write_blob(rev: str, path: str, cwd: str | Path, dest: str | Path) -> bool:
-    """Stream ``path`` at ``rev`` (filtered, as ``read_blob``) into ``dest``; False if an LFS pointer.
+    """Stream ``path`` at ``rev`` into ``dest``; False if it is (still) a Git LFS pointer.
 
-    Streaming keeps memory flat for multi-gigabyte models.
+    Streaming keeps memory flat for multi-gigabyte models. A pointer is replaced by
+    its object when ``rev``'s own attributes track the path with LFS and the object
+    is in the local LFS store (see the module docstring).
     """
     with open(dest, "wb") as out:
-        git(["cat-file", "--filters", f"{rev}:{path}"], cwd,
-            what=f"reading {path} at {rev[:12]}", stdout=out)
-    with open(dest, "rb") as back:
-        head = back.read(LFS_POINTER_MAX_BYTES + 1)
-    return not is_lfs_pointer(head)
+        git(["cat-file", "blob", f"{rev}:{path}"], cwd, what=f"reading {path} at {rev[:12]}",
+            stdout=out)
+    if not _is_pointer_file(dest):
+        return True
+    if filter_at(rev, path, cwd) != "lfs" or not _lfs_object_present(dest, cwd):
+        return False
+    _smudge_in_place(path, cwd, Path(dest))
+    return not _is_pointer_file(dest)
+
+
+def filter_at(rev: str, path: str, cwd: str | Path) -> str | None:
+    """The ``filter`` attribute of ``path`` as commit ``rev`` declares it, or None if unset.
+
+    Git reads ``.gitattributes`` from the working tree (HEAD's); to use ``rev``'s own
+    files, nested ones included, with git's matching rules, its tree is read into a
+    temporary index and ``git check-attr --cached`` asks that index.
+    """
+    with tempfile.TemporaryDirectory(prefix="roofgate-attr-") as tmp:
+        env = {"GIT_INDEX_FILE": str(Path(tmp) / "index")}
+        git(["read-tree", rev], cwd, what=f"reading the tree of {rev[:12]}", env=env)
+        out = git(["check-attr", "--cached", "-z", "filter", "--", path], cwd,
+                  what=f"reading the attributes of {path} at {rev[:12]}", env=env)
+    fields = out.split(b"\0")
+    value = fields[2].decode("utf-8", "replace") if len(fields) > 2 else "unspecified"
+    return None if value in ("unspecified", "unset", "set") else value
+
+
+_LFS_OID = re.compile(rb"^oid sha256:([0-9a-f]{64})$", re.MULTILINE)
+
+
+def _lfs_object_present(pointer_file: str | Path, cwd: str | Path) -> bool:
+    """Whether the object a pointer names is in the local LFS store (no download)."""
+    match = _LFS_OID.search(Path(pointer_file).read_bytes())
+    store = _lfs_media_dir(cwd)
+    if match is None or store is None:
+        return False
+    oid = match.group(1).decode("ascii")
+    return (store / oid[:2] / oid[2:4] / oid).is_file()
+
+
+def _lfs_media_dir(cwd: str | Path) -> Path | None:
+    """The local LFS object store (``git lfs env``), or None when git-lfs is not installed."""
+    try:
+        out = git(["lfs", "env"], cwd, what="asking git-lfs for its object store")
+    except InputError:
+        return None
+    for line in out.decode("utf-8", "replace").splitlines():
+        if line.startswith("LocalMediaDir="):
+            return Path(line.partition("=")[2])
+    return None
+
+
+def _smudge_in_place(path: str, cwd: str | Path, dest: Path) -> None:
+    """Replace the pointer in ``dest`` by its object through the LFS filter (``git lfs smudge``)."""
+    smudged = dest.with_name(dest.name + ".smudged")
+    with open(dest, "rb") as pointer, open(smudged, "wb") as out:
+        git(["lfs", "smudge", "--", path], cwd, what=f"resolving the Git LFS pointer {path}",
+            stdin=pointer, stdout=out, env={"GIT_LFS_SKIP_SMUDGE": "0"})
+    os.replace(smudged, dest)
+
+
+def _is_pointer_file(path: str | Path) -> bool:
+    with open(path, "rb") as back:
+        return is_lfs_pointer(back.read(LFS_POINTER_MAX_BYTES + 1))
 
 
 def is_lfs_pointer(data: bytes) -> bool:
@@ -179,11 +282,17 @@ def is_lfs_pointer(data: bytes) -> bool:
     return len(data) <= LFS_POINTER_MAX_BYTES and data.startswith(LFS_POINTER_PREFIX)
 
 
-def lfs_error_message(path: str, side: str) -> str:
-    """One actionable line for a model that is still an un-fetched Git LFS pointer."""
-    return (f"{path}: the {side} side is a Git LFS pointer, not the model; fetch LFS files "
-            "(git lfs pull, or git lfs fetch origin <ref> for the base; in GitHub Actions "
-            "use actions/checkout with lfs: true)")
+def lfs_error_message(path: str, side: str, rev: str | None = None) -> str:
+    """One actionable line for a model that is still a Git LFS pointer."""
+    commit = rev if rev and rev != "HEAD" else None
+    if side == "base" or commit:
+        fetch = f"git lfs fetch origin {commit or '<base commit>'}"
+    else:
+        fetch = "git lfs pull"
+    return (f"{path}: the {side} side is a Git LFS pointer, not the model, and its LFS object "
+            f"is not in the local store; install git-lfs and fetch it ({fetch}; in GitHub "
+            "Actions: actions/checkout with lfs: true, and the roofgate action fetches the "
+            "base side's objects)")
 
 
 def _decode(raw: bytes) -> str:

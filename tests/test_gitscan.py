@@ -1,14 +1,24 @@
-"""Git plumbing: changed models (renames, additions, deletions), hostile names, LFS, refs."""
+"""Git plumbing: changed models (renames, additions, deletions), hostile names, LFS, refs.
+
+Clones are made the way CI systems make them (a bare origin; GitLab's shallow
+single-branch clone; a fork's branch fetched from a second remote), and LFS tests
+use the real git-lfs (pointer layout: the Git LFS specification, docs/spec.md in the
+git-lfs repository).
+"""
 
 from __future__ import annotations
 
+import os
+import shlex
+import shutil
+import subprocess
 from pathlib import Path
 
 import pytest
 
 from gate import gitscan
 from gate.errors import InputError
-from tests.gitkit import Repo
+from tests.gitkit import GIT_ENV, Repo
 
 # File names a shell would mangle: spaces, quotes, a leading dash, unicode, a newline,
 # a dollar sign and a backtick (command substitution if ever interpolated).
@@ -144,3 +154,153 @@ def test_write_blob_streams_and_flags_lfs_pointers(repo: Repo, tmp_path: Path) -
     assert not gitscan.write_blob("HEAD", "models/lfs.onnx", repo.path, dest)
     with pytest.raises(InputError, match="reading models/none.onnx"):
         gitscan.write_blob("HEAD", "models/none.onnx", repo.path, dest)
+
+
+# --- fetch hints that work (bare origin, shallow single-branch clone) --------------------
+
+def clone(origin: Path, dest: Path, *args: str) -> Repo:
+    """A clone of ``origin`` made the way CI systems make them (``args``: depth, branch)."""
+    subprocess.run(["git", "clone", "-q", *args, origin.as_uri(), str(dest)], check=True,
+                   capture_output=True, env={**os.environ, **GIT_ENV})
+    cloned = Repo.__new__(Repo)
+    cloned.path = dest
+    return cloned
+
+
+@pytest.fixture()
+def origin(tmp_path: Path) -> Path:
+    """A bare origin with main (three commits) and a pull-request branch cut from it."""
+    work = Repo(tmp_path / "work")
+    for k in range(3):
+        work.write("models/m.onnx", f"model v{k}".encode() * 20)
+        work.commit(f"main {k}")
+    work.branch("pr")
+    work.write("models/m.onnx", b"changed by the pr" * 20)
+    work.commit("pr")
+    bare = tmp_path / "origin.git"
+    subprocess.run(["git", "clone", "-q", "--bare", str(work.path), str(bare)], check=True,
+                   capture_output=True, env={**os.environ, **GIT_ENV})
+    return bare
+
+
+def run_hint(repo: Repo, hint: str) -> None:
+    """Run the git command a hint names, exactly as printed (up to the first parenthesis)."""
+    command = hint.split(" (")[0].split(", then")[0]
+    assert command.startswith("git fetch ")
+    repo.git(*shlex.split(command)[1:])
+
+
+def test_single_branch_shallow_clone_hint_fetches_a_usable_base(origin: Path,
+                                                                tmp_path: Path) -> None:
+    # The GitLab default: a shallow clone of the pull request's branch only. `git fetch origin
+    # main` there updates FETCH_HEAD but not origin/main; the printed command must fix it.
+    pr = clone(origin, tmp_path / "gl", "--depth", "20", "--single-branch", "--branch", "pr")
+    pr.git("fetch", "-q", "origin", "main")
+    with pytest.raises(InputError) as caught:
+        gitscan.merge_base("origin/main", pr.path)
+    message = caught.value.format_message()
+    assert "git fetch origin origin/main" not in message  # the old hint, which fails
+    hint = message.split("fetch it first: ")[1]
+    run_hint(pr, hint)
+    base = gitscan.merge_base("origin/main", pr.path)
+    assert base == pr.git("rev-parse", "origin/main").strip()
+    # The merge-request diff base SHA (what GitLab hands the job) works as --base too.
+    assert gitscan.merge_base(base, pr.path) == base
+
+
+def test_hint_for_a_plain_branch_name_and_for_a_commit(origin: Path, tmp_path: Path) -> None:
+    pr = clone(origin, tmp_path / "c", "--single-branch", "--branch", "pr")
+    with pytest.raises(InputError, match=r"git fetch origin main:refs/remotes/origin/main, "
+                                         r"then --base origin/main"):
+        gitscan.merge_base("main", pr.path)
+    with pytest.raises(InputError, match="git fetch origin 0123456789ab "):
+        gitscan.merge_base("0123456789ab", pr.path)
+
+
+def test_fork_like_branch_from_another_remote(origin: Path, tmp_path: Path) -> None:
+    # A fork's pull request: the head comes from a second remote, the base from origin.
+    fork = clone(origin, tmp_path / "fork", "--branch", "pr")
+    fork.write("models/m.onnx", b"fork change" * 20)
+    fork.commit("fork")
+    upstream = clone(origin, tmp_path / "upstream", "--branch", "main")
+    upstream.git("fetch", "-q", str(fork.path), "pr:fork-pr")
+    upstream.git("checkout", "-q", "fork-pr")
+    base = gitscan.merge_base("origin/main", upstream.path)
+    changes = gitscan.changed_models(base, upstream.path, is_onnx)
+    assert [(c.status, c.path) for c in changes] == [("modified", "models/m.onnx")]
+    assert gitscan.read_blob(base, "models/m.onnx", upstream.path) == b"model v2" * 20
+
+
+# --- Git LFS: each side read with its own commit's attributes ----------------------------
+
+needs_lfs = pytest.mark.skipif(
+    subprocess.run(["git", "lfs", "version"], capture_output=True, check=False).returncode != 0,
+    reason="git-lfs is not installed (apt-get install git-lfs; .ci/run installs it in CI)")
+
+MODEL_A = b"\x08\x07real model bytes A" * 40
+MODEL_B = b"\x08\x07real model bytes B" * 40
+
+
+def lfs_repo(path: Path) -> Repo:
+    repo = Repo(path)
+    repo.git("lfs", "install", "--local", "--skip-repo")  # filters, no hooks
+    return repo
+
+
+@needs_lfs
+def test_models_moved_into_lfs_read_real_on_both_sides(tmp_path: Path) -> None:
+    repo = lfs_repo(tmp_path / "in")
+    repo.write("models/a.onnx", MODEL_A)
+    base = repo.commit("plain model")
+    repo.branch("pr")
+    # a nested .gitattributes (models/ only) moves the folder into LFS
+    repo.write("models/.gitattributes", "*.onnx filter=lfs diff=lfs merge=lfs -text\n")
+    repo.git("add", "models/.gitattributes")
+    repo.git("rm", "-q", "--cached", "models/a.onnx")
+    repo.write("models/a.onnx", MODEL_B)
+    repo.commit("into lfs")
+    assert gitscan.is_lfs_pointer(repo.git("cat-file", "blob", "HEAD:models/a.onnx").encode())
+    assert gitscan.filter_at("HEAD", "models/a.onnx", repo.path) == "lfs"
+    assert gitscan.filter_at(base, "models/a.onnx", repo.path) is None
+    assert gitscan.read_blob(base, "models/a.onnx", repo.path) == MODEL_A
+    assert gitscan.read_blob("HEAD", "models/a.onnx", repo.path) == MODEL_B
+
+
+@needs_lfs
+def test_models_moved_out_of_lfs_resolve_the_base_pointer(tmp_path: Path) -> None:
+    repo = lfs_repo(tmp_path / "out")
+    repo.write(".gitattributes", "*.onnx filter=lfs diff=lfs merge=lfs -text\n")
+    repo.write("models/a.onnx", MODEL_A)
+    base = repo.commit("model in lfs")
+    repo.branch("pr")
+    (repo.path / ".gitattributes").unlink()  # HEAD's working tree no longer tracks *.onnx
+    repo.git("rm", "-q", "--cached", "models/a.onnx")
+    repo.write("models/a.onnx", MODEL_B)
+    repo.commit("out of lfs")
+    assert gitscan.is_lfs_pointer(repo.git("cat-file", "blob", f"{base}:models/a.onnx").encode())
+    assert gitscan.filter_at(base, "models/a.onnx", repo.path) == "lfs"
+    assert gitscan.read_blob(base, "models/a.onnx", repo.path) == MODEL_A
+    assert gitscan.read_blob("HEAD", "models/a.onnx", repo.path) == MODEL_B
+
+
+@needs_lfs
+def test_missing_lfs_object_stays_a_pointer_with_a_fetch_hint(tmp_path: Path) -> None:
+    repo = lfs_repo(tmp_path / "gone")
+    repo.write(".gitattributes", "*.onnx filter=lfs -text\n")
+    repo.write("models/a.onnx", MODEL_A)
+    base = repo.commit("model in lfs")
+    shutil.rmtree(repo.path / ".git" / "lfs" / "objects")  # as after a clone without LFS
+    assert not gitscan.write_blob(base, "models/a.onnx", repo.path, tmp_path / "x.onnx")
+    message = gitscan.lfs_error_message("models/a.onnx", "base", base)
+    assert f"git lfs fetch origin {base}" in message and "install git-lfs" in message
+
+
+def test_a_pointer_the_commit_does_not_track_with_lfs_is_not_smudged(repo: Repo,
+                                                                     tmp_path: Path) -> None:
+    pointer = (b"version https://git-lfs.github.com/spec/v1\noid sha256:" + b"1" * 64
+               + b"\nsize 9\n")
+    repo.write("models/fake.onnx", pointer)
+    repo.commit("pointer text without lfs attributes")
+    assert gitscan.filter_at("HEAD", "models/fake.onnx", repo.path) is None
+    assert not gitscan.write_blob("HEAD", "models/fake.onnx", repo.path, tmp_path / "f.onnx")
+    assert (tmp_path / "f.onnx").read_bytes() == pointer
