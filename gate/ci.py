@@ -145,7 +145,7 @@ def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.Mod
                 continue
             if not real:
                 errors.setdefault(change.path, []).append(
-                    engine.error_text(gitscan.lfs_error_message(path, side), path))
+                    engine.error_text(gitscan.lfs_error_message(path, side, rev), path))
                 continue
             out.append(replace(_job(config, group, change.path, file), key=key))
     return jobs, base_jobs, errors

@@ -42,11 +42,11 @@ def test_the_three_bundled_policies_load_by_name() -> None:
         assert load_policy(name).name == name
 
 
-def test_gate_takes_a_built_in_policy_name(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+def test_evaluate_takes_a_built_in_policy_name(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
                                            ) -> None:
     model = save(small_cnn(), tmp_path / "m.onnx")
     monkeypatch.chdir(tmp_path)  # no file called "default" here: the name is the built-in
-    result = CliRunner().invoke(cli, ["gate", str(model), "-t", TARGET, "-p", "default",
+    result = CliRunner().invoke(cli, ["evaluate", str(model), "-t", TARGET, "-p", "default",
                                       "--json", "out.json"])
     assert result.exit_code in (0, 1), result.output
     # rule ids of gate/policies/default.yaml, evaluated
@@ -57,7 +57,7 @@ def test_a_misspelt_policy_name_lists_the_built_ins(tmp_path: Path,
                                                     monkeypatch: pytest.MonkeyPatch) -> None:
     model = save(small_cnn(), tmp_path / "m.onnx")
     monkeypatch.chdir(tmp_path)
-    result = CliRunner().invoke(cli, ["gate", str(model), "-t", TARGET, "-p", "defualt"])
+    result = CliRunner().invoke(cli, ["evaluate", str(model), "-t", TARGET, "-p", "defualt"])
     assert result.exit_code == 2
     assert "unknown policy 'defualt' (did you mean 'default'?)" in result.stderr
     assert "default, nightly, strict" in result.stderr and "Traceback" not in result.output
@@ -67,7 +67,7 @@ def test_a_path_is_still_a_file_and_a_missing_file_says_so(tmp_path: Path,
                                                            monkeypatch: pytest.MonkeyPatch) -> None:
     model = save(small_cnn(), tmp_path / "m.onnx")
     monkeypatch.chdir(tmp_path)
-    result = CliRunner().invoke(cli, ["gate", str(model), "-t", TARGET, "-p", "default.yaml"])
+    result = CliRunner().invoke(cli, ["evaluate", str(model), "-t", TARGET, "-p", "default.yaml"])
     assert result.exit_code == 2 and "default.yaml: file not found" in result.stderr
 
 
