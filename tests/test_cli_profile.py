@@ -16,9 +16,9 @@ from loadkit import chain, deeply_nested_if, model, save, small_cnn, vi
 from onnx import helper, numpy_helper
 
 from gate.cli import cli
-from gate.report.profile_text import CSV_FIELDS, CSV_TARGET_FIELDS
 from gate.model.loader import load_model
 from gate.profile import profile_model
+from gate.report.profile_text import CSV_FIELDS, CSV_TARGET_FIELDS
 from gate.targets import builtin_target_names
 
 
