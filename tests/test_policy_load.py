@@ -319,7 +319,7 @@ def test_model_globs_agree_with_the_standard_library(pattern_parts: list[str],
 
 
 def test_the_full_example_in_the_docs_loads(tmp_path: Path) -> None:
-    docs = (POLICY_DIR.parent / "docs" / "policies.md").read_text(encoding="utf-8")
+    docs = (POLICY_DIR.parent.parent / "docs" / "policies.md").read_text(encoding="utf-8")
     blocks = docs.split("```yaml\n")[1:]
     example = next(b.split("```")[0] for b in blocks if b.startswith("# policies/team.yaml"))
     policy = load_policy(_write(tmp_path, example))
