@@ -154,7 +154,8 @@ def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.Mod
 def _job(config: ProjectConfig, group: ModelGroup, model: str, file: str) -> engine.Job:
     return engine.Job(model=model, file=file,
                       targets=tuple(resolve_target(config, t) for t in group.targets),
-                      dims=tuple(sorted(group.dims.items())), precision=group.precision)
+                      dims=tuple(sorted(group.dims.items())), precision=group.precision,
+                      shapes=tuple(sorted(group.shapes.items())))
 
 
 def _policies(config: ProjectConfig, group: ModelGroup) -> list[Policy]:
@@ -284,7 +285,7 @@ def file_jobs(config: ProjectConfig, models: Sequence[str], *, need_policy: bool
               ) -> list[tuple[engine.Job, ModelGroup]]:
     """One job per model file given by name (each once), with the settings that apply to it.
 
-    A file a model group covers takes that group's targets, dims and precision;
+    A file a model group covers takes that group's targets, dims, shapes and precision;
     any other file takes the config's top-level settings (command-line flags
     already replaced both). InputError when a file ends up with no target (or,
     when ``need_policy``, no policy: nothing would judge it).
@@ -373,4 +374,4 @@ def _diff_side(config: ProjectConfig, path: str, shown: str | None,
     group = config.defaults if is_snapshot(path) else config.settings_for(path)
     names = group.targets if explicit_targets or not is_snapshot(path) else ()
     targets = load_targets(tuple(dict.fromkeys(resolve_target(config, t) for t in names)))
-    return read_side(path, targets, group.dims, group.precision, shown)
+    return read_side(path, targets, group.dims, group.precision, shown, group.shapes)

@@ -32,7 +32,8 @@ def is_snapshot(path: str) -> bool:
 
 
 def read_side(path: str, targets: Sequence[TargetProfile], dims: Mapping[str, int],
-              precision: str | None, shown: str | None) -> list[RunRecord]:
+              precision: str | None, shown: str | None,
+              shapes: Mapping[str, tuple[int, ...]] | None = None) -> list[RunRecord]:
     """Records of one side: read from a snapshot, or analysed from a model."""
     if is_snapshot(path):
         runs = list(read_snapshot(path))
@@ -44,7 +45,7 @@ def read_side(path: str, targets: Sequence[TargetProfile], dims: Mapping[str, in
         raise InputError(f"{path} is a model: give at least one --target to cost it on (or add "
                          "'targets:' to roofgate.yaml)")
     return analyse(path, targets, dims=dims, precision=precision,
-                   shown_path=shown or normalize_path(path))
+                   shown_path=shown or normalize_path(path), shapes=shapes)
 
 
 def single_model(runs: list[RunRecord]) -> str | None:

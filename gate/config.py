@@ -15,14 +15,16 @@ main``. Shape (every key optional except ``models`` entries' ``paths``)::
         targets: [ws-64x64-4mib, os-16x16-512kib]
       - paths: ["models/handheld/*.onnx"]
         dims: {seq: 128}
+      - paths: ["models/camera/*.onnx"]
+        shapes: {images: 1x3x640x640}   # every dim of one input (also [1, 3, 640, 640])
     reports: {junit: roofgate-out/junit.xml, markdown: roofgate-out/summary.md,
               json: roofgate-out/result.json}
 
 A model belongs to the *first* group whose globs match its repository-relative
 path; unset group keys inherit the top-level defaults. Globs use ``/``,
 ``*`` and ``?`` stay within one folder, ``**`` spans folders. Command-line
-flags (``--target``, ``--policy``, ``--dim``, ``--precision``, report paths)
-override the file for every group. Without a file, every ``*.onnx`` is a model
+flags (``--target``, ``--policy``, ``--dim``, ``--shape``, ``--precision``, report
+paths) override the file for every group (``--dim`` and ``--shape`` per name). Without a file, every ``*.onnx`` is a model
 and ``--target`` is required.
 """
 
@@ -32,10 +34,14 @@ import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
+
+from yaml.nodes import ScalarNode, SequenceNode
 
 from gate.bundled import names_a_file
 from gate.errors import ConfigError
 from gate.globs import path_glob_problem, path_match
+from gate.model.shapes import StaticShape, parse_shape
 from gate.yamlconf import Section, read_yaml_file, scalar_value
 
 CONFIG_FILE = "roofgate.yaml"
@@ -58,6 +64,7 @@ class ModelGroup:
     policies: tuple[str, ...]
     dims: Mapping[str, int] = field(default_factory=dict)
     precision: str | None = None
+    shapes: Mapping[str, StaticShape] = field(default_factory=dict)
 
     def matches(self, rel_path: str) -> bool:
         return any(glob_match(pattern, rel_path) for pattern in self.paths)
@@ -65,7 +72,8 @@ class ModelGroup:
     @property
     def key(self) -> tuple[object, ...]:
         """Groups with equal keys can be judged together."""
-        return (self.targets, self.policies, tuple(sorted(self.dims.items())), self.precision)
+        return (self.targets, self.policies, tuple(sorted(self.dims.items())), self.precision,
+                tuple(sorted(self.shapes.items())))
 
 
 @dataclass(frozen=True, slots=True)
@@ -114,6 +122,7 @@ class Overrides:
     policies: tuple[str, ...] = ()
     dims: Mapping[str, int] = field(default_factory=dict)
     precision: str | None = None
+    shapes: Mapping[str, StaticShape] = field(default_factory=dict)
 
 
 def find_config(start: str | Path = ".") -> Path | None:
@@ -153,7 +162,7 @@ def load_config(path: str | Path | None, *, root: str | Path = ".",
 
 
 def apply_overrides(config: ProjectConfig, overrides: Overrides) -> ProjectConfig:
-    """``config`` with command-line settings replacing (dims: merging over) each group's."""
+    """``config`` with command-line settings replacing (dims, shapes: merging over) each group's."""
     groups = tuple(
         replace(
             group,
@@ -161,6 +170,7 @@ def apply_overrides(config: ProjectConfig, overrides: Overrides) -> ProjectConfi
             policies=overrides.policies or group.policies,
             dims={**group.dims, **overrides.dims},
             precision=overrides.precision or group.precision,
+            shapes={**group.shapes, **overrides.shapes},
         )
         for group in (*config.groups, config.defaults)
     )
@@ -184,7 +194,8 @@ def parse_dim_bindings(items: Iterable[str]) -> dict[str, int]:
 
 # --- reading the file -----------------------------------------------------------
 
-_TOP_KEYS = ("version", "targets", "policies", "dims", "precision", "exclude", "models", "reports")
+_TOP_KEYS = ("version", "targets", "policies", "dims", "shapes", "precision", "exclude", "models",
+             "reports")
 
 
 def _read(path: Path) -> ProjectConfig:
@@ -200,6 +211,7 @@ def _read(path: Path) -> ProjectConfig:
         policies=tuple(top.get_str_list("policies", []) or []),
         dims=_dims(top),
         precision=top.get_str("precision"),
+        shapes=_shapes(top),
     )
     exclude = tuple(top.get_str_list("exclude", []) or [])
     groups = tuple(_group(section, defaults) for section in top.get_sections("models"))
@@ -221,6 +233,7 @@ def _group(section: Section, defaults: ModelGroup) -> ModelGroup:
     targets = section.get_str_list("targets")
     policies = section.get_str_list("policies")
     dims = _dims(section) if section.has("dims") else None
+    shapes = _shapes(section) if section.has("shapes") else None
     precision = section.get_str("precision")
     section.finish()
     return ModelGroup(
@@ -229,6 +242,7 @@ def _group(section: Section, defaults: ModelGroup) -> ModelGroup:
         policies=tuple(policies) if policies is not None else defaults.policies,
         dims={**defaults.dims, **(dims or {})},
         precision=precision if precision is not None else defaults.precision,
+        shapes={**defaults.shapes, **(shapes or {})},
     )
 
 
@@ -242,6 +256,26 @@ def _dims(section: Section) -> dict[str, int]:
             continue
         out[name] = value
     return out
+
+
+def _shapes(section: Section) -> dict[str, StaticShape]:
+    """``shapes: {images: 1x3x640x640}`` (or ``[1, 3, 640, 640]``): input name -> every dim."""
+    out: dict[str, StaticShape] = {}
+    for name, _sub, node in section.get_mapping_sections("shapes"):
+        key = f"{section.key_path + '.' if section.key_path else ''}shapes.{name}"
+        try:
+            out[name] = parse_shape(_shape_text(node))
+        except ValueError as exc:
+            section.doc.problem(node, key, str(exc))
+    return out
+
+
+def _shape_text(node: Any) -> str:
+    """A shape node as ``--shape`` text: a scalar as written, a list of sizes joined by 'x'."""
+    if isinstance(node, SequenceNode):
+        return "x".join(str(item.value) if isinstance(item, ScalarNode) else "?"
+                        for item in node.value)
+    return str(node.value) if isinstance(node, ScalarNode) else ""  # as written: 0x3 is no hex
 
 
 def _reports(top: Section) -> dict[str, str]:

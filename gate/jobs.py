@@ -43,6 +43,7 @@ class Job:
     dims: tuple[tuple[str, int], ...] = ()
     precision: str | None = None
     key: str = ""  # what results are keyed by (default: ``model``), e.g. to tell base from head
+    shapes: tuple[tuple[str, tuple[int, ...]], ...] = ()  # whole-input bindings (--shape)
 
     @property
     def result_key(self) -> str:
@@ -76,7 +77,8 @@ Analysed = dict[str, tuple[list[RunRecord], str]]  # result key -> (runs, error 
 
 def analyse_model(path: str, targets: Sequence[TargetProfile], *,
                   dims: Mapping[str, int] | None = None, precision: str | None = None,
-                  shown_path: str | None = None) -> Analysis:
+                  shown_path: str | None = None,
+                  shapes: Mapping[str, tuple[int, ...]] | None = None) -> Analysis:
     """Load and profile the model at ``path`` once, cost it on every target.
 
     Records name the model ``shown_path`` (default ``path``). Load warnings (for
@@ -84,7 +86,7 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
     reports show them. Raises ``RoofgateError`` for input that cannot be analysed.
     """
     _refuse_duplicate_targets(targets)
-    loaded = load_model(path, dict(dims or {}))
+    loaded = load_model(path, dict(dims or {}), dict(shapes or {}))
     profile = profile_model(loaded, precision)
     name = shown_path if shown_path is not None else path
     costs = tuple((target, cost_model(profile, target)) for target in targets)
@@ -98,10 +100,11 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
 
 def analyse(path: str, targets: Sequence[TargetProfile], *,
             dims: Mapping[str, int] | None = None, precision: str | None = None,
-            shown_path: str | None = None) -> list[RunRecord]:
+            shown_path: str | None = None,
+            shapes: Mapping[str, tuple[int, ...]] | None = None) -> list[RunRecord]:
     """The records of ``analyse_model`` (one per target)."""
     return list(analyse_model(path, targets, dims=dims, precision=precision,
-                              shown_path=shown_path).records)
+                              shown_path=shown_path, shapes=shapes).records)
 
 
 def _refuse_duplicate_targets(targets: Sequence[TargetProfile]) -> None:
@@ -145,7 +148,7 @@ def analyse_job(job: Job) -> JobOutcome:
     try:
         targets = [load_target(name) for name in job.targets]
         runs = analyse(job.file, targets, dims=dict(job.dims), precision=job.precision,
-                       shown_path=job.model)
+                       shown_path=job.model, shapes=dict(job.shapes))
     except InternalError:
         raise
     except RoofgateError as exc:

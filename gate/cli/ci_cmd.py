@@ -22,6 +22,7 @@ from gate.cli.common import (
     load_project,
     output_rules,
     precision_option,
+    shape_option,
     start_reports,
     target_option,
 )
@@ -48,6 +49,8 @@ def _config_options(func: Any) -> Any:
                           "or a YAML file (repeatable; replaces the config's policies)."),
         dim_option("Bind a symbolic input dim, e.g. --dim seq=256 (repeatable; merged over "
                    "the config's dims)."),
+        shape_option("Bind every dim of a graph input, e.g. --shape images=1x3x640x640 "
+                     "(repeatable; merged over the config's shapes)."),
         precision_option("Count floating-point tensors' bytes at this deploy precision "
                          "(int8, fp16, ...; replaces the config's)."),
         click.option("--baseline", default=None, metavar="SNAPSHOT",

@@ -1,7 +1,7 @@
 """Options and the closing step shared by several commands, so they read and behave alike.
 
 Every command that costs a model takes the same ``--config``, ``--target/-t``,
-``--dim`` and ``--precision`` options (same names, metavars, help and
+``--dim``, ``--shape`` and ``--precision`` options (same names, metavars, help and
 parsing) and reads the project config the same way (``load_project``: the
 ``roofgate.yaml`` found from the current folder upward, or ``--config``, with
 the flags replacing its settings); every command that judges a result ends the
@@ -26,6 +26,8 @@ from gate.config import (
     resolve_file,
     resolve_target,
 )
+from gate.errors import InputError
+from gate.model.shapes import StaticShape, parse_shape_binding, shape_text
 from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, remove_stale
 from gate.report import report_paths, report_targets, terminal, write_reports
 from gate.result import GateResult
@@ -35,6 +37,8 @@ F = TypeVar("F", bound=Callable[..., Any])
 TARGET_HELP = ("Target profile: a built-in name (see `roofgate targets`) or a YAML file "
                "(repeatable).")
 DIM_HELP = "Bind a symbolic input dim, e.g. --dim seq=256 (repeatable)."
+SHAPE_HELP = ("Bind every dim of a graph input, e.g. --shape images=1x3x640x640 (repeatable; "
+              "also unnamed and -1 dims, and H and W sharing one name).")
 PRECISION_HELP = ("Count floating-point tensors' bytes at this deploy precision (int4, int8, "
                   "int16, fp8, fp16, bf16, fp32; default: as exported). MACs never change.")
 
@@ -59,6 +63,26 @@ def parse_dims(ctx: click.Context | None, param: click.Parameter | None,
     return dims
 
 
+def parse_shapes(ctx: click.Context | None, param: click.Parameter | None,
+                 values: tuple[str, ...]) -> dict[str, StaticShape]:
+    """``("images=1x3x640x640",)`` -> ``{"images": (1, 3, 640, 640)}``.
+
+    Bad text is one line and exit 2 (``InputError``), never a traceback; whether
+    the input exists and has that rank is checked when the model is loaded.
+    """
+    shapes: dict[str, StaticShape] = {}
+    for text in values:
+        try:
+            name, shape = parse_shape_binding(text)
+        except ValueError as exc:
+            raise InputError(f"--shape {exc}") from None
+        if shapes.get(name, shape) != shape:
+            raise InputError(f"--shape: input '{name}' is bound twice ({shape_text(shapes[name])} "
+                             f"and {shape_text(shape)}); give it once")
+        shapes[name] = shape
+    return shapes
+
+
 def target_option(help_text: str = TARGET_HELP) -> Callable[[F], F]:
     """``--target/-t NAME|FILE`` (repeatable) into the ``targets`` tuple."""
     return click.option("--target", "-t", "targets", multiple=True, metavar="NAME|FILE",
@@ -69,6 +93,12 @@ def dim_option(help_text: str = DIM_HELP) -> Callable[[F], F]:
     """``--dim NAME=N`` (repeatable) parsed into the ``dims`` dict."""
     return click.option("--dim", "dims", multiple=True, metavar="NAME=N", callback=parse_dims,
                         help=help_text)
+
+
+def shape_option(help_text: str = SHAPE_HELP) -> Callable[[F], F]:
+    """``--shape INPUT=D1xD2x...`` (repeatable) parsed into the ``shapes`` dict."""
+    return click.option("--shape", "shapes", multiple=True, metavar="INPUT=SHAPE",
+                        callback=parse_shapes, help=help_text)
 
 
 def precision_option(help_text: str = PRECISION_HELP) -> Callable[[F], F]:
@@ -86,8 +116,9 @@ def config_option(help_text: str = CONFIG_HELP) -> Callable[[F], F]:
 
 
 def analysis_options(func: F) -> F:
-    """``--config``, ``--target/-t``, ``--dim`` and ``--precision`` with their standard help."""
-    for option in reversed((config_option(), target_option(), dim_option(),
+    """``--config``, ``--target/-t``, ``--dim``, ``--shape`` and ``--precision`` with their
+    standard help."""
+    for option in reversed((config_option(), target_option(), dim_option(), shape_option(),
                             precision_option())):
         func = option(func)
     return func
@@ -116,6 +147,7 @@ def load_project(kwargs: dict[str, Any], *, root: str | Path = ".", policies: bo
         policies=tuple(_cli_ref(p) for p in kwargs.get("policies", ())) if policies else (),
         dims=kwargs.get("dims") or {},
         precision=kwargs.get("precision"),
+        shapes=kwargs.get("shapes") or {},
     )
     return load_config(kwargs.get("config_path"), root=root, overrides=overrides,
                        require_targets=require_targets)

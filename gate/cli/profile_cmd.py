@@ -12,7 +12,14 @@ from typing import Any
 
 import click
 
-from gate.cli.common import config_option, dim_option, load_project, precision_option, target_option
+from gate.cli.common import (
+    config_option,
+    dim_option,
+    load_project,
+    precision_option,
+    shape_option,
+    target_option,
+)
 from gate.errors import InputError
 from gate.report.text import one_line, term_safe
 
@@ -29,6 +36,7 @@ def register(cli: click.Group) -> None:
                "YAML file (repeatable: several targets give a side-by-side matrix; replaces "
                "the config's targets).")
 @dim_option()
+@shape_option()
 @precision_option()
 @click.option("--format", "fmt", type=click.Choice(["table", "json", "csv"]), default="table",
               show_default=True, help="table for terminals; json and csv for machines.")
@@ -53,7 +61,8 @@ def profile(model: str, fmt: str, **kwargs: Any) -> None:
     settings = config.settings_for(model)
     names = dict.fromkeys(resolve_target(config, t) for t in settings.targets)
     targets = [load_target(name) for name in names]  # a target given twice is costed once
-    analysis = analyse_model(model, targets, dims=settings.dims, precision=settings.precision)
+    analysis = analyse_model(model, targets, dims=settings.dims, precision=settings.precision,
+                             shapes=settings.shapes)
     for warning in analysis.loaded.warnings:  # they quote model-supplied names: terminal-safe
         click.echo(f"warning: {term_safe(one_line(warning))}", err=True)
     if analysis.loaded.unbound_dims:

@@ -126,3 +126,4 @@ class LoadedModel:
     dim_bindings: Mapping[str, int]  # symbolic dims bound from --dim/config
     unbound_dims: tuple[str, ...]  # symbolic dims still unresolved somewhere in the graph
     warnings: tuple[str, ...] = ()  # e.g. external data outside the model folder (never opened)
+    shape_bindings: Mapping[str, tuple[int, ...]] = field(default_factory=dict)  # --shape/config

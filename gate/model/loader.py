@@ -7,11 +7,16 @@ every size comes from an initializer's dims and dtype. The steps, in order:
    (missing, empty, Git LFS pointer, truncated, random bytes, a protobuf that is
    not a model, no graph, an opset or IR version newer than the installed onnx);
 2. inline local functions (their nodes become ordinary layers);
-3. bind symbolic dims (``--dim batch=1``) on every declared tensor shape;
+3. bind whole inputs (``--shape images=1x3x640x640``, ``gate.model.shapes``) and
+   symbolic dims (``--dim batch=1``) on every declared tensor shape;
 4. drop inline weight values from memory (shapes and dtypes stay), then run onnx
    shape inference with data propagation (files over 2 GB through the
    path-based API into a temporary file: the input is never overwritten);
-5. convert to the immutable ``gate.model.graph`` types (``gate.model.convert``).
+5. where a tensor is still unsized, evaluate the shape arithmetic that computes
+   Reshape targets, Pad amounts, ... from the inputs' shapes and infer again
+   (``gate.model.shape_values``);
+6. convert to the immutable ``gate.model.graph`` types (``gate.model.convert``)
+   and note, once per cause, what stays unsized and the flag that fixes it.
 """
 
 from __future__ import annotations
@@ -36,6 +41,8 @@ from gate.model.convert import (
     graph_symbolic_dims,
 )
 from gate.model.graph import Graph, LoadedModel
+from gate.model.shape_values import refine_shapes
+from gate.model.shapes import MAX_DIM, StaticShape, bind_input_shapes, sizing_notes
 from gate.model.text import repair_text_fields
 
 # Files at least this large go through the path-based shape inference (protobuf's
@@ -46,13 +53,18 @@ _LFS_MAGIC = b"version https://git-lfs"
 _VALIDATE_REMEDY = "re-export the model, or check the file is the .onnx model itself"
 
 
-def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = None) -> LoadedModel:
-    """Load ``path`` for profiling, binding the symbolic dims in ``dims``; never reads weights.
+def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = None,
+               shapes: Mapping[str, StaticShape] | None = None) -> LoadedModel:
+    """Load ``path`` for profiling; never reads weights.
 
-    Raises ``InputError`` (exit 2) for anything that is not a usable ONNX model.
+    ``dims`` binds symbolic dims by name (``--dim``), ``shapes`` binds every dim
+    of the named graph inputs (``--shape``). Raises ``InputError`` (exit 2) for
+    anything that is not a usable ONNX model, and for a ``shapes`` entry that
+    names no input or contradicts the model.
     """
     text_path = os.fspath(path)
     bindings = _check_bindings(dict(dims or {}), text_path)
+    shape_bindings = _check_shapes(dict(shapes or {}), text_path)
     size_bytes = _check_file(text_path)
     proto = _parse(text_path)
     _validate(proto, text_path)
@@ -69,15 +81,18 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     if size_bytes >= PATH_INFERENCE_BYTES:
         proto, inference_warning = _infer_by_path(text_path, proto)
         proto = _inline(proto, text_path)
-        _bind_dims(proto.graph, bindings)
+        _bind(proto.graph, bindings, shape_bindings, text_path)
     else:
         proto = _inline(proto, text_path)
-        _bind_dims(proto.graph, bindings)
+        _bind(proto.graph, bindings, shape_bindings, text_path)
         proto, inference_warning = _infer_in_memory(proto)
     if inference_warning:
         warnings.append(inference_warning)
+    else:
+        proto = refine_shapes(proto, frozenset(declared), _infer, text_path)
     graph, more_warnings = convert_model(proto, text_path, frozenset(declared))
     warnings.extend(more_warnings)
+    warnings.extend(sizing_notes(graph))
     return LoadedModel(
         path=text_path,
         name=proto.graph.name or Path(text_path).stem,
@@ -86,6 +101,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
         ir_version=int(proto.ir_version),
         producer=" ".join(p for p in (proto.producer_name, proto.producer_version) if p),
         dim_bindings=bindings,
+        shape_bindings=shape_bindings,
         unbound_dims=_unbound_dims(graph),
         warnings=tuple(warnings),
     )
@@ -97,6 +113,15 @@ def _check_bindings(dims: dict[str, int], path: str) -> dict[str, int]:
             raise InputError(f"dim binding {name}={value!r} is not a non-negative integer; "
                              f"use --dim {name}=N", path)
     return dict(sorted(dims.items()))
+
+
+def _check_shapes(shapes: dict[str, StaticShape], path: str) -> dict[str, StaticShape]:
+    for name, shape in shapes.items():
+        if not all(isinstance(d, int) and not isinstance(d, bool) and 0 < d <= MAX_DIM
+                   for d in shape):
+            raise InputError(f"shape binding {name}={shape!r} is not a list of positive "
+                             f"int64 sizes; use --shape {name}=D1xD2x...", path)
+    return {name: tuple(shape) for name, shape in sorted(shapes.items())}
 
 
 def _check_file(path: str) -> int:
@@ -166,6 +191,13 @@ def _inline(proto: onnx.ModelProto, path: str) -> onnx.ModelProto:
                          f"{str(exc)[:200]}); check the model with onnx.checker", path) from None
 
 
+def _bind(graph: onnx.GraphProto, dims: Mapping[str, int],
+          shapes: Mapping[str, StaticShape], path: str) -> None:
+    """Bind whole inputs first, then named dims (given ones over those the inputs imply)."""
+    implied = bind_input_shapes(graph, shapes, dims, path) if shapes else {}
+    _bind_dims(graph, {**implied, **dims})
+
+
 def _bind_dims(graph: onnx.GraphProto, bindings: Mapping[str, int]) -> None:
     """Replace bound ``dim_param``s by their values on every declared shape (all scopes)."""
     if not bindings:
@@ -186,9 +218,13 @@ def _bind_dims(graph: onnx.GraphProto, bindings: Mapping[str, int]) -> None:
                 stack.extend(attribute.graphs)
 
 
+def _infer(proto: onnx.ModelProto) -> onnx.ModelProto:
+    return onnx.shape_inference.infer_shapes(proto, data_prop=True)
+
+
 def _infer_in_memory(proto: onnx.ModelProto) -> tuple[onnx.ModelProto, str]:
     try:
-        return onnx.shape_inference.infer_shapes(proto, data_prop=True), ""
+        return _infer(proto), ""
     except Exception as exc:  # noqa: BLE001  (inference failure leaves declared shapes only)
         return proto, _inference_failed(exc)
 

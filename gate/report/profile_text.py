@@ -84,6 +84,7 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
         "model": {"path": model.path, "name": model.name, "ir_version": model.ir_version,
                   "producer": model.producer, "opsets": dict(model.opsets),
                   "dim_bindings": dict(model.dim_bindings),
+                  "shape_bindings": {k: list(v) for k, v in model.shape_bindings.items()},
                   "unbound_dims": list(model.unbound_dims), "warnings": list(model.warnings)},
         "precision": profile.precision,
         "totals": {"layers": len(profile.layers), "macs": profile.total_macs,
@@ -256,7 +257,8 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
     side-by-side matrix) and a line of model totals below the table.
     """
     model = profile.model
-    dims = " ".join(f"{k}={v}" for k, v in model.dim_bindings.items()) or "none"
+    dims = " ".join([*(f"{k}={v}" for k, v in model.dim_bindings.items()),
+                     *(f"{k}={shape_text(v)}" for k, v in model.shape_bindings.items())]) or "none"
     opsets = ", ".join(f"{domain or 'ai.onnx'} {version}"
                        for domain, version in model.opsets.items())
     lines = [f"model: {clean(model.name, 80)} ({clean(model.path, 120)})",
