@@ -13,20 +13,24 @@ External checks:
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
 import onnx
 import pytest
+from click.testing import CliRunner
+from loadkit import model, save, vi
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-from gate.errors import InputError
+from gate.cli import cli
+from gate.config import Overrides, load_config
+from gate.errors import ConfigError, InputError
 from gate.model.loader import load_model
-from gate.model.shape_values import VALUE_LIMIT, propagate_values
+from gate.model.shape_values import propagate_values
 from gate.model.shapes import parse_shape, parse_shape_binding
 from gate.profile import profile_model
-from loadkit import model, save, vi
 
 I64 = TensorProto.INT64
 
@@ -220,3 +224,345 @@ def test_text_recogniser_computed_reshape_was_low_before(tmp_path: Path) -> None
     assert not all(d.HasField("dim_value") for d in feat.type.tensor_type.shape.dim)
     loaded = load_model(save(proto, tmp_path / "ocr.onnx"))
     assert profile_model(loaded).coverage.nodes_modelled == len(proto.graph.node)
+
+
+# ------------------------------------------------------------------ each rule against onnx.reference
+
+def _rule_case(op: str, inputs: list[np.ndarray | None], **attrs: object):
+    """A one-node model whose inputs are stored constants; output value from both sides."""
+    names = [f"in{i}" if value is not None else "" for i, value in enumerate(inputs)]
+    inits = [numpy_helper.from_array(value, name)
+             for name, value in zip(names, inputs) if value is not None]
+    node = helper.make_node(op, names, ["out"], **attrs)
+    proto = model([node], [], [vi("out", None)], inits, opset=18)
+    expected = ReferenceEvaluator(proto).run(None, {})[0]
+    return propagate_values(proto.graph).get("out"), np.asarray(expected)
+
+
+def _a(values: object, dtype: type = np.int64) -> np.ndarray:
+    return np.array(values, dtype)
+
+
+RULE_CASES = {
+    "Div truncates toward zero": ("Div", [_a([7, -7, 7, -7, 0]), _a([2, 2, -2, -2, 3])], {}),
+    "Mod sign of divisor": ("Mod", [_a([7, -7, 7, -7]), _a([3, 3, -3, -3])], {}),
+    "Mod fmod": ("Mod", [_a([7, -7, 7, -7]), _a([3, 3, -3, -3])], {"fmod": 1}),
+    "Add broadcast": ("Add", [_a([[1], [2]]), _a([10, 20, 30])], {}),
+    "Sub": ("Sub", [_a(5), _a([1, 2, 9])], {}),
+    "Mul": ("Mul", [_a([3, 4]), _a(-2)], {}),
+    "Max": ("Max", [_a([1, 9, 3]), _a([4, 2, 8]), _a(5)], {}),
+    "Min": ("Min", [_a([1, 9, 3]), _a([4, 2, 8])], {}),
+    "Neg": ("Neg", [_a([1, -2])], {}),
+    "Abs": ("Abs", [_a([1, -2])], {}),
+    "Gather negative index": ("Gather", [_a([5, 6, 7, 8]), _a([-1, 0])], {"axis": 0}),
+    "Gather scalar index": ("Gather", [_a([5, 6, 7, 8]), _a(2)], {}),
+    "Slice clamped": ("Slice", [_a([1, 2, 3, 4, 5]), _a([1]), _a([2**62])], {}),
+    "Slice negative step": ("Slice", [_a([1, 2, 3, 4, 5]), _a([-1]), _a([-2**62]), _a([0]),
+                                      _a([-2])], {}),
+    "Slice 2-D axis 1": ("Slice", [_a([[1, 2, 3], [4, 5, 6]]), _a([-2]), _a([3]), _a([1])], {}),
+    "Concat": ("Concat", [_a([1, 2]), _a([3]), _a([-1])], {"axis": 0}),
+    "Unsqueeze": ("Unsqueeze", [_a(4), _a([0])], {}),
+    "Unsqueeze negative": ("Unsqueeze", [_a([4, 5]), _a([-1])], {}),
+    "Squeeze": ("Squeeze", [_a([[4]]), _a([0, 1])], {}),
+    "Squeeze all": ("Squeeze", [_a([[4, 5]])], {}),
+    "Cast int to float": ("Cast", [_a([3, -7])], {"to": TensorProto.FLOAT}),
+    "Cast float to int truncates": ("Cast", [_a(-2.75, np.float32)], {"to": TensorProto.INT64}),
+    "Cast to int32": ("Cast", [_a([3, 70000])], {"to": TensorProto.INT32}),
+    "Floor": ("Floor", [_a(-2.5, np.float32)], {}),
+    "Ceil": ("Ceil", [_a(2.25, np.float32)], {}),
+    "Round half to even": ("Round", [_a(2.5, np.float32)], {}),
+    "Div float": ("Div", [_a(7.0, np.float32), _a(2.0, np.float32)], {}),
+    "ConstantOfShape int": ("ConstantOfShape", [_a([2, 3])],
+                            {"value": helper.make_tensor("v", TensorProto.INT64, [1], [7])}),
+    "ConstantOfShape default": ("ConstantOfShape", [_a([3])], {}),
+    "Range": ("Range", [_a(2), _a(11), _a(3)], {}),
+    "Range down": ("Range", [_a(10), _a(1), _a(-4)], {}),
+    "Range empty": ("Range", [_a(5), _a(1), _a(1)], {}),
+    "Reshape 0 and -1": ("Reshape", [_a([[1, 2, 3], [4, 5, 6]]), _a([0, -1])], {}),
+    "Reshape flat": ("Reshape", [_a([[1, 2], [3, 4]]), _a([-1])], {}),
+    "Expand": ("Expand", [_a([1, 2]), _a([3, 1])], {}),
+    "Where": ("Where", [_a([True, False, True], bool), _a([1, 2, 3]), _a([-1, -2, -3])], {}),
+    "Equal": ("Equal", [_a([1, 2, 3]), _a([1, 0, 3])], {}),
+    "Less": ("Less", [_a([1, 2, 3]), _a(2)], {}),
+    "Greater": ("Greater", [_a([1, 2, 3]), _a(2)], {}),
+    "Not": ("Not", [_a([True, False], bool)], {}),
+    "And": ("And", [_a([True, True], bool), _a([True, False], bool)], {}),
+    "ReduceProd": ("ReduceProd", [_a([2, 3, 4]), _a([0])], {"keepdims": 0}),
+    "ReduceSum keepdims": ("ReduceSum", [_a([[1, 2], [3, 4]]), _a([1])], {}),
+    "ReduceMax all": ("ReduceMax", [_a([[1, 7], [3, 4]])], {"keepdims": 0}),
+    "Identity": ("Identity", [_a([1, 2])], {}),
+}
+
+
+@pytest.mark.parametrize("case", sorted(RULE_CASES))
+def test_rule_matches_the_onnx_reference(case: str) -> None:
+    # Source: onnx.reference (the ONNX operator specification's executable reference).
+    op, inputs, attrs = RULE_CASES[case]
+    got, expected = _rule_case(op, inputs, **attrs)
+    assert got is not None, case
+    assert got.dtype == expected.dtype and got.shape == expected.shape, case
+    assert np.array_equal(got, expected), (case, got, expected)
+
+
+def test_shape_rule_reads_only_shapes() -> None:
+    # Source: onnx.reference runs Shape/Size (with start and end) on a real array.
+    nodes = [helper.make_node("Shape", ["x"], ["s"], start=1, end=-1),
+             helper.make_node("Size", ["x"], ["n"])]
+    proto = model(nodes, [vi("x", [2, 3, 4, 5])], [vi("s", None), vi("n", None)])
+    s, n = ReferenceEvaluator(proto).run(None, {"x": np.zeros((2, 3, 4, 5), np.float32)})
+    values = propagate_values(proto.graph)
+    assert np.array_equal(values["s"], s) and np.array_equal(values["n"], n)
+
+
+@pytest.mark.parametrize("op, inputs", [
+    ("Mul", [_a([2**40]), _a([2**40])]),  # beyond int64: not wrapped around, just unknown
+    ("Div", [_a([4]), _a([0])]),  # division by zero
+    ("Mod", [_a([4]), _a([0])]),
+    ("ConstantOfShape", [_a([10**6])]),  # too large to hold: never materialised
+    ("Range", [_a(0), _a(10**9), _a(1)]),
+    ("Cast", [_a(2**40)]),  # does not fit int32
+    ("Gather", [_a([1, 2]), _a([5])]),  # index out of range
+    ("Reshape", [_a([1, 2, 3]), _a([2, -1])]),  # inconsistent
+])
+def test_values_that_cannot_be_known_stay_unknown(op: str, inputs: list[np.ndarray]) -> None:
+    attrs = {"to": TensorProto.INT32} if op == "Cast" else {}
+    names = [f"in{i}" for i in range(len(inputs))]
+    inits = [numpy_helper.from_array(v, n) for n, v in zip(names, inputs)]
+    proto = model([helper.make_node(op, names, ["out"], **attrs)], [], [vi("out", None)], inits)
+    assert "out" not in propagate_values(proto.graph)
+
+
+def test_weights_are_never_read(tmp_path: Path) -> None:
+    # A float initializer with more than one element is a weight: its values never enter
+    # the evaluation, even when a Shape-like chain could use them.
+    weight = numpy_helper.from_array(np.arange(6, dtype=np.float32), "w")
+    nodes = [helper.make_node("Cast", ["w"], ["wi"], to=TensorProto.INT64)]
+    proto = model(nodes, [], [vi("wi", None)], [weight])
+    assert "wi" not in propagate_values(proto.graph)
+
+
+# ------------------------------------------------------------------ binding whole inputs
+
+def _square_name_cnn() -> onnx.ModelProto:
+    """Conv + Relu with H and W both declared as 'size' (input and output alike)."""
+    nodes = [helper.make_node("Conv", ["x", "w"], ["c"], pads=[1, 1, 1, 1], name="conv"),
+             helper.make_node("Relu", ["c"], ["y"], name="relu")]
+    inits = _weights(np.random.default_rng(4), {"w": [8, 3, 3, 3]})
+    return model(nodes, [vi("x", ["batch", 3, "size", "size"])],
+                 [vi("y", ["batch", 8, "size", "size"])], inits)
+
+
+def test_shared_dim_name_gets_a_value_per_dim(tmp_path: Path) -> None:
+    proto = _square_name_cnn()
+    path = save(proto, tmp_path / "square.onnx")
+    unbound = load_model(path)
+    assert [n for n in unbound.warnings if "dims 2 and 3" in n and "--shape x=" in n]
+    image = np.zeros((2, 3, 32, 48), np.float32)  # H != W, as deployed
+    macs = _check_against_trace(path, proto, {"x": image}, {"x": (2, 3, 32, 48)})
+    assert macs == 2 * 32 * 48 * 8 * 3 * 3 * 3
+
+
+def test_a_name_bound_once_binds_it_on_other_inputs(tmp_path: Path) -> None:
+    nodes = [helper.make_node("Add", ["ids", "mask"], ["s"], name="add"),
+             helper.make_node("MatMul", ["s", "w"], ["y"], name="proj")]
+    proto = model(nodes, [vi("ids", ["batch", "seq"]), vi("mask", ["batch", "seq"])],
+                  [vi("y", ["batch", 4])], _weights(np.random.default_rng(5), {"w": [7, 4]}))
+    path = save(proto, tmp_path / "two.onnx")
+    feeds = {"ids": np.zeros((2, 7), np.float32), "mask": np.zeros((2, 7), np.float32)}
+    _check_against_trace(path, proto, feeds, {"ids": (2, 7)})
+
+
+def test_shape_and_dim_together(tmp_path: Path) -> None:
+    proto = _square_name_cnn()
+    path = save(proto, tmp_path / "square.onnx")
+    loaded = load_model(path, {"batch": 1}, {"x": (1, 3, 16, 16)})
+    assert loaded.unbound_dims == () and loaded.shape_bindings == {"x": (1, 3, 16, 16)}
+    assert loaded.dim_bindings == {"batch": 1}
+
+
+@pytest.mark.parametrize("shapes, dims, message", [
+    ({"images": (1, 3, 8, 8)}, {}, "the model has no input 'images' (its inputs: 'x')"),
+    ({"w": (8, 3, 3, 3)}, {}, "the model has no input 'w'"),  # an initializer is no input
+    ({"x": (1, 3, 8)}, {}, "input 'x' has rank 4 (batch x 3 x size x size); give 4 sizes"),
+    ({"x": (1, 4, 8, 8)}, {}, "dim 1 of input 'x' is fixed at 3 in the model; give 3 there"),
+    ({"x": (1, 3, 8, 8)}, {"batch": 2}, "dim 0 ('batch') contradicts --dim batch=2"),
+    ({"x": (1, 3, 0, 8)}, {}, "not a list of positive int64 sizes"),
+])
+def test_bindings_that_contradict_the_model_are_refused(tmp_path: Path, shapes: dict,
+                                                        dims: dict, message: str) -> None:
+    path = save(_square_name_cnn(), tmp_path / "square.onnx")
+    with pytest.raises(InputError) as raised:
+        load_model(path, dims, shapes)
+    text = raised.value.format_message()
+    assert message in text and str(path) in text and "\n" not in text
+
+
+@pytest.mark.parametrize("text, expected", [
+    ("images=1x3x640x640", ("images", (1, 3, 640, 640))),
+    (" audio = 1 x 16000 ", ("audio", (1, 16000))),
+    ("a=b=2X3", ("a=b", (2, 3))),  # the shape follows the last '='
+    ("x=9223372036854775807", ("x", (2**63 - 1,))),
+])
+def test_parse_shape_binding(text: str, expected: tuple) -> None:
+    assert parse_shape_binding(text) == expected
+
+
+@pytest.mark.parametrize("text, message", [
+    ("images", "expected INPUT=SHAPE"), ("=1x3", "expected INPUT=SHAPE"),
+    ("x=", "not a shape"), ("x=1x", "not a shape"), ("x=1.5x2", "not a shape"),
+    ("x=abc", "not a shape"), ("x=1x-1", "size -1 is not positive"),
+    ("x=0x3", "size 0 is not positive"), ("x=1x9223372036854775808", "beyond int64"),
+    ("x=1x٣", "not a shape"),  # a non-ASCII digit
+])
+def test_parse_shape_binding_refuses(text: str, message: str) -> None:
+    with pytest.raises(ValueError, match=message):
+        parse_shape_binding(text)
+    assert parse_shape("1x2") == (1, 2)
+
+
+# ------------------------------------------------------------------ notes on what stays unsized
+
+def test_data_dependent_size_names_the_node_and_says_no_flag_fixes_it(tmp_path: Path) -> None:
+    nodes = [helper.make_node("NonZero", ["x"], ["nz"], name="find"),
+             helper.make_node("Transpose", ["nz"], ["t"], name="swap"),
+             helper.make_node("Cast", ["t"], ["y"], to=TensorProto.FLOAT, name="cast")]
+    proto = model(nodes, [vi("x", [4, 5])], [vi("y", None)])
+    loaded = load_model(save(proto, tmp_path / "nz.onnx"))
+    notes = [w for w in loaded.warnings if "stay unsized" in w]
+    assert len(notes) == 1
+    assert "node 'find' (NonZero, output 'nz')" in notes[0]
+    assert "no --shape or --dim can size them" in notes[0]
+
+
+def test_sized_models_get_no_sizing_note(tmp_path: Path) -> None:
+    loaded = load_model(save(text_recogniser(64), tmp_path / "ocr.onnx"))
+    assert not [w for w in loaded.warnings if "--shape" in w or "unsized" in w]
+
+
+# ------------------------------------------------------------------ the command line and roofgate.yaml
+
+TARGET = "ws-64x64-4mib"
+POLICY = "version: 1\nname: t\nrules:\n  - {id: coverage, kind: max_unmodelled, max_work_share: 0}\n"
+
+
+@pytest.fixture()
+def vad_dir(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    save(vad_front_end(-1), tmp_path / "vad.onnx")
+    (tmp_path / "policy.yaml").write_text(POLICY, encoding="utf-8")
+    monkeypatch.chdir(tmp_path)
+    return tmp_path
+
+
+COMMANDS = {
+    "profile": ["profile", "vad.onnx"],
+    "gate": ["gate", "vad.onnx", "-t", TARGET, "-p", "policy.yaml"],
+    "baseline": ["baseline", "vad.onnx", "-t", TARGET, "-o", "base.json"],
+    "diff": ["diff", "vad.onnx", "vad.onnx", "-t", TARGET],
+    "audit": ["audit", "vad.onnx", "-t", TARGET, "-p", "policy.yaml"],
+    "check": ["check", "--base", "main", "-t", TARGET],
+}
+
+
+@pytest.mark.parametrize("command", sorted(COMMANDS))
+@pytest.mark.parametrize("flag, message", [
+    ("audio=1x0", "size 0 is not positive"),
+    ("audio=1x-4", "size -4 is not positive"),
+    ("audio=lots", "not a shape"),
+    ("audio", "expected INPUT=SHAPE"),
+    ("audio=1x99999999999999999999", "beyond int64"),
+])
+def test_bad_shape_text_is_one_line_and_exit_2_on_every_command(vad_dir: Path, command: str,
+                                                                  flag: str, message: str) -> None:
+    result = CliRunner().invoke(cli, [*COMMANDS[command], "--shape", flag])
+    assert result.exit_code == 2, result.output
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and message in lines[0] and "--shape" in lines[0], result.stderr
+    assert "Traceback" not in result.output
+
+
+@pytest.mark.parametrize("flag, message", [
+    ("speech=1x1000", "the model has no input 'speech' (its inputs: 'audio')"),
+    ("audio=1000", "input 'audio' has rank 2 (1 x -1); give 2 sizes"),
+    ("audio=1x2x1000", "input 'audio' has rank 2"),
+    ("audio=2x1000", "dim 0 of input 'audio' is fixed at 1"),
+])
+def test_shape_that_does_not_fit_the_model_is_one_line_and_exit_2(vad_dir: Path, flag: str,
+                                                                   message: str) -> None:
+    for command in ("profile", "baseline"):
+        result = CliRunner().invoke(cli, [*COMMANDS[command], "--shape", flag])
+        assert result.exit_code == 2, result.output
+        lines = result.stderr.strip().splitlines()
+        assert len(lines) == 1 and message in lines[0] and "vad.onnx" in lines[0], lines
+    for command in ("gate", "audit"):  # the model is named as unanalysable, never passed
+        result = CliRunner().invoke(cli, [*COMMANDS[command], "--shape", flag])
+        assert result.exit_code == 2 and message in result.output, result.output
+        assert "Traceback" not in result.output
+
+
+def test_shape_bound_twice_differently_is_refused(vad_dir: Path) -> None:
+    result = CliRunner().invoke(cli, [*COMMANDS["profile"], "--shape", "audio=1x10",
+                                      "--shape", "audio=1x20"])
+    assert result.exit_code == 2 and "bound twice (1x10 and 1x20)" in result.stderr
+
+
+def test_every_analysing_command_binds_the_shape(vad_dir: Path) -> None:
+    runner = CliRunner()
+    unbound = runner.invoke(cli, COMMANDS["gate"])
+    assert unbound.exit_code == 1, unbound.output  # 0 MACs: the coverage rule fails it
+    for command in ("gate", "audit", "diff", "baseline"):
+        result = runner.invoke(cli, [*COMMANDS[command], "--shape", "audio=1x1000"])
+        assert result.exit_code == 0, (command, result.output)
+    runs = json.loads(Path("base.json").read_text(encoding="utf-8"))["runs"]
+    assert runs[0]["metrics"]["macs"] == _vad_macs(1000)
+    profile = runner.invoke(cli, [*COMMANDS["profile"], "--shape", "audio=1x1000",
+                                  "--format", "json"])
+    document = json.loads(profile.stdout)
+    assert document["totals"]["macs"] == _vad_macs(1000)
+    assert document["model"]["shape_bindings"] == {"audio": [1, 1000]}
+
+
+def _vad_macs(samples: int) -> int:
+    """MACs of ``vad_front_end`` from an onnx.reference execution trace."""
+    proto = vad_front_end(-1)
+    real = _trace(proto, {"audio": np.zeros((1, samples), np.float32)})
+    return sum(_traced_macs(node, real) for node in proto.graph.node)
+
+
+def _write_config(root: Path, text: str) -> Path:
+    path = root / "roofgate.yaml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_config_shapes_per_group_and_flags_override(tmp_path: Path) -> None:
+    path = _write_config(tmp_path, f"targets: [{TARGET}]\nshapes: {{audio: 1x500}}\nmodels:\n"
+                         "  - paths: ['speech/*.onnx']\n    shapes: {audio: [1, 1000]}\n"
+                         "  - paths: ['**/*.onnx']\n")
+    config = load_config(path)
+    assert dict(config.groups[0].shapes) == {"audio": (1, 1000)}
+    assert dict(config.groups[1].shapes) == {"audio": (1, 500)}
+    flags = load_config(path, overrides=Overrides(shapes={"audio": (1, 64), "x": (2,)}))
+    assert dict(flags.groups[0].shapes) == {"audio": (1, 64), "x": (2,)}
+    assert config.groups[0].key != flags.groups[0].key
+
+
+def test_config_shape_errors_name_line_and_key(tmp_path: Path) -> None:
+    path = _write_config(tmp_path, f"targets: [{TARGET}]\nshapes: {{audio: 1x0}}\nmodels:\n"
+                         "  - paths: ['*.onnx']\n    shapes: {audio: 0x3, mel: [1, a], x: {y: 1}}\n")
+    with pytest.raises(ConfigError) as raised:
+        load_config(path)
+    text = "\n".join(raised.value.problems)
+    assert "roofgate.yaml:2" in text and "shapes.audio: size 0 is not positive" in text
+    assert "models[0].shapes.audio: size 0 is not positive" in text  # 0x3 is not hex here
+    assert "models[0].shapes.mel: not a shape" in text and "models[0].shapes.x: not a shape" in text
+
+
+def test_audit_takes_shapes_from_the_config_and_the_flag_wins(vad_dir: Path) -> None:
+    _write_config(vad_dir, f"targets: [{TARGET}]\npolicies: [policy.yaml]\n"
+                  "shapes: {audio: 1x1000}\n")
+    runner = CliRunner()
+    for extra, samples in (([], 1000), (["--shape", "audio=1x2000"], 2000)):
+        result = runner.invoke(cli, ["audit", "vad.onnx", "--json", "out.json", *extra])
+        assert result.exit_code == 0, result.output
+        entry = json.loads(Path("out.json").read_text(encoding="utf-8"))["result"]["entries"][0]
+        assert entry["head"]["metrics"]["macs"] == _vad_macs(samples)
