@@ -433,11 +433,17 @@ def _value_is_sized(value: onnx.ValueInfoProto, declared: frozenset[str]) -> boo
     return tensor.HasField("shape") and all(_dim_is_sized(d, declared) for d in tensor.shape.dim)
 
 
-def unsized_count(graph: onnx.GraphProto, declared: frozenset[str]) -> int:
+def unsized_names(graph: onnx.GraphProto, declared: frozenset[str]) -> set[str]:
     """Node outputs of the main graph without a known rank or with a dim nobody can name."""
     sized = {v.name: _value_is_sized(v, declared) for v in (*graph.value_info, *graph.output)}
-    return sum(1 for node in graph.node for name in node.output
-               if name and not sized.get(name, False))
+    return {name for node in graph.node for name in node.output
+            if name and not sized.get(name, False)}
+
+
+def _helps(graph: onnx.GraphProto, new_values: set[str], unsized: set[str]) -> bool:
+    """Whether a newly known value feeds a node that leaves an output unsized."""
+    return any(any(name in new_values for name in node.input) and
+               any(name in unsized for name in node.output) for node in graph.node)
 
 
 def _forget_unsized(graph: onnx.GraphProto, declared: frozenset[str]) -> None:
@@ -516,19 +522,19 @@ def refine_shapes(model: onnx.ModelProto, declared: frozenset[str],
     (they count as sized: ``--dim`` binds them, values cannot).
     """
     handed_over: set[str] = set()
-    unsized = unsized_count(model.graph, declared)
+    unsized = unsized_names(model.graph, declared)
     for _ in range(MAX_ROUNDS):
         if not unsized:
             break
         values = propagate_values(model.graph, path)
-        if not values.keys() - handed_over:
-            break
+        if not _helps(model.graph, values.keys() - handed_over, unsized):
+            break  # nothing new reaches an unsized tensor: another inference would not help
         handed_over |= values.keys()
         candidate = _infer_with_values(model, values, declared, infer)
         if candidate is None:
             break
-        remaining = unsized_count(candidate.graph, declared)
-        if remaining >= unsized:
+        remaining = unsized_names(candidate.graph, declared)
+        if len(remaining) >= len(unsized):
             break
         model, unsized = candidate, remaining
     return model

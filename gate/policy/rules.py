@@ -28,8 +28,9 @@ DEFAULT_REMEDIES = {
                      "the limit",
     spec.MAX_REGRESSION: "check that the change is intended; if it is, raise the limit or "
                          "refresh the baseline",
-    spec.MAX_UNMODELLED: "bind unbound symbolic dims with --dim, add cost functions for these "
-                         "op types, replace them with modelled ops, or raise the limit",
+    spec.MAX_UNMODELLED: "size the inputs with --shape or --dim (the notes say which), add "
+                         "cost functions for these op types, replace them with modelled ops, "
+                         "or raise the limit",
     spec.METRIC_LIMIT: "change the model or adjust the limit",
 }
 # fits_in_buffer suggests fixes for what the rule checks: (params, activations) -> remedy.
