@@ -455,7 +455,7 @@ def vad_dir(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
 
 COMMANDS = {
     "profile": ["profile", "vad.onnx"],
-    "gate": ["gate", "vad.onnx", "-t", TARGET, "-p", "policy.yaml"],
+    "evaluate": ["evaluate", "vad.onnx", "-t", TARGET, "-p", "policy.yaml"],
     "baseline": ["baseline", "vad.onnx", "-t", TARGET, "-o", "base.json"],
     "diff": ["diff", "vad.onnx", "vad.onnx", "-t", TARGET],
     "audit": ["audit", "vad.onnx", "-t", TARGET, "-p", "policy.yaml"],
@@ -493,7 +493,7 @@ def test_shape_that_does_not_fit_the_model_is_one_line_and_exit_2(vad_dir: Path,
         assert result.exit_code == 2, result.output
         lines = result.stderr.strip().splitlines()
         assert len(lines) == 1 and message in lines[0] and "vad.onnx" in lines[0], lines
-    for command in ("gate", "audit"):  # the model is named as unanalysable, never passed
+    for command in ("evaluate", "audit"):  # the model is named as unanalysable, never passed
         result = CliRunner().invoke(cli, [*COMMANDS[command], "--shape", flag])
         assert result.exit_code == 2 and message in result.output, result.output
         assert "Traceback" not in result.output
@@ -507,9 +507,9 @@ def test_shape_bound_twice_differently_is_refused(vad_dir: Path) -> None:
 
 def test_every_analysing_command_binds_the_shape(vad_dir: Path) -> None:
     runner = CliRunner()
-    unbound = runner.invoke(cli, COMMANDS["gate"])
+    unbound = runner.invoke(cli, COMMANDS["evaluate"])
     assert unbound.exit_code == 1, unbound.output  # 0 MACs: the coverage rule fails it
-    for command in ("gate", "audit", "diff", "baseline"):
+    for command in ("evaluate", "audit", "diff", "baseline"):
         result = runner.invoke(cli, [*COMMANDS[command], "--shape", "audio=1x1000"])
         assert result.exit_code == 0, (command, result.output)
     runs = json.loads(Path("base.json").read_text(encoding="utf-8"))["runs"]
