@@ -14,6 +14,7 @@ from dataclasses import dataclass, fields
 from math import ceil
 
 from gate.errors import InputError
+from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
 from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
 from gate.targets.spec import DATAFLOWS, EngineSpec, TargetProfile, normal_precision
@@ -104,6 +105,7 @@ class _Context:
     model_precision: str
     weights_resident: bool
     total_param_bytes: int
+    shared_params_resident: bool  # parameters read by several layers stay on chip between reads
 
 
 def cost_model(profile: ModelProfile, target: TargetProfile,
@@ -119,7 +121,8 @@ def cost_model(profile: ModelProfile, target: TargetProfile,
     target.precision_spec(model_precision)  # InputError naming target and precision
     wanted = target.weights_resident if weights_resident is None else weights_resident
     resident = wanted and _weights_fit_on_chip(profile, target)
-    ctx = _Context(target, explicit, model_precision, resident, profile.total_param_bytes)
+    ctx = _Context(target, explicit, model_precision, resident, profile.total_param_bytes,
+                   profile.shared_param_bytes <= target.param_capacity_bytes)
     layers = tuple(_cost_layer(layer, ctx) for layer in profile.layers)
     return _totals(profile, target, ctx, layers, wanted)
 
@@ -139,7 +142,7 @@ def _check_target(target: TargetProfile) -> None:
 # ---------------------------------------------------------------- precision
 
 def _explicit_precision(precision: str) -> str | None:
-    if not precision or precision == "native":
+    if not precision or precision in ("native", DEPLOYED_LABEL):
         return None
     canonical = normal_precision(precision)
     if canonical is None:
@@ -149,6 +152,9 @@ def _explicit_precision(precision: str) -> str | None:
 
 
 def _layer_native_precision(layer: LayerProfile) -> str | None:
+    """The precision the profile read from the graph; for a hand-built profile, its dtypes."""
+    if layer.precision:
+        return normal_precision(layer.precision)
     for dtype in layer.input_dtypes[:1] + layer.output_dtypes[:1]:
         canonical = normal_precision(dtype)
         if canonical is not None:
@@ -160,6 +166,8 @@ def _dominant_precision(profile: ModelProfile, target: TargetProfile) -> str:
     """The native precision carrying the most MACs (or, with no MACs, the most layers)."""
     weight: dict[str, int] = {}
     for layer in profile.layers:
+        if layer.role != "layer":
+            continue
         native = _layer_native_precision(layer)
         if native is not None:
             weight[native] = weight.get(native, 0) + max(layer.macs, 0) * 1000 + 1
@@ -197,9 +205,16 @@ def _fits(layer: LayerProfile, ctx: _Context) -> tuple[bool, bool]:
 
 def _param_dram_bytes(layer: LayerProfile, ctx: _Context, params_fit: bool,
                       maps: list[tuple[GemmMapping, bool]], gemm_weight_elems: int) -> int:
-    """Once per inference when the parameters fit; else every read the dataflow makes."""
+    """Once per inference when the parameters fit; else every read the dataflow makes.
+
+    A parameter read by several layers is fetched once, by its first reader, when all
+    such shared parameters fit the parameter buffer together (they stay resident
+    between reads); otherwise every reader fetches it again.
+    """
     if layer.param_bytes <= 0 or ctx.weights_resident:
         return 0
+    if params_fit and ctx.shared_params_resident:
+        return layer.first_read_param_bytes
     if params_fit or layer.param_count <= 0:
         return layer.param_bytes
     fetched = sum(m.weight_fetches for m, is_param in maps if is_param)
@@ -312,7 +327,9 @@ def _on_engine(layer: LayerProfile, ctx: _Context, engine: str, spec: EngineSpec
         buffer_bytes = 0
     else:
         params_fit, acts_fit = _fits(layer, ctx)
-        param_dram = 0 if ctx.weights_resident else layer.param_bytes
+        param_dram = 0 if ctx.weights_resident else (
+            layer.first_read_param_bytes if params_fit and ctx.shared_params_resident
+            else layer.param_bytes)
         act_dram = 0 if acts_fit else layer.input_bytes + layer.output_bytes
         buffer_bytes = layer.param_bytes + layer.input_bytes + layer.output_bytes + param_dram + act_dram
     return _finish(
@@ -356,6 +373,25 @@ def _bound(compute_s: float, memory_s: float, overhead_s: float) -> str:
 
 # ---------------------------------------------------------------- totals
 
+FLOAT_RATE_GAP = 2.0  # an integer rate at least this many times the float rate is "far above"
+
+
+def _float_rate_note(ctx: _Context) -> str:
+    """A float model costed as exported on a target whose integer rate is far above."""
+    precision, target = ctx.model_precision, ctx.target
+    if ctx.explicit_precision or precision in INTEGER_PRECISIONS:
+        return ""
+    rate = target.precision_spec(precision).macs_per_pe_per_cycle
+    integer = [(spec.macs_per_pe_per_cycle, name) for name, spec in target.precisions.items()
+               if name in INTEGER_PRECISIONS]
+    if not integer or max(integer)[0] < FLOAT_RATE_GAP * rate:
+        return ""
+    best_rate, best = max(integer)
+    return (f"costed as exported, at {precision}: {target.name} runs {best} at "
+            f"{best_rate / rate:g}x the {precision} rate; if the model ships quantized, "
+            f"export it quantized (QDQ) or pass --precision {best}")
+
+
 def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
             layers: tuple[LayerCost, ...], wanted_resident: bool) -> ModelCost:
     capacity = 0.0
@@ -369,6 +405,9 @@ def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
     if wanted_resident and not ctx.weights_resident:
         notes.append(f"parameters ({profile.total_param_bytes} B) do not fit on chip: "
                      f"fetched from DRAM every inference")
+    float_note = _float_rate_note(ctx)
+    if float_note:
+        notes.append(float_note)
     unmodelled = sum(1 for cost in layers if not cost.modelled)
     if unmodelled:
         notes.append(f"{unmodelled} unmodelled layer(s) cost nothing here: totals are a lower bound")

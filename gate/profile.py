@@ -13,14 +13,43 @@ from math import prod
 
 from gate.errors import InputError, InternalError
 from gate.model.convert import UNKNOWN_DIM
-from gate.model.graph import DTYPE_BITS, FLOAT_DTYPES, LoadedModel, Node, Shape, TensorInfo
+from gate.model.graph import (
+    DTYPE_BITS,
+    FLOAT_DTYPES,
+    LoadedModel,
+    Node,
+    ParamSource,
+    Shape,
+    StoredTensor,
+    TensorInfo,
+)
+from gate.ops.quantized import QOPERATOR_OPS, requantized
 from gate.ops.registry import OpWork, Unmodelled, cost_function_for
+from gate.precision import (
+    ACCUMULATOR_BITS,
+    DEPLOYED_LABEL,
+    INTEGER_PRECISIONS,
+    deployed_dtypes,
+    is_bias,
+    layer_precision,
+)
 from gate.targets.spec import PRECISION_BITS, normal_precision
+
+FOLDED_NOTE = "folded: computed offline from constants (not a layer of the deployed model)"
+FUSED_NOTE = "fused: activation quantize/dequantize pair absorbed by the layers beside it"
 
 
 @dataclass(frozen=True, slots=True)
 class LayerProfile:
-    """One layer's target-independent figures (bytes at the deploy precision)."""
+    """One layer's target-independent figures (bytes at the deploy precision).
+
+    ``param_bytes`` is what the layer reads of the stored parameters;
+    ``param_new_bytes`` the part no earlier layer read (a shared parameter that
+    stays resident is fetched once, by its first reader). ``precision`` is the
+    precision the layer runs at as deployed (``gate.precision``) or the
+    ``--precision`` override. ``role`` is "layer", "folded" (computed offline from
+    constants) or "fused" (an activation quantize/dequantize pair).
+    """
 
     index: int
     name: str
@@ -40,6 +69,14 @@ class LayerProfile:
     modelled: bool
     unmodelled_reason: str  # "" when modelled
     work: OpWork | None  # None when unmodelled
+    precision: str = ""
+    param_new_bytes: int | None = None  # None: all of param_bytes (a hand-built profile)
+    role: str = "layer"
+
+    @property
+    def first_read_param_bytes(self) -> int:
+        """Parameter bytes no earlier layer read."""
+        return self.param_bytes if self.param_new_bytes is None else self.param_new_bytes
 
     @property
     def bytes_moved(self) -> int:
@@ -108,53 +145,63 @@ class ModelProfile:
     coverage: Coverage
     total_macs: int
     total_flops: int
-    total_param_count: int  # shared initializers counted once
-    total_param_bytes: int  # shared initializers counted once
+    total_param_count: int  # every stored parameter counted once, however many layers read it
+    total_param_bytes: int  # the same, in bytes as stored (or at the --precision override)
     notes: tuple[str, ...] = ()  # e.g. "symbolic dim 'seq' unbound: bind it with --dim seq=N"
+    shared_param_bytes: int = 0  # stored parameters read by more than one layer
+
+    @property
+    def explicit_precision(self) -> bool:
+        """True when ``--precision`` overrode the precision read from the graph."""
+        return self.precision != DEPLOYED_LABEL
 
 
 def profile_model(model: LoadedModel, precision: str | None = None) -> ModelProfile:
     """Profile every layer of ``model``; ``precision`` overrides byte counts, never MACs.
 
-    ``precision`` is a deploy precision (``int4``, ``int8``, ``int16``, ``fp8``,
-    ``fp16``, ``bf16``, ``fp32`` and their aliases) applied to every floating-point
-    tensor's bytes (parameters and activations); integer tensors keep their own
-    size. ``None`` or ``"native"`` counts every tensor at its exported dtype.
-    Shared parameters count once in the model totals; each layer counts what it reads.
+    Without ``precision`` each layer is counted as deployed: its precision and its
+    tensors' sizes are read from the graph (``gate.precision``), parameters at
+    their stored size. ``precision`` (``int4``, ``int8``, ``int16``, ``fp8``,
+    ``fp16``, ``bf16``, ``fp32`` and their aliases) is an explicit override:
+    every floating-point tensor's bytes at that size, every layer at that
+    precision; integer tensors keep their own size. Each stored parameter counts
+    once in the model totals; each layer counts what it reads.
     """
     override_bits = _override_bits(precision)
     _ensure_ops_registered()
-    seen_params: dict[str, int] = {}  # parameter name -> element count (first sighting)
-    param_bytes_by_name: dict[str, int] = {}
+    label = _precision_label(precision)
+    counting = _Counting(override_bits, None if label == DEPLOYED_LABEL else label,
+                         deployed_dtypes(model.graph))
+    ledger = _ParamLedger(override_bits)
     unbound: dict[str, int] = {}  # symbolic dim -> layers it kept unmodelled
-    layers = tuple(_profile_layer(node, override_bits, seen_params, param_bytes_by_name, unbound)
-                   for node in model.graph.nodes)
+    layers = tuple(_profile_layer(node, counting, ledger, unbound) for node in model.graph.nodes)
     modelled = [layer for layer in layers if layer.modelled]
     return ModelProfile(
         model=model,
-        precision=_precision_label(precision),
+        precision=label,
         layers=layers,
         coverage=_coverage(layers),
         total_macs=sum(layer.macs for layer in modelled),
         total_flops=sum(layer.flops for layer in modelled),
-        total_param_count=sum(seen_params.values()),
-        total_param_bytes=sum(param_bytes_by_name.values()),
-        notes=_notes(model, precision, override_bits, unbound),
+        total_param_count=ledger.total_count(),
+        total_param_bytes=ledger.total_bytes(),
+        notes=_notes(model, precision, override_bits, unbound, layers),
+        shared_param_bytes=ledger.shared_bytes(),
     )
 
 
 # ------------------------------------------------------------------ precision
 
 def _precision_label(precision: str | None) -> str:
-    if precision is None or precision.strip().lower() in ("", "native"):
-        return "native"
+    if precision is None or precision.strip().lower() in ("", "native", DEPLOYED_LABEL):
+        return DEPLOYED_LABEL
     return normal_precision(precision) or precision
 
 
 def _override_bits(precision: str | None) -> int | None:
-    """Bits per floating-point element at the deploy precision, or None for native."""
+    """Bits per floating-point element at the deploy precision, or None for as deployed."""
     label = _precision_label(precision)
-    if label == "native":
+    if label == DEPLOYED_LABEL:
         return None
     if label not in PRECISION_BITS:
         names = ", ".join(("native", *sorted(PRECISION_BITS)))
@@ -162,8 +209,34 @@ def _override_bits(precision: str | None) -> int | None:
     return PRECISION_BITS[label]
 
 
-def _tensor_bytes(tensor: TensorInfo, override_bits: int | None) -> int | None:
-    """Storage bytes at the deploy precision (floating tensors only), None when unknown."""
+@dataclass(frozen=True, slots=True)
+class _Counting:
+    """How tensors are counted: the override (if any) and the deployed element types."""
+
+    override_bits: int | None
+    override: str | None  # the --precision override's canonical name
+    deployed: dict[str, str]
+
+    def tensor_bits(self, tensor: TensorInfo) -> int:
+        """Bits per element of an activation: the override for floats, else as deployed."""
+        if self.override_bits is not None and tensor.dtype in FLOAT_DTYPES:
+            return self.override_bits
+        return DTYPE_BITS.get(self.deployed.get(tensor.name, tensor.dtype), 0)
+
+    def param_bits(self, tensor: TensorInfo | None, source: ParamSource, bias: bool) -> int:
+        """Bits per element of a parameter: the override for floats (a bias at an integer
+        override is int32, the accumulator's width), else as stored."""
+        exported = tensor.dtype if tensor is not None else source.dtype
+        if self.override_bits is not None and (exported in FLOAT_DTYPES
+                                               or source.dtype in FLOAT_DTYPES):
+            if bias and self.override in INTEGER_PRECISIONS:
+                return ACCUMULATOR_BITS
+            return self.override_bits
+        return source.bits
+
+
+def _tensor_bytes(tensor: TensorInfo, counting: _Counting) -> int | None:
+    """Storage bytes of an activation as counted, None when unknown."""
     shape = tensor.shape
     if shape is None:
         return None
@@ -172,12 +245,82 @@ def _tensor_bytes(tensor: TensorInfo, override_bits: int | None) -> int | None:
         if dim.__class__ is not int:
             return None
         count *= dim
-    bits = DTYPE_BITS.get(tensor.dtype, 0)
+    bits = counting.tensor_bits(tensor)
     if bits == 0:
         return None
-    if override_bits is not None and tensor.dtype in FLOAT_DTYPES:
-        bits = override_bits
     return (count * bits + 7) // 8
+
+
+# ------------------------------------------------------------------ parameters
+
+@dataclass(frozen=True, slots=True)
+class _Charge:
+    """The parameters charged to one layer."""
+
+    names: tuple[str, ...]  # stored tensors it reads
+    count: int
+    nbytes: int
+    new_bytes: int  # bytes no earlier layer read
+
+
+class _ParamLedger:
+    """Charges stored parameters to the layers that read them, in layer order.
+
+    A layer is charged what it reads of each stored tensor (a slice is charged its
+    slice), never more than the tensor holds; the model totals count each stored
+    tensor once; ``new_bytes`` is the part of a layer's charge no earlier layer
+    read, so a parameter read by several layers is fetched once when it stays
+    resident.
+    """
+
+    def __init__(self, override_bits: int | None) -> None:
+        self.override_bits = override_bits
+        self.stored: dict[str, tuple[StoredTensor, int]] = {}  # name -> (tensor, bits counted)
+        self.charged_bytes: dict[str, int] = {}
+        self.readers: dict[str, int] = {}
+
+    def charge(self, reads: list[tuple[ParamSource, int]]) -> _Charge:
+        """Charge one layer for ``reads``: (source, bits per element) pairs."""
+        elements: dict[str, int] = {}
+        bits_of: dict[str, int] = {}
+        for source, bits in reads:
+            for tensor, share in _shares(source):
+                self.stored.setdefault(tensor.name, (tensor, bits))
+                bits_of.setdefault(tensor.name, bits)
+                cap = tensor.numel if tensor.numel is not None else share
+                elements[tensor.name] = min(cap, elements.get(tensor.name, 0) + share)
+        nbytes = new_bytes = 0
+        for name, count in elements.items():
+            share_bytes = (count * bits_of[name] + 7) // 8
+            nbytes += share_bytes
+            left = self._stored_bytes(name) - self.charged_bytes.get(name, 0)
+            fresh = max(0, min(share_bytes, left))
+            self.charged_bytes[name] = self.charged_bytes.get(name, 0) + fresh
+            self.readers[name] = self.readers.get(name, 0) + 1
+            new_bytes += fresh
+        return _Charge(tuple(elements), sum(elements.values()), nbytes, new_bytes)
+
+    def _stored_bytes(self, name: str) -> int:
+        tensor, bits = self.stored[name]
+        return ((tensor.numel or 0) * bits + 7) // 8
+
+    def total_count(self) -> int:
+        return sum(tensor.numel or 0 for tensor, _ in self.stored.values())
+
+    def total_bytes(self) -> int:
+        return sum(self._stored_bytes(name) for name in self.stored)
+
+    def shared_bytes(self) -> int:
+        return sum(self._stored_bytes(name) for name, count in self.readers.items() if count > 1)
+
+
+def _shares(source: ParamSource) -> list[tuple[StoredTensor, int]]:
+    """Elements read from each stored tensor behind ``source`` (split in proportion to size)."""
+    read = source.read_elements()
+    if len(source.stored) == 1:
+        return [(source.stored[0], read)]
+    total = sum(t.numel or 0 for t in source.stored)
+    return [(t, (read * (t.numel or 0)) // total if total else 0) for t in source.stored]
 
 
 # ------------------------------------------------------------------ one layer
@@ -186,18 +329,26 @@ def _ensure_ops_registered() -> None:
     import gate.ops  # noqa: F401  (importing registers every cost function)
 
 
-def _layer_params(node: Node) -> dict[str, TensorInfo]:
-    """Parameters the layer reads: its own, plus those read inside its subgraphs."""
-    params: dict[str, TensorInfo] = {}
+_Param = tuple[TensorInfo | None, ParamSource, bool]  # tensor, how stored, is a bias
+
+
+def _layer_params(node: Node) -> dict[str, _Param]:
+    """Parameters the layer reads: its own, plus those read inside the subgraphs it runs."""
+    from gate.ops.control import counted_subgraphs
+
+    params: dict[str, _Param] = {}
     stack = [node]
     while stack:
         current = stack.pop()
+        if current.folded or current.fused:
+            continue
         for position in sorted(current.param_inputs):
-            tensor = current.inputs[position] if position < len(current.inputs) else None
-            if tensor is not None:
-                params.setdefault(tensor.name, tensor)
-        for graph in current.subgraphs.values():
-            stack.extend(reversed(graph.nodes))
+            tensor = current.input(position)
+            source = current.param_source(position)
+            if tensor is not None and source is not None:
+                params.setdefault(tensor.name, (tensor, source, is_bias(current, position)))
+        for name in counted_subgraphs(current):
+            stack.extend(reversed(current.subgraphs[name].nodes))
     return params
 
 
@@ -205,7 +356,8 @@ def _shape_problem(node: Node, unbound: dict[str, int]) -> str:
     """Why the layer's tensors cannot be sized, or "" when all are static."""
     symbolic: list[str] = []
     other = ""
-    tensors = [t for t in node.inputs if t is not None] + [t for t in node.outputs if t.name]
+    tensors = [t for t in node.inputs if t is not None] + [
+        t for i, t in enumerate(node.outputs) if t.name and i not in node.unused_outputs]
     for tensor in tensors:
         if tensor.shape is None:
             other = other or f"shape of tensor '{tensor.name}' was not inferred"
@@ -245,23 +397,28 @@ def _work(node: Node, unbound: dict[str, int]) -> tuple[OpWork | None, str]:
                             f"it") from exc
 
 
-def _sum_bytes(tensors: Iterable[TensorInfo], override_bits: int | None) -> int:
+def _sum_bytes(tensors: Iterable[TensorInfo], counting: _Counting) -> int:
     total = 0
     for tensor in tensors:
-        total += _tensor_bytes(tensor, override_bits) or 0
+        total += _tensor_bytes(tensor, counting) or 0
     return total
 
 
-def _profile_layer(node: Node, override_bits: int | None, seen_params: dict[str, int],
-                   param_bytes_by_name: dict[str, int], unbound: dict[str, int]) -> LayerProfile:
+def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
+                   unbound: dict[str, int]) -> LayerProfile:
+    if node.folded or node.fused:
+        return _offline_layer(node, counting)
     params = _layer_params(node)
-    for name, tensor in params.items():
-        if name not in seen_params:
-            seen_params[name] = tensor.numel or 0
-            param_bytes_by_name[name] = _tensor_bytes(tensor, override_bits) or 0
+    charge = ledger.charge([(source, counting.param_bits(tensor, source, bias))
+                            for tensor, source, bias in params.values()])
     activations = {t.name: t for i, t in enumerate(node.inputs)
-                   if t is not None and i not in node.param_inputs and t.name not in params}
+                   if t is not None and i not in node.param_sources and i not in node.param_inputs
+                   and t.name not in params}
+    outputs = [t for i, t in enumerate(node.outputs) if t.name and i not in node.unused_outputs]
     work, reason = _work(node, unbound)
+    precision = counting.override or layer_precision(node, counting.deployed)
+    if work is not None and _requantizes(node, work, precision, outputs, counting):
+        work = requantized(work)
     return LayerProfile(
         index=node.index,
         name=node.name,
@@ -271,17 +428,45 @@ def _profile_layer(node: Node, override_bits: int | None, seen_params: dict[str,
         input_dtypes=tuple("" if t is None else t.dtype for t in node.inputs),
         output_shapes=tuple(t.shape for t in node.outputs),
         output_dtypes=tuple(t.dtype for t in node.outputs),
-        param_names=tuple(params),
-        param_count=sum(seen_params[name] for name in params),
-        param_bytes=_sum_bytes(params.values(), override_bits),
-        input_bytes=_sum_bytes(activations.values(), override_bits),
-        output_bytes=_sum_bytes((t for t in node.outputs if t.name), override_bits),
+        param_names=charge.names,
+        param_count=charge.count,
+        param_bytes=charge.nbytes,
+        input_bytes=_sum_bytes(activations.values(), counting),
+        output_bytes=_sum_bytes(outputs, counting),
         macs=work.macs if work else 0,
         flops=work.flops if work else 0,
         modelled=work is not None,
         unmodelled_reason=reason,
         work=work,
+        precision=precision,
+        param_new_bytes=charge.new_bytes,
     )
+
+
+def _requantizes(node: Node, work: OpWork, precision: str, outputs: list[TensorInfo],
+                 counting: _Counting) -> bool:
+    """A float matrix op running at an integer precision that writes integer outputs
+    (its output read by a fused QuantizeLinear, or an integer --precision) requantizes
+    them, as a QOperator op does."""
+    if precision not in INTEGER_PRECISIONS or not work.gemms or node.op_type in QOPERATOR_OPS:
+        return False
+    return any(t.dtype in FLOAT_DTYPES and counting.tensor_bits(t) < DTYPE_BITS[t.dtype]
+               for t in outputs)
+
+
+def _offline_layer(node: Node, counting: _Counting) -> LayerProfile:
+    """A folded node or a fused quantize/dequantize: no work, no bytes, no parameters."""
+    role, note = ("folded", FOLDED_NOTE) if node.folded else ("fused", FUSED_NOTE)
+    return LayerProfile(
+        index=node.index, name=node.name, op_type=node.op_type, domain=node.domain,
+        input_shapes=tuple(None if t is None else t.shape for t in node.inputs),
+        input_dtypes=tuple("" if t is None else t.dtype for t in node.inputs),
+        output_shapes=tuple(t.shape for t in node.outputs),
+        output_dtypes=tuple(t.dtype for t in node.outputs),
+        param_names=(), param_count=0, param_bytes=0, input_bytes=0, output_bytes=0,
+        macs=0, flops=0, modelled=True, unmodelled_reason="",
+        work=OpWork(is_view=True, note=note),
+        precision=counting.override or layer_precision(node, counting.deployed), role=role)
 
 
 # ------------------------------------------------------------------ coverage and notes
@@ -322,11 +507,33 @@ def _numel(shape: Shape | None) -> int:
 
 
 def _notes(model: LoadedModel, precision: str | None, override_bits: int | None,
-           unbound: dict[str, int]) -> tuple[str, ...]:
+           unbound: dict[str, int], layers: tuple[LayerProfile, ...]) -> tuple[str, ...]:
     notes = [f"symbolic dim '{dim}' unbound: bind it with --dim {dim}=N ({count} layers "
              f"unmodelled)" for dim, count in sorted(unbound.items())]
     if override_bits is not None:
         notes.append(f"floating-point tensors counted at {_precision_label(precision)} "
                      f"({override_bits} bits) as deployed; MACs unchanged")
+    else:
+        notes.append(_deployed_note(layers))
+    for role, what in (("folded", "folded offline from constants"),
+                       ("fused", "activation quantize/dequantize nodes fused away")):
+        count = sum(1 for layer in layers if layer.role == role)
+        if count:
+            notes.append(f"{count} node(s) {what}: they cost nothing and are not layers of "
+                         f"the deployed model")
     notes.extend(model.warnings)
     return tuple(notes)
+
+
+def _deployed_note(layers: tuple[LayerProfile, ...]) -> str:
+    """Which precisions the layers run at, read from the graph (weighted by layer count)."""
+    counts: dict[str, int] = {}
+    for layer in layers:
+        if layer.role == "layer" and layer.precision and layer.macs > 0:
+            counts[layer.precision] = counts.get(layer.precision, 0) + 1
+    if not counts:
+        return f"precision {DEPLOYED_LABEL}: read from the graph (no layer with MACs)"
+    parts = ", ".join(f"{name} on {count} layer(s) with MACs"
+                      for name, count in sorted(counts.items(), key=lambda kv: (-kv[1], kv[0])))
+    return (f"precision {DEPLOYED_LABEL} (read from the graph: QDQ and QOperator structure, "
+            f"tensor types): {parts}; --precision overrides it")

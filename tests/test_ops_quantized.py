@@ -26,16 +26,29 @@ def _scalar(value, dtype):
     return np.array(value, dtype=dtype)
 
 
-def test_qlinear_conv_matches_float_conv_plus_requantize():
+def _qlinear_conv(weight_zero_point: int):
     consts = {1: _scalar(0.1, np.float32), 2: _scalar(128, np.uint8), 4: _scalar(0.2, np.float32),
-              5: _scalar(0, np.int8), 6: _scalar(0.3, np.float32), 7: _scalar(128, np.uint8)}
+              5: _scalar(weight_zero_point, np.int8), 6: _scalar(0.3, np.float32),
+              7: _scalar(128, np.uint8)}
     n = inferred_node("QLinearConv", [X, (), (), W, (), (), (), ()], constants=consts,
                       dtypes={0: U8, 3: I8}, params=[3])
-    work = cost_function_for("", "QLinearConv")(n)
+    return cost_function_for("", "QLinearConv")(n)
+
+
+def test_qlinear_conv_matches_float_conv_plus_requantize():
+    work = _qlinear_conv(weight_zero_point=0)
     outputs = 16 * 8 * 8
     assert work.macs == _float_macs("Conv", [X, W])
-    assert work.vector_ops == 800 + q.REQUANTIZE_OPS_PER_OUTPUT * outputs
+    # Symmetric weights (zero point 0): the activation zero point's term is a per-channel
+    # constant folded into the bias, so only the requantization is left.
+    assert work.vector_ops == q.REQUANTIZE_OPS_PER_OUTPUT * outputs
     assert work.flops == 2 * work.macs + work.vector_ops
+
+
+def test_nonzero_weight_zero_point_needs_the_input_sums():
+    # sum_k (x - zx)(w - zw) has the term zw * sum_k x: one add per input element.
+    work = _qlinear_conv(weight_zero_point=3)
+    assert work.vector_ops == 800 + q.REQUANTIZE_OPS_PER_OUTPUT * 16 * 8 * 8
 
 
 def test_integer_ops_have_no_requantize():
@@ -43,7 +56,8 @@ def test_integer_ops_have_no_requantize():
     assert cost_function_for("", "ConvInteger")(conv).vector_ops == 0
     mm = inferred_node("MatMulInteger", [(4, 32), (32, 8), ()], dtypes={0: U8, 1: I8, 2: U8})
     work = cost_function_for("", "MatMulInteger")(mm)
-    assert work.macs == 4 * 32 * 8 and work.vector_ops == 128  # zero-point subtraction
+    # B is an activation and A's zero point is given (value unknown): B's column sums.
+    assert work.macs == 4 * 32 * 8 and work.vector_ops == 32 * 8
 
 
 def test_qlinear_matmul():

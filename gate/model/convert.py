@@ -5,10 +5,12 @@ and boolean constants of at most ``CONST_VALUE_LIMIT`` elements stored inline
 (shape tensors, axes, trip counts, conditions) are read, because cost functions
 need them; a tensor with external data is never read.
 
-Parameters (``Node.param_inputs``) are inputs fed by an initializer (of any dtype),
-or by a ``Constant`` node whose value is a floating tensor or has more than
-``CONST_VALUE_LIMIT`` elements (some exporters emit weights as Constant nodes);
-small integer Constants are metadata and land in ``const_values`` instead.
+Parameters (``Node.param_inputs``) are inputs constant at inference: initializers,
+Constant nodes and tensors folded from constants alone (``gate.model.constants``
+decides what folds, how each constant is stored, and which constants are
+metadata rather than parameters). Folded nodes, fused activation
+QuantizeLinear -> DequantizeLinear pairs and unused outputs are marked on the
+``Node``.
 
 Dims: an int, a symbolic name (``str``), or ``UNKNOWN_DIM`` ("?") when neither a
 value nor a name is known; a negative dim value is treated as unknown.
@@ -26,12 +28,20 @@ import onnx
 from onnx import AttributeProto, TensorProto, helper, numpy_helper
 
 from gate.errors import InputError
-from gate.model.graph import FLOAT_DTYPES, Graph, Node, TensorInfo
+from gate.model.constants import (
+    CONST_VALUE_LIMIT,
+    constant_node_info,
+    folded_sources,
+    folds,
+    is_parameter,
+    small_values,
+)
+from gate.model.graph import Graph, Node, ParamSource, TensorInfo, stored_as_itself
 from gate.model.order import topological_order
 
 UNKNOWN_DIM = "?"
-CONST_VALUE_LIMIT = 64
 MAX_SUBGRAPH_DEPTH = 64
+_SUBGRAPH_READER = "<subgraph>"  # a consumer that is a body graph (or a graph output)
 
 _INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", "INT64",
                          "UINT64", "BOOL", "INT4", "UINT4"})
@@ -97,11 +107,12 @@ def _small_int_values(tensor: TensorProto) -> tuple[int, ...] | None:
 
 
 class _Converter:
-    """Converts one model; holds the per-model state (warnings, used layer names)."""
+    """Converts one model; holds the per-model state (warnings, opset)."""
 
-    def __init__(self, path: str, declared: frozenset[str] | None) -> None:
+    def __init__(self, path: str, declared: frozenset[str] | None, opset: int) -> None:
         self.path = path
         self.declared = declared
+        self.opset = opset
         self.warnings: list[str] = []
 
     def graph(self, proto: onnx.GraphProto, outer: dict[str, _Scope] | None,
@@ -110,9 +121,9 @@ class _Converter:
             raise InputError(f"subgraphs nested deeper than {MAX_SUBGRAPH_DEPTH} levels; "
                              f"simplify the model's control flow", self.path)
         infos: dict[str, TensorInfo] = {}
-        params: dict[str, TensorInfo] = {}
+        sources: dict[str, ParamSource] = {}
         consts: dict[str, tuple[int, ...]] = {}
-        initializers = self._initializers(proto, infos, params, consts)
+        initializers = self._initializers(proto, infos, sources, consts)
         inputs = tuple(value_info(v, self.declared) for v in proto.input
                        if v.name not in initializers)
         for value in (*proto.input, *proto.value_info, *proto.output):
@@ -122,26 +133,23 @@ class _Converter:
             for name in node.output:
                 if name and name not in infos:
                     infos[name] = TensorInfo(name, None, "UNDEFINED")
-        self._constant_nodes(proto, params, consts)
+        _constant_values(proto, consts)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
-        # Plain dicts at the top level (fast lookups); chained scopes only inside subgraphs.
-        scope: Any = infos if outer is None else outer["infos"].new_child(infos)
-        param_scope: Any = params if outer is None else outer["params"].new_child(params)
-        const_scope: Any = consts if outer is None else outer["consts"].new_child(consts)
         order = topological_order(
             proto, lambda name: name in local_known or (outer_infos is not None
                                                          and name in outer_infos), self.path)
-        ctx = {"infos": _chain(scope), "params": _chain(param_scope), "consts": _chain(const_scope)}
-        used_names: set[str] = set()
-        nodes = tuple(self._node(index, proto.node[i], ctx, depth, used_names)
+        ctx = {name: _chain(local if outer is None else outer[name].new_child(local))
+               for name, local in (("infos", infos), ("sources", sources), ("consts", consts))}
+        walk = _Walk(ctx, _readers(proto), set())
+        nodes = tuple(self._node(index, proto.node[i], walk, depth)
                       for index, i in enumerate(order))
         return Graph(nodes=nodes, initializers=initializers, inputs=inputs,
-                     outputs=tuple(scope.get(v.name) or value_info(v, self.declared)
+                     outputs=tuple(ctx["infos"].get(v.name) or value_info(v, self.declared)
                                    for v in proto.output))
 
     def _initializers(self, proto: onnx.GraphProto, infos: dict[str, TensorInfo],
-                      params: dict[str, TensorInfo],
+                      sources: dict[str, ParamSource],
                       consts: dict[str, tuple[int, ...]]) -> dict[str, TensorInfo]:
         found: dict[str, TensorInfo] = {}
         duplicates: dict[str, int] = {}
@@ -166,60 +174,151 @@ class _Converter:
             self.warnings.append(f"{count} initializers share the name '{name}' (identical; "
                                  f"counted once)")
         infos.update(found)
-        params.update(found)
+        sources.update((name, stored_as_itself(info)) for name, info in found.items())
         return found
 
-    def _constant_nodes(self, proto: onnx.GraphProto, params: dict[str, TensorInfo],
-                        consts: dict[str, tuple[int, ...]]) -> None:
-        for node in proto.node:
-            if node.op_type != "Constant" or node.domain not in ("", "ai.onnx") or not node.output:
-                continue
-            for attribute in node.attribute:
-                if attribute.name == "value" and attribute.type == AttributeProto.TENSOR:
-                    info = tensor_info(attribute.t, node.output[0])
-                    values = _small_int_values(attribute.t)
-                    if values is not None:
-                        consts[node.output[0]] = values
-                    elif info.dtype in FLOAT_DTYPES or (info.numel or 0) > CONST_VALUE_LIMIT:
-                        params[node.output[0]] = info
-                elif attribute.name == "value_int":
-                    consts[node.output[0]] = (int(attribute.i),)
-                elif attribute.name == "value_ints" and len(attribute.ints) <= CONST_VALUE_LIMIT:
-                    consts[node.output[0]] = tuple(int(v) for v in attribute.ints)
-
-    def _node(self, index: int, proto: onnx.NodeProto, ctx: dict[str, _Scope], depth: int,
-              used_names: set[str]) -> Node:
-        infos, params, consts = ctx["infos"].maps[0], ctx["params"].maps[0], ctx["consts"].maps[0]
-        if len(ctx["infos"].maps) > 1:  # inside a subgraph: outer names are visible too
-            infos, params, consts = ctx["infos"], ctx["params"], ctx["consts"]
+    def _node(self, index: int, proto: onnx.NodeProto, walk: _Walk, depth: int) -> Node:
+        infos, sources, consts = walk.scope("infos"), walk.scope("sources"), walk.scope("consts")
         input_names = list(proto.input)  # one read of the protobuf field (reads are not free)
         inputs = tuple(None if not name else infos.get(name) or TensorInfo(name, None, "UNDEFINED")
                        for name in input_names)
+        output_names = list(proto.output)
         outputs = tuple(infos.get(name) or TensorInfo(name, None, "UNDEFINED") if name
-                        else TensorInfo("", None, "UNDEFINED") for name in proto.output)
+                        else TensorInfo("", None, "UNDEFINED") for name in output_names)
         attributes: dict[str, Any] = {}
         subgraphs: dict[str, Graph] = {}
         for attribute in proto.attribute if len(proto.attribute) else ():
             if attribute.type == AttributeProto.GRAPH:
-                subgraphs[attribute.name] = self.graph(attribute.g, ctx, depth + 1)
+                subgraphs[attribute.name] = self.graph(attribute.g, walk.ctx, depth + 1)
             elif attribute.type == AttributeProto.GRAPHS:
                 for i, sub in enumerate(attribute.graphs):
-                    subgraphs[f"{attribute.name}[{i}]"] = self.graph(sub, ctx, depth + 1)
+                    subgraphs[f"{attribute.name}[{i}]"] = self.graph(sub, walk.ctx, depth + 1)
             else:
                 attributes[attribute.name] = _plain_attribute(attribute)
         op_type, domain = proto.op_type, proto.domain
+        folded = folds(proto, input_names, sources)
+        if folded:
+            outputs = self._fold(proto, inputs, outputs, walk)
+        input_sources = {i: sources[n] for i, n in enumerate(input_names) if n and n in sources}
+        params = {i: source for i, source in input_sources.items()
+                  if is_parameter(op_type, i, inputs[i], source)}
         return Node(
             index=index,
-            name=_unique_name(proto.name, op_type, index, used_names),
+            name=walk.unique_name(proto.name, op_type, index),
             op_type=op_type,
             domain="" if domain == "ai.onnx" else domain,
             inputs=inputs,
             outputs=outputs,
             attributes=attributes,
-            param_inputs=frozenset(i for i, n in enumerate(input_names) if n and n in params),
+            param_inputs=frozenset(params),
             subgraphs=subgraphs,
             const_values={i: consts[n] for i, n in enumerate(input_names) if n and n in consts},
+            param_sources=input_sources,
+            folded=folded,
+            fused=not folded and walk.fuses(proto, input_names, output_names),
+            unused_outputs=frozenset(i for i, n in enumerate(output_names)
+                                     if n and n not in walk.readers),
         )
+
+    def _fold(self, proto: onnx.NodeProto, inputs: tuple[TensorInfo | None, ...],
+              outputs: tuple[TensorInfo, ...], walk: _Walk) -> tuple[TensorInfo, ...]:
+        """Register the outputs of a folding node as constants (how stored, small values)."""
+        sources, consts = walk.local("sources"), walk.local("consts")
+        if proto.op_type == "Constant":
+            declared = constant_node_info(proto)
+            if declared is not None and outputs and not outputs[0].is_static:
+                outputs = (declared, *outputs[1:])
+            given = [None] * len(inputs)
+        else:
+            given = [walk.scope("sources").get(t.name) if t is not None else None for t in inputs]
+        for info, source in zip(outputs, folded_sources(proto.op_type, given, outputs)):
+            if info.name:
+                sources[info.name] = source
+        if proto.op_type != "Constant":
+            known = walk.scope("consts")
+            values = [known.get(t.name) if t is not None else None for t in inputs]
+            consts.update(small_values(proto, inputs, values, outputs, self.opset))
+        return outputs
+
+
+class _Walk:
+    """The state of converting one graph's nodes in order: scopes, readers, fused pairs."""
+
+    def __init__(self, ctx: dict[str, _Scope], readers: dict[str, set[str]],
+                 used_names: set[str]) -> None:
+        self.ctx = ctx
+        self.readers = readers
+        self.used_names = used_names
+        self.fused_quantized: set[str] = set()
+        self.nested = len(ctx["infos"].maps) > 1
+
+    def scope(self, name: str) -> Any:
+        """The scope for lookups: the plain dict at the top level (fast), chained inside subgraphs."""
+        return self.ctx[name] if self.nested else self.ctx[name].maps[0]
+
+    def local(self, name: str) -> Any:
+        return self.ctx[name].maps[0]
+
+    def fuses(self, proto: onnx.NodeProto, input_names: list[str],
+              output_names: list[str]) -> bool:
+        """An activation QuantizeLinear read only by DequantizeLinear nodes, and those nodes."""
+        if proto.domain not in ("", "ai.onnx") or not output_names:
+            return False
+        if proto.op_type == "QuantizeLinear":
+            readers = self.readers.get(output_names[0], set())
+            if readers and readers == {"DequantizeLinear"}:
+                self.fused_quantized.add(output_names[0])
+                return True
+            return False
+        return (proto.op_type == "DequantizeLinear" and bool(input_names)
+                and input_names[0] in self.fused_quantized)
+
+    def unique_name(self, name: str, op_type: str, index: int) -> str:
+        return _unique_name(name, op_type, index, self.used_names)
+
+
+def _readers(proto: onnx.GraphProto) -> dict[str, set[str]]:
+    """Tensor name -> op types of the nodes that read it; graph outputs and names read
+    inside body graphs are read by ``_SUBGRAPH_READER``."""
+    readers: dict[str, set[str]] = {}
+    for node in proto.node:
+        op_type = node.op_type if node.domain in ("", "ai.onnx") else f"{node.domain}.{node.op_type}"
+        for name in node.input:
+            if name:
+                readers.setdefault(name, set()).add(op_type)
+        for attribute in node.attribute:
+            bodies = [attribute.g] if attribute.HasField("g") else list(attribute.graphs)
+            for body in bodies:
+                for name in _names_read_in(body):
+                    readers.setdefault(name, set()).add(_SUBGRAPH_READER)
+    for value in proto.output:
+        readers.setdefault(value.name, set()).add(_SUBGRAPH_READER)
+    return readers
+
+
+def _names_read_in(graph: onnx.GraphProto) -> set[str]:
+    names: set[str] = set()
+    for current in _all_graph_protos(graph):
+        for node in current.node:
+            names.update(n for n in node.input if n)
+        names.update(v.name for v in current.output)
+    return names
+
+
+def _constant_values(proto: onnx.GraphProto, consts: dict[str, tuple[int, ...]]) -> None:
+    """Small integer values of the graph's Constant nodes (metadata the cost functions read)."""
+    for node in proto.node:
+        if node.op_type != "Constant" or node.domain not in ("", "ai.onnx") or not node.output:
+            continue
+        for attribute in node.attribute:
+            if attribute.name == "value" and attribute.type == AttributeProto.TENSOR:
+                values = _small_int_values(attribute.t)
+                if values is not None:
+                    consts[node.output[0]] = values
+            elif attribute.name == "value_int":
+                consts[node.output[0]] = (int(attribute.i),)
+            elif attribute.name == "value_ints" and len(attribute.ints) <= CONST_VALUE_LIMIT:
+                consts[node.output[0]] = tuple(int(v) for v in attribute.ints)
 
 
 def _chain(scope: Any) -> _Scope:
@@ -263,7 +362,8 @@ def convert_model(proto: onnx.ModelProto, path: str,
 
     ``declared``: the symbolic dims the file itself declares (before inference).
     """
-    converter = _Converter(path, declared)
+    opset = next((int(o.version) for o in proto.opset_import if o.domain in ("", "ai.onnx")), 0)
+    converter = _Converter(path, declared, opset)
     graph = converter.graph(proto.graph, None, 0)
     return graph, converter.warnings
 

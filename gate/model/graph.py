@@ -70,16 +70,76 @@ class TensorInfo:
 
 
 @dataclass(frozen=True, slots=True)
+class StoredTensor:
+    """A constant as the deployed model stores it: an initializer, a Constant node's
+    value, or a tensor a folding node materialises (a ConstantOfShape fill, a product
+    of two constants). ``bits`` is the stored element size (int8 behind a
+    DequantizeLinear stays 8); ``numel`` is None when its shape is unknown."""
+
+    name: str
+    numel: int | None
+    bits: int
+    dtype: str  # stored ONNX data type name
+
+    @property
+    def nbytes(self) -> int:
+        return 0 if self.numel is None else (self.numel * self.bits + 7) // 8
+
+
+@dataclass(frozen=True, slots=True)
+class ParamSource:
+    """How a constant tensor a layer reads is stored: which stored tensors it comes
+    from (through views, slices, concatenations and casts folded offline), how many
+    elements the layer reads and at how many bits each is stored."""
+
+    stored: tuple[StoredTensor, ...]
+    numel: int | None  # elements of the tensor the layer reads (None: unknown)
+    bits: int
+    dtype: str  # stored data type of those elements
+
+    @property
+    def stored_bytes(self) -> int:
+        return sum(s.nbytes for s in self.stored)
+
+    def read_elements(self) -> int:
+        """Elements the layer reads, never more than the stored tensors hold; all of
+        them when the element count is unknown."""
+        stored = sum(s.numel or 0 for s in self.stored)
+        if self.numel is None:
+            return stored
+        return min(self.numel, stored) if stored else self.numel
+
+    def read_bytes(self, bits: int | None = None) -> int:
+        """Bytes the layer reads at ``bits`` per element (default: as stored)."""
+        return (self.read_elements() * (self.bits if bits is None else bits) + 7) // 8
+
+
+def stored_as_itself(tensor: TensorInfo) -> ParamSource:
+    """The source of a constant stored as it is (an initializer read directly)."""
+    stored = StoredTensor(tensor.name, tensor.numel, tensor.bits_per_element, tensor.dtype)
+    return ParamSource((stored,), tensor.numel, tensor.bits_per_element, tensor.dtype)
+
+
+@dataclass(frozen=True, slots=True)
 class Node:
     """One layer: an ONNX node with its tensors resolved to TensorInfo.
 
     ``inputs`` keeps ONNX input positions; an omitted optional input ("") is None.
-    ``param_inputs`` lists the input positions fed by an initializer (a parameter).
+    ``param_inputs`` lists the input positions fed by a parameter: a tensor constant at
+    inference (initializer, Constant node, or folded from constants), except small
+    integer metadata (shapes, axes) and quantization scales and zero points;
+    ``param_sources`` says how every constant input is stored, metadata included
+    (``gate.model.constants``).
     ``attributes`` holds plain Python values (ints, floats, strings, lists);
     graph-valued attributes (If/Loop/Scan bodies) are in ``subgraphs`` by attribute name.
     ``const_values`` holds the values of small integer inputs known statically (an
     initializer or Constant of at most 64 elements stored inline: shapes, axes, trip
     counts, a boolean condition); weights are never read.
+    ``folded``: every input is constant, so a deploying runtime computes this node
+    offline; it is not a layer of the deployed model. ``fused``: an activation
+    QuantizeLinear -> DequantizeLinear pair the neighbouring layers absorb.
+    ``unused_outputs``: output positions nothing reads (a Dropout mask, training
+    outputs of BatchNormalization); their shapes do not matter.
     """
 
     index: int
@@ -92,6 +152,10 @@ class Node:
     param_inputs: frozenset[int] = frozenset()
     subgraphs: Mapping[str, Graph] = field(default_factory=dict)
     const_values: Mapping[int, tuple[int, ...]] = field(default_factory=dict)
+    param_sources: Mapping[int, ParamSource] = field(default_factory=dict)
+    folded: bool = False
+    fused: bool = False
+    unused_outputs: frozenset[int] = frozenset()
 
     def attr(self, name: str, default: Any = None) -> Any:
         return self.attributes.get(name, default)
@@ -101,6 +165,16 @@ class Node:
 
     def is_param(self, position: int) -> bool:
         return position in self.param_inputs
+
+    def param_source(self, position: int) -> ParamSource | None:
+        """How parameter input ``position`` is stored (itself when nothing says otherwise)."""
+        if position not in self.param_inputs:
+            return None
+        source = self.param_sources.get(position)
+        tensor = self.input(position)
+        if source is None and tensor is not None:
+            source = stored_as_itself(tensor)
+        return source
 
 
 @dataclass(frozen=True, slots=True)

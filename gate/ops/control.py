@@ -5,7 +5,11 @@ node without a cost function, or one that is Unmodelled, makes the whole
 control-flow node Unmodelled with that reason. Loop: body x trip count (M, a
 constant input); with a condition input too, the trip count is an upper bound.
 Scan: body x the scan axis length. If: the taken branch when the condition is
-a constant, else the costlier branch (by FLOPs) as an upper bound with a note.
+constant (an initializer or Constant, or computed from constants: the loader
+folds ``Equal(initializer, Constant)`` and the like), else the costlier branch
+(by FLOPs) as an upper bound with a note. The profile charges the parameters
+of the same branch (``counted_subgraphs``): a branch that never runs holds no
+parameters of the deployed model.
 Repeated bodies chain their GEMMs (``sequential``): iterations carry state.
 """
 
@@ -85,13 +89,32 @@ def scan(node: Node) -> OpWork:
     return _with_note(repeat_work(body, trip, sequential=True), f"Scan body x {trip} steps")
 
 
-@register("If")
-def if_op(node: Node) -> OpWork:
+def _if_branch(node: Node) -> tuple[str, bool]:
+    """(branch counted, condition known): the taken branch, else the costlier one."""
     cond = node.const_values.get(0)
     if cond:
-        branch = "then_branch" if cond[0] else "else_branch"
-        return _with_note(graph_work(_body(node, branch)), f"If: condition constant, {branch}")
+        return ("then_branch" if cond[0] else "else_branch"), True
     works = {name: graph_work(_body(node, name)) for name in ("then_branch", "else_branch")}
-    name = max(works, key=lambda n: (works[n].flops, works[n].vector_ops))
-    return _with_note(works[name], f"If: condition unknown, counted the costlier "
-                                   f"{name} (upper bound)")
+    return max(works, key=lambda n: (works[n].flops, works[n].vector_ops)), False
+
+
+@register("If")
+def if_op(node: Node) -> OpWork:
+    branch, known = _if_branch(node)
+    work = graph_work(_body(node, branch))
+    if known:
+        return _with_note(work, f"If: condition constant, {branch} only (its parameters only)")
+    return _with_note(work, f"If: condition known only at run time, counted the costlier "
+                            f"{branch} and its parameters (upper bound)")
+
+
+def counted_subgraphs(node: Node) -> tuple[str, ...]:
+    """The subgraphs whose nodes (and parameters) count for ``node``: for an If the
+    branch its cost counts; every body otherwise."""
+    if node.op_type != "If" or node.domain or not node.subgraphs:
+        return tuple(node.subgraphs)
+    try:
+        branch, _ = _if_branch(node)
+    except Unmodelled:
+        return tuple(node.subgraphs)  # the If is unmodelled anyway: keep both
+    return (branch,) if branch in node.subgraphs else tuple(node.subgraphs)
