@@ -154,7 +154,7 @@ def _explicit_precision(precision: str) -> str | None:
 def _layer_native_precision(layer: LayerProfile) -> str | None:
     """The precision the profile read from the graph; for a hand-built profile, its dtypes."""
     if layer.precision:
-        return normal_precision(layer.precision)
+        return layer.precision
     for dtype in layer.input_dtypes[:1] + layer.output_dtypes[:1]:
         canonical = normal_precision(dtype)
         if canonical is not None:

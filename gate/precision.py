@@ -23,11 +23,13 @@ quantization) at fp32, an fp16 layer at fp16.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from functools import lru_cache
 
 from gate.model.constants import QUANT_METADATA_POSITIONS
 from gate.model.graph import Graph, Node
 from gate.targets.spec import PRECISION_BITS, normal_precision
 
+_precision_of = lru_cache(maxsize=None)(normal_precision)  # a few dtypes, asked per layer
 DEPLOYED_LABEL = "as deployed"  # the precision label when no --precision override is given
 INTEGER_PRECISIONS = frozenset({"int4", "int8", "int16"})
 # Bias inputs (ONNX operator spec): at an integer precision a bias is stored at the
@@ -79,13 +81,13 @@ def layer_precision(node: Node, deployed: Mapping[str, str]) -> str:
     """The precision the layer's arithmetic runs at as deployed ("" when nothing says)."""
     best, best_bits = "", 0
     for dtype in operand_dtypes(node, deployed):
-        precision = normal_precision(dtype)
+        precision = _precision_of(dtype)
         if precision is not None and PRECISION_BITS[precision] > best_bits:
             best, best_bits = precision, PRECISION_BITS[precision]
     if best:
         return best
     for tensor in node.outputs:
-        precision = normal_precision(deployed.get(tensor.name, tensor.dtype))
+        precision = _precision_of(deployed.get(tensor.name, tensor.dtype))
         if precision is not None:
             return precision
     return ""

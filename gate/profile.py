@@ -23,6 +23,7 @@ from gate.model.graph import (
     StoredTensor,
     TensorInfo,
 )
+from gate.ops.control import counted_subgraphs
 from gate.ops.quantized import QOPERATOR_OPS, requantized
 from gate.ops.registry import OpWork, Unmodelled, cost_function_for
 from gate.precision import (
@@ -263,6 +264,9 @@ class _Charge:
     new_bytes: int  # bytes no earlier layer read
 
 
+_NOTHING = _Charge((), 0, 0, 0)
+
+
 class _ParamLedger:
     """Charges stored parameters to the layers that read them, in layer order.
 
@@ -281,6 +285,8 @@ class _ParamLedger:
 
     def charge(self, reads: list[tuple[ParamSource, int]]) -> _Charge:
         """Charge one layer for ``reads``: (source, bits per element) pairs."""
+        if not reads:
+            return _NOTHING
         elements: dict[str, int] = {}
         bits_of: dict[str, int] = {}
         for source, bits in reads:
@@ -334,9 +340,9 @@ _Param = tuple[TensorInfo | None, ParamSource, bool]  # tensor, how stored, is a
 
 def _layer_params(node: Node) -> dict[str, _Param]:
     """Parameters the layer reads: its own, plus those read inside the subgraphs it runs."""
-    from gate.ops.control import counted_subgraphs
-
     params: dict[str, _Param] = {}
+    if not node.param_inputs and not node.subgraphs:
+        return params
     stack = [node]
     while stack:
         current = stack.pop()
