@@ -21,8 +21,9 @@ reads of the stored tensors, so one packed weight sliced six ways is charged
 once in total, and an int8 weight behind a DequantizeLinear is int8 bytes.
 
 Not parameters: small integer metadata (INT64 or BOOL tensors of at most
-``CONST_VALUE_LIMIT`` elements: shapes, axes, indices, conditions) and
-quantization scales and zero points, which runtimes fold into the
+``CONST_VALUE_LIMIT`` elements: shapes, axes, indices, conditions), one-element
+constants (a scale, an epsilon: immediate operands of the op that reads them)
+and quantization scales and zero points, which runtimes fold into the
 requantization step.
 """
 
@@ -69,10 +70,13 @@ _VALUE_OPS = frozenset({
 
 
 def is_metadata(tensor: TensorInfo | None, source: ParamSource) -> bool:
-    """Small INT64/BOOL constants (shapes, axes, indices, conditions): not parameters."""
+    """Not parameters: small INT64/BOOL constants (shapes, axes, indices, conditions) and
+    one-element constants (a scale, an epsilon: immediate operands, not stored weights)."""
     dtype = tensor.dtype if tensor is not None and tensor.dtype != "UNDEFINED" else source.dtype
     numel = source.numel if source.numel is not None else (tensor.numel if tensor else None)
-    return dtype in METADATA_DTYPES and numel is not None and numel <= CONST_VALUE_LIMIT
+    if numel is None:
+        return False
+    return numel <= 1 or (dtype in METADATA_DTYPES and numel <= CONST_VALUE_LIMIT)
 
 
 def is_parameter(op_type: str, position: int, tensor: TensorInfo | None,
