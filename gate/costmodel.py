@@ -10,11 +10,12 @@ N times one target.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 from math import ceil
 
 from gate.errors import InputError
 from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
+from gate.fusion import NO_FUSION, FusedGroup, FusionPlan, plan_fusion
 from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
 from gate.targets.spec import DATAFLOWS, EngineSpec, TargetProfile, normal_precision
@@ -55,7 +56,7 @@ class LayerCost:
 
     index: int
     name: str
-    engine: str  # "array", "vector", "host", or "none" (view op / unmodelled)
+    engine: str  # "array", "vector", "host", "fused" (costed in its group's head) or "none"
     cycles: int  # engine cycles for the compute (0 for none)
     utilization: float  # useful MACs / (PE count x MACs per PE per cycle x cycles); 0 off the array
     compute_s: float
@@ -72,6 +73,8 @@ class LayerCost:
     precision: str = ""  # precision the layer ran at ("" when it ran nowhere)
     array_macs: int = 0  # useful MACs done on the PE array
     modelled: bool = True  # False: the profile could not count this layer; its zeros mean "unknown"
+    fused_into: str = ""  # the head layer of the fused group this layer runs in ("" when alone)
+    fused_ops: tuple[str, ...] = ()  # a head's absorbed layers' op types, in chain order
 
 
 @dataclass(frozen=True, slots=True)
@@ -109,11 +112,12 @@ class _Context:
 
 
 def cost_model(profile: ModelProfile, target: TargetProfile,
-               weights_resident: bool | None = None) -> ModelCost:
+               weights_resident: bool | None = None, fusion: bool = True) -> ModelCost:
     """Cost every layer of ``profile`` on ``target``.
 
     ``weights_resident`` overrides the target's ``weights_resident`` setting
-    (keep all parameters on chip across inferences when they fit).
+    (keep all parameters on chip across inferences when they fit). ``fusion``
+    False costs layer by layer even when the target declares ``fusion:``.
     """
     _check_target(target)
     explicit = _explicit_precision(profile.precision)
@@ -123,8 +127,11 @@ def cost_model(profile: ModelProfile, target: TargetProfile,
     resident = wanted and _weights_fit_on_chip(profile, target)
     ctx = _Context(target, explicit, model_precision, resident, profile.total_param_bytes,
                    profile.shared_param_bytes <= target.param_capacity_bytes)
-    layers = tuple(_cost_layer(layer, ctx) for layer in profile.layers)
-    return _totals(profile, target, ctx, layers, wanted)
+    plan = NO_FUSION
+    if fusion and target.fusion is not None:
+        plan = plan_fusion(profile, target.fusion, lambda layer: layer_engine(layer, target))
+    layers = tuple(_cost_in_plan(layer, ctx, plan, profile) for layer in profile.layers)
+    return _totals(profile, target, ctx, layers, wanted, plan)
 
 
 def _check_target(target: TargetProfile) -> None:
@@ -223,19 +230,68 @@ def _param_dram_bytes(layer: LayerProfile, ctx: _Context, params_fit: bool,
     return layer.param_bytes + ceil(extra_elems * layer.param_bytes / layer.param_count)
 
 
+# ---------------------------------------------------------------- fused groups
+
+def _cost_in_plan(layer: LayerProfile, ctx: _Context, plan: FusionPlan,
+                  profile: ModelProfile) -> LayerCost:
+    """A layer alone, a fused group's head (costing the whole group), or a fused member."""
+    head = plan.head_of_member.get(layer.index)
+    if head is not None:
+        return replace(_idle(layer, ctx, modelled=True), engine="fused",
+                       fused_into=profile.layers[head].name)
+    group = plan.group_of_head.get(layer.index)
+    if group is None:
+        return _cost_layer(layer, ctx)
+    return _cost_group(layer, group, ctx, profile.layers)
+
+
+def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
+                layers: tuple[LayerProfile, ...]) -> LayerCost:
+    """The group as one layer: its outside inputs read once, its final output written once.
+
+    Folded members add no work, and of their parameters only one per-channel
+    vector remains (the producer's new bias). Epilogue element operations run on
+    the array's output path or the vector unit; their parameters are read.
+    """
+    members = [layers[i] for i in group.members]
+    kept = [_kept_params(m, m.index in group.folded) for m in members]
+    as_one = replace(
+        head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
+        param_bytes=head.param_bytes + sum(nbytes for nbytes, _ in kept),
+        param_count=head.param_count + sum(count for _, count in kept))
+    cost = _cost_layer(as_one, ctx, epilogue_ops=group.epilogue_ops)
+    return replace(cost, fused_ops=tuple(m.op_type for m in members))
+
+
+def _kept_params(member: LayerProfile, folded: bool) -> tuple[int, int]:
+    """(bytes, count) of a member's parameters the fused layer still reads."""
+    if not folded:
+        return member.param_bytes, member.param_count
+    tensors = max(1, len(member.param_names))  # BatchNormalization: 4 vectors fold into 1 bias
+    return ceil(member.param_bytes / tensors), ceil(member.param_count / tensors)
+
+
 # ---------------------------------------------------------------- one layer
 
-def _cost_layer(layer: LayerProfile, ctx: _Context) -> LayerCost:
+def layer_engine(layer: LayerProfile, target: TargetProfile) -> str:
+    """Where ``layer`` runs on ``target`` alone: array, vector, host, or none (view, unmodelled)."""
+    work = layer.work
+    if not layer.modelled or work is None or work.is_view:
+        return "none"
+    has_gemms = any(g.macs > 0 for g in work.gemms)
+    return target.engine_for(layer.op_type, layer.domain, has_gemms, conv_kind(layer))
+
+
+def _cost_layer(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
     work = layer.work
     if not layer.modelled or work is None:
         return _idle(layer, ctx, modelled=False)
     if work.is_view:
         return _idle(layer, ctx, modelled=True)
     target = ctx.target
-    gemms = [g for g in work.gemms if g.macs > 0]
-    engine = target.engine_for(layer.op_type, layer.domain, bool(gemms), conv_kind(layer))
+    engine = layer_engine(layer, target)
     if engine == "array":
-        return _on_array(layer, ctx)
+        return _on_array(layer, ctx, epilogue_ops)
     spec = target.vector if engine == "vector" else target.host
     if spec is None:
         raise InputError(f"target '{target.name}' declares no {engine} engine for layer "
@@ -244,7 +300,7 @@ def _cost_layer(layer: LayerProfile, ctx: _Context) -> LayerCost:
     ops = work.vector_ops + work.macs
     if ops <= 0 and layer.flops > 0:
         ops = layer.flops
-    return _on_engine(layer, ctx, engine, spec, ops)
+    return _on_engine(layer, ctx, engine, spec, ops + epilogue_ops)
 
 
 def conv_kind(layer: LayerProfile) -> str:
@@ -275,7 +331,7 @@ def _idle(layer: LayerProfile, ctx: _Context, modelled: bool) -> LayerCost:
         activations_fit=acts_fit, energy=EnergyBreakdown(), modelled=modelled)
 
 
-def _on_array(layer: LayerProfile, ctx: _Context) -> LayerCost:
+def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
     target = ctx.target
     work = layer.work
     assert work is not None
@@ -291,6 +347,7 @@ def _on_array(layer: LayerProfile, ctx: _Context) -> LayerCost:
     array_s = cycles / target.clock_hz
     extra_ops = work.vector_ops + max(0, work.macs - macs)
     side_s, side_j = _side_work(target, extra_ops, spec.mac_energy_j)
+    epilogue_s, epilogue_j = _epilogue_work(target, epilogue_ops, spec.mac_energy_j)
     params_fit, acts_fit = _fits(layer, ctx)
     param_dram = _param_dram_bytes(layer, ctx, params_fit, maps, weight_elems)
     act_dram = 0 if acts_fit else layer.input_bytes + layer.output_bytes
@@ -299,13 +356,15 @@ def _on_array(layer: LayerProfile, ctx: _Context) -> LayerCost:
     noc_bytes = sum(m.noc_hops for m, _ in maps) * elem_bytes
     capacity = target.pe_count * spec.macs_per_pe_per_cycle * cycles
     # A separate vector unit overlaps the array; on a vector target it is the same lanes.
-    compute_s = array_s + side_s if target.dataflow == "vector" else max(array_s, side_s)
+    compute_s = (array_s + side_s + epilogue_s if target.dataflow == "vector"
+                 else max(array_s, side_s + epilogue_s))
     return _finish(
         layer, ctx, engine="array", cycles=cycles, utilization=macs / capacity if capacity else 0.0,
         compute_s=compute_s, overhead_s=target.layer_overhead_s,
         param_dram=param_dram, act_dram=act_dram, buffer_bytes=buffer_bytes,
         fit=(params_fit, acts_fit), precision=precision, array_macs=macs,
-        arithmetic_j=macs * spec.mac_energy_j + side_j, noc_j=noc_bytes * target.noc_energy_j_per_byte)
+        arithmetic_j=macs * spec.mac_energy_j + side_j + epilogue_j,
+        noc_j=noc_bytes * target.noc_energy_j_per_byte)
 
 
 def _side_work(target: TargetProfile, ops: int, mac_energy_j: float) -> tuple[float, float]:
@@ -315,6 +374,16 @@ def _side_work(target: TargetProfile, ops: int, mac_energy_j: float) -> tuple[fl
     if target.vector is None:  # fused into the array's output stage: energy at the MAC rate
         return 0.0, ops * mac_energy_j
     return ops / target.vector.ops_per_s, ops * target.vector.op_energy_j
+
+
+def _epilogue_work(target: TargetProfile, ops: int, mac_energy_j: float) -> tuple[float, float]:
+    """A fused group's epilogue: free in time on the array's output path, else on the vector unit."""
+    fusion = target.fusion
+    if ops <= 0 or fusion is None:
+        return 0.0, 0.0
+    if fusion.epilogue_engine == "vector" and target.vector is not None:
+        return _side_work(target, ops, mac_energy_j)
+    return 0.0, ops * mac_energy_j  # an ALU op in the output stage, charged like a MAC
 
 
 def _on_engine(layer: LayerProfile, ctx: _Context, engine: str, spec: EngineSpec,
@@ -393,7 +462,7 @@ def _float_rate_note(ctx: _Context) -> str:
 
 
 def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
-            layers: tuple[LayerCost, ...], wanted_resident: bool) -> ModelCost:
+            layers: tuple[LayerCost, ...], wanted_resident: bool, plan: FusionPlan) -> ModelCost:
     capacity = 0.0
     array_macs = 0
     for cost in layers:
@@ -408,6 +477,9 @@ def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
     float_note = _float_rate_note(ctx)
     if float_note:
         notes.append(float_note)
+    if plan.groups:
+        notes.append(f"{plan.fused_layers} layer(s) fused into {len(plan.groups)} group(s) as the "
+                     f"target's 'fusion:' section declares; --no-fusion costs them layer by layer")
     unmodelled = sum(1 for cost in layers if not cost.modelled)
     if unmodelled:
         notes.append(f"{unmodelled} unmodelled layer(s) cost nothing here: totals are a lower bound")

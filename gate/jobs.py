@@ -78,8 +78,11 @@ Analysed = dict[str, tuple[list[RunRecord], str]]  # result key -> (runs, error 
 def analyse_model(path: str, targets: Sequence[TargetProfile], *,
                   dims: Mapping[str, int] | None = None, precision: str | None = None,
                   shown_path: str | None = None,
-                  shapes: Mapping[str, tuple[int, ...]] | None = None) -> Analysis:
+                  shapes: Mapping[str, tuple[int, ...]] | None = None,
+                  fusion: bool = True) -> Analysis:
     """Load and profile the model at ``path`` once, cost it on every target.
+
+    ``fusion`` False costs layer by layer even on targets that declare ``fusion:``.
 
     Records name the model ``shown_path`` (default ``path``). Load warnings (for
     example external data that was not opened) are kept as record notes so
@@ -89,7 +92,7 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
     loaded = load_model(path, dict(dims or {}), dict(shapes or {}))
     profile = profile_model(loaded, precision)
     name = shown_path if shown_path is not None else path
-    costs = tuple((target, cost_model(profile, target)) for target in targets)
+    costs = tuple((target, cost_model(profile, target, fusion=fusion)) for target in targets)
     records = []
     for target, cost in costs:
         record = build_run_record(name, profile, cost, target)
@@ -101,10 +104,11 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
 def analyse(path: str, targets: Sequence[TargetProfile], *,
             dims: Mapping[str, int] | None = None, precision: str | None = None,
             shown_path: str | None = None,
-            shapes: Mapping[str, tuple[int, ...]] | None = None) -> list[RunRecord]:
+            shapes: Mapping[str, tuple[int, ...]] | None = None,
+            fusion: bool = True) -> list[RunRecord]:
     """The records of ``analyse_model`` (one per target)."""
     return list(analyse_model(path, targets, dims=dims, precision=precision,
-                              shown_path=shown_path, shapes=shapes).records)
+                              shown_path=shown_path, shapes=shapes, fusion=fusion).records)
 
 
 def _refuse_duplicate_targets(targets: Sequence[TargetProfile]) -> None:

@@ -56,9 +56,18 @@ class LayerRecord:
     params_fit: bool
     activations_fit: bool
     metrics: Mapping[str, Metric]
+    fused_into: str = ""  # head layer of the fused group this layer runs in ("" when alone)
+    fused_ops: tuple[str, ...] = ()  # on a group's head: the op types it absorbed, in order
 
     def metric(self, name: str) -> Metric:
         return self.metrics[name]
+
+    @property
+    def fused_label(self) -> str:
+        """How reports name the layer's fused group: 'conv1+BatchNormalization+Relu', or ''."""
+        if self.fused_ops:
+            return "+".join((self.name, *self.fused_ops))
+        return f"in {self.fused_into}" if self.fused_into else ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -111,6 +120,8 @@ def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:
         "params_fit": layer.params_fit,
         "activations_fit": layer.activations_fit,
         "metrics": dict(sorted(layer.metrics.items())),
+        "fused_into": layer.fused_into,
+        "fused_ops": list(layer.fused_ops),
     }
 
 
@@ -126,6 +137,8 @@ def layer_from_dict(data: Mapping[str, Any]) -> LayerRecord:
         params_fit=bool(data["params_fit"]),
         activations_fit=bool(data["activations_fit"]),
         metrics=_metrics(data["metrics"]),
+        fused_into=str(data.get("fused_into", "")),
+        fused_ops=tuple(str(op) for op in data.get("fused_ops", ())),
     )
 
 

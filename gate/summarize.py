@@ -77,6 +77,8 @@ def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
         params_fit=cost.params_fit,
         activations_fit=cost.activations_fit,
         metrics=metrics,
+        fused_into=cost.fused_into,
+        fused_ops=cost.fused_ops,
     )
 
 

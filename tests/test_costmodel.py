@@ -475,10 +475,18 @@ def test_rebuilt_mobilenet_v1_uses_the_large_array_plausibly_and_depthwise_does_
     assert _depthwise_share(profile, cost) < 0.35
     slowest = max(zip(profile.layers, cost.layers), key=lambda pair: pair[1].latency_s)
     assert conv_kind(slowest[0]) != "depthwise"
-    # Kept on the array, packed block-diagonally, they still take less than half.
+    # Kept on the array, packed block-diagonally (7 channels of K = 9 per pass), each
+    # depthwise layer takes under half the cycles of one channel per pass (the 2 K preload
+    # cycles per channel remain; at 7x7 they dominate), C x (M - 2 + 2 K + N)
+    # (docs/costmodel.md section 2); they still take about half of
+    # the time there (the reason the built-in places them on the vector unit).
     _, packed = _cost_of(proto, tmp_path_factory, {"batch": 1},
                          changes={"placement": MappingProxyType({})})
-    assert _depthwise_share(profile, packed) < 0.5
+    for layer, cost_on_array in zip(profile.layers, packed.layers):
+        if conv_kind(layer) == "depthwise":
+            gemm = layer.work.gemms[0]  # type: ignore[union-attr]
+            assert cost_on_array.cycles * 2 < gemm.count * (gemm.m - 2 + 2 * 9 + 1)
+    assert 0.35 < _depthwise_share(profile, packed) < 0.6
 
 
 @pytest.mark.parametrize("hidden, inputs", [(128, 40), (1024, 80)])

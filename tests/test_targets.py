@@ -142,6 +142,56 @@ def test_vector_placement_needs_a_vector_unit() -> None:
     assert "add a 'vector_unit' section or place it on 'array' or 'host'" in problem
 
 
+FUSION = """\
+fusion:
+  producers: [Conv, MatMul]
+  fold: [BatchNormalization]
+  epilogue: [Relu, Add]
+  epilogue_engine: vector
+  max_epilogue_ops: 1
+  pad_into_conv: true
+"""
+
+
+def test_fusion_section_loads() -> None:
+    target = load_text(MINIMAL + FUSION)
+    fusion = target.fusion  # type: ignore[attr-defined]
+    assert fusion.producers == {"Conv", "MatMul"} and fusion.fold == {"BatchNormalization"}
+    assert fusion.epilogue == {"Relu", "Add"} and fusion.epilogue_engine == "vector"
+    assert fusion.max_epilogue_ops == 1 and fusion.pad_into_conv
+    assert load_text(MINIMAL).fusion is None  # type: ignore[attr-defined]
+
+
+@pytest.mark.parametrize("old, new, expected", [
+    ("epilogue: [Relu, Add]", "epilogue: [Relu7, Add]",
+     "mine.yaml:36: fusion.epilogue: 'Relu7' is not an ONNX op type (did you mean 'Relu'?)"),
+    ("epilogue: [Relu, Add]", "epilogue: [Relu, Softmax]",
+     "mine.yaml:36: fusion.epilogue: 'Softmax' cannot be fused as epilogue"),
+    ("producers: [Conv, MatMul]", "producers: [Conv, MatMull]",
+     "mine.yaml:34: fusion.producers: 'MatMull' is not an ONNX op type (did you mean 'MatMul'?)"),
+    ("fold: [BatchNormalization]", "fold: [BatchNormalisation]",
+     "fusion.fold: 'BatchNormalisation' is not an ONNX op type (did you mean 'BatchNormalization'?)"),
+    ("epilogue_engine: vector", "epilogue_engine: vectr",
+     "fusion.epilogue_engine: 'vectr' is not one of output-path, vector (did you mean 'vector'?)"),
+    ("  max_epilogue_ops: 1", "  max_epilog_ops: 1",
+     "fusion.max_epilog_ops: unknown key (did you mean 'max_epilogue_ops'?)"),
+    ("  max_epilogue_ops: 1", "  max_epilogue_ops: -1", "fusion.max_epilogue_ops: must be at least 0"),
+])
+def test_bad_fusion_sections_name_file_line_key_and_a_suggestion(old: str, new: str,
+                                                                   expected: str) -> None:
+    problems = problems_of(MINIMAL + FUSION.replace(old, new))
+    assert any(expected in p for p in problems), problems
+    assert all(p.startswith("mine.yaml:") for p in problems)
+
+
+def test_fusion_epilogue_on_a_vector_unit_the_target_lacks_is_refused() -> None:
+    text = (MINIMAL + FUSION).replace("vector_unit:\n  ops_per_cycle: 64\n  energy_per_op: 0.5 pJ\n",
+                                      "").replace("  com.example:FancyOp: vector\n", "")
+    expected = ("mine.yaml:33: fusion.epilogue_engine: 'vector' but the target declares no "
+                "vector_unit; add a 'vector_unit' section or use 'output-path'")
+    assert [p for p in problems_of(text) if "epilogue_engine" in p] == [expected]
+
+
 def test_depthwise_and_grouped_convs_can_be_placed() -> None:
     text = MINIMAL.replace("  Softmax: host\n", "  Softmax: host\n  depthwise-conv: vector\n"
                                                  "  grouped-conv: array\n")

@@ -38,9 +38,12 @@ def register(cli: click.Group) -> None:
 @dim_option()
 @shape_option()
 @precision_option()
+@click.option("--no-fusion", "no_fusion", is_flag=True,
+              help="Cost every layer alone, ignoring the target's 'fusion:' section (what fusion "
+                   "buys is the difference).")
 @click.option("--format", "fmt", type=click.Choice(["table", "json", "csv"]), default="table",
               show_default=True, help="table for terminals; json and csv for machines.")
-def profile(model: str, fmt: str, **kwargs: Any) -> None:
+def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
     """Profile MODEL (an .onnx file) layer by layer, analytically; no weights are read.
 
     Prints each layer's MACs, FLOPs, parameter and activation bytes, arithmetic
@@ -48,7 +51,9 @@ def profile(model: str, fmt: str, **kwargs: Any) -> None:
     layers could not be counted, and why). Each target (--target, or the
     model's targets in roofgate.yaml) adds a group of columns (utilization,
     bound, latency per layer) and a line of model totals (latency, energy, DRAM
-    traffic); JSON and CSV carry every per-layer figure.
+    traffic); JSON and CSV carry every per-layer figure. Targets that declare
+    fusion cost each fused group as one layer on its head (the absorbed layers
+    show 'fused'); --no-fusion costs layer by layer.
     """
     from gate.config import resolve_target
     from gate.jobs import analyse_model
@@ -62,7 +67,7 @@ def profile(model: str, fmt: str, **kwargs: Any) -> None:
     names = dict.fromkeys(resolve_target(config, t) for t in settings.targets)
     targets = [load_target(name) for name in names]  # a target given twice is costed once
     analysis = analyse_model(model, targets, dims=settings.dims, precision=settings.precision,
-                             shapes=settings.shapes)
+                             shapes=settings.shapes, fusion=not no_fusion)
     for warning in analysis.loaded.warnings:  # they quote model-supplied names: terminal-safe
         click.echo(f"warning: {term_safe(one_line(warning))}", err=True)
     if analysis.loaded.unbound_dims:

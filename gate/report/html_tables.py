@@ -215,6 +215,8 @@ def _layer_row(layer: LayerRecord, total_s: float) -> str:
     m = layer.metrics
     share = float(m.get("latency_s", 0.0)) / total_s if total_s else 0.0
     note = "" if layer.modelled else f" <em>(not modelled: {html_escape(layer.unmodelled_reason)})</em>"
+    if layer.fused_label:
+        note += f" <span class=\"note\">({html_escape(layer.fused_label)})</span>"
     return ("<tr>" + f"<td class=\"name\">{html_escape(layer.name)}{note}</td>"
             f"<td><code>{html_escape(layer.op_type)}</code></td><td>{html_escape(layer.bound)}</td>"
             + _num("latency_s", m.get("latency_s"))

@@ -25,6 +25,7 @@ from typing import TextIO
 
 from gate.diff import ranked_changes
 from gate.policy.spec import metric_label
+from gate.records import LayerRecord
 from gate.report.text import fmt_change, fmt_delta, fmt_metric, html_escape, md_escape, shorten
 from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, LayerChange, Verdict
 
@@ -343,18 +344,21 @@ def _changed_layers(entry: Entry, out: _Render) -> None:
     out.lines += ["", f"**Most changed layers** ({len(ranked)} changed)"]
     if limit:
         out.lines += ["", "| " + " | ".join(titles) + " |", "|" + "---|" * len(titles)]
-        out.lines += [_layer_row(change) for change in ranked[:limit]]
+        head = {layer.name: layer for layer in entry.head.layers} if entry.head else {}
+        out.lines += [_layer_row(change, head.get(change.head_name or "")) for change in
+                      ranked[:limit]]
     out.trimmed(min(limit, len(ranked)), len(ranked), "changed layers")
 
 
-def _layer_row(change: LayerChange) -> str:
+def _layer_row(change: LayerChange, head: LayerRecord | None = None) -> str:
     name = change.head_name if change.head_name is not None else change.base_name or ""
     what = change.status
     if change.status == "changed" and not any(m in change.deltas for m, _ in LAYER_METRICS):
         what += f": {_other_changes(change)}"  # else the row would read all "="
     if change.status != "added" and change.status != "removed" and change.base_name != name:
         what += f" (was {md_escape(shorten(change.base_name or '', NAME_CHARS))})"
-    cells = [md_escape(shorten(name, NAME_CHARS)), md_escape(change.op_type), what]
+    op = change.op_type + (f" ({head.fused_label})" if head and head.fused_label else "")
+    cells = [md_escape(shorten(name, NAME_CHARS)), md_escape(shorten(op, NAME_CHARS)), what]
     for metric, _ in LAYER_METRICS:
         cells.append(_layer_cell(change, metric))
     return "| " + " | ".join(cells) + " |"

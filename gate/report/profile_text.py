@@ -34,7 +34,7 @@ CSV_FIELDS: tuple[str, ...] = (
 )
 CSV_TARGET_FIELDS: tuple[str, ...] = (
     "target", "engine", "bound", "utilization", "cycles", "latency_s", "energy_j",
-    "param_dram_bytes", "act_dram_bytes",
+    "param_dram_bytes", "act_dram_bytes", "fused_into", "fused_ops",
 )
 
 
@@ -145,7 +145,7 @@ def to_csv(profile: ModelProfile, runs: Sequence[Run]) -> str:
             writer.writerow(_csv_row(layer) + [
                 _csv_text(target.name), lc.engine, lc.bound, repr(lc.utilization), lc.cycles,
                 repr(lc.latency_s), repr(lc.energy.total_j), lc.param_dram_bytes,
-                lc.act_dram_bytes])
+                lc.act_dram_bytes, _csv_text(lc.fused_into), ";".join(lc.fused_ops)])
     return out.getvalue()
 
 
@@ -245,7 +245,8 @@ _TARGET_HEAD = ["util", "bound", "latency"]
 LEGEND = ("columns: FLOP/B = FLOPs per byte of parameters, inputs and outputs (arithmetic "
           "intensity); MAC/pB = MACs per parameter byte (weight reuse)")
 TARGET_LEGEND = ("target columns: util = share of the PE array kept busy; bound = what limits the "
-                 "layer (compute, memory, overhead, none)")
+                 "layer (compute, memory, overhead, none; '+' heads a fused group that costs the "
+                 "layers marked 'fused' below it)")
 MARKS = "marks: - not counted or not applicable"
 UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? size unknown"
 
@@ -289,7 +290,8 @@ def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> lis
         if not layer.modelled:
             cells += ["-", "-", "-"]
             continue
-        cells += [f"{lc.utilization:.0%}" if lc.engine == "array" else "-", lc.bound,
+        bound = "fused" if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
+        cells += [f"{lc.utilization:.0%}" if lc.engine == "array" else "-", bound,
                   seconds(lc.latency_s)]
     if flagged:
         cells.append("" if layer.modelled else "!")

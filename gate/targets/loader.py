@@ -18,8 +18,13 @@ from gate.targets.spec import (
     CONV_KINDS,
     DATAFLOWS,
     ENGINES,
+    EPILOGUE_ENGINES,
+    FUSION_EPILOGUES,
+    FUSION_FOLDS,
+    FUSION_PRODUCERS,
     PRECISION_BITS,
     EngineSpec,
+    FusionSpec,
     PrecisionSpec,
     TargetProfile,
     normal_precision,
@@ -59,6 +64,7 @@ def parse_target(doc: YamlDocument, source: str | None = None) -> TargetProfile:
     host = _read_engine(root, "host", None, required=True)
     placement = _read_placement(root, vector is not None or root.has("vector_unit"))
     weights_resident = root.get_bool("weights_resident", False)
+    fusion = _read_fusion(root, vector is not None or root.has("vector_unit"))
     root.finish()
     if name is not None and not _valid_name(name):
         root.bad("name", f"'{name}' is not a valid target name; use letters, digits, '-', '_' and '.'")
@@ -75,7 +81,7 @@ def parse_target(doc: YamlDocument, source: str | None = None) -> TargetProfile:
         noc_energy_j_per_byte=energy[1], dram_energy_j_per_byte=energy[2],
         static_power_w=energy[3], layer_overhead_s=float(layer_overhead_s or 0.0),
         vector=vector, host=host, placement=MappingProxyType(placement),
-        weights_resident=bool(weights_resident),
+        weights_resident=bool(weights_resident), fusion=fusion,
     ))
 
 
@@ -269,6 +275,45 @@ def _read_placement(root: Section, has_vector: bool) -> dict[str, str]:
 def _placeable(key: str) -> bool:
     """An ONNX op type, 'domain:OpType', or a kind of convolution (``depthwise-conv``)."""
     return ":" in key or key in _onnx_op_types() or key in CONV_KINDS.values()
+
+
+def _read_fusion(root: Section, has_vector: bool) -> FusionSpec | None:
+    """The ``fusion:`` section: op types by role, checked against what the grouper understands."""
+    section = root.get_section("fusion")
+    if section is None:
+        return None
+    producers = _fusion_ops(section, "producers", FUSION_PRODUCERS, required=True)
+    fold = _fusion_ops(section, "fold", FUSION_FOLDS)
+    epilogue = _fusion_ops(section, "epilogue", FUSION_EPILOGUES)
+    engine = section.get_str("epilogue_engine", "output-path", choices=list(EPILOGUE_ENGINES))
+    max_ops = section.get_int("max_epilogue_ops", 2, minimum=0)
+    pad = section.get_bool("pad_into_conv", False)
+    section.finish()
+    if engine == "vector" and not has_vector:
+        section.bad("epilogue_engine", "'vector' but the target declares no vector_unit; add a "
+                                       "'vector_unit' section or use 'output-path'")
+    return FusionSpec(producers=frozenset(producers), fold=frozenset(fold),
+                      epilogue=frozenset(epilogue), epilogue_engine=engine or "output-path",
+                      max_epilogue_ops=2 if max_ops is None else max_ops,
+                      pad_into_conv=bool(pad))
+
+
+def _fusion_ops(section: Section, key: str, known: tuple[str, ...],
+                required: bool = False) -> list[str]:
+    """A list of op types for one fusion role; unknown or misplaced names are reported."""
+    names = section.get_str_list(key, [], required=required) or []
+    accepted = []
+    for name in names:
+        if name in known or ":" in name:  # another domain's op: the user vouches for it
+            accepted.append(name)
+        elif name in _onnx_op_types():
+            hint = suggest(name, list(known))
+            section.bad(key, f"'{name}' cannot be fused as {key.rstrip('s')}{hint}; "
+                             f"known: {', '.join(known)}")
+        else:
+            hint = suggest(name, list(known)) or suggest(name, sorted(_onnx_op_types()))
+            section.bad(key, f"'{name}' is not an ONNX op type{hint}")
+    return accepted
 
 
 @lru_cache(maxsize=1)

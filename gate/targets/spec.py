@@ -25,6 +25,21 @@ CONV_KINDS: Mapping[str, str] = MappingProxyType({
     "depthwise": "depthwise-conv", "grouped": "grouped-conv",
 })
 
+# What a target's compiler may fuse (``fusion:``), by role. Producers head a fused
+# group (layers with GEMMs); fold ops are per-channel affine ops with constant
+# operands folded into the producer's weights at compile time; epilogue ops run
+# element by element on the producer's output before it is written.
+FUSION_PRODUCERS: tuple[str, ...] = (
+    "Conv", "ConvTranspose", "ConvInteger", "QLinearConv", "Gemm", "MatMul", "MatMulInteger",
+    "QLinearMatMul",
+)
+FUSION_FOLDS: tuple[str, ...] = ("BatchNormalization", "Mul", "Add", "Sub", "Div")
+FUSION_EPILOGUES: tuple[str, ...] = (
+    "Relu", "Clip", "HardSwish", "HardSigmoid", "Sigmoid", "LeakyRelu", "PRelu", "Tanh", "Elu",
+    "Selu", "Gelu", "Add", "QuantizeLinear", "DequantizeLinear", "Cast",
+)
+EPILOGUE_ENGINES = ("output-path", "vector")
+
 # Precision names a profile may declare, with their element size in bits.
 PRECISION_BITS: Mapping[str, int] = MappingProxyType({
     "int4": 4, "int8": 8, "int16": 16, "fp8": 8, "fp16": 16, "bf16": 16, "fp32": 32,
@@ -68,6 +83,18 @@ class EngineSpec:
 
 
 @dataclass(frozen=True, slots=True)
+class FusionSpec:
+    """Which producer + epilogue patterns the target's compiler fuses into one layer."""
+
+    producers: frozenset[str]  # op types that head a group ('domain:OpType' for other domains)
+    fold: frozenset[str] = frozenset()  # folded into the producer's weights: no work left
+    epilogue: frozenset[str] = frozenset()  # run on the producer's output path
+    epilogue_engine: str = "output-path"  # "output-path" (free in time) or "vector" (overlapped)
+    max_epilogue_ops: int = 2  # epilogue ops one group may take
+    pad_into_conv: bool = False  # a constant Pad feeding a conv becomes the conv's padding
+
+
+@dataclass(frozen=True, slots=True)
 class TargetProfile:
     name: str
     description: str
@@ -91,6 +118,7 @@ class TargetProfile:
     host: EngineSpec | None = None
     placement: Mapping[str, str] = field(default_factory=dict)  # op type -> engine
     weights_resident: bool = False  # keep all parameters on chip across inferences when they fit
+    fusion: FusionSpec | None = None  # None: every layer runs alone (layer by layer)
 
     @property
     def pe_count(self) -> int:
