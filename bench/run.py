@@ -324,19 +324,42 @@ def bench_targets(work: Path, runs: int, quick: bool) -> list[str]:
             f"{ratio(many['seconds'], one['seconds'])} | well under 8x (load once) |")]
 
 
+def bench_fusion(work: Path, runs: int, quick: bool) -> list[str]:
+    """7. What grouping fused layers costs: `roofgate profile` with fusion vs --no-fusion."""
+    import onnx
+
+    from gate.synth.archs import resnet18, resnet50
+    from gate.synth.builder import save_model
+
+    resnet = str(save_model((resnet18 if quick else resnet50)(weights="inline", batch=1),
+                            work / "resnet.onnx"))
+    size = 10_000 if quick else 100_000
+    chain = work / f"chain{size}.onnx"
+    onnx.save(_chain_model(size), str(chain))
+    rows = []
+    for label, path, repeats in (("ResNet-50" if not quick else "ResNet-18", resnet, runs),
+                                 (f"{size:,}-node graph", str(chain), max(1, runs // 2))):
+        args = ["profile", path, "--target", TARGET, "--format", "json"]
+        fused = measure("cli", args, repeats)["seconds"]
+        alone = measure("cli", [*args, "--no-fusion"], repeats)["seconds"]
+        rows.append(f"| 7 | `roofgate profile` {label}: fusion vs --no-fusion | {fused:.2f} s vs "
+                    f"{alone:.2f} s | {ratio(fused, alone)} | <= 1.1x |")
+    return rows
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--worker", nargs=argparse.REMAINDER)
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--runs", type=int, default=None)
-    parser.add_argument("--only", default="123456", help="which benchmarks, e.g. 13")
+    parser.add_argument("--only", default="1234567", help="which benchmarks, e.g. 13")
     options = parser.parse_args()
     if options.worker:
         worker(options.worker[0], options.worker[1:])
         return
     runs = options.runs or (1 if options.quick else 3)
     benches = {"1": bench_floor, "2": bench_weights, "3": bench_scaling, "4": bench_zoo,
-               "5": bench_targets, "6": bench_demo}
+               "5": bench_targets, "6": bench_demo, "7": bench_fusion}
     print(f"roofgate benchmark, {time.strftime('%Y-%m-%d')}, {platform.machine()}, "
           f"{os.cpu_count()} cores, Python {platform.python_version()}, "
           f"median of {runs} run(s){' (quick)' if options.quick else ''}\n")

@@ -236,9 +236,9 @@ def _cost_in_plan(layer: LayerProfile, ctx: _Context, plan: FusionPlan,
                   profile: ModelProfile) -> LayerCost:
     """A layer alone, a fused group's head (costing the whole group), or a fused member."""
     head = plan.head_of_member.get(layer.index)
-    if head is not None:
-        return replace(_idle(layer, ctx, modelled=True), engine="fused",
-                       fused_into=profile.layers[head].name)
+    if head is not None:  # its tensors stream through the head's output path: the head's fit applies
+        return replace(_idle(layer, ctx, modelled=True), engine="fused", params_fit=True,
+                       activations_fit=True, fused_into=profile.layers[head].name)
     group = plan.group_of_head.get(layer.index)
     if group is None:
         return _cost_layer(layer, ctx)

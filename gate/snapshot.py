@@ -20,7 +20,8 @@ Layout (version 1)::
 Version history (bump ``SNAPSHOT_VERSION`` on any change a reader must know about,
 and add a line here and in docs/reports.md):
 
-  1  first version.
+  1  first version. Layers carry ``fused_into`` and ``fused_ops`` (layer fusion);
+     a layer without them reads as not fused.
 """
 
 from __future__ import annotations

@@ -84,6 +84,8 @@ def test_residual_block_fuses_bn_activation_and_residual_add_into_its_convs(tmp_
     assert by_name["conv2"].fused_ops == ("BatchNormalization", "Add", "Relu")
     assert by_name["add"].engine == "fused" and by_name["add"].fused_into == "conv2"
     assert by_name["add"].latency_s == 0.0 and by_name["add"].energy.total_j == 0.0
+    spilled = {c.name: c for c in cost_model(profile, _spilling(load_target(WS))).layers}
+    assert not spilled["conv2"].activations_fit and spilled["add"].activations_fit  # head's fit
 
 
 def test_epilogue_limit_and_target_choices_decide_the_group(tmp_path: Path) -> None:

@@ -350,6 +350,11 @@ def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile)
                   f"{binary_bytes(cost.param_dram_bytes)}, activation DRAM "
                   f"{binary_bytes(cost.act_dram_bytes)}, weights "
                   f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}")]
+    fused = sum(1 for layer in cost.layers if layer.fused_into)
+    if fused:
+        groups = sum(1 for layer in cost.layers if layer.fused_ops)
+        lines.append(f"  fused: {fused} layers run inside {groups} groups as the target declares "
+                     f"(--no-fusion: layer by layer)")
     if cov.nodes_modelled < cov.nodes_total:
         lines.append(f"  lower bounds: only {cov.nodes_modelled}/{cov.nodes_total} layers "
                      f"({cov.work_share:.1%} of the work) are modelled")
