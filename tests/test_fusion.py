@@ -24,8 +24,8 @@ from gate.cli import cli
 from gate.costmodel import cost_model, layer_engine
 from gate.diff import diff_runs
 from gate.fusion import plan_fusion
-from gate.model.loader import load_model
 from gate.jobs import analyse
+from gate.model.loader import load_model
 from gate.profile import ModelProfile, profile_model
 from gate.records import layer_from_dict, layer_to_dict
 from gate.summarize import build_run_record

@@ -246,7 +246,7 @@ LEGEND = ("columns: FLOP/B = FLOPs per byte of parameters, inputs and outputs (a
           "intensity); MAC/pB = MACs per parameter byte (weight reuse)")
 TARGET_LEGEND = ("target columns: util = share of the PE array kept busy; bound = what limits the "
                  "layer (compute, memory, overhead, none; '+' heads a fused group that costs the "
-                 "layers marked 'fused' below it)")
+                 "layers marked 'fused')")
 MARKS = "marks: - not counted or not applicable"
 UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? size unknown"
 
