@@ -236,13 +236,25 @@ def _cost_in_plan(layer: LayerProfile, ctx: _Context, plan: FusionPlan,
                   profile: ModelProfile) -> LayerCost:
     """A layer alone, a fused group's head (costing the whole group), or a fused member."""
     head = plan.head_of_member.get(layer.index)
-    if head is not None:  # its tensors stream through the head's output path: the head's fit applies
-        return replace(_idle(layer, ctx, modelled=True), engine="fused", params_fit=True,
-                       activations_fit=True, fused_into=profile.layers[head].name)
+    if head is not None:
+        return _fused_member(layer, profile.layers[head].name)
     group = plan.group_of_head.get(layer.index)
     if group is None:
         return _cost_layer(layer, ctx)
     return _cost_group(layer, group, ctx, profile.layers)
+
+
+def _fused_member(layer: LayerProfile, head_name: str) -> LayerCost:
+    """No time or energy of its own; its tensors stream through the head's output path, so
+    the head's buffer fit applies (it is reported as fitting)."""
+    return LayerCost(
+        index=layer.index, name=layer.name, engine="fused", cycles=0, utilization=0.0,
+        compute_s=0.0, memory_s=0.0, overhead_s=0.0, latency_s=0.0, bound="none",
+        param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=True,
+        activations_fit=True, energy=_NO_ENERGY, fused_into=head_name)
+
+
+_NO_ENERGY = EnergyBreakdown()
 
 
 def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,

@@ -173,7 +173,8 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
         if position is None or position in taken:
             break
         candidate = layers[position]
-        role = _role(candidate, nodes[position], tensor, last, chain, spec, wiring, engine_of)
+        role = _role(candidate, nodes[position], tensor, nodes[last.index], chain, spec, wiring,
+                     engine_of)
         if role is None:
             break
         chain.members.append(position)
@@ -201,12 +202,12 @@ def _finish(head: LayerProfile, pad: int | None, last: LayerProfile, chain: _Cha
         output_bytes=last.output_bytes)
 
 
-def _role(layer: LayerProfile, node: Node, tensor: str, previous: LayerProfile, chain: _Chain,
+def _role(layer: LayerProfile, node: Node, tensor: str, previous: Node, chain: _Chain,
           spec: FusionSpec, wiring: _Wiring, engine_of: Callable[[LayerProfile], str]
           ) -> str | None:
     """"fold", "epilogue" or None (the chain stops here)."""
     if (layer.work is None or layer.work.gemms or _single_output(node) is None
-            or engine_of(layer) == "host" or not _keeps_size(layer, previous)):
+            or engine_of(layer) == "host" or not _keeps_size(node, previous)):
         return None
     positions = [i for i, t in enumerate(node.inputs) if t is not None and t.name == tensor]
     if not positions:
@@ -221,18 +222,10 @@ def _role(layer: LayerProfile, node: Node, tensor: str, previous: LayerProfile, 
     return None
 
 
-def _keeps_size(layer: LayerProfile, previous: LayerProfile) -> bool:
-    """Elementwise on the chain tensor: the output has as many elements as it."""
-    return _elements(layer.output_shapes[:1]) == _elements(previous.output_shapes[:1]) > 0
-
-
-def _elements(shapes: tuple[tuple[int | str, ...] | None, ...]) -> int:
-    if not shapes or shapes[0] is None or any(not isinstance(d, int) for d in shapes[0]):
-        return 0
-    count = 1
-    for dim in shapes[0]:
-        count *= int(dim)
-    return count
+def _keeps_size(node: Node, previous: Node) -> bool:
+    """Elementwise on the chain tensor: the output has as many (known) elements as it."""
+    count = node.outputs[0].numel
+    return count is not None and count > 0 and count == previous.outputs[0].numel
 
 
 def _others_constant(node: Node, chain_position: int, wiring: _Wiring) -> bool:
