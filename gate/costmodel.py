@@ -14,8 +14,8 @@ from dataclasses import dataclass, fields, replace
 from math import ceil
 
 from gate.errors import InputError
-from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
 from gate.fusion import NO_FUSION, FusedGroup, FusionPlan, plan_fusion
+from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
 from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
 from gate.targets.spec import DATAFLOWS, EngineSpec, TargetProfile, normal_precision
@@ -269,18 +269,20 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
     kept = [_kept_params(m, m.index in group.folded) for m in members]
     as_one = replace(
         head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
-        param_bytes=head.param_bytes + sum(nbytes for nbytes, _ in kept),
-        param_count=head.param_count + sum(count for _, count in kept))
+        param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
+        param_new_bytes=head.first_read_param_bytes + sum(new for _, new, _ in kept),
+        param_count=head.param_count + sum(count for _, _, count in kept))
     cost = _cost_layer(as_one, ctx, epilogue_ops=group.epilogue_ops)
     return replace(cost, fused_ops=tuple(m.op_type for m in members))
 
 
-def _kept_params(member: LayerProfile, folded: bool) -> tuple[int, int]:
-    """(bytes, count) of a member's parameters the fused layer still reads."""
+def _kept_params(member: LayerProfile, folded: bool) -> tuple[int, int, int]:
+    """(bytes, bytes no earlier layer read, count) of a member's parameters the group reads."""
     if not folded:
-        return member.param_bytes, member.param_count
+        return member.param_bytes, member.first_read_param_bytes, member.param_count
     tensors = max(1, len(member.param_names))  # BatchNormalization: 4 vectors fold into 1 bias
-    return ceil(member.param_bytes / tensors), ceil(member.param_count / tensors)
+    return (ceil(member.param_bytes / tensors), ceil(member.first_read_param_bytes / tensors),
+            ceil(member.param_count / tensors))
 
 
 # ---------------------------------------------------------------- one layer
