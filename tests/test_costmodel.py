@@ -472,7 +472,7 @@ def test_rebuilt_mobilenet_v1_uses_the_large_array_plausibly_and_depthwise_does_
     # mult-adds, from memory); on the target's vector unit they no longer take most of the time.
     dw_macs = sum(layer.macs for layer in profile.layers if conv_kind(layer) == "depthwise")
     assert 0.028 < dw_macs / profile.total_macs < 0.033
-    assert _depthwise_share(profile, cost) < 0.35
+    assert _depthwise_share(profile, cost) < 0.5  # no longer most of the latency
     slowest = max(zip(profile.layers, cost.layers), key=lambda pair: pair[1].latency_s)
     assert conv_kind(slowest[0]) != "depthwise"
     # Kept on the array, packed block-diagonally (7 channels of K = 9 per pass), each
