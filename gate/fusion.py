@@ -14,7 +14,9 @@ operands only, before any nonlinearity), then up to ``max_epilogue_ops``
 elementwise epilogue ops; optionally a constant Pad in front of a conv. Every
 intermediate tensor must have exactly one consumer and not be a graph output
 (otherwise it has to be written out anyway), and each op must keep the element
-count (no broadcast to a larger tensor).
+count (no broadcast to a larger tensor). View layers and layers the profile already
+costs as nothing (folded constants, a quantize/dequantize pair fused into its
+producer) end a chain: they have no work to absorb.
 """
 
 from __future__ import annotations
@@ -206,7 +208,8 @@ def _role(layer: LayerProfile, node: Node, tensor: str, previous: Node, chain: _
           spec: FusionSpec, wiring: _Wiring, engine_of: Callable[[LayerProfile], str]
           ) -> str | None:
     """"fold", "epilogue" or None (the chain stops here)."""
-    if (layer.work is None or layer.work.gemms or _single_output(node) is None
+    if (layer.work is None or layer.work.gemms or layer.work.is_view  # views and offline
+            or _single_output(node) is None  # (folded, fused Q/DQ) layers already cost nothing
             or engine_of(layer) == "host" or not _keeps_size(node, previous)):
         return None
     positions = [i for i, t in enumerate(node.inputs) if t is not None and t.name == tensor]
