@@ -204,7 +204,24 @@ def _node_macs(n: onnx.NodeProto, values: Mapping[str, np.ndarray]) -> int:
     if n.op_type == "Conv":
         y, w = values[n.output[0]], values[n.input[1]]
         return int(y.size * np.prod(w.shape[1:]))
+    if n.op_type == "Attention":  # ONNX spec: Q K^T and P V per (batch, query head)
+        return _attention_macs(n, values)
     return 0
+
+
+def _attention_macs(n: onnx.NodeProto, values: Mapping[str, np.ndarray]) -> int:
+    """MACs of an executed ONNX Attention node, from its real Q, K, V (and past) arrays."""
+    q, k, v = (values[i] for i in n.input[:3])
+    if q.ndim == 3:
+        q_heads, kv_heads = _attr(n, "q_num_heads"), _attr(n, "kv_num_heads")
+        batch, q_len, head = q.shape[0], q.shape[1], q.shape[2] // q_heads
+        kv_len, v_head = k.shape[1], v.shape[2] // kv_heads
+    else:
+        batch, q_heads, q_len, head = q.shape
+        kv_len, v_head = k.shape[2], v.shape[3]
+    if len(n.input) > 4 and n.input[4]:
+        kv_len += values[n.input[4]].shape[2]
+    return int(batch * q_heads * q_len * kv_len * (head + v_head))
 
 
 def _attr(n: onnx.NodeProto, name: str) -> Any:

@@ -44,6 +44,7 @@ from gate.model.graph import Graph, LoadedModel
 from gate.model.shape_values import refine_shapes
 from gate.model.shapes import MAX_DIM, StaticShape, bind_input_shapes, sizing_notes
 from gate.model.text import repair_text_fields
+from gate.ops.contrib_shapes import register_contrib_schemas
 
 # Files at least this large go through the path-based shape inference (protobuf's
 # in-memory serialisation limit is 2 GiB).
@@ -75,6 +76,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
                         "with \\xNN escapes (re-export the model to fix them)")
     declared = collect_symbolic_dims(proto.graph)
     drop_weight_values(proto.graph)
+    register_contrib_schemas()  # shape inference then sizes the contrib ops we cost
     unused = sorted(set(bindings) - declared)
     warnings.extend(f"--dim {name}={bindings[name]}: the model declares no symbolic dim "
                     f"'{name}' (binding ignored)" for name in unused)

@@ -2,6 +2,10 @@
 
 from gate.ops import (  # noqa: F401  (imported for their @register side effects)
     attention,
+    contrib_attention,
+    contrib_elementwise,
+    contrib_fused,
+    contrib_quantized,
     control,
     conv,
     einsum,

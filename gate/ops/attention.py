@@ -79,6 +79,14 @@ def attention_core(dims: AttentionDims, has_bias: bool, softcap: bool = False,
     return arithmetic(per_score * dims.scores, macs=sum(g.macs for g in gemms), gemms=gemms)
 
 
+def ranked_shape(node: Node, position: int, role: str, rank: int) -> tuple[int, ...]:
+    """Static shape of input ``position``, which must have ``rank`` dims."""
+    shape = input_shape(node, position, role)
+    if len(shape) != rank:
+        raise Unmodelled(f"{role} must have {rank} dims, got {shape}")
+    return shape
+
+
 def written_elements(node: Node, positions: tuple[int, ...]) -> int:
     """Elements of the named outputs at ``positions`` (copies the op writes)."""
     total = 0
@@ -108,7 +116,7 @@ def _onnx_dims(node: Node) -> AttentionDims:
         v_head = split_heads(v[2], kv_heads, "V")
     past = node.input(4)
     if past is not None:
-        kv_len += input_shape(node, 4, "past_key")[2]
+        kv_len += ranked_shape(node, 4, "past_key", 4)[2]
     return AttentionDims(batch, q_heads, kv_heads, q_len, kv_len, head, v_head)
 
 

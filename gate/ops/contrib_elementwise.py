@@ -1,0 +1,113 @@
+"""Fused elementwise and normalisation ops of the ``com.microsoft`` domain.
+
+Each costs its decomposition into standard ONNX ops, with the per-element
+constants of ``gate.ops.elementwise`` and ``gate.ops.normalization``:
+
+- ``Gelu`` = Gelu (erf form); ``BiasGelu`` = Add + Gelu; ``FastGelu`` = [Add bias] +
+  Gelu(approximate="tanh"); ``QuickGelu`` = x * Sigmoid(alpha * x) (Mul, Sigmoid, Mul);
+- ``BiasAdd`` = X + bias + skip (two Adds);
+- ``SkipLayerNormalization`` = input + skip [+ bias] then LayerNormalization(gamma,
+  [beta]); ``SkipSimplifiedLayerNormalization`` = the same with RMSNormalization;
+- ``SimplifiedLayerNormalization`` = RMSNormalization (registered in the default
+  domain, where the runtime that defines it puts it, and in ``com.microsoft``).
+
+Optional outputs (mean, inverse std, the input+skip+bias sum) are values the
+decomposition computes anyway; writing them adds bytes, not operations.
+Input orders follow the public contrib-op documentation (ContribOperators.md);
+SkipLayerNormalization's (input, skip, gamma, beta, bias) order, QuickGelu's alpha
+default 1.702 and SimplifiedLayerNormalization's domain are from memory.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+from gate.model.graph import Node
+from gate.ops._common import add_work, arithmetic, elementwise_output_elements, input_shape, numel
+from gate.ops.contrib_shapes import Facts, same_as, shape_rule, tensor_type
+from gate.ops.elementwise import GELU_OPS_PER_ELEMENT, UNARY_OPS_PER_ELEMENT
+from gate.ops.normalization import layer_normalization, rms_normalization
+from gate.ops.registry import OpWork, register
+
+MS = "com.microsoft"
+QUICK_GELU_OPS_PER_ELEMENT = 1 + UNARY_OPS_PER_ELEMENT["Sigmoid"] + 1  # alpha*x, sigmoid, x*s
+
+
+@register("Gelu", domain=MS)
+def ms_gelu(node: Node) -> OpWork:
+    return arithmetic(GELU_OPS_PER_ELEMENT["none"] * elementwise_output_elements(node))
+
+
+@register("BiasGelu", domain=MS)
+def bias_gelu(node: Node) -> OpWork:
+    return arithmetic((1 + GELU_OPS_PER_ELEMENT["none"]) * elementwise_output_elements(node))
+
+
+@register("FastGelu", domain=MS)
+def fast_gelu(node: Node) -> OpWork:
+    bias = 1 if node.input(1) is not None else 0
+    return arithmetic((bias + GELU_OPS_PER_ELEMENT["tanh"]) * elementwise_output_elements(node))
+
+
+@register("QuickGelu", domain=MS)
+def quick_gelu(node: Node) -> OpWork:
+    return arithmetic(QUICK_GELU_OPS_PER_ELEMENT * elementwise_output_elements(node))
+
+
+@register("BiasAdd", domain=MS)
+def bias_add(node: Node) -> OpWork:
+    return arithmetic(2 * elementwise_output_elements(node))
+
+
+def _residual_adds(node: Node, bias_pos: int) -> OpWork:
+    """input + skip, plus the bias add when the bias input is given."""
+    elements = numel(input_shape(node, 0, "input"))
+    input_shape(node, 1, "skip")
+    adds = 1 + (1 if node.input(bias_pos) is not None else 0)
+    return arithmetic(adds * elements)
+
+
+@register("SkipLayerNormalization", domain=MS)
+def skip_layer_normalization(node: Node) -> OpWork:
+    """(input, skip, gamma, beta?, bias?): residual adds then LayerNorm over the last axis."""
+    norm = replace(node, inputs=(node.input(0), node.input(2), node.input(3)), attributes={})
+    return add_work([_residual_adds(node, bias_pos=4), layer_normalization(norm)])
+
+
+@register("SkipSimplifiedLayerNormalization", domain=MS)
+def skip_simplified_layer_normalization(node: Node) -> OpWork:
+    """(input, skip, gamma, bias?): residual adds then RMSNorm over the last axis."""
+    norm = replace(node, inputs=(node.input(0), node.input(2)), attributes={})
+    return add_work([_residual_adds(node, bias_pos=3), rms_normalization(norm)])
+
+
+@register("SimplifiedLayerNormalization")
+@register("SimplifiedLayerNormalization", domain=MS)
+def simplified_layer_normalization(node: Node) -> OpWork:
+    return rms_normalization(node)
+
+
+# --- output shapes (onnx shape inference knows no com.microsoft op)
+
+shape_rule("Gelu", "BiasGelu", "FastGelu", "QuickGelu", "BiasAdd")(same_as(0))
+
+
+def _statistics_type(facts: Facts, axis: int) -> object:
+    """Mean / inverse std outputs: the input shape with the normalised axes set to 1 (float)."""
+    x = facts.dims(0)
+    if x is None:
+        return None
+    axis %= max(len(x), 1)
+    return tensor_type(1, [*x[:axis], *([1] * (len(x) - axis))])
+
+
+@shape_rule("SkipLayerNormalization", "SkipSimplifiedLayerNormalization")
+def _skip_norm_shape(facts: Facts) -> list:
+    stats = _statistics_type(facts, -1)
+    return [facts.tensor(0), stats, stats, facts.tensor(0)]
+
+
+@shape_rule("SimplifiedLayerNormalization", domain="")
+@shape_rule("SimplifiedLayerNormalization")
+def _simplified_norm_shape(facts: Facts) -> list:
+    return [facts.tensor(0), _statistics_type(facts, int(facts.attr("axis", -1)))]

@@ -1,0 +1,146 @@
+"""Fused matrix ops of the ``com.microsoft`` domain: a standard op plus its epilogue.
+
+Each costs exactly its decomposition into standard ONNX ops (the tests build both):
+
+- ``FusedConv`` = Conv (+ Add of the optional sum input Z) + activation;
+- ``FusedGemm`` = Gemm + activation;
+- ``FusedMatMul`` = Transpose of the last two dims as asked + MatMul (+ Mul by alpha);
+- ``MatMulNBits`` = DequantizeLinear of the blockwise-quantized weight (2 ops per
+  weight element, every inference) + MatMul (+ Add of the optional bias).
+
+Input orders and attributes follow the public contrib-op documentation
+(ContribOperators.md); the ``activation``/``activation_params`` names of FusedConv
+and FusedGemm and MatMulNBits' packed layout ``[N, K / block_size, block_size *
+bits / 8]`` are from memory. MatMulNBits' parameter bytes equal the decomposition's
+(4-bit weights as 4 bits); its parameter *count* is the packed uint8 elements, since
+roofgate counts initializer elements and never reads the packing.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+from onnx import TypeProto
+
+from gate.model.graph import Node, TensorInfo
+from gate.ops._common import add_work, arithmetic, input_shape, numel, str_attr
+from gate.ops.contrib_shapes import (
+    Facts,
+    as_standard,
+    shape_rule,
+    tensor_type,
+)
+from gate.ops.conv import conv_work
+from gate.ops.elementwise import UNARY_OPS_PER_ELEMENT
+from gate.ops.matmul import gemm, matmul_work
+from gate.ops.quantized import DEQUANTIZE_OPS_PER_ELEMENT
+from gate.ops.registry import GemmShape, OpWork, Unmodelled, register
+
+MS = "com.microsoft"
+# Activations FusedConv/FusedGemm accept (from memory), costed as the standard op.
+FUSABLE_ACTIVATIONS = ("Relu", "Tanh", "Sigmoid", "LeakyRelu", "Clip", "HardSigmoid")
+
+
+def _activation_ops(node: Node) -> int:
+    """Operations per output element of the fused activation (0 when none is named)."""
+    name = str_attr(node, "activation", "")
+    if not name:
+        return 0
+    if name not in FUSABLE_ACTIVATIONS:
+        raise Unmodelled(f"{node.op_type} activation {name!r} is not one we know")
+    return UNARY_OPS_PER_ELEMENT[name]
+
+
+def _output_elements(work: OpWork) -> int:
+    return sum(g.m * g.n * g.count for g in work.gemms)
+
+
+@register("FusedConv", domain=MS)
+def fused_conv(node: Node) -> OpWork:
+    """Conv(X, W, B) + Z (input 3) then the activation, per output element."""
+    core = conv_work(node, x_pos=0, w_pos=1, bias_pos=2)
+    outputs = _output_elements(core)
+    per_output = _activation_ops(node) + (1 if node.input(3) is not None else 0)
+    return add_work([core, arithmetic(per_output * outputs)])
+
+
+@register("FusedGemm", domain=MS)
+def fused_gemm(node: Node) -> OpWork:
+    core = gemm(node)
+    return add_work([core, arithmetic(_activation_ops(node) * _output_elements(core))])
+
+
+def _transposed(tensor: TensorInfo | None, shape: tuple[int, ...]) -> TensorInfo | None:
+    if tensor is None or len(shape) < 2:
+        return tensor
+    return TensorInfo(tensor.name, (*shape[:-2], shape[-1], shape[-2]), tensor.dtype)
+
+
+@register("FusedMatMul", domain=MS)
+def fused_matmul(node: Node) -> OpWork:
+    """MatMul of the (transA/transB) transposed operands, times alpha when alpha != 1."""
+    if node.attr("transBatchA", 0) or node.attr("transBatchB", 0):
+        raise Unmodelled("FusedMatMul transBatchA/transBatchB are not modelled")
+    a, b = input_shape(node, 0, "A"), input_shape(node, 1, "B")
+    inputs = list(node.inputs)
+    if node.attr("transA", 0):
+        inputs[0] = _transposed(node.input(0), a)
+    if node.attr("transB", 0):
+        inputs[1] = _transposed(node.input(1), b)
+    core = matmul_work(replace(node, inputs=tuple(inputs)))
+    scaled = float(node.attr("alpha", 1.0)) != 1.0
+    return add_work([core, arithmetic(_output_elements(core) if scaled else 0)])
+
+
+def _nbits_sizes(node: Node) -> tuple[int, int, int]:
+    """(rows of A, K, N) of a MatMulNBits node, checked against its packed weight."""
+    a = input_shape(node, 0, "A")
+    k, n = int(node.attr("K", 0)), int(node.attr("N", 0))
+    bits, block = int(node.attr("bits", 4)), int(node.attr("block_size", 0))
+    if not a or a[-1] != k or k < 1 or n < 1 or block < 1 or bits < 1:
+        raise Unmodelled(f"MatMulNBits A {a} with K={k}, N={n}, block_size={block}, bits={bits}")
+    packed = input_shape(node, 1, "B")
+    blocks = -(-k // block)
+    if numel(packed) != n * blocks * (block * bits // 8):
+        raise Unmodelled(f"MatMulNBits packed weight {packed} does not hold {n} x {k} "
+                         f"{bits}-bit values in blocks of {block}")
+    return numel(a[:-1]), k, n
+
+
+@register("MatMulNBits", domain=MS)
+def matmul_nbits(node: Node) -> OpWork:
+    """Dequantize the K x N weight (per inference), then the GEMM, plus the bias add."""
+    rows, k, n = _nbits_sizes(node)
+    shape = GemmShape(m=rows, k=k, n=n, weights_are_params=node.is_param(1))
+    bias = rows * n if node.input(5) is not None else 0
+    return arithmetic(DEQUANTIZE_OPS_PER_ELEMENT * k * n + bias, macs=shape.macs, gemms=(shape,))
+
+
+# --- output shapes (onnx shape inference knows no com.microsoft op)
+
+shape_rule("FusedConv")(as_standard("Conv", (0, 1, 2)))
+shape_rule("FusedGemm")(as_standard("Gemm", (0, 1, 2)))
+
+
+_MATMUL_SHAPE = as_standard("MatMul", (0, 1))
+
+
+@shape_rule("FusedMatMul")
+def _fused_matmul_shape(facts: Facts) -> list[TypeProto | None]:
+    """MatMul's output shape on the operands as transposed by transA/transB."""
+    for position, flag in ((0, "transA"), (1, "transB")):
+        dims = facts.dims(position)
+        if facts.attr(flag, 0) and dims is not None and len(dims) >= 2:
+            swapped = [*dims[:-2], dims[-1], dims[-2]]
+            facts = facts.with_input(position, tensor_type(facts.elem(position), swapped))
+    return _MATMUL_SHAPE(facts)
+
+
+@shape_rule("MatMulNBits")
+def _matmul_nbits_shape(facts: Facts) -> list[TypeProto | None]:
+    a = facts.dims(0)
+    n = int(facts.attr("N", 0))
+    if a is None or n < 1:
+        return [None]
+    return [tensor_type(facts.elem(0), [*a[:-1], n])]
+

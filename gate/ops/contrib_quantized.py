@@ -1,0 +1,176 @@
+"""QOperator-format ops of the ``com.microsoft`` domain (what the onnx quantization tools emit).
+
+The elementwise, pooling and concat forms cost their QDQ decomposition into
+standard ops: DequantizeLinear of every quantized input (2 ops per element), the
+float op, QuantizeLinear of the output (5 ops per element), with the constants of
+``gate.ops.quantized``. Bytes come from the tensor dtypes as for every op.
+
+``QGemm`` follows the standard ``QLinearMatMul`` convention instead (integer GEMM,
+1 op per activation element for its zero point, 5 per output to requantize when an
+output scale is given, plus 1 per output for the bias input C and for alpha != 1);
+with neither C nor alpha it costs exactly a QLinearMatMul of the same operands.
+
+Input orders follow the public contrib-op documentation (ContribOperators.md):
+QLinearAdd/Mul (A, A_scale, A_zp, B, B_scale, B_zp, C_scale, C_zp), the unary and
+pool forms (X, X_scale, X_zp, Y_scale, Y_zp), QLinearConcat (Y_scale, Y_zp, then
+(X, X_scale, X_zp) per input), QGemm (A, a_scale, a_zp, B, b_scale, b_zp, C,
+y_scale, y_zp); the ``channels_last`` attribute of the pools is from memory.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+from onnx import TensorProto, TypeProto
+
+from gate.model.graph import Node, TensorInfo
+from gate.ops._common import (
+    add_work,
+    arithmetic,
+    broadcast,
+    input_shape,
+    numel,
+    output_shape,
+)
+from gate.ops.contrib_shapes import Facts, Rule, as_standard, same_as, shape_rule, tensor_type
+from gate.ops.elementwise import UNARY_OPS_PER_ELEMENT
+from gate.ops.matmul import orient_gemm
+from gate.ops.normalization import SOFTMAX_OPS_PER_ELEMENT
+from gate.ops.pooling import global_pool, windowed_pool
+from gate.ops.quantized import (
+    DEQUANTIZE_OPS_PER_ELEMENT,
+    QUANTIZE_OPS_PER_ELEMENT,
+    REQUANTIZE_OPS_PER_OUTPUT,
+)
+from gate.ops.registry import OpWork, Unmodelled, register
+
+MS = "com.microsoft"
+# The float op inside each unary QLinear* op, operations per element.
+QLINEAR_UNARY_FLOAT_OPS = {
+    "QLinearSigmoid": UNARY_OPS_PER_ELEMENT["Sigmoid"],
+    "QLinearLeakyRelu": UNARY_OPS_PER_ELEMENT["LeakyRelu"],
+    "QLinearSoftmax": SOFTMAX_OPS_PER_ELEMENT,
+}
+
+
+def _qdq(dequantized_elements: int, float_ops: int, quantized_elements: int) -> OpWork:
+    """DequantizeLinear of the inputs, the float op, QuantizeLinear of the output."""
+    return arithmetic(DEQUANTIZE_OPS_PER_ELEMENT * dequantized_elements + float_ops
+                      + QUANTIZE_OPS_PER_ELEMENT * quantized_elements)
+
+
+@register("QLinearAdd", "QLinearMul", domain=MS)
+def qlinear_binary(node: Node) -> OpWork:
+    a, b = input_shape(node, 0, "A"), input_shape(node, 3, "B")
+    outputs = numel(broadcast([a, b]))
+    return _qdq(numel(a) + numel(b), outputs, outputs)
+
+
+@register(*QLINEAR_UNARY_FLOAT_OPS, domain=MS)
+def qlinear_unary(node: Node) -> OpWork:
+    elements = numel(input_shape(node, 0, "X"))
+    return _qdq(elements, QLINEAR_UNARY_FLOAT_OPS[node.op_type] * elements, elements)
+
+
+@register("QLinearConcat", domain=MS)
+def qlinear_concat(node: Node) -> OpWork:
+    """Dequantize each input, concatenate (a copy: elements written), quantize the result."""
+    positions = range(2, len(node.inputs), 3)
+    if not positions:
+        raise Unmodelled("QLinearConcat has no inputs to concatenate")
+    elements = sum(numel(input_shape(node, p, f"input {p}")) for p in positions)
+    return add_work([_qdq(elements, 0, elements), OpWork(vector_ops=elements)])
+
+
+def _channels_first(tensor: TensorInfo, shape: tuple[int, ...]) -> TensorInfo:
+    """NHWC -> NCHW view of a tensor (``channels_last=1`` pools)."""
+    if len(shape) < 3:
+        raise Unmodelled(f"channels_last pool input {shape} needs rank >= 3")
+    return TensorInfo(tensor.name, (shape[0], shape[-1], *shape[1:-1]), tensor.dtype)
+
+
+def _float_pool(node: Node, op_type: str) -> tuple[OpWork, int, int]:
+    """The float pool on X (seen as NCHW) and the element counts of X and Y."""
+    x = input_shape(node, 0, "X")
+    y = output_shape(node)
+    x_info, y_info = node.inputs[0], node.outputs[0]
+    assert x_info is not None  # input_shape above checked it
+    if node.attr("channels_last", 0):
+        x_info, y_info = _channels_first(x_info, x), _channels_first(y_info, y)
+    pool = replace(node, op_type=op_type, inputs=(x_info,), outputs=(y_info,))
+    work = global_pool(pool) if op_type.startswith("Global") else windowed_pool(pool)
+    return work, numel(x), numel(y)
+
+
+@register("QLinearGlobalAveragePool", "QLinearAveragePool", domain=MS)
+def qlinear_pool(node: Node) -> OpWork:
+    work, inputs, outputs = _float_pool(node, node.op_type.replace("QLinear", ""))
+    return add_work([work, _qdq(inputs, 0, outputs)])
+
+
+@register("QGemm", domain=MS)
+def qgemm(node: Node) -> OpWork:
+    a, b = input_shape(node, 0, "A"), input_shape(node, 3, "B")
+    if len(a) != 2 or len(b) != 2:
+        raise Unmodelled(f"QGemm needs 2-D inputs, got {a} and {b}")
+    m, k = (a[1], a[0]) if node.attr("transA", 0) else a
+    k_b, n = (b[1], b[0]) if node.attr("transB", 0) else b
+    if k != k_b:
+        raise Unmodelled(f"QGemm inner dims differ: {a} and {b} (transA/transB applied)")
+    shape = orient_gemm(m, k, n, 1, node.is_param(0), node.is_param(3), fold_batch=True)
+    zero_point = numel(a) if node.input(2) is not None else 0
+    per_output = (REQUANTIZE_OPS_PER_OUTPUT if node.input(7) is not None else 0) + (
+        1 if node.input(6) is not None else 0) + (1 if float(node.attr("alpha", 1.0)) != 1.0 else 0)
+    return arithmetic(zero_point + per_output * m * n, macs=shape.macs, gemms=(shape,))
+
+
+# --- output shapes (onnx shape inference knows no com.microsoft op)
+
+shape_rule(*QLINEAR_UNARY_FLOAT_OPS)(same_as(0))
+
+
+@shape_rule("QLinearAdd", "QLinearMul")
+def _qlinear_binary_shape(facts: Facts) -> list[TypeProto | None]:
+    return [as_standard("Add", (0, 3))(facts)[0]]
+
+
+@shape_rule("QLinearConcat")
+def _qlinear_concat_shape(facts: Facts) -> list[TypeProto | None]:
+    positions = tuple(range(2, len(facts.inputs), 3))
+    return [as_standard("Concat", positions)(facts)[0]]
+
+
+def _pool_shape(op_type: str) -> Rule:
+    """The standard pool's output shape; ``channels_last=1`` permutes NHWC to NCHW and back."""
+    standard = as_standard(op_type, (0,))
+
+    def rule(facts: Facts) -> list[TypeProto | None]:
+        x = facts.dims(0)
+        if not facts.attr("channels_last", 0) or x is None or len(x) < 3:
+            return standard(facts)
+        nchw = facts.with_input(0, tensor_type(facts.elem(0), [x[0], x[-1], *x[1:-1]]),
+                                hidden_attr="channels_last")
+        (out,) = standard(nchw)
+        if out is None:
+            return [None]
+        dims = [d.dim_value if d.HasField("dim_value") else None
+                for d in out.tensor_type.shape.dim]
+        return [tensor_type(facts.elem(0), [dims[0], *dims[2:], dims[1]])]
+
+    return rule
+
+
+shape_rule("QLinearGlobalAveragePool")(_pool_shape("GlobalAveragePool"))
+shape_rule("QLinearAveragePool")(_pool_shape("AveragePool"))
+
+
+@shape_rule("QGemm")
+def _qgemm_shape(facts: Facts) -> list[TypeProto | None]:
+    (out,) = as_standard("Gemm", (0, 3))(facts)
+    if out is None:
+        return [None]
+    if facts.tensor(7) is None:  # no y_scale: a float output
+        out.tensor_type.elem_type = TensorProto.FLOAT
+    else:  # the y_zero_point's type (uint8 without one)
+        out.tensor_type.elem_type = facts.elem(8) if facts.tensor(8) is not None else TensorProto.UINT8
+    return [out]
