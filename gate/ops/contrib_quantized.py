@@ -6,9 +6,10 @@ float op, QuantizeLinear of the output (5 ops per element), with the constants o
 ``gate.ops.quantized``. Bytes come from the tensor dtypes as for every op.
 
 ``QGemm`` follows the standard ``QLinearMatMul`` convention instead (integer GEMM,
-1 op per activation element for its zero point, 5 per output to requantize when an
-output scale is given, plus 1 per output for the bias input C and for alpha != 1);
-with neither C nor alpha it costs exactly a QLinearMatMul of the same operands.
+the zero-point corrections that cannot be folded, 5 per output to requantize when an
+output scale is given; see ``gate.ops.quantized``), plus 1 per output for the bias
+input C and for alpha != 1; with neither it costs exactly a QLinearMatMul of the same
+operands.
 
 Input orders follow the public contrib-op documentation (ContribOperators.md):
 QLinearAdd/Mul (A, A_scale, A_zp, B, B_scale, B_zp, C_scale, C_zp), the unary and
@@ -37,10 +38,11 @@ from gate.ops.elementwise import UNARY_OPS_PER_ELEMENT
 from gate.ops.matmul import orient_gemm
 from gate.ops.normalization import SOFTMAX_OPS_PER_ELEMENT
 from gate.ops.pooling import global_pool, windowed_pool
-from gate.ops.quantized import (
+from gate.ops.quantized import (  # the QLinearMatMul convention, one owner
     DEQUANTIZE_OPS_PER_ELEMENT,
     QUANTIZE_OPS_PER_ELEMENT,
-    REQUANTIZE_OPS_PER_OUTPUT,
+    _quantized_matrix_op,
+    _zero_point_ops,
 )
 from gate.ops.registry import OpWork, Unmodelled, register
 
@@ -110,6 +112,7 @@ def qlinear_pool(node: Node) -> OpWork:
 
 @register("QGemm", domain=MS)
 def qgemm(node: Node) -> OpWork:
+    """QLinearMatMul's work on the (transA/transB) operands, plus C and alpha per output."""
     a, b = input_shape(node, 0, "A"), input_shape(node, 3, "B")
     if len(a) != 2 or len(b) != 2:
         raise Unmodelled(f"QGemm needs 2-D inputs, got {a} and {b}")
@@ -118,10 +121,12 @@ def qgemm(node: Node) -> OpWork:
     if k != k_b:
         raise Unmodelled(f"QGemm inner dims differ: {a} and {b} (transA/transB applied)")
     shape = orient_gemm(m, k, n, 1, node.is_param(0), node.is_param(3), fold_batch=True)
-    zero_point = numel(a) if node.input(2) is not None else 0
-    per_output = (REQUANTIZE_OPS_PER_OUTPUT if node.input(7) is not None else 0) + (
-        1 if node.input(6) is not None else 0) + (1 if float(node.attr("alpha", 1.0)) != 1.0 else 0)
-    return arithmetic(zero_point + per_output * m * n, macs=shape.macs, gemms=(shape,))
+    core = arithmetic(0, macs=shape.macs, gemms=(shape,))
+    quantized = _quantized_matrix_op(core, _zero_point_ops(node, 0, 3, 2, 5),
+                                     requantize=node.input(7) is not None)
+    per_output = (1 if node.input(6) is not None else 0) + (
+        1 if float(node.attr("alpha", 1.0)) != 1.0 else 0)
+    return add_work([quantized, arithmetic(per_output * m * n)])
 
 
 # --- output shapes (onnx shape inference knows no com.microsoft op)
