@@ -333,9 +333,9 @@ def test_values_that_cannot_be_known_stay_unknown(op: str, inputs: list[np.ndarr
 
 
 def test_weights_are_never_read(tmp_path: Path) -> None:
-    # A float initializer with more than one element is a weight: its values never enter
-    # the evaluation, even when a Shape-like chain could use them.
-    weight = numpy_helper.from_array(np.arange(6, dtype=np.float32), "w")
+    # A float initializer of more than 8 elements is a weight: its values never enter the
+    # evaluation, even when a Shape-like chain could use them.
+    weight = numpy_helper.from_array(np.arange(9, dtype=np.float32), "w")
     nodes = [helper.make_node("Cast", ["w"], ["wi"], to=TensorProto.INT64)]
     proto = model(nodes, [], [vi("wi", None)], [weight])
     assert "wi" not in propagate_values(proto.graph)
@@ -566,3 +566,67 @@ def test_audit_takes_shapes_from_the_config_and_the_flag_wins(vad_dir: Path) -> 
         assert result.exit_code == 0, result.output
         entry = json.loads(Path("out.json").read_text(encoding="utf-8"))["result"]["entries"][0]
         assert entry["head"]["metrics"]["macs"] == _vad_macs(samples)
+
+
+# ------------------------------------------------------------------ more export patterns, traced
+
+def upsample_neck(use_scales: bool) -> onnx.ModelProto:
+    """A detector neck: Conv, then Resize to twice the size computed from Shape(x), either
+    as ``sizes`` (Concat(Slice(Shape), Mul(Slice(Shape), 2))) or as float ``scales`` (Cast,
+    Div), concatenated with a skip branch at that size, then a Conv. H and W are unnamed."""
+    n = helper.make_node
+    nodes = [n("Conv", ["x", "w1"], ["c1"], strides=[2, 2], pads=[1, 1, 1, 1], name="down"),
+             n("Shape", ["c1"], ["s"], name="shape"),
+             n("Slice", ["s", "zero", "two"], ["nc"], name="batch_channels"),
+             n("Slice", ["s", "two", "four"], ["hw"], name="spatial"),
+             n("Mul", ["hw", "two"], ["hw2"], name="doubled")]
+    if use_scales:
+        nodes += [n("Cast", ["hw2"], ["hw2f"], to=TensorProto.FLOAT, name="hw2f"),
+                  n("Cast", ["hw"], ["hwf"], to=TensorProto.FLOAT, name="hwf"),
+                  n("Div", ["hw2f", "hwf"], ["ratio"], name="ratio"),
+                  n("Concat", ["ones_f", "ratio"], ["scales"], axis=0, name="scales"),
+                  n("Resize", ["c1", "", "scales"], ["up"], mode="nearest", name="up")]
+    else:
+        nodes += [n("Concat", ["nc", "hw2"], ["sizes"], axis=0, name="sizes"),
+                  n("Resize", ["c1", "", "", "sizes"], ["up"], mode="nearest", name="up")]
+    nodes += [n("Concat", ["up", "x"], ["cat"], axis=1, name="merge"),
+              n("Conv", ["cat", "w2"], ["y"], pads=[1, 1, 1, 1], name="fuse")]
+    inits = [_int("zero", [0]), _int("two", [2]), _int("four", [4]),
+             numpy_helper.from_array(np.ones(2, np.float32), "ones_f")]
+    inits += _weights(np.random.default_rng(6), {"w1": [8, 4, 3, 3], "w2": [16, 12, 3, 3]})
+    return model(nodes, [vi("x", [1, 4, None, None])], [vi("y", None)], inits, opset=18)
+
+
+@pytest.mark.parametrize("use_scales", [False, True])
+def test_upsample_to_a_computed_size_equals_the_execution_trace(tmp_path: Path,
+                                                                use_scales: bool) -> None:
+    proto = upsample_neck(use_scales)
+    path = save(proto, tmp_path / "neck.onnx")
+    image = np.random.default_rng(7).standard_normal((1, 4, 24, 40)).astype(np.float32)
+    _check_against_trace(path, proto, {"x": image}, {"x": (1, 4, 24, 40)})
+
+
+def token_embedding(hidden: int = 16) -> onnx.ModelProto:
+    """A text encoder's embedding: token ids of a -1 length; positions from
+    Range(0, Shape(ids)[1], 1), gathered from a position table and added; a MatMul."""
+    n = helper.make_node
+    nodes = [n("Gather", ["table", "ids"], ["tok"], name="tokens"),
+             n("Shape", ["ids"], ["s"], name="shape"),
+             n("Gather", ["s", "one_s"], ["length"], name="length"),
+             n("Range", ["zero_s", "length", "one_s"], ["pos"], name="positions"),
+             n("Unsqueeze", ["pos", "zero"], ["pos2"], name="positions2"),
+             n("Gather", ["pos_table", "pos2"], ["pe"], name="position_embedding"),
+             n("Add", ["tok", "pe"], ["emb"], name="embed"),
+             n("MatMul", ["emb", "w"], ["y"], name="project")]
+    inits = [_int("zero", [0]), _int("zero_s", 0), _int("one_s", 1)]
+    inits += _weights(np.random.default_rng(8), {"table": [50, hidden],
+                                                  "pos_table": [64, hidden],
+                                                  "w": [hidden, 24]})
+    return model(nodes, [vi("ids", [1, -1], I64)], [vi("y", None)], inits)
+
+
+def test_positions_from_range_equal_the_execution_trace(tmp_path: Path) -> None:
+    proto = token_embedding()
+    path = save(proto, tmp_path / "embed.onnx")
+    ids = np.random.default_rng(9).integers(0, 50, (1, 11)).astype(np.int64)
+    assert _check_against_trace(path, proto, {"ids": ids}, {"ids": (1, 11)}) == 11 * 16 * 24

@@ -11,8 +11,9 @@ sizes more tensors. The graph itself is unchanged: the nodes that compute the
 values are still layers, only their consumers' shapes become known.
 
 What is read: tensor shapes, integer constants of at most 64 elements stored
-inline and one-element floating constants (an ``initializer`` or ``Constant``
-node). No weight payload is ever read. Only the main graph's nodes are evaluated;
+inline and floating constants of at most 8 elements (an ``initializer`` or
+``Constant`` node: Resize scales such as ``[1, 1]``, a divisor). Nothing larger,
+so no weight payload is ever read. Only the main graph's nodes are evaluated;
 subgraphs keep what onnx infers for them.
 """
 
@@ -31,6 +32,7 @@ from gate.model.order import topological_order
 
 VALUE_LIMIT = 1024  # elements of a computed value kept (shape vectors are far smaller)
 READ_LIMIT = 64  # elements of a stored integer constant read (as gate.model.convert does)
+FLOAT_READ_LIMIT = 8  # elements of a stored floating constant read (scales, not weights)
 MAX_ROUNDS = 8  # rounds of evaluate-then-infer; each round must size something new
 
 Value = np.ndarray
@@ -67,14 +69,14 @@ Rule = Callable[[_Args], Value | None]
 # ------------------------------------------------------------------ reading constants
 
 def stored_value(tensor: TensorProto) -> Value | None:
-    """A stored tensor's value when it is a small integer or a floating scalar, else None."""
+    """A stored tensor's value when it is a small integer or floating constant, else None."""
     if tensor.data_location == TensorProto.EXTERNAL or tensor.data_type not in _NUMERIC_TYPES:
         return None
     count = 1
     for dim in tensor.dims:
         count *= int(dim)
     is_float = tensor.data_type in (TensorProto.FLOAT16, TensorProto.FLOAT, TensorProto.DOUBLE)
-    if count < 0 or count > (1 if is_float else READ_LIMIT):
+    if count < 0 or count > (FLOAT_READ_LIMIT if is_float else READ_LIMIT):
         return None
     try:
         return np.array(numpy_helper.to_array(tensor))
@@ -92,6 +94,8 @@ def _constant_node_value(node: onnx.NodeProto) -> Value | None:
             return np.array(list(attribute.ints), np.int64)
         if attribute.name == "value_float":
             return np.array(attribute.f, np.float32)
+        if attribute.name == "value_floats" and len(attribute.floats) <= FLOAT_READ_LIMIT:
+            return np.array(list(attribute.floats), np.float32)
     return None
 
 

@@ -213,8 +213,8 @@ def _origin_note(graph: Graph, has_symbolic: bool) -> str:
     remedy = ("bind the symbolic dims (--dim NAME=N) and they may be sized" if has_symbolic
               else "no --shape or --dim can size them")
     return (f"{unsized} tensor(s) stay unsized (the layers that use them are not modelled), "
-            f"starting at {where}{more}: their size depends on values known only at run "
-            f"time; {remedy}")
+            f"starting at {where}{more}: their size depends on values roofgate cannot work "
+            f"out before run time (data, or arithmetic it does not follow); {remedy}")
 
 
 def sizing_notes(graph: Graph) -> list[str]:
