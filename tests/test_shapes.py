@@ -20,6 +20,8 @@ import numpy as np
 import onnx
 import pytest
 from click.testing import CliRunner
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from loadkit import model, save, vi
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
@@ -304,6 +306,19 @@ def test_rule_matches_the_onnx_reference(case: str) -> None:
     assert np.array_equal(got, expected), (case, got, expected)
 
 
+@settings(max_examples=60, deadline=None)
+@given(st.sampled_from(["Add", "Sub", "Mul", "Div", "Mod", "Mod fmod", "Max", "Min"]),
+       st.lists(st.integers(-2**31, 2**31), min_size=1, max_size=4),
+       st.lists(st.integers(-2**31, 2**31).filter(bool), min_size=1, max_size=4))
+def test_integer_arithmetic_matches_the_onnx_reference(op: str, left: list[int],
+                                                       right: list[int]) -> None:
+    # Source: onnx.reference on random int64 operands (nonzero divisors, no overflow).
+    size = min(len(left), len(right))
+    name, attrs = (op.split()[0], {"fmod": 1}) if op.endswith("fmod") else (op, {})
+    got, expected = _rule_case(name, [_a(left[:size]), _a(right[:size])], **attrs)
+    assert got is not None and np.array_equal(got, expected), (op, got, expected)
+
+
 def test_shape_rule_reads_only_shapes() -> None:
     # Source: onnx.reference runs Shape/Size (with start and end) on a real array.
     nodes = [helper.make_node("Shape", ["x"], ["s"], start=1, end=-1),
@@ -314,18 +329,22 @@ def test_shape_rule_reads_only_shapes() -> None:
     assert np.array_equal(values["s"], s) and np.array_equal(values["n"], n)
 
 
-@pytest.mark.parametrize("op, inputs", [
-    ("Mul", [_a([2**40]), _a([2**40])]),  # beyond int64: not wrapped around, just unknown
-    ("Div", [_a([4]), _a([0])]),  # division by zero
-    ("Mod", [_a([4]), _a([0])]),
-    ("ConstantOfShape", [_a([10**6])]),  # too large to hold: never materialised
-    ("Range", [_a(0), _a(10**9), _a(1)]),
-    ("Cast", [_a(2**40)]),  # does not fit int32
-    ("Gather", [_a([1, 2]), _a([5])]),  # index out of range
-    ("Reshape", [_a([1, 2, 3]), _a([2, -1])]),  # inconsistent
+@pytest.mark.parametrize("op, inputs, attrs", [
+    ("Mul", [_a([2**40]), _a([2**40])], {}),  # beyond int64: not wrapped around, just unknown
+    ("Div", [_a([4]), _a([0])], {}),  # division by zero
+    ("Mod", [_a([4]), _a([0])], {}),
+    ("Mod", [_a([4]), _a([0])], {"fmod": 1}),
+    ("ConstantOfShape", [_a([10**6])], {}),  # too large to hold: never materialised
+    ("Range", [_a(0), _a(10**9), _a(1)], {}),
+    ("Cast", [_a(2**40)], {"to": TensorProto.INT32}),  # does not fit int32
+    ("Cast", [_a(7e4, np.float32)], {"to": TensorProto.FLOAT16}),  # beyond float16
+    ("Cast", [_a(np.inf, np.float32)], {"to": TensorProto.INT64}),
+    ("Gather", [_a([1, 2]), _a([5])], {}),  # index out of range
+    ("Reshape", [_a([1, 2, 3]), _a([2, -1])], {}),  # inconsistent
+    ("Unsqueeze", [_a(1), _a(list(range(70)))], {}),  # beyond numpy's rank limit
 ])
-def test_values_that_cannot_be_known_stay_unknown(op: str, inputs: list[np.ndarray]) -> None:
-    attrs = {"to": TensorProto.INT32} if op == "Cast" else {}
+def test_values_that_cannot_be_known_stay_unknown(op: str, inputs: list[np.ndarray],
+                                                  attrs: dict) -> None:
     names = [f"in{i}" for i in range(len(inputs))]
     inits = [numpy_helper.from_array(v, n) for n, v in zip(names, inputs)]
     proto = model([helper.make_node(op, names, ["out"], **attrs)], [], [vi("out", None)], inits)

@@ -135,10 +135,16 @@ def _vectorised(func: Callable[[int, int], int]) -> Callable[[Any, Any], Any]:
     return np.vectorize(func, otypes=[object])  # type: ignore[no-any-return]
 
 
+def _fmod(a: int, b: int) -> int:
+    """The remainder with the sign of the dividend (C's fmod); ``b == 0`` raises."""
+    remainder = abs(a) % abs(b)
+    return remainder if a >= 0 else -remainder
+
+
 def _mod(args: _Args) -> Value | None:
+    """Mod: Python's sign-of-divisor remainder, or C's fmod when ``fmod=1`` (ONNX spec)."""
     if args.attrs.get("fmod", 0):
-        return _binary(_vectorised(lambda a, b: int(np.fmod(a, b)) if b else 1 // 0),
-                       np.fmod)(args)
+        return _binary(_vectorised(_fmod), np.fmod)(args)
     return _binary(operator.mod, np.mod)(args)
 
 
@@ -237,7 +243,8 @@ def _cast(args: _Args) -> Value | None:
         return _fit(np.trunc(data).astype(object), target)
     if target.kind in "iu":
         return _fit(data.astype(object), target)
-    return data.astype(target)
+    with np.errstate(all="raise"):  # e.g. a float32 beyond float16's range
+        return data.astype(target)
 
 
 def _constant_of_shape(args: _Args) -> Value | None:
