@@ -238,7 +238,7 @@ def _rule_case(op: str, inputs: list[np.ndarray | None], **attrs: object):
     node = helper.make_node(op, names, ["out"], **attrs)
     proto = model([node], [], [vi("out", None)], inits, opset=18)
     expected = ReferenceEvaluator(proto).run(None, {})[0]
-    return propagate_values(proto.graph).get("out"), np.asarray(expected)
+    return propagate_values(proto).get("out"), np.asarray(expected)
 
 
 def _a(values: object, dtype: type = np.int64) -> np.ndarray:
@@ -325,7 +325,7 @@ def test_shape_rule_reads_only_shapes() -> None:
              helper.make_node("Size", ["x"], ["n"])]
     proto = model(nodes, [vi("x", [2, 3, 4, 5])], [vi("s", None), vi("n", None)])
     s, n = ReferenceEvaluator(proto).run(None, {"x": np.zeros((2, 3, 4, 5), np.float32)})
-    values = propagate_values(proto.graph)
+    values = propagate_values(proto)
     assert np.array_equal(values["s"], s) and np.array_equal(values["n"], n)
 
 
@@ -348,7 +348,7 @@ def test_values_that_cannot_be_known_stay_unknown(op: str, inputs: list[np.ndarr
     names = [f"in{i}" for i in range(len(inputs))]
     inits = [numpy_helper.from_array(v, n) for n, v in zip(names, inputs)]
     proto = model([helper.make_node(op, names, ["out"], **attrs)], [], [vi("out", None)], inits)
-    assert "out" not in propagate_values(proto.graph)
+    assert "out" not in propagate_values(proto)
 
 
 def test_weights_are_never_read(tmp_path: Path) -> None:
@@ -357,7 +357,7 @@ def test_weights_are_never_read(tmp_path: Path) -> None:
     weight = numpy_helper.from_array(np.arange(9, dtype=np.float32), "w")
     nodes = [helper.make_node("Cast", ["w"], ["wi"], to=TensorProto.INT64)]
     proto = model(nodes, [], [vi("wi", None)], [weight])
-    assert "wi" not in propagate_values(proto.graph)
+    assert "wi" not in propagate_values(proto)
 
 
 # ------------------------------------------------------------------ binding whole inputs

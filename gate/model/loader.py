@@ -14,7 +14,7 @@ every size comes from an initializer's dims and dtype. The steps, in order:
    path-based API into a temporary file: the input is never overwritten);
 5. where a tensor is still unsized, evaluate the shape arithmetic that computes
    Reshape targets, Pad amounts, ... from the inputs' shapes and infer again
-   (``gate.model.shape_values``);
+   (``gate.model.shape_values`` with the rules of ``gate.model.shape_rules``);
 6. convert to the immutable ``gate.model.graph`` types (``gate.model.convert``)
    and note, once per cause, what stays unsized and the flag that fixes it.
 """
