@@ -649,3 +649,43 @@ def test_positions_from_range_equal_the_execution_trace(tmp_path: Path) -> None:
     path = save(proto, tmp_path / "embed.onnx")
     ids = np.random.default_rng(9).integers(0, 50, (1, 11)).astype(np.int64)
     assert _check_against_trace(path, proto, {"ids": ids}, {"ids": (1, 11)}) == 11 * 16 * 24
+
+
+def head_split_stack(blocks: int, width: int = 32, heads: int = 4) -> onnx.ModelProto:
+    """``blocks`` blocks that split a [1, seq, width] tensor into heads with a Reshape whose
+    target uses Div (seq * width / width), a per-head MatMul, and merge back with a Reshape
+    computed the same way: each block's Shape reads the previous block's Reshape."""
+    n = helper.make_node
+    nodes, x = [], "x"
+    inits = [_int("one", [1]), _int("one_s", 1), _int("heads", [heads]), _int("minus1", [-1]),
+             _int("zero", [0]), _int("width", width), _int("width1", [width])]
+    rng = np.random.default_rng(10)
+    for i in range(blocks):
+        p = f"b{i}_"
+        nodes += [n("Shape", [x], [p + "s"], name=p + "shape"),
+                  n("Gather", [p + "s", "one_s"], [p + "seq"], name=p + "seq"),
+                  n("Mul", [p + "seq", "width"], [p + "area"], name=p + "area"),
+                  n("Div", [p + "area", "width"], [p + "seq_again"], name=p + "seq_again"),
+                  n("Unsqueeze", [p + "seq_again", "zero"], [p + "seq1"], name=p + "seq1"),
+                  n("Concat", ["one", p + "seq1", "heads", "minus1"], [p + "split_to"], axis=0,
+                    name=p + "split_to"),
+                  n("Reshape", [x, p + "split_to"], [p + "split"], name=p + "split"),
+                  n("Transpose", [p + "split"], [p + "heads"], perm=[0, 2, 1, 3],
+                    name=p + "to_heads"),
+                  n("MatMul", [p + "heads", p + "w"], [p + "mm"], name=p + "per_head"),
+                  n("Transpose", [p + "mm"], [p + "back"], perm=[0, 2, 1, 3], name=p + "back"),
+                  n("Concat", ["one", p + "seq1", "width1"], [p + "merge_to"], axis=0,
+                    name=p + "merge_to"),
+                  n("Reshape", [p + "back", p + "merge_to"], [p + "y"], name=p + "merge")]
+        inits += _weights(rng, {p + "w": [width // heads, width // heads]})
+        x = p + "y"
+    return model(nodes, [vi("x", [1, None, width])], [vi(x, None)], inits)
+
+
+def test_a_stack_of_computed_reshapes_is_sized_in_one_walk(tmp_path: Path) -> None:
+    # Twelve blocks, more than the rounds of whole-model inference roofgate allows (8): the
+    # per-node inference inside one walk must carry the sizes through all of them.
+    proto = head_split_stack(12)
+    path = save(proto, tmp_path / "stack.onnx")
+    x = np.random.default_rng(11).standard_normal((1, 10, 32)).astype(np.float32)
+    assert _check_against_trace(path, proto, {"x": x}, {"x": (1, 10, 32)}) == 12 * 10 * 32 * 8
