@@ -470,3 +470,36 @@ def test_a_conflicting_declared_shape_is_treated_as_for_a_standard_op(tmp_path):
         return loaded.warnings, [n.outputs[0].shape for n in loaded.graph.nodes]
 
     assert load(_ms("FastGelu", ["X"], ["g"])) == load(helper.make_node("Relu", ["X"], ["g"]))
+
+
+@pytest.mark.parametrize("segments,mask", [(True, True), (False, False)])
+def test_embed_layer_normalization(tmp_path, segments, mask):
+    # Inputs and outputs as in the public contrib-op documentation; without position_ids
+    # the positions are 0..S-1 (a Slice of the position table in the decomposition).
+    b, s, h = 2, 6, 16
+    inits = {"word": _w(50, h), "pos": _w(10, h), "gamma": _w(h), "beta": _w(h),
+             **({"seg": _w(2, h)} if segments else {})}
+    shapes = {"ids": (b, s), **({"seg_ids": (b, s)} if segments else {}),
+              **({"mask": (b, s)} if mask else {})}
+    dtypes = dict.fromkeys(shapes, TensorProto.INT32)
+    inputs = ["ids", "seg_ids" if segments else "", "word", "pos", "seg" if segments else "",
+              "gamma", "beta", "mask" if mask else ""]
+    fused = graph_model([_ms("EmbedLayerNormalization", inputs, ["Y", "mask_index"])], shapes,
+                        ["Y", "mask_index"], inits, contrib=True, dtypes=dtypes)
+    nodes = [int_constant("start", [0]), int_constant("end", [s]), int_constant("axis", [0]),
+             helper.make_node("Gather", ["word", "ids"], ["w"]),
+             helper.make_node("Slice", ["pos", "start", "end", "axis"], ["p"]),
+             helper.make_node("Add", ["w", "p"], ["e" if not segments else "wp"])]
+    if segments:
+        nodes += [helper.make_node("Gather", ["seg", "seg_ids"], ["sg"]),
+                  helper.make_node("Add", ["wp", "sg"], ["e"])]
+    nodes.append(helper.make_node("LayerNormalization", ["e", "gamma", "beta"], ["Y"], axis=-1))
+    if mask:
+        nodes += [int_constant("row", [1]),
+                  helper.make_node("ReduceSum", ["mask", "row"], ["mask_index"], keepdims=0)]
+    else:
+        nodes += [int_constant("batch", [b]),
+                  helper.make_node("ConstantOfShape", ["batch"], ["mask_index"],
+                                   value=helper.make_tensor("zero", TensorProto.INT32, [1], [0]))]
+    parts = graph_model(nodes, shapes, ["Y", "mask_index"], inits, dtypes=dtypes)
+    _check(tmp_path, fused, parts)

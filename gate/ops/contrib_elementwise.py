@@ -9,7 +9,10 @@ constants of ``gate.ops.elementwise`` and ``gate.ops.normalization``:
 - ``SkipLayerNormalization`` = input + skip [+ bias] then LayerNormalization(gamma,
   [beta]); ``SkipSimplifiedLayerNormalization`` = the same with RMSNormalization;
 - ``SimplifiedLayerNormalization`` = RMSNormalization (registered in the default
-  domain, where the runtime that defines it puts it, and in ``com.microsoft``).
+  domain, where the runtime that defines it puts it, and in ``com.microsoft``);
+- ``EmbedLayerNormalization`` = Gathers of the word, position (and segment) embeddings
+  (copies), their Adds, LayerNormalization, and ReduceSum of the mask per row for the
+  mask index (input and output order from the public contrib-op documentation).
 
 Optional outputs (mean, inverse std, the input+skip+bias sum) are values the
 decomposition computes anyway; writing them adds bytes, not operations.
@@ -22,12 +25,22 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from gate.model.graph import Node
-from gate.ops._common import add_work, arithmetic, elementwise_output_elements, input_shape, numel
+from onnx import TensorProto, TypeProto
+
+from gate.model.graph import Node, TensorInfo
+from gate.ops._common import (
+    add_work,
+    arithmetic,
+    elementwise_output_elements,
+    input_shape,
+    movement,
+    numel,
+)
 from gate.ops.contrib_shapes import Facts, same_as, shape_rule, tensor_type
 from gate.ops.elementwise import GELU_OPS_PER_ELEMENT, UNARY_OPS_PER_ELEMENT
 from gate.ops.normalization import layer_normalization, rms_normalization
-from gate.ops.registry import OpWork, register
+from gate.ops.reduction import REDUCE_OPS
+from gate.ops.registry import OpWork, Unmodelled, register
 
 MS = "com.microsoft"
 QUICK_GELU_OPS_PER_ELEMENT = 1 + UNARY_OPS_PER_ELEMENT["Sigmoid"] + 1  # alpha*x, sigmoid, x*s
@@ -81,6 +94,23 @@ def skip_simplified_layer_normalization(node: Node) -> OpWork:
     return add_work([_residual_adds(node, bias_pos=3), rms_normalization(norm)])
 
 
+@register("EmbedLayerNormalization", domain=MS)
+def embed_layer_normalization(node: Node) -> OpWork:
+    """(input_ids, segment_ids?, word, position, segment?, gamma, beta, mask?, position_ids?)."""
+    ids = input_shape(node, 0, "input_ids")
+    word = input_shape(node, 2, "word_embedding")
+    if len(ids) != 2 or len(word) != 2:
+        raise Unmodelled(f"EmbedLayerNormalization ids {ids} and table {word} must be 2-D")
+    tables = 3 if node.input(4) is not None and node.input(1) is not None else 2
+    elements = numel(ids) * word[1]
+    norm = replace(node, inputs=(TensorInfo("sum", (*ids, word[1]), "FLOAT"), node.input(5),
+                                 node.input(6)), attributes={})
+    mask = numel(input_shape(node, 7, "mask")) * REDUCE_OPS["ReduceSum"][0] if node.input(
+        7) is not None else 0
+    return add_work([movement(tables * elements), arithmetic((tables - 1) * elements + mask),
+                     layer_normalization(norm)])
+
+
 @register("SimplifiedLayerNormalization")
 @register("SimplifiedLayerNormalization", domain=MS)
 def simplified_layer_normalization(node: Node) -> OpWork:
@@ -92,22 +122,31 @@ def simplified_layer_normalization(node: Node) -> OpWork:
 shape_rule("Gelu", "BiasGelu", "FastGelu", "QuickGelu", "BiasAdd")(same_as(0))
 
 
-def _statistics_type(facts: Facts, axis: int) -> object:
+def _statistics_type(facts: Facts, axis: int) -> TypeProto | None:
     """Mean / inverse std outputs: the input shape with the normalised axes set to 1 (float)."""
     x = facts.dims(0)
     if x is None:
         return None
     axis %= max(len(x), 1)
-    return tensor_type(1, [*x[:axis], *([1] * (len(x) - axis))])
+    return tensor_type(TensorProto.FLOAT, [*x[:axis], *([1] * (len(x) - axis))])
 
 
 @shape_rule("SkipLayerNormalization", "SkipSimplifiedLayerNormalization")
-def _skip_norm_shape(facts: Facts) -> list:
+def _skip_norm_shape(facts: Facts) -> list[TypeProto | None]:
     stats = _statistics_type(facts, -1)
     return [facts.tensor(0), stats, stats, facts.tensor(0)]
 
 
+@shape_rule("EmbedLayerNormalization")
+def _embed_norm_shape(facts: Facts) -> list[TypeProto | None]:
+    ids, word = facts.dims(0), facts.dims(2)
+    if ids is None or word is None or len(ids) != 2 or len(word) != 2:
+        return [None]
+    output = tensor_type(facts.elem(2), [*ids, word[1]])
+    return [output, tensor_type(TensorProto.INT32, [ids[0]]), output]
+
+
 @shape_rule("SimplifiedLayerNormalization", domain="")
 @shape_rule("SimplifiedLayerNormalization")
-def _simplified_norm_shape(facts: Facts) -> list:
+def _simplified_norm_shape(facts: Facts) -> list[TypeProto | None]:
     return [facts.tensor(0), _statistics_type(facts, int(facts.attr("axis", -1)))]

@@ -35,7 +35,7 @@ from gate.ops._common import (
 )
 from gate.ops.contrib_shapes import Facts, Rule, as_standard, same_as, shape_rule, tensor_type
 from gate.ops.elementwise import UNARY_OPS_PER_ELEMENT
-from gate.ops.matmul import orient_gemm
+from gate.ops.matmul import gemm_shape
 from gate.ops.normalization import SOFTMAX_OPS_PER_ELEMENT
 from gate.ops.pooling import global_pool, windowed_pool
 from gate.ops.quantized import (  # the QLinearMatMul convention, one owner
@@ -113,20 +113,13 @@ def qlinear_pool(node: Node) -> OpWork:
 @register("QGemm", domain=MS)
 def qgemm(node: Node) -> OpWork:
     """QLinearMatMul's work on the (transA/transB) operands, plus C and alpha per output."""
-    a, b = input_shape(node, 0, "A"), input_shape(node, 3, "B")
-    if len(a) != 2 or len(b) != 2:
-        raise Unmodelled(f"QGemm needs 2-D inputs, got {a} and {b}")
-    m, k = (a[1], a[0]) if node.attr("transA", 0) else a
-    k_b, n = (b[1], b[0]) if node.attr("transB", 0) else b
-    if k != k_b:
-        raise Unmodelled(f"QGemm inner dims differ: {a} and {b} (transA/transB applied)")
-    shape = orient_gemm(m, k, n, 1, node.is_param(0), node.is_param(3), fold_batch=True)
+    shape = gemm_shape(node, a_pos=0, b_pos=3)
     core = arithmetic(0, macs=shape.macs, gemms=(shape,))
     quantized = _quantized_matrix_op(core, _zero_point_ops(node, 0, 3, 2, 5),
                                      requantize=node.input(7) is not None)
     per_output = (1 if node.input(6) is not None else 0) + (
         1 if float(node.attr("alpha", 1.0)) != 1.0 else 0)
-    return add_work([quantized, arithmetic(per_output * m * n)])
+    return add_work([quantized, arithmetic(per_output * shape.m * shape.n)])
 
 
 # --- output shapes (onnx shape inference knows no com.microsoft op)

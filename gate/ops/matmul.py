@@ -55,19 +55,24 @@ def matmul(node: Node) -> OpWork:
     return matmul_work(node)
 
 
-@register("Gemm")
-def gemm(node: Node) -> OpWork:
-    """Y = alpha * A' B' + beta * C: 1 op per output for the C add, the alpha and beta scales."""
-    a = input_shape(node, 0, "A")
-    b = input_shape(node, 1, "B")
+def gemm_shape(node: Node, a_pos: int = 0, b_pos: int = 1) -> GemmShape:
+    """The GemmShape of Gemm-semantics A' B' (transA/transB applied) of two 2-D inputs."""
+    a = input_shape(node, a_pos, "A")
+    b = input_shape(node, b_pos, "B")
     if len(a) != 2 or len(b) != 2:
-        raise Unmodelled(f"Gemm needs 2-D inputs, got {a} and {b}")
+        raise Unmodelled(f"{node.op_type} needs 2-D inputs, got {a} and {b}")
     m, k = (a[1], a[0]) if node.attr("transA", 0) else a
     k_b, n = (b[1], b[0]) if node.attr("transB", 0) else b
     if k != k_b:
-        raise Unmodelled(f"Gemm inner dims differ: {a} and {b} (transA/transB applied)")
-    shape = orient_gemm(m, k, n, 1, node.is_param(0), node.is_param(1), fold_batch=True)
-    outputs = m * n
+        raise Unmodelled(f"{node.op_type} inner dims differ: {a} and {b} (transA/transB applied)")
+    return orient_gemm(m, k, n, 1, node.is_param(a_pos), node.is_param(b_pos), fold_batch=True)
+
+
+@register("Gemm")
+def gemm(node: Node) -> OpWork:
+    """Y = alpha * A' B' + beta * C: 1 op per output for the C add, the alpha and beta scales."""
+    shape = gemm_shape(node)
+    outputs = shape.m * shape.n
     extra = outputs if float(node.attr("alpha", 1.0)) != 1.0 else 0
     if node.input(2) is not None:
         extra += outputs * (2 if float(node.attr("beta", 1.0)) != 1.0 else 1)
