@@ -36,20 +36,29 @@ _Analysed = engine.Analysed
 
 
 def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str | None,
-              workers: int, today: date | None = None) -> tuple[GateResult, str]:
-    """Gate the models changed since the merge base of ``base_ref``; (result, title line)."""
+              workers: int, today: date | None = None, staged: bool = False,
+              ) -> tuple[GateResult, str]:
+    """Gate the models changed since the merge base of ``base_ref``; (result, title line).
+
+    ``staged``: the head side is the index (what the next commit would hold), as a
+    pre-commit hook sees it, instead of the HEAD commit.
+    """
     today = today or utc_today()
+    head = gitscan.STAGED if staged else "HEAD"
     base_commit = gitscan.merge_base(base_ref, root)
-    changes = gitscan.changed_models(base_commit, root, config.is_model)
+    changes = gitscan.changed_models(base_commit, root, config.is_model, head=head)
+    head_name = "the staged files" if staged else "HEAD"
     title = (f"roofgate check: {len(changes)} model(s) changed since {base_ref} "
-             f"(merge base {base_commit[:12]})")
+             f"(merge base {base_commit[:12]})" + (" in the staged files" if staged else ""))
     if not changes:
-        note = f"No models changed between {base_ref} (merge base {base_commit[:12]}) and HEAD."
+        note = (f"No models changed between {base_ref} (merge base {base_commit[:12]}) and "
+                f"{head_name}.")
         files = sorted({resolve_file(config, p) for g in config.groups for p in g.policies})
         return GateResult("check", tuple(files), (), notes=(note,)), title
     stored = base_by_model(_read_snapshot(baseline)) if baseline else None
     with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
-        jobs, base_jobs, errors = _check_jobs(root, config, changes, base_commit, stored, tmp)
+        jobs, base_jobs, errors = _check_jobs(root, config, changes, (head, base_commit),
+                                              stored, tmp)
         analysed = engine.run_jobs([*jobs, *base_jobs], workers)
     policies = _PolicyCache(config)
     results = [_judge_change(change, analysed, stored, errors.get(change.path, []), policies,
@@ -122,15 +131,19 @@ def _group(config: ProjectConfig, change: gitscan.ModelChange) -> ModelGroup:
 
 
 def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
-                base_commit: str, stored: object, tmp: str,
+                revs: tuple[str, str], stored: object, tmp: str,
                 ) -> tuple[list[engine.Job], list[engine.Job], dict[str, list[str]]]:
-    """Write each side's blob to ``tmp`` and make its job; LFS pointers become errors."""
+    """Write each side's blob to ``tmp`` and make its job; LFS pointers become errors.
+
+    ``revs`` are the (head, base) revisions the blobs are read from.
+    """
+    head, base_commit = revs
     jobs: list[engine.Job] = []
     base_jobs: list[engine.Job] = []
     errors: dict[str, list[str]] = {}
     for k, change in enumerate(changes):
         group = _group(config, change)
-        sides = [("head", "HEAD", change.head_path, change.path, jobs)]
+        sides = [("head", head, change.head_path, change.path, jobs)]
         if stored is None:
             sides.append(("base", base_commit, change.base_path, _base_key(change.path), base_jobs))
         for side, rev, path, key, out in sides:

@@ -27,6 +27,7 @@ from typing import BinaryIO
 
 from gate.errors import InputError
 
+STAGED = ""  # as a revision: the index (what `git commit` would record), e.g. ":path"
 LFS_POINTER_PREFIX = b"version https://git-lfs"
 LFS_POINTER_MAX_BYTES = 1024  # pointer files are ~130 bytes; spec caps them at 1024
 GIT_TIMEOUT_S = 300
@@ -161,11 +162,14 @@ def changed_models(base: str, cwd: str | Path, is_model: Callable[[str], bool],
                    head: str = "HEAD") -> list[ModelChange]:
     """Models changed from commit ``base`` to ``head`` (renames followed), sorted by path.
 
+    ``head`` is a revision, or ``STAGED`` for the index (staged changes).
+
     A rename or copy counts when either side is a model; a rename that makes
     a file stop being a model counts as a deletion, the reverse as an addition.
     """
+    sides = ["--cached", base] if head == STAGED else [base, head]
     raw = git(["diff", "--name-status", "-M", "-z", "--no-ext-diff", "--no-textconv",
-               base, head, "--"], cwd, what="listing changed files")
+               *sides, "--"], cwd, what="listing changed files")
     changes = []
     for letter, old, new in parse_name_status(raw):
         change = _classify(letter, old, new, is_model)
@@ -211,8 +215,8 @@ def write_blob(rev: str, path: str, cwd: str | Path, dest: str | Path) -> bool:
     is in the local LFS store (see the module docstring).
     """
     with open(dest, "wb") as out:
-        git(["cat-file", "blob", f"{rev}:{path}"], cwd, what=f"reading {path} at {rev[:12]}",
-            stdout=out)
+        git(["cat-file", "blob", f"{rev}:{path}"], cwd,
+            what=f"reading {path} at {rev[:12] or 'the index'}", stdout=out)
     if not _is_pointer_file(dest):
         return True
     if filter_at(rev, path, cwd) != "lfs" or not _lfs_object_present(dest, cwd):
@@ -229,10 +233,12 @@ def filter_at(rev: str, path: str, cwd: str | Path) -> str | None:
     temporary index and ``git check-attr --cached`` asks that index.
     """
     with tempfile.TemporaryDirectory(prefix="roofgate-attr-") as tmp:
-        env = {"GIT_INDEX_FILE": str(Path(tmp) / "index")}
-        git(["read-tree", rev], cwd, what=f"reading the tree of {rev[:12]}", env=env)
+        env: dict[str, str] = {}
+        if rev != STAGED:  # the staged side asks the real index
+            env["GIT_INDEX_FILE"] = str(Path(tmp) / "index")
+            git(["read-tree", rev], cwd, what=f"reading the tree of {rev[:12]}", env=env)
         out = git(["check-attr", "--cached", "-z", "filter", "--", path], cwd,
-                  what=f"reading the attributes of {path} at {rev[:12]}", env=env)
+                  what=f"reading the attributes of {path} at {rev[:12] or 'the index'}", env=env)
     fields = out.split(b"\0")
     value = fields[2].decode("utf-8", "replace") if len(fields) > 2 else "unspecified"
     return None if value in ("unspecified", "unset", "set") else value
@@ -284,7 +290,7 @@ def is_lfs_pointer(data: bytes) -> bool:
 
 def lfs_error_message(path: str, side: str, rev: str | None = None) -> str:
     """One actionable line for a model that is still a Git LFS pointer."""
-    commit = rev if rev and rev != "HEAD" else None
+    commit = rev if rev not in (None, STAGED, "HEAD") else None
     if side == "base" or commit:
         fetch = f"git lfs fetch origin {commit or '<base commit>'}"
     else:

@@ -69,9 +69,11 @@ def _config_options(func: Any) -> Any:
 @click.command("check", short_help="Gate the models a branch changed (both sides from git).")
 @click.option("--base", "base_ref", required=True, metavar="REF",
               help="Branch or commit the pull request targets (e.g. origin/main).")
+@click.option("--staged", is_flag=True,
+              help="Judge the staged models (the index) instead of HEAD: the pre-commit hook.")
 @_config_options
 @report_options
-def check_command(base_ref: str, **kwargs: Any) -> None:
+def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
     """Gate the ONNX models changed between the merge base of REF and HEAD.
 
     Both sides are read from git (renames followed; Git LFS files smudged), so
@@ -87,7 +89,7 @@ def check_command(base_ref: str, **kwargs: Any) -> None:
     paths, rules = chosen_reports(kwargs, config), output_rules(kwargs, config, root)
     start_reports(paths, rules)
     result, title = run_check(root, config, base_ref, baseline=kwargs["baseline"],
-                              workers=default_workers(kwargs["jobs"]))
+                              workers=default_workers(kwargs["jobs"]), staged=staged)
     finish(result, paths, title, rules=rules)
 
 
