@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # Install a built roofgate wheel into a fresh venv and run it from outside the source tree,
 # proving that everything it needs (code, built-in targets and policies) ships in the wheel:
-# `roofgate demo`, then `roofgate check -p default` on the demo's repository.
+# `roofgate demo`, `roofgate check -p default` on the demo's repository, `roofgate init`.
 #
 # Usage: wheel-smoke.sh WHEEL
 # Extra arguments for `python -m venv` and `pip install` come from ROOFGATE_SMOKE_VENV_ARGS and
@@ -39,4 +39,19 @@ if [ "$code" -ne 1 ] || ! grep -q 'params-fit-buffer' smoke/junit.xml; then
   echo "expected exit 1 with a params-fit-buffer failure from -p default, got exit $code" >&2
   exit 1
 fi
-echo "wheel smoke test passed: roofgate demo and check -p default ran from $where"
+
+# `roofgate init --workflows` in a fresh repository: the policy and workflow templates ship too.
+mkdir "$work/fresh"
+cp -R models "$work/fresh/models"
+cd "$work/fresh"
+git init -q -b main
+set +e
+roofgate init --workflows --dim seq=64 > init.log 2>&1
+code=$?
+set -e
+# The demo's branch widened a layer past the buffer: the first run fails it (exit 1) on purpose.
+[ "$code" -le 1 ] || { cat init.log; echo "roofgate init exited $code" >&2; exit 1; }
+for file in roofgate.yaml policies/roofgate.yaml .github/workflows/roofgate-pr.yml; do
+  [ -s "$file" ] || { echo "roofgate init wrote no $file" >&2; exit 1; }
+done
+echo "wheel smoke test passed: roofgate demo, check -p default and init ran from $where"

@@ -21,6 +21,7 @@ _COMMAND_MODULES = (
     "gate.cli.targets_cmd",
     "gate.cli.files_cmd",
     "gate.cli.ci_cmd",
+    "gate.cli.init_cmd",
 )
 
 # ``--help`` lists commands in the order of the workflow, not alphabetically: the CI
