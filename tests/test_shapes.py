@@ -178,6 +178,57 @@ def _check_against_trace(path: Path, proto: onnx.ModelProto, feeds: dict[str, np
     return expected
 
 
+def vad_with_deployed_weights(hidden: int = 8) -> onnx.ModelProto:
+    """``vad_front_end`` as exporters also write it: LSTM W and R behind Unsqueeze of 2-D
+    initializers, and the decoder under an If on a sample-rate constant (Equal of an
+    initializer and a Constant node): a MatMul at 16 kHz, a two-layer head otherwise."""
+    proto = vad_front_end(hidden=hidden)
+    graph = proto.graph
+    n = helper.make_node
+    for name in ("W", "R"):
+        stored = next(t for t in graph.initializer if t.name == name)
+        stored.name, stored.dims[:] = f"{name}_2d", list(stored.dims)[1:]
+        graph.node.insert(0, n("Unsqueeze", [f"{name}_2d", "zero"], [name], name=f"{name}_3d"))
+    decoder = [node for node in graph.node if node.name in ("decoder", "speech_prob")]
+    for node in decoder:
+        graph.node.remove(node)
+    then_branch = helper.make_graph(decoder, "at_16k", [], [vi("prob", None)])
+    else_branch = helper.make_graph(
+        [n("MatMul", ["h", "dec8k_1"], ["d1"], name="dec8k_1"),
+         n("Relu", ["d1"], ["d1r"], name="dec8k_relu"),
+         n("MatMul", ["d1r", "dec8k_2"], ["d2"], name="dec8k_2"),
+         n("Sigmoid", ["d2"], ["prob8k"], name="dec8k_prob")], "at_8k", [], [vi("prob8k", None)])
+    graph.node.extend([
+        n("Constant", [], ["sr16k"], value=helper.make_tensor("v", I64, [], [16000]),
+          name="sr16k"),
+        n("Equal", ["sample_rate", "sr16k"], ["is16k"], name="is16k"),
+        n("If", ["is16k"], ["prob"], then_branch=then_branch, else_branch=else_branch,
+          name="decoder_by_rate")])
+    graph.initializer.extend([_int("sample_rate", 16000), *_weights(
+        np.random.default_rng(12), {"dec8k_1": [hidden, 64], "dec8k_2": [64, 1]})])
+    return proto
+
+
+def test_vad_with_unsqueezed_weights_and_a_decoder_under_if(tmp_path: Path) -> None:
+    # The If's condition folds (16 kHz): only the MatMul of the taken branch counts, as in
+    # the execution trace, where onnx.reference runs that branch alone.
+    hidden = 8
+    proto = vad_with_deployed_weights(hidden)
+    path = save(proto, tmp_path / "vad_if.onnx")
+    audio = np.random.default_rng(13).standard_normal((1, 1000)).astype(np.float32)
+    loaded = load_model(path, shapes={"audio": (1, 1000)})
+    profile = profile_model(loaded)
+    real = _trace(proto, {"audio": audio})
+    assert profile.coverage.nodes_modelled == profile.coverage.nodes_total
+    decoder = next(layer for layer in profile.layers if layer.name == "decoder_by_rate")
+    assert decoder.macs == int(np.prod(real["prob"])) * hidden  # the 16 kHz MatMul only
+    expected = sum(_traced_macs(node, real) for node in proto.graph.node) + decoder.macs
+    lstm = next(layer for layer in profile.layers if layer.name == "lstm")
+    assert lstm.macs == _traced_macs(next(n for n in proto.graph.node if n.name == "lstm"), real)
+    assert lstm.param_bytes > 0  # its weights behind Unsqueeze are still its parameters
+    assert profile.total_macs == expected
+
+
 @pytest.mark.parametrize("length_dim", [-1, None, "samples"])
 @pytest.mark.parametrize("samples", [1000, 1024, 333])
 def test_vad_front_end_macs_equal_the_execution_trace(tmp_path: Path, length_dim: object,
