@@ -344,6 +344,10 @@ RULE_CASES = {
     "ReduceSum keepdims": ("ReduceSum", [_a([[1, 2], [3, 4]]), _a([1])], {}),
     "ReduceMax all": ("ReduceMax", [_a([[1, 7], [3, 4]])], {"keepdims": 0}),
     "Identity": ("Identity", [_a([1, 2])], {}),
+    "Sign": ("Sign", [_a([3, -2, 0])], {}),
+    "Xor": ("Xor", [_a([True, True], bool), _a([True, False], bool)], {}),
+    "Flatten": ("Flatten", [_a([[[1, 2], [3, 4]]])], {"axis": 2}),
+    "Tile": ("Tile", [_a([[1, 2]]), _a([2, 3])], {}),
 }
 
 

@@ -8,9 +8,9 @@ deploying runtime computes such nodes once, offline: they are *folded*, not
 layers of the deployed model, and roofgate costs them nothing. Folding works
 from shapes and element counts only; no weight payload is read. Small integer
 and boolean tensors (shapes, axes, conditions) are the one exception, as in
-the loader: their values are computed with the ONNX reference implementation
-(``onnx.reference``), so an If whose condition is computed from constants
-takes its branch.
+the loader: their values are computed by the shape-value rules
+(``gate.model.shape_rules``), so an If whose condition is computed from
+constants takes its branch.
 
 Every constant knows how it is *stored* (``ParamSource``): views, slices,
 concatenations and narrowing conversions (Cast, QuantizeLinear,
@@ -36,6 +36,7 @@ import onnx
 from onnx import TensorProto, helper
 
 from gate.model.graph import ParamSource, TensorInfo, stored_as_itself
+from gate.model.shape_rules import evaluate_node
 
 CONST_VALUE_LIMIT = 64
 METADATA_DTYPES = frozenset({"INT64", "BOOL"})
@@ -166,29 +167,24 @@ def small_values(proto: onnx.NodeProto, inputs: Sequence[TensorInfo | None],
     """Values of the small integer outputs of a folding node whose inputs are known.
 
     Shape and Size of a constant come from its dims; the ops in ``_VALUE_OPS`` are
-    run by the ONNX reference implementation on the small inputs. Anything else, or
-    any failure, leaves the outputs unknown (never guessed).
+    evaluated by the shape-value rules (``gate.model.shape_rules``, each checked
+    against the ONNX reference implementation). Anything else, or any failure,
+    leaves the outputs unknown (never guessed). ``opset`` is kept for callers; the
+    rules read both the attribute and the input forms of older and newer opsets.
     """
-    if proto.op_type in ("Shape", "Size"):
-        return _shape_values(proto, inputs)
-    if proto.op_type not in _VALUE_OPS or not outputs:
+    if proto.op_type not in _VALUE_OPS | {"Shape", "Size"} or len(outputs) != 1:
         return {}
-    if any(o.dtype not in _VALUE_DTYPES for o in outputs if o.name):
+    if not outputs[0].name or outputs[0].dtype not in _VALUE_DTYPES:
         return {}
-    feeds = _feeds(proto, inputs, values)
+    feeds = _feeds(proto, inputs, values) if proto.op_type not in ("Shape", "Size") else {}
     if feeds is None:
         return {}
-    try:
-        from onnx.reference import ReferenceEvaluator
-        results = ReferenceEvaluator(proto, opsets={"": opset}).run(None, feeds)
-    except Exception:  # noqa: BLE001  (the reference refuses what it cannot run: unknown)
+    shapes = {t.name: tuple(int(d) for d in t.shape) for t in inputs  # type: ignore[union-attr]
+              if t is not None and t.is_static}
+    result = evaluate_node(proto, feeds, shapes.get)
+    if result is None or result.dtype.kind not in "iub" or result.size > CONST_VALUE_LIMIT:
         return {}
-    known = {}
-    for info, result in zip(outputs, results):
-        array = np.asarray(result)
-        if info.name and array.dtype.kind in "iub" and array.size <= CONST_VALUE_LIMIT:
-            known[info.name] = tuple(int(v) for v in array.reshape(-1).tolist())
-    return known
+    return {outputs[0].name: tuple(int(v) for v in result.reshape(-1).tolist())}
 
 
 def _feeds(proto: onnx.NodeProto, inputs: Sequence[TensorInfo | None],
@@ -205,15 +201,3 @@ def _feeds(proto: onnx.NodeProto, inputs: Sequence[TensorInfo | None],
         except (ValueError, OverflowError):
             return None
     return feeds
-
-
-def _shape_values(proto: onnx.NodeProto, inputs: Sequence[TensorInfo | None]) -> dict[str, tuple[int, ...]]:
-    tensor = inputs[0] if inputs else None
-    if tensor is None or not tensor.is_static or not proto.output:
-        return {}
-    dims = tuple(int(d) for d in tensor.shape)  # type: ignore[union-attr]
-    if proto.op_type == "Size":
-        return {proto.output[0]: (int(np.prod(dims, dtype=np.int64)),)}
-    attrs = {a.name: a.i for a in proto.attribute}
-    start, end = attrs.get("start", 0), attrs.get("end", len(dims))
-    return {proto.output[0]: dims[slice(start, end)]}

@@ -288,6 +288,24 @@ def _expand(args: RuleArgs) -> Value | None:
     return np.broadcast_to(data, target).copy()
 
 
+def _flatten(args: RuleArgs) -> Value | None:
+    data = args.value(0)
+    if data is None:
+        return None
+    axis = int(args.attrs.get("axis", 1))
+    axis = axis + data.ndim if axis < 0 else axis
+    return data.reshape(int(np.prod(data.shape[:axis])), -1) if data.size else None
+
+
+def _tile(args: RuleArgs) -> Value | None:
+    data, repeats = args.value(0), args.int_list(1, "")
+    if data is None or repeats is None or len(repeats) != data.ndim or min(repeats, default=0) < 0:
+        return None
+    if data.size * int(np.prod(repeats)) > VALUE_LIMIT:
+        return None
+    return np.tile(data, repeats)
+
+
 def _where(args: RuleArgs) -> Value | None:
     cond, x, y = args.value(0), args.value(1), args.value(2)
     if cond is None or x is None or y is None or x.dtype != y.dtype:
@@ -330,7 +348,8 @@ RULES: Mapping[str, Rule] = {
     "Mul": _binary(operator.mul, np.multiply),
     "Div": _binary(_vectorised(_trunc_div), np.divide), "Mod": _mod,
     "Max": _variadic(np.maximum), "Min": _variadic(np.minimum),
-    "Neg": _unary(operator.neg), "Abs": _unary(np.abs),
+    "Neg": _unary(operator.neg), "Abs": _unary(np.abs), "Sign": _unary(np.sign),
+    "Flatten": _flatten, "Tile": _tile, "Xor": lambda a: _logical(np.logical_xor, a),
     "Floor": _unary(np.floor, floats_only=True), "Ceil": _unary(np.ceil, floats_only=True),
     "Round": _unary(np.round, floats_only=True),
     "Equal": _compare(operator.eq), "Less": _compare(operator.lt),
@@ -346,3 +365,34 @@ def _logical(func: Callable[..., Any], args: RuleArgs) -> Value | None:
     if not args.values or any(v is None or v.dtype.kind != "b" for v in args.values):
         return None
     return np.asarray(func(*args.values), dtype=bool)
+
+
+# ------------------------------------------------------------------ one node
+
+def _plain_attributes(node: onnx.NodeProto) -> dict[str, Any]:
+    return {a.name: helper.get_attribute_value(a) for a in node.attribute
+            if a.type not in (AttributeProto.GRAPH, AttributeProto.GRAPHS)}
+
+
+def evaluate_node(node: onnx.NodeProto, values: Mapping[str, Value],
+                  shape_of: Callable[[str], tuple[int, ...] | None]) -> Value | None:
+    """The value of the node's first output from its inputs' known ``values`` (and, for
+    Shape and Size, ``shape_of`` its input), or None when no rule gives it exactly."""
+    if node.op_type == "Constant":
+        return constant_node_value(node)
+    rule = RULES.get(node.op_type)
+    if rule is None or node.domain not in ("", "ai.onnx"):
+        return None
+    reads_shapes = node.op_type in SHAPE_READERS
+    if not reads_shapes and not any(n in values for n in node.input):
+        return None  # every other rule needs a known input value
+    shapes = tuple(shape_of(n) if n else None for n in node.input) if reads_shapes else ()
+    args = RuleArgs(tuple(values.get(n) if n else None for n in node.input), shapes,
+                    _plain_attributes(node))
+    try:
+        result = rule(args)
+    except (ValueError, TypeError, IndexError, ArithmeticError, FloatingPointError):
+        return None  # inconsistent or unsupported inputs: simply not known statically
+    if result is None or result.size > VALUE_LIMIT or result.dtype.kind not in "iubf":
+        return None
+    return result

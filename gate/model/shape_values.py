@@ -19,21 +19,12 @@ Only the main graph's nodes are evaluated; subgraphs keep what onnx infers.
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from typing import Any
 
 import onnx
 from onnx import AttributeProto, helper, numpy_helper
 
 from gate.model.order import topological_order
-from gate.model.shape_rules import (
-    RULES,
-    SHAPE_READERS,
-    VALUE_LIMIT,
-    RuleArgs,
-    Value,
-    constant_node_value,
-    stored_value,
-)
+from gate.model.shape_rules import Value, evaluate_node, stored_value
 
 MAX_ROUNDS = 8  # walks of evaluate-then-infer; each must size something new
 
@@ -98,32 +89,9 @@ def _stored_values(graph: onnx.GraphProto) -> dict[str, Value]:
     return values
 
 
-def _plain_attributes(node: onnx.NodeProto) -> dict[str, Any]:
-    return {a.name: helper.get_attribute_value(a) for a in node.attribute
-            if a.type not in (AttributeProto.GRAPH, AttributeProto.GRAPHS)}
-
-
 def _evaluate(node: onnx.NodeProto, values: Mapping[str, Value], types: Types) -> Value | None:
     """The value of the node's first output, or None when a rule cannot give it."""
-    if node.op_type == "Constant":
-        return constant_node_value(node)
-    rule = RULES.get(node.op_type)
-    if rule is None or node.domain not in ("", "ai.onnx"):
-        return None
-    reads_shapes = node.op_type in SHAPE_READERS
-    if not reads_shapes and not any(n in values for n in node.input):
-        return None  # every other rule needs a known input value
-    shapes = tuple(_static_shape(types.get(n)) if n else None
-                   for n in node.input) if reads_shapes else ()
-    args = RuleArgs(tuple(values.get(n) if n else None for n in node.input), shapes,
-                    _plain_attributes(node))
-    try:
-        result = rule(args)
-    except (ValueError, TypeError, IndexError, ArithmeticError, FloatingPointError):
-        return None  # inconsistent or unsupported inputs: simply not known statically
-    if result is None or result.size > VALUE_LIMIT or result.dtype.kind not in "iubf":
-        return None
-    return result
+    return evaluate_node(node, values, lambda name: _static_shape(types.get(name)))
 
 
 class _Walk:
