@@ -276,3 +276,17 @@ def test_profile_no_fusion_flag_gives_layer_by_layer_figures(tmp_path: Path) -> 
     rows = list(csv.DictReader(io.StringIO(
         runner.invoke(cli, ["profile", path, "-t", WS, "--format", "csv"]).stdout)))
     assert rows[3]["fused_ops"] == "BatchNormalization;Add;Relu" and rows[6]["fused_into"] == "conv2"
+
+
+def test_html_and_markdown_name_the_fused_group(tmp_path: Path) -> None:
+    from gate.report.html_tables import layer_table
+    from gate.report.markdown import render
+    from tests.recordkit import entry, result
+
+    target = load_target(WS)
+    head = analyse(str(save(residual_block(), tmp_path / "h.onnx")), [target])[0]
+    assert "(conv2+BatchNormalization+Add+Relu)" in layer_table(entry(head))
+    assert "(in conv2)" in layer_table(entry(head))
+    base = analyse(str(save(residual_block(), tmp_path / "b.onnx")), [target], fusion=False)[0]
+    text = render(result(entry(head, base)))
+    assert "Conv (conv2+BatchNormalization+Add+Relu)" in text  # its latency changed with fusion
