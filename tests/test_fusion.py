@@ -273,6 +273,9 @@ def test_profile_no_fusion_flag_gives_layer_by_layer_figures(tmp_path: Path) -> 
     table = runner.invoke(cli, ["profile", path, "-t", WS])
     bounds = [line.split()[-2] for line in table.stdout.splitlines() if len(line.split()) > 2]
     assert bounds.count("fused") == 5 and "compute+" in bounds
+    assert ("fused: 5 layers run inside 2 groups as the target declares (--no-fusion: layer by "
+            "layer): conv1+BatchNormalization+Relu, conv2+BatchNormalization+Add+Relu"
+            ) in table.stdout
     rows = list(csv.DictReader(io.StringIO(
         runner.invoke(cli, ["profile", path, "-t", WS, "--format", "csv"]).stdout)))
     assert rows[3]["fused_ops"] == "BatchNormalization;Add;Relu" and rows[6]["fused_into"] == "conv2"

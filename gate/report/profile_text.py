@@ -352,9 +352,11 @@ def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile)
                   f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}")]
     fused = sum(1 for layer in cost.layers if layer.fused_into)
     if fused:
-        groups = sum(1 for layer in cost.layers if layer.fused_ops)
-        lines.append(f"  fused: {fused} layers run inside {groups} groups as the target declares "
-                     f"(--no-fusion: layer by layer)")
+        heads = [layer for layer in cost.layers if layer.fused_ops]
+        shown = ", ".join(clean("+".join((head.name, *head.fused_ops)), 80) for head in heads[:3])
+        more = f", ... ({len(heads) - 3} more in --format json)" if len(heads) > 3 else ""
+        lines.append(f"  fused: {fused} layers run inside {len(heads)} groups as the target "
+                     f"declares (--no-fusion: layer by layer): {shown}{more}")
     if cov.nodes_modelled < cov.nodes_total:
         lines.append(f"  lower bounds: only {cov.nodes_modelled}/{cov.nodes_total} layers "
                      f"({cov.work_share:.1%} of the work) are modelled")
