@@ -1,6 +1,6 @@
 """roofgate benchmarks: each figure next to its floor, as a ratio measured in the same run.
 
-Run:  python bench/run.py            (full: about 3 minutes on 2 cores)
+Run:  python bench/run.py            (full: about 6 minutes on 2 cores)
       python bench/run.py --quick    (smaller inputs, fewer repeats, for a smoke check)
 
 Every measurement runs in a fresh Python process (``--worker``) so peak memory
