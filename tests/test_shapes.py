@@ -14,6 +14,7 @@ External checks:
 from __future__ import annotations
 
 import json
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -744,3 +745,26 @@ def test_a_stack_of_computed_reshapes_is_sized_in_one_walk(tmp_path: Path) -> No
     path = save(proto, tmp_path / "stack.onnx")
     x = np.random.default_rng(11).standard_normal((1, 10, 32)).astype(np.float32)
     assert _check_against_trace(path, proto, {"x": x}, {"x": (1, 10, 32)}) == 12 * 10 * 32 * 8
+
+
+@settings(max_examples=15, deadline=None)
+@given(st.sampled_from([32, 64]), st.sampled_from([8, 16, 32]), st.integers(80, 2000))
+def test_vad_front_end_any_length_equals_the_execution_trace(frame: int, hop: int,
+                                                             samples: int) -> None:
+    # Source: onnx.reference execution traces over random lengths, hops and frame sizes.
+    proto = vad_front_end(-1, frame=frame, hop=hop)
+    audio = np.random.default_rng(samples).standard_normal((1, samples)).astype(np.float32)
+    with tempfile.TemporaryDirectory() as folder:
+        path = save(proto, Path(folder) / "vad.onnx")
+        _check_against_trace(path, proto, {"audio": audio}, {"audio": (1, samples)})
+
+
+@settings(max_examples=15, deadline=None)
+@given(st.integers(4, 300), st.booleans())
+def test_text_recogniser_any_width_equals_the_execution_trace(width: int, divide: bool) -> None:
+    # Source: onnx.reference execution traces over random image widths (odd ones included).
+    proto = text_recogniser(None, divide)
+    image = np.random.default_rng(width).standard_normal((1, 1, 32, width)).astype(np.float32)
+    with tempfile.TemporaryDirectory() as folder:
+        path = save(proto, Path(folder) / "ocr.onnx")
+        _check_against_trace(path, proto, {"img": image}, {"img": (1, 1, 32, width)})
