@@ -17,20 +17,25 @@ from collections.abc import Mapping, Sequence
 from dataclasses import replace
 from datetime import date
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 from gate import gitscan
 from gate import jobs as engine
-from gate.config import ModelGroup, ProjectConfig, resolve_file, resolve_target
+from gate.config import ModelGroup, ProjectConfig, resolve_file
 from gate.errors import InputError
-from gate.globs import normalize_path as normalize_model_path
-from gate.judge import base_by_model, combine_results, judge, utc_today, with_notes
+from gate.gating import (
+    PolicyCache,
+    check_scopes,
+    make_job,
+    on_head_targets,
+    read_snapshot_runs,
+    refuse_unjudged_groups,
+    refuse_unjudged_pairs,
+)
+from gate.judge import base_by_model, combine_results, judge, utc_today
 from gate.records import RunRecord
-from gate.result import GateResult, ModelError
+from gate.result import GateResult, ModelError, UngatedModel
+from gate.selection import check_globs, files_under, is_onnx, model_files, ungated_model
 from gate.shards import shard_share
-
-if TYPE_CHECKING:  # loaded lazily at run time (only when a group names policies)
-    from gate.policy.spec import Policy
 
 _Analysed = engine.Analysed
 
@@ -46,29 +51,65 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
     today = today or utc_today()
     head = gitscan.STAGED if staged else "HEAD"
     base_commit = gitscan.merge_base(base_ref, root)
+    files = gitscan.tracked_files(root, head)
+    check_globs(config, files)
     changes = gitscan.changed_models(base_commit, root, config.is_model, head=head)
-    head_name = "the staged files" if staged else "HEAD"
-    title = (f"roofgate check: {len(changes)} model(s) changed since {base_ref} "
-             f"(merge base {base_commit[:12]})" + (" in the staged files" if staged else ""))
+    ungated = _ungated_changes(config, base_commit, root, head)
+    policies = PolicyCache(config)
+    groups = [(change.path, _group(config, change)) for change in changes]
+    refuse_unjudged_groups(groups)
+    check_scopes(config, policies, [g for _, g in groups], model_files(config, files))
+    refuse_unjudged_pairs(config, policies, [(change.path, group) for change, (_, group)
+                                             in zip(changes, groups) if change.head_path])
     if not changes:
+        files_read = sorted({resolve_file(config, p) for g in config.groups for p in g.policies})
+        head_name = "the staged files" if staged else "HEAD"
         note = (f"No models changed between {base_ref} (merge base {base_commit[:12]}) and "
                 f"{head_name}.")
-        files = sorted({resolve_file(config, p) for g in config.groups for p in g.policies})
-        return GateResult("check", tuple(files), (), notes=(note,)), title
-    stored = base_by_model(_read_snapshot(baseline)) if baseline else None
+        result = GateResult("check", tuple(files_read), (), notes=() if ungated else (note,),
+                            ungated=tuple(ungated))
+    else:
+        result = _check_changes(root, config, changes, (head, base_commit), baseline, workers,
+                                policies, today)
+        result = replace(result, ungated=tuple(ungated))
+    return result, _check_title(result, base_ref, base_commit, staged)
+
+
+def _check_changes(root: Path, config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
+                   revs: tuple[str, str], baseline: str | None, workers: int,
+                   policies: PolicyCache, today: date) -> GateResult:
+    stored = base_by_model(read_snapshot_runs(baseline)) if baseline else None
     with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
-        jobs, base_jobs, errors = _check_jobs(root, config, changes, (head, base_commit),
-                                              stored, tmp)
+        jobs, base_jobs, errors = _check_jobs(root, config, changes, revs, stored, tmp)
         analysed = engine.run_jobs([*jobs, *base_jobs], workers)
-    policies = _PolicyCache(config)
     results = [_judge_change(change, analysed, stored, errors.get(change.path, []), policies,
                              today) for change in changes]
-    return combine_results(results, "check"), title
+    return combine_results(results, "check")
+
+
+def _ungated_changes(config: ProjectConfig, base_commit: str, root: Path,
+                     head: str) -> list[UngatedModel]:
+    """Changed .onnx files no model group covers (an LFS pointer is named .onnx too)."""
+    changes = gitscan.changed_models(
+        base_commit, root, lambda p: is_onnx(p) and not config.is_model(p), head=head)
+    return [ungated_model(config, c.path, deleted=c.head_path is None) for c in changes]
+
+
+def _check_title(result: GateResult, base_ref: str, base_commit: str, staged: bool) -> str:
+    """The first line: how many .onnx files changed, and how many were gated, not, skipped."""
+    counts = result.model_counts
+    where = " in the staged files" if staged else ""
+    if not counts["seen"]:
+        return (f"roofgate check: no models changed since {base_ref} (merge base "
+                f"{base_commit[:12]}){where}")
+    return (f"roofgate check: {counts['seen']} changed model(s) since {base_ref} (merge base "
+            f"{base_commit[:12]}){where}: {counts['gated']} gated, {counts['not_gated']} not "
+            f"gated, {counts['skipped']} skipped")
 
 
 def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
                   stored: Mapping[str, list[RunRecord]] | None,
-                  lfs_errors: list[str], policies: _PolicyCache, today: date) -> GateResult:
+                  lfs_errors: list[str], policies: PolicyCache, today: date) -> GateResult:
     """Judge one changed model.
 
     The head side is what the gate judges: a head that cannot be analysed (or
@@ -95,26 +136,8 @@ def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
     if errors:
         base_runs = []
     group = _group(policies.config, change)
-    return judge(head_runs, base_runs, policies.get(group), command="check",
-                              today=today, errors=errors, notes=[*notes, *unjudged_notes(group)])
-
-
-class _PolicyCache:
-    """Policies per model group, each file set loaded once per run."""
-
-    def __init__(self, config: ProjectConfig) -> None:
-        self.config = config
-        self._loaded: dict[tuple[str, ...], list[Policy]] = {}
-
-    def get(self, group: ModelGroup) -> list[Policy]:
-        if group.policies not in self._loaded:
-            self._loaded[group.policies] = _policies(self.config, group)
-        return self._loaded[group.policies]
-
-    def all(self) -> list[Policy]:
-        """Every policy loaded so far, each once."""
-        unique = {p.path: p for loaded in self._loaded.values() for p in loaded}
-        return list(unique.values())
+    return judge(head_runs, base_runs, policies.get(group), command="check", today=today,
+                 errors=errors, notes=notes)
 
 
 def _base_key(model: str) -> str:
@@ -160,34 +183,18 @@ def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.Mod
                 errors.setdefault(change.path, []).append(
                     engine.error_text(gitscan.lfs_error_message(path, side, rev), path))
                 continue
-            out.append(replace(_job(config, group, change.path, file), key=key))
+            out.append(replace(make_job(config, group, change.path, file), key=key))
     return jobs, base_jobs, errors
-
-
-def _job(config: ProjectConfig, group: ModelGroup, model: str, file: str) -> engine.Job:
-    return engine.Job(model=model, file=file,
-                      targets=tuple(resolve_target(config, t) for t in group.targets),
-                      dims=tuple(sorted(group.dims.items())), precision=group.precision,
-                      shapes=tuple(sorted(group.shapes.items())))
-
-
-def _policies(config: ProjectConfig, group: ModelGroup) -> list[Policy]:
-    from gate.policy.load import load_policies
-
-    return list(load_policies(resolve_file(config, p) for p in group.policies))
-
-
-def _read_snapshot(path: str) -> list[RunRecord]:
-    from gate.snapshot import read_snapshot
-
-    return list(read_snapshot(path))
 
 
 # --- audit ---------------------------------------------------------------------------
 
-def find_models(root: Path, config: ProjectConfig, paths: Sequence[str]) -> list[str]:
-    """Model files under ``paths`` (default: ``root``) that the config covers, sorted."""
-    found = set()
+def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
+                ) -> tuple[list[str], list[UngatedModel]]:
+    """Model files under ``paths`` (default: ``root``) that the config covers, sorted, and the
+    .onnx files there that no group covers (a file named on the command line is a model)."""
+    found: set[str] = set()
+    ungated: dict[str, UngatedModel] = {}
     for given in paths or (str(root),):
         path = Path(given)
         if not path.exists():
@@ -196,9 +203,11 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str]) -> list
             p for p in path.rglob("*") if p.is_file() and ".git" not in p.parts)
         for file in files:
             name = _model_name(root, file)
-            if config.is_model(name) or (path.is_file() and name.endswith(".onnx")):
+            if config.is_model(name) or (path.is_file() and is_onnx(name)):
                 found.add(name)
-    return sorted(found)
+            elif is_onnx(name):
+                ungated[name] = ungated_model(config, name)
+    return sorted(found), sorted(ungated.values(), key=lambda u: u.model)
 
 
 def _model_name(root: Path, file: Path) -> str:
@@ -213,58 +222,38 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
               today: date | None = None) -> tuple[GateResult, list[str]]:
     """Audit the zoo (or one shard); returns the raw combined result and the full model list."""
     today = today or utc_today()
-    present = find_models(root, config, paths)
-    stored = base_by_model(_read_snapshot(baseline)) if baseline else {}
+    check_globs(config, files_under(root))
+    present, ungated = find_models(root, config, paths)
+    stored = base_by_model(read_snapshot_runs(baseline)) if baseline else {}
     gone = [m for m in stored if m not in present and _in_scope(root, config, paths, m)]
     models = sorted({*present, *gone})
     mine = shard_share(models, *shard) if shard else models
-    jobs = [_job(config, _audit_group(config, m), m, str(root / m)) for m in mine if m in present]
+    policies = PolicyCache(config)
+    planned = [(m, _audit_group(config, m)) for m in present]
+    refuse_unjudged_groups(planned)
+    check_scopes(config, policies, [g for _, g in planned], present)
+    refuse_unjudged_pairs(config, policies, planned)
+    jobs = [make_job(config, _audit_group(config, m), m, str(root / m))
+            for m in mine if m in present]
     analysed = engine.run_jobs(jobs, workers, engine.Progress(label="audit"))
-    policies = _PolicyCache(config)
-    results = []
-    for model in mine:
-        head_runs, error = analysed.get(model, ([], ""))
-        errors = [ModelError(model, error)] if error else []
-        base_runs = stored.get(model, [])
-        notes: list[str] = []
-        if model in present:  # a model gone from the zoo keeps its base runs: all deleted
-            base_runs, notes = on_head_targets(base_runs, head_runs)
-        group = _audit_group(config, model)
-        results.append(judge(
-            head_runs, [] if error else base_runs, policies.get(group), command="audit",
-            today=today, errors=errors, notes=[*notes, *unjudged_notes(group)]))
-    return combine_results(results, "audit"), models
+    results = [_judge_audited(model, model in present, analysed, stored, policies, config, today)
+               for model in mine]
+    result = replace(combine_results(results, "audit"), ungated=tuple(ungated))
+    return result, models
 
 
-# One text for every model without a policy, so per-model notes merge into one line (and
-# sharded and unsharded audits give the same notes).
-UNJUDGED_NOTE = ("some models fall under no policy: they are analysed but no rule judges them, "
-                 "so their PASS means only 'analysed'; add 'policies:' to roofgate.yaml or pass "
-                 "--policy")
-
-
-def unjudged_notes(group: ModelGroup) -> list[str]:
-    """``[UNJUDGED_NOTE]`` when ``group`` names no policy file."""
-    return [] if group.policies else [UNJUDGED_NOTE]
-
-
-def on_head_targets(base: Sequence[RunRecord], head: Sequence[RunRecord],
-                    ) -> tuple[list[RunRecord], list[str]]:
-    """Baseline runs on the targets the head is costed on, and a note naming the others.
-
-    A snapshot may hold more targets than this run costs (an older config, or a
-    --target override); those runs are no "deleted model", so they are left out.
-    When the head could not be analysed there is nothing to match: all are kept.
-    """
-    if not head:
-        return list(base), []
-    targets = {run.target for run in head}
-    kept = [run for run in base if run.target in targets]
-    others = sorted({run.target for run in base} - targets)
-    if not others:
-        return kept, []
-    return kept, [(f"the baseline also holds runs on {', '.join(others)}, which this run does "
-                   "not cost; they are left out of the comparison")]
+def _judge_audited(model: str, present: bool, analysed: engine.Analysed,
+                   stored: Mapping[str, list[RunRecord]], policies: PolicyCache,
+                   config: ProjectConfig, today: date) -> GateResult:
+    head_runs, error = analysed.get(model, ([], ""))
+    errors = [ModelError(model, error)] if error else []
+    base_runs = stored.get(model, [])
+    notes: list[str] = []
+    if present:  # a model gone from the zoo keeps its base runs: all deleted
+        base_runs, notes = on_head_targets(base_runs, head_runs)
+    return judge(head_runs, [] if error else base_runs,
+                 policies.get(_audit_group(config, model)), command="audit", today=today,
+                 errors=errors, notes=notes)
 
 
 def _audit_group(config: ProjectConfig, model: str) -> ModelGroup:
@@ -284,107 +273,3 @@ def _in_scope(root: Path, config: ProjectConfig, paths: Sequence[str], model: st
         if model == prefix or prefix in (".", "") or model.startswith(prefix.rstrip("/") + "/"):
             return True
     return False
-
-
-# --- model files given by name -----------------------------------------------------
-
-NO_POLICY_TEXT = ("no policy applies to this model, so nothing would judge it; pass -p FILE, "
-                  "add 'policies:' to roofgate.yaml, or pass -p default for the bundled policy")
-NO_TARGET_TEXT = ("give at least one --target (a built-in name, see `roofgate targets`, or a "
-                  "target YAML file), or add 'targets:' to roofgate.yaml")
-
-
-def file_jobs(config: ProjectConfig, models: Sequence[str], *, need_policy: bool = False,
-              ) -> list[tuple[engine.Job, ModelGroup]]:
-    """One job per model file given by name (each once), with the settings that apply to it.
-
-    A file a model group covers takes that group's targets, dims, shapes and precision;
-    any other file takes the config's top-level settings (command-line flags
-    already replaced both). InputError when a file ends up with no target (or,
-    when ``need_policy``, no policy: nothing would judge it).
-    """
-    out = []
-    for path in dict.fromkeys(models):
-        group = config.settings_for(path)
-        if not group.targets:
-            raise InputError(NO_TARGET_TEXT, path)
-        if need_policy and not group.policies:
-            raise InputError(NO_POLICY_TEXT, path)
-        job = _job(config, group, normalize_model_path(path), path)
-        out.append((job, group))
-    return out
-
-
-def run_files(config: ProjectConfig, models: Sequence[str], *, baseline: str | None,
-              today: date | None = None) -> GateResult:
-    """Judge model files given by name (``roofgate evaluate``), against a snapshot if given."""
-    from gate.policy import unused_waivers
-
-    today = today or utc_today()
-    planned = file_jobs(config, models, need_policy=True)
-    _load_targets_once(planned)
-    stored = base_by_model(_read_snapshot(baseline)) if baseline else {}
-    analysed = engine.run_jobs([job for job, _ in planned], workers=1)
-    policies = _PolicyCache(config)
-    results = []
-    for job, group in planned:
-        head_runs, error = analysed[job.result_key]
-        wanted = {run.target for run in head_runs}
-        base_runs = [r for r in stored.get(job.model, []) if r.target in wanted]
-        notes = _baseline_notes(baseline, job.model, head_runs, base_runs)
-        results.append(judge(head_runs, base_runs, policies.get(group), command="evaluate",
-                             today=today, errors=[ModelError(job.model, error)] if error else [],
-                             notes=[*notes, *unjudged_notes(group)]))
-    result = combine_results(results, "evaluate")
-    verdicts = [v for entry in result.entries for v in entry.verdicts]
-    return with_notes(result, unused_waivers(policies.all(), verdicts))
-
-
-def _load_targets_once(planned: Sequence[tuple[engine.Job, ModelGroup]]) -> None:
-    """Load every target up front: a bad target file is one config error, not one per model."""
-    from gate.targets import load_targets
-
-    load_targets(tuple(dict.fromkeys(t for job, _ in planned for t in job.targets)))
-
-
-def _baseline_notes(baseline: str | None, model: str, head: Sequence[RunRecord],
-                    base: Sequence[RunRecord]) -> list[str]:
-    if not baseline:
-        return ["no baseline given: no diffs, and regression rules compare against nothing"]
-    if head and not base:
-        return [f"{model}: not in the baseline {baseline}; judged as a new model"]
-    return []
-
-
-def analyse_files(config: ProjectConfig, models: Sequence[str],
-                  ) -> tuple[list[RunRecord], list[ModelError], int]:
-    """Records of model files given by name (``roofgate baseline``): (runs, errors, targets)."""
-    planned = file_jobs(config, models)
-    _load_targets_once(planned)
-    analysed = engine.run_jobs([job for job, _ in planned], workers=1)
-    runs = [run for job, _ in planned for run in analysed[job.result_key][0]]
-    errors = [ModelError(job.model, analysed[job.result_key][1]) for job, _ in planned
-              if analysed[job.result_key][1]]
-    return runs, errors, len({t for job, _ in planned for t in job.targets})
-
-
-def diff_sides(config: ProjectConfig, old: str, new: str, *,
-               explicit_targets: bool) -> GateResult:
-    """The unjudged result of ``roofgate diff OLD NEW`` (each a model or a snapshot)."""
-    from gate.compare import pair_sides, single_model
-
-    new_runs = _diff_side(config, new, None, explicit_targets)
-    old_runs = _diff_side(config, old, single_model(new_runs), explicit_targets)
-    old_runs, new_runs, notes = pair_sides(old_runs, new_runs)
-    return judge(new_runs, old_runs, (), command="diff", today=utc_today(), notes=notes)
-
-
-def _diff_side(config: ProjectConfig, path: str, shown: str | None,
-               explicit_targets: bool) -> list[RunRecord]:
-    from gate.compare import is_snapshot, read_side
-    from gate.targets import load_targets
-
-    group = config.defaults if is_snapshot(path) else config.settings_for(path)
-    names = group.targets if explicit_targets or not is_snapshot(path) else ()
-    targets = load_targets(tuple(dict.fromkeys(resolve_target(config, t) for t in names)))
-    return read_side(path, targets, group.dims, group.precision, shown, group.shapes)

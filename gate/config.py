@@ -10,6 +10,7 @@ main``. Shape (every key optional except ``models`` entries' ``paths``)::
     dims: {batch: 1}
     precision: int8
     exclude: ["models/**/scratch/*.onnx"]
+    ungated: ["third_party/**/*.onnx"]   # .onnx files no group gates, on purpose
     models:
       - paths: ["models/trailcam/**/*.onnx"]
         targets: [ws-64x64-4mib, os-16x16-512kib]
@@ -26,6 +27,10 @@ path; unset group keys inherit the top-level defaults. Globs use ``/``,
 flags (``--target``, ``--policy``, ``--dim``, ``--shape``, ``--precision``, report
 paths) override the file for every group (``--dim`` and ``--shape`` per name). Without a file, every ``*.onnx`` is a model
 and ``--target`` is required.
+
+An ``.onnx`` file that no group covers is *not gated*: ``check`` and ``audit``
+fail on it (rule ``not-gated``) unless an ``ungated:`` (or ``exclude:``) glob
+names it, so a glob typo cannot switch the gate off in silence.
 """
 
 from __future__ import annotations
@@ -88,6 +93,7 @@ class ProjectConfig:
     # The top-level settings: what a model given on the command line that no group
     # covers is analysed with.
     defaults: ModelGroup = ModelGroup((DEFAULT_MODEL_GLOB,), (), ())
+    ungated: tuple[str, ...] = ()  # .onnx files no group gates on purpose (not a typo)
 
     def group_for(self, rel_path: str) -> ModelGroup | None:
         """The first group matching ``rel_path``; None when excluded or unmatched."""
@@ -100,6 +106,19 @@ class ProjectConfig:
 
     def is_model(self, rel_path: str) -> bool:
         return self.group_for(rel_path) is not None
+
+    def skip_reason(self, rel_path: str) -> str:
+        """Why the config leaves ``rel_path`` ungated on purpose ('' when it does not)."""
+        for key, patterns in (("exclude", self.exclude), ("ungated", self.ungated)):
+            for pattern in patterns:
+                if glob_match(pattern, rel_path):
+                    return f"listed under '{key}:' ({pattern})"
+        return ""
+
+    def globs(self) -> list[tuple[str, str]]:
+        """Every path glob of the file as (where, glob): model groups' paths and ungated."""
+        out = [(f"models[{k}].paths", p) for k, g in enumerate(self.groups) for p in g.paths]
+        return out + [("ungated", p) for p in self.ungated]
 
     def settings_for(self, file: str | Path) -> ModelGroup:
         """How to analyse ``file`` (a path from the current folder) given by name on the
@@ -194,8 +213,8 @@ def parse_dim_bindings(items: Iterable[str]) -> dict[str, int]:
 
 # --- reading the file -----------------------------------------------------------
 
-_TOP_KEYS = ("version", "targets", "policies", "dims", "shapes", "precision", "exclude", "models",
-             "reports")
+_TOP_KEYS = ("version", "targets", "policies", "dims", "shapes", "precision", "exclude",
+             "ungated", "models", "reports")
 
 
 def _read(path: Path) -> ProjectConfig:
@@ -214,18 +233,21 @@ def _read(path: Path) -> ProjectConfig:
         shapes=_shapes(top),
     )
     exclude = tuple(top.get_str_list("exclude", []) or [])
+    ungated = tuple(top.get_str_list("ungated", []) or [])
     groups = tuple(_group(section, defaults) for section in top.get_sections("models"))
     if not top.has("models"):
         groups = (defaults,)
     reports = _reports(top)
-    for pattern in (*exclude, *(p for g in groups for p in g.paths)):
-        problem = glob_problem(pattern)
-        if problem:
-            doc.problem(top.node, "models" if pattern not in exclude else "exclude",
-                        f"glob {pattern!r}: {problem}")
+    for key, patterns in (("exclude", exclude), ("ungated", ungated),
+                          ("models", tuple(p for g in groups for p in g.paths))):
+        for pattern in patterns:
+            problem = glob_problem(pattern)
+            if problem:
+                doc.problem(top.node, key, f"glob {pattern!r}: {problem}")
     top.finish()
     doc.raise_if_problems()
-    return ProjectConfig(str(path), str(path.parent), groups, exclude, reports, defaults)
+    return ProjectConfig(str(path), str(path.parent), groups, exclude, reports, defaults,
+                         ungated)
 
 
 def _group(section: Section, defaults: ModelGroup) -> ModelGroup:

@@ -199,6 +199,17 @@ def _classify(letter: str, old: str | None, new: str | None,
     return ModelChange(_STATUS.get(letter, "modified"), old, new)
 
 
+def tracked_files(cwd: str | Path, rev: str = "HEAD") -> list[str]:
+    """Every file path in the tree of ``rev`` (``STAGED``: the index), repository-relative,
+    sorted."""
+    if rev == STAGED:
+        raw = git(["ls-files", "-z", "--full-name", "--", ":/"], cwd, what="listing the index")
+    else:
+        raw = git(["ls-tree", "-r", "-z", "--name-only", "--full-tree", rev], cwd,
+                  what=f"listing the files at {rev}")
+    return sorted(_decode(item) for item in raw.split(b"\0") if item)
+
+
 def read_blob(rev: str, path: str, cwd: str | Path) -> bytes:
     """The contents of ``path`` at ``rev`` (an LFS pointer resolved as ``write_blob`` does)."""
     with tempfile.TemporaryDirectory(prefix="roofgate-blob-") as tmp:

@@ -11,6 +11,7 @@ order-independent: ``-j 1``, ``-j 8`` and a sharded audit merged with
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import replace
 from datetime import date, datetime, timezone
 
 from gate.diff import diff_runs
@@ -18,7 +19,7 @@ from gate.errors import InputError
 from gate.policy import allow_unanalysable, evaluate
 from gate.policy.spec import Policy
 from gate.records import RunRecord
-from gate.result import Entry, GateResult, ModelError, Verdict
+from gate.result import FAIL, NOT_COSTED, Entry, Finding, GateResult, ModelError, Verdict
 
 
 def utc_today() -> date:
@@ -57,8 +58,40 @@ def judge(head: Sequence[RunRecord], base: Sequence[RunRecord], policies: Sequen
 
 def _verdicts(policies: Sequence[Policy], head: RunRecord | None, base: RunRecord | None,
               diff: object, today: date) -> tuple[Verdict, ...]:
-    return tuple(v for policy in policies
-                 for v in evaluate(policy, head, base, diff, today=today))  # type: ignore[arg-type]
+    judged = tuple(v for policy in policies
+                   for v in evaluate(policy, head, base, diff, today=today))  # type: ignore[arg-type]
+    return judged + builtin_verdicts(head)
+
+
+BUILTIN_KIND = "builtin"  # the kind of verdicts no policy file declares
+
+
+def builtin_verdicts(head: RunRecord | None) -> tuple[Verdict, ...]:
+    """Rules no policy can switch off or waive: a model none of whose layers could be costed
+    fails (``not-costed``); its latency, energy and traffic are unknown, never zero."""
+    if head is None or not _nothing_costed(head):
+        return ()
+    unbound = any("unbound" in note for note in head.notes)
+    remedy = ("bind the symbolic input dims (--dim NAME=N, or dims: in roofgate.yaml)" if unbound
+              else "see `roofgate profile` for why each layer is unmodelled")
+    summary = (f"none of the model's work could be costed ({int(head.metrics.get('unmodelled_nodes', 0))}"
+               f" of {int(head.metrics.get('layers', 0))} layers unmodelled): latency, energy and "
+               "traffic are unknown")
+    finding = Finding(None, "unmodelled_nodes", head.metrics.get("unmodelled_nodes", 0), 0,
+                      f"Model: {summary}: {remedy}.", FAIL)
+    return (Verdict(rule_id=NOT_COSTED, kind=BUILTIN_KIND, severity="error",
+                    description="at least one layer of the model can be costed",
+                    model=head.model, target=head.target, status=FAIL, summary=summary,
+                    remedy=remedy, findings=(finding,)),)
+
+
+def _nothing_costed(head: RunRecord) -> bool:
+    """No layer modelled, or none of the work (the reports call that "not costed")."""
+    layers = int(head.metrics.get("layers", 0))
+    if layers == 0:
+        return False
+    return (int(head.metrics.get("unmodelled_nodes", 0)) >= layers
+            or head.metrics.get("coverage_work_share", 1.0) == 0)
 
 
 def _index(runs: Sequence[RunRecord], side: str) -> dict[tuple[str, str], RunRecord]:
@@ -84,6 +117,8 @@ def combine_results(results: Iterable[GateResult], command: str) -> GateResult:
         errors=tuple(ModelError(m, msg) for m, msg in errors),
         notes=tuple(sorted({n for r in results for n in r.notes})),
         allow_errors=bool(erroring) and all(r.allow_errors for r in erroring),
+        ungated=tuple(sorted({u for r in results for u in r.ungated},
+                             key=lambda u: (u.model, u.reason, u.skipped))),
     )
 
 
@@ -91,8 +126,7 @@ def with_notes(result: GateResult, notes: Sequence[str]) -> GateResult:
     """``result`` with ``notes`` placed before its own (each note once)."""
     if not notes:
         return result
-    return GateResult(result.command, result.policies, result.entries, result.errors,
-                      tuple(dict.fromkeys((*notes, *result.notes))), result.allow_errors)
+    return replace(result, notes=tuple(dict.fromkeys((*notes, *result.notes))))
 
 
 def base_by_model(runs: Iterable[RunRecord]) -> Mapping[str, list[RunRecord]]:

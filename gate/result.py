@@ -19,6 +19,10 @@ PASS = "pass"
 FAIL = "fail"
 WAIVED = "waived"
 
+# Built-in rule ids (no policy file declares them, no waiver covers them).
+NOT_GATED = "not-gated"  # a changed .onnx file no model group covers
+NOT_COSTED = "not-costed"  # a model none of whose layers could be costed
+
 
 @dataclass(frozen=True, slots=True)
 class Finding:
@@ -85,6 +89,20 @@ class ModelError:
 
 
 @dataclass(frozen=True, slots=True)
+class UngatedModel:
+    """An .onnx file the run found (changed, or in the zoo) that no model group covers.
+
+    ``skipped`` when the config says so on purpose (an ``ungated:`` or ``exclude:``
+    glob, or a deletion): it is listed but does not fail. Otherwise it is *not
+    gated* and fails the run (rule ``not-gated``), so a glob typo is never silent.
+    """
+
+    model: str
+    reason: str
+    skipped: bool = False
+
+
+@dataclass(frozen=True, slots=True)
 class Entry:
     """Everything about one model x target in this run."""
 
@@ -101,6 +119,11 @@ class Entry:
             return FAIL
         return PASS
 
+    @property
+    def rules_applied(self) -> tuple[str, ...]:
+        """The ids of the rules that judged this model x target, in verdict order."""
+        return tuple(dict.fromkeys(v.rule_id for v in self.verdicts))
+
 
 @dataclass(frozen=True, slots=True)
 class GateResult:
@@ -112,17 +135,34 @@ class GateResult:
     errors: tuple[ModelError, ...] = ()
     notes: tuple[str, ...] = ()  # e.g. "no models changed"
     allow_errors: bool = False  # policy explicitly lets unanalysable models through
+    ungated: tuple[UngatedModel, ...] = ()  # .onnx files no model group covers, sorted
 
     @property
     def failed_verdicts(self) -> tuple[Verdict, ...]:
         return tuple(v for e in self.entries for v in e.verdicts if v.status == FAIL)
 
     @property
+    def not_gated(self) -> tuple[UngatedModel, ...]:
+        """The ungated files that fail the run (not skipped on purpose)."""
+        return tuple(u for u in self.ungated if not u.skipped)
+
+    @property
+    def model_counts(self) -> dict[str, int]:
+        """How many model files the run saw, gated (judged or unanalysable), not gated
+        (failing) and skipped on purpose: the summary line says all four."""
+        gated = len({e.model for e in self.entries} | {e.model for e in self.errors})
+        not_gated = len(self.not_gated)
+        skipped = len(self.ungated) - not_gated
+        return {"seen": gated + not_gated + skipped, "gated": gated, "not_gated": not_gated,
+                "skipped": skipped}
+
+    @property
     def exit_code(self) -> int:
-        """0 pass, 1 an error-severity rule failed, 2 a model could not be analysed."""
+        """0 pass, 1 an error-severity rule failed or a model was not gated, 2 a model could
+        not be analysed."""
         if self.errors and not self.allow_errors:
             return EXIT_BAD_INPUT
-        if any(v.blocks_merge for e in self.entries for v in e.verdicts):
+        if self.not_gated or any(v.blocks_merge for e in self.entries for v in e.verdicts):
             return EXIT_GATE_FAILED
         return EXIT_PASS
 
@@ -136,6 +176,9 @@ def result_to_dict(result: GateResult) -> dict[str, Any]:
         "allow_errors": result.allow_errors,
         "notes": list(result.notes),
         "errors": [{"model": e.model, "message": e.message} for e in result.errors],
+        "ungated": [{"model": u.model, "reason": u.reason, "skipped": u.skipped}
+                    for u in result.ungated],
+        "model_counts": result.model_counts,
         "entries": [_entry_to_dict(e) for e in result.entries],
     }
 
@@ -148,6 +191,8 @@ def result_from_dict(data: Mapping[str, Any]) -> GateResult:
         notes=tuple(str(n) for n in data["notes"]),
         errors=tuple(ModelError(str(e["model"]), str(e["message"])) for e in data["errors"]),
         entries=tuple(_entry_from_dict(e) for e in data["entries"]),
+        ungated=tuple(UngatedModel(str(u["model"]), str(u["reason"]), bool(u["skipped"]))
+                      for u in data.get("ungated", ())),
     )
 
 
@@ -156,6 +201,7 @@ def _entry_to_dict(entry: Entry) -> dict[str, Any]:
         "model": entry.model,
         "target": entry.target,
         "status": entry.status,
+        "rules_applied": list(entry.rules_applied),
         "head": run_to_dict(entry.head) if entry.head else None,
         "base": run_to_dict(entry.base) if entry.base else None,
         "diff": _diff_to_dict(entry.diff) if entry.diff else None,

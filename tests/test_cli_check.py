@@ -142,14 +142,25 @@ def test_base_side_from_a_stored_snapshot(repo: Repo) -> None:
     assert code == 0, out
 
 
-def test_models_outside_the_config_groups_are_not_gated(repo: Repo) -> None:
+def test_models_outside_the_config_groups_are_listed_and_fail_unless_ungated(repo: Repo) -> None:
     repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n"
                "models:\n  - paths: ['models/a.onnx']\n")
     save_model(fc_model(4096), repo.path / "models/b.onnx")  # would fail, but not configured
     save_model(fc_model(4096), repo.path / "scratch/c.onnx")
     repo.commit("unconfigured models")
     code, out, _ = check()
-    assert code == 0 and "No models changed" in out
+    assert code == 1, out  # never "No models changed" and a pass
+    assert "  NOT GATED models/b.onnx: no model group" in out and "scratch/c.onnx" in out
+    assert out.splitlines()[0].endswith(": 0 gated, 2 not gated, 0 skipped"), out
+    assert "2 changed model(s) not gated (not-gated) (exit 1)" in out.splitlines()[-2]
+    junit = (repo.path / "roofgate-out/junit.xml").read_text(encoding="utf-8")
+    assert 'type="not-gated"' in junit and "models/b.onnx" in junit
+    repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n"
+               "models:\n  - paths: ['models/a.onnx']\nungated: ['models/b.onnx', 'scratch/**']\n")
+    code, out, _ = check()
+    assert code == 0, out
+    assert "  SKIPPED  models/b.onnx: skipped: listed under 'ungated:'" in out
+    assert out.splitlines()[0].endswith(": 0 gated, 0 not gated, 2 skipped"), out
     code, out, _ = check("--config", str(repo.path / "other.yaml"))
     assert code == 2
 
@@ -235,23 +246,21 @@ def test_audit_leaves_out_baseline_runs_on_targets_it_does_not_cost(zoo: Path) -
     assert "DELETED" not in done.stdout and "os-16x16-512kib, which this run does not cost" \
         in done.stdout
     assert "  PASS     models/m0 x.onnx on ws-64x64-4mib" in done.stdout
-    assert done.stdout.splitlines()[-3].endswith("unchanged")
+    assert done.stdout.splitlines()[-4].endswith("unchanged")
+    assert done.stdout.splitlines()[-3] == "           rules: params-fit-buffer"
 
 
-def test_models_under_no_policy_are_called_unjudged_alike_sharded_or_not(zoo: Path) -> None:
+def test_models_under_no_policy_are_refused_alike_sharded_or_not(zoo: Path) -> None:
+    """No policy, no pass: exit 2 with the remedy, never an 'analysed' PASS."""
     (zoo / "roofgate.yaml").write_text(f"targets: [{TARGET}]\n")  # no policies
     (zoo / "models/broken.onnx").unlink()
     runner = CliRunner()
-    whole = runner.invoke(cli, ["audit", *reports("all")])
-    assert whole.exit_code == 0, whole.output
-    assert "some models fall under no policy" in whole.stdout
-    for k in (1, 2):
-        shard = runner.invoke(cli, ["audit", "--shard", f"{k}/2", "--shard-out", f"s{k}.json"])
-        assert shard.exit_code == 0, shard.output
-    merged = runner.invoke(cli, ["merge", "s1.json", "s2.json", *reports("merged")])
-    assert merged.exit_code == 0, merged.output
-    assert read_reports("all") == read_reports("merged")
-    assert (zoo / "merged/summary.md").read_text().count("fall under no policy") == 1
+    for args in (["audit"], ["audit", "--shard", "1/2"], ["evaluate", "models/m0 x.onnx"]):
+        done = runner.invoke(cli, args)
+        assert done.exit_code == 2, (args, done.output)
+        (line,) = done.stderr.strip().splitlines()
+        assert "no policy applies to this model" in line and "-p default" in line, line
+        assert "'policies:' in roofgate.yaml" in line or "add 'policies:'" in line
 
 
 def test_a_report_flag_without_config_reports_writes_only_that_report(zoo: Path) -> None:

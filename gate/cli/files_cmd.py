@@ -7,7 +7,7 @@ input, including a model that cannot be analysed) or 3 (internal error).
 ``baseline`` writes the snapshot a later ``evaluate --baseline`` compares
 against. ``diff`` shows the per-layer diff of two models or two snapshots (or
 one of each). Each reads roofgate.yaml like ``check`` does; flags replace it.
-The work is done in ``gate.ci``, ``gate.jobs`` and ``gate.compare``.
+The work is done in ``gate.files``, ``gate.jobs`` and ``gate.compare``.
 """
 
 from __future__ import annotations
@@ -62,7 +62,7 @@ def evaluate_command(models: tuple[str, ...], baseline: str | None, today: datet
     2 bad input or a model that could not be analysed (unless every policy sets
     allow_unanalysable), 3 internal error.
     """
-    from gate.ci import run_files
+    from gate.files import run_files
 
     config = load_project(kwargs)
     paths = chosen_reports(kwargs, config, defaults=False)
@@ -87,7 +87,7 @@ def baseline_command(models: tuple[str, ...], output: str, **kwargs: Any) -> Non
     committed and reviewed. Every model must analyse: a partial baseline would
     silently turn later regressions into "new model".
     """
-    from gate.ci import analyse_files
+    from gate.files import analyse_files
     from gate.snapshot import write_snapshot
 
     config = load_project(kwargs, policies=False)
@@ -119,7 +119,7 @@ def diff_command(old: str, new: str, limit: int, **kwargs: Any) -> None:
     need a target (--target or roofgate.yaml); snapshots carry their targets.
     Exits 0 after printing the diff.
     """
-    from gate.ci import diff_sides
+    from gate.files import diff_sides
     from gate.report.difftext import render_diff
 
     paths = report_paths(kwargs)

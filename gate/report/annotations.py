@@ -21,7 +21,7 @@ from typing import TextIO
 
 from gate.logsafe import defuse_runner_markers
 from gate.report.text import shorten, visible
-from gate.result import FAIL, GateResult
+from gate.result import FAIL, NOT_GATED, GateResult
 
 MAX_PER_KIND = 10  # GitHub's per-step display limit for each of error and warning
 MAX_MESSAGE_CHARS = 4000
@@ -67,6 +67,8 @@ def collect_annotations(result: GateResult) -> list[_Annotation]:
     """Every annotation the result calls for, errors first, in report order."""
     out = [_Annotation("error", e.model, "roofgate: model not analysed", e.message)
            for e in result.errors]
+    out += [_Annotation("error", u.model, f"roofgate {NOT_GATED}", u.reason)
+            for u in result.not_gated]
     for entry in result.entries:
         for verdict in entry.verdicts:
             if verdict.status != FAIL:

@@ -26,7 +26,17 @@ from typing import TextIO
 from junit_xml import TestCase, TestSuite, to_xml_report_string
 
 from gate.report.text import fmt_metric, xml_safe
-from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, ModelError, Verdict
+from gate.result import (
+    FAIL,
+    NOT_GATED,
+    WAIVED,
+    Entry,
+    Finding,
+    GateResult,
+    ModelError,
+    UngatedModel,
+    Verdict,
+)
 
 # Model metrics written as suite properties (raw numbers, unit in the name).
 PROPERTY_METRICS = (
@@ -52,6 +62,7 @@ def render(result: GateResult) -> str:
     """The JUnit XML text of ``result``."""
     suites = [_entry_suite(entry) for entry in result.entries]
     suites.extend(_error_suite(error, result.allow_errors) for error in result.errors)
+    suites.extend(_ungated_suite(item) for item in result.ungated)
     if not suites:
         suites.append(_empty_suite(result))
     return to_xml_report_string(suites, prettyprint=True)
@@ -137,7 +148,7 @@ def _finding_text(finding: Finding) -> str:
 
 def _properties(entry: Entry, warnings: int) -> dict[str, str]:
     props = {"model": _x(entry.model), "target": _x(entry.target), "status": entry.status,
-             "warnings": str(warnings)}
+             "warnings": str(warnings), "rules_applied": _x(", ".join(entry.rules_applied))}
     if entry.head is None:
         props["model_removed"] = "true"
         return props
@@ -166,6 +177,19 @@ def _error_suite(error: ModelError, allowed: bool) -> TestSuite:
                         error_type="unanalysable")
     return TestSuite(_x(f"{error.model} [unanalysable]"), [case],
                      properties={"model": _x(error.model), "status": "error"})
+
+
+def _ungated_suite(item: UngatedModel) -> TestSuite:
+    """A changed .onnx file no model group covers: a failure (``not-gated``) unless skipped."""
+    case = TestCase(_x(NOT_GATED), classname=_x(f"{item.model} (not gated)"))
+    if item.skipped:
+        case.add_skipped_info(message=_x(f"{item.model}: {item.reason}"))
+    else:
+        case.add_failure_info(message=_x(f"{item.model} is not gated: {item.reason}"),
+                              failure_type=NOT_GATED)
+    return TestSuite(_x(f"{item.model} [{'skipped' if item.skipped else 'not gated'}]"), [case],
+                     properties={"model": _x(item.model),
+                                 "status": "skipped" if item.skipped else FAIL})
 
 
 def _empty_suite(result: GateResult) -> TestSuite:

@@ -27,7 +27,16 @@ from gate.diff import ranked_changes
 from gate.policy.spec import metric_label
 from gate.records import LayerRecord
 from gate.report.text import fmt_change, fmt_delta, fmt_metric, html_escape, md_escape, shorten
-from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, LayerChange, Verdict
+from gate.result import (
+    FAIL,
+    NOT_GATED,
+    WAIVED,
+    Entry,
+    Finding,
+    GateResult,
+    LayerChange,
+    Verdict,
+)
 
 MARKER = "<!-- roofgate-report -->"
 COMMENT_LIMIT_CHARS = 65_536
@@ -121,6 +130,7 @@ def _render(result: GateResult, limits: _Limits, *, squeezed: bool = False) -> s
     out.lines.append("_Analytical estimates from the model graph and target profiles, "
                      "not device measurements._")
     _errors(result, out)
+    _ungated(result, out)
     for note in result.notes:
         out.lines.append(f"\n> {md_escape(note)}")
     if result.entries:
@@ -147,10 +157,13 @@ def _verdict_line(result: GateResult) -> str:
     if result.errors:
         parts.append(f"{len(result.errors)} model{'s' if len(result.errors) != 1 else ''} "
                      "could not be analysed")
+    if result.not_gated:
+        count = len(result.not_gated)
+        parts.append(f"{count} changed model{'s' if count != 1 else ''} not gated")
     detail = ", ".join(parts)
     if result.errors and not result.allow_errors:
         return f"## {ERROR_MARK} roofgate: could not check every model ({detail})"
-    if blocking:
+    if blocking or result.not_gated:
         return f"## {FAIL_MARK} roofgate: failed ({detail})"
     if not result.entries and not result.errors:
         return f"## {PASS_MARK} roofgate: nothing to check"
@@ -170,6 +183,17 @@ def _errors(result: GateResult, out: _Render) -> None:
                          f"{md_escape(shorten(error.model, 200))}{allowed}: "
                          f"{md_escape(shorten(error.message, 400))}")
     out.trimmed(len(shown), len(errors), "unanalysable models")
+
+
+def _ungated(result: GateResult, out: _Render) -> None:
+    """Every .onnx file no model group covers: not gated (fails) or skipped on purpose."""
+    if not result.ungated:
+        return
+    out.lines.append("")
+    for item in result.ungated:
+        mark = "skipped" if item.skipped else f"{FAIL_MARK} **not gated** ({NOT_GATED})"
+        out.lines.append(f"- {mark} {md_escape(shorten(item.model, 200))}: "
+                         f"{md_escape(shorten(item.reason, 300))}")
 
 
 def _entry_rank(entry: Entry) -> tuple[int, float, str, str]:
@@ -259,6 +283,8 @@ def _model_section(model: str, entries: list[Entry], out: _Render) -> None:
                    f"{html_escape(worst)}</summary>")]
     for entry in entries:
         out.lines += ["", f"#### {md_escape(entry.target)}"]
+        if entry.head is not None:
+            out.lines.append(f"\nRules applied: {md_escape(', '.join(entry.rules_applied))}")
         _notes(entry, out)
         _failed_rules(entry, out)
         _waived_rules(entry, out)

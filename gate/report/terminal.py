@@ -19,7 +19,7 @@ from gate.diff import same_value
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 from gate.policy.spec import higher_is_better
 from gate.report.text import fmt_change, fmt_metric, fmt_percent, shorten, term_safe
-from gate.result import FAIL, WAIVED, Entry, Finding, GateResult, Verdict
+from gate.result import FAIL, NOT_GATED, WAIVED, Entry, Finding, GateResult, Verdict
 
 KEY_METRICS = (("latency_s", "latency"), ("utilization", "util"), ("param_bytes", "params"),
                ("energy_j", "energy"))
@@ -54,6 +54,9 @@ def render(result: GateResult, written: Sequence[str] = (), title: str | None = 
     for error in result.errors:
         allowed = " (allowed by policy)" if result.allow_errors else ""
         lines.append(f"  ERROR  {_t(error.model)}: {_t(error.message)}{allowed}")
+    for item in result.ungated:
+        label = "SKIPPED" if item.skipped else "NOT GATED"
+        lines.append(f"  {label:<8} {_t(item.model)}: {_t(item.reason)}")
     lines.append(outcome_line(result))
     files = [path for path in written if path != "-"]
     if files:
@@ -80,7 +83,10 @@ def outcome_line(result: GateResult) -> str:
         extra = f" with {warnings} warning(s)" if warnings else ""
         return f"PASSED{extra} (exit {code})"
     if code == EXIT_GATE_FAILED:
-        return f"FAILED: {blocking} blocking rule failure(s) (exit {code})"
+        not_gated = len(result.not_gated)
+        parts = ([f"{blocking} blocking rule failure(s)"] if blocking else []) + \
+            ([f"{not_gated} changed model(s) not gated ({NOT_GATED})"] if not_gated else [])
+        return f"FAILED: {', '.join(parts)} (exit {code})"
     if code == EXIT_BAD_INPUT:
         return f"FAILED: {len(result.errors)} model(s) could not be analysed (exit {code})"
     return f"FAILED (exit {code})"
@@ -89,6 +95,8 @@ def outcome_line(result: GateResult) -> str:
 def _entry_lines(entry: Entry) -> list[str]:
     status = _status(entry)
     lines = [f"  {status:<8} {_t(entry.model)} on {_t(entry.target)}  {_figures(entry)}"]
+    if entry.head is not None:
+        lines.append(f"           rules: {_t(', '.join(entry.rules_applied)) or 'none'}")
     for verdict in entry.verdicts:
         if verdict.status == FAIL:
             lines.extend(_failed_rule_lines(verdict))

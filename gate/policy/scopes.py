@@ -1,0 +1,81 @@
+"""Scopes that match nothing: a typo in a policy must not switch a rule off in silence.
+
+A policy (``targets:``) or a rule (``targets``, ``models``, ``op_types``) whose
+pattern matches nothing this run could ever judge is a configuration error
+(exit 2) with a "did you mean". What "could ever" means per kind:
+
+* **targets**: the targets of this run (every model group's, after flags).
+* **models**: the model files the run knows: every model file of the
+  repository for ``check`` (not only the changed ones: a rule for another
+  folder is no typo because this pull request did not touch it), the zoo for
+  ``audit``, the given files for ``evaluate``.
+* **op types**: every op type roofgate knows (its cost functions and the
+  ONNX operator set) plus the op types of the run, so a rule for an op that a
+  change merely did not contain is no error, while ``Convv`` is.
+
+Waiver scopes are not checked here: a waiver that covers nothing is already
+reported as unused, and it can only ever let less through.
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Callable, Iterable, Sequence
+from functools import lru_cache
+
+from gate.policy.globs import match_any, match_model
+from gate.policy.spec import Policy
+
+
+def scope_problems(policies: Sequence[Policy], *, targets: Iterable[str],
+                   models: Iterable[str], op_types: Iterable[str] = ()) -> list[str]:
+    """One line per pattern that matches nothing (file, rule, key, pattern, did you mean)."""
+    target_set = sorted(set(targets))
+    model_set = sorted(set(models))
+    ops = sorted(known_op_types() | set(op_types))
+    problems = []
+    for policy in policies:
+        problems += _unmatched(policy.path, "targets", policy.targets, target_set, _name_match)
+        for rule in policy.rules:
+            where = f"{policy.path}:{rule.line}: rules[{rule.id}]"
+            problems += _unmatched(where, "targets", rule.scope.targets, target_set, _name_match)
+            problems += _unmatched(where, "models", rule.scope.models, model_set, match_model)
+            problems += _unmatched(where, "op_types", rule.scope.op_types, ops, _name_match)
+    return problems
+
+
+def _name_match(pattern: str, name: str) -> bool:
+    return match_any((pattern,), name)
+
+
+def _unmatched(where: str, key: str, patterns: Sequence[str], known: Sequence[str],
+               matches: Callable[[str, str], bool]) -> list[str]:
+    out = []
+    for pattern in patterns:
+        if any(matches(pattern, name) for name in known):
+            continue
+        what = {"targets": "target of this run", "models": "model file of this run",
+                "op_types": "known op type"}[key]
+        out.append(f"{where}.{key}: '{pattern}' matches no {what}{_did_you_mean(pattern, known)}; "
+                   "fix the pattern (a scope that matches nothing switches the rule off)")
+    return out
+
+
+def _did_you_mean(pattern: str, known: Sequence[str]) -> str:
+    close = difflib.get_close_matches(pattern, list(known), n=1, cutoff=0.6)
+    if close:
+        return f" (did you mean '{close[0]}'?)"
+    shown = ", ".join(known[:5]) + (", ..." if len(known) > 5 else "")
+    return f" (known: {shown})" if known else ""
+
+
+@lru_cache(maxsize=1)
+def known_op_types() -> frozenset[str]:
+    """Op types with a cost function, and every op of the ONNX operator sets."""
+    import onnx.defs
+
+    from gate.ops import modelled_op_types  # importing gate.ops registers every cost function
+
+    names = {op for _, op in modelled_op_types()}
+    names |= {schema.name for schema in onnx.defs.get_all_schemas_with_history()}
+    return frozenset(names)

@@ -1,0 +1,256 @@
+"""Never pass what was not checked: every way found to get a green run with nothing checked.
+
+Each case runs the public CLI (click's CliRunner) and asserts the exit code and the
+one-line message (README, "Exit codes": 1 a rule failed or a model was not gated,
+2 bad input or configuration). Models are built in code (gate.synth, tests/loadkit).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from gate.cli import cli
+from gate.synth.builder import save_model
+from gate.synth.layers import NetBuilder
+from tests.gitkit import Repo
+from tests.loadkit import save, small_cnn
+
+TARGET = "ws-64x64-4mib"
+OTHER_TARGET = "os-16x16-512kib"
+POLICY = """\
+version: 1
+name: t
+{policy_extra}rules:
+  - id: params-fit
+    kind: fits_in_buffer
+    check: params
+{rule_extra}"""
+CONFIG = f"""\
+targets: [{TARGET}]
+policies: [policies/p.yaml]
+models:
+  - paths: ["models/**/*.onnx"]
+"""
+
+
+def fc_model(out_features: int, *, in_features: int = 256):
+    b = NetBuilder("fc", weights="external")
+    b.output(b.gemm(b.input("x", [1, in_features]), out_features, name="fc"))
+    return b.build()
+
+
+def invoke(args: list[str]):
+    return CliRunner().invoke(cli, args)
+
+
+def one_line(result) -> str:
+    """The one message line on stderr (progress lines of audit aside)."""
+    lines = [line for line in result.stderr.strip().splitlines()
+             if not line.startswith("roofgate audit: [")]
+    assert len(lines) == 1, result.stderr
+    return lines[0]
+
+
+def write(root: Path, path: str, text: str) -> None:
+    (root / path).parent.mkdir(parents=True, exist_ok=True)
+    (root / path).write_text(text, encoding="utf-8")
+
+
+@pytest.fixture()
+def zoo(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    root = tmp_path / "zoo"
+    write(root, "roofgate.yaml", CONFIG)
+    write(root, "policies/p.yaml", POLICY.format(policy_extra="", rule_extra=""))
+    save_model(fc_model(64), root / "models/a.onnx")
+    monkeypatch.chdir(root)
+    return root
+
+
+@pytest.fixture()
+def repo(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Repo:
+    repo = Repo(tmp_path / "repo")
+    repo.write("roofgate.yaml", CONFIG)
+    repo.write("policies/p.yaml", POLICY.format(policy_extra="", rule_extra=""))
+    save_model(fc_model(64), repo.path / "models/a.onnx")
+    repo.commit("base")
+    repo.branch("pr")
+    monkeypatch.chdir(repo.path)
+    return repo
+
+
+# --- a glob typo ---------------------------------------------------------------------
+
+def test_a_model_glob_that_matches_nothing_is_exit_2_naming_the_glob(repo: Repo) -> None:
+    repo.write("roofgate.yaml", CONFIG.replace('"models/**/*.onnx"', '"model/**/*.onnx"'))
+    save_model(fc_model(4096), repo.path / "models/a.onnx")  # +1000%: must not pass
+    repo.commit("typo and a regression")
+    for args in (["check", "--base", "main"], ["audit"]):
+        result = invoke(args)
+        assert result.exit_code == 2, (args, result.output)
+        line = one_line(result)
+        assert "glob 'model/**/*.onnx' matches no file" in line, line
+        assert "did you mean 'models/**/*.onnx'?" in line and "roofgate.yaml" in line
+
+
+def test_an_ungated_glob_that_matches_nothing_is_exit_2(zoo: Path) -> None:
+    write(zoo, "roofgate.yaml", CONFIG + "ungated: ['third_party/*.onnx']\n")
+    result = invoke(["audit"])
+    assert result.exit_code == 2 and "ungated: glob 'third_party/*.onnx'" in one_line(result)
+
+
+# --- a changed model outside every group ---------------------------------------------
+
+def test_a_changed_model_outside_every_group_fails_check(repo: Repo) -> None:
+    save_model(fc_model(4096), repo.path / "exported/big.onnx")
+    repo.commit("a model outside every group")
+    result = invoke(["check", "--base", "main"])
+    assert result.exit_code == 1, result.output
+    assert "  NOT GATED exported/big.onnx: no model group of roofgate.yaml covers it" in \
+        result.output
+    assert result.output.splitlines()[-2].startswith("FAILED: 1 changed model(s) not gated")
+
+
+def test_an_lfs_pointer_outside_every_group_is_not_gated_either(repo: Repo) -> None:
+    repo.write("weights/big.onnx", "version https://git-lfs.github.com/spec/v1\n"
+               "oid sha256:" + "0" * 64 + "\nsize 123\n")
+    repo.commit("an LFS pointer outside every group")
+    result = invoke(["check", "--base", "main"])
+    assert result.exit_code == 1 and "NOT GATED weights/big.onnx" in result.output
+
+
+def test_audit_lists_stray_models_and_skips_ungated_ones(zoo: Path) -> None:
+    save_model(fc_model(64), zoo / "scratch/b.onnx")
+    result = invoke(["audit"])
+    assert result.exit_code == 1 and "NOT GATED scratch/b.onnx" in result.output
+    write(zoo, "roofgate.yaml", CONFIG + "ungated: ['scratch/*.onnx']\n")
+    result = invoke(["audit"])
+    assert result.exit_code == 0, result.output
+    assert "SKIPPED  scratch/b.onnx: skipped: listed under 'ungated:'" in result.output
+
+
+# --- a policy or rule scope typo -------------------------------------------------------
+
+SCOPE_TYPOS = {
+    "policy targets": ("targets: [ws-64x64-4mb]\n", "", "targets: 'ws-64x64-4mb'",
+                       "did you mean 'ws-64x64-4mib'?"),
+    "rule targets": ("", "    targets: [ws-64x64-4mb]\n", "targets: 'ws-64x64-4mb'",
+                     "did you mean 'ws-64x64-4mib'?"),
+    "rule models": ("", "    models: ['model/**']\n", "models: 'model/**'", "matches no model"),
+    "rule op types": ("", "    level: layer\n    op_types: [Gem]\n", "op_types: 'Gem'",
+                      "did you mean 'Gemm'?"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(SCOPE_TYPOS))
+@pytest.mark.parametrize("command", ["audit", "evaluate"])
+def test_a_scope_that_matches_nothing_is_exit_2_with_did_you_mean(zoo: Path, case: str,
+                                                                  command: str) -> None:
+    policy_extra, rule_extra, quoted, hint = SCOPE_TYPOS[case]
+    write(zoo, "policies/p.yaml", POLICY.format(policy_extra=policy_extra, rule_extra=rule_extra))
+    args = ["audit"] if command == "audit" else ["evaluate", "models/a.onnx"]
+    result = invoke(args)
+    assert result.exit_code == 2, (case, result.output)
+    line = one_line(result)
+    assert quoted in line and hint in line and "policies/p.yaml" in line, line
+
+
+def test_a_scope_typo_fails_check_too(repo: Repo) -> None:
+    repo.write("policies/p.yaml", POLICY.format(policy_extra="targets: [ws-64x64-4mb]\n",
+                                               rule_extra=""))
+    save_model(fc_model(96), repo.path / "models/a.onnx")
+    repo.commit("grow")
+    result = invoke(["check", "--base", "main"])
+    assert result.exit_code == 2 and "did you mean 'ws-64x64-4mib'?" in one_line(result)
+
+
+def test_a_model_x_target_no_rule_judges_is_exit_2(zoo: Path) -> None:
+    """The policy is scoped to a target of the run, but not to this model's target."""
+    write(zoo, "roofgate.yaml", CONFIG + f"  - paths: ['other/*.onnx']\n    targets: [{OTHER_TARGET}]\n")
+    save_model(fc_model(64), zoo / "other/b.onnx")
+    write(zoo, "policies/p.yaml", POLICY.format(policy_extra=f"targets: [{OTHER_TARGET}]\n",
+                                               rule_extra=""))
+    result = invoke(["audit"])
+    assert result.exit_code == 2, result.output
+    line = one_line(result)
+    assert "models/a.onnx" in line and "no policy rule applies on target ws-64x64-4mib" in line
+
+
+# --- no policy, no pass; a model that could not be costed never passes ------------------
+
+def test_no_policy_is_exit_2_with_the_remedy_in_check(repo: Repo) -> None:
+    repo.write("roofgate.yaml", f"targets: [{TARGET}]\nmodels:\n  - paths: ['models/*.onnx']\n")
+    save_model(fc_model(96), repo.path / "models/a.onnx")
+    repo.commit("grow")
+    result = invoke(["check", "--base", "main"])
+    assert result.exit_code == 2
+    line = one_line(result)
+    assert line.startswith("Error: models/a.onnx: no policy applies to this model")
+    assert "-p FILE" in line and "'policies:' to roofgate.yaml" in line and "-p default" in line
+
+
+@pytest.mark.parametrize("allow", ["false", "true"])
+def test_a_model_that_could_not_be_costed_never_passes(zoo: Path, allow: str) -> None:
+    write(zoo, "policies/p.yaml", POLICY.format(
+        policy_extra=f"allow_unanalysable: {allow}\n", rule_extra=""))
+    save(small_cnn(batch="N"), zoo / "models/unbound.onnx")  # every MAC behind an unbound dim
+    for args in (["audit"], ["evaluate", "models/unbound.onnx"]):
+        result = invoke(args)
+        assert result.exit_code == 1, (args, result.output)
+        assert "not-costed" in result.output and "--dim" in result.output, result.output
+    assert invoke(["evaluate", "models/unbound.onnx", "--dim", "N=1"]).exit_code == 0
+
+
+# --- random mistakes never exit 0 -----------------------------------------------------
+
+MISTAKES = {
+    "group glob typo": lambda: ("config", CONFIG.replace("models/**", "model/**")),
+    "ungated glob typo": lambda: ("config", CONFIG + "ungated: ['scrach/*.onnx']\n"),
+    "no policies": lambda: ("config", CONFIG.replace("policies: [policies/p.yaml]\n", "")),
+    "policy target typo": lambda: ("policy", POLICY.format(policy_extra="targets: [ws-64]\n",
+                                                           rule_extra="")),
+    "rule target typo": lambda: ("policy", POLICY.format(policy_extra="",
+                                                         rule_extra="    targets: [ws64x64]\n")),
+    "rule model typo": lambda: ("policy", POLICY.format(policy_extra="",
+                                                        rule_extra="    models: ['modles/*']\n")),
+    "rule op typo": lambda: ("policy", POLICY.format(
+        policy_extra="", rule_extra="    level: layer\n    op_types: [Gemmm]\n")),
+    "model outside groups": lambda: ("stray", ""),
+}
+
+
+@settings(max_examples=12, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(mistakes=st.lists(st.sampled_from(sorted(MISTAKES)), min_size=1, max_size=3, unique=True),
+       command=st.sampled_from(["audit", "evaluate"]))
+def test_no_run_with_a_mistake_exits_0(tmp_path_factory, mistakes: list[str],
+                                       command: str) -> None:
+    root = tmp_path_factory.mktemp("mistake")
+    write(root, "roofgate.yaml", CONFIG)
+    write(root, "policies/p.yaml", POLICY.format(policy_extra="", rule_extra=""))
+    save_model(fc_model(64), root / "models/a.onnx")
+    for name in mistakes:
+        kind, text = MISTAKES[name]()
+        if kind == "config":
+            write(root, "roofgate.yaml", text)
+        elif kind == "policy":
+            write(root, "policies/p.yaml", text)
+        else:
+            save_model(fc_model(32), root / "scratch/stray.onnx")
+    if command == "evaluate" and mistakes == ["model outside groups"]:
+        return  # evaluate judges the named files only: a stray file elsewhere is no mistake
+    args = ["audit"] if command == "audit" else ["evaluate", "models/a.onnx"]
+    old = Path.cwd()
+    import os
+
+    os.chdir(root)
+    try:
+        result = invoke(args)
+    finally:
+        os.chdir(old)
+    assert result.exit_code in (1, 2), (mistakes, command, result.output)
+    assert "Traceback" not in result.output
