@@ -96,7 +96,7 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
     records = []
     for target, cost in costs:
         record = build_run_record(name, profile, cost, target)
-        extra = tuple(w for w in loaded.warnings if w not in record.notes)
+        extra = tuple(w for w in (*loaded.warnings, *target.warnings) if w not in record.notes)
         records.append(replace(record, notes=record.notes + extra) if extra else record)
     return Analysis(loaded, profile, costs, tuple(records))
 

@@ -18,7 +18,7 @@ from gate.diff import diff_runs
 from gate.errors import InputError
 from gate.policy import allow_unanalysable, evaluate
 from gate.policy.spec import Policy
-from gate.records import RunRecord
+from gate.records import RunRecord, nothing_costed
 from gate.result import FAIL, NOT_COSTED, Entry, Finding, GateResult, ModelError, Verdict
 
 
@@ -69,7 +69,7 @@ BUILTIN_KIND = "builtin"  # the kind of verdicts no policy file declares
 def builtin_verdicts(head: RunRecord | None) -> tuple[Verdict, ...]:
     """Rules no policy can switch off or waive: a model none of whose layers could be costed
     fails (``not-costed``); its latency, energy and traffic are unknown, never zero."""
-    if head is None or not _nothing_costed(head):
+    if head is None or not nothing_costed(head):
         return ()
     unbound = any("unbound" in note for note in head.notes)
     remedy = ("bind the symbolic input dims (--dim NAME=N, or dims: in roofgate.yaml)" if unbound
@@ -83,15 +83,6 @@ def builtin_verdicts(head: RunRecord | None) -> tuple[Verdict, ...]:
                     description="at least one layer of the model can be costed",
                     model=head.model, target=head.target, status=FAIL, summary=summary,
                     remedy=remedy, findings=(finding,)),)
-
-
-def _nothing_costed(head: RunRecord) -> bool:
-    """No layer modelled, or none of the work (the reports call that "not costed")."""
-    layers = int(head.metrics.get("layers", 0))
-    if layers == 0:
-        return False
-    return (int(head.metrics.get("unmodelled_nodes", 0)) >= layers
-            or head.metrics.get("coverage_work_share", 1.0) == 0)
 
 
 def _index(runs: Sequence[RunRecord], side: str) -> dict[tuple[str, str], RunRecord]:

@@ -109,11 +109,13 @@ class Coverage:
     """How much of the model the profile can see.
 
     ``work_share`` weighs each node by its work: MACs where modelled, and for
-    an unmodelled node its output element count as a lower-bound proxy (it must
-    at least write each output once), so an unmodelled node always lowers it.
-    When some unmodelled node's output size is itself unknown, its work cannot be
-    bounded at all; the share then falls back to at most the node share, so a model
-    the tool cannot size never reads as nearly fully covered (fail closed).
+    an unmodelled node an *upper bound* of its work (``unmodelled_work_bound``:
+    input elements x output elements), so unmodelled work is never understated
+    and an attention or a large contraction cannot hide behind a tiny share.
+    When some unmodelled node's input or output size is itself unknown, its work
+    cannot be bounded at all; the share then falls back to at most the node
+    share, so a model the tool cannot size never reads as nearly fully covered
+    (fail closed).
     """
 
     nodes_total: int
@@ -486,9 +488,8 @@ def _coverage(layers: tuple[LayerProfile, ...]) -> Coverage:
             continue
         key = (layer.op_type, layer.domain, layer.unmodelled_reason)
         groups[key] = groups.get(key, 0) + 1
-        elements = sum(_numel(shape) for shape in layer.output_shapes)
-        work_unmodelled += max(1, elements)  # an unmodelled layer always lowers coverage
-        unsized += any(not _is_sized(shape) for shape in layer.output_shapes)
+        work_unmodelled += unmodelled_work_bound(layer)
+        unsized += not _sizes_known(layer)
     unmodelled = tuple(UnmodelledOp(op, domain, count, reason) for (op, domain, reason), count
                        in sorted(groups.items(), key=lambda item: (-item[1], item[0])))
     modelled = [layer for layer in layers if layer.modelled]
@@ -500,6 +501,32 @@ def _coverage(layers: tuple[LayerProfile, ...]) -> Coverage:
         unmodelled=unmodelled,
         unsized_unmodelled_nodes=unsized,
     )
+
+
+def unmodelled_work_bound(layer: LayerProfile) -> int:
+    """An upper bound of the MACs of a layer roofgate cannot count: input elements times
+    output elements, at least 1.
+
+    Why this bound: an op without internal loops computes each output element from
+    at most all of its input elements, with at most one multiply-accumulate per
+    input element, so it does at most (input elements) x (output elements) MACs.
+    That covers contractions (MatMul [M,K]x[K,N]: (MK + KN) x MN >= MKN MACs) and
+    attention (its work grows with sequence length squared, like the bound), where
+    the output size alone understated the work by orders of magnitude. It
+    overstates elementwise ops on purpose: unknown work is counted pessimistically
+    (fail closed); model the op to get its real share. Ops with subgraphs (Loop,
+    Scan, If) have their own cost functions. Parameters count as inputs.
+    """
+    inputs = sum(_numel(shape) for shape, dtype in zip(layer.input_shapes, layer.input_dtypes)
+                 if dtype)
+    outputs = sum(_numel(shape) for shape in layer.output_shapes)
+    return max(1, inputs) * max(1, outputs)
+
+
+def _sizes_known(layer: LayerProfile) -> bool:
+    """Whether every present input and every output of ``layer`` has a known size."""
+    present = [s for s, dtype in zip(layer.input_shapes, layer.input_dtypes) if dtype]
+    return all(_is_sized(shape) for shape in (*present, *layer.output_shapes))
 
 
 def _is_sized(shape: Shape | None) -> bool:

@@ -106,6 +106,18 @@ class RunRecord:
         return None
 
 
+def nothing_costed(run: RunRecord) -> bool:
+    """Whether none of the model's work could be costed: every layer unmodelled, or the
+    modelled layers do no arithmetic at all (no MACs, no FLOPs: shape plumbing) while
+    others could not be counted. Latency and energy of such a record are unknown."""
+    layers = int(run.metrics.get("layers", 0))
+    unmodelled = int(run.metrics.get("unmodelled_nodes", 0))
+    if layers == 0 or unmodelled == 0:
+        return False
+    no_arithmetic = run.metrics.get("macs", 0) == 0 and run.metrics.get("flops", 0) == 0
+    return unmodelled >= layers or no_arithmetic
+
+
 # --- JSON-ready dicts (the snapshot/result writers add versioning around these) ---
 
 def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:

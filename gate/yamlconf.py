@@ -136,6 +136,31 @@ _PREFIX = {
 _BINARY = {"Ki": 2**10, "Mi": 2**20, "Gi": 2**30, "Ti": 2**40}
 
 
+# Where a figure in each base unit usually lies, for suggesting the unit of a bare number:
+# model-level figures (a latency, an energy per inference, a buffer). Callers with a
+# narrower sense of a key (a target's energy per MAC) pass their own range.
+TYPICAL: dict[str, tuple[float, float]] = {
+    "s": (1e-6, 10.0), "J": (1e-9, 10.0), "W": (1e-6, 100.0), "Hz": (1e6, 1e10),
+    "B": (1024.0, 2.0**34), "B/s": (1e7, 1e13),
+}
+_SI_STEPS = ("f", "p", "n", "u", "m", "", "k", "M", "G", "T")
+_BINARY_STEPS = ("", "Ki", "Mi", "Gi", "Ti")
+
+
+def unit_suggestion(number: float, unit: str, typical: tuple[float, float] | None = None) -> str:
+    """'0.6 pJ' for a bare 0.6 meant as an energy per MAC: the prefix that puts ``number``
+    inside the typical range of ``unit`` (nearest its middle), else ``number`` in ``unit``."""
+    low, high = typical or TYPICAL.get(unit, (0.0, math.inf))
+    steps = _BINARY_STEPS if unit == "B" else _SI_STEPS
+    scales = {p: float(_BINARY[p]) if p in _BINARY else _PREFIX[p] for p in steps}
+    fits = [p for p in steps if low <= abs(number) * scales[p] <= high]
+    if not fits or number == 0:
+        return f"{number:g} {unit}"
+    middle = math.sqrt(low * high) if math.isfinite(high) and low > 0 else 1.0
+    best = min(fits, key=lambda p: abs(math.log(abs(number) * scales[p] / middle)))
+    return f"{number:g} {best}{unit}"
+
+
 def parse_quantity(text: str, unit: str) -> float | None:
     """Parse '4 MiB', '1.2 GHz', '25.6 GB/s', '0.2 pJ', '3e9' in the given base unit.
 
@@ -282,10 +307,24 @@ class Section:
         return self._in_range(node, key, float(value), minimum, maximum, default)
 
     def get_quantity(self, key: str, unit: str, default: float | None = None, *,
-                     required: bool = False, minimum: float | None = 0.0) -> float | None:
-        """A number with an optional SI/binary-prefixed unit, e.g. '4 MiB', '1.5 GHz'."""
+                     required: bool = False, minimum: float | None = 0.0,
+                     typical: tuple[float, float] | None = None) -> float | None:
+        """A number with its SI/binary-prefixed unit, e.g. '4 MiB', '1.5 GHz', '0.6 pJ'.
+
+        When ``unit`` is set (time, energy, power, size, bandwidth, frequency) the
+        unit is required: a bare number (``energy_per_mac: 0.6``) would be read in
+        base units (0.6 J) and is refused with a suggestion ('0.6 pJ', from
+        ``typical``, the range the figure usually lies in). Zero needs no unit.
+        """
         node, value = self._scalar(key, required)
         if value is _MISSING:
+            return default
+        bare = _bare_number(value)
+        if unit and bare is not None and bare != 0:
+            self.doc.problem(node, self._path(key), (
+                f"a bare number needs its unit (did you mean "
+                f"'{unit_suggestion(bare, unit, typical)}'?); a number alone would be read "
+                f"in {unit}"))
             return default
         if isinstance(value, bool) or value is None:
             parsed = None
@@ -297,6 +336,24 @@ class Section:
             expected = (f"a quantity in {unit} (e.g. '2 M{unit}')" if unit
                         else "a number (e.g. 2000000 or '2 M')")
             self.doc.problem(node, self._path(key), f"expected {expected}, got '{_text(node)}'")
+            return default
+        return self._in_range(node, key, parsed, minimum, None, default)
+
+    def get_percent(self, key: str, default: float | None = None, *, required: bool = False,
+                    minimum: float | None = 0.0) -> float | None:
+        """A percentage as a number of percent: ``10`` and ``'10%'`` both give 10.0."""
+        node, value = self._scalar(key, required)
+        if value is _MISSING:
+            return default
+        parsed: float | None = None
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            parsed = float(value)
+        elif isinstance(value, str):
+            match = _PERCENT.match(value)
+            parsed = float(match.group(1)) if match else None
+        if parsed is None:
+            self.doc.problem(node, self._path(key),
+                             f"expected a percentage like 10 or '10%', got '{_text(node)}'")
             return default
         return self._in_range(node, key, parsed, minimum, None, default)
 
@@ -411,6 +468,19 @@ class Section:
             self.doc.problem(node, self._path(key), f"must be at most {maximum:g}")
             return default
         return value
+
+
+def _bare_number(value: Any) -> float | None:
+    """``value`` as a number when it is one written without a unit ('0.6', 0.6), else None."""
+    if isinstance(value, bool):
+        return None
+    number = None
+    if isinstance(value, (int, float)):
+        number = float(value)
+    elif isinstance(value, str):
+        match = _QUANTITY.match(value)
+        number = float(match.group(1)) if match and not match.group(2) else None
+    return number if number is not None and math.isfinite(number) else None
 
 
 def _text(node: Node | None) -> str:

@@ -68,7 +68,8 @@ def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
     targets = [load_target(name) for name in names]  # a target given twice is costed once
     analysis = analyse_model(model, targets, dims=settings.dims, precision=settings.precision,
                              shapes=settings.shapes, fusion=not no_fusion)
-    for warning in analysis.loaded.warnings:  # they quote model-supplied names: terminal-safe
+    target_warnings = [w for target in targets for w in target.warnings]
+    for warning in [*analysis.loaded.warnings, *target_warnings]:  # terminal-safe: model names
         click.echo(f"warning: {term_safe(one_line(warning))}", err=True)
     if analysis.loaded.unbound_dims:
         binds = " ".join(f"--dim {term_safe(one_line(d))}=N" for d in analysis.loaded.unbound_dims)

@@ -266,7 +266,7 @@ def _fields_regression(sec: Section, level: str) -> _KindFields | None:
                          f"so its regression is "
                          f"{'a decrease' if good == 'decrease' else 'an increase'}: "
                          f"use 'max_{good}_{key[-3:]}'")
-    pct = sec.get_number(f"max_{good}_pct", minimum=0.0)
+    pct = sec.get_percent(f"max_{good}_pct", minimum=0.0)
     unit = spec.metric_unit(metric)
     absolute = (sec.get_share(f"max_{good}_abs") if unit == "share"
                 else sec.get_quantity(f"max_{good}_abs", unit))

@@ -8,16 +8,24 @@ from __future__ import annotations
 
 # A worsening smaller than this share of the values compared is float noise, not a change.
 _NOISE = 1e-9
+# Limits are met by values equal to them within this relative tolerance: a share computed
+# as 1 - 38/40 is 0.050000000000000044 in floating point, and 2 of 40 nodes must meet a 5%
+# limit. Far below any difference a rule is meant to catch.
+LIMIT_REL_TOL = 1e-9
+
+
+def _slack(value: float, limit: float) -> float:
+    return LIMIT_REL_TOL * max(abs(value), abs(limit))
 
 
 def below_minimum(value: float, minimum: float) -> bool:
-    """A minimum is met by a value equal to it."""
-    return value < minimum
+    """A minimum is met by a value equal to it (within ``LIMIT_REL_TOL``)."""
+    return value < minimum - _slack(value, minimum)
 
 
 def above_maximum(value: float, maximum: float) -> bool:
-    """A maximum is met by a value equal to it."""
-    return value > maximum
+    """A maximum is met by a value equal to it (within ``LIMIT_REL_TOL``)."""
+    return value > maximum + _slack(value, maximum)
 
 
 def worsening(base: float, head: float, higher_is_better: bool) -> float:
@@ -39,8 +47,8 @@ def regression_exceeds(base: float, head: float, *, higher_is_better: bool,
     worse = worsening(base, head, higher_is_better)
     if worse <= _NOISE * max(abs(base), abs(head)) or worse <= 0:
         return False
-    past_pct = max_pct is None or base == 0 or worse / abs(base) * 100.0 > max_pct
-    past_abs = max_abs is None or worse > max_abs
+    past_pct = max_pct is None or base == 0 or above_maximum(worse / abs(base) * 100.0, max_pct)
+    past_abs = max_abs is None or above_maximum(worse, max_abs)
     return past_pct and past_abs
 
 

@@ -18,6 +18,7 @@ from typing import TextIO
 from gate.diff import same_value
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 from gate.policy.spec import higher_is_better
+from gate.records import nothing_costed
 from gate.report.text import fmt_change, fmt_metric, fmt_percent, shorten, term_safe
 from gate.result import FAIL, NOT_GATED, WAIVED, Entry, Finding, GateResult, Verdict
 
@@ -165,7 +166,7 @@ def _figures(entry: Entry) -> str:
     record = entry.head
     if record is None:
         return "(no longer present: nothing to gate)"
-    if record.metrics.get("coverage_work_share", 1.0) == 0:
+    if nothing_costed(record):
         return "not costed: no layer could be modelled (see the coverage rule or `profile`)"
     parts = []
     for metric, label in KEY_METRICS:

@@ -8,6 +8,7 @@ The README (docs/targets.md) documents the schema; keep the two in step.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from functools import lru_cache
 from pathlib import Path
 from types import MappingProxyType
@@ -59,8 +60,12 @@ def parse_target(doc: YamlDocument, source: str | None = None) -> TargetProfile:
     buffers = _read_buffers(root)
     dram_bytes_per_s = _read_dram(root)
     energy = _read_energy(root)
-    layer_overhead_s = root.get_quantity("layer_overhead", "s", 0.0)
-    vector = _read_engine(root, "vector_unit", clock_hz, required=False)
+    layer_overhead_s = root.get_quantity("layer_overhead", "s", 0.0,
+                                         typical=PLAUSIBLE["layer_overhead"])
+    # A clock that is present but invalid is reported once; the vector unit, which
+    # defaults to it, does not add "required key is missing" (its value is never used).
+    vector_clock = clock_hz if clock_hz is not None or not root.has("clock") else 1.0
+    vector = _read_engine(root, "vector_unit", vector_clock, required=False)
     host = _read_engine(root, "host", None, required=True)
     placement = _read_placement(root, vector is not None or root.has("vector_unit"))
     weights_resident = root.get_bool("weights_resident", False)
@@ -121,7 +126,41 @@ def _figures_in_range(doc: YamlDocument, target: TargetProfile) -> TargetProfile
                         f"take ({FIGURE_MIN:g} to {FIGURE_MAX:g} {unit}); figures derived from "
                         "it would overflow".replace("  ", " "))
     doc.raise_if_problems()
-    return target
+    warnings = implausible_figures(figures + _buffer_figures(target))
+    return replace(target, warnings=tuple(f"{doc.path}: {w}" for w in warnings))
+
+
+# Where the figures of an edge accelerator lie, per key (the last part of its key path),
+# in SI base units; a figure outside is most likely a wrong unit ('0.6 J' per MAC). Energy:
+# Horowitz, ISSCC 2014 (45 nm), from memory: an 8-bit add 0.03 pJ, a 32-bit float multiply
+# 3.7 pJ, an 8 KB SRAM 64-bit read 10 pJ, a DRAM 64-bit access 1.3-2.6 nJ; the ranges
+# below are a decade or more wider on each side. Clocks, bandwidths, buffers, static power
+# and overheads: common practice, no source.
+PLAUSIBLE: dict[str, tuple[float, float]] = {
+    "clock": (1e6, 1e10), "bandwidth": (1e6, 1e13),
+    "energy_per_mac": (1e-16, 1e-10), "energy_per_op": (1e-16, 1e-10),
+    "buffer_per_byte": (1e-16, 1e-10), "noc_per_byte": (1e-16, 1e-10),
+    "dram_per_byte": (1e-14, 1e-8), "static_power": (1e-7, 1e3),
+    "layer_overhead": (1e-10, 1e-2), "buffer": (256.0, 2.0**34),
+}
+
+
+def implausible_figures(figures: list[tuple[str, float, str]]) -> list[str]:
+    """One warning per figure outside the range ``PLAUSIBLE`` gives its key."""
+    out = []
+    for key, value, unit in figures:
+        low, high = PLAUSIBLE.get(key.rsplit(".", 1)[-1], (0.0, math.inf))
+        if value != 0 and unit and not low <= abs(value) <= high:
+            out.append(f"{key}: {value:g} {unit} is far outside what edge accelerators use "
+                       f"({low:g} to {high:g} {unit}); check the unit")
+    return out
+
+
+def _buffer_figures(target: TargetProfile) -> list[tuple[str, float, str]]:
+    sizes = (("buffers.parameter", target.param_buffer_bytes),
+             ("buffers.activation", target.activation_buffer_bytes),
+             ("buffers.unified", target.unified_buffer_bytes))
+    return [(f"{key}.buffer", float(value), "B") for key, value in sizes if value]
 
 
 def _valid_name(name: str) -> bool:
@@ -163,7 +202,8 @@ def _read_precision(array: Section, name: str, sub: Section | None,
                                       "energy_per_mac")
         return None
     rate = sub.get_number("macs_per_pe_per_cycle", required=True, minimum=0.0)
-    energy = sub.get_quantity("energy_per_mac", "J", required=True)
+    energy = sub.get_quantity("energy_per_mac", "J", required=True,
+                              typical=PLAUSIBLE["energy_per_mac"])
     sub.finish()
     if rate is not None and rate <= 0:
         sub.bad("macs_per_pe_per_cycle", "must be above zero")
@@ -192,7 +232,7 @@ def _read_buffers(root: Section) -> tuple[int, int, int]:
 
 
 def _whole_bytes(section: Section, key: str) -> int:
-    value = section.get_quantity(key, "B", 0.0)
+    value = section.get_quantity(key, "B", 0.0, typical=PLAUSIBLE["buffer"])
     if value is None:
         return 0
     if value != math.floor(value):
@@ -205,7 +245,8 @@ def _read_dram(root: Section) -> float:
     dram = root.get_section("dram", required=True)
     if dram is None:
         return 0.0
-    bandwidth = dram.get_quantity("bandwidth", "B/s", required=True)
+    bandwidth = dram.get_quantity("bandwidth", "B/s", required=True,
+                                  typical=PLAUSIBLE["bandwidth"])
     dram.finish()
     if bandwidth is not None and bandwidth <= 0:
         dram.bad("bandwidth", "must be above zero")
@@ -216,10 +257,10 @@ def _read_energy(root: Section) -> tuple[float, float, float, float]:
     energy = root.get_section("energy", required=True)
     if energy is None:
         return 0.0, 0.0, 0.0, 0.0
-    buffer_j = energy.get_quantity("buffer_per_byte", "J", required=True)
-    noc_j = energy.get_quantity("noc_per_byte", "J", required=True)
-    dram_j = energy.get_quantity("dram_per_byte", "J", required=True)
-    static_w = energy.get_quantity("static_power", "W", 0.0)
+    buffer_j, noc_j, dram_j = (
+        energy.get_quantity(key, "J", required=True, typical=PLAUSIBLE[key])
+        for key in ("buffer_per_byte", "noc_per_byte", "dram_per_byte"))
+    static_w = energy.get_quantity("static_power", "W", 0.0, typical=PLAUSIBLE["static_power"])
     energy.finish()
     return (float(buffer_j or 0.0), float(noc_j or 0.0), float(dram_j or 0.0),
             float(static_w or 0.0))
@@ -232,8 +273,10 @@ def _read_engine(root: Section, key: str, default_clock_hz: float | None,
         return None
     ops = section.get_number("ops_per_cycle", required=True, minimum=0.0)
     clock = section.get_quantity("clock", "Hz", default_clock_hz, required=default_clock_hz is None)
-    energy = section.get_quantity("energy_per_op", "J", required=True)
-    overhead = section.get_quantity("layer_overhead", "s", 0.0)
+    energy = section.get_quantity("energy_per_op", "J", required=True,
+                                  typical=PLAUSIBLE["energy_per_op"])
+    overhead = section.get_quantity("layer_overhead", "s", 0.0,
+                                    typical=PLAUSIBLE["layer_overhead"])
     section.finish()
     if ops is not None and ops <= 0:
         section.bad("ops_per_cycle", "must be above zero")

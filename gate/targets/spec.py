@@ -119,6 +119,9 @@ class TargetProfile:
     placement: Mapping[str, str] = field(default_factory=dict)  # op type -> engine
     weights_resident: bool = False  # keep all parameters on chip across inferences when they fit
     fusion: FusionSpec | None = None  # None: every layer runs alone (layer by layer)
+    # Figures far outside what edge accelerators use (most likely a wrong unit): shown as
+    # notes on every record costed on this target, never silently accepted.
+    warnings: tuple[str, ...] = ()
 
     @property
     def pe_count(self) -> int:
