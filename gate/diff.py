@@ -73,7 +73,10 @@ def metric_deltas(base: LayerRecord | RunRecord, head: LayerRecord | RunRecord,
 
 
 def same_value(a: Metric, b: Metric) -> bool:
-    """Equal ints, or floats equal within ``REL_TOL``."""
+    """Equal ints, or floats equal within ``REL_TOL``; an unknown value (None) equals
+    nothing, so unknown figures always show (as '?'), never as unchanged."""
+    if a is None or b is None:
+        return False
     if isinstance(a, int) and isinstance(b, int):
         return a == b
     return math.isclose(float(a), float(b), rel_tol=REL_TOL, abs_tol=1e-300)
@@ -94,7 +97,7 @@ def ranked_changes(diff: RunDiff, limit: int | None = None) -> list[LayerChange]
 def latency_change_s(change: LayerChange) -> float:
     """head - base latency of a layer change (0.0 when latency did not change)."""
     base, head = change.deltas.get("latency_s", (0.0, 0.0))
-    return float(head) - float(base)
+    return float(head or 0.0) - float(base or 0.0)  # ranking only: unknown ranks as no change
 
 
 # --- matching passes ----------------------------------------------------------------
@@ -191,7 +194,7 @@ def _solo(layer: LayerRecord, is_base: bool) -> dict[str, tuple[Metric, Metric]]
 
 def _largest_ratio(change: LayerChange) -> float:
     ratios = [abs(float(h) - float(b)) / abs(float(b)) if b else math.inf
-              for b, h in change.deltas.values()]
+              for b, h in change.deltas.values() if b is not None and h is not None]
     return max(ratios, default=0.0)
 
 

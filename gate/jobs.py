@@ -28,7 +28,7 @@ from gate.costmodel import ModelCost, cost_model
 from gate.errors import InputError, InternalError, RoofgateError, one_safe_line
 from gate.model.loader import LoadedModel, load_model
 from gate.profile import ModelProfile, profile_model
-from gate.records import RunRecord, run_from_dict, run_to_dict
+from gate.records import RunRecord, run_from_dict, run_to_dict, with_unknown_totals
 from gate.summarize import build_run_record
 from gate.targets.spec import TargetProfile
 
@@ -97,7 +97,8 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
     for target, cost in costs:
         record = build_run_record(name, profile, cost, target)
         extra = tuple(w for w in (*loaded.warnings, *target.warnings) if w not in record.notes)
-        records.append(replace(record, notes=record.notes + extra) if extra else record)
+        record = replace(record, notes=record.notes + extra) if extra else record
+        records.append(with_unknown_totals(record))
     return Analysis(loaded, profile, costs, tuple(records))
 
 

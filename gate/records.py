@@ -16,7 +16,16 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-Metric = int | float
+Metric = int | float | None  # None: unknown (never 0); JSON null, printed as '?'
+
+# Model totals that depend on costing the work: unknown (None) in a record none of whose
+# work could be costed (``nothing_costed``), never 0.
+COSTED_MODEL_METRICS: tuple[str, ...] = (
+    "macs", "flops", "latency_s", "inferences_per_s", "achieved_flops_per_s",
+    "peak_flops_share", "utilization", "energy_j", "energy_mac_j", "energy_buffer_j",
+    "energy_noc_j", "energy_dram_param_j", "energy_dram_act_j", "energy_static_j",
+    "flops_per_j", "peak_flops_per_j_share", "param_dram_bytes", "act_dram_bytes",
+)
 
 # Layer metrics every LayerRecord carries (documented in the README).
 LAYER_METRICS: tuple[str, ...] = (
@@ -110,12 +119,44 @@ def nothing_costed(run: RunRecord) -> bool:
     """Whether none of the model's work could be costed: every layer unmodelled, or the
     modelled layers do no arithmetic at all (no MACs, no FLOPs: shape plumbing) while
     others could not be counted. Latency and energy of such a record are unknown."""
-    layers = int(run.metrics.get("layers", 0))
-    unmodelled = int(run.metrics.get("unmodelled_nodes", 0))
+    m = run.metrics
+    return no_work_costed(int(m.get("layers") or 0), int(m.get("unmodelled_nodes") or 0),
+                          bool(m.get("macs")) or bool(m.get("flops")))
+
+
+def no_work_costed(layers: int, unmodelled: int, any_arithmetic: bool) -> bool:
+    """The criterion of ``nothing_costed`` on plain counts (the profile table uses it too)."""
     if layers == 0 or unmodelled == 0:
         return False
-    no_arithmetic = run.metrics.get("macs", 0) == 0 and run.metrics.get("flops", 0) == 0
-    return unmodelled >= layers or no_arithmetic
+    return unmodelled >= layers or not any_arithmetic
+
+
+def with_unknown_totals(run: RunRecord) -> RunRecord:
+    """``run`` with its costed model totals unknown (None) when none of its work was
+    costed: its latency and energy are not 0, they are not known."""
+    if not nothing_costed(run):
+        return run
+    metrics = {k: (None if k in COSTED_MODEL_METRICS else v) for k, v in run.metrics.items()}
+    return RunRecord(run.model, run.model_name, run.target, run.precision, metrics,
+                     run.target_figures, run.layers, run.unmodelled, run.notes)
+
+
+def coverage_note(run: RunRecord) -> str:
+    """One line saying how much of the model is modelled and how to fix it, or '' when all
+    of it is: every command shows it (figures of a partly modelled model are lower bounds)."""
+    share = run.metrics.get("coverage_work_share")
+    unmodelled = int(run.metrics.get("unmodelled_nodes") or 0)
+    if not unmodelled:
+        return ""
+    layers = int(run.metrics.get("layers") or 0)
+    what = ("none of the work could be costed, so latency and energy are unknown"
+            if nothing_costed(run) else
+            f"only {float(share or 0) * 100:.1f}% of the work is modelled, so totals are lower "
+            "bounds")
+    remedy = next((n for n in run.notes if "unbound" in n), "")
+    fix = (f"; {remedy}" if remedy else
+           "; see `roofgate profile` for why each layer is unmodelled")
+    return f"{run.model} on {run.target}: {unmodelled} of {layers} layers unmodelled: {what}{fix}"
 
 
 # --- JSON-ready dicts (the snapshot/result writers add versioning around these) ---
@@ -191,7 +232,7 @@ def run_from_dict(data: Mapping[str, Any]) -> RunRecord:
 def _metrics(data: Mapping[str, Any]) -> dict[str, Metric]:
     out: dict[str, Metric] = {}
     for key, value in data.items():
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
             raise ValueError(f"metric {key!r} is not a number")
         out[str(key)] = value
     return out

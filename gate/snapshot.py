@@ -8,11 +8,11 @@ sorted, two-space indent (flat containers on one line), floats rounded to ``FLOA
 digits, a final newline. The same records always give the same bytes, so a
 committed baseline only changes when a figure does.
 
-Layout (version 1)::
+Layout (version 2)::
 
     {
       "format": "roofgate-snapshot",
-      "version": 1,
+      "version": 2,
       "runs": [ {model, model_name, target, precision, metrics, target_figures,
                  unmodelled, notes, layers: [ {name, op_type, signature, ..., metrics} ]} ]
     }
@@ -22,6 +22,8 @@ and add a line here and in docs/reports.md):
 
   1  first version. Layers carry ``fused_into`` and ``fused_ops`` (layer fusion);
      a layer without them reads as not fused.
+  2  a metric may be null: unknown (a model none of whose work could be costed), never 0.
+     Version 1 files read unchanged.
 """
 
 from __future__ import annotations
@@ -38,7 +40,7 @@ from gate.outfile import write_text
 from gate.records import RunRecord, run_from_dict, run_to_dict
 
 SNAPSHOT_FORMAT = "roofgate-snapshot"
-SNAPSHOT_VERSION = 1
+SNAPSHOT_VERSION = 2
 FLOAT_DIGITS = 12  # significant digits kept; the diff's float tolerance is below this
 MAX_SNAPSHOT_BYTES = 256 * 1024 * 1024
 
@@ -135,7 +137,7 @@ def read_snapshot(path: str) -> tuple[RunRecord, ...]:
 def loads_snapshot(text: str, path: str = "<snapshot>") -> tuple[RunRecord, ...]:
     """Parse snapshot text (``path`` only names it in messages)."""
     data = load_versioned_json(text, path, "snapshot", SNAPSHOT_FORMAT, SNAPSHOT_VERSION,
-                               remedy="regenerate it with `roofgate baseline`")
+                               remedy="regenerate it with `roofgate baseline`", oldest_version=1)
     runs_data = data.get("runs")
     if not isinstance(runs_data, list):
         raise InputError("snapshot has no 'runs' list; regenerate it with `roofgate baseline`",
@@ -146,20 +148,23 @@ def loads_snapshot(text: str, path: str = "<snapshot>") -> tuple[RunRecord, ...]
 
 
 def load_versioned_json(text: str, path: str, what: str, expected_format: str,
-                        supported_version: int, *, remedy: str) -> Mapping[str, Any]:
+                        supported_version: int, *, remedy: str,
+                        oldest_version: int | None = None) -> Mapping[str, Any]:
     """Parse a versioned roofgate JSON document (snapshot, result), refusing others clearly."""
     try:
         data = json.loads(text)
     except json.JSONDecodeError as exc:
         raise InputError(f"not a roofgate {what} (invalid JSON at line {exc.lineno}, "
                          f"column {exc.colno}: {exc.msg})", path) from None
-    check_format(data, expected_format, supported_version, path, remedy=remedy)
+    check_format(data, expected_format, supported_version, path, remedy=remedy,
+                 oldest_version=oldest_version)
     return data  # type: ignore[no-any-return]  # check_format proved it is a mapping
 
 
 def check_format(data: Any, expected_format: str, supported_version: int, path: str,
-                 *, remedy: str) -> None:
-    """Refuse a document that is not ``expected_format`` at ``supported_version``, clearly."""
+                 *, remedy: str, oldest_version: int | None = None) -> None:
+    """Refuse a document that is not ``expected_format`` at a version from ``oldest_version``
+    (default: only ``supported_version``) to ``supported_version``, clearly."""
     if not isinstance(data, Mapping) or data.get("format") != expected_format:
         found = data.get("format") if isinstance(data, Mapping) else type(data).__name__
         raise InputError(f"not a {expected_format} file (format is {found!r}); {remedy}", path)
@@ -170,7 +175,7 @@ def check_format(data: Any, expected_format: str, supported_version: int, path: 
         raise InputError(
             f"{expected_format} version {version} was written by a newer roofgate; this one "
             f"reads version {supported_version}: upgrade roofgate, or {remedy}", path)
-    if version < supported_version:
+    if version < (supported_version if oldest_version is None else oldest_version):
         raise InputError(
             f"{expected_format} version {version} is older than this roofgate reads "
             f"(version {supported_version}); {remedy}", path)

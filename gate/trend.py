@@ -37,9 +37,9 @@ def trend_notes(result: GateResult) -> list[str]:
 def _moves(base: RunRecord, head: RunRecord) -> list[tuple[str, float]]:
     out = []
     for metric in ("latency_s", "energy_j"):
-        old, new = float(base.metrics.get(metric, 0)), float(head.metrics.get(metric, 0))
-        if old > 0:
-            out.append((metric, (new - old) / old))
+        old, new = base.metrics.get(metric), head.metrics.get(metric)
+        if old is not None and new is not None and old > 0:  # unknown: no trend to tell
+            out.append((metric, (float(new) - float(old)) / float(old)))
     return out
 
 

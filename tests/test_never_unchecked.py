@@ -254,3 +254,52 @@ def test_no_run_with_a_mistake_exits_0(tmp_path_factory, mistakes: list[str],
         os.chdir(old)
     assert result.exit_code in (1, 2), (mistakes, command, result.output)
     assert "Traceback" not in result.output
+
+
+# --- unknown is never zero: an unbound dim in every command ------------------------------
+
+UNBOUND_COMMANDS = {
+    "profile": (["profile", "models/unbound.onnx", "--format", "json"], 0),
+    "evaluate": (["evaluate", "models/unbound.onnx"], 1),
+    "baseline": (["baseline", "models/unbound.onnx", "-o", "snap.json"], 0),
+    "diff": (["diff", "models/unbound.onnx", "models/unbound.onnx"], 0),
+    "audit": (["audit", "models/unbound.onnx"], 1),
+}
+
+
+@pytest.mark.parametrize("command", sorted(UNBOUND_COMMANDS))
+def test_an_unbound_dim_is_unknown_never_zero_in_every_command(zoo: Path, command: str) -> None:
+    """Latency, energy and MACs of a model whose every MAC sits behind an unbound dim are
+    unknown ('?', null in JSON), never 0 or '='; the remedy (--dim) is named."""
+    import json
+
+    save(small_cnn(batch="N"), zoo / "models/unbound.onnx")
+    args, code = UNBOUND_COMMANDS[command]
+    result = invoke(args)
+    assert result.exit_code == code, (command, result.output)
+    assert "--dim N=N" in result.output, (command, result.output)
+    if command == "profile":
+        document = json.loads(result.stdout)
+        (record,) = document["targets"]
+        assert record["metrics"]["latency_s"] is None and record["metrics"]["macs"] is None
+        assert document["totals"]["macs"] is None  # not 0
+        assert "unbound symbolic dims" in result.stderr
+    elif command == "baseline":
+        (run,) = json.loads((zoo / "snap.json").read_text())["runs"]
+        assert run["metrics"]["energy_j"] is None
+        assert result.stderr.startswith("warning: models/unbound.onnx on ws-64x64-4mib: ")
+    elif command == "diff":
+        latency = next(line for line in result.stdout.splitlines()
+                       if line.strip().startswith("latency"))
+        assert latency.split() == ["latency", "?", "->", "?", "?"], latency
+        assert "warning:" in result.stderr and "unknown" in result.stderr
+    else:
+        assert "not costed" in result.output and "latency 0 ms" not in result.output
+
+
+def test_check_with_an_unbound_dim_fails_and_names_the_remedy(repo: Repo) -> None:
+    save(small_cnn(batch="N"), repo.path / "models/unbound.onnx")
+    repo.commit("an unbound model")
+    result = invoke(["check", "--base", "main"])
+    assert result.exit_code == 1, result.output
+    assert "not-costed" in result.output and "--dim N=N" in result.output

@@ -64,4 +64,4 @@ def test_unreadable_documents_get_a_clear_message(text, message) -> None:
 def test_reporter_protocol() -> None:
     stream = io.StringIO()
     REPORTER.write(demo_result(), stream)
-    assert REPORTER.name == "json" and json.loads(stream.getvalue())["version"] == 1
+    assert REPORTER.name == "json" and json.loads(stream.getvalue())["version"] == RESULT_VERSION

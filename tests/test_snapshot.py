@@ -82,8 +82,8 @@ def test_non_finite_numbers_are_refused_not_written() -> None:
 
 
 @pytest.mark.parametrize(("doc", "message"), [
-    ({"format": "roofgate-snapshot", "version": 2, "runs": []},
-     "version 2 was written by a newer roofgate; this one reads version 1: upgrade roofgate"),
+    ({"format": "roofgate-snapshot", "version": 3, "runs": []},
+     "version 3 was written by a newer roofgate; this one reads version 2: upgrade roofgate"),
     ({"format": "roofgate-snapshot", "version": 0, "runs": []},
      "version 0 is older than this roofgate reads"),
     ({"format": "roofgate-snapshot", "runs": []}, "without an integer 'version'"),
@@ -134,3 +134,19 @@ def test_any_name_survives_even_a_lone_surrogate(tmp_path) -> None:
     write_snapshot([run(layers=(layer(odd),))], str(path))
     assert path.read_bytes().isascii()
     assert read_snapshot(str(path))[0].layers[0].name == odd
+
+
+def test_a_version_1_snapshot_still_reads_and_unknown_metrics_round_trip(tmp_path) -> None:
+    """Version 2 only allows null (unknown) metrics, so version 1 files stay readable; an
+    unknown figure comes back unknown, never 0."""
+    from gate.records import run_to_dict
+
+    record = run()
+    unknown = replace(record, metrics={**record.metrics, "latency_s": None})
+    path = tmp_path / "v1.json"
+    path.write_text(json.dumps({"format": "roofgate-snapshot", "version": 1,
+                                "runs": [run_to_dict(record)]}), encoding="utf-8")
+    assert [r.key for r in read_snapshot(str(path))] == [record.key]
+    write_snapshot([unknown], str(tmp_path / "v2.json"))
+    (back,) = read_snapshot(str(tmp_path / "v2.json"))
+    assert back.metrics["latency_s"] is None

@@ -71,9 +71,11 @@ def test_improvement_is_named() -> None:
 def test_partial_and_zero_coverage_are_visible() -> None:
     partial = terminal.render(result(entry(run(coverage_work_share=0.75))))
     assert "only 75.0% of the work modelled (figures too low)" in partial
-    nothing = terminal.render(result(entry(run(coverage_work_share=0.0))))
+    nothing = terminal.render(result(entry(run(coverage_work_share=0.0, unmodelled_nodes=3,
+                                               coverage_node_share=0.0))))
     assert "not costed: no layer could be modelled" in nothing
     assert "latency 0 ms" not in nothing  # never a silent zero
+    assert "coverage: 3 of 3 layers unmodelled: none of the work could be costed" in nothing
 
 
 def test_deleted_model_line() -> None:

@@ -12,6 +12,7 @@ The work is done in ``gate.files``, ``gate.jobs`` and ``gate.compare``.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -28,6 +29,7 @@ from gate.cli.common import (
 )
 from gate.errors import InputError
 from gate.outfile import OutputRules
+from gate.records import RunRecord
 from gate.report import report_options, report_paths, write_reports
 from gate.report.text import term_safe
 
@@ -96,6 +98,7 @@ def baseline_command(models: tuple[str, ...], output: str, **kwargs: Any) -> Non
         raise InputError(f"{errors[0].model}: {errors[0].message}"
                          + (f" (and {len(errors) - 1} more models failed)" if len(errors) > 1
                             else "") + "; no baseline written")
+    _coverage_warnings(runs)  # a baseline of lower bounds (or unknowns) must not look complete
     write_snapshot(runs, output)
     if output != "-":
         click.echo(f"wrote {len(runs)} run(s) of {len(dict.fromkeys(models))} model(s) on "
@@ -129,4 +132,14 @@ def diff_command(old: str, new: str, limit: int, **kwargs: Any) -> None:
     result = diff_sides(config, old, new, explicit_targets=bool(kwargs["targets"]))
     written = write_reports(result, paths, rules)
     to_stdout = any(path == "-" for path in paths.values())
+    _coverage_warnings([run for e in result.entries for run in (e.base, e.head) if run])
     click.echo(render_diff(result, limit, written, (old, new)), nl=False, err=to_stdout)
+
+
+def _coverage_warnings(runs: Sequence[RunRecord]) -> None:
+    """One ``warning:`` line on stderr per partly or not costed record, with the remedy."""
+    from gate.records import coverage_note
+
+    for note in dict.fromkeys(coverage_note(run) for run in runs):
+        if note:
+            click.echo(f"warning: {term_safe(note)}", err=True)

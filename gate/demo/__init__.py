@@ -230,7 +230,7 @@ def outcome_problems(result: GateResult) -> list[str]:
     if not any(f.layer == WIDENED_LAYER for v in failing for f in v.findings):
         problems.append(f"expected a finding naming layer {WIDENED_LAYER}")
     wake = [e for e in result.entries if e.model == WAKEWORD]
-    if not wake or not all(e.diff and e.diff.totals["param_bytes"][1] <
-                           e.diff.totals["param_bytes"][0] for e in wake):
+    if not wake or not all(e.diff and (e.diff.totals["param_bytes"][1] or 0) <
+                           (e.diff.totals["param_bytes"][0] or 0) for e in wake):
         problems.append("expected wakeword.onnx's parameter bytes to fall")
     return problems

@@ -8,6 +8,7 @@ sentences naming the layer, the metric, the value, the limit and a remedy.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -110,9 +111,9 @@ def _ratio(value: float, limit: float, lower_is_bad: bool) -> float:
 
 
 def _top_layers(run: RunRecord, metric: str, count: int = 3) -> str:
-    ranked = sorted(run.layers, key=lambda layer: layer.metrics.get(metric, 0), reverse=True)
-    parts = [f"{layer.name} {fmt_metric(metric, layer.metrics.get(metric, 0))}"
-             for layer in ranked[:count] if layer.metrics.get(metric, 0) > 0]
+    ranked = sorted(run.layers, key=lambda layer: layer.metrics.get(metric) or 0, reverse=True)
+    parts = [f"{layer.name} {fmt_metric(metric, layer.metrics.get(metric))}"
+             for layer in ranked[:count] if (layer.metrics.get(metric) or 0) > 0]
     return f" (largest: {', '.join(parts)})" if parts else ""
 
 
@@ -135,6 +136,12 @@ def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
         bounds.append(("maximum", rule.maximum, False))
 
     def judge(value: Metric, label: str, short_name: str) -> Breach | None:
+        if value is None:  # unknown: a limit it cannot be shown to meet is not met
+            text = f"{label}: {named} is unknown, so the limit cannot be checked"
+            return Breach(None if label == "Model" else short_name, metric, value,
+                          bounds[0][1] if bounds else None,
+                          f"{text}: bind the unbound dims or see `roofgate profile`.", text,
+                          f"{short_name} ?", math.inf)
         for name, limit, low in bounds:
             failed = below_minimum(value, limit) if low else above_maximum(value, limit)
             if failed:
@@ -172,7 +179,7 @@ def check_min_utilization(rule: Rule, head: RunRecord, base: RunRecord | None,
     are skipped (utilization is 0 off the array by definition, and tiny layers cannot fill it)."""
     def on_array(layer: LayerRecord) -> bool:
         return (layer.modelled and layer.engine == "array"
-                and layer.metrics.get("macs", 0) >= max(rule.min_layer_macs, 1))
+                and (layer.metrics.get("macs") or 0) >= max(rule.min_layer_macs, 1))
 
     if rule.level == spec.MODEL and not any(on_array(layer) for layer in head.layers):
         return Outcome((), 0, "", "no layer runs on the PE array; utilization not checked")
@@ -222,7 +229,7 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
             breaches.append(_buffer_breach(layer, "param_bytes", value, "parameters",
                                            param_buffer, "parameter", head.target, remedy))
         if rule.check_activations and not layer.activations_fit:
-            value = layer.metrics.get("input_bytes", 0) + layer.metrics.get("output_bytes", 0)
+            value = (layer.metrics.get("input_bytes") or 0) + (layer.metrics.get("output_bytes") or 0)
             breaches.append(_buffer_breach(layer, "activation_bytes", value,
                                            "input and output activations", act_buffer,
                                            "activation", head.target, remedy))
@@ -240,7 +247,8 @@ def _buffer_breach(layer: LayerRecord, metric: str, value: Metric, what: str, bu
     text = (f"{_layer_label(layer)}: {what} {fmt_bytes(value)} exceed the "
             f"{fmt_bytes(buffer)} {buffer_kind} buffer of {target}")
     return Breach(layer.name, metric, value, buffer, f"{text}: {remedy}.", text,
-                  f"{layer.name} {fmt_bytes(value)}", _ratio(value, buffer, False))
+                  f"{layer.name} {fmt_bytes(value)}",
+                  _ratio(float(value or 0), float(buffer or 0), False))
 
 
 def check_max_unmodelled(rule: Rule, head: RunRecord, base: RunRecord | None,
@@ -252,7 +260,7 @@ def check_max_unmodelled(rule: Rule, head: RunRecord, base: RunRecord | None,
     for measure, limit in (("work", rule.max_work_share), ("node", rule.max_node_share)):
         if limit is None:
             continue
-        value = unmodelled_share(float(_model_value(head, f"coverage_{measure}_share")))
+        value = unmodelled_share(float(_model_value(head, f"coverage_{measure}_share") or 0.0))
         of_what, verb = ("the work", "is") if measure == "work" else ("the nodes", "are")
         shown.append(f"{fmt_percent(value)} of {of_what} unmodelled (limit {fmt_percent(limit)})")
         if above_maximum(value, limit):

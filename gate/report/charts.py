@@ -102,8 +102,8 @@ def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSe
     total_s = _finite(run.metrics, "latency_s") or 1.0
     plottable, unplottable, unmodelled = [], 0, 0
     for layer in run.layers:
-        ai = float(layer.metrics.get("arithmetic_intensity", 0.0))
-        achieved = float(layer.metrics.get("achieved_flops_per_s", 0.0))
+        ai = _finite(layer.metrics, "arithmetic_intensity")
+        achieved = _finite(layer.metrics, "achieved_flops_per_s")
         if not layer.modelled:
             unmodelled += 1
         elif _positive(ai) and _positive(achieved):
@@ -112,8 +112,8 @@ def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSe
             unplottable += 1
     ranked = sorted(plottable, key=_latency_rank)
     points = tuple(
-        RoofPoint(layer.name, float(layer.metrics["arithmetic_intensity"]),
-                  float(layer.metrics["achieved_flops_per_s"]),
+        RoofPoint(layer.name, _finite(layer.metrics, "arithmetic_intensity"),
+                  _finite(layer.metrics, "achieved_flops_per_s"),
                   _finite(layer.metrics, "latency_s") / total_s)
         for layer in ranked[:max_points]
     )
@@ -143,9 +143,10 @@ def _latency_rank(layer: LayerRecord) -> tuple[float, str]:
     return (-_finite(layer.metrics, "latency_s"), layer.name)
 
 
-def _finite(metrics: Mapping[str, float], name: str) -> float:
-    """A metric as a float, 0 when missing or not finite (never plotted as inf or NaN)."""
-    value = float(metrics.get(name, 0.0))
+def _finite(metrics: Mapping[str, float | None], name: str) -> float:
+    """A metric as a float, 0 when missing, unknown or not finite (a chart cannot plot
+    inf, NaN or '?'; the tables beside it print unknown figures as '?')."""
+    value = float(metrics.get(name) or 0.0)
     return value if math.isfinite(value) else 0.0
 
 
@@ -229,8 +230,8 @@ def roofline_figure(head: RunRecord, base: RunRecord | None, chart_id: str,
                     max_points: int = MAX_ROOFLINE_POINTS) -> tuple[Any, dict[str, object]]:
     """Roofline of ``head`` (and ``base`` when given): the figure and its data attributes."""
     figures = head.target_figures
-    peak = float(figures.get("peak_flops_per_s", 0.0))
-    bandwidth = float(figures.get("dram_bytes_per_s", 0.0))
+    peak = _finite(figures, "peak_flops_per_s")
+    bandwidth = _finite(figures, "dram_bytes_per_s")
     head_sel = roof_points(head, max_points)
     base_sel = roof_points(base, max_points) if base is not None else None
     with rc_context():

@@ -6,6 +6,7 @@ from collections.abc import Sequence
 from typing import Any
 
 from gate.diff import ranked_changes
+from gate.records import coverage_note
 from gate.report import terminal
 from gate.report.text import fmt_change, fmt_metric, shorten, term_safe
 from gate.result import GateResult
@@ -25,6 +26,9 @@ def render_diff(result: GateResult, limit: int, written: Sequence[str] = (),
     """
     lines = [f"diff: {term_safe(sides[0])} (old) -> {term_safe(sides[1])} (new)"] if sides else []
     lines += [f"note: {term_safe(n)}" for n in result.notes]
+    runs = [run for e in result.entries for run in (e.base, e.head) if run is not None]
+    lines += [f"coverage: {term_safe(note)}"
+              for note in dict.fromkeys(coverage_note(run) for run in runs) if note]
     for entry in result.entries:
         lines.append(f"{term_safe(entry.model)} on {term_safe(entry.target)}:")
         if entry.diff is None:

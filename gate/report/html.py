@@ -244,5 +244,5 @@ def base_latencies(entry: Entry) -> Mapping[str, float]:
             continue
         matched = base_layers.get(change.base_name)
         if matched is not None and "latency_s" in matched.metrics:
-            out[change.head_name] = float(matched.metrics["latency_s"])
+            out[change.head_name] = float(matched.metrics["latency_s"] or 0.0)
     return out

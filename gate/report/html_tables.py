@@ -33,7 +33,10 @@ def delta_class(base: Metric, head: Metric, lower_better: bool, metric: str = ""
 
     Changes too small to show (under 0.05 percentage points for shares, under
     0.05% otherwise) count as ``same``, so a figure that reads "-0.0 pp" is not coloured.
+    An unknown side (None) is ``same``: nothing to colour, the cell reads '?'.
     """
+    if base is None or head is None:
+        return "same"
     change = abs(float(head) - float(base))
     is_share = metric.endswith("_share") or metric == "utilization"
     if change <= (5e-4 if is_share else 5e-4 * max(abs(base), abs(head))):
@@ -206,14 +209,14 @@ def layer_table(entry: Entry) -> str:
         return _table(_DIFF_HEADERS, rows, sortable=True)
     run = entry.head or entry.base
     assert run is not None
-    total_s = float(run.metrics.get("latency_s", 0.0))
+    total_s = float(run.metrics.get("latency_s") or 0.0)
     rows = [_layer_row(layer, total_s) for layer in run.layers]
     return _table(_LAYER_HEADERS, rows, sortable=True)
 
 
 def _layer_row(layer: LayerRecord, total_s: float) -> str:
     m = layer.metrics
-    share = float(m.get("latency_s", 0.0)) / total_s if total_s else 0.0
+    share = float(m.get("latency_s") or 0.0) / total_s if total_s else 0.0
     note = "" if layer.modelled else f" <em>(not modelled: {html_escape(layer.unmodelled_reason)})</em>"
     if layer.fused_label:
         note += f" <span class=\"note\">({html_escape(layer.fused_label)})</span>"

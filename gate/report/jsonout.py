@@ -7,13 +7,17 @@ gives the same bytes. ``read_result`` reads it back into a ``GateResult``.
 
 Layout::
 
-    {"format": "roofgate-result", "version": 1, "exit_code": 0|1|2,
-     "result": {command, policies, allow_errors, notes, errors, entries: [...]}}
+    {"format": "roofgate-result", "version": 2, "exit_code": 0|1|2,
+     "result": {command, policies, allow_errors, notes, errors, ungated, model_counts,
+                entries: [...]}}
 
 Version history (bump ``RESULT_VERSION`` on any change a reader must know about,
 and add a line here and in docs/reports.md):
 
   1  first version.
+  2  a metric may be null (unknown, never 0); result.ungated (.onnx files no model group
+     covers: model, reason, skipped), result.model_counts (seen, gated, not_gated,
+     skipped) and entries[].rules_applied. Version 1 files read unchanged.
 """
 
 from __future__ import annotations
@@ -25,7 +29,7 @@ from gate.result import GateResult, result_from_dict, result_to_dict
 from gate.snapshot import canonical_json, load_versioned_json
 
 RESULT_FORMAT = "roofgate-result"
-RESULT_VERSION = 1
+RESULT_VERSION = 2
 
 
 class JsonReporter:
@@ -52,7 +56,7 @@ def render(result: GateResult) -> str:
 def loads_result(text: str, path: str = "<result>") -> GateResult:
     """Parse a JSON result document (``path`` only names it in messages)."""
     data = load_versioned_json(text, path, "result", RESULT_FORMAT, RESULT_VERSION,
-                               remedy="rerun roofgate with this version to write it again")
+                               remedy="rerun roofgate with this version to write it again", oldest_version=1)
     try:
         return result_from_dict(data["result"])
     except (KeyError, TypeError, ValueError, AttributeError) as exc:

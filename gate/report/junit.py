@@ -198,8 +198,11 @@ def _empty_suite(result: GateResult) -> TestSuite:
     return TestSuite("roofgate", [case], properties={"entries": "0"})
 
 
-def _number(value: float) -> str:
-    """A metric as a property value: ints exactly, floats to 12 significant digits."""
+def _number(value: float | None) -> str:
+    """A metric as a property value: ints exactly, floats to 12 significant digits, an
+    unknown value as '?'."""
+    if value is None:
+        return "?"
     return str(value) if isinstance(value, int) else f"{value:.12g}"
 
 

@@ -207,7 +207,8 @@ def _entry_rank(entry: Entry) -> tuple[int, float, str, str]:
     change = 0.0
     if entry.diff is not None and "latency_s" in entry.diff.totals:
         base, head = entry.diff.totals["latency_s"]
-        change = abs(float(head) - float(base)) / float(base) if base else 0.0
+        change = (abs(float(head) - float(base)) / float(base)
+                  if base and head is not None else 0.0)
     return (rank, -change, entry.model, entry.target)
 
 

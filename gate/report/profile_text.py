@@ -19,7 +19,7 @@ from gate.costmodel import ModelCost
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
-from gate.records import RunRecord, run_to_dict
+from gate.records import RunRecord, no_work_costed, run_to_dict
 from gate.targets.spec import TargetProfile
 
 FORMAT_NAME = "roofgate-profile"
@@ -79,6 +79,9 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
     """The JSON document (plain data, stable keys)."""
     model, coverage = profile.model, profile.coverage
     nodes = model.graph.nodes
+    unknown = no_work_costed(profile.coverage.nodes_total,
+                             profile.coverage.nodes_total - profile.coverage.nodes_modelled,
+                             bool(profile.total_macs or profile.total_flops))
     return {
         "format": FORMAT_NAME, "format_version": FORMAT_VERSION,
         "model": {"path": model.path, "name": model.name, "ir_version": model.ir_version,
@@ -87,8 +90,11 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
                   "shape_bindings": {k: list(v) for k, v in model.shape_bindings.items()},
                   "unbound_dims": list(model.unbound_dims), "warnings": list(model.warnings)},
         "precision": profile.precision,
-        "totals": {"layers": len(profile.layers), "macs": profile.total_macs,
-                   "flops": profile.total_flops, "param_count": profile.total_param_count,
+        "totals": {"layers": len(profile.layers),
+                   # unknown (null), never 0, when none of the work could be counted
+                   "macs": None if unknown else profile.total_macs,
+                   "flops": None if unknown else profile.total_flops,
+                   "param_count": profile.total_param_count,
                    "param_bytes": profile.total_param_bytes,
                    "max_layer_param_bytes": max((x.param_bytes for x in profile.layers),
                                                 default=0)},
@@ -340,7 +346,8 @@ def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile)
     """The model totals on one target; partial coverage makes them lower bounds, said so."""
     cov = profile.coverage
     name = clean(target.name, 60)
-    if profile.layers and cov.nodes_modelled == 0:
+    if no_work_costed(cov.nodes_total, cov.nodes_total - cov.nodes_modelled,
+                      bool(profile.total_macs or profile.total_flops)):
         return ["", (f"on {name} ({cost.precision}): not costed: no layer could be modelled "
                      "(see coverage above)")]
     lines = ["", (f"on {name} ({cost.precision}): latency {seconds(cost.latency_s)} "

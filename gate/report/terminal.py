@@ -18,7 +18,7 @@ from typing import TextIO
 from gate.diff import same_value
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 from gate.policy.spec import higher_is_better
-from gate.records import nothing_costed
+from gate.records import coverage_note, nothing_costed
 from gate.report.text import fmt_change, fmt_metric, fmt_percent, shorten, term_safe
 from gate.result import FAIL, NOT_GATED, WAIVED, Entry, Finding, GateResult, Verdict
 
@@ -98,6 +98,9 @@ def _entry_lines(entry: Entry) -> list[str]:
     lines = [f"  {status:<8} {_t(entry.model)} on {_t(entry.target)}  {_figures(entry)}"]
     if entry.head is not None:
         lines.append(f"           rules: {_t(', '.join(entry.rules_applied)) or 'none'}")
+        note = coverage_note(entry.head)
+        if note:
+            lines.append(f"           coverage: {_t(note.split(': ', 1)[1])}")
     for verdict in entry.verdicts:
         if verdict.status == FAIL:
             lines.extend(_failed_rule_lines(verdict))
@@ -132,7 +135,7 @@ def _badness(finding: Finding) -> float:
     """How far past its limit a finding is, in the metric's own unit (worst first; ties keep
     the rule's order). Findings of one rule share a metric, so the amounts compare."""
     try:
-        value, limit = float(finding.value), float(finding.limit)
+        value, limit = float(finding.value), float(finding.limit)  # type: ignore[arg-type]
     except (TypeError, ValueError):
         return 0.0
     excess = limit - value if higher_is_better(finding.metric) else value - limit
@@ -178,8 +181,8 @@ def _figures(entry: Entry) -> str:
             delta = fmt_change(metric, base, head)
             text += "" if delta == "=" else f" ({delta})"
         parts.append(text)
-    share = record.metrics.get("coverage_work_share", 1.0)
-    if share < 1:
+    share = record.metrics.get("coverage_work_share")
+    if share is not None and share < 1:
         parts.append(f"only {fmt_percent(share)} of the work modelled (figures too low)")
     if entry.base is None:
         parts.append("new, no baseline")
@@ -196,7 +199,8 @@ def _trend(entry: Entry) -> str:
     for metric in COST_METRICS:
         if metric in entry.diff.totals and not same_value(*entry.diff.totals[metric]):
             base, head = entry.diff.totals[metric]
-            moved.append((head > base) == higher_is_better(metric))
+            if base is not None and head is not None:
+                moved.append((head > base) == higher_is_better(metric))
     if not moved:
         return "unchanged"
     return "improved" if all(moved) else ""

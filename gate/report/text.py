@@ -40,6 +40,8 @@ _XML_BAD = re.compile(
 _TERM_BAD = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029\ud800-\udfff]")
 _NAMED = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
 
+UNKNOWN = "?"  # how every text output prints an unknown figure (JSON: null)
+
 
 def visible(char: str) -> str:
     """A readable stand-in for one unsafe character: ``\\n``, ``\\x1b``, ``\\ud800``."""
@@ -154,6 +156,8 @@ _SI_PREFIXES = ((1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k"))
 
 def fmt_bytes(value: Metric) -> str:
     """Bytes with a binary prefix: ``512 B``, ``1.50 KiB``, ``3.2 MiB``."""
+    if value is None:
+        return UNKNOWN
     size = float(value)
     if abs(size) < 1024:
         return f"{int(size)} B" if size == int(size) else f"{size:.1f} B"
@@ -166,6 +170,8 @@ def fmt_bytes(value: Metric) -> str:
 
 def fmt_count(value: Metric) -> str:
     """A count with an SI prefix: ``950``, ``1.23 M``, ``4.56 G``."""
+    if value is None:
+        return UNKNOWN
     number = float(value)
     for scale, prefix in _SI_PREFIXES:
         if abs(number) >= scale:
@@ -175,11 +181,15 @@ def fmt_count(value: Metric) -> str:
 
 def fmt_percent(share: Metric, digits: int = 1) -> str:
     """A share in [0, 1] as a percentage: ``87.5%``."""
+    if share is None:
+        return UNKNOWN
     return f"{float(share) * 100:.{digits}f}%"
 
 
 def fmt_ms(seconds: Metric) -> str:
     """Seconds as milliseconds with three significant digits: ``1.23 ms``, ``0.0456 ms``."""
+    if seconds is None:
+        return UNKNOWN
     ms = float(seconds) * 1e3
     if ms == 0:
         return "0 ms"
@@ -188,6 +198,8 @@ def fmt_ms(seconds: Metric) -> str:
 
 def fmt_joules(joules: Metric) -> str:
     """Energy with a fitting prefix: ``1.23 mJ``, ``45.6 uJ``."""
+    if joules is None:
+        return UNKNOWN
     value = float(joules)
     for unit, scale in ENERGY_UNITS:
         if abs(value) >= scale:
@@ -196,7 +208,10 @@ def fmt_joules(joules: Metric) -> str:
 
 
 def fmt_metric(name: str, value: Metric) -> str:
-    """Format ``value`` by the unit its metric ``name`` carries (records.py naming)."""
+    """Format ``value`` by the unit its metric ``name`` carries (records.py naming); an
+    unknown value (None) is '?', never 0."""
+    if value is None:
+        return UNKNOWN
     if isinstance(value, float) and not math.isfinite(value):
         return str(value)
     if name.endswith("_bytes"):
@@ -217,7 +232,9 @@ def fmt_metric(name: str, value: Metric) -> str:
 
 
 def relative_change(base: Metric, head: Metric) -> float | None:
-    """(head - base) / base, or None when base is zero (a change from nothing)."""
+    """(head - base) / base, or None when base is zero (a change from nothing) or unknown."""
+    if base is None or head is None:
+        return None
     if base == 0:
         return None if head != 0 else 0.0
     return (float(head) - float(base)) / abs(float(base))
@@ -227,8 +244,10 @@ def fmt_delta(name: str, base: Metric, head: Metric) -> str:
     """The change from ``base`` to ``head`` of metric ``name``: ``+1.50 KiB (+3.0%)``.
 
     Shares change in percentage points (``-4.2 pp``); an unchanged value is ``=``;
-    a change from zero has no percentage (``new``).
+    a change from zero has no percentage (``new``); with an unknown side it is ``?``.
     """
+    if base is None or head is None:
+        return UNKNOWN
     if _same(base, head):
         return "="
     if name.endswith("_share") or name == "utilization":
@@ -242,7 +261,9 @@ def fmt_delta(name: str, base: Metric, head: Metric) -> str:
 
 def fmt_change(name: str, base: Metric, head: Metric) -> str:
     """The compact change from ``base`` to ``head``: ``+3.0%``, ``-4.2 pp`` for shares,
-    ``+1.50 KiB`` from zero, ``=`` when equal."""
+    ``+1.50 KiB`` from zero, ``=`` when equal, ``?`` when a side is unknown."""
+    if base is None or head is None:
+        return UNKNOWN
     if _same(base, head):
         return "="
     if name.endswith("_share") or name == "utilization":
@@ -255,7 +276,10 @@ def fmt_change(name: str, base: Metric, head: Metric) -> str:
 
 
 def _same(base: Metric, head: Metric) -> bool:
-    """Equal, or floats equal up to the rounding a baseline snapshot applies (12 digits)."""
+    """Equal, or floats equal up to the rounding a baseline snapshot applies (12 digits);
+    an unknown value is the same as nothing (two unknowns are not 'unchanged')."""
+    if base is None or head is None:
+        return False
     return base == head or math.isclose(float(base), float(head), rel_tol=1e-9)
 
 
