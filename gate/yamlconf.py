@@ -342,24 +342,19 @@ class Section:
     def get_percent(self, key: str, default: float | None = None, *, required: bool = False,
                     minimum: float | None = 0.0) -> float | None:
         """A percentage as a number of percent: ``10`` and ``'10%'`` both give 10.0."""
-        node, value = self._scalar(key, required)
-        if value is _MISSING:
-            return default
-        parsed: float | None = None
-        if isinstance(value, (int, float)) and not isinstance(value, bool):
-            parsed = float(value)
-        elif isinstance(value, str):
-            match = _PERCENT.match(value)
-            parsed = float(match.group(1)) if match else None
-        if parsed is None:
-            self.doc.problem(node, self._path(key),
-                             f"expected a percentage like 10 or '10%', got '{_text(node)}'")
-            return default
-        return self._in_range(node, key, parsed, minimum, None, default)
+        return self._number_or_percent(key, default, required, "a percentage like 10 or '10%'",
+                                       per_percent=1.0, bounds=(minimum, None))
 
     def get_share(self, key: str, default: float | None = None, *, required: bool = False,
                   maximum: float = 1.0) -> float | None:
         """A share as a fraction (``0.3``) or a percentage (``'30%'``); returned as a fraction."""
+        return self._number_or_percent(key, default, required, "a share like 0.3 or '30%'",
+                                       per_percent=0.01, bounds=(0.0, maximum))
+
+    def _number_or_percent(self, key: str, default: float | None, required: bool,
+                           expected: str, *, per_percent: float,
+                           bounds: tuple[float | None, float | None]) -> float | None:
+        """A plain number, or 'N%' read as N x ``per_percent``; a problem otherwise."""
         node, value = self._scalar(key, required)
         if value is _MISSING:
             return default
@@ -368,12 +363,11 @@ class Section:
             parsed = float(value)
         elif isinstance(value, str):
             match = _PERCENT.match(value)
-            parsed = float(match.group(1)) / 100.0 if match else None
+            parsed = float(match.group(1)) * per_percent if match else None
         if parsed is None:
-            self.doc.problem(node, self._path(key),
-                             f"expected a share like 0.3 or '30%', got '{_text(node)}'")
+            self.doc.problem(node, self._path(key), f"expected {expected}, got '{_text(node)}'")
             return default
-        return self._in_range(node, key, parsed, 0.0, maximum, default)
+        return self._in_range(node, key, parsed, bounds[0], bounds[1], default)
 
     def get_date(self, key: str, default: date | None = None, *, required: bool = False) -> date | None:
         node, value = self._scalar(key, required)

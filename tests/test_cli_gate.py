@@ -12,6 +12,7 @@ from click.testing import CliRunner
 
 from gate import jobs
 from gate.cli import cli
+from gate.report.jsonout import RESULT_VERSION
 from gate.report.markdown import MARKER
 from gate.synth.builder import save_model
 from gate.synth.scenario import SPECIES_PR_LAST_WIDTH, species, wakeword
@@ -124,7 +125,7 @@ def test_reports_hold_failures_and_unanalysable_models(work, tmp_path) -> None:
     assert markdown.startswith(MARKER) and "could not analyse** broken.onnx" in markdown
     document = json.loads((out / "r.json").read_text(encoding="utf-8"))
     assert (document["format"], document["version"], document["exit_code"]) == (
-        "roofgate-result", 1, 2)
+        "roofgate-result", RESULT_VERSION, 2)
     assert [e["model"] for e in document["result"]["errors"]] == ["broken.onnx"]
     assert "FAILED" in result.output and "exit 2" in result.output
 

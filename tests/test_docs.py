@@ -61,6 +61,8 @@ def yaml_kind(text: str) -> str:
         return "config"
     if re.search(r"^\s*- (run|uses):", text, re.MULTILINE) or "jobs" in keys:
         return "workflow"
+    if keys == {"repos"}:
+        return "pre-commit"
     return "unknown"
 
 
@@ -83,7 +85,7 @@ def test_every_yaml_block_validates(tmp_path: Path, where: str, text: str) -> No
     elif kind == "config":
         (tmp_path / "roofgate.yaml").write_text(text, encoding="utf-8")
         assert load_config(tmp_path / "roofgate.yaml", require_targets=False).groups
-    else:  # a GitHub workflow snippet: not roofgate's schema, but it must parse
+    else:  # a GitHub workflow or pre-commit snippet: not roofgate's schema; it must parse
         assert yaml.safe_load(text) is not None
 
 
@@ -138,6 +140,12 @@ def test_every_console_command_runs(demo_repo: Path, monkeypatch: pytest.MonkeyP
                                     where: str, argv: list[str]) -> None:
     if argv[:1] == ["demo"]:
         return  # the demo_repo fixture ran `roofgate demo --keep` already
+    if any(arg.startswith("[") for arg in argv):  # a synopsis: its options must exist
+        help_text = CliRunner().invoke(cli, [argv[0], "--help"]).output
+        missing = [a.strip("[]") for a in argv if a.strip("[]").startswith("--")
+                   and a.strip("[]") not in help_text]
+        assert not missing, f"{where}: roofgate {argv[0]} has no {missing}"
+        return
     monkeypatch.chdir(demo_repo)
     if "--baseline" in argv:  # the snapshot a previous night would have written
         snapshot = argv[argv.index("--baseline") + 1]
