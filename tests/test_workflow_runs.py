@@ -11,13 +11,16 @@ parameter buffer of ws-64x64-4mib and a 1024 x 256 one (1 MiB) fits.
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
 import subprocess
 import sys
+import threading
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar
 
 import pytest
 
@@ -380,3 +383,71 @@ def test_gitlab_job_script_in_a_single_branch_clone(tmp_path: Path) -> None:
     assert done.returncode == 1, done.stderr  # the job fails: the merge request is blocked
     assert (repo / job["artifacts"]["reports"]["junit"]).is_file()
     assert "params-fit-buffer" in (repo / "roofgate-out/summary.md").read_text()
+
+
+class _NotesApi(BaseHTTPRequestHandler):
+    """A loopback stand-in for GitLab's Notes API (GET /user, GET/POST/PUT notes)."""
+
+    notes: ClassVar[list[dict[str, Any]]] = []
+    seen_tokens: ClassVar[list[str]] = []
+
+    def _reply(self, data: Any) -> None:
+        body = json.dumps(data).encode()
+        self.send_response(200)
+        self.send_header("Content-Type", "application/json")
+        self.send_header("Content-Length", str(len(body)))
+        self.end_headers()
+        self.wfile.write(body)
+
+    def _body(self) -> dict[str, Any]:
+        return json.loads(self.rfile.read(int(self.headers["Content-Length"])))
+
+    def do_GET(self) -> None:  # the http.server hook's name
+        self.seen_tokens.append(self.headers.get("PRIVATE-TOKEN", ""))
+        self._reply({"id": 5} if self.path == "/api/v4/user" else self.notes)
+
+    def do_POST(self) -> None:
+        assert self.path == "/api/v4/projects/9/merge_requests/3/notes"
+        self.notes.append({"id": len(self.notes) + 100, "author": {"id": 5}, **self._body()})
+        self._reply(self.notes[-1])
+
+    def do_PUT(self) -> None:
+        note_id = int(self.path.rsplit("/", 1)[1])
+        note = next(n for n in self.notes if n["id"] == note_id)
+        note.update(self._body())
+        self._reply(note)
+
+    def log_message(self, *args: Any) -> None:
+        pass
+
+
+def test_gitlab_note_is_created_once_then_updated(tmp_path: Path) -> None:
+    after = load(ROOT / "docs/examples/roofgate.gitlab-ci.yml")["roofgate"]["after_script"][0]
+    shim = tmp_path / "shim"
+    shim.mkdir()
+    (shim / "python").symlink_to(sys.executable)
+    (tmp_path / "roofgate-out").mkdir()
+    _NotesApi.notes = [{"id": 1, "author": {"id": 77}, "body": "<!-- roofgate-report:v1 -->x"}]
+    server = ThreadingHTTPServer(("127.0.0.1", 0), _NotesApi)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    env = {"PATH": f"{shim}{os.pathsep}{os.environ['PATH']}", "ROOFGATE_OUT": "roofgate-out",
+           "CI_API_V4_URL": f"http://127.0.0.1:{server.server_port}/api/v4",
+           "CI_PROJECT_ID": "9", "CI_MERGE_REQUEST_IID": "3"}
+    try:
+        (tmp_path / "roofgate-out/summary.md").write_text("first <!-- roofgate-report:v1 -->")
+        assert run_shell(after, tmp_path, env).returncode == 0  # no token: no note, no call
+        assert _NotesApi.seen_tokens == []
+        env["ROOFGATE_NOTE_TOKEN"] = "masked-secret"
+        for text in ("first run", "second run"):
+            (tmp_path / "roofgate-out/summary.md").write_text(text)
+            done = run_shell(after, tmp_path, env)
+            assert done.returncode == 0, done.stderr
+    finally:
+        server.shutdown()
+        server.server_close()
+        thread.join()
+    ours = [n for n in _NotesApi.notes if n["author"]["id"] == 5]
+    assert [n["body"] for n in ours] == ["<!-- roofgate-report:v1 -->\nsecond run"]
+    assert _NotesApi.notes[0]["body"] == "<!-- roofgate-report:v1 -->x"  # another user's: kept
+    assert set(_NotesApi.seen_tokens) == {"masked-secret"}
