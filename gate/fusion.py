@@ -14,9 +14,10 @@ operands only, before any nonlinearity), then up to ``max_epilogue_ops``
 elementwise epilogue ops; optionally a constant Pad in front of a conv. Every
 intermediate tensor must have exactly one consumer and not be a graph output
 (otherwise it has to be written out anyway), and each op must keep the element
-count (no broadcast to a larger tensor). View layers and layers the profile already
-costs as nothing (folded constants, a quantize/dequantize pair fused into its
-producer) end a chain: they have no work to absorb.
+count (no broadcast to a larger tensor). A chain runs through view layers and
+layers the profile already costs as nothing (a quantize/dequantize pair fused into
+its producer, as QDQ exports put around every conv); they join the group only when
+a fold or epilogue op follows them.
 """
 
 from __future__ import annotations
@@ -168,17 +169,24 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
     pad = _pad_prologue(head, profile, wiring, spec, engine_of, taken)
     if pad is not None:
         chain.members.append(pad)
-    last = head
-    tensor = _single_output(nodes[head.index])
+    last, previous = head, nodes[head.index]  # the last layer with work; the last node
+    passed: list[int] = []  # free layers (views, fused Q/DQ) waiting for a member after them
+    tensor = _single_output(previous)
     while tensor is not None:
         position = wiring.sole_consumer(tensor)
         if position is None or position in taken:
             break
         candidate = layers[position]
-        role = _role(candidate, nodes[position], tensor, nodes[last.index], chain, spec, wiring,
+        role = _role(candidate, nodes[position], tensor, previous, chain, spec, wiring,
                      engine_of)
         if role is None:
             break
+        previous, tensor = nodes[position], _single_output(nodes[position])
+        if role == "pass":
+            passed.append(position)
+            continue
+        chain.members.extend(passed)
+        passed.clear()
         chain.members.append(position)
         if role == "fold":
             chain.folded.append(position)
@@ -187,7 +195,6 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
             chain.epilogue_ops += _element_ops(candidate)
             chain.extra_input_bytes += max(0, candidate.input_bytes - last.output_bytes)
         last = candidate
-        tensor = _single_output(nodes[position])
     if not chain.members:
         return None
     return _finish(head, pad, last, chain, layers)
@@ -207,11 +214,12 @@ def _finish(head: LayerProfile, pad: int | None, last: LayerProfile, chain: _Cha
 def _role(layer: LayerProfile, node: Node, tensor: str, previous: Node, chain: _Chain,
           spec: FusionSpec, wiring: _Wiring, engine_of: Callable[[LayerProfile], str]
           ) -> str | None:
-    """"fold", "epilogue" or None (the chain stops here)."""
-    if (layer.work is None or layer.work.gemms or layer.work.is_view  # views and offline
-            or _single_output(node) is None  # (folded, fused Q/DQ) layers already cost nothing
+    """"fold", "epilogue", "pass" (a free layer the chain runs through) or None (it stops)."""
+    if (layer.work is None or layer.work.gemms or _single_output(node) is None
             or engine_of(layer) == "host" or not _keeps_size(node, previous)):
         return None
+    if layer.work.is_view:  # a view, or a layer the profile already costs as nothing
+        return "pass"
     positions = [i for i, t in enumerate(node.inputs) if t is not None and t.name == tensor]
     if not positions:
         return None

@@ -293,3 +293,26 @@ def test_html_and_markdown_name_the_fused_group(tmp_path: Path) -> None:
     base = analyse(str(save(residual_block(), tmp_path / "b.onnx")), [target], fusion=False)[0]
     text = render(result(entry(head, base)))
     assert "Conv (conv2+BatchNormalization+Add+Relu)" in text  # its latency changed with fusion
+
+
+def test_a_chain_runs_through_the_quantize_dequantize_pairs_of_a_qdq_export(
+        tmp_path: Path) -> None:
+    # A QDQ export (ONNX operator spec: QuantizeLinear -> DequantizeLinear around each
+    # conv) of the residual block: the profile costs the Q/DQ pairs as nothing; a group
+    # runs through them and fuses the same ops as in the float model deployed at int8,
+    # which then costs the same.
+    from gate.synth.forms import quantize
+
+    qdq = _profile(quantize(residual_block(), "qdq"), tmp_path)
+    target = load_target(WS)
+    groups = _plan(qdq, target)
+    assert groups == {
+        "conv1": ["c1.q.quantize", "c1.q.dequantize", "bn1", "relu1"],
+        "conv2": ["c2.q.quantize", "c2.q.dequantize", "bn2", "add", "relu2"]}
+    assert {layer.role for layer in qdq.layers if layer.name.startswith("c1.q.")} == {"fused"}
+    at_int8 = _profile(residual_block(), tmp_path, "int8")
+    for fusion in (True, False):
+        a, b = cost_model(at_int8, target, fusion=fusion), cost_model(qdq, target, fusion=fusion)
+        assert b.latency_s == pytest.approx(a.latency_s, rel=0.01), fusion
+        assert b.act_dram_bytes == a.act_dram_bytes
+    assert cost_model(qdq, target).latency_s < cost_model(qdq, target, fusion=False).latency_s
