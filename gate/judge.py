@@ -72,7 +72,8 @@ def builtin_verdicts(head: RunRecord | None) -> tuple[Verdict, ...]:
     if head is None or not nothing_costed(head):
         return ()
     unbound = any("unbound" in note for note in head.notes)
-    remedy = ("bind the symbolic input dims (--dim NAME=N, or dims: in roofgate.yaml)" if unbound
+    remedy = ("bind the symbolic input dims (--dim NAME=N or --shape INPUT=SHAPE, or dims: / "
+              "shapes: in roofgate.yaml)" if unbound
               else "see `roofgate profile` for why each layer is unmodelled")
     summary = (f"none of the model's work could be costed ({int(head.metrics.get('unmodelled_nodes') or 0)}"
                f" of {int(head.metrics.get('layers') or 0)} layers unmodelled): latency, energy and "

@@ -153,7 +153,7 @@ def coverage_note(run: RunRecord) -> str:
             if nothing_costed(run) else
             f"only {float(share or 0) * 100:.1f}% of the work is modelled, so totals are lower "
             "bounds")
-    remedy = next((n for n in run.notes if "unbound" in n), "")
+    remedy = next((f"{n} (or --shape INPUT=SHAPE)" for n in run.notes if "unbound" in n), "")
     fix = (f"; {remedy}" if remedy else
            "; see `roofgate profile` for why each layer is unmodelled")
     return f"{run.model} on {run.target}: {unmodelled} of {layers} layers unmodelled: {what}{fix}"

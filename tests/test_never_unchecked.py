@@ -219,11 +219,16 @@ MISTAKES = {
                                                         rule_extra="    models: ['modles/*']\n")),
     "rule op typo": lambda: ("policy", POLICY.format(
         policy_extra="", rule_extra="    level: layer\n    op_types: [Gemmm]\n")),
+    "unit-less limit": lambda: ("policy", POLICY.format(
+        policy_extra="", rule_extra="") + "  - {id: lat, kind: max_latency, max: 5}\n"),
+    "share written as a percent number": lambda: ("policy", POLICY.format(
+        policy_extra="", rule_extra="") + "  - {id: c, kind: max_unmodelled, "
+        "max_work_share: 5}\n"),
     "model outside groups": lambda: ("stray", ""),
 }
 
 
-@settings(max_examples=12, deadline=None,
+@settings(max_examples=16, deadline=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(mistakes=st.lists(st.sampled_from(sorted(MISTAKES)), min_size=1, max_size=3, unique=True),
        command=st.sampled_from(["audit", "evaluate"]))

@@ -74,6 +74,6 @@ def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
     if analysis.loaded.unbound_dims:
         binds = " ".join(f"--dim {term_safe(one_line(d))}=N" for d in analysis.loaded.unbound_dims)
         click.echo(f"warning: unbound symbolic dims leave layers unmodelled; bind them with "
-                   f"{binds}", err=True)
+                   f"{binds} (or size whole inputs with --shape INPUT=SHAPE)", err=True)
     click.echo(render(fmt, analysis.profile, list(analysis.costs), list(analysis.records)),
                nl=False)
