@@ -67,6 +67,7 @@ class LayerRecord:
     metrics: Mapping[str, Metric]
     fused_into: str = ""  # head layer of the fused group this layer runs in ("" when alone)
     fused_ops: tuple[str, ...] = ()  # on a group's head: the op types it absorbed, in order
+    precision: str = ""  # the precision the layer was costed at ("" when it ran nowhere)
 
     def metric(self, name: str) -> Metric:
         return self.metrics[name]
@@ -172,6 +173,7 @@ def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:
         "unmodelled_reason": layer.unmodelled_reason,
         "params_fit": layer.params_fit,
         "activations_fit": layer.activations_fit,
+        "precision": layer.precision,
         "metrics": dict(sorted(layer.metrics.items())),
         "fused_into": layer.fused_into,
         "fused_ops": list(layer.fused_ops),
@@ -192,6 +194,7 @@ def layer_from_dict(data: Mapping[str, Any]) -> LayerRecord:
         metrics=_metrics(data["metrics"]),
         fused_into=str(data.get("fused_into", "")),
         fused_ops=tuple(str(op) for op in data.get("fused_ops", ())),
+        precision=str(data.get("precision", "")),  # absent in documents before it existed
     )
 
 

@@ -79,6 +79,7 @@ def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
         metrics=metrics,
         fused_into=cost.fused_into,
         fused_ops=cost.fused_ops,
+        precision=cost.precision,
     )
 
 

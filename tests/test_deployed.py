@@ -364,3 +364,48 @@ def test_old_batch_norm_with_unused_training_outputs_is_inference_batch_norm(
     assert old.layers[0].modelled, old.layers[0].unmodelled_reason
     assert old.layers[0].flops == new.layers[0].flops > 0
     assert old.layers[0].output_bytes == new.layers[0].output_bytes
+
+
+# ------------------------------------------------------------------ precision in every output
+
+def test_records_and_reports_say_which_precision_each_layer_ran_at(tmp_path: Path) -> None:
+    from dataclasses import replace
+
+    from gate.records import layer_from_dict, layer_to_dict, run_from_dict, run_to_dict
+    from gate.report import html_tables, markdown
+    from gate.summarize import build_run_record
+    from tests.recordkit import entry, layer, result, run
+
+    target = load_target(TARGET)
+    profile = _profile(quantize(_conv(False), "qdq"), tmp_path, "qdq")
+    record = build_run_record("conv.onnx", profile, cost_model(profile, target), target)
+    (conv,) = [item for item in record.layers if item.op_type == "Conv"]
+    assert conv.precision == "int8"
+    assert run_from_dict(run_to_dict(record)) == record  # snapshots keep it
+    old = {key: value for key, value in layer_to_dict(conv).items() if key != "precision"}
+    assert layer_from_dict(old).precision == ""  # a document written before the field
+    # A changed layer names its precision change; the HTML layer table has the column.
+    base = run(layers=(replace(layer("stem/conv", macs=2000), precision="fp32"),))
+    head = run(layers=(replace(layer("stem/conv", macs=1000), precision="int8"),))
+    rows = [line for line in markdown.render(result(entry(head, base))).splitlines()
+            if line.startswith("| stem/conv")]
+    assert rows and "Conv (fp32 → int8)" in rows[0]
+    html = html_tables.layer_table(entry(head))
+    assert "<th" in html and "precision" in html and "<td>int8</td>" in html
+
+
+def test_profile_outputs_show_precision_and_role(tmp_path: Path) -> None:
+    import csv
+    import io
+    import json
+
+    from gate.report.profile_text import render
+
+    profile = _profile(rewrite_weights(_conv(), "view"), tmp_path, "view")
+    rows = list(csv.DictReader(io.StringIO(render("csv", profile, [], []))))
+    assert {(r["op_type"], r["precision"], r["role"]) for r in rows} >= {
+        ("Conv", "fp32", "layer"), ("Squeeze", "fp32", "folded")}
+    layers = json.loads(render("json", profile, [], []))["layers"]
+    assert {(item["op_type"], item["role"]) for item in layers} >= {("Squeeze", "folded")}
+    table = render("table", profile, [], [])
+    assert "precision" in table and "folded" in table

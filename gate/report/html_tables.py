@@ -193,7 +193,7 @@ def _finding_row(finding: Finding) -> str:
 
 # --- layers ---------------------------------------------------------------------
 
-_LAYER_HEADERS = [("layer", False), ("op", False), ("bound", False), ("latency", True),
+_LAYER_HEADERS = [("layer", False), ("op", False), ("precision", False), ("bound", False), ("latency", True),
                   ("share of latency", True), ("energy", True), ("utilization", True),
                   ("FLOP/byte", True), ("parameters", True), ("params fit", False)]
 _DIFF_HEADERS = [("change", False), ("layer", False), ("op", False), ("base latency", True),
@@ -221,7 +221,8 @@ def _layer_row(layer: LayerRecord, total_s: float) -> str:
     if layer.fused_label:
         note += f" <span class=\"note\">({html_escape(layer.fused_label)})</span>"
     return ("<tr>" + f"<td class=\"name\">{html_escape(layer.name)}{note}</td>"
-            f"<td><code>{html_escape(layer.op_type)}</code></td><td>{html_escape(layer.bound)}</td>"
+            f"<td><code>{html_escape(layer.op_type)}</code></td>"
+            f"<td>{html_escape(layer.precision or '-')}</td><td>{html_escape(layer.bound)}</td>"
             + _num("latency_s", m.get("latency_s"))
             + f"<td class=\"num\" data-v=\"{_sort_value(share)}\">{fmt_percent(share)}</td>"
             + _num("energy_j", m.get("energy_j")) + _num("utilization", m.get("utilization"))

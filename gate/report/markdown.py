@@ -25,7 +25,7 @@ from typing import TextIO
 
 from gate.diff import ranked_changes
 from gate.policy.spec import metric_label
-from gate.records import LayerRecord
+from gate.records import LayerRecord, RunRecord
 from gate.report.text import fmt_change, fmt_delta, fmt_metric, html_escape, md_escape, shorten
 from gate.result import (
     FAIL,
@@ -367,24 +367,36 @@ def _changed_layers(entry: Entry, out: _Render) -> None:
         out.lines.append("\nNo layer changed against the baseline.")
         return
     limit = out.limits.layers
-    titles = ["Layer", "Op", "Change", *(t for _, t in LAYER_METRICS)]
+    titles = ["Layer", "Op (precision)", "Change", *(t for _, t in LAYER_METRICS)]
     out.lines += ["", f"**Most changed layers** ({len(ranked)} changed)"]
     if limit:
         out.lines += ["", "| " + " | ".join(titles) + " |", "|" + "---|" * len(titles)]
         head = {layer.name: layer for layer in entry.head.layers} if entry.head else {}
-        out.lines += [_layer_row(change, head.get(change.head_name or "")) for change in
-                      ranked[:limit]]
+        out.lines += [_layer_row(change, head.get(change.head_name or ""),
+                                 _precision(entry, change)) for change in ranked[:limit]]
     out.trimmed(min(limit, len(ranked)), len(ranked), "changed layers")
 
 
-def _layer_row(change: LayerChange, head: LayerRecord | None = None) -> str:
+def _precision(entry: Entry, change: LayerChange) -> str:
+    """The precision the layer was costed at: head's, ``base → head`` when it changed."""
+    def of(run: RunRecord | None, name: str | None) -> str:
+        layer = run.layer(name) if run is not None and name is not None else None
+        return layer.precision if layer is not None else ""
+    base, head = of(entry.base, change.base_name), of(entry.head, change.head_name)
+    if base and head and base != head:
+        return f"{base} → {head}"
+    return head or base
+
+
+def _layer_row(change: LayerChange, head: LayerRecord | None = None, precision: str = "") -> str:
     name = change.head_name if change.head_name is not None else change.base_name or ""
     what = change.status
     if change.status == "changed" and not any(m in change.deltas for m, _ in LAYER_METRICS):
         what += f": {_other_changes(change)}"  # else the row would read all "="
     if change.status != "added" and change.status != "removed" and change.base_name != name:
         what += f" (was {md_escape(shorten(change.base_name or '', NAME_CHARS))})"
-    op = change.op_type + (f" ({head.fused_label})" if head and head.fused_label else "")
+    notes = [part for part in (head.fused_label if head else "", precision) if part]
+    op = change.op_type + (f" ({', '.join(notes)})" if notes else "")
     cells = [md_escape(shorten(name, NAME_CHARS)), md_escape(shorten(op, NAME_CHARS)), what]
     for metric, _ in LAYER_METRICS:
         cells.append(_layer_cell(change, metric))

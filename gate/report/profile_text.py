@@ -31,6 +31,7 @@ CSV_FIELDS: tuple[str, ...] = (
     "index", "name", "op_type", "domain", "input_shapes", "input_dtypes", "output_shapes",
     "output_dtypes", "param_names", "param_count", "param_bytes", "input_bytes", "output_bytes",
     "macs", "flops", "arithmetic_intensity", "param_reuse", "modelled", "unmodelled_reason",
+    "precision", "role",
 )
 CSV_TARGET_FIELDS: tuple[str, ...] = (
     "target", "engine", "bound", "utilization", "cycles", "latency_s", "energy_j",
@@ -72,6 +73,7 @@ def layer_dict(layer: LayerProfile, input_names: Sequence[str],
         "arithmetic_intensity": layer.arithmetic_intensity, "param_reuse": layer.param_reuse,
         "modelled": layer.modelled, "unmodelled_reason": layer.unmodelled_reason,
         "note": layer.work.note if layer.work else "",
+        "precision": layer.precision, "role": layer.role,
     }
 
 
@@ -134,6 +136,7 @@ def _csv_row(layer: LayerProfile) -> list[Any]:
         layer.input_bytes, layer.output_bytes, layer.macs, layer.flops,
         repr(layer.arithmetic_intensity), repr(layer.param_reuse),
         "true" if layer.modelled else "false", _csv_text(layer.unmodelled_reason),
+        layer.precision, layer.role,
     ]
 
 
@@ -237,7 +240,7 @@ def _layer_cells(layer: LayerProfile) -> list[str]:
     out = ";".join(shape_text(s) for s in layer.output_shapes)
     counted = layer.modelled
     return [str(layer.index), clean(layer.name, 40, keep_end=True), clean(layer.op_type, 24),
-            clean(out, 24),
+            clean(out, 24), layer.precision if layer.role == "layer" else layer.role,
             si(layer.macs) if counted else "-", si(layer.flops) if counted else "-",
             binary_bytes(layer.param_bytes),
             binary_bytes(layer.input_bytes) if _known(layer.input_shapes) else "?",
@@ -246,14 +249,15 @@ def _layer_cells(layer: LayerProfile) -> list[str]:
             ratio(layer.param_reuse) if counted and layer.param_bytes else "-"]
 
 
-_HEAD = ["#", "layer", "op", "output", "MACs", "FLOPs", "params", "in", "out", "FLOP/B", "MAC/pB"]
+_HEAD = ["#", "layer", "op", "output", "precision", "MACs", "FLOPs", "params", "in", "out", "FLOP/B", "MAC/pB"]
 _TARGET_HEAD = ["util", "bound", "latency"]
 LEGEND = ("columns: FLOP/B = FLOPs per byte of parameters, inputs and outputs (arithmetic "
           "intensity); MAC/pB = MACs per parameter byte (weight reuse)")
 TARGET_LEGEND = ("target columns: util = share of the PE array kept busy; bound = what limits the "
                  "layer (compute, memory, overhead, none; '+' heads a fused group that costs the "
                  "layers marked 'fused')")
-MARKS = "marks: - not counted or not applicable"
+MARKS = ("marks: - not counted or not applicable; precision: what the layer runs at (folded: "
+         "computed offline from constants; fused: a quantize/dequantize pair absorbed)")
 UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? size unknown"
 
 
@@ -275,7 +279,7 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
     flagged = any(not layer.modelled for layer in profile.layers)
     head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + (["!"] if flagged else [])
     rows = [head] + [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
-    table = _align(rows, right_from=4)
+    table = _align(rows, right_from=5)
     if runs:
         table.insert(0, _group_line(rows, [clean(target.name, 40) for target, _ in runs]))
     lines += table
