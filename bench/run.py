@@ -76,11 +76,48 @@ def _floor(path: str) -> Callable[[], None]:
     return run
 
 
+# The constant-folding and parameter-ownership code (module, attribute): each call is
+# timed in the "fold-share" task. None of them calls another, so the times add up.
+_FOLDING_CODE = (
+    ("gate.model.convert", "folds"), ("gate.model.convert", "is_parameter"),
+    ("gate.model.convert", "_readers"), ("gate.model.convert:_Converter", "_fold"),
+    ("gate.model.convert:_Walk", "fuses"), ("gate.profile", "deployed_dtypes"),
+    ("gate.profile", "layer_precision"), ("gate.profile", "_layer_params"),
+    ("gate.profile:_ParamLedger", "charge"),
+)
+_FOLD_SECONDS = [0.0]
+
+
+def _timed(func: Callable[..., Any]) -> Callable[..., Any]:
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        start = time.perf_counter()
+        try:
+            return func(*args, **kwargs)
+        finally:
+            _FOLD_SECONDS[0] += time.perf_counter() - start
+    return wrapper
+
+
+def _fold_share(args: list[str]) -> Callable[[], None]:
+    """The CLI task with every folding function timed (its share of the whole run)."""
+    import importlib
+
+    for where, attribute in _FOLDING_CODE:
+        module_name, _, class_name = where.partition(":")
+        owner: Any = importlib.import_module(module_name)
+        if class_name:
+            owner = getattr(owner, class_name)
+        setattr(owner, attribute, _timed(getattr(owner, attribute)))
+    return _cli(args)
+
+
 def _task(name: str, args: list[str]) -> Callable[[], None]:
     if name == "floor":
         return _floor(args[0])
     if name == "cli":
         return _cli(args)
+    if name == "fold-share":
+        return _fold_share(args)
     raise SystemExit(f"unknown task {name}")
 
 
@@ -98,7 +135,8 @@ def worker(name: str, args: list[str]) -> None:
     start = time.perf_counter()
     task()
     seconds = time.perf_counter() - start
-    print(json.dumps({"seconds": seconds, "peak_bytes": _peak_rss_bytes(), "opened": opened}))
+    print(json.dumps({"seconds": seconds, "peak_bytes": _peak_rss_bytes(), "opened": opened,
+                      "fold_seconds": _FOLD_SECONDS[0]}))
 
 
 # --- driver side --------------------------------------------------------------
@@ -118,6 +156,7 @@ def measure(name: str, args: list[str], runs: int, env: dict[str, str] | None = 
         "seconds": statistics.median(s["seconds"] for s in samples),
         "peak_bytes": statistics.median(s["peak_bytes"] for s in samples),
         "opened": sorted({p for s in samples for p in s["opened"]}),
+        "fold_share": statistics.median(s["fold_seconds"] / s["seconds"] for s in samples),
     }
 
 
@@ -268,6 +307,55 @@ def bench_scaling(work: Path, runs: int, quick: bool) -> list[str]:
     return [f"| 3 | time per node by graph size | {cells} | spread {spread:.2f}x | <= 1.5x |"]
 
 
+def _folding_chain(nodes: int):  # -> onnx.ModelProto
+    """``nodes`` nodes in threes: a Transpose of a stored weight (folded), a Conv reading
+    it, a Relu; every Conv reads the one stored weight (shared)."""
+    import numpy as np
+    from onnx import TensorProto, helper, numpy_helper
+
+    weight = numpy_helper.from_array(np.zeros((8, 8, 1, 1), np.float32), "w")
+    graph_nodes, x = [], "x"
+    for i in range(0, nodes, 3):
+        graph_nodes += [
+            helper.make_node("Transpose", ["w"], [f"w{i}"], perm=[1, 0, 2, 3], name=f"t{i}"),
+            helper.make_node("Conv", [x, f"w{i}"], [f"c{i}"], name=f"conv{i}"),
+            helper.make_node("Relu", [f"c{i}"], [f"r{i}"], name=f"relu{i}")]
+        x = f"r{i}"
+    shape = [1, 8, 8, 8]
+    graph = helper.make_graph(
+        graph_nodes, "folding_chain",
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, shape)],
+        [helper.make_tensor_value_info(x, TensorProto.FLOAT, shape)], [weight])
+    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+
+
+def bench_folding(work: Path, runs: int, quick: bool) -> list[str]:
+    """8. Constant folding and parameter ownership: their share of `roofgate profile` time."""
+    import onnx
+
+    from gate.synth.archs import resnet18, resnet50
+    from gate.synth.builder import save_model
+    from gate.synth.forms import rewrite_weights
+
+    label = "ResNet-18" if quick else "ResNet-50"
+    resnet = rewrite_weights((resnet18 if quick else resnet50)(weights="inline", batch=1), "view")
+    cases = [(f"{label}, every weight behind a view", str(save_model(resnet, work / "r.onnx")))]
+    size = 10_000 if quick else 100_000
+    chain = work / "chain.onnx"
+    onnx.save(_folding_chain(size), str(chain))
+    cases.append((f"{size:,} nodes, a third folded", str(chain)))
+    cells, shares = [], []
+    for name, path in cases:
+        assert_fully_modelled(path)
+        m = measure("fold-share", ["profile", path, "--target", TARGET, "--format", "json"],
+                    1 if "nodes" in name else runs)
+        shares.append(m["fold_share"])
+        cells.append(f"{name}: {m['fold_share'] * m['seconds']:.2f} s of {m['seconds']:.2f} s")
+    row = (f"| 8 | constant folding and parameter charging, share of `roofgate profile` | "
+           f"{'; '.join(cells)} | {', '.join(f'{s:.1%}' for s in shares)} | < 10% |")
+    return [row]
+
+
 def _zoo(work: Path, count: int) -> Path:
     from gate.synth.archs import mobilenet_v1, recurrent_classifier
     from gate.synth.builder import save_model
@@ -360,14 +448,14 @@ def main() -> None:
     parser.add_argument("--worker", nargs=argparse.REMAINDER)
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--runs", type=int, default=None)
-    parser.add_argument("--only", default="1234567", help="which benchmarks, e.g. 13")
+    parser.add_argument("--only", default="12345678", help="which benchmarks, e.g. 13")
     options = parser.parse_args()
     if options.worker:
         worker(options.worker[0], options.worker[1:])
         return
     runs = options.runs or (1 if options.quick else 3)
     benches = {"1": bench_floor, "2": bench_weights, "3": bench_scaling, "4": bench_zoo,
-               "5": bench_targets, "6": bench_demo, "7": bench_fusion}
+               "5": bench_targets, "6": bench_demo, "7": bench_fusion, "8": bench_folding}
     print(f"roofgate benchmark, {time.strftime('%Y-%m-%d')}, {platform.machine()}, "
           f"{os.cpu_count()} cores, Python {platform.python_version()}, "
           f"median of {runs} run(s){' (quick)' if options.quick else ''}\n")

@@ -46,6 +46,7 @@ _VALUE_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32"
 # Never folded: non-deterministic ops, and ops with bodies (control flow is costed).
 _NEVER_FOLDED = frozenset({"RandomNormal", "RandomUniform", "RandomNormalLike",
                            "RandomUniformLike", "Multinomial", "Bernoulli"})
+_BODY_TYPES = (onnx.AttributeProto.GRAPH, onnx.AttributeProto.GRAPHS)
 # Read (a part of) their data input's elements as they are: the stored tensors pass through.
 _VIEW_OPS = frozenset({"Identity", "Reshape", "Flatten", "Squeeze", "Unsqueeze", "Transpose",
                        "Slice", "Gather", "GatherElements", "GatherND", "Split", "Dropout"})
@@ -95,11 +96,13 @@ def folds(proto: onnx.NodeProto, input_names: Sequence[str],
         return False
     if proto.op_type == "Constant":
         return True
-    present = [name for name in input_names if name]
-    if not present or any(a.type in (onnx.AttributeProto.GRAPH, onnx.AttributeProto.GRAPHS)
-                          for a in proto.attribute):
-        return False
-    return all(name in is_constant for name in present)
+    present = False
+    for name in input_names:
+        if name:
+            if name not in is_constant:
+                return False  # the common case (an activation input): decided cheaply
+            present = True
+    return present and not any(a.type in _BODY_TYPES for a in proto.attribute)
 
 
 def folded_sources(op_type: str, inputs: Sequence[ParamSource | None],
@@ -117,8 +120,9 @@ def folded_sources(op_type: str, inputs: Sequence[ParamSource | None],
 
 
 def _passed_through(op_type: str, data: Sequence[ParamSource], info: TensorInfo) -> ParamSource:
-    stored_tensors = tuple({s.name: s for source in data for s in source.stored}.values())
     first = data[0]
+    stored_tensors = first.stored if len(data) == 1 else tuple(
+        {s.name: s for source in data for s in source.stored}.values())
     bits, dtype = first.bits, first.dtype
     out_bits = info.bits_per_element
     if op_type in _CONVERT_OPS and 0 < out_bits < bits:

@@ -287,7 +287,12 @@ def _readers(proto: onnx.GraphProto) -> dict[str, set[str]]:
             if name:
                 readers.setdefault(name, set()).add(op_type)
         for attribute in node.attribute:
-            bodies = [attribute.g] if attribute.HasField("g") else list(attribute.graphs)
+            if attribute.type == AttributeProto.GRAPH:
+                bodies = [attribute.g]
+            elif attribute.type == AttributeProto.GRAPHS:
+                bodies = list(attribute.graphs)
+            else:
+                continue
             for body in bodies:
                 for name in _names_read_in(body):
                     readers.setdefault(name, set()).add(_SUBGRAPH_READER)

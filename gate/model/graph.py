@@ -104,7 +104,9 @@ class ParamSource:
     def read_elements(self) -> int:
         """Elements the layer reads, never more than the stored tensors hold; all of
         them when the element count is unknown."""
-        stored = sum(s.numel or 0 for s in self.stored)
+        stored = 0
+        for tensor in self.stored:
+            stored += tensor.numel or 0
         if self.numel is None:
             return stored
         return min(self.numel, stored) if stored else self.numel
