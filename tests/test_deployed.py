@@ -409,3 +409,40 @@ def test_profile_outputs_show_precision_and_role(tmp_path: Path) -> None:
     assert {(item["op_type"], item["role"]) for item in layers} >= {("Squeeze", "folded")}
     table = render("table", profile, [], [])
     assert "precision" in table and "folded" in table
+
+
+def test_folded_nodes_inside_a_loop_body_cost_nothing(tmp_path: Path) -> None:
+    # The body reads the outer weight through a Transpose: folded offline like at the top level,
+    # so the Loop costs its MatMul only and is charged the weight once.
+    body = helper.make_graph(
+        [helper.make_node("Transpose", ["w"], ["w_t"], perm=[1, 0], name="body_t"),
+         helper.make_node("MatMul", ["h_in", "w_t"], ["h_out"], name="body_mm"),
+         helper.make_node("Identity", ["cond_in"], ["cond_out"], name="body_cond")],
+        "body", [vi("i", [], TensorProto.INT64), vi("cond_in", [], TensorProto.BOOL),
+                 vi("h_in", [1, 64])], [vi("cond_out", [], TensorProto.BOOL), vi("h_out", [1, 64])])
+    inits = [weight("w", [64, 64]), helper.make_tensor("m", TensorProto.INT64, [], [5]),
+             helper.make_tensor("cond", TensorProto.BOOL, [], [True])]
+    node = helper.make_node("Loop", ["m", "cond", "h0"], ["h"], body=body, name="loop")
+    profile = _profile(model([node], [vi("h0", [1, 64])], [vi("h", [1, 64])], inits), tmp_path,
+                       "loop")
+    (loop,) = profile.layers
+    assert loop.macs == 5 * 64 * 64 and loop.flops == 2 * loop.macs  # no Transpose copy
+    assert loop.param_names == ("w",) and loop.param_bytes == 64 * 64 * 4
+
+
+def test_small_values_are_computed_only_for_small_outputs_of_known_size() -> None:
+    # onnx.reference runs the op (ONNX spec semantics), but only when every output is an
+    # integer tensor of known size within the limit: a hostile Range or Tile is never run.
+    from gate.model.constants import small_values
+    from gate.model.graph import TensorInfo
+
+    scalar = TensorInfo("a", (), "INT64")
+    equal = helper.make_node("Equal", ["a", "b"], ["c"])
+    known = small_values(equal, [scalar, TensorInfo("b", (), "INT64")], [(16000,), (16000,)],
+                         [TensorInfo("c", (), "BOOL")], 17)
+    assert known == {"c": (1,)}
+    ranged = helper.make_node("Range", ["a", "b", "d"], ["r"])
+    inputs = [scalar, TensorInfo("b", (), "INT64"), TensorInfo("d", (), "INT64")]
+    for size in (None, (10**12,)):
+        out = TensorInfo("r", size, "INT64")
+        assert small_values(ranged, inputs, [(0,), (10**12,), (1,)], [out], 17) == {}

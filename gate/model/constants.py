@@ -178,8 +178,10 @@ def small_values(proto: onnx.NodeProto, inputs: Sequence[TensorInfo | None],
     """
     if proto.op_type not in _VALUE_OPS | {"Shape", "Size"} or len(outputs) != 1:
         return {}
-    if not outputs[0].name or outputs[0].dtype not in _VALUE_DTYPES:
-        return {}
+    out = outputs[0]
+    if (not out.name or out.dtype not in _VALUE_DTYPES or out.numel is None
+            or out.numel > CONST_VALUE_LIMIT):
+        return {}  # only small outputs of known size: a hostile Range or Tile is never run
     feeds = _feeds(proto, inputs, values) if proto.op_type not in ("Shape", "Size") else {}
     if feeds is None:
         return {}

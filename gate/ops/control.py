@@ -2,7 +2,8 @@
 
 Body nodes are costed through the same registry (``cost_function_for``); a body
 node without a cost function, or one that is Unmodelled, makes the whole
-control-flow node Unmodelled with that reason. Loop: body x trip count (M, a
+control-flow node Unmodelled with that reason. Body nodes folded from constants
+and fused quantize/dequantize pairs cost nothing, as at the top level. Loop: body x trip count (M, a
 constant input); with a condition input too, the trip count is an upper bound.
 Scan: body x the scan axis length. If: the taken branch when the condition is
 constant (an initializer or Constant, or computed from constants: the loader
@@ -50,7 +51,7 @@ def graph_work(graph: Graph) -> OpWork:
         raise Unmodelled(f"control flow nested deeper than {MAX_NESTING} levels")
     token = _depth.set(depth + 1)
     try:
-        return add_work(_node_work(n) for n in graph.nodes)
+        return add_work(_node_work(n) for n in graph.nodes if not (n.folded or n.fused))
     finally:
         _depth.reset(token)
 
