@@ -396,7 +396,7 @@ def _layer_row(change: LayerChange, head: LayerRecord | None = None, precision: 
     if change.status != "added" and change.status != "removed" and change.base_name != name:
         what += f" (was {md_escape(shorten(change.base_name or '', NAME_CHARS))})"
     notes = [part for part in (head.fused_label if head else "", precision) if part]
-    op = change.op_type + (f" ({', '.join(notes)})" if notes else "")
+    op = " ".join([change.op_type, *(f"({note})" for note in notes)])
     cells = [md_escape(shorten(name, NAME_CHARS)), md_escape(shorten(op, NAME_CHARS)), what]
     for metric, _ in LAYER_METRICS:
         cells.append(_layer_cell(change, metric))
