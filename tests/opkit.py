@@ -190,7 +190,7 @@ def traced_macs(model: onnx.ModelProto, feeds: Mapping[str, np.ndarray]) -> int:
 
 def _node_macs(n: onnx.NodeProto, values: Mapping[str, np.ndarray]) -> int:
     """MACs of one matrix node from its operands (numpy matmul / Gemm / Conv semantics)."""
-    if n.op_type == "MatMul":
+    if n.op_type in ("MatMul", "MatMulInteger"):
         a, b = (values[i] for i in n.input[:2])
         a2 = a.reshape(1, -1) if a.ndim == 1 else a
         b2 = b.reshape(-1, 1) if b.ndim == 1 else b

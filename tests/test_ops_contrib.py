@@ -44,12 +44,11 @@ def _w(*shape):
     return RNG.standard_normal(shape).astype(np.float32)
 
 
-def _check(tmp_path, fused, parts, feeds=None, params_equal=True, extra_param_bytes=0):
+def _check(tmp_path, fused, parts, feeds=None, params_equal=True):
     fused_totals = profile_totals(fused, tmp_path, "fused")
     parts_totals = profile_totals(parts, tmp_path, "parts")
     if not params_equal:  # packed storage: bytes equal, element counts differ (see module)
         fused_totals["params"] = parts_totals["params"]
-    parts_totals["param_bytes"] += extra_param_bytes
     assert_fused_equals_decomposition(fused_totals, parts_totals)
     assert fused_totals["macs"] > 0 or fused_totals["flops"] > 0
     if feeds is not None:  # execution trace of the decomposition
@@ -116,11 +115,7 @@ def test_matmul_nbits_is_blockwise_dequantize_matmul(tmp_path):
                          helper.make_node("Add", ["m", "bias"], ["Y"])], {"A": (2, 5, k)}, ["Y"],
                         {"wscale": np.ones((k // block, n), np.float32), "bias": _w(n)})
     parts.graph.initializer.append(weight)
-    # The profile folds DequantizeLinear of a constant weight offline and counts only the
-    # quantized weight as the decomposition's parameter; the fused op reads its per-block
-    # scales as a parameter input as well (64 floats here).
-    scales_bytes = 4 * n * (k // block)
-    totals = _check(tmp_path, fused, parts, params_equal=False, extra_param_bytes=scales_bytes)
+    totals = _check(tmp_path, fused, parts, params_equal=False)
     assert totals["macs"] == 2 * 5 * k * n
 
 
@@ -503,3 +498,24 @@ def test_embed_layer_normalization(tmp_path, segments, mask):
                                    value=helper.make_tensor("zero", TensorProto.INT32, [1], [0]))]
     parts = graph_model(nodes, shapes, ["Y", "mask_index"], inits, dtypes=dtypes)
     _check(tmp_path, fused, parts)
+
+
+@pytest.mark.parametrize("zero_point", [0, 3])
+def test_dynamic_quantize_matmul(tmp_path, zero_point):
+    # (A, B, b_scale, b_zero_point, bias): the pattern DynamicQuantizeLinear -> MatMulInteger
+    # -> Cast -> Mul(scales) -> Mul -> Add that the runtime's optimizer fuses into it
+    # (public contrib-op documentation for the input order).
+    k, n = 12, 5
+    inits = {"B": RNG.integers(-8, 8, (k, n)).astype(np.int8), "b_scale": np.full(n, 0.1, np.float32),
+             "b_zp": np.full(n, zero_point, np.int8), "bias": _w(n)}
+    shapes = {"A": (3, 4, k)}
+    fused = graph_model([_ms("DynamicQuantizeMatMul", ["A", "B", "b_scale", "b_zp", "bias"], ["Y"])],
+                        shapes, ["Y"], inits, contrib=True)
+    parts = graph_model([helper.make_node("DynamicQuantizeLinear", ["A"], ["Aq", "a_scale", "a_zp"]),
+                         helper.make_node("MatMulInteger", ["Aq", "B", "a_zp", "b_zp"], ["acc"]),
+                         helper.make_node("Cast", ["acc"], ["accf"], to=TensorProto.FLOAT),
+                         helper.make_node("Mul", ["a_scale", "b_scale"], ["scale"]),
+                         helper.make_node("Mul", ["accf", "scale"], ["y"]),
+                         helper.make_node("Add", ["y", "bias"], ["Y"])], shapes, ["Y"], inits)
+    totals = _check(tmp_path, fused, parts, {"A": _w(3, 4, k)})
+    assert totals["macs"] == 3 * 4 * k * n

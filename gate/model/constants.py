@@ -59,6 +59,13 @@ QUANT_METADATA_POSITIONS: Mapping[str, tuple[int, ...]] = {
     "QuantizeLinear": (1, 2), "DequantizeLinear": (1, 2),
     "QLinearConv": (1, 2, 4, 5, 6, 7), "QLinearMatMul": (1, 2, 4, 5, 6, 7),
     "ConvInteger": (2, 3), "MatMulInteger": (2, 3),
+    # com.microsoft QOperator ops (public contrib-op documentation; gate/ops/contrib_*.py),
+    # so a fused op counts the parameters of its standard-op decomposition.
+    "QLinearAdd": (1, 2, 4, 5, 6, 7), "QLinearMul": (1, 2, 4, 5, 6, 7),
+    "QLinearSigmoid": (1, 2, 3, 4), "QLinearLeakyRelu": (1, 2, 3, 4),
+    "QLinearSoftmax": (1, 2, 3, 4), "QLinearAveragePool": (1, 2, 3, 4),
+    "QLinearGlobalAveragePool": (1, 2, 3, 4), "QGemm": (1, 2, 4, 5, 7, 8),
+    "DynamicQuantizeMatMul": (3,), "MatMulNBits": (2, 3),
 }
 
 # Ops whose small integer outputs are computed from small integer inputs.

@@ -118,6 +118,11 @@ def add_work(parts: Iterable[OpWork]) -> OpWork:
                   note="; ".join(dict.fromkeys(notes)))
 
 
+def gemm_output_elements(work: OpWork) -> int:
+    """Elements the work's GEMMs write (M x N per GEMM): where an epilogue applies."""
+    return sum(g.m * g.n * g.count for g in work.gemms)
+
+
 def repeat_work(work: OpWork, times: int, sequential: bool) -> OpWork:
     """``work`` done ``times`` times; ``sequential`` chains the repeats (loop-carried state)."""
     gemms = tuple(

@@ -14,8 +14,8 @@ Input orders and attributes follow the public contrib-op documentation
 and FusedGemm and MatMulNBits' packed layout ``[N, K / block_size, block_size *
 bits / 8]`` are from memory. MatMulNBits' weight bytes equal the decomposition's
 (4-bit weights as 4 bits); its parameter *count* is the packed uint8 elements, since
-roofgate counts initializer elements and never reads the packing; its per-block scales
-are parameters it reads (the decomposition's folded dequantization leaves them out).
+roofgate counts initializer elements and never reads the packing; its scales and zero
+points are quantization metadata, as a DequantizeLinear's are.
 """
 
 from __future__ import annotations
@@ -25,7 +25,14 @@ from dataclasses import replace
 from onnx import TypeProto
 
 from gate.model.graph import Node, TensorInfo
-from gate.ops._common import add_work, arithmetic, input_shape, numel, str_attr
+from gate.ops._common import (
+    add_work,
+    arithmetic,
+    gemm_output_elements,
+    input_shape,
+    numel,
+    str_attr,
+)
 from gate.ops.contrib_shapes import (
     Facts,
     as_standard,
@@ -52,15 +59,11 @@ def _activation_ops(node: Node) -> int:
     return UNARY_OPS_PER_ELEMENT[name]
 
 
-def _output_elements(work: OpWork) -> int:
-    return sum(g.m * g.n * g.count for g in work.gemms)
-
-
 @register("FusedConv", domain=MS)
 def fused_conv(node: Node) -> OpWork:
     """Conv(X, W, B) + Z (input 3) then the activation, per output element."""
     core = conv_work(node, x_pos=0, w_pos=1, bias_pos=2)
-    outputs = _output_elements(core)
+    outputs = gemm_output_elements(core)
     per_output = _activation_ops(node) + (1 if node.input(3) is not None else 0)
     return add_work([core, arithmetic(per_output * outputs)])
 
@@ -68,7 +71,7 @@ def fused_conv(node: Node) -> OpWork:
 @register("FusedGemm", domain=MS)
 def fused_gemm(node: Node) -> OpWork:
     core = gemm(node)
-    return add_work([core, arithmetic(_activation_ops(node) * _output_elements(core))])
+    return add_work([core, arithmetic(_activation_ops(node) * gemm_output_elements(core))])
 
 
 def _transposed(tensor: TensorInfo | None, shape: tuple[int, ...]) -> TensorInfo | None:
@@ -90,7 +93,7 @@ def fused_matmul(node: Node) -> OpWork:
         inputs[1] = _transposed(node.input(1), b)
     core = matmul_work(replace(node, inputs=tuple(inputs)))
     scaled = float(node.attr("alpha", 1.0)) != 1.0
-    return add_work([core, arithmetic(_output_elements(core) if scaled else 0)])
+    return add_work([core, arithmetic(gemm_output_elements(core) if scaled else 0)])
 
 
 def _nbits_sizes(node: Node) -> tuple[int, int, int]:

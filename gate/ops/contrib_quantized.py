@@ -11,7 +11,12 @@ output scale is given; see ``gate.ops.quantized``), plus 1 per output for the bi
 input C and for alpha != 1; with neither it costs exactly a QLinearMatMul of the same
 operands.
 
+``DynamicQuantizeMatMul`` costs its decomposition DynamicQuantizeLinear(A) ->
+MatMulInteger -> Cast -> Mul(a_scale, b_scale) -> Mul -> [Add bias], the pattern the
+runtime's graph optimizer fuses into it.
+
 Input orders follow the public contrib-op documentation (ContribOperators.md):
+DynamicQuantizeMatMul (A, B, b_scale, b_zero_point, bias),
 QLinearAdd/Mul (A, A_scale, A_zp, B, B_scale, B_zp, C_scale, C_zp), the unary and
 pool forms (X, X_scale, X_zp, Y_scale, Y_zp), QLinearConcat (Y_scale, Y_zp, then
 (X, X_scale, X_zp) per input), QGemm (A, a_scale, a_zp, B, b_scale, b_zp, C,
@@ -29,6 +34,7 @@ from gate.ops._common import (
     add_work,
     arithmetic,
     broadcast,
+    gemm_output_elements,
     input_shape,
     numel,
     output_shape,
@@ -43,6 +49,8 @@ from gate.ops.quantized import (  # the QLinearMatMul convention, one owner
     QUANTIZE_OPS_PER_ELEMENT,
     _quantized_matrix_op,
     _zero_point_ops,
+    dynamic_quantize_linear,
+    matmul_integer,
 )
 from gate.ops.registry import OpWork, Unmodelled, register
 
@@ -122,6 +130,23 @@ def qgemm(node: Node) -> OpWork:
     return add_work([quantized, arithmetic(per_output * shape.m * shape.n)])
 
 
+@register("DynamicQuantizeMatMul", domain=MS)
+def dynamic_quantize_matmul(node: Node) -> OpWork:
+    """(A float, B int8, b_scale, b_zero_point?, bias?): DynamicQuantizeLinear of A,
+    MatMulInteger with A's run-time zero point, Cast, the two scales' product, the scale
+    Mul per output and the bias Add, each costed as that standard op."""
+    a = input_shape(node, 0, "A")
+    scale = numel(input_shape(node, 2, "b_scale"))
+    integer = replace(node, op_type="MatMulInteger", param_inputs=node.param_inputs - {2, 4},
+                      inputs=(TensorInfo("A_quantized", a, "UINT8"), node.input(1),
+                              TensorInfo("A_zero_point", (), "UINT8"), node.input(3)))
+    core = matmul_integer(integer)
+    outputs = gemm_output_elements(core)
+    per_output = 1 + (1 if node.input(4) is not None else 0)  # scale Mul, bias Add
+    return add_work([dynamic_quantize_linear(replace(node, inputs=(node.input(0),))), core,
+                     arithmetic(scale + per_output * outputs)])
+
+
 # --- output shapes (onnx shape inference knows no com.microsoft op)
 
 shape_rule(*QLINEAR_UNARY_FLOAT_OPS)(same_as(0))
@@ -158,6 +183,7 @@ def _pool_shape(op_type: str) -> Rule:
     return rule
 
 
+shape_rule("DynamicQuantizeMatMul")(as_standard("MatMul", (0, 1)))
 shape_rule("QLinearGlobalAveragePool")(_pool_shape("GlobalAveragePool"))
 shape_rule("QLinearAveragePool")(_pool_shape("AveragePool"))
 
