@@ -21,6 +21,7 @@ import numpy as np
 import onnx
 import pytest
 from click.testing import CliRunner
+from gitkit import Repo
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from loadkit import model, save, vi
@@ -768,3 +769,26 @@ def test_text_recogniser_any_width_equals_the_execution_trace(width: int, divide
     with tempfile.TemporaryDirectory() as folder:
         path = save(proto, Path(folder) / "ocr.onnx")
         _check_against_trace(path, proto, {"img": image}, {"img": (1, 1, 32, width)})
+
+
+def test_check_binds_both_sides_from_the_config_and_the_flag(tmp_path: Path,
+                                                              monkeypatch: pytest.MonkeyPatch,
+                                                              ) -> None:
+    # Both sides of a pull request are read from git and bound alike: the base side by the
+    # same group's shapes, so the diff compares like with like.
+    repo = Repo(tmp_path / "repo")
+    repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policy.yaml]\n"
+               "models:\n  - paths: ['speech/*.onnx']\n    shapes: {audio: 1x1000}\n")
+    repo.write("policy.yaml", POLICY)
+    repo.write("speech/vad.onnx", vad_front_end(-1, hidden=8).SerializeToString())
+    repo.commit("base")
+    repo.branch("pr")
+    repo.write("speech/vad.onnx", vad_front_end(-1, hidden=16).SerializeToString())
+    repo.commit("wider LSTM")
+    monkeypatch.chdir(repo.path)
+    for extra, samples in (([], 1000), (["--shape", "audio=1x2000"], 2000)):
+        result = CliRunner().invoke(cli, ["check", "--base", "main", "--json", "out.json", *extra])
+        assert result.exit_code == 0, result.output
+        entry = json.loads(Path("out.json").read_text(encoding="utf-8"))["result"]["entries"][0]
+        base, head = entry["base"]["metrics"]["macs"], entry["head"]["metrics"]["macs"]
+        assert base == _vad_macs(samples) and head > base > 0
