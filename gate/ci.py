@@ -137,7 +137,7 @@ def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
         base_runs = []
     group = _group(policies.config, change)
     return judge(head_runs, base_runs, policies.get(group), command="check", today=today,
-                 errors=errors, notes=notes)
+                 errors=errors, notes=notes, base_from_git=stored is None)
 
 
 def _base_key(model: str) -> str:

@@ -14,9 +14,10 @@ Layers are matched in three passes, each on the layers the previous left over:
    That pairs a layer whose shapes changed (a widened convolution) with its old
    self, reported as changed rather than as one removal plus one addition.
 
-What is left is added (head only) or removed (base only). Floats are compared
-with a relative tolerance (``REL_TOL``) so a baseline read back from a snapshot,
-whose floats are rounded, does not show every layer as changed.
+What is left is added (head only) or removed (base only). Values are compared
+with the metric catalogue's change tolerance (``gate.metrics.unchanged``), the
+one every report uses, so a baseline read back from a snapshot, whose floats
+are rounded, does not show every layer as changed.
 """
 
 from __future__ import annotations
@@ -26,11 +27,9 @@ from collections.abc import Sequence
 from difflib import SequenceMatcher
 from itertools import pairwise
 
+from gate import metrics
 from gate.records import LayerRecord, Metric, RunRecord
 from gate.result import LayerChange, RunDiff
-
-# Snapshots keep 12 significant digits; anything closer than this is the same value.
-REL_TOL = 1e-9
 
 ADDED, REMOVED, CHANGED, UNCHANGED = "added", "removed", "changed", "unchanged"
 
@@ -68,18 +67,14 @@ def metric_deltas(base: LayerRecord | RunRecord, head: LayerRecord | RunRecord,
     return {
         name: (base.metrics[name], head.metrics[name])
         for name in sorted(set(base.metrics) & set(head.metrics))
-        if not same_value(base.metrics[name], head.metrics[name])
+        if not metrics.unchanged(name, base.metrics[name], head.metrics[name])
     }
 
 
 def same_value(a: Metric, b: Metric) -> bool:
-    """Equal ints, or floats equal within ``REL_TOL``; an unknown value (None) equals
+    """Equal within the catalogue's change tolerance; an unknown value (None) equals
     nothing, so unknown figures always show (as '?'), never as unchanged."""
-    if a is None or b is None:
-        return False
-    if isinstance(a, int) and isinstance(b, int):
-        return a == b
-    return math.isclose(float(a), float(b), rel_tol=REL_TOL, abs_tol=1e-300)
+    return metrics.unchanged("", a, b)
 
 
 def ranked_changes(diff: RunDiff, limit: int | None = None) -> list[LayerChange]:

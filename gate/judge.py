@@ -29,13 +29,15 @@ def utc_today() -> date:
 
 def judge(head: Sequence[RunRecord], base: Sequence[RunRecord], policies: Sequence[Policy], *,
           command: str, today: date, errors: Sequence[ModelError] = (),
-          notes: Sequence[str] = ()) -> GateResult:
+          notes: Sequence[str] = (), base_from_git: bool = False) -> GateResult:
     """Pair, diff and evaluate: the ``GateResult`` of these records.
 
     A (model, target) in ``head`` only is new (no diff); in ``base`` only, the
     model was removed (no verdicts: rules judge what would be merged). Entries
     are sorted by (model, target), verdicts by policy then rule order, errors
     by model, so the result does not depend on the order records arrived in.
+    ``base_from_git`` (``check`` without a snapshot) keeps "refresh the baseline" out of
+    the remedies: the merge itself refreshes a base read from git.
     """
     head_by_key = _index(head, "head")
     base_by_key = _index(base, "base")
@@ -43,7 +45,7 @@ def judge(head: Sequence[RunRecord], base: Sequence[RunRecord], policies: Sequen
     for key in sorted(head_by_key.keys() | base_by_key.keys()):
         head_run, base_run = head_by_key.get(key), base_by_key.get(key)
         diff = diff_runs(base_run, head_run) if head_run and base_run else None
-        verdicts = _verdicts(policies, head_run, base_run, diff, today)
+        verdicts = _verdicts(policies, head_run, base_run, diff, today, base_from_git)
         entries.append(Entry(model=key[0], target=key[1], head=head_run, base=base_run,
                              diff=diff, verdicts=verdicts))
     return GateResult(
@@ -57,9 +59,12 @@ def judge(head: Sequence[RunRecord], base: Sequence[RunRecord], policies: Sequen
 
 
 def _verdicts(policies: Sequence[Policy], head: RunRecord | None, base: RunRecord | None,
-              diff: object, today: date) -> tuple[Verdict, ...]:
+              diff: object, today: date, base_from_git: bool) -> tuple[Verdict, ...]:
+    """Verdicts of every policy, then the built-in ones; ``check`` reads its base from git
+    (no baseline snapshot to refresh, which the remedies then do not suggest)."""
     judged = tuple(v for policy in policies
-                   for v in evaluate(policy, head, base, diff, today=today))  # type: ignore[arg-type]
+                   for v in evaluate(policy, head, base, diff, today=today,  # type: ignore[arg-type]
+                                     base_from_git=base_from_git))
     return judged + builtin_verdicts(head)
 
 

@@ -7,7 +7,8 @@ every reporter work from records only, so a result read back from JSON reports
 exactly like the one computed in-process.
 
 Metric names carry their unit (``_bytes``, ``_s``, ``_j``, ``_per_s``); the
-README lists them. Values are ints for counts and bytes, floats otherwise.
+metric catalogue (``gate.metrics``) lists them with their labels, units and
+directions. Values are ints for counts and bytes, floats otherwise.
 """
 
 from __future__ import annotations
@@ -15,6 +16,8 @@ from __future__ import annotations
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
+
+from gate.metrics import LAYER_METRICS, MODEL_METRICS, TARGET_FIGURES
 
 Metric = int | float | None  # None: unknown (never 0); JSON null, printed as '?'
 
@@ -27,31 +30,7 @@ COSTED_MODEL_METRICS: tuple[str, ...] = (
     "flops_per_j", "peak_flops_per_j_share", "param_dram_bytes", "act_dram_bytes",
 )
 
-# Layer metrics every LayerRecord carries (documented in the README).
-LAYER_METRICS: tuple[str, ...] = (
-    "macs", "flops", "param_count", "param_bytes", "input_bytes", "output_bytes",
-    "arithmetic_intensity", "param_reuse", "cycles", "utilization", "compute_s", "memory_s",
-    "overhead_s", "latency_s", "param_dram_bytes", "act_dram_bytes", "achieved_flops_per_s",
-    "energy_j", "energy_mac_j", "energy_buffer_j", "energy_noc_j", "energy_dram_param_j",
-    "energy_dram_act_j", "energy_static_j",
-)
-
-# Model totals every RunRecord carries.
-MODEL_METRICS: tuple[str, ...] = (
-    "layers", "macs", "flops", "param_count", "param_bytes", "max_layer_param_bytes",
-    "latency_s", "inferences_per_s", "achieved_flops_per_s", "peak_flops_share", "utilization",
-    "energy_j", "energy_mac_j", "energy_buffer_j", "energy_noc_j", "energy_dram_param_j",
-    "energy_dram_act_j", "energy_static_j", "flops_per_j", "peak_flops_per_j_share",
-    "param_dram_bytes", "act_dram_bytes", "coverage_node_share", "coverage_work_share",
-    "unmodelled_nodes",
-)
-
-# Target figures every RunRecord carries (for messages and charts).
-TARGET_FIGURES: tuple[str, ...] = (
-    "peak_flops_per_s", "peak_flops_per_j", "dram_bytes_per_s", "ridge_flop_per_byte",
-    "param_buffer_bytes", "activation_buffer_bytes", "pe_count", "clock_hz",
-)
-
+__all__ = ["LAYER_METRICS", "MODEL_METRICS", "TARGET_FIGURES"]  # re-exported from gate.metrics
 
 @dataclass(frozen=True, slots=True)
 class LayerRecord:

@@ -7,10 +7,12 @@ never need anything that is not in it.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
+from gate import metrics
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 from gate.records import Metric, RunRecord, run_from_dict, run_to_dict
 
@@ -18,6 +20,10 @@ from gate.records import Metric, RunRecord, run_from_dict, run_to_dict
 PASS = "pass"
 FAIL = "fail"
 WAIVED = "waived"
+# Status words of a model x target, worst first: every report uses these (and only these).
+WARN = "warn"
+REMOVED = "removed"
+ENTRY_STATUSES = (FAIL, WARN, PASS, REMOVED)
 
 # Built-in rule ids (no policy file declares them, no waiver covers them).
 NOT_GATED = "not-gated"  # a changed .onnx file no model group covers
@@ -36,6 +42,7 @@ class Finding:
     status: str  # FAIL or WAIVED
     waiver_reason: str = ""
     waiver_expires: str = ""  # ISO date, "" when not waived
+    headline: str = ""  # the message without its remedy ("" in results of format 1)
 
 
 @dataclass(frozen=True, slots=True)
@@ -56,6 +63,23 @@ class Verdict:
     @property
     def blocks_merge(self) -> bool:
         return self.status == FAIL and self.severity == "error"
+
+    def text_of(self, finding: Finding) -> str:
+        """The finding as one sentence without the rule's remedy (reporters say it once):
+        its headline, or its message with a trailing ``: <remedy>.`` cut off."""
+        if finding.headline:
+            return finding.headline
+        tail = f": {self.remedy}."
+        message = finding.message
+        if self.remedy and message.endswith(tail) and len(message) > len(tail):
+            return message[: -len(tail)] + "."
+        return message
+
+    @property
+    def failing(self) -> tuple[Finding, ...]:
+        """The unwaived findings, furthest past the limit first (ties keep the rule's order)."""
+        return tuple(sorted((f for f in self.findings if f.status == FAIL),
+                            key=lambda f: -_excess(f)))
 
 
 @dataclass(frozen=True, slots=True)
@@ -124,6 +148,152 @@ class Entry:
         """The ids of the rules that judged this model x target, in verdict order."""
         return tuple(dict.fromkeys(v.rule_id for v in self.verdicts))
 
+    @property
+    def ranked_verdicts(self) -> tuple[Verdict, ...]:
+        """Verdicts in reading order: blocking failures, warnings, waived, passed (each group
+        in policy order)."""
+        def rank(v: Verdict) -> int:
+            return 0 if v.blocks_merge else 1 if v.status == FAIL else 2 if v.status == WAIVED \
+                else 3
+        return tuple(sorted(self.verdicts, key=rank))
+
+    @property
+    def status_word(self) -> str:
+        """``fail`` (a blocking rule failed), ``warn`` (only warnings failed), ``pass``, or
+        ``removed`` (the model is gone: nothing to gate)."""
+        if self.head is None:
+            return REMOVED
+        if self.status == FAIL:
+            return FAIL
+        return WARN if any(v.status == FAIL for v in self.verdicts) else PASS
+
+    @property
+    def blocking(self) -> tuple[Blocker, ...]:
+        """What blocks the merge here: each unwaived finding of a blocking rule, worst first
+        within a rule (a failed rule without findings counts once)."""
+        out: list[Blocker] = []
+        for verdict in self.verdicts:
+            if verdict.blocks_merge:
+                out += [Blocker(verdict, f, k) for k, f in enumerate(verdict.failing)] \
+                    or [Blocker(verdict, None)]
+        return tuple(out)
+
+    @property
+    def worst_layer(self) -> str | None:
+        """The layer a reader should look at first: the layer of the worst blocking finding,
+        else of the worst failing warning, else the layer whose latency changed most
+        (absolute), else None."""
+        for blocker in self.blocking:
+            if blocker.finding is not None and blocker.finding.layer is not None:
+                return blocker.finding.layer
+        for verdict in self.verdicts:
+            layers = [f for f in verdict.failing if f.layer is not None]
+            if layers:
+                return layers[0].layer
+        return self.most_changed_layer
+
+    @property
+    def most_changed_layer(self) -> str | None:
+        """The head layer whose latency changed most in seconds (impact, not percent)."""
+        if self.diff is None:
+            return None
+        moved = [(metrics.impact("latency_s", *c.deltas["latency_s"]), c.head_name)
+                 for c in self.diff.layers
+                 if c.head_name is not None and "latency_s" in c.deltas]
+        return max(moved, key=lambda pair: pair[0])[1] if moved else None
+
+    @property
+    def ridge_flop_per_byte(self) -> float | None:
+        """The target's ridge point at the run's precision (FLOP per DRAM byte), or None."""
+        run = self.head or self.base
+        value = run.target_figures.get("ridge_flop_per_byte") if run else None
+        return float(value) if value else None
+
+    @property
+    def impact_s(self) -> float:
+        """How much the model's latency moved against the base, in seconds (0 without one)."""
+        if self.diff is None or "latency_s" not in self.diff.totals:
+            return 0.0
+        return metrics.impact("latency_s", *self.diff.totals["latency_s"])
+
+
+@dataclass(frozen=True, slots=True)
+class Blocker:
+    """One reason the merge is blocked: a blocking rule and one of its unwaived findings."""
+
+    verdict: Verdict
+    finding: Finding | None  # None: the rule failed without a finding to point at
+    index: int = 0  # position among its rule's findings (the first one carries the remedy)
+
+    @property
+    def layer(self) -> str | None:
+        return self.finding.layer if self.finding else None
+
+    def sentence(self) -> str:
+        """Model, target, rule, layer, value vs limit and (for a rule's first finding) the
+        remedy, as one sentence of plain text (each reporter escapes it for its format)."""
+        v = self.verdict
+        where = f"{v.model} on {v.target}: rule {v.rule_id} fails"
+        fix = f" Fix: {v.remedy}." if self.index == 0 and v.remedy else ""
+        finding = self.finding
+        if finding is None:
+            return f"{where}: {v.summary}.{fix}"
+        at = f" at layer {finding.layer}" if finding.layer is not None else ""
+        relation = "above" if _above(finding) else "below"
+        return (f"{where}{at}: {metrics.label(finding.metric)} "
+                f"{metrics.fmt(finding.metric, finding.value)}, {relation} the limit of "
+                f"{metrics.fmt(finding.metric, finding.limit)}.{fix}")
+
+
+def blocking_sentences(result: GateResult, per_rule: int = 3) -> list[str]:
+    """What blocks the merge, as plain sentences every report leads with: up to ``per_rule``
+    findings of each blocking rule (worst first, the remedy said with the first), then one
+    line naming the rest of that rule's layers."""
+    lines: list[str] = []
+    by_rule: dict[int, list[Blocker]] = {}
+    for blocker in result.blocking:
+        by_rule.setdefault(id(blocker.verdict), []).append(blocker)
+    for group in by_rule.values():
+        lines += [b.sentence() for b in group[:per_rule]]
+        rest = group[per_rule:]
+        if rest:
+            names = ", ".join(b.layer or "model" for b in rest[:10])
+            more = f" and {len(rest) - 10} more" if len(rest) > 10 else ""
+            lines.append(f"{group[0].verdict.model} on {group[0].verdict.target}: rule "
+                         f"{group[0].verdict.rule_id} also fails at {len(rest)} more "
+                         f"place{'s' if len(rest) != 1 else ''}: {names}{more}.")
+    return lines
+
+
+def _above(finding: Finding) -> bool:
+    try:
+        return float(finding.value) > float(finding.limit)
+    except (TypeError, ValueError):
+        return True
+
+
+def _excess(finding: Finding) -> float:
+    """How far past its limit a finding is, in the metric's own unit (0 when unknown)."""
+    try:
+        value, limit = float(finding.value), float(finding.limit)
+    except (TypeError, ValueError):
+        return 0.0
+    excess = abs(value - limit)
+    return 0.0 if math.isnan(excess) else excess
+
+
+@dataclass(frozen=True, slots=True)
+class Counts:
+    """Outcome counts of a run (rule results count once per model x target)."""
+
+    entries: int
+    failed_entries: int  # model x target pairs with a blocking failure
+    blocking: int  # failed error-severity rules
+    warnings: int  # failed warning-severity rules
+    waived: int  # rules whose every finding is waived
+    rules: int  # rule results in all
+    errors: int  # models that could not be analysed
+
 
 @dataclass(frozen=True, slots=True)
 class GateResult:
@@ -155,6 +325,40 @@ class GateResult:
         skipped = len(self.ungated) - not_gated
         return {"seen": gated + not_gated + skipped, "gated": gated, "not_gated": not_gated,
                 "skipped": skipped}
+
+    @property
+    def counts(self) -> Counts:
+        verdicts = [v for e in self.entries for v in e.verdicts]
+        return Counts(
+            entries=len(self.entries),
+            failed_entries=sum(1 for e in self.entries if e.status == FAIL),
+            blocking=sum(1 for v in verdicts if v.blocks_merge),
+            warnings=sum(1 for v in verdicts if v.status == FAIL and not v.blocks_merge),
+            waived=sum(1 for v in verdicts if v.status == WAIVED),
+            rules=len(verdicts),
+            errors=len(self.errors))
+
+    @property
+    def blocking(self) -> tuple[Blocker, ...]:
+        """Every reason the merge is blocked, in worst-first entry order."""
+        return tuple(b for e in self.ranked_entries for b in e.blocking)
+
+    @property
+    def ranked_entries(self) -> tuple[Entry, ...]:
+        """Entries worst first: fail, warn, pass, removed; then the largest latency change
+        (absolute); then model and target. Every report lists entries in this order."""
+        order = {status: rank for rank, status in enumerate(ENTRY_STATUSES)}
+        return tuple(sorted(self.entries, key=lambda e: (order[e.status_word], -e.impact_s,
+                                                         e.model, e.target)))
+
+    @property
+    def status_word(self) -> str:
+        """``passed``, ``failed`` (a blocking rule) or ``incomplete`` (a model could not be
+        analysed and the policy does not allow it): the run's headline word."""
+        code = self.exit_code
+        if code == EXIT_PASS:
+            return "passed"
+        return "failed" if code == EXIT_GATE_FAILED else "incomplete"
 
     @property
     def exit_code(self) -> int:
@@ -227,8 +431,8 @@ def _verdict_to_dict(v: Verdict) -> dict[str, Any]:
         "status": v.status, "summary": v.summary, "remedy": v.remedy,
         "findings": [
             {"layer": f.layer, "metric": f.metric, "value": f.value, "limit": f.limit,
-             "message": f.message, "status": f.status, "waiver_reason": f.waiver_reason,
-             "waiver_expires": f.waiver_expires}
+             "message": f.message, "headline": f.headline, "status": f.status,
+             "waiver_reason": f.waiver_reason, "waiver_expires": f.waiver_expires}
             for f in v.findings
         ],
     }
@@ -243,7 +447,8 @@ def _verdict_from_dict(d: Mapping[str, Any]) -> Verdict:
             Finding(layer=f["layer"], metric=str(f["metric"]), value=f["value"],
                     limit=f["limit"], message=str(f["message"]), status=str(f["status"]),
                     waiver_reason=str(f["waiver_reason"]),
-                    waiver_expires=str(f["waiver_expires"]))
+                    waiver_expires=str(f["waiver_expires"]),
+                    headline=str(f.get("headline", "")))
             for f in d["findings"]
         ),
     )

@@ -123,6 +123,7 @@ def _target_figures(cost: ModelCost, target: TargetProfile) -> dict[str, Metric]
         "ridge_flop_per_byte": ridge,
         "param_buffer_bytes": param_buffer,
         "activation_buffer_bytes": act_buffer,
+        "unified_buffer_bytes": target.unified_buffer_bytes,  # 0 when buffers are separate
         "pe_count": target.pe_count,
         "clock_hz": target.clock_hz,
     }

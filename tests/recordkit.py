@@ -25,7 +25,8 @@ TARGET = "ws-64x64-4mib"
 FIGURES: dict[str, int | float] = {
     "peak_flops_per_s": 1.6384e12, "peak_flops_per_j": 2.0e12, "dram_bytes_per_s": 8.0e9,
     "ridge_flop_per_byte": 204.8, "param_buffer_bytes": 4 * 1024 * 1024,
-    "activation_buffer_bytes": 2 * 1024 * 1024, "pe_count": 4096, "clock_hz": 2.0e8,
+    "activation_buffer_bytes": 2 * 1024 * 1024, "unified_buffer_bytes": 0, "pe_count": 4096,
+    "clock_hz": 2.0e8,
 }
 assert set(FIGURES) == set(TARGET_FIGURES)
 

@@ -59,7 +59,7 @@ def test_one_error_per_failing_rule_and_model_error_none_for_passes() -> None:
     species = next(ln for ln in errors if "species.onnx" in ln)
     assert "file=models/trailcam/species.onnx" in species
     assert "title=roofgate fits-param-buffer (ws-64x64-4mib)" in species
-    assert "head/gemm" in species and "%0ARemedy: split the layer" in species
+    assert "head/gemm" in species and "%0AFix: split the layer" in species
     broken = next(ln for ln in errors if "broken" in ln)
     assert "file=models/broken<b>|.onnx" in broken and "truncated" in broken
 

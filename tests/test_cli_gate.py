@@ -243,6 +243,6 @@ def test_diff_names_both_sides_and_what_moved_on_every_changed_layer(work) -> No
     # head.flatten only moves activation bytes (its input doubles: 192 -> 384 channels,
     # x 4 bytes fp32), so the line says that rather than ending empty.
     flatten = next(line for line in lines if "Flatten head.flatten" in line)
-    assert "input_bytes 768 B -> 1.50 KiB (+100.0%)" in flatten
+    assert "input size 768 B -> 1.50 KiB (+100%)" in flatten
     conv2 = next(line for line in lines if "stage4.block1.conv2 " in line)
-    assert "params 1.27 MiB -> 5.06 MiB (+300.0%)" in conv2  # 3x3 kernels, 2x in, 2x out
+    assert "parameter size 1.27 MiB -> 5.06 MiB (+300%)" in conv2  # 3x3 kernels, 2x in, 2x out

@@ -185,7 +185,7 @@ KIND_CASES = [
      "- {id: fit, kind: fits_in_buffer, check: params}",
      _run(_layer("conv1"), _WIDE), None, FAIL, ["stage4/conv"],
      [("Layer 'stage4/conv' (Conv): parameters 1.30 MiB exceed the 1.00 MiB parameter buffer "
-      "of ws-64x64-4mib: quantize to int8, split the layer")]),
+      "of ws-64x64-4mib: prune the weights, split the layer")]),
     ("fits activations fails",
      "- {id: fit, kind: fits_in_buffer, check: activations}",
      _run(_SPILL, _WIDE), None, FAIL, ["stem/conv"],
@@ -221,8 +221,8 @@ KIND_CASES = [
      FAIL, ["a"], []),
     ("latency fails",
      "- {id: t, kind: max_latency, max: 1.5 ms}", _run(), None, FAIL, [None],
-     [("Model: latency per inference 2 ms exceeds the 1.5 ms maximum (largest: conv1 1 ms, "
-      "relu1 1 ms)")]),
+     [("Model: latency per inference 2.00 ms exceeds the 1.50 ms maximum (largest: conv1 "
+      "1.00 ms, relu1 1.00 ms)")]),
     ("latency at the limit passes",
      "- {id: t, kind: max_latency, max: 2 ms}", _run(), None, PASS, [], []),
     ("energy fails",
@@ -253,11 +253,11 @@ KIND_CASES = [
     ("model regression",
      "- {id: r, kind: max_regression, metric: latency_s, max_increase_pct: 5}",
      _run(_layer("conv1", latency_s=1.2e-3)), _run(_layer("conv1")), FAIL, [None],
-     [("Model: latency [latency_s] regressed by +0.2 ms (+20.0%), from 1 ms to 1.2 ms against the "
-      "baseline, beyond the allowed +5% (worst allowed 1.05 ms)")]),
+     [("Model: latency [latency_s] 1.00 ms -> 1.20 ms against the baseline, worse by 200 us "
+      "(+20.0%), beyond the allowed +5% (worst allowed 1.05 ms)")]),
     ("model regression better-higher metric",
      "- {id: r, kind: max_regression, metric: utilization, max_decrease_abs: 5%}",
-     _run(utilization=0.40), _run(utilization=0.50), FAIL, [None], ["-10.0 pp"]),
+     _run(utilization=0.40), _run(utilization=0.50), FAIL, [None], ["worse by 10.0 pp"]),
     ("model improvement is no regression",
      "- {id: r, kind: max_regression, metric: utilization, max_decrease_pct: 0}",
      _run(utilization=0.60), _run(utilization=0.50), PASS, [], []),
@@ -265,7 +265,8 @@ KIND_CASES = [
      "- {id: r, kind: max_regression, level: layer, metric: param_bytes, max_increase_pct: 10}",
      _run(_layer("a", param_bytes=200_000), _layer("b"), _layer("new", param_bytes=10 * MiB)),
      _run(_layer("a", param_bytes=100_000), _layer("b")), FAIL, ["a"],
-     ["Layer 'a' (Conv): parameter size [param_bytes] regressed by +97.7 KiB (+100.0%)"]),
+     [("Layer 'a' (Conv): parameter size [param_bytes] 97.7 KiB -> 195 KiB against the "
+      "baseline, worse by 97.7 KiB (+100%)")]),
 ]
 
 
@@ -303,7 +304,7 @@ def test_layer_regression_follows_the_diff_through_a_rename() -> None:
     assert finding.limit == pytest.approx(1.5e-3)
     assert "Layer 'backbone/conv_a' (Conv, was 'conv_a')" in finding.message
     assert verdict.summary.startswith("1 layer regressed in latency beyond +50%; worst: "
-                                      "backbone/conv_a +2 ms (+200.0%)")
+                                      "backbone/conv_a worse by 2.00 ms (+200%)")
 
 
 def test_summary_names_the_count_and_the_worst_layer() -> None:
@@ -353,7 +354,8 @@ def test_messages_name_metrics_readably_with_the_key_once() -> None:
     verdict = _one(_policy("- {id: r, kind: max_regression, metric: energy_j, "
                            "max_increase_pct: 5}"), head, base)
     (finding,) = verdict.findings
-    assert finding.message.startswith("Model: energy [energy_j] regressed by +100 uJ")
+    assert finding.message.startswith("Model: energy [energy_j] 100 uJ -> 200 uJ against the "
+                                      "baseline, worse by 100 uJ (+100%)")
     assert finding.message.count("energy_j") == 1
     assert "energy [energy_j] no worse than +5%" in verdict.description
 

@@ -23,8 +23,8 @@ import pytest
 from gate.errors import InputError
 from gate.report import all_reporters, charts, write_report
 from gate.report.html import REPORTER, render
-from gate.report.text import fmt_joules
 from gate.result import FAIL, PASS, Entry, GateResult, ModelError
+from gate.units import fmt_joules
 from tests.reportkit import (
     DRAM_BYTES_PER_S,
     HOSTILE,

@@ -71,7 +71,7 @@ def test_warnings_only_pass_with_a_warning_mark() -> None:
                    findings=(finding(metric="utilization", value=0.1, limit=0.3),))
     text = render(result(entry(run(), run(), (warn,))))
     assert "roofgate: passed" in text and "1 warning" in text
-    assert "| min-util | \u26a0\ufe0f warning | head/gemm | utilization | 10.0% | 30.0% |" in text
+    assert "| min-util | \u26a0\ufe0f warning | head/gemm | PE utilization | 10.0% | 30.0% |" in text
 
 
 def test_no_models_changed_renders_clearly() -> None:
@@ -129,22 +129,7 @@ def test_emoji_count_as_two_code_units() -> None:
     assert comment_size(HOSTILE_NAME) == len(HOSTILE_NAME)
 
 
-# --- the shared formatting and escaping helpers (gate/report/text.py) -------------------
-
-def test_units_use_binary_prefixes_and_fixed_digits() -> None:
-    from gate.report.text import fmt_bytes, fmt_change, fmt_delta, fmt_metric, fmt_ms
-
-    # Binary prefixes: KiB = 1024 B, MiB = 1024 KiB (IEC 80000-13).
-    assert [fmt_bytes(v) for v in (0, 1023, 1024, 1536, 4 * 2**20, 5 * 2**30)] == [
-        "0 B", "1023 B", "1.00 KiB", "1.50 KiB", "4.00 MiB", "5.00 GiB"]
-    assert fmt_ms(0.0123) == "12.3 ms" and fmt_ms(0) == "0 ms"
-    assert fmt_metric("utilization", 0.875) == "87.5%"
-    assert fmt_metric("energy_j", 2.5e-6) == "2.50 uJ"
-    assert fmt_delta("param_bytes", 1024, 2048) == "+1.00 KiB (+100.0%)"
-    assert fmt_delta("utilization", 0.5, 0.45) == "-5.0 pp"
-    assert fmt_delta("macs", 0, 5) == "+5 (new)"
-    assert fmt_change("latency_s", 1.0, 1.0 + 1e-13) == "="  # snapshot rounding is no change
-
+# --- the shared escaping helpers (gate/report/text.py; numbers: test_report_units.py) ---
 
 def test_md_escape_neutralises_every_markup_character() -> None:
     from gate.report.text import md_escape

@@ -91,7 +91,8 @@ def test_one_result_per_failed_rule_with_level_location_and_descriptor() -> None
     open_results = [r for r in run["results"] if "suppressions" not in r]
     failed = [v for e in result.entries for v in e.verdicts if v.status == FAIL]
     assert len(open_results) == len(failed) == 2
-    for res, verdict in zip(open_results, sorted(failed, key=lambda v: (v.model, v.target))):
+    worst_first = [v for e in result.ranked_entries for v in e.ranked_verdicts if v.status == FAIL]
+    for res, verdict in zip(open_results, worst_first):
         assert res["ruleId"] == verdict.rule_id
         assert rules[res["ruleIndex"]]["id"] == verdict.rule_id
         assert res["level"] == sarif_level(verdict.severity)

@@ -262,8 +262,9 @@ def test_targets_command_lists_every_builtin_with_key_figures() -> None:
     for name in builtin_target_names():
         assert name in result.output
     assert "2.05 TFLOP/s fp16" in result.output  # 2 x 4096 x 0.5 x 500 MHz
-    assert "4 MiB param + 2 MiB act" in result.output and "512 KiB unified" in result.output
-    assert "34 GB/s" in result.output and "weight-stationary" in result.output
+    assert "4.00 MiB param + 2.00 MiB act" in result.output
+    assert "512 KiB unified" in result.output
+    assert "34.0 GB/s" in result.output and "weight-stationary" in result.output
 
 
 def test_targets_command_lists_user_files_and_refuses_broken_ones(tmp_path: Path) -> None:

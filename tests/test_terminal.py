@@ -32,28 +32,35 @@ def test_remedy_is_shown_once_per_rule_not_per_finding() -> None:
                      for k in range(5, 10))
     text = terminal.render(result(entry(run(), verdicts=(
         verdict(status=FAIL, findings=findings, remedy=REMEDY),))))
-    assert text.count(REMEDY) == 1
-    assert f"             remedy: {REMEDY}" in _lines(text)
-    # value and limit of the first three findings stay; the rest are counted
-    assert "             - Layer 'conv5' (Conv): parameters 5 MiB exceed the 4.00 MiB " \
-           "parameter buffer." in _lines(text)
-    assert "             ... and 2 more" in _lines(text)
+    assert text.count(REMEDY) == 1  # said with the first blocking finding only
+    lines = _lines(text)
+    assert lines[1] == "BLOCKED by 1 rule:"
+    assert lines[2].startswith("  1. models/trailcam/species.onnx on ws-64x64-4mib: rule ")
+    assert lines[2].endswith(f"Fix: {REMEDY}.")
+    # three findings as sentences, the rest named in one line
+    assert lines[5].endswith("also fails at 2 more places: conv8, conv9.")
+    # a warning rule says its remedy once too, after its findings
+    warn = terminal.render(result(entry(run(), verdicts=(
+        verdict(status=FAIL, severity="warning", findings=findings, remedy=REMEDY),))))
+    assert warn.count(REMEDY) == 1 and f"             fix: {REMEDY}" in _lines(warn)
+    assert "             ... and 2 more" in _lines(warn)
 
 
 def test_a_message_without_the_remedy_is_left_whole() -> None:
     text = terminal.render(result(entry(run(), verdicts=(
-        verdict(status=FAIL, findings=(finding(message="odd wording; no remedy here"),)),))))
-    assert "- odd wording; no remedy here" in text and "remedy:" not in text
+        verdict(status=FAIL, severity="warning",
+                findings=(finding(message="odd wording; no remedy here"),)),))))
+    assert "odd wording; no remedy here" in text
 
 
 def test_a_single_model_finding_replaces_the_summary() -> None:
     model_level = finding(None, metric="latency_s", message="Model: latency_s regressed by "
                           "+10% (worst allowed 1.1 ms): check the change.")
-    rule = verdict("latency-regression", status=FAIL, findings=(model_level,),
-                   remedy="check the change")
+    rule = verdict("latency-regression", status=FAIL, severity="warning",
+                   findings=(model_level,), remedy="check the change")
     rule = replace(rule, summary="latency_s regressed by +10%")
     text = terminal.render(result(entry(run(), verdicts=(rule,))))
-    assert ("           error latency-regression: latency_s regressed by +10% "
+    assert ("           warning latency-regression: latency_s regressed by +10% "
             "(worst allowed 1.1 ms).") in _lines(text)
     assert text.count("regressed by") == 1
 
@@ -80,7 +87,7 @@ def test_partial_and_zero_coverage_are_visible() -> None:
 
 def test_deleted_model_line() -> None:
     text = terminal.render(result(entry(None, run())))
-    assert "  DELETED  models/trailcam/species.onnx on ws-64x64-4mib  (no longer present" in text
+    assert "  REMOVED  models/trailcam/species.onnx on ws-64x64-4mib  (no longer present" in text
 
 
 def test_reports_in_one_folder_are_listed_once() -> None:
@@ -97,13 +104,13 @@ def test_worst_findings_come_first() -> None:
                          message=f"conv{k} at {v:.0%}")
                  for k, v in enumerate((0.25, 0.20, 0.29, 0.05, 0.10)))
     text = terminal.render(result(entry(run(), verdicts=(
-        verdict("min-util", status=FAIL, findings=lows),))))
+        verdict("min-util", status=FAIL, severity="warning", findings=lows),))))
     shown = [line.strip()[2:] for line in _lines(text) if line.startswith("             - ")]
     assert shown == ["conv3 at 5%", "conv4 at 10%", "conv1 at 20%"]
     # parameter bytes: higher is worse
     highs = tuple(finding(f"fc{k}", value=v, limit=100, message=f"fc{k} {v}")
                   for k, v in enumerate((150, 900, 120)))
     text = terminal.render(result(entry(run(), verdicts=(
-        verdict(status=FAIL, findings=highs),))))
+        verdict(status=FAIL, severity="warning", findings=highs),))))
     shown = [line.strip()[2:] for line in _lines(text) if line.startswith("             - ")]
     assert shown == ["fc1 900", "fc0 150", "fc2 120"]

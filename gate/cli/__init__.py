@@ -1,5 +1,10 @@
 """The ``roofgate`` command line: one group, one module per command family.
 
+Commands are registered lazily: ``_COMMANDS`` names the module and function of
+each with its one-line help, and a module is imported only when its command
+runs, so ``roofgate --help``, ``--version`` and ``targets`` never import onnx or
+numpy (tests/test_report_cli_speed.py checks which modules they load).
+
 Every exception that is not a user-facing ``RoofgateError`` is turned into an
 internal error (exit 3) here, so a crash never exits 0 (pass) or 1 (findings).
 """
@@ -15,14 +20,28 @@ import click
 from gate import __version__
 from gate.errors import InternalError
 
-# Modules that each add their commands to ``cli`` through ``register(cli)``.
-_COMMAND_MODULES = (
-    "gate.cli.profile_cmd",
-    "gate.cli.targets_cmd",
-    "gate.cli.files_cmd",
-    "gate.cli.ci_cmd",
-    "gate.cli.init_cmd",
-)
+# Command name -> (module, attribute, the one line --help lists; the command's own
+# ``short_help``, kept equal by tests/test_report_cli_lazy.py).
+_COMMANDS: dict[str, tuple[str, str, str]] = {
+    "check": ("gate.cli.ci_cmd", "check_command",
+              "Gate the models a branch changed (both sides from git)."),
+    "audit": ("gate.cli.ci_cmd", "audit_command",
+              "Profile and judge a whole model zoo, optionally sharded."),
+    "merge": ("gate.cli.ci_cmd", "merge_command",
+              "Combine `audit --shard` results into one set of reports."),
+    "evaluate": ("gate.cli.files_cmd", "evaluate_command",
+                 "Judge model files given by name (no git needed)."),
+    "profile": ("gate.cli.profile_cmd", "profile", "Per-layer counts and costs of one model."),
+    "diff": ("gate.cli.files_cmd", "diff_command", "Per-layer diff of two models or snapshots."),
+    "baseline": ("gate.cli.files_cmd", "baseline_command",
+                 "Write a baseline snapshot for later comparisons."),
+    "targets": ("gate.cli.targets_cmd", "targets",
+                "List the built-in targets; show one as YAML."),
+    "init": ("gate.cli.init_cmd", "init_command",
+             "Write roofgate.yaml and a starter policy for this repository."),
+    "demo": ("gate.cli.ci_cmd", "demo_command",
+             "Run the gate on a fictional repository, built on the fly."),
+}
 
 # ``--help`` lists commands in the order of the workflow, not alphabetically: the CI
 # commands first, then the ones on files given by name, then the helpers. A command
@@ -31,13 +50,34 @@ COMMAND_ORDER = ("check", "audit", "merge", "evaluate", "profile", "diff", "base
                  "targets", "init", "demo")
 
 
-class _FailClosedGroup(click.Group):
+class _LazyGroup(click.Group):
+    """A group whose commands are imported on first use; --help lists them from the table,
+    in workflow order (``COMMAND_ORDER``), the rest after them."""
+
     def list_commands(self, ctx: click.Context) -> list[str]:
-        """Commands in workflow order (``COMMAND_ORDER``), the rest after them."""
-        names = super().list_commands(ctx)
+        names = set(_COMMANDS) | set(self.commands)
         rank = {name: k for k, name in enumerate(COMMAND_ORDER)}
         return sorted(names, key=lambda name: (rank.get(name, len(rank)), name))
 
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        if cmd_name in self.commands or cmd_name not in _COMMANDS:
+            return self.commands.get(cmd_name)
+        module, attribute, _ = _COMMANDS[cmd_name]
+        command = getattr(importlib.import_module(module), attribute)
+        self.add_command(command, cmd_name)
+        return command  # type: ignore[no-any-return]
+
+    def format_commands(self, ctx: click.Context, formatter: click.HelpFormatter) -> None:
+        """The command list from the table, without importing any command module."""
+        rows = [(name, _COMMANDS[name][2] if name in _COMMANDS
+                 else self.commands[name].get_short_help_str())
+                for name in self.list_commands(ctx)]
+        if rows:
+            with formatter.section("Commands"):
+                formatter.write_dl(rows)
+
+
+class _FailClosedGroup(_LazyGroup):
     def invoke(self, ctx: click.Context) -> object:
         try:
             return super().invoke(ctx)
@@ -70,13 +110,6 @@ def cli(debug: bool) -> None:
     Estimates are analytical, not device measurements: confirm on device before release.
     """
 
-
-def _register_commands() -> None:
-    for name in _COMMAND_MODULES:
-        importlib.import_module(name).register(cli)
-
-
-_register_commands()
 
 
 def main() -> None:

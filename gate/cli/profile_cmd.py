@@ -71,7 +71,7 @@ def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
     target_warnings = [w for target in targets for w in target.warnings]
     for warning in [*analysis.loaded.warnings, *target_warnings]:  # terminal-safe: model names
         click.echo(f"warning: {term_safe(one_line(warning))}", err=True)
-    if analysis.loaded.unbound_dims:
+    if analysis.loaded.unbound_dims and fmt != "table":  # the table states the hint once
         binds = " ".join(f"--dim {term_safe(one_line(d))}=N" for d in analysis.loaded.unbound_dims)
         click.echo(f"warning: unbound symbolic dims leave layers unmodelled; bind them with "
                    f"{binds} (or size whole inputs with --shape INPUT=SHAPE)", err=True)

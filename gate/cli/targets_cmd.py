@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import click
 
+from gate import metrics, units
 from gate.targets import builtin_target_names, builtin_target_yaml, load_target
 from gate.targets.spec import TargetProfile
 
@@ -71,29 +72,14 @@ def target_table(profiles: list[TargetProfile]) -> list[str]:
 
 def _row(profile: TargetProfile) -> tuple[str, ...]:
     first = next(iter(profile.precisions), None)
-    peak = f"{_si(profile.peak_flops_per_s(first), 'FLOP/s')} {first}" if first else "-"
-    ridge = f"{profile.ridge_flop_per_byte(first):.3g} FLOP/B" if first else "-"
+    peak = f"{units.fmt_count(profile.peak_flops_per_s(first), 'FLOP/s')} {first}" if first else "-"
+    ridge = metrics.fmt("ridge_flop_per_byte", profile.ridge_flop_per_byte(first)) if first else "-"
     if profile.is_unified:
-        buffers = f"{_binary(profile.unified_buffer_bytes)} unified"
+        buffers = f"{units.fmt_bytes(profile.unified_buffer_bytes)} unified"
     else:
-        buffers = (f"{_binary(profile.param_buffer_bytes)} param + "
-                   f"{_binary(profile.activation_buffer_bytes)} act")
+        buffers = (f"{units.fmt_bytes(profile.param_buffer_bytes)} param + "
+                   f"{units.fmt_bytes(profile.activation_buffer_bytes)} act")
     return (profile.name, profile.dataflow, f"{profile.pe_rows}x{profile.pe_cols}",
-            _si(profile.clock_hz, "Hz"), peak, ",".join(profile.precisions), buffers,
-            _si(profile.dram_bytes_per_s, "B/s"),
-            ridge, _si(profile.static_power_w, "W"))
-
-
-def _si(value: float, unit: str) -> str:
-    for factor, prefix in ((1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""),
-                           (1e-3, "m"), (1e-6, "u")):
-        if abs(value) >= factor:
-            return f"{value / factor:.3g} {prefix}{unit}"
-    return f"{value:.3g} {unit}"
-
-
-def _binary(nbytes: int) -> str:
-    for factor, unit in ((2**30, "GiB"), (2**20, "MiB"), (2**10, "KiB")):
-        if nbytes >= factor:
-            return f"{nbytes / factor:.3g} {unit}"
-    return f"{nbytes} B"
+            units.fmt_count(profile.clock_hz, "Hz"), peak, ",".join(profile.precisions), buffers,
+            units.fmt_count(profile.dram_bytes_per_s, "B/s"),
+            ridge, units.fmt_count(profile.static_power_w, "W"))

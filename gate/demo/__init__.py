@@ -22,9 +22,8 @@ from pathlib import Path
 
 import click
 
-from gate import gitscan
+from gate import gitscan, metrics
 from gate.errors import EXIT_GATE_FAILED, EXIT_INTERNAL, EXIT_PASS, InputError
-from gate.report.text import fmt_change, fmt_metric
 from gate.result import FAIL, GateResult
 
 REPO_DIR = "fernhollow-models"
@@ -197,8 +196,8 @@ def _fit_text(result: GateResult) -> str:
             for finding in verdict.findings:
                 if finding.layer == WIDENED_LAYER and finding.status == FAIL:
                     return (f"layer {WIDENED_LAYER} now holds "
-                            f"{fmt_metric(finding.metric, finding.value)} of parameters, over "
-                            f"the {fmt_metric(finding.metric, finding.limit)} parameter buffer "
+                            f"{metrics.fmt(finding.metric, finding.value)} of parameters, over "
+                            f"the {metrics.fmt(finding.metric, finding.limit)} parameter buffer "
                             f"of {entry.target}")
     return f"layer {WIDENED_LAYER} no longer fits the parameter buffer"
 
@@ -210,8 +209,8 @@ def _improvement_text(result: GateResult) -> str:
             parts = []
             for label, metric in (("parameters", "param_bytes"), ("latency", "latency_s")):
                 base, head = entry.diff.totals[metric]
-                parts.append(f"{label} {fmt_metric(metric, base)} -> {fmt_metric(metric, head)} "
-                             f"({fmt_change(metric, base, head)})")
+                parts.append(f"{label} {metrics.fmt(metric, base)} -> {metrics.fmt(metric, head)} "
+                             f"({metrics.fmt_signed(metric, base, head)})")
             return ", ".join(parts)
     return "its parameters fell"
 

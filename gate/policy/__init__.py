@@ -19,11 +19,12 @@ from gate.policy.load import (
     load_policies,
     load_policy,
 )
-from gate.policy.spec import HIGHER_IS_BETTER, KINDS, Policy, Rule, Scope, Waiver
+from gate.policy.spec import KINDS, Policy, Rule, Scope, Waiver
 from gate.policy.waivers import unused_waivers
 
 __all__ = [
-    "HIGHER_IS_BETTER", "KINDS", "POLICY_FORMAT_VERSION", "Policy", "Rule", "Scope", "Waiver",
-    "allow_unanalysable", "builtin_policy_names", "builtin_policy_yaml", "describe", "evaluate", "evaluate_all", "load_policies", "load_policy",
+    "KINDS", "POLICY_FORMAT_VERSION", "Policy", "Rule", "Scope", "Waiver",
+    "allow_unanalysable", "builtin_policy_names", "builtin_policy_yaml", "describe", "evaluate",
+    "evaluate_all", "load_policies", "load_policy",
     "unused_waivers",
 ]

@@ -11,35 +11,37 @@ from __future__ import annotations
 from collections.abc import Iterable
 from datetime import date
 
+from gate import metrics, units
 from gate.policy import spec
 from gate.policy.regression import allowed_text, check_max_regression
 from gate.policy.rules import CHECKS, Outcome, remedy_of
 from gate.policy.spec import Policy, Rule
 from gate.policy.waivers import to_finding
 from gate.records import RunRecord
-from gate.report.text import fmt_metric, fmt_percent
 from gate.result import FAIL, PASS, WAIVED, Finding, RunDiff, Verdict
-
-_CHECKS = {**CHECKS, spec.MAX_REGRESSION: check_max_regression}
 
 
 def evaluate(policy: Policy, head: RunRecord | None, base: RunRecord | None,
-             diff: RunDiff | None, *, today: date) -> tuple[Verdict, ...]:
-    """The verdicts of ``policy`` on one model x target; ``today`` decides waiver expiry."""
+             diff: RunDiff | None, *, today: date,
+             base_from_git: bool = False) -> tuple[Verdict, ...]:
+    """The verdicts of ``policy`` on one model x target; ``today`` decides waiver expiry;
+    ``base_from_git`` (``check``) keeps "refresh the baseline" out of remedies."""
     if head is None or not policy.applies_to_target(head.target):
         return ()
     return tuple(
-        evaluate_rule(rule, policy, head, base, diff, today=today)
+        evaluate_rule(rule, policy, head, base, diff, today=today, base_from_git=base_from_git)
         for rule in policy.rules
         if rule.scope.covers_model(head.model, head.target)
     )
 
 
 def evaluate_all(policies: Iterable[Policy], head: RunRecord | None, base: RunRecord | None,
-                 diff: RunDiff | None, *, today: date) -> tuple[Verdict, ...]:
+                 diff: RunDiff | None, *, today: date,
+                 base_from_git: bool = False) -> tuple[Verdict, ...]:
     """The verdicts of several policies on one model x target, in policy then rule order."""
     return tuple(v for policy in policies
-                 for v in evaluate(policy, head, base, diff, today=today))
+                 for v in evaluate(policy, head, base, diff, today=today,
+                                   base_from_git=base_from_git))
 
 
 def allow_unanalysable(policies: Iterable[Policy]) -> bool:
@@ -49,8 +51,11 @@ def allow_unanalysable(policies: Iterable[Policy]) -> bool:
 
 
 def evaluate_rule(rule: Rule, policy: Policy, head: RunRecord, base: RunRecord | None,
-                  diff: RunDiff | None, *, today: date) -> Verdict:
-    outcome = _CHECKS[rule.kind](rule, head, base, diff)
+                  diff: RunDiff | None, *, today: date, base_from_git: bool = False) -> Verdict:
+    if rule.kind == spec.MAX_REGRESSION:
+        outcome = check_max_regression(rule, head, base, diff, base_from_git=base_from_git)
+    else:
+        outcome = CHECKS[rule.kind](rule, head, base, diff)
     findings = tuple(to_finding(b, rule, policy.waivers, head.model, head.target, today)
                      for b in outcome.breaches)
     failing = [f for f in findings if f.status == FAIL]
@@ -58,7 +63,7 @@ def evaluate_rule(rule: Rule, policy: Policy, head: RunRecord, base: RunRecord |
     return Verdict(rule_id=rule.id, kind=rule.kind, severity=rule.severity,
                    description=rule.description or describe(rule), model=head.model,
                    target=head.target, status=status, summary=_summary(rule, outcome, findings),
-                   remedy=remedy_of(rule), findings=findings)
+                   remedy=remedy_of(rule, head, base_from_git=base_from_git), findings=findings)
 
 
 def _summary(rule: Rule, outcome: Outcome, findings: tuple[Finding, ...]) -> str:
@@ -88,26 +93,27 @@ def describe(rule: Rule) -> str:
     """A one-line description generated from a rule's thresholds (when it has none)."""
     where = "model" if rule.level == spec.MODEL else "each layer's"
     if rule.kind == spec.MIN_UTILIZATION:
-        text = f"{where} PE-array utilization at least {fmt_percent(rule.minimum or 0.0)}"
+        text = (f"{where} {metrics.label('utilization')} at least "
+                f"{units.fmt_share(rule.minimum or 0.0)}")
         if rule.level == spec.LAYER:
-            text += f" (array layers with at least {fmt_metric('macs', rule.min_layer_macs)} MACs)"
+            text += f" (array layers with at least {metrics.fmt('macs', rule.min_layer_macs)} MACs)"
         return text
     if rule.kind == spec.FITS_IN_BUFFER:
         what = {(True, True): "parameters and activations", (True, False): "parameters",
                 (False, True): "activations"}[(rule.check_params, rule.check_activations)]
         return f"each layer's {what} fit the target's on-chip buffers"
     if rule.kind == spec.MAX_UNMODELLED:
-        parts = [f"of {m} at most {fmt_percent(v)}" for m, v in
+        parts = [f"of {m} at most {units.fmt_share(v)}" for m, v in
                  (("work", rule.max_work_share), ("nodes", rule.max_node_share)) if v is not None]
         return "unmodelled share " + " and ".join(parts)
     if rule.kind == spec.MAX_REGRESSION:
-        return (f"{where} {spec.metric_phrase(rule.metric)} no worse than {allowed_text(rule)} "
+        return (f"{where} {metrics.phrase(rule.metric)} no worse than {allowed_text(rule)} "
                 "against the baseline")
     metric = {spec.MAX_PARAM_DRAM: "param_dram_bytes", spec.MAX_LATENCY: "latency_s",
               spec.MAX_ENERGY: "energy_j"}.get(rule.kind, rule.metric)
-    limits = [f"at least {fmt_metric(metric, rule.minimum)}" if rule.minimum is not None
-              else "", f"at most {fmt_metric(metric, rule.maximum)}"
+    limits = [f"at least {metrics.fmt(metric, rule.minimum)}" if rule.minimum is not None
+              else "", f"at most {metrics.fmt(metric, rule.maximum)}"
               if rule.maximum is not None else ""]
-    named = spec.metric_phrase(metric) if rule.kind == spec.METRIC_LIMIT else \
-        spec.metric_label(metric)
+    named = metrics.phrase(metric) if rule.kind == spec.METRIC_LIMIT else \
+        metrics.label(metric)
     return f"{where} {named} " + " and ".join(x for x in limits if x)

@@ -15,12 +15,13 @@ from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import TypedDict
 
+from gate import metrics
 from gate.bundled import bundled_bytes, bundled_names, looks_like_path
 from gate.errors import ConfigError
+from gate.metrics import LAYER_METRICS, MODEL_METRICS
 from gate.policy import spec
 from gate.policy.globs import pattern_problem
 from gate.policy.spec import Policy, Rule, Scope, Waiver
-from gate.records import LAYER_METRICS, MODEL_METRICS
 from gate.yamlconf import Section, YamlDocument, parse_yaml_bytes, read_yaml_file, suggest
 
 POLICY_FORMAT_VERSION = 1
@@ -257,7 +258,7 @@ def _fields_regression(sec: Section, level: str) -> _KindFields | None:
         for key in ("max_increase_pct", "max_increase_abs", "max_decrease_pct", "max_decrease_abs"):
             sec.get_str(key)  # mark known; values cannot be checked without the metric
         return None
-    good, bad = (("decrease", "increase") if spec.higher_is_better(metric)
+    good, bad = (("decrease", "increase") if metrics.higher_is_better(metric)
                  else ("increase", "decrease"))
     for key in (f"max_{bad}_pct", f"max_{bad}_abs"):
         if sec.has(key):

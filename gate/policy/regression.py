@@ -10,13 +10,13 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from gate import metrics
 from gate.diff import diff_runs
 from gate.policy import spec
 from gate.policy.rules import Breach, Outcome, remedy_of
 from gate.policy.spec import Rule
 from gate.policy.thresholds import regression_bound, regression_exceeds, worsening
 from gate.records import Metric, RunRecord
-from gate.report.text import fmt_delta, fmt_metric
 from gate.result import RunDiff
 
 
@@ -30,20 +30,17 @@ class _Pair:
 
 def allowed_text(rule: Rule) -> str:
     """'+5% and +0.2 ms' (or '-5%' for a metric that is better higher)."""
-    sign = "-" if spec.higher_is_better(rule.metric) else "+"
+    sign = "-" if metrics.higher_is_better(rule.metric) else "+"
     parts = []
     if rule.max_change_pct is not None:
         parts.append(f"{sign}{rule.max_change_pct:g}%")
     if rule.max_change_abs is not None:
-        if spec.metric_unit(rule.metric) == "share":
-            parts.append(f"{sign}{rule.max_change_abs * 100:.1f} pp")
-        else:
-            parts.append(f"{sign}{fmt_metric(rule.metric, rule.max_change_abs)}")
+        parts.append(f"{sign}{metrics.fmt_amount(rule.metric, rule.max_change_abs)}")
     return " and ".join(parts)
 
 
 def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
-                         diff: RunDiff | None) -> Outcome:
+                         diff: RunDiff | None, *, base_from_git: bool = False) -> Outcome:
     if base is None:
         return Outcome((), 0, "", "no baseline for this model and target; regression not checked")
     pairs = _model_pairs(rule, head, base, diff) if rule.level == spec.MODEL else \
@@ -51,7 +48,7 @@ def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
     if rule.level == spec.MODEL and not pairs:
         return Outcome((), 0, "", f"the baseline has no '{rule.metric}' (older roofgate?); "
                                   "regression not checked: refresh the baseline")
-    better_higher = spec.higher_is_better(rule.metric)
+    better_higher = metrics.higher_is_better(rule.metric)
     allowed = allowed_text(rule)
     breaches = []
     for pair in pairs:
@@ -60,22 +57,22 @@ def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
         if not regression_exceeds(pair.base, pair.head, higher_is_better=better_higher,
                                   max_pct=rule.max_change_pct, max_abs=rule.max_change_abs):
             continue
-        change = (f"by {fmt_delta(rule.metric, pair.base, pair.head)}, from "
-                  f"{fmt_metric(rule.metric, pair.base)} to {fmt_metric(rule.metric, pair.head)}")
         limit = regression_bound(pair.base, higher_is_better=better_higher,
                                  max_pct=rule.max_change_pct, max_abs=rule.max_change_abs)
-        text = (f"{pair.label}: {spec.metric_phrase(rule.metric)} regressed {change} against "
-                f"the baseline, beyond the allowed {allowed}")
+        change = metrics.fmt_change(rule.metric, pair.base, pair.head)
+        text = (f"{pair.label}: {metrics.phrase(rule.metric)} "
+                f"{metrics.fmt(rule.metric, pair.base)} -> {metrics.fmt(rule.metric, pair.head)} "
+                f"against the baseline, {change}, beyond the allowed {allowed}")
         breaches.append(Breach(
             pair.layer, rule.metric, pair.head, limit,
-            f"{text} (worst allowed {fmt_metric(rule.metric, limit)}): {remedy_of(rule)}.",
+            f"{text} (worst allowed {metrics.fmt(rule.metric, limit)}): {remedy_of(rule, head, base_from_git=base_from_git)}.",
             text,
-            f"{pair.layer or 'model'} {fmt_delta(rule.metric, pair.base, pair.head)}",
-            worsening(pair.base, pair.head, better_higher) / abs(pair.base) if pair.base
-            else float("inf")))
+            f"{pair.layer or 'model'} {change}",
+            # worst = largest absolute worsening, in the metric's unit (impact, not percent)
+            worsening(pair.base, pair.head, better_higher)))
     what = "model" if rule.level == spec.MODEL else \
         f"{len(pairs)} matched layer{'s' if len(pairs) != 1 else ''}"
-    label = spec.metric_label(rule.metric)
+    label = metrics.label(rule.metric)
     return Outcome(tuple(breaches), len(pairs), f"regressed in {label} beyond {allowed}",
                    f"{what}: {label} within {allowed} of the baseline")
 

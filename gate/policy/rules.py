@@ -12,23 +12,22 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from gate import metrics, units
 from gate.policy import spec
 from gate.policy.spec import Rule
 from gate.policy.thresholds import above_maximum, below_minimum, unmodelled_share
 from gate.records import LayerRecord, Metric, RunRecord
-from gate.report.text import fmt_bytes, fmt_metric, fmt_percent
 from gate.result import RunDiff
 
 DEFAULT_REMEDIES = {
     spec.MIN_UTILIZATION: "match channel counts to the PE array (multiples of its rows and "
                           "columns), fuse small layers, or lower the limit",
-    spec.MAX_PARAM_DRAM: "quantize or prune so the parameters stay in the on-chip parameter "
-                         "buffer, or raise the limit",
-    spec.MAX_LATENCY: "speed up the slowest layers, quantize, or raise the limit",
-    spec.MAX_ENERGY: "cut DRAM traffic and MACs in the costliest layers, quantize, or raise "
+    spec.MAX_PARAM_DRAM: "{shrink} so the parameters stay in the on-chip {param_buffer}, or raise "
+                         "the limit",
+    spec.MAX_LATENCY: "speed up the slowest layers{quantize_or}, or raise the limit",
+    spec.MAX_ENERGY: "cut DRAM traffic and MACs in the costliest layers{quantize_or}, or raise "
                      "the limit",
-    spec.MAX_REGRESSION: "check that the change is intended; if it is, raise the limit or "
-                         "refresh the baseline",
+    spec.MAX_REGRESSION: "check that the change is intended; if it is, raise the limit{refresh}",
     spec.MAX_UNMODELLED: "size the inputs with --shape or --dim (the notes say which), add "
                          "cost functions for these op types, replace them with modelled ops, "
                          "or raise the limit",
@@ -36,14 +35,15 @@ DEFAULT_REMEDIES = {
 }
 # fits_in_buffer suggests fixes for what the rule checks: (params, activations) -> remedy.
 FITS_REMEDIES = {
-    (True, False): "quantize to int8, split the layer, or choose a target with a larger "
-                   "parameter buffer",
+    (True, False): "{shrink}, split the layer, or choose a target with a larger {param_buffer}",
     (False, True): "tile the layer, lower the input resolution or batch, or choose a target "
-                   "with a larger activation buffer",
-    (True, True): "quantize to int8 or split the layer (parameters), tile it or lower the "
-                  "input resolution or batch (activations), or choose a target with larger "
+                   "with a larger {act_buffer}",
+    (True, True): "{shrink} or split the layer (parameters); tile it or lower the input "
+                  "resolution or batch (activations); or choose a target with larger "
                   "on-chip buffers",
 }
+# Precisions at or below 8 bits: suggesting int8 quantization to these would be no advice.
+_LOW_PRECISIONS = frozenset({"int8", "uint8", "int4", "uint4", "int2", "binary"})
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,14 +68,32 @@ class Outcome:
     pass_summary: str  # the one line when nothing fails
 
 
-def remedy_of(rule: Rule) -> str:
-    """The one remedy of a rule: its own text, or its kind's default. Every finding's message
-    ends with it and the Verdict carries it, so reporters can show it once per rule."""
+def remedy_of(rule: Rule, head: RunRecord | None = None, *, base_from_git: bool = False) -> str:
+    """The one remedy of a rule on a run: its own text, or its kind's default fitted to the run.
+
+    The default does not suggest quantizing to int8 a run already at 8 bits or
+    less, names the unified buffer on a target that has one, and says "refresh
+    the baseline" only where the baseline is a snapshot file (``check`` reads
+    its base from git, which the merge itself refreshes). Every finding's
+    message ends with it and the Verdict carries it, so reporters show it once.
+    """
     if rule.remedy:
         return rule.remedy
-    if rule.kind == spec.FITS_IN_BUFFER:
-        return FITS_REMEDIES[(rule.check_params, rule.check_activations)]
-    return DEFAULT_REMEDIES[rule.kind]
+    template = (FITS_REMEDIES[(rule.check_params, rule.check_activations)]
+                if rule.kind == spec.FITS_IN_BUFFER else DEFAULT_REMEDIES[rule.kind])
+    return template.format(**_remedy_words(head, base_from_git))
+
+
+def _remedy_words(head: RunRecord | None, base_from_git: bool) -> dict[str, str]:
+    low = head is not None and head.precision.lower() in _LOW_PRECISIONS
+    unified = head is not None and bool(head.target_figures.get("unified_buffer_bytes"))
+    return {
+        "shrink": "prune the weights" if low else "quantize the weights to int8",
+        "quantize_or": "" if low else ", quantize",
+        "param_buffer": "unified buffer" if unified else "parameter buffer",
+        "act_buffer": "unified buffer" if unified else "activation buffer",
+        "refresh": "" if base_from_git else " or refresh the baseline snapshot",
+    }
 
 
 def _layer_label(layer: LayerRecord) -> str:
@@ -112,7 +130,7 @@ def _ratio(value: float, limit: float, lower_is_bad: bool) -> float:
 
 def _top_layers(run: RunRecord, metric: str, count: int = 3) -> str:
     ranked = sorted(run.layers, key=lambda layer: layer.metrics.get(metric) or 0, reverse=True)
-    parts = [f"{layer.name} {fmt_metric(metric, layer.metrics.get(metric))}"
+    parts = [f"{layer.name} {metrics.fmt(metric, layer.metrics.get(metric))}"
              for layer in ranked[:count] if (layer.metrics.get(metric) or 0) > 0]
     return f" (largest: {', '.join(parts)})" if parts else ""
 
@@ -128,7 +146,7 @@ def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
     finding's sentence, where it may add the policy-file key.
     """
     named = what_in_message or what
-    remedy = remedy_of(rule)
+    remedy = remedy_of(rule, head)
     bounds: list[tuple[str, float, bool]] = []  # (name, limit, lower values are bad)
     if rule.minimum is not None:
         bounds.append(("minimum", rule.minimum, True))
@@ -146,24 +164,24 @@ def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
             failed = below_minimum(value, limit) if low else above_maximum(value, limit)
             if failed:
                 relation = "is below the" if low else "exceeds the"
-                text = (f"{label}: {named} {fmt_metric(metric, value)} {relation} "
-                        f"{fmt_metric(metric, limit)} {name}")
+                text = (f"{label}: {named} {metrics.fmt(metric, value)} {relation} "
+                        f"{metrics.fmt(metric, limit)} {name}")
                 extra = _top_layers(head, metric) if label == "Model" and not low else ""
                 return Breach(None if label == "Model" else short_name, metric, value, limit,
                               f"{text}{extra}: {remedy}.", text,
-                              f"{short_name} {fmt_metric(metric, value)}",
+                              f"{short_name} {metrics.fmt(metric, value)}",
                               _ratio(value, limit, low))
         return None
 
-    limits = " and ".join(f"{'at least' if low else 'at most'} {fmt_metric(metric, limit)}"
+    limits = " and ".join(f"{'at least' if low else 'at most'} {metrics.fmt(metric, limit)}"
                           for _, limit, low in bounds)
-    past = " or ".join(f"{'below' if low else 'above'} {fmt_metric(metric, limit)}"
+    past = " or ".join(f"{'below' if low else 'above'} {metrics.fmt(metric, limit)}"
                        for _, limit, low in bounds)  # 'above 1 ms', not 'outside at most 1 ms'
     if rule.level == spec.MODEL:
         value = _model_value(head, metric)
         breach = judge(value, "Model", "model")
         return Outcome((breach,) if breach else (), 1, f"{what} {past}",
-                       f"{what} {fmt_metric(metric, value)}, limit {limits}")
+                       f"{what} {metrics.fmt(metric, value)}, limit {limits}")
     layers = [layer for layer in _scoped_layers(rule, head) if layer_filter(layer)]
     found = [judge(_layer_value(head, layer, metric), _layer_label(layer), layer.name)
              for layer in layers]
@@ -184,11 +202,11 @@ def check_min_utilization(rule: Rule, head: RunRecord, base: RunRecord | None,
     if rule.level == spec.MODEL and not any(on_array(layer) for layer in head.layers):
         return Outcome((), 0, "", "no layer runs on the PE array; utilization not checked")
     outcome = _limit_check(rule, head, "utilization", "utilization", on_array)
-    limit = fmt_percent(rule.minimum or 0.0)
+    limit = units.fmt_share(rule.minimum or 0.0)
     if rule.level == spec.LAYER:
         return Outcome(outcome.breaches, outcome.checked, f"below {limit} utilization",
                        f"{outcome.checked} array layer{'s' if outcome.checked != 1 else ''} with "
-                       f">= {fmt_metric('macs', rule.min_layer_macs)} MACs at or above "
+                       f">= {metrics.fmt('macs', rule.min_layer_macs)} MACs at or above "
                        f"{limit} utilization")
     return outcome
 
@@ -210,8 +228,8 @@ def check_max_energy(rule: Rule, head: RunRecord, base: RunRecord | None,
 
 def check_metric_limit(rule: Rule, head: RunRecord, base: RunRecord | None,
                        diff: RunDiff | None) -> Outcome:
-    return _limit_check(rule, head, rule.metric, spec.metric_label(rule.metric),
-                        what_in_message=spec.metric_phrase(rule.metric))
+    return _limit_check(rule, head, rule.metric, metrics.label(rule.metric),
+                        what_in_message=metrics.phrase(rule.metric))
 
 
 def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
@@ -220,19 +238,21 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
     model decides whether they fit; this check reports it)."""
     param_buffer = head.target_figures.get("param_buffer_bytes", 0)
     act_buffer = head.target_figures.get("activation_buffer_bytes", 0)
+    unified = bool(head.target_figures.get("unified_buffer_bytes"))
+    param_kind, act_kind = ("unified", "unified") if unified else ("parameter", "activation")
     layers = _scoped_layers(rule, head)
-    remedy = remedy_of(rule)
+    remedy = remedy_of(rule, head)
     breaches: list[Breach] = []
     for layer in layers:
         if rule.check_params and not layer.params_fit:
             value = layer.metrics.get("param_bytes", 0)
             breaches.append(_buffer_breach(layer, "param_bytes", value, "parameters",
-                                           param_buffer, "parameter", head.target, remedy))
+                                           param_buffer, param_kind, head.target, remedy))
         if rule.check_activations and not layer.activations_fit:
             value = (layer.metrics.get("input_bytes") or 0) + (layer.metrics.get("output_bytes") or 0)
             breaches.append(_buffer_breach(layer, "activation_bytes", value,
                                            "input and output activations", act_buffer,
-                                           "activation", head.target, remedy))
+                                           act_kind, head.target, remedy))
     what = {(True, True): "parameters and activations", (True, False): "parameters",
             (False, True): "activations"}[(rule.check_params, rule.check_activations)]
     fail_what = what.replace(" and ", " or ")
@@ -244,10 +264,10 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
 def _buffer_breach(layer: LayerRecord, metric: str, value: Metric, what: str, buffer: Metric,
                    buffer_kind: str, target: str, remedy: str) -> Breach:
     """One layer whose ``what`` (``value`` bytes) exceed the target's ``buffer_kind`` buffer."""
-    text = (f"{_layer_label(layer)}: {what} {fmt_bytes(value)} exceed the "
-            f"{fmt_bytes(buffer)} {buffer_kind} buffer of {target}")
+    text = (f"{_layer_label(layer)}: {what} {units.fmt_bytes(value)} exceed the "
+            f"{units.fmt_bytes(buffer)} {buffer_kind} buffer of {target}")
     return Breach(layer.name, metric, value, buffer, f"{text}: {remedy}.", text,
-                  f"{layer.name} {fmt_bytes(value)}",
+                  f"{layer.name} {units.fmt_bytes(value)}",
                   _ratio(float(value or 0), float(buffer or 0), False))
 
 
@@ -262,15 +282,15 @@ def check_max_unmodelled(rule: Rule, head: RunRecord, base: RunRecord | None,
             continue
         value = unmodelled_share(float(_model_value(head, f"coverage_{measure}_share") or 0.0))
         of_what, verb = ("the work", "is") if measure == "work" else ("the nodes", "are")
-        shown.append(f"{fmt_percent(value)} of {of_what} unmodelled (limit {fmt_percent(limit)})")
+        shown.append(f"{units.fmt_share(value)} of {of_what} unmodelled (limit {units.fmt_share(limit)})")
         if above_maximum(value, limit):
-            text = (f"Model: {fmt_percent(value)} of {of_what} {verb} in ops roofgate cannot "
-                    f"cost, above the {fmt_percent(limit)} maximum")
+            text = (f"Model: {units.fmt_share(value)} of {of_what} {verb} in ops roofgate cannot "
+                    f"cost, above the {units.fmt_share(limit)} maximum")
             breaches.append(Breach(
                 None, f"unmodelled_{measure}_share", value, limit,
                 f"{text}{' (' + ops + ')' if ops else ''}; its figures understate the real "
-                f"cost: {remedy_of(rule)}.", text,
-                f"{fmt_percent(value)} of {of_what}", _ratio(value, limit, False)))
+                f"cost: {remedy_of(rule, head)}.", text,
+                f"{units.fmt_share(value)} of {of_what}", _ratio(value, limit, False)))
     return Outcome(tuple(breaches), 1, "unmodelled share above the limit", "; ".join(shown))
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import date
 
+from gate import metrics
 from gate.policy.globs import match_any, match_model
 
 ERROR = "error"
@@ -32,72 +33,11 @@ METRIC_LIMIT = "metric_limit"
 KINDS = (MIN_UTILIZATION, MAX_PARAM_DRAM, FITS_IN_BUFFER, MAX_LATENCY, MAX_ENERGY,
          MAX_REGRESSION, MAX_UNMODELLED, METRIC_LIMIT)
 
-# Metrics where more is better: for these a *drop* against the baseline is the regression.
-# Every other metric (time, energy, bytes, counts) is better lower.
-HIGHER_IS_BETTER: frozenset[str] = frozenset({
-    "utilization", "inferences_per_s", "achieved_flops_per_s", "peak_flops_share",
-    "flops_per_j", "peak_flops_per_j_share", "coverage_node_share", "coverage_work_share",
-    "arithmetic_intensity", "param_reuse",
-})
-
-
-def higher_is_better(metric: str) -> bool:
-    """True when a larger value of ``metric`` is an improvement."""
-    return metric in HIGHER_IS_BETTER
-
-
 def metric_unit(metric: str) -> str:
-    """How a metric's thresholds are written: 'share', 'B', 's', 'J', or '' (a plain number)."""
-    if metric == "utilization" or metric.endswith("_share"):
-        return "share"
-    if metric.endswith("_bytes"):
-        return "B"
-    if metric.endswith(("_per_s", "_per_j")):
-        return ""
-    if metric.endswith("_s"):
-        return "s"
-    if metric.endswith("_j"):
-        return "J"
-    return ""
-
-
-# Readable names of the record metrics (gate/records.py) for messages; the key itself is what a
-# policy file writes, so messages show it once in brackets beside the label.
-METRIC_LABELS: dict[str, str] = {
-    "layers": "layer count", "macs": "MACs", "flops": "FLOPs",
-    "param_count": "parameter count", "param_bytes": "parameter size",
-    "max_layer_param_bytes": "largest layer parameter size", "input_bytes": "input size",
-    "output_bytes": "output size", "activation_bytes": "activation size",
-    "arithmetic_intensity": "arithmetic intensity", "param_reuse": "parameter reuse",
-    "cycles": "cycles", "utilization": "utilization", "compute_s": "compute time",
-    "memory_s": "memory time", "overhead_s": "overhead time", "latency_s": "latency",
-    "inferences_per_s": "inferences per second", "achieved_flops_per_s": "achieved FLOP/s",
-    "peak_flops_share": "share of peak FLOP/s", "param_dram_bytes": "parameter DRAM traffic",
-    "act_dram_bytes": "activation DRAM traffic", "energy_j": "energy",
-    "energy_mac_j": "MAC energy", "energy_buffer_j": "buffer energy",
-    "energy_noc_j": "on-chip network energy", "energy_dram_param_j": "parameter DRAM energy",
-    "energy_dram_act_j": "activation DRAM energy", "energy_static_j": "static energy",
-    "flops_per_j": "FLOPs per joule", "peak_flops_per_j_share": "share of peak FLOPs per joule",
-    "coverage_node_share": "modelled share of nodes",
-    "coverage_work_share": "modelled share of work", "unmodelled_nodes": "unmodelled nodes",
-}
-_UNIT_SUFFIXES = ("_bytes", "_per_s", "_per_j", "_s", "_j")
-
-
-def metric_label(metric: str) -> str:
-    """A readable name for ``metric``: 'latency' for ``latency_s``; unknown keys lose their
-    unit suffix and underscores."""
-    if metric in METRIC_LABELS:
-        return METRIC_LABELS[metric]
-    stem = next((metric[: -len(s)] for s in _UNIT_SUFFIXES if metric.endswith(s)), metric)
-    return (stem or metric).replace("_", " ")
-
-
-def metric_phrase(metric: str) -> str:
-    """The label with the policy-file key in brackets, 'latency [latency_s]', for the first
-    mention in a message; just the key when the label would only repeat it."""
-    label = metric_label(metric)
-    return metric if label == metric else f"{label} [{metric}]"
+    """How a metric's thresholds are written in a policy file: 'share', 'B', 's', 'J', or ''
+    (a plain number), from the metric catalogue."""
+    return {metrics.SHARE: "share", metrics.BYTES: "B", metrics.SECONDS: "s",
+            metrics.JOULES: "J"}.get(metrics.info(metric).quantity, "")
 
 
 @dataclass(frozen=True, slots=True)

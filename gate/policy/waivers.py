@@ -45,16 +45,16 @@ def to_finding(breach: Breach, rule: Rule, waivers: Iterable[Waiver], model: str
     waiver = _pick(covering, today)
     if waiver is None:
         return Finding(breach.layer, breach.metric, breach.value, breach.limit, breach.message,
-                       FAIL)
+                       FAIL, headline=breach.headline)
     expires = waiver.expires.isoformat()
     if waiver_active(expires, today.isoformat()):
         return Finding(breach.layer, breach.metric, breach.value, breach.limit, breach.message,
-                       WAIVED, waiver.reason, expires)
+                       WAIVED, waiver.reason, expires, headline=breach.headline)
     where = f"layer '{breach.layer}'" if breach.layer is not None else f"model {model}"
-    message = (f"The waiver for {rule.id} on {where} expired on {expires}: {waiver.reason}. "
-               f"{breach.message}")
-    return Finding(breach.layer, breach.metric, breach.value, breach.limit, message, FAIL,
-                   waiver.reason, expires)
+    lapsed = f"The waiver for {rule.id} on {where} expired on {expires}: {waiver.reason}. "
+    return Finding(breach.layer, breach.metric, breach.value, breach.limit,
+                   lapsed + breach.message, FAIL, waiver.reason, expires,
+                   headline=lapsed + breach.headline)
 
 
 def unused_waivers(policies: Iterable[Policy], verdicts: Iterable[Verdict]) -> tuple[str, ...]:

@@ -21,7 +21,7 @@ from typing import TextIO
 
 from gate.logsafe import defuse_runner_markers
 from gate.report.text import shorten, visible
-from gate.result import FAIL, NOT_GATED, GateResult
+from gate.result import FAIL, NOT_GATED, GateResult, Verdict
 
 MAX_PER_KIND = 10  # GitHub's per-step display limit for each of error and warning
 MAX_MESSAGE_CHARS = 4000
@@ -64,25 +64,32 @@ class _Annotation:
 
 
 def collect_annotations(result: GateResult) -> list[_Annotation]:
-    """Every annotation the result calls for, errors first, in report order."""
+    """Every annotation the result calls for: unanalysable models, then blocking rules, then
+    warnings, in the result's worst-first order. A rule's annotation leads with its worst
+    finding as one sentence, lists a few more places, and says the remedy once."""
     out = [_Annotation("error", e.model, "roofgate: model not analysed", e.message)
            for e in result.errors]
     out += [_Annotation("error", u.model, f"roofgate {NOT_GATED}", u.reason)
             for u in result.not_gated]
-    for entry in result.entries:
-        for verdict in entry.verdicts:
-            if verdict.status != FAIL:
-                continue
-            details = [f.message for f in verdict.findings if f.status == FAIL][:5]
-            more = len([f for f in verdict.findings if f.status == FAIL]) - len(details)
-            text = "\n".join([verdict.summary, *details] + ([f"... and {more} more"] if more > 0
-                                                             else []))
-            if verdict.remedy:
-                text += f"\nRemedy: {verdict.remedy}"
-            out.append(_Annotation(
-                "error" if verdict.severity == "error" else "warning", entry.model,
-                f"roofgate {verdict.rule_id} ({entry.target})", text))
+    for entry in result.ranked_entries:
+        for verdict in entry.ranked_verdicts:
+            if verdict.status == FAIL:
+                out.append(_Annotation("error" if verdict.blocks_merge else "warning",
+                                       entry.model,
+                                       f"roofgate {verdict.rule_id} ({entry.target})",
+                                       _message(verdict)))
     return sorted(out, key=lambda a: a.kind != "error")
+
+
+def _message(verdict: Verdict) -> str:
+    failing = verdict.failing
+    lines = [verdict.text_of(f) for f in failing[:5]] or [verdict.summary]
+    if len(failing) > 5:
+        lines.append(f"... and {len(failing) - 5} more: "
+                     + ", ".join(f.layer or "model" for f in failing[5:15]))
+    if verdict.remedy:
+        lines.append(f"Fix: {verdict.remedy}")
+    return "\n".join(lines)
 
 
 def render(result: GateResult) -> list[str]:

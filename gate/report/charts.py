@@ -23,9 +23,10 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from gate import units
 from gate.errors import InputError
 from gate.records import LayerRecord, RunRecord
-from gate.report.text import ENERGY_UNITS, TIME_UNITS, fmt_count, shorten, term_safe
+from gate.report.text import shorten, term_safe
 
 INSTALL_HINT = "the HTML report needs matplotlib: pip install 'roofgate[html]'"
 
@@ -192,7 +193,7 @@ def si_tick(value: float, _pos: object = None) -> str:
         return ""
     if value < 1000:
         return f"{value:g}"
-    return fmt_count(value).replace(".00 ", " ").replace(".0 ", " ")
+    return units.fmt_count(value).replace(".00 ", " ").replace(".0 ", " ")
 
 
 def new_figure(width_in: float, height_in: float, *, left_in: float, right_in: float,
@@ -291,7 +292,7 @@ def _draw_roof(ax: Any, chart_id: str, peak: float, bandwidth: float,
                lo: float, hi: float) -> None:
     xs, ys = zip(*roof_vertices(peak, bandwidth, lo, hi))
     ax.plot(xs, ys, color=ROOF, linewidth=2.2, gid=f"{chart_id}-roof",
-            label=f"roof: {si_tick(peak)}FLOP/s, {fmt_count(bandwidth)}B/s DRAM")
+            label=f"roof: {si_tick(peak)}FLOP/s, {units.fmt_count(bandwidth)}B/s DRAM")
     ridge = peak / bandwidth
     ax.axvline(ridge, color=RIDGE, linewidth=1.0, linestyle=(0, (2, 3)), zorder=1)
     ax.plot([ridge], [peak], marker="D", markersize=7, color=RIDGE, linestyle="none",
@@ -360,7 +361,7 @@ def layer_bars_figure(head: RunRecord, base_latency_s: Mapping[str, float], char
                          bottom_in=0.5, top_in=0.55, wspace=0.06)
         left, right = fig.subplots(1, 2, sharey=True, width_ratios=(1, 1.35))
         time_scale, time_unit = _scale([_finite(l.metrics, "latency_s") for l in layers],
-                                       TIME_UNITS)
+                                       units.TIME_UNITS)
         bars = left.barh(rows, [_finite(l.metrics, "latency_s") / time_scale
                                 for l in layers], color=HEAD, height=0.68)
         _number_bars(bars, f"{chart_id}-latency")
@@ -394,7 +395,7 @@ def _draw_base_ticks(ax: Any, layers: Sequence[LayerRecord], base_latency_s: Map
 
 def _draw_energy(ax: Any, layers: Sequence[LayerRecord], chart_id: str) -> None:
     totals = [sum(_finite(l.metrics, m) for m, _n, _c in ENERGY_PARTS) for l in layers]
-    scale, unit = _scale(totals, ENERGY_UNITS)
+    scale, unit = _scale(totals, units.ENERGY_UNITS)
     lefts = [0.0] * len(layers)
     for metric, label, colour in ENERGY_PARTS:
         widths = [_finite(l.metrics, metric) / scale for l in layers]

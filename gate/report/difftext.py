@@ -5,17 +5,16 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
+from gate import metrics
 from gate.diff import ranked_changes
 from gate.records import coverage_note
 from gate.report import terminal
-from gate.report.text import fmt_change, fmt_metric, shorten, term_safe
+from gate.report.text import shorten, term_safe
 from gate.result import GateResult
 
-DIFF_TOTALS = (("latency_s", "latency"), ("energy_j", "energy"), ("macs", "MACs"),
-               ("param_bytes", "params"), ("param_dram_bytes", "param DRAM"),
-               ("utilization", "utilization"))
-DIFF_LAYER_METRICS = (("latency_s", "latency"), ("macs", "MACs"), ("param_bytes", "params"),
-                      ("utilization", "util"))
+# Labels come from the metric catalogue (gate/metrics.py), as in every report.
+DIFF_TOTALS = ("latency_s", "energy_j", "macs", "param_bytes", "param_dram_bytes", "utilization")
+DIFF_LAYER_METRICS = ("latency_s", "macs", "param_bytes", "utilization")
 
 
 def render_diff(result: GateResult, limit: int, written: Sequence[str] = (),
@@ -34,11 +33,12 @@ def render_diff(result: GateResult, limit: int, written: Sequence[str] = (),
         if entry.diff is None:
             lines.append("  only in " + ("NEW" if entry.base is None else "OLD"))
             continue
-        for metric, label in DIFF_TOTALS:
+        for metric in DIFF_TOTALS:
             if metric in entry.diff.totals:
                 base, head = entry.diff.totals[metric]
-                lines.append(f"  {label:<12} {fmt_metric(metric, base):>12} -> "
-                             f"{fmt_metric(metric, head):>12}  {fmt_change(metric, base, head)}")
+                lines.append(f"  {metrics.label(metric):<22} {metrics.fmt(metric, base):>12} -> "
+                             f"{metrics.fmt(metric, head):>12}  "
+                             f"{metrics.fmt_signed(metric, base, head)}")
         ranked = ranked_changes(entry.diff)
         shown = ranked if limit == 0 else ranked[:limit]
         counts = {s: sum(1 for c in entry.diff.layers if c.status == s)
@@ -59,12 +59,13 @@ def _change_line(change: Any) -> str:
     label = term_safe(shorten(name or "", 80))
     if change.status == "changed" and change.base_name != change.head_name:
         label += f" (was {term_safe(shorten(change.base_name or '', 60))})"
-    named = [(metric, text) for metric, text in DIFF_LAYER_METRICS if metric in change.deltas]
+    named = [(metric, metrics.label(metric)) for metric in DIFF_LAYER_METRICS
+             if metric in change.deltas]
     if not named:  # moved only in figures not listed above (e.g. activation bytes): say which
-        named = [(metric, metric) for metric in sorted(change.deltas)[:2]]
+        named = [(metric, metrics.label(metric)) for metric in sorted(change.deltas)[:2]]
     parts = []
     for metric, text in named:
         base, head = change.deltas[metric]
-        parts.append(f"{text} {fmt_metric(metric, base)} -> {fmt_metric(metric, head)} "
-                     f"({fmt_change(metric, base, head)})")
+        parts.append(f"{text} {metrics.fmt(metric, base)} -> {metrics.fmt(metric, head)} "
+                     f"({metrics.fmt_signed(metric, base, head)})")
     return f"{change.status:<8} {term_safe(change.op_type)} {label}  {'; '.join(parts)}".rstrip()

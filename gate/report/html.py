@@ -15,6 +15,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from typing import TextIO
 
+from gate import metrics
 from gate.records import LayerRecord, Metric, RunRecord
 from gate.report import charts
 from gate.report.html_assets import CONTENT_SECURITY_POLICY, CSS, SCRIPT
@@ -25,7 +26,7 @@ from gate.report.html_tables import (
     overview_table,
     rules_table,
 )
-from gate.report.text import fmt_delta, fmt_metric, html_escape
+from gate.report.text import html_escape
 from gate.result import FAIL, Entry, GateResult
 
 # Key figures per entry: (metric, label, True when lower is better).
@@ -176,14 +177,14 @@ def _key_figures(head: RunRecord, base: RunRecord | None) -> str:
         if base is not None and metric in base.metrics:
             delta = _delta_span(metric, base.metrics[metric], value, lower_better)
         cells.append(f"<div class=\"figure\"><div class=\"k\">{label}</div>"
-                     f"<div class=\"v\">{html_escape(fmt_metric(metric, value))}</div>{delta}</div>")
+                     f"<div class=\"v\">{html_escape(metrics.fmt(metric, value))}</div>{delta}</div>")
     return f"<div class=\"figures\">{''.join(cells)}</div>\n"
 
 
 def _delta_span(metric: str, base: Metric, head: Metric, lower_better: bool) -> str:
     css = delta_class(base, head, lower_better, metric)
-    return (f"<div class=\"d {css}\">{html_escape(fmt_delta(metric, base, head))} "
-            f"<span class=\"same\">(base {html_escape(fmt_metric(metric, base))})</span></div>")
+    return (f"<div class=\"d {css}\">{html_escape(metrics.fmt_change(metric, base, head))} "
+            f"<span class=\"same\">(base {html_escape(metrics.fmt(metric, base))})</span></div>")
 
 
 def _coverage(head: RunRecord) -> str:

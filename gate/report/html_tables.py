@@ -10,8 +10,9 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
+from gate import metrics, units
 from gate.records import LayerRecord, Metric, RunRecord
-from gate.report.text import fmt_delta, fmt_metric, fmt_percent, html_escape
+from gate.report.text import html_escape
 from gate.result import FAIL, PASS, WAIVED, Entry, Finding, GateResult, Verdict
 
 # Worst-first ranks of an entry's verdicts: (rank, css class, label).
@@ -81,7 +82,7 @@ def _num(metric: str, value: Metric | None) -> str:
     if value is None:
         return "<td class=\"num\" data-v=\"-Infinity\">\u2013</td>"
     return (f"<td class=\"num\" data-v=\"{_sort_value(value)}\">"
-            f"{html_escape(fmt_metric(metric, value))}</td>")
+            f"{html_escape(metrics.fmt(metric, value))}</td>")
 
 
 def _sort_value(value: float) -> str:
@@ -94,7 +95,7 @@ def _delta(metric: str, base: Metric | None, head: Metric | None, lower_better: 
         return "<td class=\"num same\" data-v=\"-Infinity\">\u2013</td>"
     css = delta_class(base, head, lower_better, metric)
     return (f"<td class=\"num {css}\" data-v=\"{_sort_value(float(head) - float(base))}\">"
-            f"{html_escape(fmt_delta(metric, base, head))}</td>")
+            f"{html_escape(metrics.fmt_change(metric, base, head))}</td>")
 
 
 def _table(headers: Sequence[tuple[str, bool]], rows: Sequence[str], *, sortable: bool,
@@ -224,7 +225,7 @@ def _layer_row(layer: LayerRecord, total_s: float) -> str:
             f"<td><code>{html_escape(layer.op_type)}</code></td>"
             f"<td>{html_escape(layer.precision or '-')}</td><td>{html_escape(layer.bound)}</td>"
             + _num("latency_s", m.get("latency_s"))
-            + f"<td class=\"num\" data-v=\"{_sort_value(share)}\">{fmt_percent(share)}</td>"
+            + f"<td class=\"num\" data-v=\"{_sort_value(share)}\">{units.fmt_share(share)}</td>"
             + _num("energy_j", m.get("energy_j")) + _num("utilization", m.get("utilization"))
             + _num("arithmetic_intensity", m.get("arithmetic_intensity"))
             + _num("param_bytes", m.get("param_bytes"))

@@ -7,9 +7,15 @@ gives the same bytes. ``read_result`` reads it back into a ``GateResult``.
 
 Layout::
 
-    {"format": "roofgate-result", "version": 2, "exit_code": 0|1|2,
+    {"format": "roofgate-result", "version": 3, "exit_code": 0|1|2,
+     "summary": {status, counts, blocking: [sentences], entries: [{model, target,
+                 status, worst_layer}]},
      "result": {command, policies, allow_errors, notes, errors, ungated, model_counts,
                 entries: [...]}}
+
+``summary`` repeats what the result object derives (the words and counts every
+report shows), for readers that want the verdict without walking the entries;
+``read_result`` ignores it.
 
 Version history (bump ``RESULT_VERSION`` on any change a reader must know about,
 and add a line here and in docs/reports.md):
@@ -18,18 +24,21 @@ and add a line here and in docs/reports.md):
   2  a metric may be null (unknown, never 0); result.ungated (.onnx files no model group
      covers: model, reason, skipped), result.model_counts (seen, gated, not_gated,
      skipped) and entries[].rules_applied. Version 1 files read unchanged.
+  3  findings carry ``headline`` (the sentence without the remedy); the document
+     carries ``summary`` (status, counts, blocking sentences, entries worst first).
 """
 
 from __future__ import annotations
 
+from dataclasses import asdict
 from typing import Any, TextIO
 
 from gate.errors import InputError
-from gate.result import GateResult, result_from_dict, result_to_dict
+from gate.result import GateResult, blocking_sentences, result_from_dict, result_to_dict
 from gate.snapshot import canonical_json, load_versioned_json
 
 RESULT_FORMAT = "roofgate-result"
-RESULT_VERSION = 2
+RESULT_VERSION = 3
 
 
 class JsonReporter:
@@ -46,7 +55,18 @@ REPORTER = JsonReporter()
 def result_document(result: GateResult) -> dict[str, Any]:
     """The JSON-ready document of ``result``."""
     return {"format": RESULT_FORMAT, "version": RESULT_VERSION, "exit_code": result.exit_code,
-            "result": result_to_dict(result)}
+            "summary": summary_dict(result), "result": result_to_dict(result)}
+
+
+def summary_dict(result: GateResult) -> dict[str, Any]:
+    """The derived verdict: status word, counts, blocking sentences, entries worst first."""
+    return {
+        "status": result.status_word,
+        "counts": asdict(result.counts),
+        "blocking": blocking_sentences(result),
+        "entries": [{"model": e.model, "target": e.target, "status": e.status_word,
+                     "worst_layer": e.worst_layer} for e in result.ranked_entries],
+    }
 
 
 def render(result: GateResult) -> str:

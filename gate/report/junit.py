@@ -25,7 +25,8 @@ from typing import TextIO
 
 from junit_xml import TestCase, TestSuite, to_xml_report_string
 
-from gate.report.text import fmt_metric, xml_safe
+from gate import metrics
+from gate.report.text import xml_safe
 from gate.result import (
     FAIL,
     NOT_GATED,
@@ -142,8 +143,8 @@ def _details(verdict: Verdict) -> str:
 
 def _finding_text(finding: Finding) -> str:
     where = f"layer '{finding.layer}'" if finding.layer is not None else "model"
-    return (f"{where}: {finding.metric} = {fmt_metric(finding.metric, finding.value)}, "
-            f"limit {fmt_metric(finding.metric, finding.limit)}")
+    return (f"{where}: {finding.metric} = {metrics.fmt(finding.metric, finding.value)}, "
+            f"limit {metrics.fmt(finding.metric, finding.limit)}")
 
 
 def _properties(entry: Entry, warnings: int) -> dict[str, str]:

@@ -23,10 +23,10 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import TextIO
 
+from gate import metrics
 from gate.diff import ranked_changes
-from gate.policy.spec import metric_label
 from gate.records import LayerRecord, RunRecord
-from gate.report.text import fmt_change, fmt_delta, fmt_metric, html_escape, md_escape, shorten
+from gate.report.text import html_escape, md_escape, shorten
 from gate.result import (
     FAIL,
     NOT_GATED,
@@ -238,7 +238,7 @@ def _summary_row(entry: Entry) -> list[str]:
     cells = [md_escape(shorten(entry.model, NAME_CHARS)), md_escape(entry.target)]
     record = entry.head
     for metric, _ in SUMMARY_METRICS:
-        cells.append(fmt_metric(metric, record.metrics[metric])
+        cells.append(metrics.fmt(metric, record.metrics[metric])
                      if record is not None and metric in record.metrics else "")
     for metric, _ in DELTA_METRICS:
         cells.append(_total_delta(entry, metric))
@@ -254,7 +254,7 @@ def _total_delta(entry: Entry, metric: str) -> str:
     if metric not in entry.diff.totals:
         return ""
     base, head = entry.diff.totals[metric]
-    return fmt_delta(metric, base, head)
+    return metrics.fmt_change(metric, base, head)
 
 
 # --- per-model sections ---------------------------------------------------------------
@@ -338,9 +338,9 @@ def _finding_row(verdict: Verdict, finding: Finding | None) -> str:
         remedy = (f"waiver expired {md_escape(finding.waiver_expires)} "
                   f"({md_escape(shorten(finding.waiver_reason, 200))}); {remedy}")
     return (f"| {md_escape(verdict.rule_id)} | {severity} | {where} | "
-            f"{md_escape(metric_label(finding.metric))} | "
-            f"{fmt_metric(finding.metric, finding.value)} | "
-            f"{fmt_metric(finding.metric, finding.limit)} | {remedy} |")
+            f"{md_escape(metrics.label(finding.metric))} | "
+            f"{metrics.fmt(finding.metric, finding.value)} | "
+            f"{metrics.fmt(finding.metric, finding.limit)} | {remedy} |")
 
 
 def _waived_rules(entry: Entry, out: _Render) -> None:
@@ -409,7 +409,7 @@ def _other_changes(change: LayerChange, count: int = 2) -> str:
         return "shapes or types only"
     order = {metric: rank for rank, metric in enumerate(OTHER_METRICS_FIRST)}
     picked = sorted(change.deltas, key=lambda m: (order.get(m, len(order)), m))[:count]
-    return ", ".join(f"{metric_label(m)} {fmt_change(m, *change.deltas[m])}" for m in picked)
+    return ", ".join(f"{metrics.label(m)} {metrics.fmt_signed(m, *change.deltas[m])}" for m in picked)
 
 
 def _layer_cell(change: LayerChange, metric: str) -> str:
@@ -418,11 +418,11 @@ def _layer_cell(change: LayerChange, metric: str) -> str:
         return "0" if change.status in ("added", "removed") else "="
     base, head = change.deltas[metric]
     if change.status == "added":
-        return fmt_metric(metric, head)
+        return metrics.fmt(metric, head)
     if change.status == "removed":
-        return fmt_metric(metric, base)
-    return (f"{fmt_metric(metric, base)} \u2192 {fmt_metric(metric, head)} "
-            f"({fmt_change(metric, base, head)})")
+        return metrics.fmt(metric, base)
+    return (f"{metrics.fmt(metric, base)} \u2192 {metrics.fmt(metric, head)} "
+            f"({metrics.fmt_signed(metric, base, head)})")
 
 
 def _hard_cut(text: str, budget: int) -> str:

@@ -15,6 +15,7 @@ import unicodedata
 from collections.abc import Sequence
 from typing import Any
 
+from gate import metrics, units
 from gate.costmodel import ModelCost
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
@@ -23,7 +24,10 @@ from gate.records import RunRecord, no_work_costed, run_to_dict
 from gate.targets.spec import TargetProfile
 
 FORMAT_NAME = "roofgate-profile"
-FORMAT_VERSION = 1  # 1: first version
+# The JSON document's version, under the key ``version`` like every roofgate document.
+# History: 1 first version (key ``format_version``); 2 the key is ``version``, as in the
+# snapshot and result documents.
+FORMAT_VERSION = 2
 
 Run = tuple[TargetProfile, ModelCost]
 
@@ -85,7 +89,7 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
                              profile.coverage.nodes_total - profile.coverage.nodes_modelled,
                              bool(profile.total_macs or profile.total_flops))
     return {
-        "format": FORMAT_NAME, "format_version": FORMAT_VERSION,
+        "format": FORMAT_NAME, "version": FORMAT_VERSION,
         "model": {"path": model.path, "name": model.name, "ir_version": model.ir_version,
                   "producer": model.producer, "opsets": dict(model.opsets),
                   "dim_bindings": dict(model.dim_bindings),
@@ -182,48 +186,6 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
     return text
 
 
-def si(value: float) -> str:
-    """A count with an SI prefix, three significant digits: 1234567 -> '1.23M'."""
-    for factor, suffix in ((1e15, "P"), (1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k")):
-        if abs(value) >= factor:
-            return f"{value / factor:.3g}{suffix}"
-    return f"{value:.3g}" if isinstance(value, float) else str(value)
-
-
-def binary_bytes(value: int) -> str:
-    """Bytes with a binary prefix: 1536 -> '1.5KiB'."""
-    for factor, suffix in ((1 << 40, "TiB"), (1 << 30, "GiB"), (1 << 20, "MiB"), (1 << 10, "KiB")):
-        if value >= factor:
-            return f"{value / factor:.3g}{suffix}"
-    return f"{value}B"
-
-
-def _scaled(value: float, units: tuple[tuple[float, str], ...], zero: str) -> str:
-    """``value`` in the first unit it reaches (three significant digits); ``zero`` for 0."""
-    if value == 0:
-        return zero
-    for factor, suffix in units:
-        if abs(value) >= factor:
-            return f"{value / factor:.3g}{suffix}"
-    factor, suffix = units[-1]
-    return f"{value / factor:.3g}{suffix}"
-
-
-def seconds(value: float) -> str:
-    """A time in s, ms, us or ns: 0.00123 -> '1.23ms'; exactly zero -> '0'."""
-    return _scaled(value, ((1.0, "s"), (1e-3, "ms"), (1e-6, "us"), (1e-9, "ns")), "0")
-
-
-def joules(value: float) -> str:
-    """An energy in J, mJ, uJ or nJ: 0.00123 -> '1.23mJ'; exactly zero -> '0J'."""
-    return _scaled(value, ((1.0, "J"), (1e-3, "mJ"), (1e-6, "uJ"), (1e-9, "nJ")), "0J")
-
-
-def ratio(value: float) -> str:
-    """A ratio with three significant digits and no exponent: 1600.0 -> '1.6k', 0.25 -> '0.25'."""
-    return si(value) if abs(value) >= 1000 else f"{value:.3g}"
-
-
 def _align(rows: list[list[str]], right_from: int) -> list[str]:
     widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     return ["  ".join(cell.rjust(w) if i >= right_from else cell.ljust(w)
@@ -241,21 +203,23 @@ def _layer_cells(layer: LayerProfile) -> list[str]:
     counted = layer.modelled
     return [str(layer.index), clean(layer.name, 40, keep_end=True), clean(layer.op_type, 24),
             clean(out, 24), layer.precision if layer.role == "layer" else layer.role,
-            si(layer.macs) if counted else "-", si(layer.flops) if counted else "-",
-            binary_bytes(layer.param_bytes),
-            binary_bytes(layer.input_bytes) if _known(layer.input_shapes) else "?",
-            binary_bytes(layer.output_bytes) if _known(layer.output_shapes) else "?",
-            ratio(layer.arithmetic_intensity) if counted else "-",
-            ratio(layer.param_reuse) if counted and layer.param_bytes else "-"]
+            units.fmt_count(layer.macs) if counted else "-",
+            units.fmt_count(layer.flops) if counted else "-",
+            units.fmt_bytes(layer.param_bytes),
+            units.fmt_bytes(layer.input_bytes) if _known(layer.input_shapes) else "?",
+            units.fmt_bytes(layer.output_bytes) if _known(layer.output_shapes) else "?",
+            units.fmt_plain(layer.arithmetic_intensity) if counted else "-",
+            units.fmt_plain(layer.param_reuse) if counted and layer.param_bytes else "-"]
 
 
-_HEAD = ["#", "layer", "op", "output", "precision", "MACs", "FLOPs", "params", "in", "out", "FLOP/B", "MAC/pB"]
-_TARGET_HEAD = ["util", "bound", "latency"]
-LEGEND = ("columns: FLOP/B = FLOPs per byte of parameters, inputs and outputs (arithmetic "
-          "intensity); MAC/pB = MACs per parameter byte (weight reuse)")
-TARGET_LEGEND = ("target columns: util = share of the PE array kept busy; bound = what limits the "
-                 "layer (compute, memory, overhead, none; '+' heads a fused group that costs the "
-                 "layers marked 'fused')")
+_HEAD = ["#", "layer", "op", "output shape", "precision", "MACs", "FLOPs", "param size", "input",
+         "output size", "FLOP/B", "MACs/param B"]
+_TARGET_HEAD = ["PE util.", "bound", "latency"]
+LEGEND = ("columns: FLOP/B = arithmetic intensity, FLOPs per byte of parameters, inputs and "
+          "outputs; MACs/param B = MACs per parameter byte (weight reuse)")
+TARGET_LEGEND = (f"target columns: PE util. = {metrics.label('utilization')} (share of the PE "
+                 "array kept busy); bound = what limits the layer (compute, memory, overhead, "
+                 "none; '+' heads a fused group that costs the layers marked 'fused')")
 MARKS = ("marks: - not counted or not applicable; precision: what the layer runs at (folded: "
          "computed offline from constants; fused: a quantize/dequantize pair absorbed)")
 UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? size unknown"
@@ -288,8 +252,7 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
     lines += ["", *_totals_lines(profile), *_coverage_lines(profile)]
     for target, cost in runs:
         lines += _target_lines(target, cost, profile)
-    if profile.notes:
-        lines += ["", "notes:"] + [f"  - {clean(note, 300)}" for note in profile.notes]
+    lines += _notes_lines(profile)
     return "\n".join(lines) + "\n"
 
 
@@ -301,8 +264,8 @@ def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> lis
             cells += ["-", "-", "-"]
             continue
         bound = "fused" if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
-        cells += [f"{lc.utilization:.0%}" if lc.engine == "array" else "-", bound,
-                  seconds(lc.latency_s)]
+        cells += [units.fmt_share(lc.utilization) if lc.engine == "array" else "-", bound,
+                  units.fmt_seconds(lc.latency_s)]
     if flagged:
         cells.append("" if layer.modelled else "!")
     return cells
@@ -324,26 +287,42 @@ def _group_line(rows: list[list[str]], names: list[str]) -> str:
 def _totals_lines(profile: ModelProfile) -> list[str]:
     cov = profile.coverage
     modelled = "" if cov.nodes_modelled == cov.nodes_total else f" ({cov.nodes_modelled} modelled)"
-    return [(f"total: {len(profile.layers)} layers{modelled}, {si(profile.total_macs)} MACs, "
-             f"{si(profile.total_flops)} FLOPs, {si(profile.total_param_count)} parameters "
-             f"({binary_bytes(profile.total_param_bytes)}, shared ones counted once)")]
+    return [(f"total: {len(profile.layers)} layers{modelled}, {units.fmt_count(profile.total_macs)} MACs, "
+             f"{units.fmt_count(profile.total_flops)} FLOPs, {units.fmt_count(profile.total_param_count)} parameters "
+             f"({units.fmt_bytes(profile.total_param_bytes)}, shared ones counted once)")]
 
 
 MAX_UNMODELLED_LINES = 12
 
 
 def _coverage_lines(profile: ModelProfile) -> list[str]:
+    """Coverage, then one line per reason layers went unmodelled (op types grouped under it,
+    so a hint such as an unbound dim's ``--dim`` is said once)."""
     cov = profile.coverage
     lines = [(f"coverage: {cov.nodes_modelled}/{cov.nodes_total} layers modelled "
-              f"({cov.node_share:.1%}), work share {cov.work_share:.1%}")]
-    for op in cov.unmodelled[:MAX_UNMODELLED_LINES]:
+              f"({units.fmt_share(cov.node_share)}), work share "
+              f"{units.fmt_share(cov.work_share)}")]
+    groups: dict[str, list[str]] = {}
+    for op in cov.unmodelled:
         name = f"{op.domain}.{op.op_type}" if op.domain else op.op_type
-        lines.append(f"  unmodelled: {clean(name, 60)} x{op.count}: {clean(op.reason, 200)}")
-    rest = cov.unmodelled[MAX_UNMODELLED_LINES:]
+        groups.setdefault(op.reason, []).append(f"{clean(name, 60)} x{op.count}")
+    for reason, ops in list(groups.items())[:MAX_UNMODELLED_LINES]:
+        shown = ", ".join(ops[:MAX_UNMODELLED_LINES])
+        more = f" and {len(ops) - MAX_UNMODELLED_LINES} more op types" \
+            if len(ops) > MAX_UNMODELLED_LINES else ""
+        lines.append(f"  unmodelled: {shown}{more}: {clean(reason, 200)}")
+    rest = list(groups)[MAX_UNMODELLED_LINES:]
     if rest:
-        lines.append(f"  ... {len(rest)} more unmodelled groups ({sum(op.count for op in rest)} "
-                     "layers); --format json lists them all")
+        lines.append(f"  ... {len(rest)} more reasons; --format json lists every unmodelled op")
     return lines
+
+
+def _notes_lines(profile: ModelProfile) -> list[str]:
+    """The profile's notes, without those that repeat a coverage reason already printed."""
+    reasons = {op.reason for op in profile.coverage.unmodelled if op.reason}
+    notes = [note for note in profile.notes
+             if not any(note.startswith(reason) for reason in reasons)]
+    return ["", "notes:"] + [f"  - {clean(note, 300)}" for note in notes] if notes else []
 
 
 def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile) -> list[str]:
@@ -354,12 +333,12 @@ def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile)
                       bool(profile.total_macs or profile.total_flops)):
         return ["", (f"on {name} ({cost.precision}): not costed: no layer could be modelled "
                      "(see coverage above)")]
-    lines = ["", (f"on {name} ({cost.precision}): latency {seconds(cost.latency_s)} "
-                  f"({si(cost.inferences_per_s)} inferences/s), "
-                  f"energy {joules(cost.energy.total_j)}, "
-                  f"array utilization {cost.utilization:.1%}, parameter DRAM "
-                  f"{binary_bytes(cost.param_dram_bytes)}, activation DRAM "
-                  f"{binary_bytes(cost.act_dram_bytes)}, weights "
+    lines = ["", (f"on {name} ({cost.precision}): latency {units.fmt_seconds(cost.latency_s)} "
+                  f"({units.fmt_count(cost.inferences_per_s)} inferences/s), "
+                  f"energy {units.fmt_joules(cost.energy.total_j)}, "
+                  f"{metrics.label('utilization')} {units.fmt_share(cost.utilization)}, parameter DRAM "
+                  f"{units.fmt_bytes(cost.param_dram_bytes)}, activation DRAM "
+                  f"{units.fmt_bytes(cost.act_dram_bytes)}, weights "
                   f"{'resident on chip' if cost.weights_resident else 'streamed from DRAM'}")]
     fused = sum(1 for layer in cost.layers if layer.fused_into)
     if fused:
@@ -370,5 +349,5 @@ def _target_lines(target: TargetProfile, cost: ModelCost, profile: ModelProfile)
                      f"declares (--no-fusion: layer by layer): {shown}{more}")
     if cov.nodes_modelled < cov.nodes_total:
         lines.append(f"  lower bounds: only {cov.nodes_modelled}/{cov.nodes_total} layers "
-                     f"({cov.work_share:.1%} of the work) are modelled")
+                     f"({units.fmt_share(cov.work_share)} of the work) are modelled")
     return lines

@@ -69,7 +69,8 @@ def artifact_uri(model_path: str) -> str:
 
 def sarif_log(result: GateResult) -> dict[str, Any]:
     """The whole log as JSON-ready data."""
-    verdicts = [v for e in result.entries for v in e.verdicts]
+    # Worst first: blocking failures of the worst entries lead the results.
+    verdicts = [v for e in result.ranked_entries for v in e.ranked_verdicts]
     rules = _rule_descriptors(verdicts, with_model_error=bool(result.errors))
     index = {rule["id"]: i for i, rule in enumerate(rules)}
     results = [_result(v, index[v.rule_id]) for v in verdicts if v.status in (FAIL, WAIVED)]
@@ -123,9 +124,9 @@ def _descriptor(verdict: Verdict) -> dict[str, Any]:
 
 
 def _result(verdict: Verdict, rule_index: int) -> dict[str, Any]:
-    failing = [f for f in verdict.findings if f.status == verdict.status] or list(verdict.findings)
-    lines = [f"{verdict.summary} (model {verdict.model}, target {verdict.target})."]
-    lines += [f"- {f.message}" for f in failing[:MAX_LOCATIONS]]
+    failing = list(verdict.failing if verdict.status == FAIL else verdict.findings)
+    lines = [f"{verdict.model} on {verdict.target}: {verdict.summary}."]
+    lines += [f"- {verdict.text_of(f)}" for f in failing[:MAX_LOCATIONS]]
     if len(failing) > MAX_LOCATIONS:
         lines.append(f"- ... and {len(failing) - MAX_LOCATIONS} more")
     if verdict.remedy:
