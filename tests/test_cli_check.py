@@ -87,7 +87,7 @@ def test_added_and_deleted_models_are_handled(repo: Repo) -> None:
     assert code == 0, out
     data = json.dumps(json.loads((repo.path / "roofgate-out/result.json").read_text()))
     assert "models/new.onnx" in data and "models/b.onnx" in data
-    assert "  DELETED  models/b.onnx on ws-64x64-4mib  (no longer present" in out
+    assert "  REMOVED  models/b.onnx on ws-64x64-4mib  (no longer present" in out
     assert "  PASS     models/new.onnx" in out and "new, no baseline" in out
 
 
@@ -243,7 +243,7 @@ def test_audit_leaves_out_baseline_runs_on_targets_it_does_not_cost(zoo: Path) -
     done = runner.invoke(cli, ["audit", "models/m0 x.onnx", "--baseline", "base.json",
                                "--json", "narrow.json"])
     assert done.exit_code == 0, done.output
-    assert "DELETED" not in done.stdout and "os-16x16-512kib, which this run does not cost" \
+    assert "REMOVED" not in done.stdout and "os-16x16-512kib, which this run does not cost" \
         in done.stdout
     assert "  PASS     models/m0 x.onnx on ws-64x64-4mib" in done.stdout
     assert done.stdout.splitlines()[-4].endswith("unchanged")
