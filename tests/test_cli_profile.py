@@ -45,7 +45,7 @@ def test_table_reports_unbound_dim(cnn: Path) -> None:
     assert result.exit_code == 0
     assert "--dim batch=N" in result.stdout and "coverage: 2/9" in result.stdout
     # the hint is said once, in the table (stderr repeats it only for json and csv)
-    assert result.stdout.count("--dim batch=N") == 1 and "--dim" not in result.stderr
+    assert result.stdout.count("--dim batch=N") == 1 and "--dim batch=N" not in result.stderr
 
 
 def test_json_is_deterministic_and_matches_profile(cnn: Path) -> None:
