@@ -443,19 +443,78 @@ def bench_fusion(work: Path, runs: int, quick: bool) -> list[str]:
     return rows
 
 
+def process_seconds(args: list[str]) -> float:
+    """Wall time of one whole ``roofgate`` process (interpreter start and imports included)."""
+    start = time.perf_counter()
+    done = subprocess.run([sys.executable, "-c", "from gate.cli import main; main()", *args],
+                          capture_output=True, text=True, check=False,
+                          env={**os.environ, "PYTHONPATH": str(HERE.parent)})
+    seconds = time.perf_counter() - start
+    if done.returncode not in (0, 1):
+        raise SystemExit(f"roofgate {' '.join(args)} exited {done.returncode}:\n"
+                         f"{done.stderr[-2000:]}")
+    return seconds
+
+
+def interleaved(first: Callable[[], float], second: Callable[[], float],
+                runs: int) -> tuple[float, float]:
+    """Medians of two measurements taken in turns (A B A B ...), so load drifts hit both."""
+    a, b = [], []
+    for _ in range(runs):
+        a.append(first())
+        b.append(second())
+    return statistics.median(a), statistics.median(b)
+
+
+def bench_html(work: Path, runs: int, quick: bool) -> list[str]:
+    """9. What the HTML report adds to a run, per model x target (whole processes)."""
+    from gate.targets import builtin_target_names
+
+    zoo = _zoo(work, 4 if quick else 8)
+    models = len(list(zoo.rglob("*.onnx")))
+    targets = builtin_target_names()[:2]
+    common = ["audit", str(zoo), "--policy", POLICY, "-j", "1", "--json",
+              str(work / "r.json"), *(a for t in targets for a in ("--target", t))]
+    plain, html = interleaved(lambda: process_seconds(common),
+                              lambda: process_seconds([*common, "--html",
+                                                       str(work / "r.html")]), max(runs, 3))
+    pairs = models * len(targets)
+    return [(f"| 9 | HTML report on an audit of {models} models x {len(targets)} targets: "
+             f"without vs with `--html` | {plain:.2f} s vs {html:.2f} s | "
+             f"{ratio(html, plain)}; {max(html - plain, 0.0) / pairs:.3f} s per model x target "
+             f"| <= 0.3 s per model x target |")]
+
+
+def bench_startup(work: Path, runs: int, quick: bool) -> list[str]:
+    """10. The quick commands (``--only 0``) against a bare interpreter start (whole processes)."""
+    def floor() -> float:
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-c", "pass"], check=True)
+        return time.perf_counter() - start
+
+    rows = []
+    for args in (["--help"], ["--version"], ["targets"]):
+        bare, cmd = interleaved(floor, lambda a=args: process_seconds(a), max(runs, 5))
+        rows.append(f"| 10 | `roofgate {' '.join(args)}` vs `python -c pass` | "
+                    f"{cmd:.2f} s vs {bare:.2f} s | {ratio(cmd, bare)} | < 0.5 s |")
+    return rows
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--worker", nargs=argparse.REMAINDER)
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--runs", type=int, default=None)
-    parser.add_argument("--only", default="12345678", help="which benchmarks, e.g. 13")
+    parser.add_argument("--only", default="1234567890", help="which benchmarks, e.g. 13 "
+                        "(0 is the start-up benchmark)")
     options = parser.parse_args()
     if options.worker:
         worker(options.worker[0], options.worker[1:])
         return
     runs = options.runs or (1 if options.quick else 3)
     benches = {"1": bench_floor, "2": bench_weights, "3": bench_scaling, "4": bench_zoo,
-               "5": bench_targets, "6": bench_demo, "7": bench_fusion, "8": bench_folding}
+               "5": bench_targets, "6": bench_demo, "7": bench_fusion, "8": bench_folding,
+               "9": bench_html, "0": bench_startup}
     print(f"roofgate benchmark, {time.strftime('%Y-%m-%d')}, {platform.machine()}, "
           f"{os.cpu_count()} cores, Python {platform.python_version()}, "
           f"median of {runs} run(s){' (quick)' if options.quick else ''}\n")

@@ -245,24 +245,31 @@ class Blocker:
                 f"{metrics.fmt(finding.metric, finding.limit)}.{fix}")
 
 
-def blocking_sentences(result: GateResult, per_rule: int = 3) -> list[str]:
-    """What blocks the merge, as plain sentences every report leads with: up to ``per_rule``
-    findings of each blocking rule (worst first, the remedy said with the first), then one
-    line naming the rest of that rule's layers."""
-    lines: list[str] = []
-    by_rule: dict[int, list[Blocker]] = {}
-    for blocker in result.blocking:
-        by_rule.setdefault(id(blocker.verdict), []).append(blocker)
-    for group in by_rule.values():
-        lines += [b.sentence() for b in group[:per_rule]]
-        rest = group[per_rule:]
-        if rest:
-            names = ", ".join(b.layer or "model" for b in rest[:10])
-            more = f" and {len(rest) - 10} more" if len(rest) > 10 else ""
-            lines.append(f"{group[0].verdict.model} on {group[0].verdict.target}: rule "
-                         f"{group[0].verdict.rule_id} also fails at {len(rest)} more "
-                         f"place{'s' if len(rest) != 1 else ''}: {names}{more}.")
+def blocking_lines(result: GateResult, per_rule: int = 3) -> list[tuple[Entry, str]]:
+    """What blocks the merge, as plain sentences every report leads with, each with its
+    entry (worst entry first): up to ``per_rule`` findings of each blocking rule (worst
+    first, the remedy said with the first), then one line naming the rest of its places."""
+    lines: list[tuple[Entry, str]] = []
+    for entry in result.ranked_entries:
+        by_rule: dict[str, list[Blocker]] = {}
+        for blocker in entry.blocking:
+            by_rule.setdefault(blocker.verdict.rule_id, []).append(blocker)
+        for group in by_rule.values():
+            lines += [(entry, b.sentence()) for b in group[:per_rule]]
+            rest = group[per_rule:]
+            if rest:
+                verdict = group[0].verdict
+                names = ", ".join(b.layer or "model" for b in rest[:10])
+                more = f" and {len(rest) - 10} more" if len(rest) > 10 else ""
+                lines.append((entry, (f"{verdict.model} on {verdict.target}: rule "
+                                     f"{verdict.rule_id} also fails at {len(rest)} more "
+                                     f"place{'s' if len(rest) != 1 else ''}: {names}{more}.")))
     return lines
+
+
+def blocking_sentences(result: GateResult, per_rule: int = 3) -> list[str]:
+    """The sentences of ``blocking_lines`` without their entries."""
+    return [sentence for _entry, sentence in blocking_lines(result, per_rule)]
 
 
 def _above(finding: Finding) -> bool:

@@ -18,7 +18,7 @@ import pytest
 from gate.report.html import render
 from tests.reportkit import demo_result
 
-pytest.importorskip("matplotlib")  # the charts need the html extra
+pytest.importorskip("matplotlib")  # reads the screenshots (PNG) in the colour-scheme test
 
 pytestmark = pytest.mark.browser
 CHROMIUM_FLAGS = (
@@ -91,3 +91,29 @@ def test_inline_script_runs_under_the_content_security_policy(
     # the sort script turned every header of the sortable tables into a button
     assert dom.count('title="sort by this column"') >= 10
     assert "onerror=alert" not in dom.replace("&lt;img src=x onerror=alert(1)&gt;", "")
+
+
+def test_failing_section_comes_first_and_offending_layers_are_marked(tmp_path: Path) -> None:
+    """On the realistic demo result (tests/golden/demo_result.json, a real run): the browser's
+    DOM, after the script ran, has the failing model's section above the passing one, the
+    blocking list above both, and the failing layer marked in both of its charts."""
+    import re
+
+    from gate.report.jsonout import read_result
+
+    golden = Path(__file__).parent / "golden" / "demo_result.json"
+    page = tmp_path / "demo.html"
+    page.write_text(render(read_result(str(golden))), encoding="utf-8")
+    done = _run(["--dump-dom"], tmp_path, page)
+    assert done.returncode == 0, done.stderr[-800:]
+    dom = done.stdout
+    statuses = re.findall(r'<section class="card st-([a-z]+) entry"', dom)
+    assert "fail" in statuses and "pass" in statuses
+    first_fail = dom.index('<section class="card st-fail entry"')
+    first_pass = dom.index('<section class="card st-pass entry"')
+    assert dom.index('id="blocking"') < first_fail < first_pass
+    failing = dom[first_fail:dom.index("</section>", first_fail)]
+    svgs = re.findall(r"<svg\b.*?</svg>", failing, re.DOTALL)
+    assert len(svgs) == 2
+    for svg in svgs:  # the roofline ring and the bar-chart row of the widened layer
+        assert re.search(r'class="flagged" data-layer="stage4\.block1\.conv2"', svg), svg[:200]

@@ -20,8 +20,7 @@ from pathlib import Path
 
 import pytest
 
-from gate.errors import InputError
-from gate.report import all_reporters, charts, write_report
+from gate.report import all_reporters, charts
 from gate.report.html import REPORTER, render
 from gate.result import FAIL, PASS, Entry, GateResult, ModelError
 from gate.units import fmt_joules
@@ -35,8 +34,6 @@ from tests.reportkit import (
     make_run,
     make_verdict,
 )
-
-pytest.importorskip("matplotlib")  # the charts need the html extra
 
 SVG_NS = "{http://www.w3.org/2000/svg}"
 XLINK_HREF = "{http://www.w3.org/1999/xlink}href"
@@ -89,12 +86,8 @@ def _by_id(svg: ET.Element, gid: str) -> ET.Element | None:
 
 
 def _marks(group: ET.Element) -> list[ET.Element]:
-    """The drawn markers of a scatter group: <use> per point, or one <path> each."""
-    uses = list(group.iter(f"{SVG_NS}use"))
-    if uses:
-        return uses
-    defs = {id(p) for d in group.iter(f"{SVG_NS}defs") for p in d.iter(f"{SVG_NS}path")}
-    return [p for p in group.iter(f"{SVG_NS}path") if id(p) not in defs]
+    """The drawn markers of a point group: one <circle> each."""
+    return list(group.iter(f"{SVG_NS}circle"))
 
 
 def _bar_ids(svg: ET.Element, prefix: str) -> list[int]:
@@ -128,7 +121,7 @@ def test_one_roofline_and_one_layer_chart_per_model_target(demo_page: str) -> No
     layer_charts = [s for s in svgs if s.get("data-chart") == "layers"]
     assert len(rooflines) == len(layer_charts) == len(result.entries) == 2
     assert [(s.get("data-model"), s.get("data-target")) for s in rooflines] == \
-        [(e.model, e.target) for e in result.entries]
+        [(e.model, e.target) for e in result.ranked_entries]  # sections worst first
     ids = re.findall(r'\bid="([^"]*)"', demo_page)
     assert len(ids) == len(set(ids))  # every id unique in the page, charts included
 
@@ -189,37 +182,37 @@ def test_hostile_node_names_are_escaped_everywhere(name: str) -> None:
 
 def test_roofline_points_and_roof_match_the_records() -> None:
     result = demo_result()
-    entry = result.entries[1]  # species: base and head, one layer without FLOPs
-    fig, data = charts.roofline_figure(entry.head, entry.base, "t-roof")
-    ax = fig.axes[0]
-    roof = next(l for l in ax.get_lines() if l.get_gid() == "t-roof-roof")
+    entry = next(e for e in result.entries if e.base is not None and e.model.endswith("species.onnx"))
     ridge = PEAK_FLOPS_PER_S / DRAM_BYTES_PER_S  # 80 FLOP/byte for the made-up target
-    for x, y in roof.get_xydata():  # Williams et al. 2009: min(peak, AI x bandwidth)
+    vertices = charts.roof_vertices(PEAK_FLOPS_PER_S, DRAM_BYTES_PER_S, 0.1, 1e4)
+    for x, y in vertices:  # Williams et al. 2009: min(peak, AI x bandwidth)
         assert y == pytest.approx(min(PEAK_FLOPS_PER_S, x * DRAM_BYTES_PER_S))
-    assert tuple(roof.get_xydata()[1]) == pytest.approx((ridge, PEAK_FLOPS_PER_S))
-    marker = next(l for l in ax.get_lines() if l.get_gid() == "t-roof-ridge")
-    assert tuple(marker.get_xydata()[0]) == pytest.approx((ridge, PEAK_FLOPS_PER_S))
-    head = next(c for c in ax.collections if c.get_gid() == "t-roof-head-points")
-    expected = sorted((l.metrics["arithmetic_intensity"], l.metrics["achieved_flops_per_s"])
-                      for l in entry.head.layers if l.metrics["flops"] > 0)
-    assert sorted(map(tuple, head.get_offsets().tolist())) == expected  # the records' own floats
-    base = next(c for c in ax.collections if c.get_gid() == "t-roof-base-points")
-    assert len(base.get_offsets()) == _plottable(entry.base)
-    assert data["head-points"] == _plottable(entry.head) == 5
-    assert data["head-unplottable"] == 1  # the Flatten layer (no FLOPs)
+    assert vertices[1] == pytest.approx((ridge, PEAK_FLOPS_PER_S))
+    svg = ET.fromstring(charts.roofline_svg(entry.head, entry.base, "t-roof"))
+    head = _marks(_by_id(svg, "t-roof-head-points"))
+    expected = {l.name for l in entry.head.layers if l.metrics["flops"] > 0}
+    assert {c.get("data-layer") for c in head} == expected  # one marker per layer with FLOPs
+    assert len(_marks(_by_id(svg, "t-roof-base-points"))) == _plottable(entry.base)
+    assert svg.get("data-head-points") == str(_plottable(entry.head)) == "5"
+    assert svg.get("data-head-unplottable") == "1"  # the Flatten layer (no FLOPs)
     # marker area grows with the layer's share of latency
-    sizes = dict(zip(map(tuple, head.get_offsets().tolist()), head.get_sizes()))
+    radius = {c.get("data-layer"): float(c.get("r")) for c in head}
     by_latency = sorted((l for l in entry.head.layers if l.metrics["flops"] > 0),
                         key=lambda l: l.metrics["latency_s"])
-    ordered = [sizes[(l.metrics["arithmetic_intensity"], l.metrics["achieved_flops_per_s"])]
-               for l in by_latency]
+    ordered = [radius[l.name] for l in by_latency]
     assert ordered == sorted(ordered)
+    # higher achieved FLOP/s is higher on the page (smaller y)
+    ys = {c.get("data-layer"): float(c.get("cy")) for c in head}
+    by_achieved = sorted((l for l in entry.head.layers if l.metrics["flops"] > 0),
+                         key=lambda l: l.metrics["achieved_flops_per_s"])
+    assert [ys[l.name] for l in by_achieved] == sorted((ys[l.name] for l in by_achieved),
+                                                       reverse=True)
 
 
 def test_svg_markers_match_the_records(demo_page: str) -> None:
     result = demo_result(hostile=True)
     rooflines = [s for s in _svgs(demo_page) if s.get("data-chart") == "roofline"]
-    for svg, entry in zip(rooflines, result.entries):
+    for svg, entry in zip(rooflines, result.ranked_entries):
         chart = svg.get("id")
         assert len(_marks(_by_id(svg, f"{chart}-head-points"))) == _plottable(entry.head)
         assert len(_marks(_by_id(svg, f"{chart}-base-points"))) == _plottable(entry.base)
@@ -235,23 +228,25 @@ def test_svg_markers_match_the_records(demo_page: str) -> None:
         assert len(vertices) == 3 and vertices[1][1] == pytest.approx(vertices[2][1])
         assert vertices[0][1] > vertices[1][1]  # the bandwidth slope rises (SVG y grows down)
         ridge = _marks(_by_id(svg, f"{chart}-ridge"))[0]
-        assert (float(ridge.get("x")), float(ridge.get("y"))) == pytest.approx(vertices[1],
-                                                                              abs=0.01)
+        assert (float(ridge.get("cx")), float(ridge.get("cy"))) == pytest.approx(vertices[1],
+                                                                                abs=0.01)
 
 
 def test_layer_chart_bars_and_energy_parts_match_the_records(demo_page: str) -> None:
     result = demo_result(hostile=True)
     charts_ = [s for s in _svgs(demo_page) if s.get("data-chart") == "layers"]
-    for svg, entry in zip(charts_, result.entries):
+    for svg, entry in zip(charts_, result.ranked_entries):
         chart, n = svg.get("id"), len(entry.head.layers)
         assert int(svg.get("data-layers-shown")) == n
         assert _bar_ids(svg, f"{chart}-latency") == list(range(n))
         for metric, _label, _colour in charts.ENERGY_PARTS:
             assert _bar_ids(svg, f"{chart}-{metric.replace('_', '-')}") == list(range(n))
-    fig, _data = charts.layer_bars_figure(result.entries[1].head, {}, "t-bars")
-    bars = [p.get_width() for p in fig.axes[0].patches]
-    expected = sorted((l.metrics["latency_s"] for l in result.entries[1].head.layers), reverse=True)
-    assert bars == pytest.approx([v * 1e6 for v in expected])  # in microseconds, slowest first
+        # bar widths are proportional to the layers' latencies, slowest first
+        widths = [float(_by_id(svg, f"{chart}-latency-{row}").get("width")) for row in range(n)]
+        latencies = sorted((l.metrics["latency_s"] for l in entry.head.layers), reverse=True)
+        assert widths == sorted(widths, reverse=True)
+        scale = widths[0] / latencies[0]
+        assert widths == pytest.approx([v * scale for v in latencies], abs=0.01)
 
 
 def test_micro_is_spelled_the_same_in_tables_and_chart_axes(demo_page: str) -> None:
@@ -281,8 +276,14 @@ def test_rules_and_layer_diff_table(demo_page: str) -> None:
     tree = _parse(demo_page)
     rules = [(a["data-rule"], a["data-verdict"]) for t, a in tree.elements
              if t == "tr" and "data-verdict" in a]
-    assert rules == [("params-fit", "waived"), ("min-utilization", "warning"),
-                     ("params-fit", "fail"), ("min-utilization", "pass")]
+    order = {"fail": 0, "warning": 1, "waived": 2, "pass": 3}
+    sections = re.findall(r'<section class="card st-[a-z]+ entry".*?</section>', demo_page,
+                          re.DOTALL)
+    for section in sections:  # failing rules first in every section
+        words = re.findall(r'data-verdict="([a-z]+)"', section)
+        assert words == sorted(words, key=order.__getitem__)
+    assert sorted(rules) == sorted([("params-fit", "waived"), ("min-utilization", "warning"),
+                                    ("params-fit", "fail"), ("min-utilization", "pass")])
     sortable = [a for t, a in tree.elements if t == "table" and a.get("class") == "sortable"]
     assert len(sortable) == 3  # the overview and one layer table per entry
     # every numeric cell carries its raw value for sorting
@@ -301,7 +302,7 @@ def test_audit_index_lists_models_by_worst_verdict_with_trend() -> None:
                      "models/handheld/wakeword.onnx"]  # not analysed, fail, warning
     assert "vs previous run" in overview
     assert "-50.0%" in overview  # the pruned wake-word model's energy and latency dropped
-    assert "Models by worst verdict" in page
+    assert "Models, worst first" in page
 
 
 def test_removed_model_new_model_and_empty_run_render() -> None:
@@ -342,13 +343,11 @@ def test_registered_as_reporter_with_a_command_line_option() -> None:
     assert "html" in names and REPORTER.help
 
 
-def test_missing_matplotlib_names_the_extra_and_leaves_no_file(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_charts_need_no_plotting_library(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The charts are written as SVG directly: the report renders with matplotlib absent."""
     monkeypatch.setitem(sys.modules, "matplotlib", None)  # import matplotlib -> ImportError
-    target = tmp_path / "report.html"
-    with pytest.raises(InputError, match=r"pip install 'roofgate\[html\]'"):
-        write_report(REPORTER, demo_result(), str(target))
-    assert list(tmp_path.iterdir()) == []
+    page = render(demo_result())
+    assert len(_svgs(page)) == 4
 
 
 # --- end to end: the audit command on the fictional scenario models ---------------
@@ -381,7 +380,7 @@ def test_audit_command_writes_a_report_whose_charts_match_its_json_result(
     _parse(page)
     rooflines = [s for s in _svgs(page) if s.get("data-chart") == "roofline"]
     assert len(rooflines) == len(result.entries) == 8  # 4 models x 2 targets
-    for svg, entry in zip(rooflines, result.entries):
+    for svg, entry in zip(rooflines, result.ranked_entries):
         assert (svg.get("data-model"), svg.get("data-target")) == (entry.model, entry.target)
         group = _by_id(svg, f"{svg.get('id')}-head-points")
         plotted = len(_marks(group)) if group is not None else 0
@@ -391,7 +390,7 @@ def test_audit_command_writes_a_report_whose_charts_match_its_json_result(
         assert plotted > 0 or unmodelled == len(entry.head.layers)  # empty only if unmodelled
         assert float(svg.get("data-peak-flops-per-s")) == \
             entry.head.target_figures["peak_flops_per_s"]
-    assert "Models by worst verdict" in page
+    assert "Models, worst first" in page
     # the notes encoder's sequence length is symbolic and unbound here: said, not plotted as 0
     assert "60 layers not modelled" in page and "no modelled layer to plot" in page
     # the SARIF log of the same run names the same blocking failures as the result object
@@ -403,3 +402,71 @@ def test_audit_command_writes_a_report_whose_charts_match_its_json_result(
               for r in sarif["runs"][0]["results"] if r["level"] == "error"}
     assert errors == {(v.model, v.target, v.rule_id) for v in result.failed_verdicts
                       if v.blocks_merge}
+
+
+# --- what a reviewer sees first ---------------------------------------------------------
+
+def test_sections_follow_the_overview_worst_first(demo_page: str) -> None:
+    overview = re.search(r'id="overview-table".*?</table>', demo_page, re.DOTALL).group()
+    linked = re.findall(r'<a href="#(e\d+)">', overview)
+    sections = re.findall(r'<section class="card st-[a-z]+ entry" id="(e\d+)"', demo_page)
+    assert linked == sections
+    statuses = re.findall(r'<section class="card st-([a-z]+) entry"', demo_page)
+    rank = ["fail", "warn", "pass", "removed"]
+    assert statuses[0] == "fail" and statuses == sorted(statuses, key=rank.index)
+
+
+def test_blocking_list_leads_and_rules_come_before_the_charts(demo_page: str) -> None:
+    assert demo_page.index('id="blocking"') < demo_page.index('id="overview"')
+    for section in re.findall(r'<section class="card st-[a-z]+ entry".*?</section>', demo_page,
+                              re.DOTALL):
+        assert section.index("<h3>Rules</h3>") < section.index("<svg")
+        rules = section[section.index("<h3>Rules</h3>"):section.index("<svg")]
+        assert "table-wrap scroll" not in rules  # never inside a nested scroll box
+
+
+def test_offending_layers_are_flagged_in_both_charts_and_the_table(demo_page: str) -> None:
+    result = demo_result(hostile=True)
+    failing = next(e for e in result.ranked_entries if e.status == FAIL)
+    named = {f.layer for v in failing.verdicts if v.status == FAIL for f in v.failing if f.layer}
+    assert named
+    roof, bars = [s for s in _svgs(demo_page) if s.get("data-model") == failing.model][:2]
+    for svg in (roof, bars):
+        flagged = {el.get("data-layer") for el in svg.iter() if el.get("class") == "flagged"}
+        assert named <= flagged, (svg.get("data-chart"), named, flagged)
+    first_table = demo_page.split("<h3>Layers</h3>")[1].split("</table>")[0]
+    assert re.search(r'<tr class="[^"]*\bflagged\b', first_table)
+
+
+def test_roofline_labels_never_overlap_and_axes_say_what_they_plot(demo_page: str) -> None:
+    for svg in (s for s in _svgs(demo_page) if s.get("data-chart") == "roofline"):
+        boxes = []
+        for text in _by_id(svg, f"{svg.get('id')}-labels").iter(f"{SVG_NS}text"):
+            x, y, width = float(text.get("x")), float(text.get("y")), 6.1 * len(text.text or "")
+            left = {"start": x, "end": x - width, "middle": x - width / 2}[text.get("text-anchor")]
+            boxes.append((left, y - 11, left + width, y + 2))
+        for k, a in enumerate(boxes):
+            for b in boxes[k + 1:]:
+                assert not (a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]), (a, b)
+        texts = " ".join(t for el in svg.iter(f"{SVG_NS}text") for t in el.itertext())
+        assert "achieved per layer" in texts and f"attainable at {svg.get('data-precision')}" \
+            in texts
+
+
+def test_base_markers_and_energy_components_have_distinct_colours() -> None:
+    from gate.report.html_assets import CSS
+
+    for palette in CSS.split("@media")[:2]:
+        colours = dict(re.findall(r"--rg-([a-z-]+):(#[0-9a-f]{6})", palette))
+        energy = {v for k, v in colours.items() if k.startswith("e-")}
+        assert colours["base"] not in energy and colours["head"] not in energy
+        assert len(energy) == 6
+
+
+def test_a_chart_costs_milliseconds_not_seconds() -> None:
+    """Not a timing test: the charts are built from strings, no figure or font is rendered,
+    so the only work is proportional to the layers drawn (checked by the element count)."""
+    layers = [make_layer(f"block{i}.conv", 10_000 * (i + 1), 500, 20_000) for i in range(420)]
+    run = make_run("models/huge.onnx", "ws-64x64-4mib", layers)
+    svg = ET.fromstring(charts.roofline_svg(run, None, "t"))
+    assert sum(1 for _ in svg.iter()) < 6 * charts.MAX_ROOFLINE_POINTS + 200

@@ -190,7 +190,6 @@ def _junit_failures(result: GateResult) -> set:
 
 
 def _html_failures(result: GateResult) -> tuple[set, set]:
-    pytest.importorskip("matplotlib")
     from gate.report.html import render
 
     page = render(result)
@@ -250,18 +249,20 @@ def _unescape(cell: str) -> str:
 
 
 def _markdown_failures(result: GateResult) -> tuple[set, set]:
-    """(model, target, rule) of the rows of each "Failed rules" table of the PR comment."""
+    """(model, target, rule) of the failing rows of each block's rule table in the comment."""
     markdown = pytest.importorskip("gate.report.markdown")
     text = io.StringIO()
     markdown.REPORTER.write(result, text)
     blocking, warnings = set(), set()
-    for block in text.getvalue().split("<details>")[1:]:
-        model = re.search(r"<summary>(.*?): ", block).group(1)
-        for section in block.split("\n#### ")[1:]:
-            target, _, body = section.partition("\n")
-            table = body.partition("**Failed rules**")[2].strip().split("\n\n")[0]
-            for row in table.splitlines()[2:]:
-                cells = row.strip("|").split("|")
-                key = (model, target.strip(), _unescape(cells[0]))
-                (blocking if "error" in cells[1] else warnings).add(key)
+    for block in text.getvalue().split("\n### ")[1:]:
+        heading, _, body = block.partition("\n")
+        model, _, target = heading.partition(" \u00b7 ")[2].rpartition(" on ")
+        table = body.partition("| Rule | Outcome |")[2].strip().split("\n\n")[0]
+        for row in table.splitlines()[1:]:
+            cells = row.strip("|").split("|")
+            key = (_unescape(model), target.strip(), _unescape(cells[0]))
+            if "blocks merge" in cells[1]:
+                blocking.add(key)
+            elif "warning" in cells[1]:
+                warnings.add(key)
     return blocking, warnings

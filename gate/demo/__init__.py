@@ -13,7 +13,6 @@ it did not. Nothing is downloaded; the models are generated in code.
 
 from __future__ import annotations
 
-import importlib.util
 import os
 import tempfile
 import time
@@ -155,8 +154,7 @@ def _check(repo: Path) -> tuple[GateResult, str, list[str]]:
         result, title = run_check(repo, config, "main", baseline=None, workers=1)
         result = with_notes(result, [DEMO_NOTE])  # the reports say so too, not only stdout
         paths: dict[str, str | None] = dict(config.reports)
-        if importlib.util.find_spec("matplotlib") is not None:  # the optional html extra
-            paths["html"] = "roofgate-out/report.html"
+        paths["html"] = "roofgate-out/report.html"
         written = write_reports(result, paths)
         return result, title, [str((repo / w).resolve()) for w in written]
     finally:

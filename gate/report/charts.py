@@ -1,69 +1,50 @@
-"""The HTML report's charts: a roofline and a per-layer latency/energy chart, as inline SVG.
+"""The HTML report's charts, written directly as small inline SVG: a roofline and a per-layer
+latency and energy chart.
 
-Drawn with matplotlib (the optional ``html`` extra), imported lazily so the
-rest of roofgate never needs it. Output is deterministic (fixed hash salt, no
-date, text kept as text) so identical results give byte-identical reports.
+No plotting library: each chart is a few hundred SVG elements built from the
+records (text as text, colours as the page's CSS custom properties ``--rg-*``,
+so both palettes apply). Output is deterministic, so identical results give
+byte-identical reports, and a chart takes milliseconds, not seconds.
 
-Colours are not baked in: every artist is drawn in a sentinel colour that is
-then swapped for a CSS custom property (``var(--rg-ink)``, ...), so the page's
-light and dark palettes both apply to the charts. Each chart's data artists
-carry ids (``<chart id>-head-points``, ``-roof``, ``-ridge``, ...) and the root
-``<svg>`` carries ``data-*`` figures, so tests can count what was plotted.
+Each chart's data elements carry ids (``<chart id>-head-points``, ``-roof``,
+``-ridge``, ``-latency-<row>``, ...) and the root ``<svg>`` carries ``data-*``
+figures, so tests can count what was drawn. Layers the result names in failing
+findings are *flagged*: ringed on the roofline and marked on their bar row
+(class ``flagged``, ``data-layer`` = the layer name), in both charts.
 
 The roofline follows Williams, Waterman & Patterson, "Roofline", CACM 2009:
 attainable throughput = min(peak FLOP/s, arithmetic intensity x DRAM bytes/s).
+The points are what each layer *achieves* (its FLOPs over its modelled latency);
+the roof is what the target allows at the run's precision.
 """
 
 from __future__ import annotations
 
-import io
 import math
-import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Collection, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
 
-from gate import units
-from gate.errors import InputError
+from gate import metrics, units
 from gate.records import LayerRecord, RunRecord
-from gate.report.text import shorten, term_safe
-
-INSTALL_HINT = "the HTML report needs matplotlib: pip install 'roofgate[html]'"
+from gate.report.text import html_escape, shorten
 
 # Most points on a roofline / bars in the layer chart; the rest are counted, not drawn.
 MAX_ROOFLINE_POINTS = 300
 MAX_BAR_LAYERS = 30
-ANNOTATED_LAYERS = 3
+LABELLED_LAYERS = 3  # the slowest layers get a label on the roofline (flagged ones always)
 
-# Sentinel colour -> CSS custom property (the page defines both palettes).
-_SENTINELS = {
-    "#0a0b01": "--rg-ink", "#0a0b02": "--rg-muted", "#0a0b03": "--rg-grid",
-    "#0a0b04": "--rg-head", "#0a0b05": "--rg-base", "#0a0b06": "--rg-roof",
-    "#0a0b07": "--rg-ridge", "#0a0b08": "--rg-paper",
-    "#0a0b10": "--rg-e-mac", "#0a0b11": "--rg-e-buffer", "#0a0b12": "--rg-e-noc",
-    "#0a0b13": "--rg-e-dram-param", "#0a0b14": "--rg-e-dram-act", "#0a0b15": "--rg-e-static",
-}
-INK, MUTED, GRID, HEAD, BASE, ROOF, RIDGE, PAPER = (
-    "#0a0b01", "#0a0b02", "#0a0b03", "#0a0b04", "#0a0b05", "#0a0b06", "#0a0b07", "#0a0b08")
-
-# Energy components in the records (metric, legend label, sentinel colour).
+# Energy components in the records (metric, legend label, CSS custom property).
 ENERGY_PARTS: tuple[tuple[str, str, str], ...] = (
-    ("energy_mac_j", "MACs", "#0a0b10"),
-    ("energy_buffer_j", "on-chip buffers", "#0a0b11"),
-    ("energy_noc_j", "PE-array distribution", "#0a0b12"),
-    ("energy_dram_param_j", "DRAM parameters", "#0a0b13"),
-    ("energy_dram_act_j", "DRAM activations", "#0a0b14"),
-    ("energy_static_j", "static", "#0a0b15"),
+    ("energy_mac_j", "MACs", "--rg-e-mac"),
+    ("energy_buffer_j", "on-chip buffers", "--rg-e-buffer"),
+    ("energy_noc_j", "PE-array distribution", "--rg-e-noc"),
+    ("energy_dram_param_j", "DRAM parameters", "--rg-e-dram-param"),
+    ("energy_dram_act_j", "DRAM activations", "--rg-e-dram-act"),
+    ("energy_static_j", "static", "--rg-e-static"),
 )
 
-_RC = {
-    "svg.fonttype": "none", "font.family": "sans-serif", "font.sans-serif": ["DejaVu Sans"],
-    "font.size": 9, "text.color": INK, "axes.labelcolor": INK, "axes.edgecolor": MUTED,
-    "xtick.color": MUTED, "ytick.color": MUTED, "xtick.labelcolor": INK,
-    "ytick.labelcolor": INK, "axes.facecolor": "none", "figure.facecolor": "none",
-    "savefig.facecolor": "none", "legend.facecolor": PAPER, "legend.edgecolor": GRID,
-    "legend.framealpha": 0.9, "path.simplify": False,
-}
+_FONT_PX = 11.0
+_CHAR_PX = 6.1  # average advance of the sans-serif at 11 px: for label boxes (estimate)
 
 
 @dataclass(frozen=True, slots=True)
@@ -86,28 +67,17 @@ class RoofSelection:
     unmodelled: int = 0  # not modelled at all (no cost counted): never plotted
 
 
-def require_matplotlib() -> Any:
-    """Import matplotlib (Agg backend), or fail with how to install it."""
-    try:
-        import matplotlib
-    except ImportError:
-        raise InputError(INSTALL_HINT) from None
-    matplotlib.use("Agg", force=False)
-    return matplotlib
-
-
-# --- what to plot (pure, no matplotlib) ---------------------------------------
+# --- what to plot ---------------------------------------------------------------------------
 
 def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSelection:
     """The layers of ``run`` placed on its roofline: top ``max_points`` by latency."""
     total_s = _finite(run.metrics, "latency_s") or 1.0
     plottable, unplottable, unmodelled = [], 0, 0
     for layer in run.layers:
-        ai = _finite(layer.metrics, "arithmetic_intensity")
-        achieved = _finite(layer.metrics, "achieved_flops_per_s")
         if not layer.modelled:
             unmodelled += 1
-        elif _positive(ai) and _positive(achieved):
+        elif (_positive(_finite(layer.metrics, "arithmetic_intensity"))
+              and _positive(_finite(layer.metrics, "achieved_flops_per_s"))):
             plottable.append(layer)
         else:
             unplottable += 1
@@ -116,8 +86,7 @@ def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSe
         RoofPoint(layer.name, _finite(layer.metrics, "arithmetic_intensity"),
                   _finite(layer.metrics, "achieved_flops_per_s"),
                   _finite(layer.metrics, "latency_s") / total_s)
-        for layer in ranked[:max_points]
-    )
+        for layer in ranked[:max_points])
     return RoofSelection(points, max(len(ranked) - max_points, 0), unplottable, unmodelled)
 
 
@@ -135,299 +104,422 @@ def bar_layers(run: RunRecord, max_layers: int = MAX_BAR_LAYERS) -> tuple[list[L
     return ranked[:max_layers], max(len(ranked) - max_layers, 0)
 
 
-def chart_label(name: str, max_chars: int = 34) -> str:
-    """A model-supplied name made safe as matplotlib text: one line, no mathtext, short."""
-    return shorten(term_safe(name), max_chars).replace("$", r"\$")
-
-
 def _latency_rank(layer: LayerRecord) -> tuple[float, str]:
     return (-_finite(layer.metrics, "latency_s"), layer.name)
 
 
-def _finite(metrics: Mapping[str, float | None], name: str) -> float:
-    """A metric as a float, 0 when missing, unknown or not finite (a chart cannot plot
-    inf, NaN or '?'; the tables beside it print unknown figures as '?')."""
-    value = float(metrics.get(name) or 0.0)
-    return value if math.isfinite(value) else 0.0
+def _finite(values: Mapping[str, object], name: str) -> float:
+    """A metric as a float, 0 when missing, unknown or not finite (never drawn as inf)."""
+    value = values.get(name)
+    if not isinstance(value, (int, float)) or isinstance(value, bool):
+        return 0.0
+    return float(value) if math.isfinite(value) else 0.0
 
 
 def _positive(value: float) -> bool:
     return math.isfinite(value) and value > 0
 
 
-# --- SVG output ---------------------------------------------------------------
+# --- SVG building blocks ----------------------------------------------------------------------
 
-def figure_to_svg(fig: Any, chart_id: str, data: Mapping[str, object], label: str) -> str:
-    """Render ``fig`` as an inline ``<svg>`` element with themeable colours and data attributes."""
-    matplotlib = require_matplotlib()
-    buf = io.StringIO()
-    with matplotlib.rc_context({**_RC, "svg.hashsalt": chart_id}):
-        fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None,
-                                                  "Format": None, "Type": None})
-    svg = buf.getvalue()
-    svg = svg[svg.index("<svg"):]  # drop the XML declaration and DOCTYPE (external DTD)
-    svg = re.sub(r"<!--.*?-->", "", svg, flags=re.DOTALL)
-    # matplotlib numbers its unnamed groups per figure (axes_1, text_3): make them page-unique.
-    svg = re.sub(r'id="([A-Za-z][A-Za-z0-9.]*_\d+)"', rf'id="{chart_id}-\1"', svg)
-    for sentinel, prop in _SENTINELS.items():
-        svg = svg.replace(sentinel, f"var({prop})")
-    attrs = " ".join(f'data-{key}="{_attr(value)}"' for key, value in data.items())
-    root = re.match(r"<svg\b[^>]*>", svg)
-    assert root is not None
-    viewbox = re.search(r'viewBox="[^"]*"', root.group())
-    new_root = (f'<svg xmlns="http://www.w3.org/2000/svg" '
-                f'xmlns:xlink="http://www.w3.org/1999/xlink" {viewbox.group() if viewbox else ""} '
-                f'id="{chart_id}" class="chart" role="img" aria-label="{_attr(label)}" {attrs}>')
-    return new_root + svg[root.end():].rstrip() + "\n"
+def _x(text: str) -> str:
+    """Text or attribute value safe inside SVG (escaped, one line, no control characters)."""
+    return html_escape(text)
+
+
+def _n(value: float) -> str:
+    """A coordinate with two decimals (deterministic, compact)."""
+    return f"{value:.2f}"
+
+
+def _text(x: float, y: float, text: str, *, anchor: str = "start", css: str = "",
+          extra: str = "") -> str:
+    cls = f' class="{css}"' if css else ""
+    return (f'<text x="{_n(x)}" y="{_n(y)}" text-anchor="{anchor}"{cls}{extra}>'
+            f"{_x(text)}</text>")
+
+
+def _svg(chart_id: str, width: int, height: int, label: str, data: Mapping[str, object],
+         body: Sequence[str]) -> str:
+    attrs = " ".join(f'data-{key}="{_x(_attr(value))}"' for key, value in data.items())
+    return (f'<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {width} {height}" '
+            f'id="{chart_id}" class="chart" role="img" aria-label="{_x(label)}" {attrs}>'
+            f'<style>text{{font:{_FONT_PX:g}px system-ui,sans-serif;fill:var(--rg-ink)}}'
+            ".muted{fill:var(--rg-muted)}.axis{font-weight:600}"
+            ".flagtext{font-weight:700;fill:var(--rg-fail)}</style>"
+            + "".join(body) + "</svg>\n")
 
 
 def _attr(value: object) -> str:
-    text = repr(value) if isinstance(value, float) else str(value)
-    return (term_safe(text).replace("&", "&amp;").replace('"', "&quot;")
-            .replace("<", "&lt;").replace(">", "&gt;"))
+    return repr(value) if isinstance(value, float) else str(value)
 
 
-def si_tick(value: float, _pos: object = None) -> str:
-    """Axis tick text for log axes: ``100 M``, ``1 G``, ``0.1`` (no mathtext)."""
-    if value <= 0:
-        return ""
+def decade_ticks(lo: float, hi: float) -> list[float]:
+    """Powers of ten from ``lo`` to ``hi`` (both powers of ten)."""
+    first, last = round(math.log10(lo)), round(math.log10(hi))
+    return [10.0 ** k for k in range(first, last + 1)]
+
+
+def tick_text(value: float, unit: str = "") -> str:
+    """Axis tick text: ``100 M``, ``1 G``, ``0.1`` (the units module's prefixes)."""
     if value < 1000:
         return f"{value:g}"
-    return units.fmt_count(value).replace(".00 ", " ").replace(".0 ", " ")
+    return units.fmt_count(value, unit).replace(".00 ", " ").replace(".0 ", " ")
 
 
-def new_figure(width_in: float, height_in: float, *, left_in: float, right_in: float,
-               bottom_in: float, top_in: float, wspace: float = 0.0) -> Any:
-    """A pyplot-free figure with the report's styling and fixed margins in inches.
-
-    Fixed margins instead of an automatic layout engine: the layout engine measured
-    every tick label and was half the drawing time, and our labels have known sizes.
-    """
-    matplotlib = require_matplotlib()
-    from matplotlib.figure import Figure
-
-    with matplotlib.rc_context(_RC):
-        fig = Figure(figsize=(width_in, height_in))
-    fig.subplots_adjust(left=left_in / width_in, right=1 - right_in / width_in,
-                        bottom=bottom_in / height_in, top=1 - top_in / height_in, wspace=wspace)
-    return fig
+def nice_ticks(top: float, count: int = 4) -> list[float]:
+    """0 and a few round steps (1, 2 or 5 x 10^k) up to at least ``top``."""
+    if top <= 0:
+        return [0.0, 1.0]
+    raw = top / count
+    power = 10.0 ** math.floor(math.log10(raw))
+    step = next(m * power for m in (1, 2, 5, 10) if m * power >= raw)
+    return [step * k for k in range(math.ceil(top / step - 1e-9) + 1)]
 
 
-def rc_context() -> Any:
-    """The report's matplotlib style, for drawing into a figure made by ``new_figure``."""
-    return require_matplotlib().rc_context(_RC)
+@dataclass(frozen=True)
+class _LogAxes:
+    """Log-log plot area: data -> SVG coordinates."""
+
+    left: float
+    top: float
+    width: float
+    height: float
+    x_lo: float
+    x_hi: float
+    y_lo: float
+    y_hi: float
+
+    def x(self, value: float) -> float:
+        span = math.log10(self.x_hi) - math.log10(self.x_lo)
+        return self.left + (math.log10(value) - math.log10(self.x_lo)) / span * self.width
+
+    def y(self, value: float) -> float:
+        span = math.log10(self.y_hi) - math.log10(self.y_lo)
+        return self.top + self.height - (math.log10(value) - math.log10(self.y_lo)) / span \
+            * self.height
 
 
-def legend_patches(parts: Sequence[tuple[str, str, str]]) -> list[Any]:
-    """Legend handles for the energy components."""
-    from matplotlib.patches import Patch
+# --- the roofline -----------------------------------------------------------------------------
 
-    return [Patch(facecolor=colour, edgecolor="none", label=label) for _m, label, colour in parts]
-
-
-# --- the roofline -------------------------------------------------------------
-
-def roofline_figure(head: RunRecord, base: RunRecord | None, chart_id: str,
-                    max_points: int = MAX_ROOFLINE_POINTS) -> tuple[Any, dict[str, object]]:
-    """Roofline of ``head`` (and ``base`` when given): the figure and its data attributes."""
+def roofline_svg(head: RunRecord, base: RunRecord | None, chart_id: str, *,
+                 flagged: Collection[str] = (), max_points: int = MAX_ROOFLINE_POINTS) -> str:
+    """Roofline of ``head`` (and ``base`` hollow when given); ``flagged`` layers ringed."""
     figures = head.target_figures
     peak = _finite(figures, "peak_flops_per_s")
     bandwidth = _finite(figures, "dram_bytes_per_s")
+    has_roof = _positive(peak) and _positive(bandwidth)
     head_sel = roof_points(head, max_points)
     base_sel = roof_points(base, max_points) if base is not None else None
-    with rc_context():
-        fig = new_figure(9.0, 4.6, left_in=0.85, right_in=0.15, bottom_in=0.55, top_in=0.1)
-        ax = fig.add_subplot()
-        ax.set_xscale("log")
-        ax.set_yscale("log")
-        lo, hi = _intensity_range(head_sel, base_sel, peak, bandwidth)
-        has_roof = _positive(peak) and _positive(bandwidth)
-        if has_roof:
-            _draw_roof(ax, chart_id, peak, bandwidth, lo, hi)
-        if base_sel is not None:
-            _draw_points(ax, base_sel, f"{chart_id}-base-points", "base", filled=False)
-        _draw_points(ax, head_sel, f"{chart_id}-head-points",
-                     "head" if base_sel is not None else "layers", filled=True)
-        _annotate(ax, head_sel.points[:ANNOTATED_LAYERS])
-        if not head_sel.points:
-            ax.text(0.5, 0.5, "no modelled layer to plot", transform=ax.transAxes,
-                    ha="center", va="center", color=MUTED, fontsize=10)
-        _finish_roofline_axes(ax, lo, hi, head_sel, base_sel, peak if has_roof else 0.0)
+    axes = _roof_axes(head_sel, base_sel, peak if has_roof else 0.0,
+                      bandwidth if has_roof else 0.0)
+    body = _log_grid(axes)
+    if has_roof:
+        body += _roof(axes, chart_id, peak, bandwidth, head.precision)
+    if base_sel is not None:
+        body.append(_points(axes, base_sel, f"{chart_id}-base-points", hollow=True))
+    body.append(_points(axes, head_sel, f"{chart_id}-head-points", hollow=False))
+    body += _flags_and_labels(axes, head_sel, chart_id, flagged)
+    if not head_sel.points:
+        body.append(_text(axes.left + axes.width / 2, axes.top + axes.height / 2,
+                          "no modelled layer to plot", anchor="middle", css="muted"))
+    body += _roof_axis_titles(axes, head.precision)
+    body.append(_roof_legend(axes, base_sel is not None, bool(flagged)))
     data: dict[str, object] = {
         "chart": "roofline", "model": head.model, "target": head.target,
+        "precision": head.precision,
         "head-points": len(head_sel.points), "head-left-out": head_sel.left_out,
         "head-unplottable": head_sel.unplottable, "head-unmodelled": head_sel.unmodelled,
         "peak-flops-per-s": peak, "dram-bytes-per-s": bandwidth,
-        "ridge-flop-per-byte": peak / bandwidth if has_roof else 0.0,
+        "ridge-flop-per-byte": _finite(figures, "ridge_flop_per_byte") if has_roof else 0.0,
+        "flagged": len([p for p in head_sel.points if p.name in flagged]),
     }
     if base_sel is not None:
         data.update({"base-points": len(base_sel.points), "base-left-out": base_sel.left_out,
                      "base-unplottable": base_sel.unplottable})
-    return fig, data
+    label = f"Roofline of {head.model_name} on {head.target} ({head.precision})"
+    return _svg(chart_id, 860, 430, label, data, body)
 
 
-def roofline_svg(head: RunRecord, base: RunRecord | None, chart_id: str,
-                 max_points: int = MAX_ROOFLINE_POINTS) -> str:
-    """The roofline chart as an inline ``<svg>``."""
-    fig, data = roofline_figure(head, base, chart_id, max_points)
-    label = f"Roofline of {head.model_name} on {head.target}"
-    return figure_to_svg(fig, chart_id, data, label)
+def _roof_axes(head: RoofSelection, base: RoofSelection | None, peak: float,
+               bandwidth: float) -> _LogAxes:
+    """Whole decades around every plotted point and the ridge point."""
+    points = [*head.points, *(base.points if base else ())]
+    xs = [p.intensity_flop_per_byte for p in points]
+    ys = [p.achieved_flops_per_s for p in points]
+    if peak and bandwidth:
+        xs.append(peak / bandwidth)
+        ys.append(peak)
+    x_lo, x_hi = (0.1, 1000.0) if not xs else (
+        10.0 ** (math.floor(math.log10(min(xs))) - 1), 10.0 ** (math.ceil(math.log10(max(xs))) + 1))
+    top = max([*ys, 1.0])
+    y_hi = 10.0 ** math.ceil(math.log10(top) + 0.3)
+    y_lo = 10.0 ** math.floor(math.log10(min([*ys, top / 1e4])) - 0.3)
+    return _LogAxes(78.0, 18.0, 760.0, 350.0, x_lo, x_hi, y_lo, y_hi)
 
 
-def _intensity_range(head: RoofSelection, base: RoofSelection | None, peak: float,
-                     bandwidth: float) -> tuple[float, float]:
-    """Whole decades around every plotted intensity and the ridge point."""
-    values = [p.intensity_flop_per_byte for p in head.points]
-    values += [p.intensity_flop_per_byte for p in base.points] if base else []
-    if _positive(peak) and _positive(bandwidth):
-        values.append(peak / bandwidth)
-    if not values:
-        return 0.1, 1000.0
-    lo = 10.0 ** (math.floor(math.log10(min(values))) - 1)
-    hi = 10.0 ** (math.ceil(math.log10(max(values))) + 1)
-    return lo, hi
+def _log_grid(axes: _LogAxes) -> list[str]:
+    out = ['<g class="grid" stroke="var(--rg-grid)" stroke-width="1">']
+    bottom = axes.top + axes.height
+    for value in decade_ticks(axes.x_lo, axes.x_hi):
+        x = axes.x(value)
+        out.append(f'<line x1="{_n(x)}" y1="{_n(axes.top)}" x2="{_n(x)}" y2="{_n(bottom)}"/>')
+    for value in decade_ticks(axes.y_lo, axes.y_hi):
+        y = axes.y(value)
+        out.append(f'<line x1="{_n(axes.left)}" y1="{_n(y)}" x2="{_n(axes.left + axes.width)}" '
+                   f'y2="{_n(y)}"/>')
+    out.append("</g>")
+    out += [_text(axes.x(v), bottom + 15, tick_text(v), anchor="middle", css="muted")
+            for v in decade_ticks(axes.x_lo, axes.x_hi)]
+    out += [_text(axes.left - 6, axes.y(v) + 4, tick_text(v), anchor="end", css="muted")
+            for v in decade_ticks(axes.y_lo, axes.y_hi)]
+    return out
 
 
-def _draw_roof(ax: Any, chart_id: str, peak: float, bandwidth: float,
-               lo: float, hi: float) -> None:
-    xs, ys = zip(*roof_vertices(peak, bandwidth, lo, hi))
-    ax.plot(xs, ys, color=ROOF, linewidth=2.2, gid=f"{chart_id}-roof",
-            label=f"roof: {si_tick(peak)}FLOP/s, {units.fmt_count(bandwidth)}B/s DRAM")
-    ridge = peak / bandwidth
-    ax.axvline(ridge, color=RIDGE, linewidth=1.0, linestyle=(0, (2, 3)), zorder=1)
-    ax.plot([ridge], [peak], marker="D", markersize=7, color=RIDGE, linestyle="none",
-            gid=f"{chart_id}-ridge", label=f"ridge point: {ridge:.3g} FLOP/byte", zorder=4)
+def _roof(axes: _LogAxes, chart_id: str, peak: float, bandwidth: float,
+          precision: str) -> list[str]:
+    vertices = roof_vertices(peak, bandwidth, axes.x_lo, axes.x_hi)
+    path = " ".join(f"{'M' if k == 0 else 'L'} {_n(axes.x(x))} {_n(axes.y(y))}"
+                    for k, (x, y) in enumerate(vertices))
+    ridge_x, ridge_y = axes.x(vertices[1][0]), axes.y(peak)
+    ridge = vertices[1][0]
+    return [
+        (f'<g id="{chart_id}-roof"><path d="{path}" fill="none" stroke="var(--rg-roof)" '
+        f'stroke-width="2.4"/></g>'),
+        (f'<line x1="{_n(ridge_x)}" y1="{_n(axes.top)}" x2="{_n(ridge_x)}" '
+        f'y2="{_n(axes.top + axes.height)}" stroke="var(--rg-ridge)" stroke-dasharray="3 4"/>'),
+        (f'<g id="{chart_id}-ridge"><circle cx="{_n(ridge_x)}" cy="{_n(ridge_y)}" r="4.5" '
+        f'fill="var(--rg-ridge)"/></g>'),
+        _text(ridge_x + 7, ridge_y - 7, f"ridge point {metrics.fmt('ridge_flop_per_byte', ridge)}"
+              f" ({precision})", css="muted"),
+    ]
 
 
-def _draw_points(ax: Any, selection: RoofSelection, gid: str, label: str, *,
-                 filled: bool) -> None:
-    if not selection.points:
-        return
-    xs = [p.intensity_flop_per_byte for p in selection.points]
-    ys = [p.achieved_flops_per_s for p in selection.points]
-    sizes = [14.0 + 520.0 * min(max(p.latency_share, 0.0), 1.0) for p in selection.points]
-    colour = HEAD if filled else BASE
-    ax.scatter(xs, ys, s=sizes, gid=gid, label=label, zorder=3 if filled else 2,
-               facecolors=colour if filled else "none", edgecolors=colour,
-               alpha=0.72 if filled else 0.95, linewidths=1.0 if filled else 1.3)
+def _radius(share: float) -> float:
+    """Marker radius: area grows with the layer's share of the model's latency."""
+    return 2.5 + 13.0 * math.sqrt(min(max(share, 0.0), 1.0))
 
 
-# Label offsets (points) for the annotated layers, alternating so neighbours do not overlap.
-_LABEL_OFFSETS = ((8, 6, "left"), (8, -12, "left"), (-8, 6, "right"))
+def _points(axes: _LogAxes, selection: RoofSelection, group_id: str, *, hollow: bool) -> str:
+    colour = "var(--rg-base)" if hollow else "var(--rg-head)"
+    paint = (f'fill="none" stroke="{colour}" stroke-width="1.4"' if hollow
+             else f'fill="{colour}" fill-opacity="0.7" stroke="{colour}"')
+    # largest first, so small markers stay visible on top
+    ordered = sorted(selection.points, key=lambda p: -p.latency_share)
+    circles = "".join(
+        f'<circle cx="{_n(axes.x(p.intensity_flop_per_byte))}" '
+        f'cy="{_n(axes.y(p.achieved_flops_per_s))}" r="{_n(_radius(p.latency_share))}" '
+        f'data-layer="{_x(p.name)}"><title>{_x(p.name)}</title></circle>' for p in ordered)
+    return f'<g id="{group_id}" {paint}>{circles}</g>'
 
 
-def _annotate(ax: Any, points: Sequence[RoofPoint]) -> None:
-    for point, (dx, dy, align) in zip(points, _LABEL_OFFSETS):
-        ax.annotate(chart_label(point.name, 28),
-                    (point.intensity_flop_per_byte, point.achieved_flops_per_s),
-                    xytext=(dx, dy), textcoords="offset points", fontsize=7.5, color=MUTED,
-                    ha=align)
+def _flags_and_labels(axes: _LogAxes, selection: RoofSelection, chart_id: str,
+                      flagged: Collection[str]) -> list[str]:
+    """Rings around flagged layers, then labels (flagged first, then the slowest) placed
+    where they overlap neither another label nor the plot edge; a label with no free
+    place is left out (the table below names every layer)."""
+    marked = [p for p in selection.points if p.name in flagged]
+    rings = "".join(
+        f'<circle class="flagged" data-layer="{_x(p.name)}" '
+        f'cx="{_n(axes.x(p.intensity_flop_per_byte))}" '
+        f'cy="{_n(axes.y(p.achieved_flops_per_s))}" r="{_n(_radius(p.latency_share) + 4)}"/>'
+        for p in marked)
+    out = [(f'<g id="{chart_id}-flagged" fill="none" stroke="var(--rg-fail)" '
+           f'stroke-width="2.2">{rings}</g>')]
+    wanted = marked + [p for p in selection.points[:LABELLED_LAYERS] if p not in marked]
+    boxes: list[tuple[float, float, float, float]] = []
+    labels = []
+    for point in wanted:
+        placed = _place_label(axes, point, boxes)
+        if placed is None:
+            continue
+        x, y, anchor = placed
+        css = "flagtext" if point.name in flagged else "muted"
+        labels.append(_text(x, y, _label(point.name), anchor=anchor, css=css,
+                            extra=f' data-layer="{_x(point.name)}"'))
+    out.append(f'<g id="{chart_id}-labels">{"".join(labels)}</g>')
+    return out
 
 
-def _finish_roofline_axes(ax: Any, lo: float, hi: float, head: RoofSelection,
-                          base: RoofSelection | None, peak: float) -> None:
-    from matplotlib.ticker import FuncFormatter
-
-    achieved = [p.achieved_flops_per_s for p in head.points]
-    achieved += [p.achieved_flops_per_s for p in base.points] if base else []
-    top = max([peak, *achieved, 1.0])
-    bottom = min([*achieved, top / 1e4])
-    ax.set_xlim(lo, hi)
-    ax.set_ylim(10.0 ** math.floor(math.log10(bottom) - 0.3), top * 4)
-    ax.xaxis.set_major_formatter(FuncFormatter(si_tick))
-    ax.yaxis.set_major_formatter(FuncFormatter(si_tick))
-    ax.set_xlabel("arithmetic intensity (FLOP per byte of parameters + activations moved)")
-    ax.set_ylabel("attainable throughput (FLOP/s)")
-    ax.grid(True, which="major", color=GRID, linewidth=0.7)
-    ax.set_axisbelow(True)
-    for side in ("top", "right"):
-        ax.spines[side].set_visible(False)
-    if ax.get_legend_handles_labels()[0]:
-        ax.legend(loc="lower right", fontsize=7.5, markerscale=0.6)
+def _label(name: str) -> str:
+    return shorten(name, 30)
 
 
-# --- per-layer latency and energy -----------------------------------------------
+def _place_label(axes: _LogAxes, point: RoofPoint,
+                 boxes: list[tuple[float, float, float, float]]) -> tuple[float, float, str] | None:
+    cx, cy = axes.x(point.intensity_flop_per_byte), axes.y(point.achieved_flops_per_s)
+    gap = _radius(point.latency_share) + 3
+    width = _CHAR_PX * len(_label(point.name))
+    for dx, dy, anchor in ((gap, -gap, "start"), (gap, gap + 9, "start"),
+                           (-gap, -gap, "end"), (-gap, gap + 9, "end"),
+                           (0.0, -gap - 4, "middle"), (0.0, gap + 13, "middle")):
+        x, y = cx + dx, cy + dy
+        left = x if anchor == "start" else x - width if anchor == "end" else x - width / 2
+        box = (left, y - _FONT_PX, left + width, y + 2)
+        inside = (box[0] >= axes.left and box[2] <= axes.left + axes.width
+                  and box[1] >= axes.top and box[3] <= axes.top + axes.height)
+        if inside and not any(_overlap(box, other) for other in boxes):
+            boxes.append(box)
+            return x, y, anchor
+    return None
 
-def layer_bars_figure(head: RunRecord, base_latency_s: Mapping[str, float], chart_id: str,
-                      max_layers: int = MAX_BAR_LAYERS) -> tuple[Any, dict[str, object]]:
-    """Latency (with the base's as a tick) and energy by component of the slowest layers.
 
-    ``base_latency_s`` maps a head layer name to its matched base layer's latency.
+def _overlap(a: tuple[float, float, float, float], b: tuple[float, float, float, float]) -> bool:
+    return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
+
+
+def _roof_axis_titles(axes: _LogAxes, precision: str) -> list[str]:
+    mid_x = axes.left + axes.width / 2
+    mid_y = axes.top + axes.height / 2
+    return [
+        _text(mid_x, axes.top + axes.height + 36, "arithmetic intensity (FLOP per byte of "
+              "parameters, inputs and outputs moved)", anchor="middle", css="axis"),
+        (f'<text x="16" y="{_n(mid_y)}" text-anchor="middle" class="axis" '
+        f'transform="rotate(-90 16 {_n(mid_y)})">{_x("FLOP/s: achieved per layer (points), ")}'
+        f'{_x(f"attainable at {precision} (roof)")}</text>'),
+    ]
+
+
+def _roof_legend(axes: _LogAxes, with_base: bool, with_flags: bool) -> str:
+    x, y = axes.left + 10, axes.top + 14
+    items = [('<circle cx="0" cy="-4" r="5" fill="var(--rg-head)" fill-opacity="0.7"/>',
+              "head" if with_base else "layers")]
+    if with_base:
+        items.append((('<circle cx="0" cy="-4" r="5" fill="none" stroke="var(--rg-base)" '
+                      'stroke-width="1.4"/>'), "base"))
+    if with_flags:
+        items.append((('<circle cx="0" cy="-4" r="6" fill="none" stroke="var(--rg-fail)" '
+                      'stroke-width="2.2"/>'), "failing a rule"))
+    items.append((('<line x1="-6" y1="-4" x2="6" y2="-4" stroke="var(--rg-roof)" '
+                  'stroke-width="2.4"/>'), "roof"))
+    parts = []
+    for k, (mark, text) in enumerate(items):
+        parts.append(f'<g transform="translate({_n(x)} {_n(y + 16 * k)})">{mark}'
+                     f'{_text(10, 0, text)}</g>')
+    return '<g class="legend">' + "".join(parts) + "</g>"
+
+
+# --- per-layer latency and energy -------------------------------------------------------------
+
+def layer_bars_svg(head: RunRecord, base_latency_s: Mapping[str, float], chart_id: str, *,
+                   flagged: Collection[str] = (), max_layers: int = MAX_BAR_LAYERS) -> str:
+    """Latency (the base's as a tick) and energy by component of the slowest layers.
+
+    ``base_latency_s`` maps a head layer name to its matched base layer's latency;
+    rows of ``flagged`` layers are marked.
     """
     layers, left_out = bar_layers(head, max_layers)
-    rows = list(range(len(layers)))
-    with rc_context():
-        fig = new_figure(10.5, 1.3 + 0.24 * max(len(layers), 3), left_in=2.25, right_in=0.15,
-                         bottom_in=0.5, top_in=0.55, wspace=0.06)
-        left, right = fig.subplots(1, 2, sharey=True, width_ratios=(1, 1.35))
-        time_scale, time_unit = _scale([_finite(l.metrics, "latency_s") for l in layers],
-                                       units.TIME_UNITS)
-        bars = left.barh(rows, [_finite(l.metrics, "latency_s") / time_scale
-                                for l in layers], color=HEAD, height=0.68)
-        _number_bars(bars, f"{chart_id}-latency")
-        _draw_base_ticks(left, layers, base_latency_s, time_scale, chart_id)
-        left.set_xlabel(f"latency ({time_unit})")
-        _draw_energy(right, layers, chart_id)
-        _finish_bar_axes(left, right, layers)
+    row_px, top, label_w = 20.0, 64.0, 230.0
+    height = int(top + row_px * max(len(layers), 1) + 46)
+    panels = ((label_w, 250.0), (label_w + 290.0, 330.0))
+    body = [_flag_rows(layers, flagged, chart_id, top, row_px, 860.0)]
+    body += _row_labels(layers, flagged, top, row_px, label_w)
+    body += _latency_panel(layers, base_latency_s, chart_id, panels[0], top, row_px)
+    body += _energy_panel(layers, chart_id, panels[1], top, row_px)
     data: dict[str, object] = {"chart": "layers", "model": head.model, "target": head.target,
-                               "layers-shown": len(layers), "layers-left-out": left_out}
-    return fig, data
-
-
-def layer_bars_svg(head: RunRecord, base_latency_s: Mapping[str, float], chart_id: str,
-                   max_layers: int = MAX_BAR_LAYERS) -> str:
-    """The per-layer chart as an inline ``<svg>``."""
-    fig, data = layer_bars_figure(head, base_latency_s, chart_id, max_layers)
+                               "layers-shown": len(layers), "layers-left-out": left_out,
+                               "flagged": sum(1 for layer in layers if layer.name in flagged)}
     label = f"Latency and energy per layer of {head.model_name} on {head.target}"
-    return figure_to_svg(fig, chart_id, data, label)
+    return _svg(chart_id, 860, height, label, data, body)
 
 
-def _draw_base_ticks(ax: Any, layers: Sequence[LayerRecord], base_latency_s: Mapping[str, float],
-                     scale: float, chart_id: str) -> None:
-    marks = [(row, base_latency_s[l.name] / scale) for row, l in enumerate(layers)
-             if math.isfinite(base_latency_s.get(l.name, math.nan))]
+def _flag_rows(layers: Sequence[LayerRecord], flagged: Collection[str], chart_id: str,
+               top: float, row_px: float, width: float) -> str:
+    rects = "".join(
+        f'<rect class="flagged" data-layer="{_x(layer.name)}" x="0" '
+        f'y="{_n(top + row * row_px)}" width="{_n(width)}" height="{_n(row_px)}"/>'
+        for row, layer in enumerate(layers) if layer.name in flagged)
+    return (f'<g id="{chart_id}-flagged" fill="var(--rg-fail)" fill-opacity="0.12" '
+            f'stroke="var(--rg-fail)" stroke-width="1">{rects}</g>')
+
+
+def _row_labels(layers: Sequence[LayerRecord], flagged: Collection[str], top: float,
+                row_px: float, label_w: float) -> list[str]:
+    return [_text(label_w - 8, top + row * row_px + row_px * 0.7, shorten(layer.name, 34),
+                  anchor="end", css="flagtext" if layer.name in flagged else "")
+            for row, layer in enumerate(layers)]
+
+
+def _linear_axis(x0: float, width: float, top: float, bottom: float, ticks: Sequence[float],
+                 scale_max: float, title: str) -> list[str]:
+    out = ['<g stroke="var(--rg-grid)" stroke-width="1">']
+    for tick in ticks:
+        x = x0 + tick / scale_max * width
+        out.append(f'<line x1="{_n(x)}" y1="{_n(top)}" x2="{_n(x)}" y2="{_n(bottom)}"/>')
+    out.append("</g>")
+    out += [_text(x0 + t / scale_max * width, bottom + 14, f"{t:g}", anchor="middle",
+                  css="muted") for t in ticks]
+    out.append(_text(x0 + width / 2, bottom + 32, title, anchor="middle", css="axis"))
+    return out
+
+
+def _latency_panel(layers: Sequence[LayerRecord], base_latency_s: Mapping[str, float],
+                   chart_id: str, panel: tuple[float, float], top: float,
+                   row_px: float) -> list[str]:
+    x0, width = panel
+    values = [_finite(layer.metrics, "latency_s") for layer in layers]
+    bases = [base_latency_s.get(layer.name) for layer in layers]
+    scale, unit = ladder_unit([*values, *(b for b in bases if b is not None)], units.TIME_UNITS)
+    scaled = [v / scale for v in values]
+    ticks = nice_ticks(max([*scaled, *(b / scale for b in bases if b is not None), 0.0]))
+    bottom = top + row_px * max(len(layers), 1)
+    out = _linear_axis(x0, width, top, bottom, ticks, ticks[-1], f"latency ({unit})")
+    bars = "".join(
+        f'<rect id="{chart_id}-latency-{row}" x="{_n(x0)}" y="{_n(top + row * row_px + 3)}" '
+        f'width="{_n(v / ticks[-1] * width)}" height="{_n(row_px - 6)}"/>'
+        for row, v in enumerate(scaled))
+    out.append(f'<g fill="var(--rg-head)">{bars}</g>')
+    marks = "".join(
+        f'<line x1="{_n(x0 + b / scale / ticks[-1] * width)}" y1="{_n(top + row * row_px + 1)}" '
+        f'x2="{_n(x0 + b / scale / ticks[-1] * width)}" y2="{_n(top + (row + 1) * row_px - 1)}"/>'
+        for row, b in enumerate(bases) if b is not None and math.isfinite(b))
     if marks:
-        rows, values = zip(*marks)
-        ax.plot(values, rows, marker="|", markersize=13, markeredgewidth=2.2, color=BASE,
-                linestyle="none", gid=f"{chart_id}-base-latency", label="base")
-        ax.legend(loc="lower left", bbox_to_anchor=(0, 1.01), fontsize=7.5, frameon=False)
+        out.append(f'<g id="{chart_id}-base-latency" stroke="var(--rg-base)" '
+                   f'stroke-width="3">{marks}</g>')
+    out += _bar_legend(x0, top - 44, [("var(--rg-head)", "head latency")]
+                       + ([("var(--rg-base)", "base: tick mark")] if marks else []))
+    return out
 
 
-def _draw_energy(ax: Any, layers: Sequence[LayerRecord], chart_id: str) -> None:
-    totals = [sum(_finite(l.metrics, m) for m, _n, _c in ENERGY_PARTS) for l in layers]
-    scale, unit = _scale(totals, units.ENERGY_UNITS)
+def _energy_panel(layers: Sequence[LayerRecord], chart_id: str, panel: tuple[float, float],
+                  top: float, row_px: float) -> list[str]:
+    x0, width = panel
+    totals = [sum(_finite(layer.metrics, m) for m, _l, _c in ENERGY_PARTS) for layer in layers]
+    scale, unit = ladder_unit(totals, units.ENERGY_UNITS)
+    ticks = nice_ticks(max([t / scale for t in totals] + [0.0]))
+    bottom = top + row_px * max(len(layers), 1)
+    out = _linear_axis(x0, width, top, bottom, ticks, ticks[-1],
+                       f"energy per inference ({unit})")
     lefts = [0.0] * len(layers)
-    for metric, label, colour in ENERGY_PARTS:
-        widths = [_finite(l.metrics, metric) / scale for l in layers]
-        bars = ax.barh(range(len(layers)), widths, left=lefts, color=colour, height=0.68,
-                       label=label)
-        _number_bars(bars, f"{chart_id}-{metric.replace('_', '-')}")
-        lefts = [a + b for a, b in zip(lefts, widths)]
-    ax.set_xlabel(f"energy per inference ({unit})")
-    ax.legend(handles=legend_patches(ENERGY_PARTS), loc="lower left", bbox_to_anchor=(0, 1.01),
-              fontsize=7.5, ncols=3, frameon=False)
+    for metric, _label, prop in ENERGY_PARTS:
+        rects = []
+        for row, layer in enumerate(layers):
+            w = _finite(layer.metrics, metric) / scale / ticks[-1] * width
+            rects.append(f'<rect id="{chart_id}-{metric.replace("_", "-")}-{row}" '
+                         f'x="{_n(x0 + lefts[row])}" y="{_n(top + row * row_px + 3)}" '
+                         f'width="{_n(w)}" height="{_n(row_px - 6)}"/>')
+            lefts[row] += w
+        out.append(f'<g fill="var({prop})">{"".join(rects)}</g>')
+    out += _bar_legend(x0, top - 44, [(f"var({p})", label) for _m, label, p in ENERGY_PARTS])
+    return out
 
 
-def _number_bars(bars: Any, prefix: str) -> None:
-    """Give each bar its own id (``<prefix>-<row>``) so the SVG can be checked bar by bar."""
-    for row, patch in enumerate(bars.patches):
-        patch.set_gid(f"{prefix}-{row}")
+def _bar_legend(x: float, y: float, items: Sequence[tuple[str, str]],
+                per_row: int = 2) -> list[str]:
+    out = []
+    for k, (colour, text) in enumerate(items):
+        col, row = k % per_row, k // per_row
+        px, py = x + col * 150, y + row * 13
+        out.append(f'<rect x="{_n(px)}" y="{_n(py - 8)}" width="9" height="9" fill="{colour}"/>'
+                   + _text(px + 13, py, text, css="muted"))
+    return out
 
 
-def _finish_bar_axes(left: Any, right: Any, layers: Sequence[LayerRecord]) -> None:
-    left.set_yticks(range(len(layers)), [chart_label(l.name) for l in layers], fontsize=7.5)
-    left.set_ylim(len(layers) - 0.5 if layers else 0.5, -0.5)
-    for ax in (left, right):
-        ax.grid(True, axis="x", color=GRID, linewidth=0.7)
-        ax.set_axisbelow(True)
-        for side in ("top", "right"):
-            ax.spines[side].set_visible(False)
-
-
-def _scale(values: Sequence[float], units: Sequence[tuple[str, float]]) -> tuple[float, str]:
-    """The largest unit in which the biggest value is at least 1 (seconds, joules)."""
+def ladder_unit(values: Sequence[float], ladder: Sequence[tuple[str, float]]
+                ) -> tuple[float, str]:
+    """The largest unit of ``ladder`` in which the biggest value is at least 1."""
     biggest = max([v for v in values if math.isfinite(v)], default=0.0)
-    for unit, scale in units:
-        if biggest >= scale:
-            return scale, unit
-    return units[-1][1], units[-1][0]
+    for unit, size in ladder:
+        if biggest >= size:
+            return size, unit
+    return ladder[-1][1], ladder[-1][0]

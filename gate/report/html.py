@@ -1,13 +1,14 @@
-"""Self-contained HTML report: overview, then per model x target figures, charts, rules, layers.
+"""Self-contained HTML report: what blocks the merge, the overview, then one section per
+model x target in the same worst-first order (rules first, failing rules first; key
+figures; charts with the offending layers marked; layers).
 
-One file that opens offline (inline CSS, inline SVG charts, one small inline
-script allowed by a Content-Security-Policy hash; no fonts, images or scripts
-from anywhere). Every model-supplied string goes through ``html_escape``. The
-charts need matplotlib (``pip install 'roofgate[html]'``); without it the
-reporter fails with that hint before writing anything.
+One file that opens offline (inline CSS, inline SVG charts written directly,
+one small inline script allowed by a Content-Security-Policy hash; no fonts,
+images or scripts from anywhere). Every model-supplied string goes through
+``html_escape``.
 
-Only formats the ``GateResult``: every figure comes from the records, the
-verdicts and the diff.
+Only formats the ``GateResult``: every figure, status word and order comes from
+the result, the records and the metric catalogue.
 """
 
 from __future__ import annotations
@@ -20,28 +21,25 @@ from gate.records import LayerRecord, Metric, RunRecord
 from gate.report import charts
 from gate.report.html_assets import CONTENT_SECURITY_POLICY, CSS, SCRIPT
 from gate.report.html_tables import (
-    delta_class,
+    change_class,
     entry_anchor,
     layer_table,
     overview_table,
     rules_table,
+    status_chip,
 )
 from gate.report.text import html_escape
-from gate.result import FAIL, Entry, GateResult
+from gate.result import FAIL, Entry, GateResult, blocking_lines
 
-# Key figures per entry: (metric, label, True when lower is better).
-KEY_FIGURES: tuple[tuple[str, str, bool], ...] = (
-    ("latency_s", "latency per inference", True),
-    ("inferences_per_s", "inferences per second", False),
-    ("energy_j", "energy per inference", True),
-    ("utilization", "PE-array utilization", False),
-    ("peak_flops_share", "share of peak FLOP/s", False),
-    ("param_bytes", "parameters", True),
-    ("param_dram_bytes", "parameter DRAM traffic", True),
-    ("act_dram_bytes", "activation DRAM traffic", True),
-    ("coverage_work_share", "work modelled", False),
+# Key figures per entry (labels, units and directions from the metric catalogue).
+KEY_FIGURES: tuple[str, ...] = (
+    "latency_s", "inferences_per_s", "energy_j", "utilization", "peak_flops_share",
+    "param_bytes", "param_dram_bytes", "act_dram_bytes", "coverage_work_share",
 )
-_TITLES = {"evaluate": "model evaluation", "check": "model check", "audit": "model zoo audit"}
+_TITLES = {"evaluate": "model evaluation", "check": "pull-request check",
+           "audit": "model zoo audit", "diff": "model diff"}
+_HEADLINES = {"passed": "clear to merge", "failed": "merge blocked",
+              "incomplete": "incomplete: a model could not be analysed"}
 
 
 class HtmlReporter:
@@ -51,7 +49,6 @@ class HtmlReporter:
     help = "Write a self-contained HTML report with roofline and per-layer charts"
 
     def write(self, result: GateResult, stream: TextIO) -> None:
-        charts.require_matplotlib()  # fail with the install hint before any output
         stream.write(render(result))
 
 
@@ -60,10 +57,13 @@ REPORTER = HtmlReporter()
 
 def render(result: GateResult) -> str:
     """The whole page."""
-    parts = [_page_head(result), _summary(result), _notes(result.notes), _errors(result)]
+    ranked = result.ranked_entries
+    anchors = {(e.model, e.target): entry_anchor(k) for k, e in enumerate(ranked)}
+    parts = [_page_head(result), _summary(result), _blocking(result, anchors),
+             _notes(result.notes), _errors(result)]
     if result.entries:
         parts.append(overview_table(result))
-    for index, entry in enumerate(result.entries):
+    for index, entry in enumerate(ranked):
         parts.append(_entry_section(entry, index))
     parts.append(_footer())
     return "".join(parts)
@@ -83,24 +83,32 @@ def _page_head(result: GateResult) -> str:
 
 
 def _summary(result: GateResult) -> str:
-    failed = result.failed_verdicts
-    blocking = sum(1 for v in failed if v.blocks_merge)
-    code = result.exit_code
-    verdict = ("passed" if code == 0 else "failed: a blocking rule failed" if code == 1
-               else "failed: a model could not be analysed")
-    chip = "v-pass" if code == 0 else "v-fail"
+    counts = result.counts
+    chip = "v-pass" if result.status_word == "passed" else "v-fail"
     policies = ", ".join(f"<code>{html_escape(p)}</code>" for p in result.policies) or "none"
-    rules = sum(len(e.verdicts) for e in result.entries)
     return (
         "<header class=\"top\">\n<div class=\"brand\">roofgate</div>\n"
-        f"<h1>{_TITLES.get(result.command, html_escape(result.command)).capitalize()} "
-        f"<span class=\"chip {chip}\" id=\"overall\">{verdict}</span></h1>\n"
-        f"<p class=\"sub\">{len(result.entries)} model \u00d7 target runs, {rules} rule checks, "
-        f"{len(failed)} failed ({blocking} blocking), {len(result.errors)} models not analysed. "
-        f"Policies: {policies}.</p>\n"
+        f"<h1>{_TITLES.get(result.command, html_escape(result.command)).capitalize()}: "
+        f"<span class=\"chip {chip}\" id=\"overall\">{_HEADLINES[result.status_word]}</span>"
+        "</h1>\n"
+        f"<p class=\"sub\">{counts.entries} model \u00d7 target runs, {counts.rules} rule "
+        f"results: {counts.blocking} blocking, {counts.warnings} warnings, {counts.waived} "
+        f"waived; {counts.errors} models not analysed. Policies: {policies}.</p>\n"
         "<p class=\"sub\">Analytical estimates from the model file and the target profile, "
         "not device measurements: confirm on the device before release.</p>\n</header>\n"
     )
+
+
+def _blocking(result: GateResult, anchors: Mapping[tuple[str, str], str]) -> str:
+    """One sentence per blocking finding, each linking to its section."""
+    lines = blocking_lines(result)
+    if not lines:
+        return ""
+    items = "".join(f"<li><a href=\"#{anchors[(entry.model, entry.target)]}\">"
+                    f"{html_escape(sentence)}</a></li>" for entry, sentence in lines)
+    count = result.counts.blocking
+    return (f"<section class=\"card st-fail\" id=\"blocking\"><h2>What blocks the merge "
+            f"({count} rule{'s' if count != 1 else ''})</h2><ol>{items}</ol></section>\n")
 
 
 def _notes(notes: Sequence[str]) -> str:
@@ -122,8 +130,8 @@ def _errors(result: GateResult) -> str:
 
 
 def _footer() -> str:
-    return (f"<footer>Written by roofgate. Charts drawn with matplotlib; tables sort by any "
-            f"column when scripts run.</footer>\n</main>\n<script>{SCRIPT}</script>\n"
+    return (f"<footer>Written by roofgate. Tables sort by any column when scripts run."
+            f"</footer>\n</main>\n<script>{SCRIPT}</script>\n"
             "</body>\n</html>\n")
 
 
@@ -133,28 +141,34 @@ def _entry_section(entry: Entry, index: int) -> str:
     anchor = entry_anchor(index)
     run = entry.head or entry.base
     name = run.model_name if run else entry.model
-    status = "fail" if entry.status == FAIL else "pass"
+    word = entry.status_word
+    flagged = flagged_layers(entry)
     parts = [(
-        f"<section class=\"card st-{status} entry\" id=\"{anchor}\" "
+        f"<section class=\"card st-{word} entry\" id=\"{anchor}\" data-status=\"{word}\" "
         f"data-model=\"{html_escape(entry.model)}\" data-target=\"{html_escape(entry.target)}\">\n"
         f"<h2><span class=\"model\">{html_escape(name)}</span> on "
-        f"<code>{html_escape(entry.target)}</code> "
-        f"<span class=\"chip v-{status}\">{status}</span></h2>\n"
+        f"<code>{html_escape(entry.target)}</code> {status_chip(word)}</h2>\n"
         f"<p class=\"sub\">model file <code class=\"name\">{html_escape(entry.model)}</code>"
         f"{_precision(entry.head)}{_baseline_note(entry)}</p>\n")
     ]
+    parts.append("<h3>Rules</h3>\n" + rules_table(entry))
     if entry.head is None:
-        parts.append("<p class=\"note\">This model was removed in this change; its rules are "
-                     "listed below.</p>\n")
+        parts.append("<p class=\"note\">This model was removed in this change: nothing to "
+                     "gate.</p>\n")
     else:
         parts.append(_key_figures(entry.head, entry.base))
         parts.append(_coverage(entry.head))
-        parts.append(_charts(entry, anchor))
-    parts.append("<h3>Rules</h3>\n" + rules_table(entry.verdicts))
+        parts.append(_charts(entry, anchor, flagged))
     if entry.head is not None or entry.diff is not None:
-        parts.append("<h3>Layers</h3>\n" + layer_table(entry))
+        parts.append("<h3>Layers</h3>\n" + layer_table(entry, flagged))
     parts.append("</section>\n")
     return "".join(parts)
+
+
+def flagged_layers(entry: Entry) -> frozenset[str]:
+    """The layers this entry's failing findings name (marked in both charts and the table)."""
+    return frozenset(f.layer for v in entry.verdicts if v.status == FAIL for f in v.failing
+                     if f.layer is not None)
 
 
 def _precision(head: RunRecord | None) -> str:
@@ -169,20 +183,21 @@ def _baseline_note(entry: Entry) -> str:
 
 def _key_figures(head: RunRecord, base: RunRecord | None) -> str:
     cells = []
-    for metric, label, lower_better in KEY_FIGURES:
+    for metric in KEY_FIGURES:
         if metric not in head.metrics:
             continue
         value = head.metrics[metric]
-        delta = ""
+        change = ""
         if base is not None and metric in base.metrics:
-            delta = _delta_span(metric, base.metrics[metric], value, lower_better)
-        cells.append(f"<div class=\"figure\"><div class=\"k\">{label}</div>"
-                     f"<div class=\"v\">{html_escape(metrics.fmt(metric, value))}</div>{delta}</div>")
+            change = _change_div(metric, base.metrics[metric], value)
+        cells.append(f"<div class=\"figure\"><div class=\"k\">{metrics.label(metric)}</div>"
+                     f"<div class=\"v\">{html_escape(metrics.fmt(metric, value))}</div>{change}"
+                     "</div>")
     return f"<div class=\"figures\">{''.join(cells)}</div>\n"
 
 
-def _delta_span(metric: str, base: Metric, head: Metric, lower_better: bool) -> str:
-    css = delta_class(base, head, lower_better, metric)
+def _change_div(metric: str, base: Metric, head: Metric) -> str:
+    css = change_class(metric, base, head)
     return (f"<div class=\"d {css}\">{html_escape(metrics.fmt_change(metric, base, head))} "
             f"<span class=\"same\">(base {html_escape(metrics.fmt(metric, base))})</span></div>")
 
@@ -198,12 +213,16 @@ def _coverage(head: RunRecord) -> str:
     return "\n".join(lines) + ("\n" if lines else "")
 
 
-def _charts(entry: Entry, anchor: str) -> str:
+def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     assert entry.head is not None
     head, base = entry.head, entry.base
-    roof = charts.roofline_svg(head, base, f"{anchor}-roofline")
+    roof = charts.roofline_svg(head, base, f"{anchor}-roofline", flagged=flagged)
     sel = charts.roof_points(head)
-    caption = [f"{_layers(len(sel.points))} plotted, marker area by share of latency"]
+    caption = [(f"{_layers(len(sel.points))} plotted at the FLOP/s each achieves, marker area "
+               "by share of latency; the roof is what the target attains at "
+               f"{html_escape(head.precision)}")]
+    if flagged:
+        caption.append("ringed in red: layers a failing rule names")
     if sel.left_out:
         caption.append(f"{_layers(sel.left_out)} with the smallest latency left out")
     if sel.unplottable:
@@ -218,10 +237,13 @@ def _charts(entry: Entry, anchor: str) -> str:
                    "so a layer whose activations stay in on-chip buffers can sit above the "
                    "DRAM bandwidth slope")
     shown, left_out = charts.bar_layers(head)
-    bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers")
+    bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers",
+                                 flagged=flagged)
     bar_caption = f"the {_layers(len(shown))} with the largest latency"
     if left_out:
         bar_caption += f"; {_layers(left_out)} more in the table below"
+    if flagged:
+        bar_caption += "; rows shaded red are named by a failing rule"
     return (f"<h3>Roofline</h3>\n<figure>{roof}<figcaption>{'; '.join(caption)}."
             f"</figcaption></figure>\n<h3>Latency and energy per layer</h3>\n"
             f"<figure>{bars}<figcaption>{bar_caption.capitalize()}; energy split by "

@@ -1,7 +1,8 @@
 """The HTML report's inline style sheet and script (no external files, fonts or scripts).
 
 Two palettes of our own, picked by ``prefers-color-scheme``; the charts use the
-same custom properties (``--rg-*``), so they follow the theme too. The script
+same custom properties (``--rg-*``), so they follow the theme too. The base and
+head markers have colours no energy component uses. The script
 only makes tables sortable; without it every table is a plain table.
 """
 
@@ -15,14 +16,14 @@ CSS = """
 --rg-paper:#f7f5f0;--rg-panel:#fffdf8;--rg-ink:#1d232b;--rg-muted:#5b6570;--rg-grid:#e3dfd5;
 --rg-line:#d6d0c3;--rg-head:#1f7a8c;--rg-base:#c2703d;--rg-roof:#3d3a7a;--rg-ridge:#b8336a;
 --rg-pass:#2f7d4f;--rg-fail:#b3261e;--rg-warn:#8f5b00;--rg-waived:#6b5ca5;--rg-better:#2f7d4f;
---rg-worse:#b3261e;--rg-e-mac:#1f7a8c;--rg-e-buffer:#7fb7be;--rg-e-noc:#d9a441;
---rg-e-dram-param:#c2703d;--rg-e-dram-act:#8c4a6b;--rg-e-static:#9aa0a6}
+--rg-worse:#b3261e;--rg-e-mac:#6a4c93;--rg-e-buffer:#8ab17d;--rg-e-noc:#e0b84c;
+--rg-e-dram-param:#4a6fa5;--rg-e-dram-act:#b56576;--rg-e-static:#9aa0a6}
 @media (prefers-color-scheme:dark){:root{
 --rg-paper:#14171b;--rg-panel:#1b1f24;--rg-ink:#e8e4dc;--rg-muted:#9aa3ad;--rg-grid:#2c3239;
 --rg-line:#353c44;--rg-head:#5cc2d3;--rg-base:#eb9a63;--rg-roof:#aaa5f2;--rg-ridge:#f27aa9;
 --rg-pass:#6fcf97;--rg-fail:#ff8a80;--rg-warn:#f2c14e;--rg-waived:#b6a8f0;--rg-better:#6fcf97;
---rg-worse:#ff8a80;--rg-e-mac:#5cc2d3;--rg-e-buffer:#2f7f8a;--rg-e-noc:#e8b95a;
---rg-e-dram-param:#eb9a63;--rg-e-dram-act:#c47aa0;--rg-e-static:#6f7780}}
+--rg-worse:#ff8a80;--rg-e-mac:#a98bd6;--rg-e-buffer:#9cc98f;--rg-e-noc:#e8c878;
+--rg-e-dram-param:#7f9fd4;--rg-e-dram-act:#d891a1;--rg-e-static:#6f7780}}
 *{box-sizing:border-box}
 body{margin:0;background:var(--rg-paper);color:var(--rg-ink);
 font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,"Noto Sans",sans-serif}
@@ -50,8 +51,12 @@ margin:.8rem 0}
 .figure .d{font-size:.78rem}
 figure{margin:.6rem 0 1rem}svg.chart{width:100%;height:auto;display:block}
 svg.chart[data-chart=roofline]{max-width:940px}
-.table-wrap{overflow-x:auto;max-height:34rem;overflow-y:auto;border:1px solid var(--rg-line);
-border-radius:8px}
+.table-wrap{overflow-x:auto;border:1px solid var(--rg-line);border-radius:8px}
+.table-wrap.scroll{max-height:34rem;overflow-y:auto}
+tr.flagged td{background:color-mix(in srgb,var(--rg-fail) 12%,transparent)}
+tr.finding.failing td{color:var(--rg-ink)}
+section.card.st-warn{border-left-color:var(--rg-warn)}
+#blocking ol{margin:.4rem 0;padding-left:1.4rem}#blocking li{margin:.25rem 0}
 table{border-collapse:collapse;width:100%;font-size:.84rem}
 th,td{padding:.3rem .55rem;border-bottom:1px solid var(--rg-grid);text-align:left;
 vertical-align:top}

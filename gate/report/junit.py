@@ -21,6 +21,7 @@ timestamps or host names are written, so the output is a pure function of the re
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import TextIO
 
 from junit_xml import TestCase, TestSuite, to_xml_report_string
@@ -31,6 +32,7 @@ from gate.result import (
     FAIL,
     NOT_GATED,
     WAIVED,
+    Blocker,
     Entry,
     Finding,
     GateResult,
@@ -61,7 +63,7 @@ REPORTER = JunitReporter()
 
 def render(result: GateResult) -> str:
     """The JUnit XML text of ``result``."""
-    suites = [_entry_suite(entry) for entry in result.entries]
+    suites = [_entry_suite(entry) for entry in result.ranked_entries]  # worst first
     suites.extend(_error_suite(error, result.allow_errors) for error in result.errors)
     suites.extend(_ungated_suite(item) for item in result.ungated)
     if not suites:
@@ -71,7 +73,7 @@ def render(result: GateResult) -> str:
 
 def _entry_suite(entry: Entry) -> TestSuite:
     classname = _x(f"{entry.model} on {entry.target}")
-    cases = [_verdict_case(verdict, classname) for verdict in entry.verdicts]
+    cases = [_verdict_case(verdict, classname) for verdict in entry.ranked_verdicts]
     if not cases:
         case = TestCase(_x("analysed"), classname=classname)
         case.stdout = _x(_no_rules_text(entry), multiline=True)
@@ -83,7 +85,7 @@ def _entry_suite(entry: Entry) -> TestSuite:
 
 def _verdict_case(verdict: Verdict, classname: str) -> TestCase:
     case = TestCase(_x(verdict.rule_id), classname=classname)
-    failing = [f for f in verdict.findings if f.status == FAIL]
+    failing = verdict.failing
     if verdict.status == FAIL and verdict.severity == "error":
         case.add_failure_info(message=_x(_failure_message(verdict, failing)),
                               output=_details(verdict),
@@ -96,16 +98,13 @@ def _verdict_case(verdict: Verdict, classname: str) -> TestCase:
     return case
 
 
-def _failure_message(verdict: Verdict, failing: list[Finding]) -> str:
-    """One line: the rule, the first finding (layer, metric, value, limit) and the remedy."""
-    if not failing:
-        return f"{verdict.rule_id}: {verdict.summary or 'failed'}; {verdict.remedy or _NO_REMEDY}"
-    first = failing[0]
-    more = f" (and {len(failing) - 1} more)" if len(failing) > 1 else ""
-    text = first.message or _finding_text(first)
-    if verdict.remedy and verdict.remedy not in text:
-        text = f"{text}; remedy: {verdict.remedy}"
-    return f"{verdict.rule_id}: {text}{more}"
+def _failure_message(verdict: Verdict, failing: Sequence[Finding]) -> str:
+    """One sentence: model, target, rule, the worst finding (layer, value against the limit)
+    and the remedy, as every report words it; then how many more places fail."""
+    first = Blocker(verdict, failing[0] if failing else None)
+    more = f" {len(failing) - 1} more place{'s' if len(failing) != 2 else ''} fail." \
+        if len(failing) > 1 else ""
+    return first.sentence() + more
 
 
 _NO_REMEDY = "see the rule's description in the policy file"
@@ -128,8 +127,9 @@ def _details(verdict: Verdict) -> str:
               f"{verdict.summary or verdict.status}")]
     if verdict.description:
         lines.append(f"rule: {verdict.description}")
-    for finding in verdict.findings[:MAX_LISTED_FINDINGS]:
-        line = f"- {finding.message or _finding_text(finding)}"
+    ordered = [*verdict.failing, *(f for f in verdict.findings if f.status != FAIL)]
+    for finding in ordered[:MAX_LISTED_FINDINGS]:
+        line = f"- {verdict.text_of(finding) or _finding_text(finding)}"
         if finding.status == WAIVED:
             line += f" [waived: {finding.waiver_reason or 'no reason given'}"
             line += f", expires {finding.waiver_expires}]" if finding.waiver_expires else "]"
@@ -137,19 +137,23 @@ def _details(verdict: Verdict) -> str:
     hidden = len(verdict.findings) - MAX_LISTED_FINDINGS
     if hidden > 0:
         lines.append(f"... and {hidden} more findings (see the JSON report)")
-    lines.append(f"remedy: {verdict.remedy or _NO_REMEDY}")
+    lines.append(f"fix: {verdict.remedy or _NO_REMEDY}")
     return "\n".join(_x(line) for line in lines)
 
 
 def _finding_text(finding: Finding) -> str:
     where = f"layer '{finding.layer}'" if finding.layer is not None else "model"
-    return (f"{where}: {finding.metric} = {metrics.fmt(finding.metric, finding.value)}, "
-            f"limit {metrics.fmt(finding.metric, finding.limit)}")
+    return (f"{where}: {metrics.label(finding.metric)} "
+            f"{metrics.fmt(finding.metric, finding.value)}, limit "
+            f"{metrics.fmt(finding.metric, finding.limit)}")
 
 
 def _properties(entry: Entry, warnings: int) -> dict[str, str]:
-    props = {"model": _x(entry.model), "target": _x(entry.target), "status": entry.status,
-             "warnings": str(warnings), "rules_applied": _x(", ".join(entry.rules_applied))}
+    props = {"model": _x(entry.model), "target": _x(entry.target),
+             "status": entry.status_word, "warnings": str(warnings),
+             "rules_applied": _x(", ".join(entry.rules_applied))}
+    if entry.worst_layer is not None:
+        props["worst_layer"] = _x(entry.worst_layer)
     if entry.head is None:
         props["model_removed"] = "true"
         return props

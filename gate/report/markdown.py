@@ -1,20 +1,27 @@
-"""Markdown for a pull-request comment: verdict, summary table, a collapsible section per model.
+"""Markdown for a pull-request comment: what blocks the merge first, then one block per model.
 
-Layout (top to bottom): the hidden marker ``<!-- roofgate-report -->`` (the
-pull-request workflow finds and updates its comment by it), a verdict line, a
-red line per model that could not be analysed, run notes, a summary table
-(model, target, key metrics, change vs baseline, status), then one
-``<details>`` section per model that has something to show (failed rules,
-warnings, waivers, the most changed layers, unmodelled ops).
+Layout (roofgate's own), top to bottom:
+
+1. the hidden marker ``<!-- roofgate-report -->`` (the pull-request workflow finds
+   and updates its comment by it) and a plain-words headline: ``merge blocked``,
+   ``clear to merge`` or ``incomplete``;
+2. **Blocking**: one numbered sentence per blocking finding (model, target, rule,
+   layer, value against the limit; the remedy once per rule), then warnings in
+   one line, unanalysable models, notes and a line of counts;
+3. a six-column overview, worst first: status, model, target, latency, the
+   latency change against the base in words, the worst layer;
+4. a block per model x target that failed or warned, always open: its totals
+   against the base, its rule results (blocking first) and its largest layer
+   changes (ranked by the absolute latency change);
+5. the blocks of passing and removed models folded into one ``<details>``.
 
 Code hosts cap a comment at 65,536 characters. The report is rendered at
-decreasing levels of detail until it fits ``budget`` (``DEFAULT_BUDGET``
-leaves room for text a workflow adds around it); rows are ordered most
-important first (blocking failures, then warnings, then the largest changes)
-and every trimmed table says how many rows it left out.
+decreasing levels of detail until it fits ``budget`` (``DEFAULT_BUDGET`` leaves
+room for text a workflow adds around it); the blocking sentences come first and
+stay longest, and every trimmed part says how much it left out.
 
-Every model-supplied string (paths, node names, messages) goes through
-``md_escape`` (or ``_summary_text`` inside the HTML ``<summary>``).
+Every model-supplied string goes through ``md_escape``; the ``<summary>`` of the
+folded part holds no model-supplied text.
 """
 
 from __future__ import annotations
@@ -26,16 +33,20 @@ from typing import TextIO
 from gate import metrics
 from gate.diff import ranked_changes
 from gate.records import LayerRecord, RunRecord
-from gate.report.text import html_escape, md_escape, shorten
+from gate.report.text import md_escape, shorten
 from gate.result import (
     FAIL,
     NOT_GATED,
+    PASS,
+    REMOVED,
     WAIVED,
+    WARN,
     Entry,
     Finding,
     GateResult,
     LayerChange,
     Verdict,
+    blocking_sentences,
 )
 
 MARKER = "<!-- roofgate-report -->"
@@ -43,42 +54,37 @@ COMMENT_LIMIT_CHARS = 65_536
 DEFAULT_BUDGET = 60_000
 NAME_CHARS = 120  # model-supplied names are shortened to this in tables
 
-# (metric, column title) of the summary table.
-SUMMARY_METRICS = (("latency_s", "Latency"), ("utilization", "PE util."),
-                   ("param_bytes", "Params"), ("param_dram_bytes", "Param DRAM"),
-                   ("energy_j", "Energy"))
-DELTA_METRICS = (("latency_s", "Latency"), ("param_bytes", "Params"), ("energy_j", "Energy"))
-LAYER_METRICS = (("latency_s", "Latency"), ("macs", "MACs"), ("param_bytes", "Params"),
-                 ("utilization", "PE util."))
-# A changed layer whose shown columns are all "=" names up to two metrics that did change,
-# picked in this order (then by name), in its Change cell.
-OTHER_METRICS_FIRST = ("energy_j", "act_dram_bytes", "param_dram_bytes", "input_bytes",
-                       "output_bytes", "flops", "cycles", "param_count")
-
-FAIL_MARK, WARN_MARK, PASS_MARK, ERROR_MARK = "\u274c", "\u26a0\ufe0f", "\u2705", "\U0001f6d1"
+HEADLINES = {"passed": "clear to merge", "failed": "merge blocked",
+             "incomplete": "incomplete: a model could not be analysed"}
+# How a model x target's status reads in the overview (strong when it needs attention).
+STATUS_CELLS = {FAIL: "**fail**", WARN: "**warn**", PASS: "pass", REMOVED: "removed"}
+OUTCOME_CELLS = {"block": "blocks merge", "warn": "warning", WAIVED: "waived", PASS: "passed"}
+# The figures of a block's totals line, in this order.
+TOTALS = metrics.KEY_METRICS
 
 
 @dataclass(frozen=True)
 class _Limits:
     """How much detail one rendering level shows (None = everything)."""
 
+    blocking: int | None  # blocking sentences
     summary_rows: int | None
     errors: int | None
-    sections: int | None
-    findings: int  # rows per findings table
-    layers: int  # changed layers per model x target
+    blocks: int | None  # open blocks of failing or warning entries
+    folded: int | None  # folded blocks of passing entries
+    findings: int  # rule-result rows per block
+    layers: int  # changed layers per block
 
 
 _LEVELS = (
-    _Limits(None, None, None, 30, 10),
-    _Limits(None, None, None, 10, 5),
-    _Limits(None, 100, 40, 5, 3),
-    _Limits(None, 100, 30, 5, 3),
-    _Limits(None, 100, 25, 3, 2),
-    _Limits(200, 50, 20, 3, 0),
-    _Limits(100, 20, 10, 1, 0),
-    _Limits(40, 10, 0, 0, 0),
-    _Limits(10, 3, 0, 0, 0),
+    _Limits(None, None, None, None, None, 30, 8),
+    _Limits(None, None, None, None, 40, 10, 5),
+    _Limits(None, None, 100, 40, 10, 5, 3),
+    _Limits(60, None, 100, 25, 0, 5, 2),
+    _Limits(40, 200, 50, 15, 0, 3, 0),
+    _Limits(30, 100, 20, 8, 0, 1, 0),
+    _Limits(20, 40, 10, 0, 0, 0, 0),
+    _Limits(10, 10, 3, 0, 0, 0, 0),
 )
 
 
@@ -90,7 +96,7 @@ class _Render:
     lines: list[str] = field(default_factory=list)
 
     def trimmed(self, shown: int, total: int, what: str) -> None:
-        """Note that ``total - shown`` rows of ``what`` were left out."""
+        """Note that ``total - shown`` of ``what`` were left out."""
         if total > shown:
             self.left_out += total - shown
             why = " to fit the comment" if self.squeezed else ""
@@ -126,16 +132,18 @@ def comment_size(text: str) -> int:
 
 def _render(result: GateResult, limits: _Limits, *, squeezed: bool = False) -> str:
     out = _Render(limits, squeezed)
-    out.lines += [MARKER, "", _verdict_line(result), ""]
-    out.lines.append("_Analytical estimates from the model graph and target profiles, "
-                     "not device measurements._")
+    out.lines += [MARKER, "", _headline(result)]
+    _blocking(result, out)
+    _warnings_line(result, out)
     _errors(result, out)
     _ungated(result, out)
     for note in result.notes:
         out.lines.append(f"\n> {md_escape(note)}")
+    out.lines.append(f"\n_{_counts_line(result)} Analytical estimates from the model graph "
+                     "and target profiles, not device measurements._")
     if result.entries:
-        _summary_table(result, out)
-        _sections(result, out)
+        _overview(result, out)
+        _blocks(result, out)
     elif not result.errors:
         out.lines.append("\nNo model x target to gate in this run.")
     if out.left_out and squeezed:
@@ -144,163 +152,144 @@ def _render(result: GateResult, limits: _Limits, *, squeezed: bool = False) -> s
     return "\n".join(out.lines) + "\n"
 
 
-def _verdict_line(result: GateResult) -> str:
-    pairs = len(result.entries)
-    blocking = sum(1 for e in result.entries for v in e.verdicts if v.blocks_merge)
-    warnings = sum(1 for e in result.entries for v in e.verdicts
-                   if v.status == FAIL and not v.blocks_merge)
-    parts = [f"{pairs} model x target pair{'s' if pairs != 1 else ''} checked"]
-    if blocking:
-        parts.append(f"{blocking} blocking rule failure{'s' if blocking != 1 else ''}")
-    if warnings:
-        parts.append(f"{warnings} warning{'s' if warnings != 1 else ''}")
-    if result.errors:
-        parts.append(f"{len(result.errors)} model{'s' if len(result.errors) != 1 else ''} "
-                     "could not be analysed")
-    if result.not_gated:
-        count = len(result.not_gated)
-        parts.append(f"{count} changed model{'s' if count != 1 else ''} not gated")
-    detail = ", ".join(parts)
-    if result.errors and not result.allow_errors:
-        return f"## {ERROR_MARK} roofgate: could not check every model ({detail})"
-    if blocking or result.not_gated:
-        return f"## {FAIL_MARK} roofgate: failed ({detail})"
+def _headline(result: GateResult) -> str:
     if not result.entries and not result.errors:
-        return f"## {PASS_MARK} roofgate: nothing to check"
-    mark = WARN_MARK if warnings or result.errors else PASS_MARK
-    return f"## {mark} roofgate: passed ({detail})"
+        return f"## roofgate {md_escape(result.command)}: nothing to check"
+    return f"## roofgate {md_escape(result.command)}: {HEADLINES[result.status_word]}"
+
+
+def _blocking(result: GateResult, out: _Render) -> None:
+    sentences = blocking_sentences(result)
+    if not sentences:
+        return
+    count = result.counts.blocking
+    limit = out.limits.blocking
+    shown = sentences if limit is None else sentences[:limit]
+    out.lines += ["", f"**Blocking: {count} rule{'s' if count != 1 else ''}**", ""]
+    out.lines += [f"{k}. {md_escape(shorten(s, 700))}" for k, s in enumerate(shown, 1)]
+    out.trimmed(len(shown), len(sentences), "blocking lines")
+
+
+def _warnings_line(result: GateResult, out: _Render) -> None:
+    warned = [v for e in result.ranked_entries for v in e.verdicts
+              if v.status == FAIL and not v.blocks_merge]
+    if not warned:
+        return
+    names = "; ".join(f"{md_escape(v.rule_id)} on {md_escape(shorten(v.model, NAME_CHARS))} "
+                      f"({md_escape(v.target)})" for v in warned[:5])
+    more = f"; and {len(warned) - 5} more" if len(warned) > 5 else ""
+    out.lines.append(f"\n**Warnings** (do not block): {names}{more}.")
+
+
+def _counts_line(result: GateResult) -> str:
+    c = result.counts
+    pairs = f"{c.entries} model x target pair{'s' if c.entries != 1 else ''} checked"
+    parts = [pairs, f"{c.blocking} blocking", f"{c.warnings} warning{'s' if c.warnings != 1 else ''}",
+             f"{c.waived} waived"]
+    if c.errors:
+        parts.append(f"{c.errors} not analysed")
+    return " \u00b7 ".join(parts) + "."
 
 
 def _errors(result: GateResult, out: _Render) -> None:
     errors = result.errors
-    shown = errors if out.limits.errors is None else errors[:out.limits.errors]
     if not errors:
         return
+    shown = errors if out.limits.errors is None else errors[:out.limits.errors]
     allowed = " (let through by the policy)" if result.allow_errors else ""
     out.lines.append("")
     for error in shown:
-        out.lines.append(f"- {ERROR_MARK} **could not analyse** "
-                         f"{md_escape(shorten(error.model, 200))}{allowed}: "
-                         f"{md_escape(shorten(error.message, 400))}")
+        out.lines.append(f"- **could not analyse** {md_escape(shorten(error.model, 200))}"
+                         f"{allowed}: {md_escape(shorten(error.message, 400))}")
     out.trimmed(len(shown), len(errors), "unanalysable models")
 
 
 def _ungated(result: GateResult, out: _Render) -> None:
-    """Every .onnx file no model group covers: not gated (fails) or skipped on purpose."""
+    """Every .onnx file no model group covers: not gated (fails the run) or skipped on
+    purpose."""
     if not result.ungated:
         return
     out.lines.append("")
     for item in result.ungated:
-        mark = "skipped" if item.skipped else f"{FAIL_MARK} **not gated** ({NOT_GATED})"
-        out.lines.append(f"- {mark} {md_escape(shorten(item.model, 200))}: "
+        mark = "skipped" if item.skipped else f"**not gated** ({NOT_GATED})"
+        out.lines.append(f"- {mark}: {md_escape(shorten(item.model, 200))}: "
                          f"{md_escape(shorten(item.reason, 300))}")
 
 
-def _entry_rank(entry: Entry) -> tuple[int, float, str, str]:
-    """Blocking failures first, then warnings, then the largest latency change."""
-    if entry.status == FAIL:
-        rank = 0
-    elif any(v.status == FAIL for v in entry.verdicts):
-        rank = 1
-    else:
-        rank = 2
-    change = 0.0
-    if entry.diff is not None and "latency_s" in entry.diff.totals:
-        base, head = entry.diff.totals["latency_s"]
-        change = (abs(float(head) - float(base)) / float(base)
-                  if base and head is not None else 0.0)
-    return (rank, -change, entry.model, entry.target)
+# --- overview ---------------------------------------------------------------------------
 
-
-def _status_cell(entry: Entry) -> str:
-    if entry.head is None:
-        return "removed"
-    if entry.status == FAIL:
-        return f"{FAIL_MARK} fail"
-    if any(v.status == FAIL for v in entry.verdicts):
-        return f"{WARN_MARK} warn"
-    return f"{PASS_MARK} pass"
-
-
-def _summary_table(result: GateResult, out: _Render) -> None:
-    entries = sorted(result.entries, key=_entry_rank)
+def _overview(result: GateResult, out: _Render) -> None:
+    entries = result.ranked_entries
     limit = out.limits.summary_rows
     shown = entries if limit is None else entries[:limit]
-    titles = ["Model", "Target", *(t for _, t in SUMMARY_METRICS),
-              *(f"\u0394 {t}" for _, t in DELTA_METRICS), "Status"]
-    out.lines += ["", "| " + " | ".join(titles) + " |", "|" + "---|" * len(titles)]
-    for entry in shown:
-        out.lines.append("| " + " | ".join(_summary_row(entry)) + " |")
-    out.trimmed(len(shown), len(entries), "summary rows")
+    out.lines += ["", "| Status | Model | Target | Latency | Latency against base | Worst layer |",
+                  "|---|---|---|---|---|---|"]
+    out.lines += ["| " + " | ".join(_overview_row(e)) + " |" for e in shown]
+    out.trimmed(len(shown), len(entries), "overview rows")
 
 
-def _summary_row(entry: Entry) -> list[str]:
-    cells = [md_escape(shorten(entry.model, NAME_CHARS)), md_escape(entry.target)]
+def _overview_row(entry: Entry) -> list[str]:
     record = entry.head
-    for metric, _ in SUMMARY_METRICS:
-        cells.append(metrics.fmt(metric, record.metrics[metric])
-                     if record is not None and metric in record.metrics else "")
-    for metric, _ in DELTA_METRICS:
-        cells.append(_total_delta(entry, metric))
-    cells.append(_status_cell(entry))
-    return cells
+    latency = metrics.fmt("latency_s", record.metrics.get("latency_s")) if record else ""
+    worst = entry.worst_layer
+    return [STATUS_CELLS[entry.status_word], md_escape(shorten(entry.model, NAME_CHARS)),
+            md_escape(entry.target), latency, _total_change(entry, "latency_s"),
+            md_escape(shorten(worst, NAME_CHARS)) if worst else ""]
 
 
-def _total_delta(entry: Entry, metric: str) -> str:
+def _total_change(entry: Entry, metric: str) -> str:
     if entry.head is None:
-        return "removed"
+        return "model removed"
     if entry.base is None or entry.diff is None:
-        return "new"
+        return "new, no base"
     if metric not in entry.diff.totals:
         return ""
-    base, head = entry.diff.totals[metric]
-    return metrics.fmt_change(metric, base, head)
+    return metrics.fmt_change(metric, *entry.diff.totals[metric])
 
 
-# --- per-model sections ---------------------------------------------------------------
+# --- per model x target blocks ------------------------------------------------------------
 
-def _sections(result: GateResult, out: _Render) -> None:
-    by_model: dict[str, list[Entry]] = {}
-    for entry in sorted(result.entries, key=_entry_rank):
-        if _has_details(entry):
-            by_model.setdefault(entry.model, []).append(entry)
-    models = list(by_model)
-    limit = out.limits.sections
-    shown = models if limit is None else models[:limit]
-    for model in shown:
-        _model_section(model, by_model[model], out)
-    out.trimmed(len(shown), len(models), "model sections")
+def _blocks(result: GateResult, out: _Render) -> None:
+    entries = [e for e in result.ranked_entries if _has_details(e)]
+    open_ = [e for e in entries if e.status_word in (FAIL, WARN)]
+    folded = [e for e in entries if e.status_word not in (FAIL, WARN)]
+    limit = out.limits.blocks
+    shown = open_ if limit is None else open_[:limit]
+    for entry in shown:
+        _block(entry, out)
+    out.trimmed(len(shown), len(open_), "failing or warning models")
+    limit = out.limits.folded
+    shown = folded if limit is None else folded[:limit]
+    if shown:
+        count = len(folded)
+        out.lines += ["", "<details>", (f"<summary>{count} passing or removed model x target "
+                      f"pair{'s' if count != 1 else ''}: totals, rules and layer changes"
+                      "</summary>")]
+        for entry in shown:
+            _block(entry, out)
+        out.lines += ["", "</details>"]
+    out.trimmed(len(shown), len(folded), "passing models")
 
 
 def _has_details(entry: Entry) -> bool:
-    return bool(any(v.status != "pass" for v in entry.verdicts)
+    return bool(any(v.status != PASS for v in entry.verdicts)
                 or (entry.diff and any(c.status != "unchanged" for c in entry.diff.layers))
-                or (entry.head and (entry.head.unmodelled or entry.head.notes)))
+                or (entry.head and (entry.head.unmodelled or entry.head.notes))
+                or entry.head is None)
 
 
-def _model_section(model: str, entries: list[Entry], out: _Render) -> None:
-    worst = _status_cell(entries[0])
-    out.lines += ["", "<details>", (f"<summary>{_summary_text(shorten(model, 200))}: "
-                   f"{html_escape(worst)}</summary>")]
-    for entry in entries:
-        out.lines += ["", f"#### {md_escape(entry.target)}"]
-        if entry.head is not None:
-            out.lines.append(f"\nRules applied: {md_escape(', '.join(entry.rules_applied))}")
-        _notes(entry, out)
-        _failed_rules(entry, out)
-        _waived_rules(entry, out)
-        _changed_layers(entry, out)
-    out.lines += ["", "</details>"]
-
-
-def _summary_text(text: str) -> str:
-    """Text for inside ``<summary>``: HTML-escaped, and no @mention."""
-    return html_escape(text).replace("@", "@&#8203;")
+def _block(entry: Entry, out: _Render) -> None:
+    out.lines += ["", (f"### {entry.status_word} \u00b7 {md_escape(shorten(entry.model, 200))} "
+                      f"on {md_escape(entry.target)}")]
+    _notes(entry, out)
+    _totals(entry, out)
+    _rule_results(entry, out)
+    _layer_changes(entry, out)
 
 
 def _notes(entry: Entry, out: _Render) -> None:
     if entry.head is None:
-        out.lines.append("\nThe model was removed in this change.")
+        out.lines.append("\nThe model was removed in this change: nothing to gate.")
         return
     for unmodelled in entry.head.unmodelled:
         out.lines.append(f"\n- not modelled: {unmodelled.count} x "
@@ -308,69 +297,85 @@ def _notes(entry: Entry, out: _Render) -> None:
                          "its cost is missing from the totals")
     for note in entry.head.notes:
         out.lines.append(f"\n- {md_escape(note)}")
-    if entry.base is None:
-        out.lines.append("\nNo baseline for this model on this target: no diff.")
 
 
-def _failed_rules(entry: Entry, out: _Render) -> None:
-    failed = sorted((v for v in entry.verdicts if v.status == FAIL),
-                    key=lambda v: (not v.blocks_merge, v.rule_id))
-    if not failed:
+def _totals(entry: Entry, out: _Render) -> None:
+    record = entry.head
+    if record is None:
         return
-    rows = [_finding_row(v, f) for v in failed
-            for f in (v.findings or (None,)) if f is None or f.status == FAIL]
-    limit = out.limits.findings
-    out.lines += ["", "**Failed rules**", "",
-                  "| Rule | Severity | Where | Metric | Value | Limit | Remedy |",
-                  "|---|---|---|---|---|---|---|"]
-    out.lines += rows[:max(limit, 1)]
-    out.trimmed(min(max(limit, 1), len(rows)), len(rows), "failed-rule rows")
+    parts = []
+    for metric in TOTALS:
+        if metric not in record.metrics:
+            continue
+        text = f"{metrics.label(metric)} {metrics.fmt(metric, record.metrics[metric])}"
+        if entry.diff is not None and metric in entry.diff.totals:
+            text += f", {metrics.fmt_change(metric, *entry.diff.totals[metric])}"
+        parts.append(text)
+    against = "against the base" if entry.base is not None else "(new: no base to compare)"
+    out.lines.append(f"\nTotals {against}: " + " \u00b7 ".join(parts) + ".")
 
 
-def _finding_row(verdict: Verdict, finding: Finding | None) -> str:
-    severity = f"{FAIL_MARK} error" if verdict.severity == "error" else f"{WARN_MARK} warning"
-    remedy = md_escape(shorten(verdict.remedy, 300))
-    if finding is None:  # a failed rule without findings: show its summary
-        return (f"| {md_escape(verdict.rule_id)} | {severity} | model | | | | "
-                f"{md_escape(shorten(verdict.summary, 300))}; {remedy} |")
-    where = "model" if finding.layer is None else md_escape(shorten(finding.layer, NAME_CHARS))
-    if finding.waiver_expires:  # a failing finding with a waiver: the waiver has lapsed
-        remedy = (f"waiver expired {md_escape(finding.waiver_expires)} "
-                  f"({md_escape(shorten(finding.waiver_reason, 200))}); {remedy}")
-    return (f"| {md_escape(verdict.rule_id)} | {severity} | {where} | "
-            f"{md_escape(metrics.label(finding.metric))} | "
-            f"{metrics.fmt(finding.metric, finding.value)} | "
-            f"{metrics.fmt(finding.metric, finding.limit)} | {remedy} |")
-
-
-def _waived_rules(entry: Entry, out: _Render) -> None:
-    rows = [
-        f"| {md_escape(v.rule_id)} | "
-        f"{'model' if f.layer is None else md_escape(shorten(f.layer, NAME_CHARS))} | "
-        f"{md_escape(shorten(f.waiver_reason or 'no reason given', 300))} | "
-        f"{md_escape(f.waiver_expires) or 'never'} |"
-        for v in entry.verdicts for f in v.findings if f.status == WAIVED
-    ]
+def _rule_results(entry: Entry, out: _Render) -> None:
+    rows: list[str] = []
+    fixes: list[str] = []
+    for verdict in entry.ranked_verdicts:
+        if verdict.status == PASS:
+            continue
+        outcome = _outcome(verdict)
+        findings: Sequence[Finding | None] = (
+            verdict.failing if verdict.status == FAIL else verdict.findings) or (None,)
+        rows += [_rule_row(verdict, outcome, f) for f in findings]
+        if verdict.status == FAIL and not verdict.blocks_merge and verdict.remedy:
+            fixes.append(f"Fix for {md_escape(verdict.rule_id)}: "
+                         f"{md_escape(shorten(verdict.remedy, 300))}.")
+    passed = sum(1 for v in entry.verdicts if v.status == PASS)
+    applied = ", ".join(md_escape(rule) for rule in entry.rules_applied) or "none"
+    out.lines.append(f"\nRules applied: {applied}.")
     if not rows:
+        if passed:
+            out.lines.append(f"\nAll {passed} rule{'s' if passed != 1 else ''} passed.")
         return
-    limit = out.limits.findings
-    out.lines += ["", "**Waived**", "", "| Rule | Where | Reason | Expires |", "|---|---|---|---|"]
+    limit = max(out.limits.findings, 1)
+    out.lines += ["", "| Rule | Outcome | Where | Found | Limit |", "|---|---|---|---|---|"]
     out.lines += rows[:limit]
-    out.trimmed(min(limit, len(rows)), len(rows), "waived rows")
+    out.trimmed(min(limit, len(rows)), len(rows), "rule-result rows")
+    if passed:
+        out.lines.append(f"\n{passed} more rule{'s' if passed != 1 else ''} passed.")
+    out.lines += [f"\n{fix}" for fix in fixes]
 
 
-def _changed_layers(entry: Entry, out: _Render) -> None:
+def _outcome(verdict: Verdict) -> str:
+    if verdict.blocks_merge:
+        return OUTCOME_CELLS["block"]
+    return OUTCOME_CELLS["warn"] if verdict.status == FAIL else OUTCOME_CELLS[verdict.status]
+
+
+def _rule_row(verdict: Verdict, outcome: str, finding: Finding | None) -> str:
+    rule = md_escape(verdict.rule_id)
+    if finding is None:  # a rule that failed or was waived without findings: its summary
+        return f"| {rule} | {outcome} | model | {md_escape(shorten(verdict.summary, 300))} | |"
+    where = "model" if finding.layer is None else md_escape(shorten(finding.layer, NAME_CHARS))
+    if finding.status == WAIVED or finding.waiver_expires:
+        state = "until" if finding.status == WAIVED else "waiver expired"
+        outcome += (f" ({state} {md_escape(finding.waiver_expires or 'no date')}: "
+                    f"{md_escape(shorten(finding.waiver_reason or 'no reason given', 200))})")
+    found = f"{metrics.label(finding.metric)} {metrics.fmt(finding.metric, finding.value)}"
+    return (f"| {rule} | {outcome} | {where} | {md_escape(found)} | "
+            f"{metrics.fmt(finding.metric, finding.limit)} |")
+
+
+def _layer_changes(entry: Entry, out: _Render) -> None:
     if entry.diff is None:
         return
     ranked = ranked_changes(entry.diff)
     if not ranked:
-        out.lines.append("\nNo layer changed against the baseline.")
+        out.lines.append("\nNo layer changed against the base.")
         return
     limit = out.limits.layers
-    titles = ["Layer", "Op (precision)", "Change", *(t for _, t in LAYER_METRICS)]
-    out.lines += ["", f"**Most changed layers** ({len(ranked)} changed)"]
+    out.lines.append(f"\nLayers with the largest latency change ({len(ranked)} changed):")
     if limit:
-        out.lines += ["", "| " + " | ".join(titles) + " |", "|" + "---|" * len(titles)]
+        out.lines += ["", "| Layer | Op | Latency | Change | Other changes |",
+                      "|---|---|---|---|---|"]
         head = {layer.name: layer for layer in entry.head.layers} if entry.head else {}
         out.lines += [_layer_row(change, head.get(change.head_name or ""),
                                  _precision(entry, change)) for change in ranked[:limit]]
@@ -378,51 +383,53 @@ def _changed_layers(entry: Entry, out: _Render) -> None:
 
 
 def _precision(entry: Entry, change: LayerChange) -> str:
-    """The precision the layer was costed at: head's, ``base → head`` when it changed."""
+    """The precision the layer was costed at: head's, ``base -> head`` when it changed."""
     def of(run: RunRecord | None, name: str | None) -> str:
         layer = run.layer(name) if run is not None and name is not None else None
         return layer.precision if layer is not None else ""
     base, head = of(entry.base, change.base_name), of(entry.head, change.head_name)
     if base and head and base != head:
-        return f"{base} → {head}"
+        return f"{base} \u2192 {head}"
     return head or base
 
 
 def _layer_row(change: LayerChange, head: LayerRecord | None = None, precision: str = "") -> str:
+    """One changed layer; the op cell names the fused group the head layer runs in."""
     name = change.head_name if change.head_name is not None else change.base_name or ""
-    what = change.status
-    if change.status == "changed" and not any(m in change.deltas for m, _ in LAYER_METRICS):
-        what += f": {_other_changes(change)}"  # else the row would read all "="
-    if change.status != "added" and change.status != "removed" and change.base_name != name:
-        what += f" (was {md_escape(shorten(change.base_name or '', NAME_CHARS))})"
+    label = md_escape(shorten(name, NAME_CHARS))
+    if change.status == "changed" and change.base_name != name:
+        label += f" (was {md_escape(shorten(change.base_name or '', NAME_CHARS))})"
+    base, head = change.deltas.get("latency_s", (None, None))
+    if change.status == "added":
+        latency, what = f"\u2014 \u2192 {metrics.fmt('latency_s', head)}", "added"
+    elif change.status == "removed":
+        latency, what = f"{metrics.fmt('latency_s', base)} \u2192 \u2014", "removed"
+    elif base is None:
+        latency, what = "unchanged", "unchanged"
+    else:
+        latency = f"{metrics.fmt('latency_s', base)} \u2192 {metrics.fmt('latency_s', head)}"
+        what = metrics.fmt_change("latency_s", base, head)
     notes = [part for part in (head.fused_label if head else "", precision) if part]
-    op = " ".join([change.op_type, *(f"({note})" for note in notes)])
-    cells = [md_escape(shorten(name, NAME_CHARS)), md_escape(shorten(op, NAME_CHARS)), what]
-    for metric, _ in LAYER_METRICS:
-        cells.append(_layer_cell(change, metric))
-    return "| " + " | ".join(cells) + " |"
+    op = change.op_type + "".join(f" ({part})" for part in notes)
+    return (f"| {label} | {md_escape(shorten(op, NAME_CHARS))} | {latency} | {what} | "
+            f"{_other_changes(change)} |")
+
+
+# A changed layer's other figures, the most telling first (then by name), at most two.
+OTHER_METRICS_FIRST = ("macs", "param_bytes", "utilization", "energy_j", "act_dram_bytes",
+                       "param_dram_bytes", "input_bytes", "output_bytes", "flops", "cycles")
 
 
 def _other_changes(change: LayerChange, count: int = 2) -> str:
-    """'energy -0.8%, input size -37.5%': what changed in a layer outside the table's columns."""
-    if not change.deltas:
-        return "shapes or types only"
+    """'MACs up by 24.9 M (+300%); parameter size worse by 3.79 MiB (+300%)'."""
+    if change.status in ("added", "removed"):
+        return ""
+    deltas = {m: v for m, v in change.deltas.items() if m != "latency_s"}
+    if not deltas:
+        return "" if "latency_s" in change.deltas else "shapes or types only"
     order = {metric: rank for rank, metric in enumerate(OTHER_METRICS_FIRST)}
-    picked = sorted(change.deltas, key=lambda m: (order.get(m, len(order)), m))[:count]
-    return ", ".join(f"{metrics.label(m)} {metrics.fmt_signed(m, *change.deltas[m])}" for m in picked)
-
-
-def _layer_cell(change: LayerChange, metric: str) -> str:
-    """``base -> head (+x%)`` for a changed metric; the one side for added/removed layers."""
-    if metric not in change.deltas:
-        return "0" if change.status in ("added", "removed") else "="
-    base, head = change.deltas[metric]
-    if change.status == "added":
-        return metrics.fmt(metric, head)
-    if change.status == "removed":
-        return metrics.fmt(metric, base)
-    return (f"{metrics.fmt(metric, base)} \u2192 {metrics.fmt(metric, head)} "
-            f"({metrics.fmt_signed(metric, base, head)})")
+    picked = sorted(deltas, key=lambda m: (order.get(m, len(order)), m))[:count]
+    return "; ".join(f"{metrics.label(m)} {metrics.fmt_change(m, *deltas[m])}" for m in picked)
 
 
 def _hard_cut(text: str, budget: int) -> str:
@@ -442,3 +449,4 @@ def rendered_sizes(result: GateResult) -> Sequence[int]:
     """Size of every detail level (for tests and for tuning ``_LEVELS``)."""
     return [comment_size(_render(result, limits, squeezed=level > 0))
             for level, limits in enumerate(_LEVELS)]
+
