@@ -393,7 +393,8 @@ def _precision(entry: Entry, change: LayerChange) -> str:
     return head or base
 
 
-def _layer_row(change: LayerChange, head: LayerRecord | None = None, precision: str = "") -> str:
+def _layer_row(change: LayerChange, head_layer: LayerRecord | None = None,
+               precision: str = "") -> str:
     """One changed layer; the op cell names the fused group the head layer runs in."""
     name = change.head_name if change.head_name is not None else change.base_name or ""
     label = md_escape(shorten(name, NAME_CHARS))
@@ -409,7 +410,8 @@ def _layer_row(change: LayerChange, head: LayerRecord | None = None, precision: 
     else:
         latency = f"{metrics.fmt('latency_s', base)} \u2192 {metrics.fmt('latency_s', head)}"
         what = metrics.fmt_change("latency_s", base, head)
-    notes = [part for part in (head.fused_label if head else "", precision) if part]
+    fused = head_layer.fused_label if head_layer is not None else ""
+    notes = [part for part in (fused, precision) if part]
     op = change.op_type + "".join(f" ({part})" for part in notes)
     return (f"| {label} | {md_escape(shorten(op, NAME_CHARS))} | {latency} | {what} | "
             f"{_other_changes(change)} |")
