@@ -135,7 +135,7 @@ def test_config_report_paths_stay_in_the_tree(tmp_path: Path, key: str, path: st
     result = check(repo)
     if not reason:
         assert result.exit_code == 0, result.stdout + result.stderr
-        assert "roofgate: passed" in (repo.path / path).read_text(encoding="utf-8")
+        assert "roofgate check: clear to merge" in (repo.path / path).read_text(encoding="utf-8")
     else:
         assert_clean_exit(result, 2, "may not be written here")
         assert reason in result.stderr

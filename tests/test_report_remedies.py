@@ -9,6 +9,7 @@ the merge itself) is not told to refresh a baseline snapshot.
 from __future__ import annotations
 
 from dataclasses import replace
+from pathlib import Path
 
 import pytest
 
@@ -56,3 +57,23 @@ def test_refresh_the_baseline_only_where_there_is_a_snapshot() -> None:
 def test_a_rules_own_remedy_is_kept_word_for_word() -> None:
     rule = replace(_rule(spec.FITS_IN_BUFFER), remedy="ask the platform team")
     assert remedy_of(rule, replace(run(), precision="int8")) == "ask the platform team"
+
+
+def test_baseline_names_every_model_that_failed(tmp_path: Path) -> None:
+    """`baseline` refuses a partial snapshot and names the models that failed, not
+    "(and 2 more)"."""
+    from click.testing import CliRunner
+
+    from gate.cli import cli
+
+    bad = []
+    for name in ("a.onnx", "b.onnx", "c.onnx"):
+        path = tmp_path / name
+        path.write_bytes(b"not an onnx file")
+        bad.append(str(path))
+    done = CliRunner().invoke(cli, ["baseline", *bad, "-t", "ws-64x64-4mib",
+                                    "-o", str(tmp_path / "snap.json")])
+    assert done.exit_code == 2
+    assert "also failed: " in done.output and "b.onnx" in done.output and "c.onnx" in done.output
+    assert "more models failed" not in done.output
+    assert not (tmp_path / "snap.json").exists()

@@ -32,6 +32,7 @@ from gate.outfile import OutputRules
 from gate.records import RunRecord
 from gate.report import report_options, report_paths, write_reports
 from gate.report.text import term_safe
+from gate.result import ModelError
 
 
 def register(cli: click.Group) -> None:
@@ -95,14 +96,22 @@ def baseline_command(models: tuple[str, ...], output: str, **kwargs: Any) -> Non
     config = load_project(kwargs, policies=False)
     runs, errors, target_count = analyse_files(config, models)
     if errors:
-        raise InputError(f"{errors[0].model}: {errors[0].message}"
-                         + (f" (and {len(errors) - 1} more models failed)" if len(errors) > 1
-                            else "") + "; no baseline written")
+        raise InputError(f"{errors[0].model}: {errors[0].message}{_also_failed(errors[1:])}; "
+                         "no baseline written")
     _coverage_warnings(runs)  # a baseline of lower bounds (or unknowns) must not look complete
     write_snapshot(runs, output)
     if output != "-":
         click.echo(f"wrote {len(runs)} run(s) of {len(dict.fromkeys(models))} model(s) on "
                    f"{target_count} target(s) to {term_safe(output)}", err=True)
+
+
+def _also_failed(errors: Sequence[ModelError], shown: int = 5) -> str:
+    """' (also failed: b.onnx, c.onnx)': the other models by name, the rest counted."""
+    if not errors:
+        return ""
+    names = ", ".join(term_safe(e.model) for e in errors[:shown])
+    more = f" and {len(errors) - shown} more" if len(errors) > shown else ""
+    return f" (also failed: {names}{more})"
 
 
 # --- diff -----------------------------------------------------------------------------
