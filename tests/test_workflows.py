@@ -18,6 +18,7 @@ import subprocess
 from pathlib import Path
 from typing import Any
 
+import click
 import jsonschema
 import pytest
 
@@ -227,7 +228,9 @@ def test_nightly_workflow_shards_merges_and_keeps_its_baseline_in_artifacts() ->
     ("merge", ["--junit", "--markdown", "--json", "--snapshot"]),
 ])
 def test_options_the_workflows_use_exist(command: str, options: list[str]) -> None:
-    params = {opt for p in cli.commands[command].params for opt in getattr(p, "opts", [])}
+    found = cli.get_command(click.Context(cli), command)  # commands load lazily
+    assert found is not None, command
+    params = {opt for p in found.params for opt in getattr(p, "opts", [])}
     assert set(options) <= params
 
 
