@@ -273,19 +273,16 @@ def blocking_sentences(result: GateResult, per_rule: int = 3) -> list[str]:
 
 
 def _above(finding: Finding) -> bool:
-    try:
-        return float(finding.value) > float(finding.limit)
-    except (TypeError, ValueError):
-        return True
+    if finding.value is None or finding.limit is None:
+        return True  # an unknown value fails its rule ('cannot be checked')
+    return float(finding.value) > float(finding.limit)
 
 
 def _excess(finding: Finding) -> float:
     """How far past its limit a finding is, in the metric's own unit (0 when unknown)."""
-    try:
-        value, limit = float(finding.value), float(finding.limit)
-    except (TypeError, ValueError):
+    if finding.value is None or finding.limit is None:
         return 0.0
-    excess = abs(value - limit)
+    excess = abs(float(finding.value) - float(finding.limit))
     return 0.0 if math.isnan(excess) else excess
 
 
