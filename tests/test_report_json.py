@@ -55,7 +55,6 @@ def test_empty_result_with_a_note() -> None:
     (json.dumps({"format": "roofgate-result", "version": 7, "result": {}}), "newer roofgate"),
     (json.dumps({"format": "roofgate-snapshot", "version": 1}), "not a roofgate-result"),
     (json.dumps({"format": "roofgate-result", "version": 2, "result": {}}), "damaged"),
-    (json.dumps({"format": "roofgate-result", "version": 1, "result": {}}), "older"),
 ])
 def test_unreadable_documents_get_a_clear_message(text, message) -> None:
     with pytest.raises(InputError, match=message):
