@@ -187,7 +187,8 @@ def layer_table(entry: Entry, flagged: Collection[str] = ()) -> str:
     run = entry.head or entry.base
     assert run is not None
     total_s = float(run.metrics.get("latency_s") or 0.0)
-    headers = [("layer", False), ("op", False), ("bound", False), ("latency", True),
+    headers = [("layer", False), ("op", False), ("precision", False), ("bound", False),
+               ("latency", True),
                ("share of latency", True),
                *((metrics.label(m), True) for m in _LAYER_METRICS[1:]), ("params fit", False)]
     rows = [_layer_row(layer, total_s, layer.name in flagged) for layer in run.layers]
@@ -206,7 +207,8 @@ def _layer_row(layer: LayerRecord, total_s: float, is_flagged: bool) -> str:
     if layer.fused_label:
         note += f" <span class=\"note\">({html_escape(layer.fused_label)})</span>"
     return (_row_open(is_flagged) + f"<td class=\"name\">{html_escape(layer.name)}{note}</td>"
-            f"<td><code>{html_escape(layer.op_type)}</code></td><td>{html_escape(layer.bound)}</td>"
+            f"<td><code>{html_escape(layer.op_type)}</code></td>"
+            f"<td>{html_escape(layer.precision or '-')}</td><td>{html_escape(layer.bound)}</td>"
             + _num("latency_s", m.get("latency_s"))
             + f"<td class=\"num\" data-v=\"{_sort_value(share)}\">{units.fmt_share(share)}</td>"
             + "".join(_num(metric, m.get(metric)) for metric in _LAYER_METRICS[1:])
