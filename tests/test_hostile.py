@@ -143,6 +143,7 @@ BAD_MODELS: list[tuple[str, Any, str]] = [
     ("cyclic", _cyclic, "re-export"),
     ("dangling-edge", _dangling, "re-export"),
     ("nested-500-deep", lambda: deeply_nested_if(500), "re-export"),
+    ("negative-dim", lambda: _negative_dim().SerializeToString(), "re-export"),
 ]
 
 
@@ -271,7 +272,6 @@ UNMODELLED = {
     "custom-domain": (_custom_domain, "FancyOp"),
     "never-shaped": (_never_shaped, "Mystery"),
     "unbound-symbolic-dim": (lambda: small_cnn(batch="N"), "--dim N="),
-    "negative-dim": (_negative_dim, "MatMul"),
 }
 
 

@@ -364,3 +364,52 @@ def test_model_text_cannot_forge_runner_commands_or_links(tmp_path: Path) -> Non
     assert_log_inert(refused.stdout + refused.stderr)
     broken.unlink()
     assert fingerprint(repo) == before
+
+
+# --- 3. integrity of what is read: stale stored shapes, impossible dims ------------------
+
+def conv_with_stored_shapes(side_px: int, stored_px: int):
+    """Conv 3x3 (no padding) + Relu on a side_px image; value_info stores the conv output as if
+    the input were stored_px + 2 wide. Output side = side - 3 + 1 (ONNX operator spec, Conv)."""
+    from onnx import helper
+
+    from tests.loadkit import model, vi, weight
+
+    nodes = [helper.make_node("Conv", ["x", "w"], ["c"], name="conv"),
+             helper.make_node("Relu", ["c"], ["y"], name="relu")]
+    proto = model(nodes, [vi("x", [1, 3, side_px, side_px])], [vi("y", None)],
+                  [weight("w", [16, 3, 3, 3])])
+    proto.graph.value_info.append(vi("c", [1, 16, stored_px, stored_px]))
+    return proto
+
+
+def test_stale_stored_shapes_are_an_error_naming_the_tensor(tmp_path: Path) -> None:
+    from tests.loadkit import save
+
+    repo = make_repo(tmp_path)
+    save(conv_with_stored_shapes(112, 110), repo.path / "models/cam.onnx")  # consistent
+    repo.git("add", "-A")
+    repo.git("commit", "-q", "-m", "camera model")
+    repo.git("branch", "-f", "main")
+    save(conv_with_stored_shapes(224, 110), repo.path / "models/cam.onnx")  # input resized only
+    repo.commit("resize the input, keep the stored shapes")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 2, "tensor 'c': the file stores shape [1, 16, 110, 110] but its "
+                                 "inputs give [1, 16, 222, 222]")
+    assert json.loads(reports(repo)["result.json"])["exit_code"] == 2
+    assert fingerprint(repo) == before
+
+
+def test_a_weight_with_negative_dims_is_an_error_not_zero_bytes(tmp_path: Path) -> None:
+    import onnx
+
+    repo = make_repo(tmp_path)
+    proto = fc_model(200)
+    proto.graph.initializer[0].dims[0] = -proto.graph.initializer[0].dims[0]
+    onnx.save(proto, repo.path / "models/a.onnx")
+    repo.commit("negative dims")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 2, "has a negative dim")
+    assert fingerprint(repo) == before

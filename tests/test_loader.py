@@ -329,13 +329,24 @@ def test_zero_negative_and_huge_dims(tmp_path: Path) -> None:
     huge = 2**62
     proto = model([helper.make_node("Relu", ["x"], ["y"]), helper.make_node("Relu", ["z"], ["w"])],
                   [vi("x", [0, huge, 3]), vi("z", [2, 2])], [vi("y", None), vi("w", None)])
-    proto.graph.input[1].type.tensor_type.shape.dim[0].dim_value = -4  # invalid: treated as unknown
     loaded = load_model(save(proto, tmp_path / "dims.onnx"))
-    x, z = loaded.graph.inputs
+    x, _ = loaded.graph.inputs
     assert x.shape == (0, huge, 3) and x.numel == 0
-    assert z.shape == ("?", 2) and z.numel is None
     y = loaded.graph.nodes[0].outputs[0]
     assert y.shape == (0, huge, 3) and isinstance(y.shape[1], int)
+
+
+def test_negative_dims_are_refused_naming_the_tensor(tmp_path: Path) -> None:
+    """ONNX dims are non-negative; an unknown size is a dim_param (ONNX IR spec, TensorShapeProto)."""
+    proto = model([helper.make_node("MatMul", ["x", "w"], ["y"])], [vi("x", [1, 4])],
+                  [vi("y", None)], [weight("w", [4, 4])])
+    proto.graph.input[0].type.tensor_type.shape.dim[0].dim_value = -4
+    assert "tensor 'x' declares a negative dim [-4, 4]" in _error(save(proto, tmp_path / "a.onnx"))
+    proto.graph.input[0].type.tensor_type.shape.dim[0].dim_value = 1
+    proto.graph.initializer[0].dims[0] = -4
+    assert "weight 'w' has a negative dim [-4, 4]" in _error(save(proto, tmp_path / "b.onnx"))
+    proto.graph.initializer[0].dims[:] = [2**62, 4]
+    assert "more elements than an ONNX tensor can hold" in _error(save(proto, tmp_path / "c.onnx"))
 
 
 def test_duplicate_initializer_names(tmp_path: Path) -> None:

@@ -5,13 +5,16 @@ every size comes from an initializer's dims and dtype. The steps, in order:
 
 1. refuse what is not a model, with one line naming the file and the remedy
    (missing, empty, Git LFS pointer, truncated, random bytes, a protobuf that is
-   not a model, no graph, an opset or IR version newer than the installed onnx);
+   not a model, no graph, an opset or IR version newer than the installed onnx,
+   a negative dim, a weight with more elements than any file can hold);
 2. inline local functions (their nodes become ordinary layers);
 3. bind whole inputs (``--shape images=1x3x640x640``, ``gate.model.shapes``) and
    symbolic dims (``--dim batch=1``) on every declared tensor shape;
 4. drop inline weight values from memory (shapes and dtypes stay), then run onnx
-   shape inference with data propagation (files over 2 GB through the
-   path-based API into a temporary file: the input is never overwritten);
+   shape inference with data propagation from the inputs alone, and refuse a
+   stored intermediate or output shape that contradicts it (``infer_checked``;
+   files over 2 GB go through the path-based API into a temporary file, the
+   input is never overwritten, and their stored shapes are not re-checked);
 5. where a tensor is still unsized, evaluate the shape arithmetic that computes
    Reshape targets, Pad amounts, ... from the inputs' shapes and infer again
    (``gate.model.shape_values`` with the rules of ``gate.model.shape_rules``);
@@ -21,6 +24,7 @@ every size comes from an initializer's dims and dtype. The steps, in order:
 
 from __future__ import annotations
 
+import math
 import os
 import tempfile
 from collections.abc import Mapping
@@ -69,6 +73,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     size_bytes = _check_file(text_path)
     proto = _parse(text_path)
     _validate(proto, text_path)
+    refuse_impossible_dims(proto.graph, text_path)
     warnings = list(external_data_warnings(proto.graph, Path(text_path).resolve().parent))
     repaired = repair_text_fields(proto)
     if repaired:
@@ -87,7 +92,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     else:
         proto = _inline(proto, text_path)
         _bind(proto.graph, bindings, shape_bindings, text_path)
-        proto, inference_warning = _infer_in_memory(proto)
+        proto, inference_warning = infer_checked(proto, text_path)
     if inference_warning:
         warnings.append(inference_warning)
     else:
@@ -259,3 +264,125 @@ def _opsets(proto: onnx.ModelProto) -> dict[str, int]:
 
 def _unbound_dims(graph: Graph) -> tuple[str, ...]:
     return tuple(sorted(d for d in graph_symbolic_dims(graph) if d != UNKNOWN_DIM))
+
+
+# --- integrity of the shapes the file declares -----------------------------------------
+
+INT64_MAX = 2**63 - 1  # protobuf int64: no tensor can hold more elements
+
+
+def refuse_impossible_dims(graph: onnx.GraphProto, path: str) -> None:
+    """Refuse a negative dim on any declared tensor or weight, and a weight too large to exist.
+
+    Why: a negative dim made a weight count as 0 bytes. ONNX dims are
+    non-negative (an unknown size is a named ``dim_param``); a weight's
+    element count must fit in int64 like every ONNX offset.
+    """
+    for current in _graphs(graph):
+        for tensor in current.initializer:
+            dims = [int(d) for d in tensor.dims]
+            if any(d < 0 for d in dims):
+                raise InputError(f"weight '{tensor.name}' has a negative dim {dims}; re-export "
+                                 "the model", path)
+            if math.prod(dims) > INT64_MAX:
+                raise InputError(f"weight '{tensor.name}' has dims {dims}, more elements than "
+                                 "an ONNX tensor can hold; re-export the model", path)
+        for value in (*current.input, *current.output, *current.value_info):
+            if not value.type.HasField("tensor_type"):
+                continue
+            dims = [d.dim_value for d in value.type.tensor_type.shape.dim
+                    if d.HasField("dim_value")]
+            if any(d < 0 for d in dims):
+                raise InputError(f"tensor '{value.name}' declares a negative dim {dims}; use a "
+                                 "named dim (dim_param) for a size not known in advance, or "
+                                 "re-export the model", path)
+
+
+def _graphs(graph: onnx.GraphProto) -> list[onnx.GraphProto]:
+    """``graph`` and every subgraph nested in its nodes' attributes."""
+    found, stack = [], [graph]
+    while stack:
+        current = stack.pop()
+        found.append(current)
+        for node in current.node:
+            for attribute in node.attribute:
+                if attribute.HasField("g"):
+                    stack.append(attribute.g)
+                stack.extend(attribute.graphs)
+    return found
+
+
+def infer_checked(proto: onnx.ModelProto, path: str) -> tuple[onnx.ModelProto, str]:
+    """Shape inference from the inputs alone, checked against the shapes the file stores.
+
+    Why: onnx's own (non-strict) inference keeps stored intermediate shapes
+    (``value_info``) and declared output shapes even when the inputs say
+    otherwise, so a model whose input was resized after export was costed at
+    its old size. Here inference runs without them; a stored shape that
+    contradicts the derived one is an InputError naming the tensor; a stored
+    shape inference cannot derive (after a custom op) is kept and inference
+    runs once more so what follows it is shaped too. Top-level graph only.
+    """
+    stored = {v.name: v for v in (*proto.graph.value_info, *proto.graph.output)}
+    bare = onnx.ModelProto()
+    bare.CopyFrom(proto)
+    del bare.graph.value_info[:]
+    for output in bare.graph.output:
+        if output.type.HasField("tensor_type"):
+            output.type.tensor_type.ClearField("shape")
+    inferred, warning = _infer_in_memory(bare)
+    if warning:  # inference failed: the stored shapes are all there is
+        return _infer_in_memory(proto)
+    derived = {v.name: v for v in (*inferred.graph.value_info, *inferred.graph.output)}
+    unverified = [name for name, value in stored.items()
+                  if not _same_or_unknown(value, derived.get(name), path)]
+    if not unverified:
+        return inferred, ""
+    _restore(inferred.graph, [stored[name] for name in unverified])
+    return _infer_in_memory(inferred)
+
+
+def _same_or_unknown(stored: onnx.ValueInfoProto, derived: onnx.ValueInfoProto | None,
+                     path: str) -> bool:
+    """True when inference derived the tensor's shape at least as fully as the file stores it;
+    False when the stored shape knows more (kept, unverified); InputError on a contradiction."""
+    mine, theirs = _known_dims(stored), _known_dims(derived)
+    if mine is None:
+        return True
+    if theirs is None:
+        return False
+    clash = len(mine) != len(theirs) or any(
+        a is not None and b is not None and a != b for a, b in zip(mine, theirs))
+    if not clash:
+        return not any(a is not None and b is None for a, b in zip(mine, theirs))
+    raise InputError(
+        f"tensor '{stored.name}': the file stores shape {_shape_text(mine)} but its inputs "
+        f"give {_shape_text(theirs)}; the stored shapes are stale (an input resized after "
+        "export?): re-export the model, or drop value_info and rerun onnx shape inference",
+        path)
+
+
+def _known_dims(value: onnx.ValueInfoProto | None) -> list[int | None] | None:
+    if value is None or not value.type.HasField("tensor_type") \
+            or not value.type.tensor_type.HasField("shape"):
+        return None
+    return [int(d.dim_value) if d.HasField("dim_value") else None
+            for d in value.type.tensor_type.shape.dim]
+
+
+def _shape_text(dims: list[int | None]) -> str:
+    return "[" + ", ".join("?" if d is None else str(d) for d in dims) + "]"
+
+
+def _restore(graph: onnx.GraphProto, values: list[onnx.ValueInfoProto]) -> None:
+    """Put stored shapes inference could not derive back: outputs in place, the rest as value_info."""
+    outputs = {o.name: o for o in graph.output}
+    replaced = {v.name for v in values}
+    kept = [v for v in graph.value_info if v.name not in replaced]
+    del graph.value_info[:]
+    graph.value_info.extend(kept)
+    for value in values:
+        if value.name in outputs:
+            outputs[value.name].type.CopyFrom(value.type)
+        else:
+            graph.value_info.append(value)
