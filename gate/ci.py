@@ -201,6 +201,8 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
             raise InputError("no such file or folder", given)
         files = [path] if path.is_file() else sorted(
             p for p in path.rglob("*") if p.is_file() and ".git" not in p.parts)
+        if not path.is_file():
+            refuse_links_out(root, files)
         for file in files:
             name = _model_name(root, file)
             if config.is_model(name) or (path.is_file() and is_onnx(name)):
@@ -208,6 +210,21 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
             elif is_onnx(name):
                 ungated[name] = ungated_model(config, name)
     return sorted(found), sorted(ungated.values(), key=lambda u: u.model)
+
+
+def refuse_links_out(root: Path, files: Sequence[Path]) -> None:
+    """InputError for a file met while walking a folder that resolves outside ``root``.
+
+    Why: a committed link (to a file or a folder) would make the audit read
+    whatever the runner can see outside the repository. A path typed on the
+    command line is the operator's choice and is not checked.
+    """
+    top = root.resolve()
+    for file in files:
+        if not file.resolve().is_relative_to(top):
+            raise InputError(f"a link leading out of the repository (to {file.resolve()}); "
+                             "audit reads only the repository's own files: remove the link, or "
+                             "pass the file it points to explicitly", str(file))
 
 
 def _model_name(root: Path, file: Path) -> str:

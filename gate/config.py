@@ -46,6 +46,7 @@ from yaml.nodes import ScalarNode, SequenceNode
 from gate.bundled import names_a_file
 from gate.errors import ConfigError
 from gate.globs import path_glob_problem, path_match
+from gate.model.graph import INT64_MAX
 from gate.model.shapes import StaticShape, parse_shape
 from gate.yamlconf import Section, read_yaml_file, scalar_value
 
@@ -202,8 +203,10 @@ def parse_dim_bindings(items: Iterable[str]) -> dict[str, int]:
     problems = []
     for item in items:
         name, sep, value = item.partition("=")
-        if not sep or not name.strip() or not value.strip().isdigit() or int(value) < 1:
-            problems.append(f"--dim {item!r}: expected NAME=POSITIVE_INT, e.g. batch=1")
+        if not sep or not name.strip() or not value.strip().isdigit() or int(value) < 1 \
+                or int(value) > INT64_MAX:
+            problems.append(f"--dim {item!r}: expected NAME=POSITIVE_INT (at most {INT64_MAX}), "
+                            "e.g. batch=1")
             continue
         out[name.strip()] = int(value)
     if problems:
@@ -272,9 +275,10 @@ def _dims(section: Section) -> dict[str, int]:
     out: dict[str, int] = {}
     for name, sub, node in section.get_mapping_sections("dims"):
         value = scalar_value(node)
-        if sub is not None or isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        if sub is not None or isinstance(value, bool) or not isinstance(value, int) or value < 1 \
+                or value > INT64_MAX:
             section.doc.problem(node, f"{section.key_path + '.' if section.key_path else ''}"
-                                f"dims.{name}", "expected a positive whole number")
+                                f"dims.{name}", f"expected a positive whole number up to {INT64_MAX}")
             continue
         out[name] = value
     return out

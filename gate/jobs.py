@@ -16,8 +16,10 @@ Every command that analyses a model (``profile``, ``evaluate``, ``baseline``,
 from __future__ import annotations
 
 import concurrent.futures
+import multiprocessing
 import os
 import shutil
+import signal
 import sys
 import traceback
 from collections.abc import Callable, Mapping, Sequence
@@ -200,11 +202,38 @@ def run_jobs(jobs: Sequence[Job], workers: int,
         for job in jobs:
             keep(_analyse_in_process(job), job.model)
         return out
-    with concurrent.futures.ProcessPoolExecutor(max_workers=min(workers, total)) as pool:
+    _run_in_processes(jobs, min(workers, total), keep)
+    return out
+
+
+def _run_in_processes(jobs: Sequence[Job], workers: int,
+                      keep: Callable[[JobOutcome, str], None]) -> None:
+    """Analyse ``jobs`` in ``workers`` processes, handing each outcome to ``keep``.
+
+    On Ctrl-C, SIGTERM (raised as SystemExit by the CLI) or any error the
+    worker processes are terminated at once instead of finishing their models
+    (which could take minutes after the run was stopped).
+    """
+    pool = concurrent.futures.ProcessPoolExecutor(max_workers=workers,
+                                                  initializer=_worker_signals)
+    try:
         futures = {pool.submit(_analyse_job_in_worker, job): job for job in jobs}
         for future in concurrent.futures.as_completed(futures):
             keep(future.result(), futures[future].model)
-    return out
+    except BaseException:
+        pool.shutdown(wait=False, cancel_futures=True)
+        for child in multiprocessing.active_children():
+            child.terminate()
+        raise
+    pool.shutdown()
+
+
+def _worker_signals() -> None:
+    """In a worker: SIGTERM kills at once (the executor's worker loop would catch the
+    SystemExit a Python handler raises and take the next model); Ctrl-C is left to the
+    parent, which terminates the workers."""
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _analyse_in_process(job: Job) -> JobOutcome:

@@ -32,6 +32,7 @@ import yaml
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
 from gate.errors import ConfigError
+from gate.model.graph import INT64_MAX
 
 MAX_FILE_BYTES = 4 * 1024 * 1024
 MAX_NODES_VISITED = 200_000  # an alias bomb expands far beyond this; real files stay far below
@@ -118,7 +119,42 @@ def parse_yaml_bytes(raw: bytes, shown: str) -> YamlDocument:
     except RecursionError:
         raise ConfigError([(f"{shown}: YAML nested too deeply; write the values out with less "
                             "nesting")]) from None
+    refuse_foreign_tags(root, shown)
     return YamlDocument(shown, root)
+
+
+# Collection tags the getters accept; scalars' are ``_PLAIN_TAGS``.
+_COLLECTION_TAGS = frozenset({"tag:yaml.org,2002:map", "tag:yaml.org,2002:seq"})
+# The merge key ('<<') passes here so the getters can refuse it with their own message.
+_SCALAR_TAGS = _PLAIN_TAGS | {"tag:yaml.org,2002:merge"}
+
+
+def refuse_foreign_tags(root: Node | None, shown: str) -> None:
+    """ConfigError naming every node whose tag is not a YAML core tag (``!!python/...`` on a
+    list or mapping too, which the getters alone would read as a plain collection).
+
+    Each composed node is visited once (aliases share nodes), so an alias bomb
+    costs no more than its text.
+    """
+    problems: list[tuple[int, str]] = []
+    seen: set[int] = set()
+    stack = [root] if root is not None else []
+    while stack:
+        node = stack.pop()
+        if id(node) in seen:
+            continue
+        seen.add(id(node))
+        allowed = _SCALAR_TAGS if isinstance(node, ScalarNode) else _COLLECTION_TAGS
+        if node.tag not in allowed:
+            line = node.start_mark.line + 1
+            problems.append((line, (f"{shown}:{line}: the tag '{node.tag}' is not supported; "
+                                   "write a plain value, list or mapping")))
+        if isinstance(node, SequenceNode):
+            stack.extend(node.value)
+        elif isinstance(node, MappingNode):
+            stack.extend(part for pair in node.value for part in pair)
+    if problems:
+        raise ConfigError([text for _, text in sorted(problems)])
 
 
 def suggest(word: str, choices: list[str]) -> str:
@@ -251,7 +287,12 @@ class Section:
             self.doc.problem(node, self._path(key),
                              f"the tag '{node.tag}' is not supported; write a plain value")
             return None, _MISSING
-        return node, _construct_scalar(node)
+        value = _construct_scalar(node)
+        if isinstance(value, int) and not isinstance(value, bool) and abs(value) > INT64_MAX:
+            self.doc.problem(node, self._path(key), f"a {len(str(abs(value)))}-digit number is "
+                             f"too large (at most {INT64_MAX})")
+            return None, _MISSING
+        return node, value
 
     def bad(self, key: str, message: str) -> None:
         """Record a problem on a key of this section (for checks the getters cannot do)."""

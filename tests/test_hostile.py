@@ -485,7 +485,7 @@ YAML_CASES = {
                           "check: params}\n  - {id: a, kind: fits_in_buffer, check: both}\n"),
                           ":5: rules[1].id:", "duplicate rule id 'a'"),
     "python-tag": (("version: 1\nname: !!python/object/apply:os.system [\"exit 1\"]\n"
-                   "rules: []\n"), ":2: name:", "expected a single value"),
+                   "rules: []\n"), ":2:", "python/object/apply:os.system' is not supported"),
     "non-utf8": (b"version: 1\nname: caf\xe9\nrules: []\n", ":2:", "save the file as UTF-8"),
     "not-a-mapping": ("- just\n- a list\n", ":1:", "mapping"),
     "nul-character": ("version: 1\nname: x\x00\nrules: []\n", ":2:", "remove it"),

@@ -413,3 +413,139 @@ def test_a_weight_with_negative_dims_is_an_error_not_zero_bytes(tmp_path: Path) 
     result = check(repo)
     assert_clean_exit(result, 2, "has a negative dim")
     assert fingerprint(repo) == before
+
+
+# --- 5. exit codes and processes ---------------------------------------------------------
+
+# roofgate's own entry point, with every analysis slowed to a crawl after it says it started
+# (a marker file per worker process), so a signal surely arrives while workers are busy.
+SLOW_AUDIT = """
+import os, sys, time
+import gate.jobs as jobs
+markers = sys.argv[1]
+def crawl(job):
+    open(os.path.join(markers, f"worker-{os.getpid()}"), "w").close()
+    time.sleep(600)
+jobs.analyse_job = crawl
+sys.argv = ["roofgate", *sys.argv[2:]]
+from gate.cli import main
+main()
+"""
+
+
+def _wait_for(condition, what: str) -> None:
+    """Poll ``condition`` (a generous deadline only guards against a hang; nothing is timed)."""
+    import time
+
+    deadline = time.monotonic() + 60
+    while not condition():
+        assert time.monotonic() < deadline, f"gave up waiting for {what}"
+        time.sleep(0.05)
+
+
+def _gone(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    return False
+
+
+@pytest.mark.parametrize("signum, code", [(2, 130), (15, 143)])  # SIGINT, SIGTERM
+def test_a_signal_ends_the_run_and_its_workers(tmp_path: Path, signum: int, code: int) -> None:
+    repo = make_repo(tmp_path)
+    for index in range(4):
+        save_model(fc_model(64 + index), repo.path / f"models/m{index}.onnx")
+    repo.commit("four models")
+    markers = tmp_path / "markers"
+    markers.mkdir()
+    before = fingerprint(repo)
+    env = {**os.environ, "PYTHONPATH": str(WORKTREE)}
+    run = subprocess.Popen([sys.executable, "-c", SLOW_AUDIT, str(markers), "audit", "-j", "2"],
+                           cwd=repo.path, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                           text=True)
+    try:
+        _wait_for(lambda: len(list(markers.iterdir())) == 2 or run.poll() is not None,
+                  "both workers to start")
+        workers = [int(p.name.split("-")[1]) for p in markers.iterdir()]
+        run.send_signal(signum)
+        out, err = run.communicate(timeout=120)
+    finally:  # never leave a process behind, even when the test fails
+        for pid in [int(p.name.split("-")[1]) for p in markers.iterdir()]:
+            if not _gone(pid):
+                os.kill(pid, 9)
+        if run.poll() is None:
+            run.kill()
+            run.communicate()
+    assert run.returncode == code, (out, err)
+    assert "Traceback" not in err
+    if signum == 2:
+        assert "interrupted" in err
+    _wait_for(lambda: all(_gone(pid) for pid in workers), "the workers to end")
+    assert reports(repo) == {}  # nothing half-written, nothing that reads as a result
+    assert fingerprint(repo) == before
+
+
+def test_bad_numbers_are_bad_input_not_internal_errors(tmp_path: Path) -> None:
+    huge = "9" * 400
+    repo = make_repo(tmp_path, CONFIG + "dims: {batch: 1}\n", {
+        "policies/huge.yaml": POLICY.replace("max_increase_pct: 10", f"max_increase_pct: {huge}"),
+        "policies/tagged.yaml": POLICY.replace("rules:", "rules: !!python/object/apply:os.system"),
+    })
+    save_model(fc_model(200), repo.path / "models/a.onnx")
+    repo.commit("shrink")
+    before = fingerprint(repo)
+    cases = [
+        (["-p", "policies/huge.yaml"], "a 400-digit number is too large"),
+        (["-p", "policies/tagged.yaml"], ("tag 'tag:yaml.org,2002:python/object/apply:os.system' "
+                                         "is not supported")),
+        (["--dim", f"batch={2**63}"], "up to 9223372036854775807"),
+        (["--dim", f"batch={huge}"], "up to 9223372036854775807"),
+    ]
+    for args, message in cases:
+        result = check(repo, *args)
+        assert_clean_exit(result, 2, message)
+    assert fingerprint(repo) == before
+
+
+def test_a_full_stdout_device_is_exit_2_with_a_message(tmp_path: Path) -> None:
+    if not Path("/dev/full").exists():
+        pytest.skip("no /dev/full on this system")
+    repo = make_repo(tmp_path)
+    env = {**os.environ, "PYTHONPATH": str(WORKTREE)}
+    for args in (["profile", "models/a.onnx", "-t", TARGET, "--format", "json"],
+                 ["check", "--base", "main", "--json", "-"]):
+        with open("/dev/full", "w") as full:
+            done = subprocess.run([sys.executable, "-c", "from gate.cli import main; main()",
+                                   *args], cwd=repo.path, env=env, stdout=full,
+                                  stderr=subprocess.PIPE, text=True, check=False)
+        assert done.returncode == 2, done.stderr
+        assert "No space left on device" in done.stderr and "Traceback" not in done.stderr
+
+
+def test_audit_does_not_follow_links_out_of_the_repository(tmp_path: Path) -> None:
+    outside = tmp_path / "outside"
+    save_model(fc_model(2048), outside / "secret.onnx")
+    repo = make_repo(tmp_path, f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n")
+    os.symlink(outside / "secret.onnx", repo.path / "models/linked.onnx")
+    os.symlink(outside, repo.path / "models/linked-folder")
+    repo.commit("links out of the repository")
+    before = fingerprint(repo)
+    for link in ("models/linked.onnx", "models/linked-folder"):
+        others = {"models/linked.onnx", "models/linked-folder"} - {link}
+        moved = {name: repo.path / name for name in others}
+        for name, path in moved.items():  # one link at a time
+            path.rename(tmp_path / Path(name).name)
+        result = run_cli(repo, "audit", "--json", f"{REPORT_DIR}/audit.json")
+        for name, path in moved.items():
+            (tmp_path / Path(name).name).rename(path)
+        if link == "models/linked-folder":  # never walked into: only models/a.onnx audited
+            assert result.returncode == 0, result.stdout + result.stderr
+            data = json.loads((repo.path / REPORT_DIR / "audit.json").read_text())
+            assert {e["model"] for e in data["result"]["entries"]} == {"models/a.onnx"}
+            continue
+        assert result.returncode == 2, result.stdout + result.stderr
+        assert "a link leading out of the repository" in result.stderr and link in result.stderr
+        assert "Traceback" not in result.stderr
+        assert reports(repo) == {}
+    assert fingerprint(repo) == before

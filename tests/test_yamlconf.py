@@ -65,13 +65,17 @@ def test_missing_file_and_directory_give_one_line(tmp_path: Path) -> None:
 
 def test_python_tags_are_refused_not_constructed() -> None:
     # PyYAML documents that only safe_load/SafeLoader refuse python/* tags (from memory); the
-    # getters go further and refuse any non-core tag with a message instead of reading ''.
-    problems = _problems("x: !!python/name:os.system\nn: !!python/object/apply:os.getpid []\n",
-                         lambda r: (r.get_str("x"), r.get_int("n")))
-    assert problems == [
-        ("conf.yaml:1: x: the tag 'tag:yaml.org,2002:python/name:os.system' is not supported; "
-        "write a plain value"),
-        "conf.yaml:2: n: expected a single value, not a list or mapping",
+    # reader goes further and refuses any non-core tag, on a value, a list or a mapping, with
+    # one message per node, before any getter runs.
+    text = ("x: !!python/name:os.system\nn: !!python/object/apply:os.getpid []\n"
+            "m: !!python/object:os.X {a: 1}\n")
+    with pytest.raises(ConfigError) as info:
+        parse_yaml_bytes(text.encode("utf-8"), "conf.yaml")
+    assert info.value.problems == [
+        f"conf.yaml:{line}: the tag 'tag:yaml.org,2002:python/{tag}' is not supported; "
+        "write a plain value, list or mapping"
+        for line, tag in ((1, "name:os.system"), (2, "object/apply:os.getpid"),
+                          (3, "object:os.X"))
     ]
 
 

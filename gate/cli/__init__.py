@@ -11,14 +11,21 @@ internal error (exit 3) here, so a crash never exits 0 (pass) or 1 (findings).
 
 from __future__ import annotations
 
+import errno
 import importlib
+import os
+import signal
 import sys
 import traceback
 
 import click
 
 from gate import __version__
-from gate.errors import InternalError
+from gate.errors import InputError, InternalError
+
+EXIT_INTERRUPTED = 130  # 128 + SIGINT (2), the shell's code for a run ended by Ctrl-C
+# Errors of writing to standard output: a full device, a closed pipe, a file size limit.
+_OUTPUT_ERRNOS = frozenset({errno.ENOSPC, errno.EPIPE, errno.EDQUOT, errno.EFBIG, errno.EIO})
 
 # Command name -> (module, attribute, the one line --help lists; the command's own
 # ``short_help``, kept equal by tests/test_report_cli_lazy.py).
@@ -85,15 +92,26 @@ class _FailClosedGroup(_LazyGroup):
             if ctx.params.get("debug"):
                 _print_traceback(exc.__cause__ or exc)
             raise
-        except (click.ClickException, click.exceptions.Exit, click.Abort, KeyboardInterrupt):
+        except (click.ClickException, click.exceptions.Exit, click.Abort):
             raise
+        except KeyboardInterrupt:  # Ctrl-C: the shell's 128 + SIGINT, never 1 ("a rule failed")
+            click.echo("roofgate: interrupted; no reports were written", err=True)
+            raise click.exceptions.Exit(EXIT_INTERRUPTED) from None
+        except OSError as exc:
+            if exc.errno not in _OUTPUT_ERRNOS:
+                raise _internal(ctx, exc) from exc
+            raise InputError(f"cannot write ({exc.strerror}); check the free space, and the "
+                             "device or pipe standard output goes to") from None
         except Exception as exc:  # the fail-closed boundary: map every crash
-            if ctx.params.get("debug"):
-                _print_traceback(exc)
-            detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
-            raise InternalError(
-                f"internal error ({detail}); rerun with --debug and report the traceback"
-            ) from exc
+            raise _internal(ctx, exc) from exc
+
+
+def _internal(ctx: click.Context, exc: BaseException) -> InternalError:
+    """The one-line internal error (exit 3) for a crash; its traceback under --debug."""
+    if ctx.params.get("debug"):
+        _print_traceback(exc)
+    detail = " ".join(f"{type(exc).__name__}: {exc}".split())[:300]
+    return InternalError(f"internal error ({detail}); rerun with --debug and report the traceback")
 
 
 def _print_traceback(exc: BaseException) -> None:
@@ -113,5 +131,29 @@ def cli(debug: bool) -> None:
 
 
 def main() -> None:
-    """Console-script entry point."""
-    sys.exit(cli.main(prog_name="roofgate"))
+    """Console-script entry point; SIGTERM ends the run (and its worker processes) cleanly."""
+    signal.signal(signal.SIGTERM, _terminated)
+    try:
+        code = cli.main(prog_name="roofgate")
+    except SystemExit as exc:
+        code = exc.code
+    _flush_or_drop_stdout()
+    sys.exit(code)
+
+
+def _flush_or_drop_stdout() -> None:
+    """Flush stdout now; if it cannot take more (full device, closed pipe), point it at
+    /dev/null so the interpreter's own flush at exit cannot change the exit code (the
+    error line was already printed on stderr)."""
+    try:
+        sys.stdout.flush()
+    except OSError:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+
+
+def _terminated(signum: int, frame: object) -> None:
+    """SIGTERM: unwind like Ctrl-C (partial files removed, worker processes terminated),
+    exit 128 + 15. Worker processes inherit this handler, so they exit the same way."""
+    raise SystemExit(128 + signum)

@@ -27,9 +27,11 @@ from gate.config import (
     resolve_target,
 )
 from gate.errors import InputError
+from gate.model.graph import INT64_MAX
 from gate.model.shapes import StaticShape, parse_shape_binding, shape_text
 from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, remove_stale
 from gate.report import report_paths, report_targets, terminal, write_reports
+from gate.report.text import shorten
 from gate.result import GateResult
 
 F = TypeVar("F", bound=Callable[..., Any])
@@ -53,9 +55,10 @@ def parse_dims(ctx: click.Context | None, param: click.Parameter | None,
     dims: dict[str, int] = {}
     for text in values:
         name, sep, number = (part.strip() for part in text.partition("="))
-        if not sep or not name or not number.isdigit() or int(number) < 1:
-            raise click.BadParameter(f"'{text}': expected NAME=N with N a positive integer, "
-                                     "e.g. --dim seq=256", ctx=ctx, param=param)
+        if not sep or not name or not number.isdigit() or not 1 <= int(number) <= INT64_MAX:
+            raise click.BadParameter(f"'{shorten(text, 60)}': expected NAME=N with N a positive "
+                                     f"integer up to {INT64_MAX} (int64), e.g. --dim seq=256",
+                                     ctx=ctx, param=param)
         if dims.get(name, int(number)) != int(number):
             raise click.BadParameter(f"'{name}' bound twice ({dims[name]} and {number})",
                                      ctx=ctx, param=param)

@@ -12,6 +12,9 @@ from dataclasses import dataclass, field
 from math import prod
 from typing import Any
 
+# ONNX dims and element counts are int64 (protobuf); no size, dim or count may exceed this.
+INT64_MAX = 2**63 - 1
+
 Dim = int | str
 Shape = tuple[Dim, ...]
 

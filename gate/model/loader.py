@@ -44,7 +44,7 @@ from gate.model.convert import (
     external_data_warnings,
     graph_symbolic_dims,
 )
-from gate.model.graph import Graph, LoadedModel
+from gate.model.graph import INT64_MAX, Graph, LoadedModel
 from gate.model.shape_values import refine_shapes
 from gate.model.shapes import MAX_DIM, StaticShape, bind_input_shapes, sizing_notes
 from gate.model.text import repair_text_fields
@@ -116,9 +116,9 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
 
 def _check_bindings(dims: dict[str, int], path: str) -> dict[str, int]:
     for name, value in dims.items():
-        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-            raise InputError(f"dim binding {name}={value!r} is not a non-negative integer; "
-                             f"use --dim {name}=N", path)
+        if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value <= INT64_MAX:
+            raise InputError(f"dim binding {name}={str(value)[:40]} is not an integer from 0 to "
+                             f"{INT64_MAX} (ONNX dims are int64); use --dim {name}=N", path)
     return dict(sorted(dims.items()))
 
 
@@ -267,9 +267,6 @@ def _unbound_dims(graph: Graph) -> tuple[str, ...]:
 
 
 # --- integrity of the shapes the file declares -----------------------------------------
-
-INT64_MAX = 2**63 - 1  # protobuf int64: no tensor can hold more elements
-
 
 def refuse_impossible_dims(graph: onnx.GraphProto, path: str) -> None:
     """Refuse a negative dim on any declared tensor or weight, and a weight too large to exist.

@@ -24,9 +24,9 @@ import onnx
 from gate.errors import InputError
 from gate.model.convert import UNKNOWN_DIM
 from gate.model.convert import _all_graph_protos as all_graph_protos
-from gate.model.graph import Graph, Node, Shape, TensorInfo
+from gate.model.graph import INT64_MAX, Graph, Node, Shape, TensorInfo
 
-MAX_DIM = 2**63 - 1  # ONNX dims are int64
+MAX_DIM = INT64_MAX  # ONNX dims are int64
 SHAPE_EXAMPLE = "images=1x3x640x640"
 MAX_NOTED_NODES = 3
 
