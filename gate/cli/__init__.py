@@ -133,6 +133,7 @@ def cli(debug: bool) -> None:
 def main() -> None:
     """Console-script entry point; SIGTERM ends the run (and its worker processes) cleanly."""
     signal.signal(signal.SIGTERM, _terminated)
+    code: object
     try:
         code = cli.main(prog_name="roofgate")
     except SystemExit as exc:
