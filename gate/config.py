@@ -20,6 +20,9 @@ main``. Shape (every key optional except ``models`` entries' ``paths``)::
         shapes: {images: 1x3x640x640}   # every dim of one input (also [1, 3, 640, 640])
     reports: {junit: roofgate-out/junit.xml, markdown: roofgate-out/summary.md,
               json: roofgate-out/result.json}
+    rules_from: base                    # check judges with the merge base's rules ("head":
+                                        # the pull request's; read from the base's file only)
+    waiver_horizon_days: 90             # check refuses waivers expiring later than this
 
 A model belongs to the *first* group whose globs match its repository-relative
 path; unset group keys inherit the top-level defaults. Globs use ``/``,
@@ -95,6 +98,10 @@ class ProjectConfig:
     # covers is analysed with.
     defaults: ModelGroup = ModelGroup((DEFAULT_MODEL_GLOB,), (), ())
     ungated: tuple[str, ...] = ()  # .onnx files no group gates on purpose (not a typo)
+    # Whose rules `check` uses: the merge base's ("base", the default) or the pull request's
+    # ("head"); only the base's file can choose (gate/rules_source.py).
+    rules_from: str = "base"
+    waiver_horizon_days: int = 90  # `check` refuses a waiver expiring later than this
 
     def group_for(self, rel_path: str) -> ModelGroup | None:
         """The first group matching ``rel_path``; None when excluded or unmatched."""
@@ -216,8 +223,9 @@ def parse_dim_bindings(items: Iterable[str]) -> dict[str, int]:
 
 # --- reading the file -----------------------------------------------------------
 
+RULES_FROM = ("base", "head")
 _TOP_KEYS = ("version", "targets", "policies", "dims", "shapes", "precision", "exclude",
-             "ungated", "models", "reports")
+             "ungated", "models", "reports", "rules_from", "waiver_horizon_days")
 
 
 def _read(path: Path) -> ProjectConfig:
@@ -241,6 +249,8 @@ def _read(path: Path) -> ProjectConfig:
     if not top.has("models"):
         groups = (defaults,)
     reports = _reports(top)
+    rules_from = top.get_str("rules_from", "base", choices=list(RULES_FROM)) or "base"
+    horizon_days = top.get_int("waiver_horizon_days", 90, minimum=1) or 90
     for key, patterns in (("exclude", exclude), ("ungated", ungated),
                           ("models", tuple(p for g in groups for p in g.paths))):
         for pattern in patterns:
@@ -250,7 +260,7 @@ def _read(path: Path) -> ProjectConfig:
     top.finish()
     doc.raise_if_problems()
     return ProjectConfig(str(path), str(path.parent), groups, exclude, reports, defaults,
-                         ungated)
+                         ungated, rules_from, horizon_days)
 
 
 def _group(section: Section, defaults: ModelGroup) -> ModelGroup:

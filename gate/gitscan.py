@@ -164,8 +164,10 @@ def changed_models(base: str, cwd: str | Path, is_model: Callable[[str], bool],
 
     ``head`` is a revision, or ``STAGED`` for the index (staged changes).
 
-    A rename or copy counts when either side is a model; a rename that makes
-    a file stop being a model counts as a deletion, the reverse as an addition.
+    A rename or copy counts when either side is a model; a model renamed to a path
+    no glob covers is still judged (as renamed, under its old group), so moving a
+    model out of the globs does not take it out of the gate; the reverse is an
+    addition.
     """
     sides = ["--cached", base] if head == STAGED else [base, head]
     raw = git(["diff", "--name-status", "-M", "-z", "--no-ext-diff", "--no-textconv",
@@ -186,13 +188,11 @@ def _classify(letter: str, old: str | None, new: str | None,
         raise InputError(f"{new}: unmerged path; resolve the merge conflict first")
     if letter == "C":  # a copy is a new file; its source is unchanged
         return ModelChange("added", None, new) if new_ok else None
-    if letter == "R":
-        if old_ok and new_ok:
+    if letter == "R":  # moved out of the globs: still judged, under its old group
+        if old_ok:
             return ModelChange("renamed", old, new)
         if new_ok:
             return ModelChange("added", None, new)
-        if old_ok:
-            return ModelChange("deleted", old, None)
         return None
     if not (old_ok or new_ok):
         return None
@@ -208,6 +208,11 @@ def tracked_files(cwd: str | Path, rev: str = "HEAD") -> list[str]:
         raw = git(["ls-tree", "-r", "-z", "--name-only", "--full-tree", rev], cwd,
                   what=f"listing the files at {rev}")
     return sorted(_decode(item) for item in raw.split(b"\0") if item)
+
+
+def read_raw_blob(rev: str, path: str, cwd: str | Path) -> bytes:
+    """The bytes git stores for ``path`` at ``rev``: no filters or attributes applied."""
+    return git(["cat-file", "blob", f"{rev}:{path}"], cwd, what=f"reading {path} at {rev[:12]}")
 
 
 def read_blob(rev: str, path: str, cwd: str | Path) -> bytes:

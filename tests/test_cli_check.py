@@ -145,6 +145,8 @@ def test_base_side_from_a_stored_snapshot(repo: Repo) -> None:
 def test_models_outside_the_config_groups_are_listed_and_fail_unless_ungated(repo: Repo) -> None:
     repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n"
                "models:\n  - paths: ['models/a.onnx']\n")
+    repo.commit("configure only models/a.onnx")
+    repo.git("branch", "-f", "main")  # check reads the config at the merge base
     save_model(fc_model(4096), repo.path / "models/b.onnx")  # would fail, but not configured
     save_model(fc_model(4096), repo.path / "scratch/c.onnx")
     repo.commit("unconfigured models")
@@ -169,6 +171,7 @@ def test_bad_config_and_unknown_base_exit_2(repo: Repo) -> None:
     code, _out, err = check_with_base("no-such-branch")
     assert code == 2 and "unknown git revision 'no-such-branch'" in err
     repo.write("roofgate.yaml", "target: [x]\n")
+    repo.commit("break the config")  # rules come from the base, but a broken head stops too
     code, _out, err = check()
     assert code == 2 and "did you mean 'targets'" in err
 

@@ -94,7 +94,7 @@ def test_parse_name_status_with_renames_and_copies() -> None:
 
 
 @pytest.mark.parametrize("letter,old,new,expected", [
-    ("R", "a.onnx", "b.txt", ("deleted", "a.onnx", None)),  # stops being a model
+    ("R", "a.onnx", "b.txt", ("renamed", "a.onnx", "b.txt")),  # leaves the globs: still judged
     ("R", "a.txt", "b.onnx", ("added", None, "b.onnx")),
     ("R", "a.txt", "b.txt", None),
     ("C", "a.onnx", "b.onnx", ("added", None, "b.onnx")),

@@ -549,3 +549,125 @@ def test_audit_does_not_follow_links_out_of_the_repository(tmp_path: Path) -> No
         assert "Traceback" not in result.stderr
         assert reports(repo) == {}
     assert fingerprint(repo) == before
+
+
+# --- 1. rules come from the base -----------------------------------------------------------
+
+WAIVER = """
+waivers:
+  - rule: latency-regression
+    models: ["**"]
+    reason: '{reason}'
+    expires: {expires}
+"""
+HEAD_ATTACKS = {  # each lets the latency regression pass if the pull request's rules were used
+    "loosened-policy": {"policies/gate.yaml": POLICY.replace("max_increase_pct: 10",
+                                                              "max_increase_pct: 900")},
+    "token-waiver": {"policies/gate.yaml": POLICY + WAIVER.format(reason=".",
+                                                                  expires="2999-01-01")},
+    "no-policies": {"roofgate.yaml": CONFIG.replace("policies: [policies/gate.yaml]",
+                                                    "policies: []")},
+    "exclude-all": {"roofgate.yaml": CONFIG + "exclude: ['**']\n"},
+    "narrower-globs": {"roofgate.yaml": CONFIG.replace("models/**/*.onnx", "models/none/*.onnx")},
+    "opt-in-from-head": {"roofgate.yaml": CONFIG + "rules_from: head\nexclude: ['**']\n"},
+}
+CHANGE_LINES = {
+    "loosened-policy": "policies/gate.yaml: rule latency-regression loosened (max_change_pct "
+                       "10.0 -> 900.0)",
+    "token-waiver": "policies/gate.yaml: waiver for latency-regression on ** added (loosened",
+    "no-policies": "roofgate.yaml: models[0].policies changed from ['policies/gate.yaml'] to []",
+    "exclude-all": "roofgate.yaml: exclude changed from [] to ['**']",
+    "narrower-globs": "roofgate.yaml: models[0].paths changed from ['models/**/*.onnx'] to "
+                      "['models/none/*.onnx']",
+    "opt-in-from-head": "roofgate.yaml: rules_from changed from 'base' to 'head'",
+}
+
+
+@pytest.mark.parametrize("attack", sorted(HEAD_ATTACKS))
+def test_the_pull_request_cannot_loosen_its_own_gate(tmp_path: Path, attack: str) -> None:
+    repo = make_repo(tmp_path)
+    save_model(fc_model(900), repo.path / "models/a.onnx")  # 1 MiB -> 3.5 MiB of weights: slower
+    for rel, text in HEAD_ATTACKS[attack].items():
+        repo.write(rel, text)
+    repo.commit(f"regress, and {attack}")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 1, "latency-regression")
+    assert "Rules from the merge base" in result.stdout
+    written = reports(repo)
+    for text in (result.stdout, written["summary.md"], written["junit.xml"],
+                 written["result.json"]):
+        assert "Rules changed in this pull request" in text
+    assert CHANGE_LINES[attack] in result.stdout
+    assert json.loads(written["result.json"])["result"]["policies"] == ["policies/gate.yaml"]
+    assert fingerprint(repo) == before
+
+
+def test_moving_a_model_out_of_the_globs_keeps_it_gated(tmp_path: Path) -> None:
+    repo = make_repo(tmp_path)
+    repo.git("mv", "models/a.onnx", "elsewhere.onnx")
+    save_model(fc_model(900), repo.path / "elsewhere.onnx")
+    repo.commit("move out of the globs and regress")
+    result = check(repo)
+    assert_clean_exit(result, 1, "latency-regression")
+
+
+def test_a_committed_baseline_is_read_at_the_base(tmp_path: Path) -> None:
+    repo = make_repo(tmp_path)
+    cwd = os.getcwd()
+    os.chdir(repo.path)
+    try:
+        made = CliRunner().invoke(cli, ["baseline", "models/a.onnx", "-t", TARGET, "-o",
+                                        "baseline.json"])
+        assert made.exit_code == 0, made.stderr
+        repo.commit("baseline")
+        repo.git("branch", "-f", "main")
+        save_model(fc_model(900), repo.path / "models/a.onnx")
+        refreshed = CliRunner().invoke(cli, ["baseline", "models/a.onnx", "-t", TARGET, "-o",
+                                             "baseline.json"])
+        assert refreshed.exit_code == 0, refreshed.stderr
+    finally:
+        os.chdir(cwd)
+    repo.commit("regress and refresh the committed baseline")
+    result = check(repo, "--baseline", "baseline.json")
+    assert_clean_exit(result, 1, "latency-regression")
+    assert "baseline.json: the committed baseline snapshot changed" in result.stdout
+
+
+def test_the_base_may_opt_into_head_rules_and_the_reports_say_so(tmp_path: Path) -> None:
+    repo = make_repo(tmp_path, CONFIG + "rules_from: head\n")
+    save_model(fc_model(900), repo.path / "models/a.onnx")
+    repo.write("policies/gate.yaml", HEAD_ATTACKS["loosened-policy"]["policies/gate.yaml"])
+    repo.commit("regress and loosen, with the base's consent")
+    result = check(repo)
+    assert result.exit_code == 0, result.stdout + result.stderr
+    first_note = result.stdout.splitlines()[1]
+    assert "Rules from this pull request" in first_note and "rules_from: head" in first_note
+    markdown = reports(repo)["summary.md"]
+    assert markdown.index("Rules from this pull request") < markdown.index("models/a.onnx")
+
+
+@pytest.mark.parametrize("reason, expires, config_extra, message", [
+    (".", "{soon}", "", "the reason '.' is too short"),
+    ("owner: vision team, until the v3 backbone", "2999-01-01", "", "more than 90 days after"),
+    ("owner: vision team, until the v3 backbone", "{in_200_days}", "waiver_horizon_days: 365\n",
+     ""),
+])
+def test_waivers_need_a_real_reason_and_a_near_expiry(tmp_path: Path, reason: str, expires: str,
+                                                      config_extra: str, message: str) -> None:
+    from datetime import datetime, timedelta, timezone
+
+    today = datetime.now(timezone.utc).date()
+    dates = {"soon": today + timedelta(days=30), "in_200_days": today + timedelta(days=200)}
+    policy = POLICY + WAIVER.format(reason=reason, expires=expires.format(**dates))
+    repo = make_repo(tmp_path, CONFIG + config_extra, {"policies/gate.yaml": policy})
+    save_model(fc_model(900), repo.path / "models/a.onnx")
+    repo.commit("regress under a waiver")
+    before = fingerprint(repo)
+    result = check(repo)
+    if message:
+        assert_clean_exit(result, 2, message)
+        assert "policies/gate.yaml" in result.stderr
+    else:
+        assert result.exit_code == 0, result.stdout + result.stderr  # waived, as the base says
+    assert fingerprint(repo) == before

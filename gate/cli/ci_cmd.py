@@ -9,6 +9,8 @@ shows all of it on a fictional repository built in a temporary folder.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -26,6 +28,8 @@ from gate.cli.common import (
     start_reports,
     target_option,
 )
+from gate.config import ProjectConfig
+from gate.errors import RoofgateError
 from gate.outfile import TYPED_PATHS, OutputRules
 from gate.report import report_options, report_paths
 from gate.result import GateResult
@@ -81,16 +85,49 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
     Exit 0 pass, 1 a rule failed, 2 bad input or an unanalysable model.
     """
     from gate.ci import run_check
-    from gate.gitscan import repo_root
+    from gate.gitscan import merge_base, repo_root
     from gate.jobs import default_workers
+    from gate.judge import utc_today
+    from gate.rules_source import check_rules
 
     root = repo_root(Path.cwd())
-    config = load_project(kwargs, root=Path.cwd(), require_targets=True)
-    paths, rules = chosen_reports(kwargs, config), output_rules(kwargs, config, root)
-    start_reports(paths, rules)
-    result, title = run_check(root, config, base_ref, baseline=kwargs["baseline"],
-                              workers=default_workers(kwargs["jobs"]), staged=staged)
-    finish(result, paths, title, rules=rules)
+    _remove_stale_reports(kwargs, root)
+    today = utc_today()
+    base_commit = merge_base(base_ref, root)
+    with check_rules(root, base_commit, _config_loader(kwargs), config_path=kwargs["config_path"],
+                     baseline=kwargs["baseline"], today=today) as chosen:
+        config = chosen.config
+        paths = chosen_reports(kwargs, config)
+        rules = output_rules(kwargs, config, root, chosen.repo_files)
+        start_reports(paths, rules)
+        result, title = run_check(root, config, base_ref, baseline=chosen.baseline,
+                                  workers=default_workers(kwargs["jobs"]), today=today,
+                                  staged=staged)
+        result = replace(result, notes=(*chosen.notes, *result.notes),
+                         policies=tuple(chosen.repo_name(p) for p in result.policies))
+        finish(result, paths, title, rules=rules)
+
+
+def _config_loader(kwargs: dict[str, Any]) -> Callable[[Path | None, bool], ProjectConfig]:
+    """Load a config file (None: the working tree's, as every other command), with or
+    without the command-line flags applied."""
+    def load(path: Path | None, flags: bool) -> ProjectConfig:
+        given = dict(kwargs) if flags else {}
+        if path is not None:
+            given["config_path"] = str(path)
+        return load_project(given, root=Path.cwd(), require_targets=flags)
+    return load
+
+
+def _remove_stale_reports(kwargs: dict[str, Any], root: Path) -> None:
+    """The reports of an earlier run, at the paths the working tree's config names, go first,
+    so no early exit (a bad ref, a broken base config) leaves an old PASS behind. A config
+    or path the working tree gets wrong is left to the checks that follow."""
+    try:
+        config = load_project(kwargs, root=Path.cwd())
+        start_reports(chosen_reports(kwargs, config), output_rules(kwargs, config, root))
+    except RoofgateError:
+        pass
 
 
 # --- audit ----------------------------------------------------------------------------

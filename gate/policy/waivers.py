@@ -11,7 +11,7 @@ failures), so stale ones get cleaned up without blocking a merge.
 from __future__ import annotations
 
 from collections.abc import Iterable
-from datetime import date
+from datetime import date, timedelta
 
 from gate.policy.globs import match_any
 from gate.policy.rules import Breach
@@ -77,3 +77,33 @@ def _used(waiver: Waiver, verdict: Verdict) -> bool:
         and waiver_covers(waiver, verdict.rule_id, verdict.model, verdict.target, finding.layer)
         for finding in verdict.findings
     )
+
+# --- what check asks of a waiver -----------------------------------------------------
+
+MIN_REASON_CHARS = 15  # "." or "temp" is no reason; a short sentence is (common practice, no source)
+MIN_REASON_WORDS = 3
+DEFAULT_HORIZON_DAYS = 90
+
+
+def waiver_problems(policies: Iterable[Policy], today: date,
+                    horizon_days: int = DEFAULT_HORIZON_DAYS) -> list[str]:
+    """``file:line: ...`` for each waiver whose reason is too short to say why (and who
+    decided), or whose expiry lies more than ``horizon_days`` after ``today``.
+
+    Why: a waiver with ``reason: '.'`` and a far-future expiry turns a rule off
+    for good; ``check`` refuses such waivers (exit 2).
+    """
+    out = []
+    for policy in policies:
+        for waiver in policy.waivers:
+            where = f"{policy.path}:{waiver.line}: waiver for {waiver.rule_id}"
+            words = waiver.reason.split()
+            if len(waiver.reason.strip()) < MIN_REASON_CHARS or len(words) < MIN_REASON_WORDS:
+                out.append(f"{where}: the reason {waiver.reason!r} is too short; say why the rule "
+                           f"may fail and who decided (at least {MIN_REASON_WORDS} words, "
+                           f"{MIN_REASON_CHARS} characters)")
+            if waiver.expires > today + timedelta(days=horizon_days):
+                out.append(f"{where}: expires {waiver.expires.isoformat()}, more than "
+                           f"{horizon_days} days after {today.isoformat()}; set an earlier date "
+                           "(or raise waiver_horizon_days in roofgate.yaml)")
+    return out

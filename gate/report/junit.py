@@ -68,6 +68,8 @@ def render(result: GateResult) -> str:
     suites.extend(_ungated_suite(item) for item in result.ungated)
     if not suites:
         suites.append(_empty_suite(result))
+    elif result.notes:  # run notes (where the rules came from, what changed) on the first suite
+        suites[0].stdout = _x("\n".join(result.notes), multiline=True)
     return to_xml_report_string(suites, prettyprint=True)
 
 
