@@ -191,7 +191,8 @@ def _error_result(model: str, message: str, rule_index: int) -> dict[str, Any]:
 
 
 def _invocation(result: GateResult) -> dict[str, Any]:
-    notes = [{"level": "note", "message": {"text": term_safe(note)}} for note in result.notes]
+    notes: list[dict[str, Any]] = [{"level": "note", "message": {"text": term_safe(note)}}
+                                   for note in result.notes]
     notes += [{"level": "error", "message": {"text": term_safe(f"{e.model}: {e.message}")},
                "locations": [_location(e.model, ())]} for e in result.errors]
     invocation: dict[str, Any] = {
