@@ -269,11 +269,13 @@ def _unbound_dims(graph: Graph) -> tuple[str, ...]:
 # --- integrity of the shapes the file declares -----------------------------------------
 
 def refuse_impossible_dims(graph: onnx.GraphProto, path: str) -> None:
-    """Refuse a negative dim on any declared tensor or weight, and a weight too large to exist.
+    """Refuse a negative dim on a weight or below -1 on a declared tensor, and a weight too
+    large to exist.
 
     Why: a negative dim made a weight count as 0 bytes. ONNX dims are
-    non-negative (an unknown size is a named ``dim_param``); a weight's
-    element count must fit in int64 like every ONNX offset.
+    non-negative (an unknown size is a named ``dim_param``); some exporters
+    write -1 for an unknown size of an input or output, which stays unknown
+    (``--shape`` can bind it); a weight's element count must fit in int64.
     """
     for current in _graphs(graph):
         for tensor in current.initializer:
@@ -289,7 +291,7 @@ def refuse_impossible_dims(graph: onnx.GraphProto, path: str) -> None:
                 continue
             dims = [d.dim_value for d in value.type.tensor_type.shape.dim
                     if d.HasField("dim_value")]
-            if any(d < 0 for d in dims):
+            if any(d < -1 for d in dims):  # -1: "unknown" as some exporters write it
                 raise InputError(f"tensor '{value.name}' declares a negative dim {dims}; use a "
                                  "named dim (dim_param) for a size not known in advance, or "
                                  "re-export the model", path)
