@@ -55,6 +55,7 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
     check_globs(config, files)
     changes = gitscan.changed_models(base_commit, root, config.is_model, head=head)
     ungated = _ungated_changes(config, base_commit, root, head)
+    moved = _submodule_errors(root, config, base_commit, head)
     policies = PolicyCache(config)
     groups = [(change.path, _group(config, change)) for change in changes]
     refuse_unjudged_groups(groups)
@@ -72,6 +73,8 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
         result = _check_changes(root, config, changes, (head, base_commit), baseline, workers,
                                 policies, today)
         result = replace(result, ungated=tuple(ungated))
+    if moved:  # submodules check cannot look into: errors, never a silent pass
+        result = replace(result, errors=(*result.errors, *moved))
     return result, _check_title(result, base_ref, base_commit, staged)
 
 
@@ -82,6 +85,7 @@ def _check_changes(root: Path, config: ProjectConfig, changes: Sequence[gitscan.
     with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
         jobs, base_jobs, errors = _check_jobs(root, config, changes, revs, stored, tmp)
         analysed = engine.run_jobs([*jobs, *base_jobs], workers)
+    changes = _pair_by_structure(list(changes), analysed, stored)
     results = [_judge_change(change, analysed, stored, errors.get(change.path, []), policies,
                              today) for change in changes]
     return combine_results(results, "check")
@@ -107,6 +111,42 @@ def _check_title(result: GateResult, base_ref: str, base_commit: str, staged: bo
             f"gated, {counts['skipped']} skipped")
 
 
+def _pair_by_structure(changes: list[gitscan.ModelChange], analysed: _Analysed,
+                       stored: Mapping[str, list[RunRecord]] | None) -> list[gitscan.ModelChange]:
+    """Changes with each deletion + addition of the same layer structure made one rename
+    (gate/renames.py), so a model renamed and re-exported is compared with its old self."""
+    from gate.renames import pair_by_structure
+
+    deleted = {c.path: (stored.get(c.path, []) if stored is not None
+                        else analysed.get(_base_key(c.path), ([], ""))[0])
+               for c in changes if c.status == "deleted"}
+    added = {c.path: analysed.get(c.path, ([], ""))[0] for c in changes if c.status == "added"}
+    pairs = pair_by_structure(deleted, added)
+    for new, old in pairs.items():
+        if old_side := analysed.get(_base_key(old)):
+            analysed[_base_key(new)] = ([replace(r, model=new) for r in old_side[0]], old_side[1])
+    gone = set(pairs.values())
+    return sorted((gitscan.ModelChange("renamed", pairs[c.path], c.path, by_structure=True)
+                   if c.path in pairs else c for c in changes if c.path not in gone),
+                  key=lambda c: c.path)
+
+
+def _submodule_errors(root: Path, config: ProjectConfig, base_commit: str,
+                      head: str) -> list[ModelError]:
+    """One error per moved submodule where the config's model globs reach: check does not
+    read inside submodules, so a bump that changes models there must not pass unseen."""
+    out = []
+    for path, old, new in gitscan.submodule_changes(base_commit, root, head):
+        probes = (f"{path}/model.onnx", f"{path}/a/model.onnx", f"{path}/a/b/model.onnx")
+        if any(config.is_model(probe) for probe in probes):
+            out.append(ModelError(path, (
+                f"submodule moved from {old[:12] or '(none)'} to {new[:12] or '(none)'}; check "
+                "does not read models inside submodules, so it cannot judge this bump: run "
+                "roofgate audit on the submodule's models (both commits), or exclude the "
+                "submodule's path in roofgate.yaml")))
+    return out
+
+
 def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
                   stored: Mapping[str, list[RunRecord]] | None,
                   lfs_errors: list[str], policies: PolicyCache, today: date) -> GateResult:
@@ -128,8 +168,10 @@ def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
     errors = [ModelError(change.path, engine.error_text(m, change.path))
               for m in (head_err, *lfs_errors) if m]
     if change.status == "renamed":
-        notes.append(f"{change.base_path} was renamed to {change.head_path}; compared with "
-                     "the old file.")
+        how = (" (git saw a deletion and an addition; their layers match)"
+               if change.by_structure else "")
+        notes.append(f"{change.base_path} was renamed to {change.head_path}{how}; compared "
+                     "with the old file.")
     if base_err:
         notes.append(f"{change.path}: the base side could not be analysed, so the model is "
                      f"judged as new ({base_err})")

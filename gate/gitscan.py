@@ -40,6 +40,7 @@ class ModelChange:
     status: str  # "added", "deleted", "modified", "renamed", "copied", "type-changed"
     base_path: str | None  # path at the base revision; None when added
     head_path: str | None  # path at HEAD; None when deleted
+    by_structure: bool = False  # a rename found by layer structure, not by git (gate/renames)
 
     @property
     def path(self) -> str:
@@ -170,7 +171,9 @@ def changed_models(base: str, cwd: str | Path, is_model: Callable[[str], bool],
     addition.
     """
     sides = ["--cached", base] if head == STAGED else [base, head]
-    raw = git(["diff", "--name-status", "-M", "-z", "--no-ext-diff", "--no-textconv",
+    # -l0: no limit on rename detection (git skips it past 1000 files by default, with only
+    # a warning); pairs git still misses are found by layer structure (gate/renames.py).
+    raw = git(["diff", "--name-status", "-M", "-l0", "-z", "--no-ext-diff", "--no-textconv",
                *sides, "--"], cwd, what="listing changed files")
     changes = []
     for letter, old, new in parse_name_status(raw):
@@ -178,6 +181,24 @@ def changed_models(base: str, cwd: str | Path, is_model: Callable[[str], bool],
         if change is not None:
             changes.append(change)
     return sorted(changes, key=lambda c: c.path)
+
+
+def submodule_changes(base: str, cwd: str | Path, head: str = "HEAD",
+                      ) -> list[tuple[str, str, str]]:
+    """``(path, old commit, new commit)`` of every submodule moved, added or removed
+    between ``base`` and ``head`` (``STAGED``: the index); a missing side is ''."""
+    sides = ["--cached", base] if head == STAGED else [base, head]
+    raw = git(["diff", "--raw", "-z", "--no-abbrev", "--no-renames", *sides, "--"], cwd,
+              what="listing changed submodules")
+    fields = raw.split(b"\0")
+    out = []
+    for meta, name in zip(fields[0::2], fields[1::2]):
+        parts = meta.decode("ascii", "replace").lstrip(":").split()
+        if len(parts) >= 4 and "160000" in parts[:2]:
+            old = parts[2] if parts[0] == "160000" else ""
+            new = parts[3] if parts[1] == "160000" else ""
+            out.append((_decode(name), old.strip("0") and old, new.strip("0") and new))
+    return out
 
 
 def _classify(letter: str, old: str | None, new: str | None,

@@ -671,3 +671,52 @@ def test_waivers_need_a_real_reason_and_a_near_expiry(tmp_path: Path, reason: st
     else:
         assert result.exit_code == 0, result.stdout + result.stderr  # waived, as the base says
     assert fingerprint(repo) == before
+
+
+# --- 3. renames git does not pair, submodule bumps -----------------------------------------
+
+def mlp(last_features: int, prefix: str):
+    """Gemm 1024->512, Relu, Gemm 512->512, Relu, Gemm 512->last: 2 + 1 MiB + the last layer."""
+    builder = NetBuilder("mlp", weights="external")
+    x = builder.input("x", [1, 1024])
+    for index, width in enumerate((512, 512)):
+        x = builder.activation(builder.gemm(x, width, name=f"{prefix}{index}"), "relu",
+                               name=f"{prefix}act{index}")
+    builder.output(builder.gemm(x, last_features, name=f"{prefix}last"))
+    return builder.build()
+
+
+def test_a_rename_with_a_re_export_is_still_compared_with_the_old_model(tmp_path: Path) -> None:
+    repo = make_repo(tmp_path)
+    save_model(mlp(256, "fc"), repo.path / "models/mlp.onnx")
+    repo.commit("an mlp")
+    repo.git("branch", "-f", "main")
+    (repo.path / "models/mlp.onnx").unlink()
+    reexported = mlp(900, "dense_")  # another exporter's names; the last layer grew
+    reexported.graph.name = "re-exported"
+    save_model(reexported, repo.path / "models/renamed/b.onnx")
+    repo.commit("rename and re-export")
+    statuses = repo.git("diff", "--name-status", "-M", "main", "HEAD").split()
+    assert "D" in statuses and "A" in statuses  # git does not pair them
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 1, "latency-regression")
+    assert ("models/mlp.onnx was renamed to models/renamed/b.onnx (git saw a deletion and an "
+            "addition; their layers match)") in result.stdout
+    assert fingerprint(repo) == before
+
+
+def test_a_submodule_bump_where_models_live_is_refused_with_a_note(tmp_path: Path) -> None:
+    repo = make_repo(tmp_path)
+    old, new = "1" * 40, "2" * 40
+    repo.git("update-index", "--add", "--cacheinfo", f"160000,{old},models/vendor")
+    repo.git("commit", "-q", "-m", "vendor models as a submodule")
+    repo.git("branch", "-f", "main")
+    repo.git("update-index", "--cacheinfo", f"160000,{new},models/vendor")
+    repo.git("commit", "-q", "-m", "bump the vendor models")
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 2, "models/vendor: submodule moved from 111111111111 to "
+                                 "222222222222; check does not read models inside submodules")
+    assert json.loads(reports(repo)["result.json"])["exit_code"] == 2
+    assert fingerprint(repo) == before
