@@ -157,8 +157,12 @@ def test_models_outside_the_config_groups_are_listed_and_fail_unless_ungated(rep
     assert "2 changed model(s) not gated (not-gated) (exit 1)" in out.splitlines()[-2]
     junit = (repo.path / "roofgate-out/junit.xml").read_text(encoding="utf-8")
     assert 'type="not-gated"' in junit and "models/b.onnx" in junit
+    repo.git("checkout", "-q", "main")  # the target branch ungates them (check reads its rules)
     repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n"
                "models:\n  - paths: ['models/a.onnx']\nungated: ['models/b.onnx', 'scratch/**']\n")
+    repo.commit("ungate b and scratch")
+    repo.git("checkout", "-q", "pr")
+    repo.git("merge", "-q", "--no-edit", "main")
     code, out, _ = check()
     assert code == 0, out
     assert "  SKIPPED  models/b.onnx: skipped: listed under 'ungated:'" in out

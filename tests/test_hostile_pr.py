@@ -605,6 +605,9 @@ def test_the_pull_request_cannot_loosen_its_own_gate(tmp_path: Path, attack: str
 
 def test_moving_a_model_out_of_the_globs_keeps_it_gated(tmp_path: Path) -> None:
     repo = make_repo(tmp_path)
+    save_model(fc_model(128), repo.path / "models/b.onnx")  # the glob keeps matching a file
+    repo.commit("a second model")
+    repo.git("branch", "-f", "main")
     repo.git("mv", "models/a.onnx", "elsewhere.onnx")
     save_model(fc_model(900), repo.path / "elsewhere.onnx")
     repo.commit("move out of the globs and regress")
