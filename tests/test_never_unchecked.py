@@ -87,6 +87,8 @@ def repo(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Repo:
 
 def test_a_model_glob_that_matches_nothing_is_exit_2_naming_the_glob(repo: Repo) -> None:
     repo.write("roofgate.yaml", CONFIG.replace('"models/**/*.onnx"', '"model/**/*.onnx"'))
+    repo.commit("typo on the target branch")  # check reads its rules at the merge base
+    repo.git("branch", "-f", "main")
     save_model(fc_model(4096), repo.path / "models/a.onnx")  # +1000%: must not pass
     repo.commit("typo and a regression")
     for args in (["check", "--base", "main"], ["audit"]):
@@ -162,6 +164,8 @@ def test_a_scope_that_matches_nothing_is_exit_2_with_did_you_mean(zoo: Path, cas
 def test_a_scope_typo_fails_check_too(repo: Repo) -> None:
     repo.write("policies/p.yaml", POLICY.format(policy_extra="targets: [ws-64x64-4mb]\n",
                                                rule_extra=""))
+    repo.commit("scope typo on the target branch")  # check reads its rules at the merge base
+    repo.git("branch", "-f", "main")
     save_model(fc_model(96), repo.path / "models/a.onnx")
     repo.commit("grow")
     result = invoke(["check", "--base", "main"])
@@ -184,6 +188,8 @@ def test_a_model_x_target_no_rule_judges_is_exit_2(zoo: Path) -> None:
 
 def test_no_policy_is_exit_2_with_the_remedy_in_check(repo: Repo) -> None:
     repo.write("roofgate.yaml", f"targets: [{TARGET}]\nmodels:\n  - paths: ['models/*.onnx']\n")
+    repo.commit("no policy on the target branch")  # check reads its rules at the merge base
+    repo.git("branch", "-f", "main")
     save_model(fc_model(96), repo.path / "models/a.onnx")
     repo.commit("grow")
     result = invoke(["check", "--base", "main"])
