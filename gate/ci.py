@@ -244,7 +244,7 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
         files = [path] if path.is_file() else sorted(
             p for p in path.rglob("*") if p.is_file() and ".git" not in p.parts)
         if not path.is_file():
-            refuse_links_out(root, files)
+            refuse_links_out((root, path), files)
         for file in files:
             name = _model_name(root, file)
             if config.is_model(name) or (path.is_file() and is_onnx(name)):
@@ -254,16 +254,17 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
     return sorted(found), sorted(ungated.values(), key=lambda u: u.model)
 
 
-def refuse_links_out(root: Path, files: Sequence[Path]) -> None:
-    """InputError for a file met while walking a folder that resolves outside ``root``.
+def refuse_links_out(tops: Sequence[Path], files: Sequence[Path]) -> None:
+    """InputError for a file met while walking a folder that resolves outside every one of
+    ``tops`` (the repository root and the folder the operator named).
 
     Why: a committed link (to a file or a folder) would make the audit read
     whatever the runner can see outside the repository. A path typed on the
     command line is the operator's choice and is not checked.
     """
-    top = root.resolve()
+    allowed = [top.resolve() for top in tops]
     for file in files:
-        if not file.resolve().is_relative_to(top):
+        if not any(file.resolve().is_relative_to(top) for top in allowed):
             raise InputError(f"a link leading out of the repository (to {file.resolve()}); "
                              "audit reads only the repository's own files: remove the link, or "
                              "pass the file it points to explicitly", str(file))
