@@ -268,8 +268,21 @@ def blocking_lines(result: GateResult, per_rule: int = 3) -> list[tuple[Entry, s
 
 
 def blocking_sentences(result: GateResult, per_rule: int = 3) -> list[str]:
-    """The sentences of ``blocking_lines`` without their entries."""
-    return [sentence for _entry, sentence in blocking_lines(result, per_rule)]
+    """The sentences of ``blocking_lines`` without their entries, then one per changed model
+    that no model group covers (rule ``not-gated``: it blocks the merge like a failed rule)."""
+    return ([sentence for _entry, sentence in blocking_lines(result, per_rule)]
+            + [not_gated_sentence(item) for item in result.not_gated])
+
+
+def not_gated_sentence(item: UngatedModel) -> str:
+    """Why an ungated model blocks (its reason already says the fix)."""
+    return f"{item.model}: rule {NOT_GATED} fails: {item.reason}."
+
+
+def blocking_rule_count(result: GateResult) -> int:
+    """How many rules block the merge: failed blocking rules, plus ``not-gated`` once when
+    any changed model is outside every model group."""
+    return result.counts.blocking + (1 if result.not_gated else 0)
 
 
 def _above(finding: Finding) -> bool:

@@ -155,6 +155,12 @@ def test_models_outside_the_config_groups_are_listed_and_fail_unless_ungated(rep
     assert "  NOT GATED models/b.onnx: no model group" in out and "scratch/c.onnx" in out
     assert out.splitlines()[0].endswith(": 0 gated, 2 not gated, 0 skipped"), out
     assert "2 changed model(s) not gated (not-gated) (exit 1)" in out.splitlines()[-2]
+    lines = out.splitlines()  # what blocked leads: right after the headline, once per model
+    assert lines[1] == "BLOCKED by 1 rule:", out
+    assert lines[2].startswith("  1. models/b.onnx: rule not-gated fails: no model group"), out
+    assert lines[3].startswith("  2. scratch/c.onnx: rule not-gated fails:"), out
+    summary = (repo.path / "roofgate-out/summary.md").read_text(encoding="utf-8")
+    assert "**Blocking: 1 rule**" in summary and "rule not-gated fails" in summary
     junit = (repo.path / "roofgate-out/junit.xml").read_text(encoding="utf-8")
     assert 'type="not-gated"' in junit and "models/b.onnx" in junit
     repo.git("checkout", "-q", "main")  # the target branch ungates them (check reads its rules)

@@ -46,6 +46,7 @@ from gate.result import (
     GateResult,
     LayerChange,
     Verdict,
+    blocking_rule_count,
     blocking_sentences,
 )
 
@@ -162,7 +163,7 @@ def _blocking(result: GateResult, out: _Render) -> None:
     sentences = blocking_sentences(result)
     if not sentences:
         return
-    count = result.counts.blocking
+    count = blocking_rule_count(result)
     limit = out.limits.blocking
     shown = sentences if limit is None else sentences[:limit]
     out.lines += ["", f"**Blocking: {count} rule{'s' if count != 1 else ''}**", ""]

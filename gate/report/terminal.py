@@ -20,7 +20,16 @@ from gate import metrics, units
 from gate.errors import EXIT_BAD_INPUT, EXIT_GATE_FAILED, EXIT_PASS
 from gate.records import coverage_note, nothing_costed
 from gate.report.text import shorten, term_safe
-from gate.result import FAIL, NOT_GATED, WAIVED, Entry, GateResult, Verdict, blocking_sentences
+from gate.result import (
+    FAIL,
+    NOT_GATED,
+    WAIVED,
+    Entry,
+    GateResult,
+    Verdict,
+    blocking_rule_count,
+    blocking_sentences,
+)
 
 MAX_FINDINGS_PER_RULE = 3
 MAX_BLOCKING_LINES = 20
@@ -77,7 +86,7 @@ def blocking_lines(result: GateResult) -> list[str]:
     sentences = blocking_sentences(result)
     if not sentences:
         return []
-    count = result.counts.blocking
+    count = blocking_rule_count(result)
     lines = [f"BLOCKED by {count} rule{'s' if count != 1 else ''}:"]
     for number, sentence in enumerate(sentences[:MAX_BLOCKING_LINES], 1):
         lines.append(f"  {number}. {_t(shorten(sentence, 600))}")
