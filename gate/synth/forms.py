@@ -170,11 +170,12 @@ def quantize(model: onnx.ModelProto, form: str) -> onnx.ModelProto:
     graph.initializer.extend([helper.make_tensor("q.scale", TensorProto.FLOAT, [], [0.05]),
                               helper.make_tensor("q.zero", TensorProto.INT8, [], [0])])
     nodes: list[onnx.NodeProto] = []
+    quantized: set[str] = set()  # activations already behind a Q -> DQ pair (read twice: one pair)
     for node in graph.node:
         if node.op_type not in _MATRIX_OPS or node.domain not in ("", "ai.onnx"):
             nodes.append(node)
         elif form == "qdq":
-            nodes.extend(_qdq(node, weights, graph))
+            nodes.extend(_qdq(node, weights, graph, quantized))
         else:
             nodes.extend(_qoperator(node, weights, graph, form))
     del graph.node[:]
@@ -206,7 +207,7 @@ def _int8_weight(name: str, weights: dict[str, TensorProto], graph: onnx.GraphPr
 
 
 def _qdq(node: onnx.NodeProto, weights: dict[str, TensorProto],
-         graph: onnx.GraphProto) -> list[onnx.NodeProto]:
+         graph: onnx.GraphProto, quantized: set[str]) -> list[onnx.NodeProto]:
     made: list[onnx.NodeProto] = []
     new_inputs = list(node.input)
     for position, name in enumerate(node.input):
@@ -218,7 +219,9 @@ def _qdq(node: onnx.NodeProto, weights: dict[str, TensorProto],
                                   data_type=TensorProto.INT32 if bias else TensorProto.INT8)
             made.append(_dequantize(stored, name, bias))
         elif position == _ACTIVATION_POSITION:
-            made.extend(_quantize_pair(name, f"{name}.q"))
+            if name not in quantized:
+                made.extend(_quantize_pair(name, f"{name}.q"))
+                quantized.add(name)
             new_inputs[position] = f"{name}.q.dq"
     body = onnx.NodeProto()
     body.CopyFrom(node)
