@@ -11,12 +11,14 @@ allowed, a new waiver.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import fields
-from typing import Any
+from typing import Any, TypeVar
 
 from gate.config import ProjectConfig
 from gate.policy.spec import Policy, Rule, Waiver
+
+T = TypeVar("T")
 
 # Rule fields where a larger value lets more through, and where a smaller one does.
 _LOOSER_WHEN_HIGHER = ("maximum", "max_change_pct", "max_change_abs", "max_node_share",
@@ -55,14 +57,25 @@ def _config_view(config: ProjectConfig | None) -> dict[str, Any]:
 
 def policy_changes(base: Mapping[str, Policy], head: Mapping[str, Policy]) -> list[str]:
     """Lines for policy files added or removed, and per file its rules and waivers."""
-    out = []
-    for name in sorted(set(base) | set(head)):
-        if name not in head:
-            out.append(f"{name}: policy no longer named (loosened: its rules stop applying)")
-        elif name not in base:
-            out.append(f"{name}: policy newly named")
+    return _keyed_changes(
+        base, head,
+        removed=lambda name: f"{name}: policy no longer named (loosened: its rules stop applying)",
+        added=lambda name: f"{name}: policy newly named",
+        changed=lambda name, old, new: [f"{name}: {line}" for line in _one_policy(old, new)])
+
+
+def _keyed_changes(base: Mapping[str, T], head: Mapping[str, T], *,
+                   removed: Callable[[str], str], added: Callable[[str], str],
+                   changed: Callable[[str, T, T], list[str]]) -> list[str]:
+    """Lines for the keys only in ``base``, only in ``head``, and in both (sorted by key)."""
+    out: list[str] = []
+    for key in sorted(set(base) | set(head)):
+        if key not in head:
+            out.append(removed(key))
+        elif key not in base:
+            out.append(added(key))
         else:
-            out += [f"{name}: {line}" for line in _one_policy(base[name], head[name])]
+            out += changed(key, base[key], head[key])
     return out
 
 
@@ -75,15 +88,10 @@ def _one_policy(base: Policy, head: Policy) -> list[str]:
     if base.targets != head.targets:
         out.append(f"targets changed from {_show(list(base.targets))} to "
                    f"{_show(list(head.targets))}")
-    old_rules = {r.id: r for r in base.rules}
-    new_rules = {r.id: r for r in head.rules}
-    for rule_id in sorted(set(old_rules) | set(new_rules)):
-        if rule_id not in new_rules:
-            out.append(f"rule {rule_id} removed (loosened)")
-        elif rule_id not in old_rules:
-            out.append(f"rule {rule_id} added")
-        else:
-            out += _rule_change(old_rules[rule_id], new_rules[rule_id])
+    out += _keyed_changes({r.id: r for r in base.rules}, {r.id: r for r in head.rules},
+                          removed=lambda rule_id: f"rule {rule_id} removed (loosened)",
+                          added=lambda rule_id: f"rule {rule_id} added",
+                          changed=lambda _rule_id, old, new: _rule_change(old, new))
     out += _waiver_changes(base.waivers, head.waivers)
     return out
 
