@@ -10,7 +10,7 @@ import onnx
 from context import Context, assert_fully_modelled, profile_cmd
 from inputs import TARGET
 from measure import SAFETY_S, python, roofgate, rounds, run_process
-from table import Goal, Row, pair_spread, ratio_text, seconds, time_ratio
+from table import Goal, Row, pair_spread, ratio_text, rounds_text, seconds, time_ratio
 
 BARE_CODE = "import click, yaml"
 
@@ -53,7 +53,7 @@ def case_startup(ctx: Context) -> list[Row]:
         value = time_ratio(s[name], bare)
         judged = value if on_ratio else s[name].seconds
         what = "`roofgate merge` of two small shards" if name == "merge" else f"`roofgate {name}`"
-        rows.append(Row("6", f"{what} vs `python -c \"{BARE_CODE}\"` ({bare.runs} rounds)",
+        rows.append(Row("6", f"{what} vs `python -c \"{BARE_CODE}\"` ({rounds_text(bare.runs)})",
                         f"{seconds(s[name].seconds)} vs {seconds(bare.seconds)}",
                         ratio_text(value) + pair_spread(s[name], bare),
                         goal.text if goal else "- (pays only what it uses)",
@@ -74,7 +74,7 @@ def _fusion_rows(ctx: Context, resnet: Path) -> list[Row]:
         s = rounds({"fused": profile_cmd(path), "alone": profile_cmd(path, "--no-fusion")},
                    runs)
         value = time_ratio(s["fused"], s["alone"])
-        rows.append(Row("7", f"`profile` {label}: fusion vs `--no-fusion` ({runs} rounds)",
+        rows.append(Row("7", f"`profile` {label}: fusion vs `--no-fusion` ({rounds_text(runs)})",
                         f"{seconds(s['fused'].seconds)} vs {seconds(s['alone'].seconds)}",
                         ratio_text(value) + pair_spread(s["fused"], s["alone"]), goal.text,
                         goal.verdict(value)))
@@ -143,7 +143,7 @@ def case_earlier(ctx: Context) -> list[Row]:
     s = rounds({"one": roofgate("profile", str(r18), "-t", TARGET, "--format", "json"),
                 "all": roofgate("profile", str(r18), *every, "--format", "json")}, ctx.reps(3))
     count = len(builtin_target_names())
-    rows.append(Row("7", f"ResNet-18 `profile` on {count} targets vs 1 ({s['one'].runs} rounds)",
+    rows.append(Row("7", f"ResNet-18 `profile` on {count} targets vs 1 ({rounds_text(s['one'].runs)})",
                     f"{seconds(s['all'].seconds)} vs {seconds(s['one'].seconds)}",
                     ratio_text(time_ratio(s["all"], s["one"])),
                     f"< {count / 2:g}x (the model is loaded once)",

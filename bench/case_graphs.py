@@ -11,7 +11,17 @@ import onnx
 from context import FLOOR_CODE, Context, assert_fully_modelled, profile_cmd, progress
 from inputs import TARGET
 from measure import SAFETY_S, Command, Series, python, roofgate, rounds, run_process
-from table import Goal, Row, memory_ratio, mib, pair_spread, ratio_text, seconds, time_ratio
+from table import (
+    Goal,
+    Row,
+    memory_ratio,
+    mib,
+    pair_spread,
+    ratio_text,
+    rounds_text,
+    seconds,
+    time_ratio,
+)
 
 # --- 1. ResNet-50 ------------------------------------------------------------------
 
@@ -27,12 +37,12 @@ def case_resnet(ctx: Context) -> list[Row]:
     s = rounds({"floor": python(FLOOR_CODE, str(path)), "profile": profile_cmd(path)},
                ctx.reps(5))
     floor, prof = s["floor"], s["profile"]
-    runs = f"{floor.runs} rounds"
+    runs = rounds_text(floor.runs)
     t, m = time_ratio(prof, floor), memory_ratio(prof, floor)
     time_goal, memory_goal = Goal("<=", 0.8, "<= 0.8x"), Goal("<=", 0.5, "<= 0.5x")
     return [
         Row("1", f"{label} inline weights ({path.stat().st_size / 1e6:.0f} MB): `profile` "
-            f"vs floor (fresh `python`: onnx.load + infer_shapes), time, {runs}",
+            f"vs floor (fresh `python`: onnx.load + infer_shapes), time ({runs})",
             f"{seconds(prof.seconds)} vs {seconds(floor.seconds)}",
             ratio_text(t) + pair_spread(prof, floor), time_goal.text, time_goal.verdict(t)),
         Row("1", f"{label}: same, peak memory", f"{mib(prof.peak_bytes)} vs "
@@ -65,7 +75,7 @@ def case_external(ctx: Context) -> list[Row]:
     goal = Goal("<=", 1.1, "<= 1.1x time and memory, file never opened")
     verdict = "missed" if opened else ("met" if goal.verdict(t) == goal.verdict(m) == "met"
                                        else "missed")
-    return [Row("2", f"external weights 4 GiB vs 4 KiB, `profile` ({s['big'].runs} rounds)",
+    return [Row("2", f"external weights 4 GiB vs 4 KiB, `profile` ({rounds_text(s['big'].runs)})",
                 f"{seconds(s['big'].seconds)} vs {seconds(s['small'].seconds)}; "
                 f"{mib(s['big'].peak_bytes)} vs {mib(s['small'].peak_bytes)}",
                 f"time {ratio_text(t)}, memory {ratio_text(m)}; data file opened: "
@@ -272,9 +282,13 @@ def report_sizes(ctx: Context, results: dict[int, dict[str, Series]]) -> Row:
     folder = ctx.work / f"chain{size}" / "repo" / "out"
     out = {"JSON": folder / "result.json", "HTML": folder / "report.html",
            "markdown": folder / "summary.md", "JUnit": folder / "junit.xml"}
-    cells = ", ".join(f"{name} {os.path.getsize(path) / 1e6:.2f} MB"
+    cells = ", ".join(f"{name} {_size_text(os.path.getsize(path))}"
                       for name, path in out.items() if os.path.exists(path))
     html_mb = os.path.getsize(out["HTML"]) / 1e6 if os.path.exists(out["HTML"]) else None
     verdict = goal.verdict(html_mb) if size == max(results) else "not measured at 200k"
     return Row("3", f"report sizes of `check` on the {size_label(size)}-node graph", cells,
                "-", goal.text, verdict)
+
+
+def _size_text(size_bytes: int) -> str:
+    return f"{size_bytes / 1e6:.1f} MB" if size_bytes >= 100_000 else f"{size_bytes / 1e3:.1f} kB"

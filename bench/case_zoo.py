@@ -10,7 +10,7 @@ import onnx
 from context import Context, progress
 from inputs import TARGET
 from measure import SAFETY_S, Series, roofgate, rounds, run_process
-from table import Goal, Row, pair_spread, ratio_text, seconds, time_ratio
+from table import Goal, Row, pair_spread, ratio_text, rounds_text, seconds, time_ratio
 
 SECOND_TARGET = "os-16x16-512kib"
 
@@ -41,7 +41,7 @@ def _speedup(j1: Series, j2: Series) -> float | None:
 
 def _parallel_row(label: str, count: int, s: dict[str, Series], goal: Goal | None) -> Row:
     value = _speedup(s["j1"], s["j2"])
-    return Row("4", f"{label}, {count} models: `-j 1` vs `-j 2` ({s['j1'].runs} rounds)",
+    return Row("4", f"{label}, {count} models: `-j 1` vs `-j 2` ({rounds_text(s['j1'].runs)})",
                f"{seconds(s['j1'].seconds)} vs {seconds(s['j2'].seconds)}",
                f"speed-up {ratio_text(value)}" + pair_spread(s["j1"], s["j2"]),
                goal.text if goal else "- (goal set at another size)",
@@ -76,7 +76,7 @@ def _shard_row(count: int, unsharded: Series, critical: list[float], same: bool,
     path = statistics.median(critical)
     value = path / unsharded.seconds if unsharded.seconds else None
     return Row("4", f"2-shard matrix, {count} models: critical path (slower shard process + "
-               f"merge process) vs unsharded `audit -j 1` ({len(critical)} rounds)",
+               f"merge process) vs unsharded `audit -j 1` ({rounds_text(len(critical))})",
                f"{seconds(path)} vs {seconds(unsharded.seconds)}; merged JSON identical: "
                f"{'yes' if same else 'NO'}", ratio_text(value),
                goal.text if goal else "- (goal set at another size)",
@@ -95,13 +95,16 @@ def case_zoos(ctx: Context) -> list[Row]:
         repo, size_bytes = zoo_repo(folder, count, templates)
         progress(f"case 4: {count} models, {size_bytes / 2**20:.0f} MiB per side, "
                  f"{runs} round(s)")
+        progress(f"case 4: audit -j 1 vs -j 2, {count} models")
         audit = rounds({f"j{j}": roofgate("audit", "-j", str(j), cwd=repo) for j in (1, 2)},
                        runs)
         rows.append(_parallel_row(f"`audit` ({size_bytes / 2**20:.0f} MiB of weights)", count,
                                   audit, Goal(">=", 1.7, ">= 1.7x") if count == small else None))
+        progress(f"case 4: 2-shard matrix vs unsharded, {count} models")
         unsharded, critical, same = shard_rounds(repo, folder, runs)
         rows.append(_shard_row(count, unsharded, critical, same,
                                Goal("<=", 0.65, "<= 0.65x") if count == small else None))
+        progress(f"case 4: check -j 1 vs -j 2, {count} models")
         check = rounds({f"j{j}": roofgate("check", "--base", "main", "-j", str(j), cwd=repo)
                         for j in (1, 2)}, runs)
         rows.append(_parallel_row("`check`, every model changed", count, check,
@@ -126,7 +129,7 @@ def case_html(ctx: Context) -> list[Row]:
         if s["html"].seconds is not None and s["plain"].seconds is not None else None
     goal = Goal("<=", 0.3, "<= 0.3 s per model x target")
     return [Row("5", f"HTML report: `audit` of {count} models x 2 targets with vs without "
-                f"`--html` ({s['html'].runs} rounds)",
+                f"`--html` ({rounds_text(s['html'].runs)})",
                 f"{seconds(s['html'].seconds)} vs {seconds(s['plain'].seconds)}",
                 f"{ratio_text(time_ratio(s['html'], s['plain']))}; "
                 f"{added:+.3f} s per model x target" if added is not None else "n/a",

@@ -154,11 +154,11 @@ def update_readme(block: str, readme: Path = ROOT / "README.md") -> None:
 
 
 def parse_only(value: str) -> list[str]:
-    chosen = [part.strip() for part in value.split(",") if part.strip()]
-    unknown = [part for part in chosen if part not in CASES]
+    chosen = {part.strip() for part in value.split(",") if part.strip()}
+    unknown = chosen - set(CASES)
     if unknown or not chosen:
         raise argparse.ArgumentTypeError(f"cases are {', '.join(CASES)}, not {value!r}")
-    return chosen
+    return [key for key in CASES if key in chosen]  # in case order, whatever the order given
 
 
 def main(argv: list[str] | None = None) -> None:

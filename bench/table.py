@@ -86,3 +86,7 @@ def pair_spread(candidate: Series, reference: Series) -> str:
 def runs_note(*series: Series) -> str:
     counts = sorted({s.runs for s in series})
     return "/".join(str(c) for c in counts)
+
+
+def rounds_text(count: int) -> str:
+    return f"{count} round{'' if count == 1 else 's'}"
