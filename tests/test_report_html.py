@@ -22,7 +22,17 @@ import pytest
 
 from gate.report import all_reporters, charts
 from gate.report.html import REPORTER, render
-from gate.result import FAIL, PASS, Entry, GateResult, ModelError
+from gate.report.text import html_escape
+from gate.result import (
+    FAIL,
+    PASS,
+    Entry,
+    GateResult,
+    ModelError,
+    UngatedModel,
+    blocking_lines,
+    not_gated_sentence,
+)
 from gate.units import fmt_joules
 from tests.reportkit import (
     DRAM_BYTES_PER_S,
@@ -470,3 +480,48 @@ def test_a_chart_costs_milliseconds_not_seconds() -> None:
     run = make_run("models/huge.onnx", "ws-64x64-4mib", layers)
     svg = ET.fromstring(charts.roofline_svg(run, None, "t"))
     assert sum(1 for _ in svg.iter()) < 6 * charts.MAX_ROOFLINE_POINTS + 200
+
+
+def _with_ungated(result: GateResult) -> GateResult:
+    return replace(result, ungated=(
+        UngatedModel("models/new/<b>extra</b>.onnx", "no model group covers it; add a group or "
+                     "list it under ungated: in roofgate.yaml"),
+        UngatedModel("models/scratch/tmp.onnx", "matches ungated: models/scratch/**",
+                     skipped=True)))
+
+
+def test_blocking_findings_then_not_gated_models_lead_the_page() -> None:
+    result = _with_ungated(demo_result())
+    page = render(result)
+    _parse(page)
+    lead = page[page.index('id="blocking"'):page.index("</section>", page.index('id="blocking"'))]
+    findings = re.findall(r"<li><a href=\"#e\d+\">(.*?)</a></li>", lead)
+    assert findings == [html_escape(s) for _e, s in blocking_lines(result)]
+    assert lead.index('id="blocking-findings"') < lead.index('id="not-gated"')
+    assert html_escape(not_gated_sentence(result.not_gated[0])) in lead
+    assert "<b>extra" not in page  # the file name is escaped
+    assert "What blocks the merge (2 rules)" in lead  # params-fit and not-gated
+    # the skipped file is listed (never silently), but not as blocking, and below the lead
+    assert "scratch/tmp.onnx" not in lead
+    assert page.index('id="blocking"') < page.index('id="skipped"') < page.index('id="overview"')
+    assert "1 not gated, 1 skipped" in page
+
+
+def test_only_not_gated_models_still_block_at_the_top() -> None:
+    only = GateResult("check", ("p.yaml",), (), ungated=(
+        UngatedModel("models/x.onnx", "no model group covers it"),))
+    page = render(only)
+    _parse(page)
+    assert "merge blocked" in page and 'id="not-gated"' in page
+    assert 'id="blocking-findings"' not in page
+
+
+def test_every_section_lists_the_rules_that_applied(demo_page: str) -> None:
+    result = demo_result(hostile=True)
+    sections = re.findall(r'<section class="card st-[a-z]+ entry".*?</section>', demo_page,
+                          re.DOTALL)
+    assert len(sections) == len(result.ranked_entries)
+    for section, entry in zip(sections, result.ranked_entries):
+        applied = re.search(r'<p class="rules-applied">Rules applied: (.*?)\.</p>', section)
+        assert applied is not None
+        assert re.findall(r"<code>([^<]*)</code>", applied.group(1)) == list(entry.rules_applied)
