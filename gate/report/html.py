@@ -277,6 +277,9 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     if sel.unmodelled:
         caption.append(f"{_layers(sel.unmodelled)} not modelled (no cost counted; see the "
                        "note above)")
+    if sel.unknown:
+        caption.append(f"{_layers(sel.unknown)} with an unknown intensity, FLOP/s or latency "
+                       "not plotted (unknown, not zero)")
     if base is not None:
         caption.append("hollow markers are the base")
     caption.append("intensity counts every byte a layer moves (parameters, inputs, outputs), "
@@ -288,6 +291,12 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     bar_caption = f"the {_layers(len(shown))} with the largest latency"
     if left_out:
         bar_caption += f"; {_layers(left_out)} more in the table below"
+    unknown = charts.unknown_latency(head)
+    if unknown:
+        bar_caption += f"; {_layers(unknown)} with an unknown latency not drawn (unknown, not zero)"
+    no_energy = sum(1 for layer in shown if charts.unknown_energy(layer))
+    if no_energy:
+        bar_caption += f"; energy unknown for {_layers(no_energy)} shown (marked ?)"
     if flagged:
         bar_caption += "; rows shaded red are named by a failing rule"
     return (f"<h3>Roofline</h3>\n<figure>{roof}<figcaption>{'; '.join(caption)}."
@@ -312,6 +321,7 @@ def base_latencies(entry: Entry) -> Mapping[str, float]:
         if change.head_name is None or change.base_name is None:
             continue
         matched = base_layers.get(change.base_name)
-        if matched is not None and "latency_s" in matched.metrics:
-            out[change.head_name] = float(matched.metrics["latency_s"] or 0.0)
+        latency = charts.known(matched.metrics, "latency_s") if matched is not None else None
+        if latency is not None:  # an unknown base latency gets no tick (never one at 0)
+            out[change.head_name] = latency
     return out
