@@ -290,7 +290,7 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
                                  flagged=flagged)
     bar_caption = f"the {_layers(len(shown))} with the largest latency"
     if left_out:
-        bar_caption += f"; {_layers(left_out)} more in the table below"
+        bar_caption += f"; {_layers(left_out)} more (the table below lists the ones that matter)"
     unknown = charts.unknown_latency(head)
     if unknown:
         bar_caption += f"; {_layers(unknown)} with an unknown latency not drawn (unknown, not zero)"
