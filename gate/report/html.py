@@ -125,8 +125,8 @@ def _blocking(result: GateResult, anchors: Mapping[tuple[str, str], str]) -> str
     if not_gated:
         items = "".join(f"<li data-model=\"{html_escape(item.model)}\">"
                         f"{html_escape(not_gated_sentence(item))}</li>" for item in not_gated)
-        parts.append(f"<h3>Not gated: changed models outside every model group "
-                     f"(rule <code>{NOT_GATED}</code>)</h3><ul class=\"plain\" "
+        parts.append(f"<p class=\"lead\">Not gated: changed models outside every model "
+                     f"group (rule <code>{NOT_GATED}</code>)</p><ul class=\"plain\" "
                      f"id=\"not-gated\">{items}</ul>")
     return "".join(parts) + "</section>\n"
 
