@@ -99,8 +99,10 @@ def roof_vertices(peak_flops_per_s: float, dram_bytes_per_s: float,
 
 
 def bar_layers(run: RunRecord, max_layers: int = MAX_BAR_LAYERS) -> tuple[list[LayerRecord], int]:
-    """The layers shown in the bar chart (largest latency first) and how many were left out."""
-    ranked = sorted(run.layers, key=_latency_rank)
+    """The layers shown in the bar chart (largest latency first) and how many were left out.
+    A layer whose latency is unknown (not modelled) is not drawn: a bar would read as 0."""
+    ranked = sorted((layer for layer in run.layers if layer.metrics.get("latency_s") is not None),
+                    key=_latency_rank)
     return ranked[:max_layers], max(len(ranked) - max_layers, 0)
 
 

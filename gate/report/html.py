@@ -242,6 +242,9 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     bar_caption = f"the {_layers(len(shown))} with the largest latency"
     if left_out:
         bar_caption += f"; {_layers(left_out)} more in the table below"
+    unknown = sum(1 for layer in head.layers if layer.metrics.get("latency_s") is None)
+    if unknown:
+        bar_caption += f"; {_layers(unknown)} not modelled (cost unknown, not drawn)"
     if flagged:
         bar_caption += "; rows shaded red are named by a failing rule"
     return (f"<h3>Roofline</h3>\n<figure>{roof}<figcaption>{'; '.join(caption)}."
@@ -266,6 +269,7 @@ def base_latencies(entry: Entry) -> Mapping[str, float]:
         if change.head_name is None or change.base_name is None:
             continue
         matched = base_layers.get(change.base_name)
-        if matched is not None and "latency_s" in matched.metrics:
-            out[change.head_name] = float(matched.metrics["latency_s"] or 0.0)
+        latency_s = matched.metrics.get("latency_s") if matched is not None else None
+        if latency_s is not None:  # an unknown base latency gets no tick mark (never one at 0)
+            out[change.head_name] = float(latency_s)
     return out
