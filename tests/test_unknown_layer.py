@@ -104,7 +104,7 @@ def test_evaluate_reports_null_and_fails_a_layer_rule_that_reads_the_unknown(fol
     text = json.dumps(document)
     assert '"latency_s": null' in text
     page = (folder / "r.html").read_text(encoding="utf-8")
-    assert "1 layer not modelled (cost unknown, not drawn)" in page  # no bar at 0
+    assert "1 layer with an unknown latency not drawn" in page  # no bar at 0
 
 
 def test_the_fits_rule_still_judges_known_sizes_and_passes_them(folder: Path) -> None:
