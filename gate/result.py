@@ -86,7 +86,7 @@ class Verdict:
 class LayerChange:
     """A layer matched (or not) between the base and head profile of a model on a target."""
 
-    status: str  # "added", "removed", "changed", "unchanged"
+    status: str  # "added", "removed", "changed", "unchanged", "unknown" (gate.diff)
     base_name: str | None
     head_name: str | None
     op_type: str
@@ -239,6 +239,11 @@ class Blocker:
         if finding is None:
             return f"{where}: {v.summary}.{fix}"
         at = f" at layer {finding.layer}" if finding.layer is not None else ""
+        if finding.value is None:  # unknown: neither above nor below, and never a pass
+            limit = ("the rule" if finding.limit is None else
+                     f"the limit of {metrics.fmt(finding.metric, finding.limit)}")
+            return (f"{where}{at}: {metrics.label(finding.metric)} unknown (?), so {limit} "
+                    f"cannot be checked.{fix}")
         relation = "above" if _above(finding) else "below"
         return (f"{where}{at}: {metrics.label(finding.metric)} "
                 f"{metrics.fmt(finding.metric, finding.value)}, {relation} the limit of "

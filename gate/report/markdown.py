@@ -409,7 +409,7 @@ def _layer_row(change: LayerChange, head_layer: LayerRecord | None = None,
         latency, what = f"\u2014 \u2192 {metrics.fmt('latency_s', head)}", "added"
     elif change.status == "removed":
         latency, what = f"{metrics.fmt('latency_s', base)} \u2192 \u2014", "removed"
-    elif base is None:
+    elif "latency_s" not in change.deltas:
         latency, what = "unchanged", "unchanged"
     else:
         latency = f"{metrics.fmt('latency_s', base)} \u2192 {metrics.fmt('latency_s', head)}"

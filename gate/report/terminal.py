@@ -202,6 +202,8 @@ def _trend(entry: Entry) -> str:
     for metric in metrics.COST_METRICS:
         if metric in entry.diff.totals:
             word = metrics.direction(metric, *entry.diff.totals[metric])
+            if word == units.UNKNOWN:
+                return ""  # an unknown cost is neither unchanged nor improved
             if word in ("better", "worse"):
                 moved.append(word == "better")
     if not moved:
