@@ -778,6 +778,79 @@ def test_a_rename_with_a_re_export_is_still_compared_with_the_old_model(tmp_path
     assert fingerprint(repo) == before
 
 
+MANY_FILES = 1001  # git's default diff.renameLimit is 1000: past 1000 x 1000 candidates it
+# skips inexact rename detection with only a warning (git-diff(1), diff.renameLimit; from memory)
+
+
+@pytest.mark.slow
+def test_renames_are_followed_in_a_pull_request_with_over_a_thousand_files(
+        tmp_path: Path) -> None:
+    """1001 files moved and edited, a model moved and regressed (git pairs it only when its
+    rename limit is lifted: the layer shapes differ, so layer structure would not), and a
+    model renamed and re-exported (git never pairs it; gate/renames.py does)."""
+    repo = make_repo(tmp_path)
+    for k in range(MANY_FILES):
+        repo.write(f"data/f{k}.txt", f"record {k}\nshared text shared text shared\n")
+    save_model(mlp(256, "fc"), repo.path / "models/mlp.onnx")
+    repo.commit("data and an mlp")
+    repo.git("branch", "-f", "main")
+    for k in range(MANY_FILES):
+        (repo.path / f"data/f{k}.txt").unlink()
+        repo.write(f"data2/g{k}.txt", f"record {k}\nshared text shared text shared\nedit {k}\n")
+    (repo.path / "models/a.onnx").unlink()
+    save_model(fc_model(900), repo.path / "models/moved/a.onnx")
+    (repo.path / "models/mlp.onnx").unlink()
+    save_model(mlp(900, "dense_"), repo.path / "models/renamed/b.onnx")
+    repo.commit("move everything, regress two models")
+    default = subprocess.run(["git", "diff", "--name-status", "-M", "main", "HEAD"],
+                             cwd=repo.path, capture_output=True, text=True, check=True)
+    assert "rename detection was skipped" in default.stderr  # the situation is real
+    assert "R" not in {line[:1] for line in default.stdout.splitlines()}
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 1, "latency-regression")
+    assert "models/a.onnx was renamed to models/moved/a.onnx; compared with the old file." \
+        in result.stdout
+    assert ("models/mlp.onnx was renamed to models/renamed/b.onnx (git saw a deletion and an "
+            "addition; their layers match)") in result.stdout
+    blocked = [line for line in result.stdout.splitlines() if "rule latency-regression" in line]
+    assert {"models/moved/a.onnx", "models/renamed/b.onnx"} == {
+        line.split()[1] for line in blocked if line.split()[1].startswith("models/")}
+    assert fingerprint(repo) == before
+
+
+@pytest.mark.parametrize("attributes, filtered_differs", [
+    ("*.onnx text eol=crlf", True),  # LF -> CRLF on the way out (gitattributes(5), eol)
+    ("*.onnx filter=rot -text", True),  # a smudge filter the repository configures
+    ("models/** text", False),  # LF stays LF on Linux checkouts; only adding would convert
+])
+def test_attributes_added_by_the_pull_request_never_touch_the_base_side(
+        tmp_path: Path, attributes: str, filtered_differs: bool) -> None:
+    """The PR regresses the model, then adds .gitattributes declaring models text (LF -> CRLF
+    on the way out of git) or a filter. Both sides are read as git stores them (cat-file,
+    no filters, no attributes), so the base is the model it was and the regression rule
+    applies; through the filters the base would be corrupted (the negative control)."""
+    repo = make_repo(tmp_path)
+    repo.git("config", "filter.rot.smudge", "tr a-z n-za-m")
+    repo.git("config", "filter.rot.clean", "tr a-z n-za-m")
+    raw_base = (repo.path / "models/a.onnx").read_bytes()
+    save_model(fc_model(900), repo.path / "models/a.onnx")
+    repo.commit("regress")
+    repo.write(".gitattributes", attributes + "\n")
+    repo.git("add", ".gitattributes")  # only it: re-adding the model would normalise it too
+    repo.git("commit", "-q", "-m", "declare the models text")
+    filtered = subprocess.run(["git", "cat-file", "--filters", "main:models/a.onnx"],
+                              cwd=repo.path, capture_output=True, check=True).stdout
+    assert b"\n" in raw_base and (filtered != raw_base) is filtered_differs
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 1, "latency-regression")
+    assert "judged as new" not in result.stdout + result.stderr
+    entry = json.loads(reports(repo)["result.json"])["result"]["entries"][0]
+    assert entry["base"] is not None and entry["model"] == "models/a.onnx"
+    assert fingerprint(repo) == before
+
+
 def test_a_submodule_bump_where_models_live_is_refused_with_a_note(tmp_path: Path) -> None:
     repo = make_repo(tmp_path)
     old, new = "1" * 40, "2" * 40
