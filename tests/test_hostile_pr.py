@@ -20,8 +20,11 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+import onnx
 import pytest
 from click.testing import CliRunner, Result
+from onnx import TensorProto, helper, numpy_helper
 
 from gate.cli import cli
 from gate.synth.builder import save_model
@@ -413,6 +416,146 @@ def test_a_weight_with_negative_dims_is_an_error_not_zero_bytes(tmp_path: Path) 
     result = check(repo)
     assert_clean_exit(result, 2, "has a negative dim")
     assert fingerprint(repo) == before
+
+
+FOUR_BILLION = 4_000_000_000
+
+
+def _const(name: str, value: object, dtype: type = np.int64) -> onnx.NodeProto:
+    return helper.make_node("Constant", [], [name], name=f"const_{name}",
+                            value=numpy_helper.from_array(np.array(value, dtype), name))
+
+
+def _vector_nodes(kind: str, count: int) -> list[onnx.NodeProto]:
+    """Nodes building the 1-D vector ``v`` of ``count`` elements from constants."""
+    builders = {
+        "Range": [_const("start", 0), _const("limit", count), _const("delta", 1),
+                  helper.make_node("Range", ["start", "limit", "delta"], ["v"], name="big")],
+        "ConstantOfShape": [_const("shp", [count]),
+                            helper.make_node("ConstantOfShape", ["shp"], ["v"], name="big")],
+        "Expand": [_const("one", [1.0], np.float32), _const("shp", [count]),
+                   helper.make_node("Expand", ["one", "shp"], ["v"], name="big")],
+        "Tile": [_const("one", [1.0], np.float32), _const("rep", [count]),
+                 helper.make_node("Tile", ["one", "rep"], ["v"], name="big")],
+    }
+    return builders[kind]
+
+
+def with_vector(kind: str, count: int) -> onnx.ModelProto:
+    """MatMul [1, 64] x [64, 64] (costed work) plus the sum of a 1-D vector of ``count``
+    elements read through Cast, an op onnx shape inference propagates values through
+    (``OpSchema.has_data_propagation_function``). ``kind``: the op that builds the vector
+    from constants, ``If`` (a Range inside an If branch) or ``input`` (a declared input)."""
+    from tests.loadkit import model, vi, weight
+
+    def summed(nodes: list[onnx.NodeProto], out: str) -> list[onnx.NodeProto]:
+        return [*nodes, helper.make_node("Cast", ["v"], ["vf"], name="cast", to=TensorProto.FLOAT),
+                helper.make_node("ReduceSum", ["vf"], [out], name="sum", keepdims=0)]
+
+    inputs = [vi("x", [1, 64])]
+    if kind == "computed":  # limit = (x's dim 1) * count / 64: known only by evaluating shapes
+        inputs.append(vi("z", [1, 64]))
+        extra = summed([helper.make_node("Shape", ["z"], ["zs"], name="zshape"),
+                        _const("one", 1), _const("k", count // 64), _const("start", 0),
+                        _const("delta", 1),
+                        helper.make_node("Gather", ["zs", "one"], ["n"], name="dim1", axis=0),
+                        helper.make_node("Mul", ["n", "k"], ["limit"], name="times"),
+                        helper.make_node("Range", ["start", "limit", "delta"], ["v"],
+                                         name="big")], "s")
+    elif kind == "input":
+        inputs.append(vi("v", [count], TensorProto.INT64))
+        extra = summed([], "s")
+    elif kind == "If":
+        body = helper.make_graph(summed(_vector_nodes("Range", count), "t"), "then", [],
+                                 [vi("t", [])])
+        other = helper.make_graph([_const("e", 0.0, np.float32)], "else", [], [vi("e", [])])
+        extra = [_const("cond", True, np.bool_),
+                 helper.make_node("If", ["cond"], ["s"], name="branch", then_branch=body,
+                                  else_branch=other)]
+    else:
+        extra = summed(_vector_nodes(kind, count), "s")
+    nodes = [helper.make_node("MatMul", ["x", "w"], ["h"], name="mm"), *extra,
+             helper.make_node("Add", ["h", "s"], ["y"], name="add")]
+    return model(nodes, inputs, [vi("y", None)], [weight("w", [64, 64])])
+
+
+# roofgate's entry point under a 2 GiB address-space cap (its git children inherit it), saying
+# its own peak resident size (ru_maxrss, KiB on Linux) on stderr as it exits.
+CAPPED = """
+import atexit, resource, sys
+resource.setrlimit(resource.RLIMIT_AS, (2 * 1024**3, 2 * 1024**3))
+atexit.register(lambda: print("peak-kib", resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
+                              file=sys.stderr))
+from gate.cli import main
+main()
+"""
+
+
+def run_cli_in_2_gib(repo: Repo, *args: str) -> tuple[subprocess.CompletedProcess[str], int]:
+    """``roofgate ARGS`` capped at 2 GiB, and its peak resident KiB. The peak is what tells a
+    guard that works from one that does not: under the cap onnx's allocation failure may be
+    caught as a MemoryError and the run go on, but only after it used the whole cap."""
+    env = {**os.environ, "PYTHONPATH": str(WORKTREE)}
+    done = subprocess.run([sys.executable, "-c", CAPPED, *args], cwd=repo.path, env=env,
+                          capture_output=True, text=True, check=False, timeout=300)
+    peaks = [int(line.split()[1]) for line in done.stderr.splitlines()
+             if line.startswith("peak-kib ")]
+    assert peaks, done.stdout + done.stderr  # the process exited (no crash)
+    return done, peaks[0]
+
+
+@pytest.mark.parametrize("kind, needle", [
+    ("Range", "node 'big' (Range) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("ConstantOfShape", "node 'big' (ConstantOfShape) makes a 1-D tensor of 4,000,000,000"),
+    ("Expand", "node 'big' (Expand) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("Tile", "node 'big' (Tile) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("If", "node 'big' (Range) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("input", "node 'cast' (Cast) reads a 1-D tensor of 4,000,000,000 elements"),
+])
+def test_a_vector_of_billions_built_from_constants_is_refused_in_bounded_memory(
+        tmp_path: Path, kind: str, needle: str) -> None:
+    """Without the guard, onnx data propagation holds such a vector element by element (it
+    took ~24 GB on a Range of 4e9 and crashed under this cap)."""
+    from tests.loadkit import save
+
+    repo = make_repo(tmp_path)
+    save(with_vector(kind, FOUR_BILLION), repo.path / "models/vec.onnx")
+    repo.commit("a model with a huge constant-built vector")
+    before = fingerprint(repo)
+    done, peak_kib = run_cli_in_2_gib(repo, "check", "--base", "main")
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert peak_kib < 1024**2  # under 1 GiB
+    (line,) = [ln for ln in done.stdout.splitlines() if needle in ln]  # the summary's one line
+    assert line.startswith("  ERROR  models/vec.onnx: ")
+    assert "above the limit of 1,048,576" in line and "Traceback" not in done.stderr
+    assert fingerprint(repo) == before
+
+
+def test_a_vector_sized_by_shape_arithmetic_is_left_unsized_in_bounded_memory(
+        tmp_path: Path) -> None:
+    """The Range limit is computed from a shape (gate/model/shape_values evaluates it to 4e9
+    and would hand it to inference as a constant): that round of inference is skipped, the
+    vector stays unsized and is reported as such, within the memory cap."""
+    from tests.loadkit import save
+
+    repo = make_repo(tmp_path)
+    save(with_vector("computed", FOUR_BILLION), repo.path / "models/vec.onnx")
+    repo.commit("a model whose vector length comes from shape arithmetic")
+    done, peak_kib = run_cli_in_2_gib(repo, "profile", "models/vec.onnx", "-t", TARGET)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "starting at node 'big' (Range, output 'v')" in done.stdout + done.stderr
+    assert peak_kib < 1024**2  # under 1 GiB (without the guard: the whole cap, then on)
+
+
+def test_a_small_constant_built_vector_still_passes_in_bounded_memory(tmp_path: Path) -> None:
+    from tests.loadkit import save
+
+    repo = make_repo(tmp_path)
+    save(with_vector("Range", 1000), repo.path / "models/vec.onnx")
+    repo.commit("a model with a small constant-built vector")
+    done, peak_kib = run_cli_in_2_gib(repo, "check", "--base", "main")
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert peak_kib < 1024**2
 
 
 # --- 5. exit codes and processes ---------------------------------------------------------

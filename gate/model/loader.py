@@ -45,6 +45,7 @@ from gate.model.convert import (
     graph_symbolic_dims,
 )
 from gate.model.graph import INT64_MAX, Graph, LoadedModel
+from gate.model.guards import refuse_huge_shape_data
 from gate.model.shape_values import refine_shapes
 from gate.model.shapes import MAX_DIM, StaticShape, bind_input_shapes, sizing_notes
 from gate.model.text import repair_text_fields
@@ -74,6 +75,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     proto = _parse(text_path)
     _validate(proto, text_path)
     refuse_impossible_dims(proto.graph, text_path)
+    refuse_huge_shape_data(proto, text_path, bindings, shape_bindings)  # before any inference
     warnings = list(external_data_warnings(proto.graph, Path(text_path).resolve().parent))
     repaired = repair_text_fields(proto)
     if repaired:
