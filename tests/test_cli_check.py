@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import json
 import os
+import subprocess
+import sys
 from pathlib import Path
 from xml.etree import ElementTree
 
@@ -278,6 +280,26 @@ def test_sharded_audit_merged_equals_unsharded_byte_for_byte(zoo: Path) -> None:
     assert "not an onnx" in one.stdout.lower() or "broken.onnx" in one.stdout
     missing = runner.invoke(cli, ["merge", shards[0], shards[2]])
     assert missing.exit_code == 2 and "missing shard(s) 2/3" in missing.stderr
+
+
+def test_merge_reads_shards_without_importing_the_analysis_stack(zoo: Path) -> None:
+    """merge re-analyses nothing, so it must not pay for onnx and numpy at start-up."""
+    runner = CliRunner()
+    for index in (1, 2):
+        done = runner.invoke(cli, ["audit", "--shard", f"{index}/2",
+                                   "--shard-out", f"shards/s{index}.json"])
+        assert done.exit_code in (0, 1, 2), done.output
+    probe = ("import sys\nfrom gate.cli import main\n"
+             "sys.argv = ['roofgate', 'merge', 'shards/s1.json', 'shards/s2.json',"
+             " '--json', 'merged.json']\n"
+             "try:\n    main()\nfinally:\n"
+             "    print(sorted(m for m in ('onnx', 'numpy') if m in sys.modules))\n")
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
+                          env={**os.environ, "PYTHONPATH": str(Path(__file__).parents[1])},
+                          check=False)
+    assert done.returncode == 2, done.stderr  # broken.onnx: exit 2, like the audit
+    assert done.stdout.strip().splitlines()[-1] == "[]"
+    assert "m0 x.onnx" in Path("merged.json").read_text()
 
 
 def test_audit_progress_lines_and_trend(zoo: Path) -> None:

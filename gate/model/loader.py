@@ -45,8 +45,9 @@ from gate.model.convert import (
     graph_symbolic_dims,
 )
 from gate.model.graph import INT64_MAX, Graph, LoadedModel
+from gate.model.shape_text import MAX_DIM, StaticShape
 from gate.model.shape_values import refine_shapes
-from gate.model.shapes import MAX_DIM, StaticShape, bind_input_shapes, sizing_notes
+from gate.model.shapes import bind_input_shapes, sizing_notes
 from gate.model.text import repair_text_fields
 from gate.ops.contrib_shapes import register_contrib_schemas
 
