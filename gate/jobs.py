@@ -25,13 +25,13 @@ import sys
 import traceback
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Any, TextIO
+from typing import TextIO
 
 from gate.costmodel import ModelCost, cost_model
 from gate.errors import InputError, InternalError, RoofgateError, one_safe_line
 from gate.model.loader import LoadedModel, load_model
 from gate.profile import ModelProfile, profile_model
-from gate.records import RunRecord, run_from_dict, run_to_dict, with_unknown_totals
+from gate.records import RunRecord, canonical_run, with_unknown_totals
 from gate.summarize import build_run_record
 from gate.targets.spec import TargetProfile
 
@@ -67,10 +67,12 @@ class Analysis:
 
 @dataclass(frozen=True, slots=True)
 class JobOutcome:
-    """What a worker sends back: records as JSON-ready dicts, or why there are none."""
+    """What a worker sends back: its records (canonical, as a JSON round trip gives them;
+    pickled as they are, far cheaper than dicts rebuilt into records), or why there are
+    none."""
 
     key: str
-    runs: tuple[dict[str, Any], ...] = ()
+    runs: tuple[RunRecord, ...] = ()
     error: str = ""  # the model cannot be analysed (exit 2 unless allow_unanalysable)
     internal: str = ""  # roofgate's own bug (exit 3, always)
 
@@ -165,7 +167,7 @@ def analyse_job(job: Job) -> JobOutcome:
         raise
     except RoofgateError as exc:
         return JobOutcome(job.result_key, error=model_error_text(exc, job.model, job.file))
-    return JobOutcome(job.result_key, runs=tuple(run_to_dict(r) for r in runs))
+    return JobOutcome(job.result_key, runs=tuple(canonical_run(r) for r in runs))
 
 
 def _analyse_job_in_worker(job: Job) -> JobOutcome:
@@ -202,7 +204,7 @@ def run_jobs(jobs: Sequence[Job], workers: int,
     def keep(outcome: JobOutcome, model: str) -> None:
         if outcome.internal:
             raise internal_error(model, outcome.internal)
-        out[outcome.key] = ([run_from_dict(d) for d in outcome.runs], outcome.error)
+        out[outcome.key] = (list(outcome.runs), outcome.error)
         if progress:
             progress(len(out), total, model)
 
