@@ -57,7 +57,7 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
     changes = gitscan.changed_models(base_commit, root, config.is_model, head=head)
     ungated = _ungated_changes(config, base_commit, root, head)
     moved = _submodule_errors(root, config, base_commit, head)
-    policies = PolicyCache(config)
+    policies = PolicyCache(config, today)
     groups = [(change.path, _group(config, change)) for change in changes]
     refuse_unjudged_groups(groups)
     check_scopes(config, policies, [g for _, g in groups], model_files(config, files))
@@ -308,7 +308,7 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
     gone = [m for m in stored if m not in present and _in_scope(root, config, paths, m)]
     models = sorted({*present, *gone})
     mine = shard_share(models, *shard) if shard else models
-    policies = PolicyCache(config)
+    policies = PolicyCache(config, today)
     planned = [(m, _audit_group(config, m)) for m in present]
     refuse_unjudged_groups(planned)
     check_scopes(config, policies, [g for _, g in planned], present)

@@ -14,7 +14,9 @@ Layers are matched in three passes, each on the layers the previous left over:
    That pairs a layer whose shapes changed (a widened convolution) with its old
    self, reported as changed rather than as one removal plus one addition.
 
-What is left is added (head only) or removed (base only). Every step is linear in the
+What is left is added (head only) or removed (base only). A matched layer whose
+figures are unknown on a side (not modelled) and whose known figures agree is
+``unknown``: never ``unchanged``, never a 0 delta. Every step is linear in the
 number of layers (dicts built once; the alignment costs O(layers + edits^2)), so a
 100k-node model diffs in about the time it takes to read it. Values are compared
 with the metric catalogue's change tolerance (``gate.metrics.unchanged``), the
@@ -33,6 +35,9 @@ from gate.records import LayerRecord, Metric, RunRecord
 from gate.result import LayerChange, RunDiff
 
 ADDED, REMOVED, CHANGED, UNCHANGED = "added", "removed", "changed", "unchanged"
+# A matched layer whose known figures agree but some figure is unknown on a side (a layer
+# not modelled): it cannot be called unchanged, and nothing known changed.
+UNKNOWN = "unknown"
 
 Pair = tuple[int, int]  # (base index, head index)
 
@@ -252,7 +257,11 @@ def _changes(base: Sequence[LayerRecord], head: Sequence[LayerRecord],
 
 def _matched(base: LayerRecord, head: LayerRecord, how: str) -> LayerChange:
     deltas = metric_deltas(base, head)
-    status = CHANGED if deltas or base.signature != head.signature else UNCHANGED
+    known_moved = any(b is not None and h is not None for b, h in deltas.values())
+    if known_moved or base.signature != head.signature:
+        status = CHANGED
+    else:  # unknown vs anything is unknown, never unchanged ('=') or a 0 delta
+        status = UNKNOWN if deltas else UNCHANGED
     return LayerChange(status, base.name, head.name, head.op_type, how, deltas)
 
 

@@ -42,7 +42,7 @@ class LayerRecord:
     modelled: bool
     unmodelled_reason: str
     params_fit: bool
-    activations_fit: bool
+    activations_fit: bool | None  # None: an activation's size is unknown (never "fits")
     metrics: Mapping[str, Metric]
     fused_into: str = ""  # head layer of the fused group this layer runs in ("" when alone)
     fused_ops: tuple[str, ...] = ()  # on a group's head: the op types it absorbed, in order
@@ -197,7 +197,8 @@ def layer_from_dict(data: Mapping[str, Any]) -> LayerRecord:
         modelled=bool(data["modelled"]),
         unmodelled_reason=str(data["unmodelled_reason"]),
         params_fit=bool(data["params_fit"]),
-        activations_fit=bool(data["activations_fit"]),
+        activations_fit=(None if data["activations_fit"] is None
+                         else bool(data["activations_fit"])),
         metrics=_metrics(data["metrics"]),
         fused_into=str(data.get("fused_into", "")),
         fused_ops=tuple(str(op) for op in data.get("fused_ops", ())),
