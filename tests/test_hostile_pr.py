@@ -591,16 +591,48 @@ def test_the_pull_request_cannot_loosen_its_own_gate(tmp_path: Path, attack: str
         repo.write(rel, text)
     repo.commit(f"regress, and {attack}")
     before = fingerprint(repo)
-    result = check(repo)
+    result = check(repo, *EVERY_REPORT)
     assert_clean_exit(result, 1, "latency-regression")
-    assert "Rules from the merge base" in result.stdout
+    lines = result.stdout.splitlines()
+    assert lines[1] == "BLOCKED by 1 rule:"  # what blocks leads; where the rules came from next
+    assert lines[3].startswith("  rules: Rules from the merge base")
+    assert_rules_section(reports(repo), result.stdout, CHANGE_LINES[attack], side="base")
     written = reports(repo)
-    for text in (result.stdout, written["summary.md"], written["junit.xml"],
-                 written["result.json"]):
-        assert "Rules changed in this pull request" in text
-    assert CHANGE_LINES[attack] in result.stdout
     assert json.loads(written["result.json"])["result"]["policies"] == ["policies/gate.yaml"]
     assert fingerprint(repo) == before
+
+
+EVERY_REPORT = ("--junit", f"{REPORT_DIR}/junit.xml", "--markdown", f"{REPORT_DIR}/summary.md",
+                "--json", f"{REPORT_DIR}/result.json", "--sarif", f"{REPORT_DIR}/gate.sarif",
+                "--html", f"{REPORT_DIR}/r.html")
+
+
+def assert_rules_section(written: dict[str, str], stdout: str, change: str, side: str) -> None:
+    """Every report carries the rules section (its own heading, not a run note) and the
+    change line; machine formats say which side's rules judged the run."""
+    from xml.etree import ElementTree
+
+    from gate.report.text import md_escape
+
+    heading = "Rules changed in this pull request"
+    assert f"{heading} (" in stdout and f"  - {change}" in stdout
+    assert "note: Rules" not in stdout  # a section, no longer run notes
+    assert f"#### {heading}" in written["summary.md"] 
+    assert f"- {md_escape(change)}" in written["summary.md"]
+    document = json.loads(written["result.json"])["result"]
+    assert document["rules_source"]["side"] == side
+    assert any(line.startswith(change) for line in document["rules_source"]["changes"])
+    assert not any("Rules" in note for note in document["notes"])
+    suite = ElementTree.fromstring(written["junit.xml"]).find("testsuite")
+    assert suite is not None
+    properties = {p.get("name"): p.get("value") for p in suite.iter("property")}
+    assert properties["rules_from"] == side and int(properties["rules_changed"]) >= 1
+    assert change in (suite.findtext("system-out") or "")
+    run = json.loads(written["gate.sarif"])["runs"][0]
+    assert run["properties"]["rulesSource"]["side"] == side
+    texts = [n["message"]["text"] for n in run["invocations"][0]["toolExecutionNotifications"]]
+    assert any(change in text for text in texts)
+    assert "id=\"rules-changed\"" in written["r.html"] and heading in written["r.html"]
 
 
 def test_moving_a_model_out_of_the_globs_keeps_it_gated(tmp_path: Path) -> None:
@@ -642,12 +674,18 @@ def test_the_base_may_opt_into_head_rules_and_the_reports_say_so(tmp_path: Path)
     save_model(fc_model(900), repo.path / "models/a.onnx")
     repo.write("policies/gate.yaml", HEAD_ATTACKS["loosened-policy"]["policies/gate.yaml"])
     repo.commit("regress and loosen, with the base's consent")
-    result = check(repo)
+    result = check(repo, *EVERY_REPORT)
     assert result.exit_code == 0, result.stdout + result.stderr
     first_note = result.stdout.splitlines()[1]
     assert "Rules from this pull request" in first_note and "rules_from: head" in first_note
-    markdown = reports(repo)["summary.md"]
+    written = reports(repo)
+    markdown = written["summary.md"]
     assert markdown.index("Rules from this pull request") < markdown.index("models/a.onnx")
+    assert "Warning: the pull request's own rules judge it" in markdown.splitlines()[4]
+    assert "(they judge this run)" in markdown
+    assert_rules_section(written, result.stdout, CHANGE_LINES["loosened-policy"], side="head")
+    html = written["r.html"]
+    assert html.index("id=\"rules-source\"") < html.index("id=\"rules-changed\"")
 
 
 @pytest.mark.parametrize("reason, expires, config_extra, message", [
@@ -673,6 +711,37 @@ def test_waivers_need_a_real_reason_and_a_near_expiry(tmp_path: Path, reason: st
         assert "policies/gate.yaml" in result.stderr
     else:
         assert result.exit_code == 0, result.stdout + result.stderr  # waived, as the base says
+    assert fingerprint(repo) == before
+
+
+@pytest.mark.parametrize("command", [("evaluate", "models/a.onnx"), ("audit",)])
+@pytest.mark.parametrize("reason, expires, message", [
+    (".", "{soon}", "the reason '.' is too short"),
+    ("owner: vision team, until the v3 backbone", "2999-01-01", "more than 90 days after"),
+    ("owner: vision team, until the v3 backbone", "{soon}", ""),
+])
+def test_evaluate_and_audit_hold_waivers_to_the_same_limits(
+        tmp_path: Path, command: tuple[str, ...], reason: str, expires: str,
+        message: str) -> None:
+    """The waiver limits are checked where every run loads its policies, not only in check."""
+    from datetime import datetime, timedelta, timezone
+
+    soon = datetime.now(timezone.utc).date() + timedelta(days=30)
+    policy = POLICY.replace("kind: fits_in_buffer", "kind: fits_in_buffer, severity: error")
+    policy += WAIVER.format(reason=reason, expires=expires.format(soon=soon)).replace(
+        "latency-regression", "params-fit-buffer")
+    repo = make_repo(tmp_path, extra={"policies/gate.yaml": policy})
+    save_model(fc_model(4096, in_features=2048), repo.path / "models/a.onnx")  # 32 MiB > 4 MiB
+    repo.commit("a model too big for the buffer, under a waiver")
+    before = fingerprint(repo)
+    result = run_cli(repo, *command)
+    if message:
+        assert result.returncode == 2, result.stdout + result.stderr
+        assert message in result.stderr and "policies/gate.yaml:" in result.stderr
+        assert "Traceback" not in result.stderr
+    else:  # the same waiver within the limits waives the failing rule
+        assert result.returncode == 0, result.stdout + result.stderr
+        assert "waived" in result.stdout.lower()
     assert fingerprint(repo) == before
 
 
