@@ -10,7 +10,7 @@ N times one target.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, replace
 from math import ceil
 
 from gate.errors import InputError, InternalError
@@ -38,8 +38,10 @@ class EnergyBreakdown:
                 + self.dram_act_j + self.static_j)
 
     def __add__(self, other: EnergyBreakdown) -> EnergyBreakdown:
-        return EnergyBreakdown(*(getattr(self, f.name) + getattr(other, f.name)
-                                 for f in fields(self)))
+        return EnergyBreakdown(self.mac_j + other.mac_j, self.buffer_j + other.buffer_j,
+                               self.noc_j + other.noc_j, self.dram_param_j + other.dram_param_j,
+                               self.dram_act_j + other.dram_act_j,
+                               self.static_j + other.static_j)
 
     def __radd__(self, other: object) -> EnergyBreakdown:
         if other == 0:  # lets sum() start from its default 0
@@ -47,7 +49,9 @@ class EnergyBreakdown:
         return NotImplemented
 
     def as_dict(self) -> dict[str, float]:
-        return {f.name: getattr(self, f.name) for f in fields(self)}
+        return {"mac_j": self.mac_j, "buffer_j": self.buffer_j, "noc_j": self.noc_j,
+                "dram_param_j": self.dram_param_j, "dram_act_j": self.dram_act_j,
+                "static_j": self.static_j}
 
 
 @dataclass(frozen=True, slots=True)

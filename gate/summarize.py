@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
 from gate.profile import LayerProfile, ModelProfile
 from gate.records import LayerRecord, Metric, RunRecord, UnmodelledRecord
@@ -39,8 +41,9 @@ def layer_signature(layer: LayerProfile) -> str:
     return f"{layer.domain + '.' if layer.domain else ''}{layer.op_type}({ins})->({outs})"
 
 
+@lru_cache(maxsize=1 << 16)  # graphs repeat a few (shape, dtype) pairs across many layers
 def _shape_text(shape: tuple[int | str, ...] | None, dtype: str) -> str:
-    dims = "?" if shape is None else "x".join(str(d) for d in shape)
+    dims = "?" if shape is None else "x".join(map(str, shape))
     return f"{dtype.lower()}[{dims}]"
 
 

@@ -9,6 +9,7 @@ Patterson, CACM 2009; energy arithmetic with per-operation energies of the
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import replace
 from math import ceil
 from types import MappingProxyType
@@ -270,6 +271,14 @@ def test_model_totals_are_sums_of_layers_and_parts_sum_to_total() -> None:
     assert cost.param_dram_bytes == sum(layer.param_dram_bytes for layer in cost.layers)
     assert cost.inferences_per_s == pytest.approx(1 / cost.latency_s)
     assert sum([EnergyBreakdown(mac_j=1.0), EnergyBreakdown(static_j=2.0)]).total_j == 3.0
+
+
+def test_energy_parts_are_every_field() -> None:
+    """as_dict and + spell the fields out (speed); a field added later must be in both."""
+    names = [f.name for f in dataclasses.fields(EnergyBreakdown)]
+    parts = EnergyBreakdown(*(float(2 ** i) for i in range(len(names))))
+    assert list(parts.as_dict()) == names
+    assert (parts + parts).as_dict() == {name: 2 * value for name, value in parts.as_dict().items()}
 
 
 def test_peak_flops_per_joule_pays_mac_energy_and_static_power() -> None:

@@ -13,6 +13,7 @@ import io
 import json
 import unicodedata
 from collections.abc import Sequence
+from functools import lru_cache
 from typing import Any
 
 from gate import metrics, units
@@ -55,8 +56,9 @@ def render(fmt: str, profile: ModelProfile, runs: Sequence[Run],
 
 # ------------------------------------------------------------------ JSON
 
+@lru_cache(maxsize=1 << 16)  # graphs repeat a few shapes across many layers
 def shape_text(shape: Shape | None) -> str:
-    return "?" if shape is None else "x".join(str(d) for d in shape) or "scalar"
+    return "?" if shape is None else "x".join(map(str, shape)) or "scalar"
 
 
 def layer_dict(layer: LayerProfile, input_names: Sequence[str],
@@ -187,7 +189,8 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
     ``keep_end`` cuts in the middle instead, so a long dotted layer name keeps
     both its block prefix and its last part (``block3.attn...q_proj.matmul``).
     """
-    text = "".join(" " if _unprintable(ch) else ch for ch in text)
+    if not text.isprintable():  # printable: no category C, Zl or Zp character (fast path)
+        text = "".join(" " if _unprintable(ch) else ch for ch in text)
     if limit and len(text) > limit:
         if keep_end:
             head = (limit - 3) // 2
@@ -197,9 +200,11 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
 
 
 def _align(rows: list[list[str]], right_from: int) -> list[str]:
-    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
-    return ["  ".join(cell.rjust(w) if i >= right_from else cell.ljust(w)
-                      for i, (cell, w) in enumerate(zip(row, widths))).rstrip() for row in rows]
+    """Columns padded to their widest cell (left-aligned before ``right_from``, right-aligned
+    from it), two spaces apart; one format string for every row (a table may have 100k)."""
+    widths = [max(map(len, column)) for column in zip(*rows)]
+    line = "  ".join(f"{{:{'>' if i >= right_from else '<'}{w}}}" for i, w in enumerate(widths))
+    return [line.format(*row).rstrip() for row in rows]
 
 
 def _known(shapes: Sequence[Shape | None]) -> bool:
