@@ -193,7 +193,7 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
         else:
             chain.epilogue.append(position)
             chain.epilogue_ops += _element_ops(candidate)
-            chain.extra_input_bytes += max(0, candidate.input_bytes - last.output_bytes)
+            chain.extra_input_bytes += max(0, candidate.sized[0] - last.sized[1])
         last = candidate
     if not chain.members:
         return None
@@ -202,13 +202,13 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
 
 def _finish(head: LayerProfile, pad: int | None, last: LayerProfile, chain: _Chain,
             layers: tuple[LayerProfile, ...]) -> FusedGroup:
-    inputs = head.input_bytes
+    inputs = head.sized[0]
     if pad is not None:  # the conv reads the unpadded tensor straight from the Pad's input
-        inputs += layers[pad].input_bytes - layers[pad].output_bytes
+        inputs += layers[pad].sized[0] - layers[pad].sized[1]
     return FusedGroup(
         head=head.index, members=tuple(chain.members), folded=tuple(chain.folded),
         epilogue_ops=chain.epilogue_ops, input_bytes=max(0, inputs) + chain.extra_input_bytes,
-        output_bytes=last.output_bytes)
+        output_bytes=last.sized[1])
 
 
 def _role(layer: LayerProfile, node: Node, tensor: str, previous: Node, chain: _Chain,
@@ -254,7 +254,7 @@ def _element_ops(layer: LayerProfile) -> int:
     work = layer.work
     if work is None:
         return 0
-    return work.vector_ops or layer.flops
+    return work.vector_ops or work.flops
 
 
 def _pad_prologue(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: FusionSpec,

@@ -107,8 +107,9 @@ def _bar_ids(svg: ET.Element, prefix: str) -> list[int]:
 
 
 def _plottable(run) -> int:
-    return sum(1 for l in run.layers
-               if l.metrics["arithmetic_intensity"] > 0 and l.metrics["achieved_flops_per_s"] > 0)
+    return sum(1 for l in run.layers  # an unmodelled layer's figures are None: not plotted
+               if (l.metrics["arithmetic_intensity"] or 0) > 0
+               and (l.metrics["achieved_flops_per_s"] or 0) > 0)
 
 
 @pytest.fixture(scope="module")

@@ -67,8 +67,9 @@ def render(result: GateResult) -> str:
     """The whole page."""
     ranked = result.ranked_entries
     anchors = {(e.model, e.target): entry_anchor(k) for k, e in enumerate(ranked)}
-    parts = [_page_head(result), _summary(result), _blocking(result, anchors),
-             _errors(result), _skipped(result), _notes(result.notes)]
+    parts = [_page_head(result), _summary(result), _rules_source(result),
+             _blocking(result, anchors), _rules_changed(result), _errors(result),
+             _skipped(result), _notes(result.notes)]
     if result.entries:
         parts.append(overview_table(result))
     for index, entry in enumerate(ranked):
@@ -325,3 +326,23 @@ def base_latencies(entry: Entry) -> Mapping[str, float]:
         if latency is not None:  # an unknown base latency gets no tick (never one at 0)
             out[change.head_name] = latency
     return out
+
+
+def _rules_source(result: GateResult) -> str:
+    """Where ``check`` took its rules from, right under the headline."""
+    source = result.rules_source
+    if source is None:
+        return ""
+    style = " st-fail" if source.from_head else ""
+    return (f"<section class=\"card{style}\" id=\"rules-source\"><p>"
+            f"{html_escape(source.statement)}</p></section>\n")
+
+
+def _rules_changed(result: GateResult) -> str:
+    """The rules section: one item per change the pull request makes to the rules."""
+    source = result.rules_source
+    if source is None or not source.changes:
+        return ""
+    items = "".join(f"<li>{html_escape(line)}</li>" for line in source.changes)
+    return (f"<section class=\"card\" id=\"rules-changed\"><h2>{html_escape(source.heading)}"
+            f"</h2><ul class=\"plain\">{items}</ul></section>\n")

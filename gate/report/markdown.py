@@ -134,10 +134,13 @@ def comment_size(text: str) -> int:
 def _render(result: GateResult, limits: _Limits, *, squeezed: bool = False) -> str:
     out = _Render(limits, squeezed)
     out.lines += [MARKER, "", _headline(result)]
+    rules, rules_first = rules_lines(result)
+    out.lines += rules if rules_first else []
     _blocking(result, out)
     _warnings_line(result, out)
     _errors(result, out)
     _ungated(result, out)
+    out.lines += [] if rules_first else rules
     for note in result.notes:
         out.lines.append(f"\n> {md_escape(note)}")
     out.lines.append(f"\n_{_counts_line(result)} Analytical estimates from the model graph "
@@ -457,3 +460,26 @@ def rendered_sizes(result: GateResult) -> Sequence[int]:
     return [comment_size(_render(result, limits, squeezed=level > 0))
             for level, limits in enumerate(_LEVELS)]
 
+
+# --- where check took its rules from, and what the pull request changes in them --------
+
+MAX_RULE_CHANGE_LINES = 40  # a pull request rewriting every policy still fits the comment
+
+
+def rules_lines(result: GateResult) -> tuple[list[str], bool]:
+    """Where ``check`` took its rules from, then the rules section (a heading and one bullet
+    per change, the rest counted); and whether they lead the comment (the pull request's
+    own rules judge it, said as a warning) rather than follow what blocks the merge."""
+    source = result.rules_source
+    if source is None:
+        return [], False
+    mark = "**Warning: the pull request's own rules judge it.** " if source.from_head else ""
+    lines = [f"\n> {mark}{md_escape(source.statement)}"]
+    if source.changes:
+        shown = source.changes[:MAX_RULE_CHANGE_LINES]
+        lines += ["", f"#### {md_escape(source.heading)}", ""]
+        lines += [f"- {md_escape(shorten(line, 400))}" for line in shown]
+        if len(source.changes) > len(shown):
+            lines.append(f"- ... and {len(source.changes) - len(shown)} more (see the JSON "
+                         "report)")
+    return lines, source.from_head

@@ -13,6 +13,7 @@ import io
 import json
 import unicodedata
 from collections.abc import Sequence
+from functools import lru_cache
 from typing import Any
 
 from gate import metrics, units
@@ -55,8 +56,9 @@ def render(fmt: str, profile: ModelProfile, runs: Sequence[Run],
 
 # ------------------------------------------------------------------ JSON
 
+@lru_cache(maxsize=1 << 16)  # graphs repeat a few shapes across many layers
 def shape_text(shape: Shape | None) -> str:
-    return "?" if shape is None else "x".join(str(d) for d in shape) or "scalar"
+    return "?" if shape is None else "x".join(map(str, shape)) or "scalar"
 
 
 def layer_dict(layer: LayerProfile, input_names: Sequence[str],
@@ -131,14 +133,22 @@ def _csv_text(value: str) -> str:
     return "'" + value if value[:1] in ("=", "+", "-", "@", "\t", "\r") else value
 
 
+def _csv_number(value: float | None) -> str:
+    """A number as CSV text: floats exactly (repr), unknown (None) as an empty cell, never 0."""
+    if value is None:
+        return ""
+    return repr(value) if isinstance(value, float) else str(value)
+
+
 def _csv_row(layer: LayerProfile) -> list[Any]:
     return [
         layer.index, _csv_text(layer.name), _csv_text(layer.op_type), _csv_text(layer.domain),
         ";".join(shape_text(s) for s in layer.input_shapes), ";".join(layer.input_dtypes),
         ";".join(shape_text(s) for s in layer.output_shapes), ";".join(layer.output_dtypes),
         _csv_text(";".join(layer.param_names)), layer.param_count, layer.param_bytes,
-        layer.input_bytes, layer.output_bytes, layer.macs, layer.flops,
-        repr(layer.arithmetic_intensity), repr(layer.param_reuse),
+        _csv_number(layer.input_bytes), _csv_number(layer.output_bytes),
+        _csv_number(layer.macs), _csv_number(layer.flops),
+        _csv_number(layer.arithmetic_intensity), _csv_number(layer.param_reuse),
         "true" if layer.modelled else "false", _csv_text(layer.unmodelled_reason),
         layer.precision, layer.role,
     ]
@@ -155,10 +165,12 @@ def to_csv(profile: ModelProfile, runs: Sequence[Run]) -> str:
     writer.writerow(CSV_FIELDS + CSV_TARGET_FIELDS)
     for target, cost in runs:
         for layer, lc in zip(profile.layers, cost.layers):
+            energy_j = None if lc.energy is None else lc.energy.total_j
             writer.writerow(_csv_row(layer) + [
-                _csv_text(target.name), lc.engine, lc.bound, repr(lc.utilization), lc.cycles,
-                repr(lc.latency_s), repr(lc.energy.total_j), lc.param_dram_bytes,
-                lc.act_dram_bytes, _csv_text(lc.fused_into), ";".join(lc.fused_ops)])
+                _csv_text(target.name), lc.engine, lc.bound, _csv_number(lc.utilization),
+                _csv_number(lc.cycles), _csv_number(lc.latency_s), _csv_number(energy_j),
+                _csv_number(lc.param_dram_bytes), _csv_number(lc.act_dram_bytes),
+                _csv_text(lc.fused_into), ";".join(lc.fused_ops)])
     return out.getvalue()
 
 
@@ -177,7 +189,8 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
     ``keep_end`` cuts in the middle instead, so a long dotted layer name keeps
     both its block prefix and its last part (``block3.attn...q_proj.matmul``).
     """
-    text = "".join(" " if _unprintable(ch) else ch for ch in text)
+    if not text.isprintable():  # printable: no category C, Zl or Zp character (fast path)
+        text = "".join(" " if _unprintable(ch) else ch for ch in text)
     if limit and len(text) > limit:
         if keep_end:
             head = (limit - 3) // 2
@@ -187,9 +200,11 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
 
 
 def _align(rows: list[list[str]], right_from: int) -> list[str]:
-    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
-    return ["  ".join(cell.rjust(w) if i >= right_from else cell.ljust(w)
-                      for i, (cell, w) in enumerate(zip(row, widths))).rstrip() for row in rows]
+    """Columns padded to their widest cell (left-aligned before ``right_from``, right-aligned
+    from it), two spaces apart; one format string for every row (a table may have 100k)."""
+    widths = [max(map(len, column)) for column in zip(*rows)]
+    line = "  ".join(f"{{:{'>' if i >= right_from else '<'}{w}}}" for i, w in enumerate(widths))
+    return [line.format(*row).rstrip() for row in rows]
 
 
 def _known(shapes: Sequence[Shape | None]) -> bool:
@@ -203,13 +218,13 @@ def _layer_cells(layer: LayerProfile) -> list[str]:
     counted = layer.modelled
     return [str(layer.index), clean(layer.name, 40, keep_end=True), clean(layer.op_type, 24),
             clean(out, 24), layer.precision if layer.role == "layer" else layer.role,
-            units.fmt_count(layer.macs) if counted else "-",
-            units.fmt_count(layer.flops) if counted else "-",
+            units.fmt_count(layer.macs),  # '?' when not modelled (None), never 0
+            units.fmt_count(layer.flops),
             units.fmt_bytes(layer.param_bytes),
             units.fmt_bytes(layer.input_bytes) if _known(layer.input_shapes) else "?",
             units.fmt_bytes(layer.output_bytes) if _known(layer.output_shapes) else "?",
-            units.fmt_plain(layer.arithmetic_intensity) if counted else "-",
-            units.fmt_plain(layer.param_reuse) if counted and layer.param_bytes else "-"]
+            units.fmt_plain(layer.arithmetic_intensity),
+            units.fmt_plain(layer.param_reuse) if not counted or layer.param_bytes else "-"]
 
 
 def _header(label: str) -> tuple[str, str]:
@@ -235,9 +250,9 @@ LEGEND = (f"columns: {metrics.label('arithmetic_intensity')} in FLOP per byte of
 TARGET_LEGEND = (f"target columns: {metrics.label('utilization')} = share of the PE array kept "
                  "busy; bound = what limits the layer (compute, memory, overhead, none; '+' "
                  "heads a fused group that costs the layers marked 'fused')")
-MARKS = ("marks: - not counted or not applicable; precision: what the layer runs at (folded: "
+MARKS = ("marks: - not applicable; precision: what the layer runs at (folded: "
          "computed offline from constants; fused: a quantize/dequantize pair absorbed)")
-UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? size unknown"
+UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? unknown (not modelled or size unknown)"
 
 
 def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
@@ -277,8 +292,8 @@ def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> lis
     cells = _layer_cells(layer)
     for _, cost in runs:
         lc = cost.layers[i]
-        if not layer.modelled:
-            cells += ["-", "-", "-"]
+        if not layer.modelled:  # its cost is unknown, not nothing
+            cells += [units.UNKNOWN, "-", units.UNKNOWN]
             continue
         bound = "fused" if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
         cells += [units.fmt_share(lc.utilization) if lc.engine == "array" else "-", bound,

@@ -95,7 +95,8 @@ def sarif_log(result: GateResult) -> dict[str, Any]:
         "results": _results(result, index),
         "properties": {"command": result.command, "policies": list(result.policies),
                        "exitCode": result.exit_code, "modelCounts": _model_counts(result),
-                       "modelTargets": [_applied(e) for e in result.ranked_entries]},
+                       "modelTargets": [_applied(e) for e in result.ranked_entries],
+                       **_rules_source_props(result)},
     }
     return {"$schema": SARIF_SCHEMA_URI, "version": SARIF_VERSION, "runs": [run]}
 
@@ -283,8 +284,8 @@ def _ungated_notifications(result: GateResult) -> list[dict[str, Any]]:
 
 
 def _invocation(result: GateResult) -> dict[str, Any]:
-    notes: list[dict[str, Any]] = [{"level": "note", "message": {"text": term_safe(note)}}
-                                   for note in result.notes]
+    notes = _rules_source_notifications(result)
+    notes += [{"level": "note", "message": {"text": term_safe(note)}} for note in result.notes]
     notes += _ungated_notifications(result)
     notes += [{"level": "error", "message": {"text": term_safe(f"{e.model}: {e.message}")},
                "locations": [_location(e.model, ())]} for e in result.errors]
@@ -305,3 +306,26 @@ def _first_sentence(text: str) -> str:
 
 def _pascal(kind: str) -> str:
     return "".join(part[:1].upper() + part[1:] for part in kind.replace("-", "_").split("_") if part)
+
+
+def _rules_source_props(result: GateResult) -> dict[str, Any]:
+    """Run properties: where ``check`` took its rules from and what the pull request changes."""
+    source = result.rules_source
+    if source is None:
+        return {}
+    return {"rulesSource": {"side": source.side, "statement": term_safe(source.statement),
+                            "changes": [term_safe(line) for line in source.changes],
+                            "loosened": [term_safe(line) for line in source.loosened]}}
+
+
+def _rules_source_notifications(result: GateResult) -> list[dict[str, Any]]:
+    """The statement, then one notification per rule change (a warning when it loosens)."""
+    source = result.rules_source
+    if source is None:
+        return []
+    out: list[dict[str, Any]] = [{"level": "warning" if source.from_head else "note",
+                                  "message": {"text": term_safe(source.statement)}}]
+    out += [{"level": "warning" if line in source.loosened else "note",
+             "message": {"text": term_safe(f"{source.heading}: {line}")}}
+            for line in source.changes]
+    return out
