@@ -21,7 +21,6 @@ from __future__ import annotations
 import os
 from collections import ChainMap
 from collections.abc import Iterator
-from pathlib import Path
 from typing import Any
 
 import onnx
@@ -36,7 +35,7 @@ from gate.model.constants import (
     is_parameter,
     small_values,
 )
-from gate.model.graph import Graph, Node, ParamSource, TensorInfo, stored_as_itself
+from gate.model.graph import Graph, Node, ParamSource, Shape, TensorInfo, stored_as_itself
 from gate.model.order import topological_order
 
 UNKNOWN_DIM = "?"
@@ -303,7 +302,7 @@ def _readers(proto: onnx.GraphProto) -> dict[str, set[str]]:
 
 def _names_read_in(graph: onnx.GraphProto) -> set[str]:
     names: set[str] = set()
-    for current in _all_graph_protos(graph):
+    for current in all_graph_protos(graph):
         for node in current.node:
             names.update(n for n in node.input if n)
         names.update(v.name for v in current.output)
@@ -373,16 +372,22 @@ def convert_model(proto: onnx.ModelProto, path: str,
     return graph, converter.warnings
 
 
-def _all_graph_protos(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
+def all_graph_protos(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
+    """``graph`` and every subgraph nested in its nodes' attributes (depth first)."""
     stack = [graph]
     while stack:
         current = stack.pop()
         yield current
         for node in current.node:
+            if not len(node.attribute):  # most nodes: no attribute to look into
+                continue
             for attribute in node.attribute:
                 if attribute.HasField("g"):
                     stack.append(attribute.g)
                 stack.extend(attribute.graphs)
+
+
+_all_graph_protos = all_graph_protos
 
 
 _DATA_FIELDS = ("raw_data", "float_data", "int32_data", "string_data", "int64_data",
@@ -397,66 +402,54 @@ def drop_weight_values(graph: onnx.GraphProto) -> None:
     integer tensors small enough to be shapes or indices (data propagation may
     read them). Shape inference then copies kilobytes instead of the weights.
     """
-    for current in _all_graph_protos(graph):
+    for current in all_graph_protos(graph):
         for tensor in current.initializer:
-            if tensor.data_location == TensorProto.EXTERNAL:
-                continue
-            count = 1
-            for dim in tensor.dims:
-                count *= int(dim)
-            if count <= CONST_VALUE_LIMIT or (tensor.data_type in _SHAPE_DTYPES
-                                              and count <= 64 * CONST_VALUE_LIMIT):
-                continue
-            for name in _DATA_FIELDS:
-                tensor.ClearField(name)
+            if tensor.data_location != TensorProto.EXTERNAL:
+                drop_tensor_values(tensor)
 
 
-def collect_symbolic_dims(graph: onnx.GraphProto) -> set[str]:
-    """Every ``dim_param`` declared on a graph input, output or value_info (all scopes)."""
-    names: set[str] = set()
-    for current in _all_graph_protos(graph):
-        for value in (*current.input, *current.output, *current.value_info):
-            for dim in value.type.tensor_type.shape.dim:
-                if dim.HasField("dim_param") and dim.dim_param:
-                    names.add(dim.dim_param)
-    return names
+def drop_tensor_values(tensor: TensorProto) -> None:
+    """Clear one inline initializer's values unless it is small or may be a shape."""
+    count = 1
+    for dim in tensor.dims:
+        count *= int(dim)
+    if count <= CONST_VALUE_LIMIT or (tensor.data_type in _SHAPE_DTYPES
+                                      and count <= 64 * CONST_VALUE_LIMIT):
+        return
+    for name in _DATA_FIELDS:
+        tensor.ClearField(name)
 
 
 def graph_symbolic_dims(graph: Graph) -> set[str]:
     """Every symbolic dim left on a tensor of ``graph`` or its subgraphs."""
-    names: set[str] = set()
+    shapes: set[Shape] = set()  # graphs repeat shapes: look at each distinct one once
     stack = [graph]
     while stack:
         current = stack.pop()
-        for tensor in current.inputs:
-            names.update(tensor.symbolic_dims())
+        shapes.update(t.shape for t in current.inputs if t.shape)
         for node in current.nodes:
             for maybe in (*node.inputs, *node.outputs):  # an omitted optional input is None
-                if maybe is not None:
-                    names.update(maybe.symbolic_dims())
-            stack.extend(node.subgraphs.values())
-    return names
+                if maybe is not None and maybe.shape:
+                    shapes.add(maybe.shape)
+            if node.subgraphs:
+                stack.extend(node.subgraphs.values())
+    return {d for shape in shapes for d in shape if isinstance(d, str)}
 
 
-def external_data_warnings(graph: onnx.GraphProto, folder: Path) -> list[str]:
-    """Warnings for external-data locations outside the model's folder (never opened)."""
-    warnings: list[str] = []
-    root = os.path.realpath(folder)
-    for current in _all_graph_protos(graph):
-        for tensor in current.initializer:
-            if tensor.data_location != TensorProto.EXTERNAL:
-                continue
-            location = next((e.value for e in tensor.external_data if e.key == "location"), "")
-            try:
-                target = os.path.realpath(os.path.join(root, location)) if location else ""
-            except (ValueError, OSError):  # e.g. an embedded NUL: no file system path at all
-                target = ""
-            if not target:
-                warnings.append(f"initializer '{tensor.name}' has an unusable external-data "
-                                f"location ({location!r}); not opened (roofgate reads no "
-                                f"weights), but re-export the model before shipping it")
-            elif os.path.isabs(location) or os.path.commonpath([root, target]) != root:
-                warnings.append(f"initializer '{tensor.name}' points its external data outside "
-                                f"the model's folder ('{location}'); not opened (roofgate "
-                                f"reads no weights), but do not ship such a model")
-    return warnings
+def external_data_warning(tensor: TensorProto, root: str) -> str:
+    """A warning for an external-data location outside the folder ``root`` (a real path),
+    or "" (the data is never opened either way)."""
+    location = next((e.value for e in tensor.external_data if e.key == "location"), "")
+    try:
+        target = os.path.realpath(os.path.join(root, location)) if location else ""
+    except (ValueError, OSError):  # e.g. an embedded NUL: no file system path at all
+        target = ""
+    if not target:
+        return (f"initializer '{tensor.name}' has an unusable external-data "
+                f"location ({location!r}); not opened (roofgate reads no "
+                f"weights), but re-export the model before shipping it")
+    if os.path.isabs(location) or os.path.commonpath([root, target]) != root:
+        return (f"initializer '{tensor.name}' points its external data outside "
+                f"the model's folder ('{location}'); not opened (roofgate "
+                f"reads no weights), but do not ship such a model")
+    return ""
