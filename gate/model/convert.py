@@ -45,22 +45,31 @@ _SUBGRAPH_READER = "<subgraph>"  # a consumer that is a body graph (or a graph o
 _INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", "INT64",
                          "UINT64", "BOOL", "INT4", "UINT4"})
 _Scope = ChainMap[str, Any]  # name -> value, innermost scope first
+_NO_POSITIONS: frozenset[int] = frozenset()
 
 
 def dtype_name(elem_type: int) -> str:
     """ONNX TensorProto data type name, or "UNDEFINED" for an unknown enum value."""
-    try:
-        return TensorProto.DataType.Name(elem_type)
-    except ValueError:
-        return "UNDEFINED"
+    name = _DTYPE_NAMES.get(elem_type)
+    if name is None:
+        try:
+            name = TensorProto.DataType.Name(elem_type)
+        except ValueError:
+            name = "UNDEFINED"
+        _DTYPE_NAMES[elem_type] = name
+    return name
+
+
+_DTYPE_NAMES: dict[int, str] = {}  # enum value -> name (asked once per tensor otherwise)
 
 
 def _dims(shape: onnx.TensorShapeProto, declared: frozenset[str] | None) -> tuple[int | str, ...]:
     out: list[int | str] = []
     for dim in shape.dim:
-        if dim.HasField("dim_value") and dim.dim_value >= 0:
+        kind = dim.WhichOneof("value")  # one call instead of two HasField
+        if kind == "dim_value" and dim.dim_value >= 0:
             out.append(int(dim.dim_value))
-        elif dim.HasField("dim_param") and dim.dim_param and (
+        elif kind == "dim_param" and dim.dim_param and (
                 declared is None or dim.dim_param in declared):
             out.append(dim.dim_param)
         else:
@@ -128,11 +137,7 @@ class _Converter:
         for value in (*proto.input, *proto.value_info, *proto.output):
             if value.name not in initializers or value.type.tensor_type.HasField("shape"):
                 infos.setdefault(value.name, value_info(value, self.declared))
-        for node in proto.node:  # every produced name is in scope, shaped or not
-            for name in node.output:
-                if name and name not in infos:
-                    infos[name] = TensorInfo(name, None, "UNDEFINED")
-        _constant_values(proto, consts)
+        readers = _scan_nodes(proto, infos, consts)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
         order = topological_order(
@@ -140,7 +145,7 @@ class _Converter:
                                                          and name in outer_infos), self.path)
         ctx = {name: _chain(local if outer is None else outer[name].new_child(local))
                for name, local in (("infos", infos), ("sources", sources), ("consts", consts))}
-        walk = _Walk(ctx, _readers(proto), set())
+        walk = _Walk(ctx, readers, set())
         nodes = tuple(self._node(index, proto.node[i], walk, depth)
                       for index, i in enumerate(order))
         return Graph(nodes=nodes, initializers=initializers, inputs=inputs,
@@ -177,7 +182,7 @@ class _Converter:
         return found
 
     def _node(self, index: int, proto: onnx.NodeProto, walk: _Walk, depth: int) -> Node:
-        infos, sources, consts = walk.scope("infos"), walk.scope("sources"), walk.scope("consts")
+        infos, sources, consts = walk.infos, walk.sources, walk.consts
         input_names = list(proto.input)  # one read of the protobuf field (reads are not free)
         inputs = tuple(None if not name else infos.get(name) or TensorInfo(name, None, "UNDEFINED")
                        for name in input_names)
@@ -186,7 +191,8 @@ class _Converter:
                         else TensorInfo("", None, "UNDEFINED") for name in output_names)
         attributes: dict[str, Any] = {}
         subgraphs: dict[str, Graph] = {}
-        for attribute in proto.attribute if len(proto.attribute) else ():
+        proto_attributes = proto.attribute
+        for attribute in proto_attributes if len(proto_attributes) else ():
             if attribute.type == AttributeProto.GRAPH:
                 subgraphs[attribute.name] = self.graph(attribute.g, walk.ctx, depth + 1)
             elif attribute.type == AttributeProto.GRAPHS:
@@ -201,6 +207,7 @@ class _Converter:
         input_sources = {i: sources[n] for i, n in enumerate(input_names) if n and n in sources}
         params = {i: source for i, source in input_sources.items()
                   if is_parameter(op_type, i, inputs[i], source)}
+        readers = walk.readers
         return Node(
             index=index,
             name=walk.unique_name(proto.name, op_type, index),
@@ -209,14 +216,14 @@ class _Converter:
             inputs=inputs,
             outputs=outputs,
             attributes=attributes,
-            param_inputs=frozenset(params),
+            param_inputs=frozenset(params) if params else _NO_POSITIONS,
             subgraphs=subgraphs,
             const_values={i: consts[n] for i, n in enumerate(input_names) if n and n in consts},
             param_sources=input_sources,
             folded=folded,
             fused=not folded and walk.fuses(proto, input_names, output_names),
             unused_outputs=frozenset(i for i, n in enumerate(output_names)
-                                     if n and n not in walk.readers),
+                                     if n and n not in readers) or _NO_POSITIONS,
         )
 
     def _fold(self, proto: onnx.NodeProto, inputs: tuple[TensorInfo | None, ...],
@@ -250,6 +257,9 @@ class _Walk:
         self.used_names = used_names
         self.fused_quantized: set[str] = set()
         self.nested = len(ctx["infos"].maps) > 1
+        self.infos = self.scope("infos")  # looked up for every node: resolved once
+        self.sources = self.scope("sources")
+        self.consts = self.scope("consts")
 
     def scope(self, name: str) -> Any:
         """The scope for lookups: the plain dict at the top level (fast), chained inside subgraphs."""
@@ -276,16 +286,30 @@ class _Walk:
         return _unique_name(name, op_type, index, self.used_names)
 
 
-def _readers(proto: onnx.GraphProto) -> dict[str, set[str]]:
-    """Tensor name -> op types of the nodes that read it; graph outputs and names read
-    inside body graphs are read by ``_SUBGRAPH_READER``."""
+def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
+                consts: dict[str, tuple[int, ...]]) -> dict[str, set[str]]:
+    """One walk of the graph's nodes: every produced name goes in scope (shaped or not),
+    Constant nodes' small integer values into ``consts``; returns the readers: tensor
+    name -> op types of the nodes that read it (graph outputs and names read inside body
+    graphs are read by ``_SUBGRAPH_READER``)."""
     readers: dict[str, set[str]] = {}
     for node in proto.node:
-        op_type = node.op_type if node.domain in ("", "ai.onnx") else f"{node.domain}.{node.op_type}"
+        for name in node.output:
+            if name and name not in infos:
+                infos[name] = TensorInfo(name, None, "UNDEFINED")
+        domain = node.domain
+        if node.op_type == "Constant" and domain in ("", "ai.onnx"):
+            _constant_value(node, consts)
+        op_type = node.op_type if domain in ("", "ai.onnx") else f"{domain}.{node.op_type}"
         for name in node.input:
             if name:
-                readers.setdefault(name, set()).add(op_type)
-        for attribute in node.attribute:
+                known = readers.get(name)
+                if known is None:
+                    readers[name] = {op_type}
+                else:
+                    known.add(op_type)
+        attributes = node.attribute
+        for attribute in attributes if len(attributes) else ():
             if attribute.type == AttributeProto.GRAPH:
                 bodies = [attribute.g]
             elif attribute.type == AttributeProto.GRAPHS:
@@ -309,20 +333,19 @@ def _names_read_in(graph: onnx.GraphProto) -> set[str]:
     return names
 
 
-def _constant_values(proto: onnx.GraphProto, consts: dict[str, tuple[int, ...]]) -> None:
-    """Small integer values of the graph's Constant nodes (metadata the cost functions read)."""
-    for node in proto.node:
-        if node.op_type != "Constant" or node.domain not in ("", "ai.onnx") or not node.output:
-            continue
-        for attribute in node.attribute:
-            if attribute.name == "value" and attribute.type == AttributeProto.TENSOR:
-                values = _small_int_values(attribute.t)
-                if values is not None:
-                    consts[node.output[0]] = values
-            elif attribute.name == "value_int":
-                consts[node.output[0]] = (int(attribute.i),)
-            elif attribute.name == "value_ints" and len(attribute.ints) <= CONST_VALUE_LIMIT:
-                consts[node.output[0]] = tuple(int(v) for v in attribute.ints)
+def _constant_value(node: onnx.NodeProto, consts: dict[str, tuple[int, ...]]) -> None:
+    """The small integer value of a Constant node (metadata the cost functions read)."""
+    if not node.output:
+        return
+    for attribute in node.attribute:
+        if attribute.name == "value" and attribute.type == AttributeProto.TENSOR:
+            values = _small_int_values(attribute.t)
+            if values is not None:
+                consts[node.output[0]] = values
+        elif attribute.name == "value_int":
+            consts[node.output[0]] = (int(attribute.i),)
+        elif attribute.name == "value_ints" and len(attribute.ints) <= CONST_VALUE_LIMIT:
+            consts[node.output[0]] = tuple(int(v) for v in attribute.ints)
 
 
 def _chain(scope: Any) -> _Scope:
