@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from math import prod
 
 from gate.errors import InputError, InternalError
+from gate.model.constants import logical_source
 from gate.model.convert import UNKNOWN_DIM
 from gate.model.graph import (
     DTYPE_BITS,
@@ -379,6 +380,8 @@ def _layer_params(node: Node) -> dict[str, _Param]:
         for position in sorted(current.param_inputs):
             tensor = current.input(position)
             source = current.param_source(position)
+            if source is not None:  # a packed weight counts the logical weights it holds
+                source = logical_source(current, position, source)
             if tensor is not None and source is not None:
                 params.setdefault(tensor.name, (tensor, source, is_bias(current, position)))
         for name in counted_subgraphs(current):

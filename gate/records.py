@@ -150,6 +150,23 @@ def coverage_note(run: RunRecord) -> str:
     return f"{run.model} on {run.target}: {unmodelled} of {layers} layers unmodelled: {what}{fix}"
 
 
+def canonical_run(run: RunRecord) -> RunRecord:
+    """``run`` exactly as a JSON round trip (``run_from_dict(run_to_dict(run))``) gives it
+    back, metrics in sorted order, without building the dicts: what workers send back, so
+    in-process, worker and shard-file records report byte for byte alike."""
+    layers = tuple(_canonical_layer(layer) for layer in run.layers)
+    return RunRecord(run.model, run.model_name, run.target, run.precision,
+                     dict(sorted(run.metrics.items())), dict(sorted(run.target_figures.items())),
+                     layers, tuple(run.unmodelled), tuple(run.notes))
+
+
+def _canonical_layer(layer: LayerRecord) -> LayerRecord:
+    return LayerRecord(layer.name, layer.op_type, layer.signature, layer.engine, layer.bound,
+                       layer.modelled, layer.unmodelled_reason, layer.params_fit,
+                       layer.activations_fit, dict(sorted(layer.metrics.items())),
+                       layer.fused_into, tuple(layer.fused_ops), layer.precision)
+
+
 # --- JSON-ready dicts (the snapshot/result writers add versioning around these) ---
 
 def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:

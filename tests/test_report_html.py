@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-from gate.report import all_reporters, charts
+from gate.report import all_reporters, charts, html_layers
 from gate.report.html import REPORTER, render
 from gate.report.text import html_escape
 from gate.result import (
@@ -278,9 +278,14 @@ def test_huge_model_plots_top_layers_and_says_how_many_were_left_out() -> None:
     assert "120 layers with the smallest latency left out" in page
     assert int(bars.get("data-layers-shown")) == charts.MAX_BAR_LAYERS
     assert _bar_ids(bars, "e0-layers-latency") == list(range(charts.MAX_BAR_LAYERS))
-    assert "390 layers more in the table below" in page
+    assert "390 layers more (the table below lists the ones that matter)" in page
     rows = re.search(r"<h3>Layers</h3>.*?<tbody>(.*?)</tbody>", page, re.DOTALL).group(1)
-    assert rows.count("<tr") == 420  # the table keeps every layer
+    # the table lists the slowest layers (no base, no failing rule) and counts the rest
+    assert rows.count("<tr") == html_layers.MAX_SLOWEST_LAYERS
+    listed = re.findall(r'<td class="name">([^<]*)</td>', rows)
+    assert listed == [f"block{i}.conv" for i in range(420 - html_layers.MAX_SLOWEST_LAYERS, 420)]
+    assert ("And 370 more layers, none named by a rule, none among the slowest; full detail "
+            "in the JSON report.") in page
 
 
 def test_rules_and_layer_diff_table(demo_page: str) -> None:
@@ -609,3 +614,61 @@ def test_unknown_figures_read_as_unknown_in_markdown_and_terminal() -> None:
     flat = replace(result, entries=(replace(entry, diff=replace(entry.diff, totals=totals)),))
     line = terminal.render(flat).splitlines()[1]
     assert "unchanged" not in line and "improved" not in line and "(?)" in line
+
+
+# --- bounded: a 200k-layer model gives a small page ---------------------------------------------
+
+BIG_CHAIN_LAYERS = 200_000
+
+
+def _big_chain_result() -> tuple[GateResult, str, str]:
+    """A 200k-layer chain built as records (no ONNX, no profiling: the reporters only see the
+    result): one layer changed against the base, another named by a failing rule."""
+    from gate.result import LayerChange, RunDiff
+
+    template = make_layer("t", 50_000, 2_000, 40_000)
+    names = [f"chain.{k}.conv" for k in range(BIG_CHAIN_LAYERS)]
+    layers = [replace(template, name=name) for name in names]
+    changed, failing = names[123_456], names[7_777]
+    wide = make_layer(changed, 400_000, 300_000, 40_000)
+    head_layers = list(layers)
+    head_layers[123_456] = wide
+    base = replace(make_run("models/chain.onnx", "ws-64x64-4mib", layers[:2]),
+                   layers=tuple(layers))
+    head = replace(base, layers=tuple(head_layers))
+    deltas = {m: (template.metrics[m], wide.metrics[m]) for m in wide.metrics
+              if wide.metrics[m] != template.metrics[m]}
+    changes = tuple(
+        LayerChange("changed" if k == 123_456 else "unchanged", name, name, "Conv", "name",
+                    deltas if k == 123_456 else {})
+        for k, name in enumerate(names))
+    diff = RunDiff(head.model, head.target, {m: (base.metrics[m], head.metrics[m])
+                                             for m in base.metrics}, changes)
+    verdict = make_verdict("params-fit", head.model, head.target, FAIL, layer=failing)
+    entry = Entry(head.model, head.target, head, base, diff, (verdict,))
+    return GateResult("check", ("p.yaml",), (entry,)), changed, failing
+
+
+@pytest.mark.slow
+def test_a_200k_layer_model_gives_an_html_page_under_5_mb_listing_what_matters() -> None:
+    from gate.report import markdown
+
+    result, changed, failing = _big_chain_result()
+    page = render(result)
+    size = len(page.encode("utf-8"))
+    assert size < 5 * 1024 * 1024, size
+    table = page.split("<h3>Layers</h3>")[1].split("</table>")[0]
+    listed = set(re.findall(r'<td class="name">([^<]*)</td>', table))
+    assert failing in listed and changed in listed  # the failing and the changed layer
+    assert len(listed) <= 2 + html_layers.MAX_SLOWEST_LAYERS
+    rest = BIG_CHAIN_LAYERS - len(listed)
+    assert (f"And {rest:,} more layers, unchanged; full detail in the JSON report."
+            in page)
+    assert re.search(r'<tr class="[^"]*flagged[^"]*">(?:(?!</tr>).)*' + re.escape(failing),
+                     table, re.DOTALL)
+    # the pull-request comment of the same run stays under the code host's limit and names
+    # the failing layer (its rule row) and the changed layer, with a count of the rest
+    text = markdown.render(result)
+    assert markdown.comment_size(text) <= markdown.COMMENT_LIMIT_CHARS
+    assert failing in text and changed in text
+    assert f"And {BIG_CHAIN_LAYERS - 1:,} more layers unchanged" in text

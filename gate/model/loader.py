@@ -46,8 +46,10 @@ from gate.model.convert import (
     graph_symbolic_dims,
 )
 from gate.model.graph import INT64_MAX, Graph, LoadedModel
+from gate.model.guards import refuse_huge_shape_data
+from gate.model.shape_text import MAX_DIM, StaticShape
 from gate.model.shape_values import refine_shapes
-from gate.model.shapes import MAX_DIM, StaticShape, bind_input_shapes, sizing_notes
+from gate.model.shapes import bind_input_shapes, sizing_notes
 from gate.model.text import repair_text_fields
 from gate.ops.contrib_shapes import register_contrib_schemas
 
@@ -60,8 +62,12 @@ _VALIDATE_REMEDY = "re-export the model, or check the file is the .onnx model it
 
 
 def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = None,
-               shapes: Mapping[str, StaticShape] | None = None) -> LoadedModel:
+               shapes: Mapping[str, StaticShape] | None = None, *,
+               data: bytes | None = None) -> LoadedModel:
     """Load ``path`` for profiling; never reads weights.
+
+    ``data``: the file's bytes, already read (a git blob); ``path`` then only names
+    the model in messages and locates its external data, and is never opened.
 
     ``dims`` binds symbolic dims by name (``--dim``), ``shapes`` binds every dim
     of the named graph inputs (``--shape``). Raises ``InputError`` (exit 2) for
@@ -71,8 +77,8 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     text_path = os.fspath(path)
     bindings = _check_bindings(dict(dims or {}), text_path)
     shape_bindings = _check_shapes(dict(shapes or {}), text_path)
-    size_bytes = _check_file(text_path)
-    proto = _parse(text_path)
+    size_bytes = _check_file(text_path) if data is None else _check_head(len(data), data, text_path)
+    proto = _parse(text_path, data)
     _validate(proto, text_path)
     warnings: list[str] = []
     repaired = repair_text_fields(proto)
@@ -81,11 +87,12 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
                         "with \\xNN escapes (re-export the model to fix them)")
     declared, found = scan_graphs(proto.graph, text_path)
     warnings[:0] = found
+    refuse_huge_shape_data(proto, text_path, bindings, shape_bindings)  # before any inference
     register_contrib_schemas()  # shape inference then sizes the contrib ops we cost
     unused = sorted(set(bindings) - declared)
     warnings.extend(f"--dim {name}={bindings[name]}: the model declares no symbolic dim "
                     f"'{name}' (binding ignored)" for name in unused)
-    if size_bytes >= PATH_INFERENCE_BYTES:
+    if size_bytes >= PATH_INFERENCE_BYTES and data is None:
         proto, inference_warning = _infer_by_path(text_path, proto)
         proto = _inline(proto, text_path)
         _bind(proto.graph, bindings, shape_bindings, text_path)
@@ -144,6 +151,10 @@ def _check_file(path: str) -> int:
     except OSError as exc:
         raise InputError(f"cannot read the model file ({exc.strerror}); check its permissions",
                          path) from None
+    return _check_head(size_bytes, head, path)
+
+
+def _check_head(size_bytes: int, head: bytes, path: str) -> int:
     if size_bytes == 0:
         raise InputError("model file is empty (0 bytes); re-export it or restore it from git",
                          path)
@@ -153,8 +164,10 @@ def _check_file(path: str) -> int:
     return size_bytes
 
 
-def _parse(path: str) -> onnx.ModelProto:
+def _parse(path: str, data: bytes | None = None) -> onnx.ModelProto:
     try:
+        if data is not None:
+            return onnx.load_model_from_string(data)  # no folder: external data never loaded
         return onnx.load(path, load_external_data=False)
     except DecodeError as exc:
         hint = ("subgraphs nested too deeply for protobuf" if "Depth" in str(exc)

@@ -126,8 +126,8 @@ def _blocking(result: GateResult, anchors: Mapping[tuple[str, str], str]) -> str
     if not_gated:
         items = "".join(f"<li data-model=\"{html_escape(item.model)}\">"
                         f"{html_escape(not_gated_sentence(item))}</li>" for item in not_gated)
-        parts.append(f"<h3>Not gated: changed models outside every model group "
-                     f"(rule <code>{NOT_GATED}</code>)</h3><ul class=\"plain\" "
+        parts.append(f"<p class=\"lead\">Not gated: changed models outside every model "
+                     f"group (rule <code>{NOT_GATED}</code>)</p><ul class=\"plain\" "
                      f"id=\"not-gated\">{items}</ul>")
     return "".join(parts) + "</section>\n"
 
@@ -291,7 +291,7 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
                                  flagged=flagged)
     bar_caption = f"the {_layers(len(shown))} with the largest latency"
     if left_out:
-        bar_caption += f"; {_layers(left_out)} more in the table below"
+        bar_caption += f"; {_layers(left_out)} more (the table below lists the ones that matter)"
     unknown = charts.unknown_latency(head)
     if unknown:
         bar_caption += f"; {_layers(unknown)} with an unknown latency not drawn (unknown, not zero)"

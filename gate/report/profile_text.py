@@ -304,14 +304,29 @@ def _layer_cells(layer: LayerProfile) -> list[str]:
             units.fmt_plain(layer.param_reuse) if not counted or layer.param_bytes else "-"]
 
 
-_HEAD = ["#", "layer", "op", "output shape", "precision", "MACs", "FLOPs", "param size", "input",
-         "output size", "FLOP/B", "MACs/param B"]
-_TARGET_HEAD = ["PE util.", "bound", "latency"]
-LEGEND = ("columns: FLOP/B = arithmetic intensity, FLOPs per byte of parameters, inputs and "
-          "outputs; MACs/param B = MACs per parameter byte (weight reuse)")
-TARGET_LEGEND = (f"target columns: PE util. = {metrics.label('utilization')} (share of the PE "
-                 "array kept busy); bound = what limits the layer (compute, memory, overhead, "
-                 "none; '+' heads a fused group that costs the layers marked 'fused')")
+def _header(label: str) -> tuple[str, str]:
+    """A column label on two header lines, split at the space nearest its middle, so
+    spelled-out labels keep the table narrow (``parameter`` over ``size``)."""
+    spaces = [k for k, char in enumerate(label) if char == " "]
+    if not spaces:
+        return "", label
+    cut = min(spaces, key=lambda k: abs(2 * k - len(label)))
+    return label[:cut], label[cut + 1:]
+
+
+# Column labels spelled out from the metric catalogue, each on two header lines.
+_HEAD = [_header(text) for text in (
+    "#", "layer", "op", "output shape", "precision", metrics.label("macs"),
+    metrics.label("flops"), metrics.label("param_bytes"), metrics.label("input_bytes"),
+    metrics.label("output_bytes"), metrics.label("arithmetic_intensity"),
+    metrics.label("param_reuse"))]
+_TARGET_HEAD = [_header(text) for text in (
+    metrics.label("utilization"), "bound", metrics.label("latency_s"))]
+LEGEND = (f"columns: {metrics.label('arithmetic_intensity')} in FLOP per byte of parameters, "
+          f"inputs and outputs; {metrics.label('param_reuse')} = weight reuse")
+TARGET_LEGEND = (f"target columns: {metrics.label('utilization')} = share of the PE array kept "
+                 "busy; bound = what limits the layer (compute, memory, overhead, none; '+' "
+                 "heads a fused group that costs the layers marked 'fused')")
 MARKS = ("marks: - not applicable; precision: what the layer runs at (folded: "
          "computed offline from constants; fused: a quantize/dequantize pair absorbed)")
 UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? unknown (not modelled or size unknown)"
@@ -333,8 +348,10 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
               f"opsets: {clean(opsets, 120)}"),
              ""]
     flagged = any(not layer.modelled for layer in profile.layers)
-    head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + (["!"] if flagged else [])
-    rows = [head] + [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
+    head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + \
+        ([("", "!")] if flagged else [])
+    rows = [[top for top, _ in head], [bottom for _, bottom in head]] + \
+        [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
     table = _align(rows, right_from=5)
     if runs:
         table.insert(0, _group_line(rows, [clean(target.name, 40) for target, _ in runs]))
