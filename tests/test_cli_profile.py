@@ -62,7 +62,35 @@ def test_json_is_deterministic_and_matches_profile(cnn: Path) -> None:
     assert conv["inputs"][1] == {"name": "w1", "shape": [8, 3, 3, 3], "dtype": "FLOAT"}
     assert conv["macs"] == expected.layers[0].macs and conv["modelled"] is True
     assert data["coverage"]["node_share"] == 1.0 and data["targets"] == []
-    assert first.stdout == json.dumps(data, sort_keys=True, indent=2) + "\n"  # sorted keys
+    assert first.stdout == _expected_layout(data)
+
+
+def _expected_layout(data: dict) -> str:
+    """json.dumps(indent=2, sort_keys=True), except that every element of a ``layers`` list
+    is one line (``, `` and ``: `` separators, keys sorted)."""
+    rows: dict[str, str] = {}
+
+    def placeholders(items: list) -> list:
+        marks = []
+        for item in items:
+            mark = f"<row {len(rows)}>"
+            rows[json.dumps(mark)] = json.dumps(item, sort_keys=True, separators=(", ", ": "))
+            marks.append(mark)
+        return marks
+
+    shaped = {**data, "layers": placeholders(data["layers"]),
+              "targets": [{**t, "layers": placeholders(t["layers"])} for t in data["targets"]]}
+    text = json.dumps(shaped, sort_keys=True, indent=2)
+    for mark, row in rows.items():
+        text = text.replace(mark, row)
+    return text + "\n"
+
+
+def test_json_layout_with_targets(cnn: Path) -> None:
+    result = _run(str(cnn), "--dim", "batch=2", "--format", "json", "-t", "ws-64x64-4mib")
+    data = json.loads(result.stdout)
+    assert len(data["targets"][0]["layers"]) == len(data["layers"]) == 9
+    assert result.stdout == _expected_layout(data)
 
 
 def test_csv_fields_and_rows(cnn: Path) -> None:

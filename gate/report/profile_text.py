@@ -12,7 +12,8 @@ import csv
 import io
 import json
 import unicodedata
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import replace
 from functools import lru_cache
 from typing import Any
 
@@ -21,7 +22,7 @@ from gate.costmodel import ModelCost
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
-from gate.records import RunRecord, no_work_costed, run_to_dict
+from gate.records import RunRecord, layer_to_dict, no_work_costed, run_to_dict
 from gate.targets.spec import TargetProfile
 
 FORMAT_NAME = "roofgate-profile"
@@ -47,11 +48,17 @@ CSV_TARGET_FIELDS: tuple[str, ...] = (
 def render(fmt: str, profile: ModelProfile, runs: Sequence[Run],
            records: Sequence[RunRecord]) -> str:
     """The whole output of ``roofgate profile`` in ``fmt`` (table, json or csv)."""
+    return "".join(render_chunks(fmt, profile, runs, records))
+
+
+def render_chunks(fmt: str, profile: ModelProfile, runs: Sequence[Run],
+                  records: Sequence[RunRecord]) -> Iterator[str]:
+    """``render`` in pieces to write one after another (JSON is built as it is written)."""
     if fmt == "json":
-        return to_json(profile, records)
+        return json_chunks(profile, records)
     if fmt == "csv":  # CSV keeps model text as is, apart from runner markers (gate/logsafe)
-        return defuse_runner_markers(to_csv(profile, runs))
-    return defuse_runner_markers(to_table(profile, runs))
+        return iter([defuse_runner_markers(to_csv(profile, runs))])
+    return iter([defuse_runner_markers(to_table(profile, runs))])
 
 
 # ------------------------------------------------------------------ JSON
@@ -85,8 +92,19 @@ def layer_dict(layer: LayerProfile, input_names: Sequence[str],
 
 def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[str, Any]:
     """The JSON document (plain data, stable keys)."""
+    return {**_document_head(profile), "layers": list(_layer_dicts(profile)),
+            "targets": [run_to_dict(record) for record in records]}
+
+
+def _layer_dicts(profile: ModelProfile) -> Iterator[dict[str, Any]]:
+    for layer, node in zip(profile.layers, profile.model.graph.nodes):
+        yield layer_dict(layer, [t.name if t else "" for t in node.inputs],
+                         [t.name for t in node.outputs])
+
+
+def _document_head(profile: ModelProfile) -> dict[str, Any]:
+    """The document without its per-layer lists (``layers``, ``targets``)."""
     model, coverage = profile.model, profile.coverage
-    nodes = model.graph.nodes
     unknown = no_work_costed(profile.coverage.nodes_total,
                              profile.coverage.nodes_total - profile.coverage.nodes_modelled,
                              bool(profile.total_macs or profile.total_flops))
@@ -114,16 +132,75 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
                      "unmodelled": [{"op_type": u.op_type, "domain": u.domain, "count": u.count,
                                      "reason": u.reason} for u in coverage.unmodelled]},
         "notes": list(profile.notes),
-        "layers": [layer_dict(layer, [t.name if t else "" for t in node.inputs],
-                              [t.name for t in node.outputs])
-                   for layer, node in zip(profile.layers, nodes)],
-        "targets": [run_to_dict(record) for record in records],
     }
 
 
 def to_json(profile: ModelProfile, records: Sequence[RunRecord]) -> str:
-    return defuse_json_markers(json.dumps(profile_dict(profile, records), sort_keys=True,
-                                          indent=2, allow_nan=False)) + "\n"
+    return "".join(json_chunks(profile, records))
+
+
+def json_chunks(profile: ModelProfile, records: Sequence[RunRecord]) -> Iterator[str]:
+    """The JSON document in pieces, built while it is written (memory stays bounded).
+
+    Layout: keys sorted, indent 2, except that each element of a ``layers`` list is
+    one line (written by the C encoder: a pure-Python indenting encoder was most of
+    the time of a large profile). Deterministic: the same profile, the same bytes.
+    """
+    document = {**_document_head(profile), "layers": _Rows(_layer_dicts(profile)),
+                "targets": [{**run_to_dict(replace(record, layers=())),
+                             "layers": _Rows(layer_to_dict(x) for x in record.layers)}
+                            for record in records]}
+    for chunk in _emit(document, ""):
+        yield defuse_json_markers(chunk)  # a chunk never ends inside a JSON string
+    yield "\n"
+
+
+class _Rows:
+    """A list written one element per line."""
+
+    def __init__(self, items: Iterable[Any]) -> None:
+        self.items = items
+
+
+_ONE_LINE = json.JSONEncoder(sort_keys=True, separators=(", ", ": "), allow_nan=False)
+_ROWS_PER_CHUNK = 256
+
+
+def _emit(value: Any, indent: str) -> Iterator[str]:
+    """``value`` as JSON with ``json.dumps(indent=2, sort_keys=True)``'s layout; ``_Rows``
+    one element per line."""
+    inner = indent + "  "
+    if isinstance(value, _Rows):
+        yield from _emit_rows(value.items, indent)
+    elif isinstance(value, dict) and value:
+        opening = "{\n"
+        for key in sorted(value):
+            yield f"{opening}{inner}{_ONE_LINE.encode(key)}: "
+            yield from _emit(value[key], inner)
+            opening = ",\n"
+        yield f"\n{indent}}}"
+    elif isinstance(value, list) and value:
+        opening = "[\n"
+        for item in value:
+            yield opening + inner
+            yield from _emit(item, inner)
+            opening = ",\n"
+        yield f"\n{indent}]"
+    else:
+        yield _ONE_LINE.encode(value)
+
+
+def _emit_rows(items: Iterable[Any], indent: str) -> Iterator[str]:
+    inner, opening, batch = indent + "  ", "[\n", []
+    for item in items:
+        batch.append(inner + _ONE_LINE.encode(item))
+        if len(batch) == _ROWS_PER_CHUNK:
+            yield opening + ",\n".join(batch)
+            opening, batch = ",\n", []
+    if batch:
+        yield opening + ",\n".join(batch)
+        opening = ",\n"
+    yield "[]" if opening == "[\n" else f"\n{indent}]"
 
 
 # ------------------------------------------------------------------ CSV
