@@ -11,9 +11,10 @@ with ``gate.combine_results``.
 
 from __future__ import annotations
 
-import os
+import itertools
 import tempfile
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
+from contextlib import closing
 from dataclasses import replace
 from datetime import date
 from pathlib import Path
@@ -56,7 +57,7 @@ def run_check(root: Path, config: ProjectConfig, base_ref: str, *, baseline: str
     changes = gitscan.changed_models(base_commit, root, config.is_model, head=head)
     ungated = _ungated_changes(config, base_commit, root, head)
     moved = _submodule_errors(root, config, base_commit, head)
-    policies = PolicyCache(config)
+    policies = PolicyCache(config, today)
     groups = [(change.path, _group(config, change)) for change in changes]
     refuse_unjudged_groups(groups)
     check_scopes(config, policies, [g for _, g in groups], model_files(config, files))
@@ -82,9 +83,12 @@ def _check_changes(root: Path, config: ProjectConfig, changes: Sequence[gitscan.
                    revs: tuple[str, str], baseline: str | None, workers: int,
                    policies: PolicyCache, today: date) -> GateResult:
     stored = base_by_model(read_snapshot_runs(baseline)) if baseline else None
-    with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
-        jobs, base_jobs, errors = _check_jobs(root, config, changes, revs, stored, tmp)
-        analysed = engine.run_jobs([*jobs, *base_jobs], workers)
+    errors: dict[str, list[str]] = {}
+    jobs, blobs = _check_jobs(config, changes, revs, stored)
+    with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp, \
+            closing(gitscan.BlobReader(root)) as reader:
+        read = _blob_reader(root, reader, blobs, Path(tmp), errors)
+        analysed = engine.run_jobs(jobs, workers, prepare=read)
     changes = _pair_by_structure(list(changes), analysed, stored)
     results = [_judge_change(change, analysed, stored, errors.get(change.path, []), policies,
                              today) for change in changes]
@@ -195,18 +199,17 @@ def _group(config: ProjectConfig, change: gitscan.ModelChange) -> ModelGroup:
     raise AssertionError("changed_models only returns configured models")
 
 
-def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
-                revs: tuple[str, str], stored: object, tmp: str,
-                ) -> tuple[list[engine.Job], list[engine.Job], dict[str, list[str]]]:
-    """Write each side's blob to ``tmp`` and make its job; LFS pointers become errors.
-
-    ``revs`` are the (head, base) revisions the blobs are read from.
-    """
+def _check_jobs(config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
+                revs: tuple[str, str], stored: object,
+                ) -> tuple[list[engine.Job], dict[str, tuple[str, str, str]]]:
+    """Every side's job (head sides first) and where its blob is: result key -> (side,
+    revision, path). ``revs`` are the (head, base) revisions the blobs are read from;
+    nothing is read here (``_blob_reader`` reads each blob just before its analysis)."""
     head, base_commit = revs
     jobs: list[engine.Job] = []
     base_jobs: list[engine.Job] = []
-    errors: dict[str, list[str]] = {}
-    for k, change in enumerate(changes):
+    blobs: dict[str, tuple[str, str, str]] = {}
+    for change in changes:
         group = _group(config, change)
         sides = [("head", head, change.head_path, change.path, jobs)]
         if stored is None:
@@ -214,19 +217,36 @@ def _check_jobs(root: Path, config: ProjectConfig, changes: Sequence[gitscan.Mod
         for side, rev, path, key, out in sides:
             if path is None:
                 continue
-            file = os.path.join(tmp, f"{side}-{k:05d}.onnx")
-            try:
-                real = gitscan.write_blob(rev, path, root, file)
-            except InputError as exc:  # e.g. the LFS smudge filter could not download
-                errors.setdefault(change.path, []).append(
-                    f"cannot read the {side} side from git ({exc.format_message()})")
-                continue
-            if not real:
-                errors.setdefault(change.path, []).append(
-                    engine.error_text(gitscan.lfs_error_message(path, side, rev), path))
-                continue
-            out.append(replace(make_job(config, group, change.path, file), key=key))
-    return jobs, base_jobs, errors
+            blobs[key] = (side, rev, path)
+            out.append(replace(make_job(config, group, change.path, change.path), key=key))
+    return [*jobs, *base_jobs], blobs
+
+
+def _blob_reader(root: Path, reader: gitscan.BlobReader, blobs: Mapping[str, tuple[str, str, str]],
+                 tmp: Path, errors: dict[str, list[str]],
+                 ) -> Callable[[engine.Job], engine.Job | None]:
+    """The ``prepare`` step of check's jobs: the side's blob read from git (bytes straight
+    to the parser); a blob git cannot give, or an LFS pointer, becomes an error of the
+    change and the job is skipped."""
+    spills = itertools.count()
+
+    def read(job: engine.Job) -> engine.Job | None:
+        side, rev, path = blobs[job.result_key]
+        spill = tmp / f"{side}-{next(spills):05d}.onnx"
+        try:
+            got = gitscan.read_model_blob(reader, rev, path, root, spill)
+        except InputError as exc:  # e.g. the LFS smudge filter could not download
+            errors.setdefault(job.model, []).append(
+                f"cannot read the {side} side from git ({exc.format_message()})")
+            return None
+        if got is None:
+            errors.setdefault(job.model, []).append(
+                engine.error_text(gitscan.lfs_error_message(path, side, rev), path))
+            return None
+        if isinstance(got, Path):
+            return replace(job, file=str(got))
+        return replace(job, data=got)
+    return read
 
 
 # --- audit ---------------------------------------------------------------------------
@@ -288,7 +308,7 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
     gone = [m for m in stored if m not in present and _in_scope(root, config, paths, m)]
     models = sorted({*present, *gone})
     mine = shard_share(models, *shard) if shard else models
-    policies = PolicyCache(config)
+    policies = PolicyCache(config, today)
     planned = [(m, _audit_group(config, m)) for m in present]
     refuse_unjudged_groups(planned)
     check_scopes(config, policies, [g for _, g in planned], present)

@@ -50,7 +50,7 @@ from gate.bundled import names_a_file
 from gate.errors import ConfigError
 from gate.globs import path_glob_problem, path_match
 from gate.model.graph import INT64_MAX
-from gate.model.shapes import StaticShape, parse_shape
+from gate.model.shape_text import StaticShape, parse_shape
 from gate.yamlconf import Section, read_yaml_file, scalar_value
 
 CONFIG_FILE = "roofgate.yaml"

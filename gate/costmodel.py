@@ -10,10 +10,11 @@ N times one target.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, fields
 from math import ceil
+from typing import Any, TypeVar
 
-from gate.errors import InputError
+from gate.errors import InputError, InternalError
 from gate.fusion import NO_FUSION, FusedGroup, FusionPlan, plan_fusion
 from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
 from gate.profile import LayerProfile, ModelProfile
@@ -38,8 +39,10 @@ class EnergyBreakdown:
                 + self.dram_act_j + self.static_j)
 
     def __add__(self, other: EnergyBreakdown) -> EnergyBreakdown:
-        return EnergyBreakdown(*(getattr(self, f.name) + getattr(other, f.name)
-                                 for f in fields(self)))
+        return EnergyBreakdown(self.mac_j + other.mac_j, self.buffer_j + other.buffer_j,
+                               self.noc_j + other.noc_j, self.dram_param_j + other.dram_param_j,
+                               self.dram_act_j + other.dram_act_j,
+                               self.static_j + other.static_j)
 
     def __radd__(self, other: object) -> EnergyBreakdown:
         if other == 0:  # lets sum() start from its default 0
@@ -47,32 +50,39 @@ class EnergyBreakdown:
         return NotImplemented
 
     def as_dict(self) -> dict[str, float]:
-        return {f.name: getattr(self, f.name) for f in fields(self)}
+        return {"mac_j": self.mac_j, "buffer_j": self.buffer_j, "noc_j": self.noc_j,
+                "dram_param_j": self.dram_param_j, "dram_act_j": self.dram_act_j,
+                "static_j": self.static_j}
 
 
 @dataclass(frozen=True, slots=True)
 class LayerCost:
-    """One layer on one target."""
+    """One layer on one target.
+
+    Unknown is never zero: a layer the profile could not count (``modelled`` False)
+    has every time, traffic and energy figure None; only what its known byte counts
+    decide (whether its parameters fit) is reported.
+    """
 
     index: int
     name: str
     engine: str  # "array", "vector", "host", "fused" (costed in its group's head) or "none"
-    cycles: int  # engine cycles for the compute (0 for none)
-    utilization: float  # useful MACs / (PE count x MACs per PE per cycle x cycles); 0 off the array
-    compute_s: float
-    memory_s: float  # DRAM time for this layer's traffic
-    overhead_s: float
-    latency_s: float  # max(compute_s, memory_s) + overhead_s
+    cycles: int | None  # engine cycles for the compute (0 for none)
+    utilization: float | None  # useful MACs / (PE count x MACs per PE per cycle x cycles); 0 off the array
+    compute_s: float | None
+    memory_s: float | None  # DRAM time for this layer's traffic
+    overhead_s: float | None
+    latency_s: float | None  # max(compute_s, memory_s) + overhead_s
     bound: str  # "compute", "memory", "overhead", or "none"
-    param_dram_bytes: int  # parameter bytes read from DRAM per inference
-    act_dram_bytes: int  # activation spill traffic (writes + reads) per inference
-    buffer_bytes: int  # on-chip buffer traffic
+    param_dram_bytes: int | None  # parameter bytes read from DRAM per inference
+    act_dram_bytes: int | None  # activation spill traffic (writes + reads) per inference
+    buffer_bytes: int | None  # on-chip buffer traffic
     params_fit: bool  # the layer's parameters fit the parameter (or unified) buffer
-    activations_fit: bool  # its input + output activations fit the activation buffer
-    energy: EnergyBreakdown
+    activations_fit: bool | None  # its input + output activations fit (None: their size unknown)
+    energy: EnergyBreakdown | None
     precision: str = ""  # precision the layer ran at ("" when it ran nowhere)
     array_macs: int = 0  # useful MACs done on the PE array
-    modelled: bool = True  # False: the profile could not count this layer; its zeros mean "unknown"
+    modelled: bool = True  # False: the profile could not count this layer (figures None)
     fused_into: str = ""  # the head layer of the fused group this layer runs in ("" when alone)
     fused_ops: tuple[str, ...] = ()  # a head's absorbed layers' op types, in chain order
 
@@ -177,7 +187,7 @@ def _dominant_precision(profile: ModelProfile, target: TargetProfile) -> str:
             continue
         native = _layer_native_precision(layer)
         if native is not None:
-            weight[native] = weight.get(native, 0) + max(layer.macs, 0) * 1000 + 1
+            weight[native] = weight.get(native, 0) + max(layer.counted_macs, 0) * 1000 + 1
     if not weight:
         return next(iter(target.precisions), "fp32")
     return max(sorted(weight), key=lambda name: weight[name])
@@ -192,22 +202,33 @@ def _layer_precision(layer: LayerProfile, ctx: _Context) -> str:
 def _weights_fit_on_chip(profile: ModelProfile, target: TargetProfile) -> bool:
     total = profile.total_param_bytes
     if target.is_unified:
-        largest_act = max((l.input_bytes + l.output_bytes for l in profile.layers), default=0)
+        largest_act = max((sum(layer.sized) for layer in profile.layers if layer.modelled),
+                          default=0)
         return total + largest_act <= target.unified_buffer_bytes
     return total <= target.param_buffer_bytes
 
 
 def _fits(layer: LayerProfile, ctx: _Context) -> tuple[bool, bool]:
-    """(params fit, activations fit) for a layer run on the accelerator."""
+    """(params fit, activations fit) for a layer run on the accelerator (sizes known)."""
+    params_fit, acts_fit = _fit_if_known(layer, ctx)
+    if acts_fit is None:
+        raise InternalError(f"layer '{layer.name}' is costed but a tensor size is unknown")
+    return params_fit, acts_fit
+
+
+def _fit_if_known(layer: LayerProfile, ctx: _Context) -> tuple[bool, bool | None]:
+    """(params fit, activations fit); the latter None when an activation's size is unknown."""
     target = ctx.target
-    act_bytes = layer.input_bytes + layer.output_bytes
+    act_bytes = (None if layer.input_bytes is None or layer.output_bytes is None
+                 else layer.input_bytes + layer.output_bytes)
     if not target.is_unified:
         params_fit = ctx.weights_resident or layer.param_bytes <= target.param_buffer_bytes
-        return params_fit, act_bytes <= target.activation_buffer_bytes
-    held = ctx.total_param_bytes if ctx.weights_resident else layer.param_bytes
-    params_fit = held <= target.unified_buffer_bytes
-    room = target.unified_buffer_bytes - (held if params_fit else 0)
-    return params_fit, act_bytes <= room
+        room = target.activation_buffer_bytes
+    else:
+        held = ctx.total_param_bytes if ctx.weights_resident else layer.param_bytes
+        params_fit = held <= target.unified_buffer_bytes
+        room = target.unified_buffer_bytes - (held if params_fit else 0)
+    return params_fit, None if act_bytes is None else act_bytes <= room
 
 
 def _param_dram_bytes(layer: LayerProfile, ctx: _Context, params_fit: bool,
@@ -267,13 +288,29 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
     """
     members = [layers[i] for i in group.members]
     kept = [_kept_params(m, m.index in group.folded) for m in members]
-    as_one = replace(
+    as_one = _replaced(
         head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
         param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
         param_new_bytes=head.first_read_param_bytes + sum(new for _, new, _ in kept),
         param_count=head.param_count + sum(count for _, _, count in kept))
     cost = _cost_layer(as_one, ctx, epilogue_ops=group.epilogue_ops)
-    return replace(cost, fused_ops=tuple(m.op_type for m in members))
+    return _replaced(cost, fused_ops=tuple(m.op_type for m in members))
+
+
+def _replaced(record: _Record, **changes: Any) -> _Record:
+    """``dataclasses.replace`` with the field names looked up once per class (it is
+    called twice per fused group, and ``replace`` introspects the fields every call)."""
+    cls = type(record)
+    names = _FIELD_NAMES.get(cls)
+    if names is None:
+        names = _FIELD_NAMES[cls] = tuple(f.name for f in fields(cls) if f.init)
+    values = {name: getattr(record, name) for name in names}
+    values.update(changes)
+    return cls(**values)
+
+
+_Record = TypeVar("_Record", LayerProfile, LayerCost)
+_FIELD_NAMES: dict[type, tuple[str, ...]] = {}
 
 
 def _kept_params(member: LayerProfile, folded: bool) -> tuple[int, int, int]:
@@ -299,9 +336,9 @@ def layer_engine(layer: LayerProfile, target: TargetProfile) -> str:
 def _cost_layer(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
     work = layer.work
     if not layer.modelled or work is None:
-        return _idle(layer, ctx, modelled=False)
+        return _unknown(layer, ctx)
     if work.is_view:
-        return _idle(layer, ctx, modelled=True)
+        return _idle(layer, ctx)
     target = ctx.target
     engine = layer_engine(layer, target)
     if engine == "array":
@@ -312,8 +349,8 @@ def _cost_layer(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> La
                          f"'{layer.name}' ({layer.op_type}); add a '{engine}' section",
                          path=None if target.source == "builtin" else target.source)
     ops = work.vector_ops + work.macs
-    if ops <= 0 and layer.flops > 0:
-        ops = layer.flops
+    if ops <= 0 and work.flops > 0:
+        ops = work.flops
     return _on_engine(layer, ctx, engine, spec, ops + epilogue_ops)
 
 
@@ -335,14 +372,25 @@ def conv_kind(layer: LayerProfile) -> str:
     return "depthwise" if channels == groups else "grouped"
 
 
-def _idle(layer: LayerProfile, ctx: _Context, modelled: bool) -> LayerCost:
-    """No engine time or energy; buffer fit still reported (the byte counts are known)."""
+def _idle(layer: LayerProfile, ctx: _Context) -> LayerCost:
+    """A view: no engine time or energy (known to be none); buffer fit still reported."""
     params_fit, acts_fit = _fits(layer, ctx)
     return LayerCost(
         index=layer.index, name=layer.name, engine="none", cycles=0, utilization=0.0,
         compute_s=0.0, memory_s=0.0, overhead_s=0.0, latency_s=0.0, bound="none",
         param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=params_fit,
-        activations_fit=acts_fit, energy=EnergyBreakdown(), modelled=modelled)
+        activations_fit=acts_fit, energy=EnergyBreakdown())
+
+
+def _unknown(layer: LayerProfile, ctx: _Context) -> LayerCost:
+    """A layer the profile could not count: its time, traffic and energy are unknown (None),
+    never 0; whether its parameters (and, when sized, activations) fit is still known."""
+    params_fit, acts_fit = _fit_if_known(layer, ctx)
+    return LayerCost(
+        index=layer.index, name=layer.name, engine="none", cycles=None, utilization=None,
+        compute_s=None, memory_s=None, overhead_s=None, latency_s=None, bound="none",
+        param_dram_bytes=None, act_dram_bytes=None, buffer_bytes=None, params_fit=params_fit,
+        activations_fit=acts_fit, energy=None, modelled=False)
 
 
 def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
@@ -364,7 +412,7 @@ def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> Laye
     epilogue_s, epilogue_j = _epilogue_work(target, epilogue_ops, spec.mac_energy_j)
     params_fit, acts_fit = _fits(layer, ctx)
     param_dram = _param_dram_bytes(layer, ctx, params_fit, maps, weight_elems)
-    act_dram = 0 if acts_fit else layer.input_bytes + layer.output_bytes
+    act_dram = 0 if acts_fit else sum(layer.sized)
     operand_elems = sum(m.weight_reads + m.input_reads + m.output_accesses for m, _ in maps)
     buffer_bytes = ceil(operand_elems * elem_bytes) + param_dram + act_dram
     noc_bytes = sum(m.noc_hops for m, _ in maps) * elem_bytes
@@ -406,15 +454,15 @@ def _on_engine(layer: LayerProfile, ctx: _Context, engine: str, spec: EngineSpec
     if engine == "host":  # the host reads and writes through DRAM, never the accelerator's buffers
         params_fit, acts_fit = False, False
         param_dram = layer.param_bytes
-        act_dram = layer.input_bytes + layer.output_bytes
+        act_dram = sum(layer.sized)
         buffer_bytes = 0
     else:
         params_fit, acts_fit = _fits(layer, ctx)
         param_dram = 0 if ctx.weights_resident else (
             layer.first_read_param_bytes if params_fit and ctx.shared_params_resident
             else layer.param_bytes)
-        act_dram = 0 if acts_fit else layer.input_bytes + layer.output_bytes
-        buffer_bytes = layer.param_bytes + layer.input_bytes + layer.output_bytes + param_dram + act_dram
+        act_dram = 0 if acts_fit else sum(layer.sized)
+        buffer_bytes = layer.param_bytes + sum(layer.sized) + param_dram + act_dram
     return _finish(
         layer, ctx, engine=engine, cycles=cycles, utilization=0.0,
         compute_s=cycles / spec.clock_hz, overhead_s=spec.overhead_s, param_dram=param_dram,
@@ -480,7 +528,7 @@ def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
     capacity = 0.0
     array_macs = 0
     for cost in layers:
-        if cost.engine == "array":
+        if cost.engine == "array" and cost.cycles is not None:
             capacity += (target.pe_count * target.precision_spec(cost.precision).macs_per_pe_per_cycle
                          * cost.cycles)
             array_macs += cost.array_macs
@@ -496,15 +544,17 @@ def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
                      f"target's 'fusion:' section declares; --no-fusion costs them layer by layer")
     unmodelled = sum(1 for cost in layers if not cost.modelled)
     if unmodelled:
-        notes.append(f"{unmodelled} unmodelled layer(s) cost nothing here: totals are a lower bound")
+        notes.append(f"{unmodelled} unmodelled layer(s) have unknown cost ('?'), left out of the "
+                     "totals: totals are a lower bound")
+    costed = [cost for cost in layers if cost.modelled]
     return ModelCost(
         target_name=target.name,
         precision=ctx.model_precision,
         layers=layers,
-        latency_s=sum(cost.latency_s for cost in layers),
-        energy=sum((cost.energy for cost in layers), EnergyBreakdown()),
-        param_dram_bytes=sum(cost.param_dram_bytes for cost in layers),
-        act_dram_bytes=sum(cost.act_dram_bytes for cost in layers),
+        latency_s=sum(cost.latency_s or 0.0 for cost in costed),
+        energy=sum((cost.energy for cost in costed if cost.energy), EnergyBreakdown()),
+        param_dram_bytes=sum(cost.param_dram_bytes or 0 for cost in costed),
+        act_dram_bytes=sum(cost.act_dram_bytes or 0 for cost in costed),
         weights_resident=ctx.weights_resident,
         utilization=array_macs / capacity if capacity else 0.0,
         peak_flops_per_s=target.peak_flops_per_s(ctx.model_precision),

@@ -7,14 +7,18 @@ Layers are matched in three passes, each on the layers the previous left over:
    ``node_5`` onto a different op does not pair a Conv with a Relu.
 2. **signature**: the remaining layers of both sides, in graph order, are aligned
    as two sequences of ``LayerRecord.signature`` (op type + input/output shapes and
-   dtypes) with a longest-matching-block alignment (``difflib.SequenceMatcher``,
-   no junk heuristic). An exporter that renames every node still yields a diff.
+   dtypes) by a longest common subsequence (``align``). An exporter that renames every
+   node still yields a diff.
 3. **op_type**: inside each stretch the signature pass could not align (the
    layers between two aligned runs), layers are aligned again by op type alone.
    That pairs a layer whose shapes changed (a widened convolution) with its old
    self, reported as changed rather than as one removal plus one addition.
 
-What is left is added (head only) or removed (base only). Values are compared
+What is left is added (head only) or removed (base only). A matched layer whose
+figures are unknown on a side (not modelled) and whose known figures agree is
+``unknown``: never ``unchanged``, never a 0 delta. Every step is linear in the
+number of layers (dicts built once; the alignment costs O(layers + edits^2)), so a
+100k-node model diffs in about the time it takes to read it. Values are compared
 with the metric catalogue's change tolerance (``gate.metrics.unchanged``), the
 one every report uses, so a baseline read back from a snapshot, whose floats
 are rounded, does not show every layer as changed.
@@ -24,7 +28,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from difflib import SequenceMatcher
 from itertools import pairwise
 
 from gate import metrics
@@ -32,6 +35,9 @@ from gate.records import LayerRecord, Metric, RunRecord
 from gate.result import LayerChange, RunDiff
 
 ADDED, REMOVED, CHANGED, UNCHANGED = "added", "removed", "changed", "unchanged"
+# A matched layer whose known figures agree but some figure is unknown on a side (a layer
+# not modelled): it cannot be called unchanged, and nothing known changed.
+UNKNOWN = "unknown"
 
 Pair = tuple[int, int]  # (base index, head index)
 
@@ -136,11 +142,89 @@ def _align_rest(base: Sequence[LayerRecord], head: Sequence[LayerRecord],
     return out
 
 
-def _align(left: list[str], right: list[str]) -> list[Pair]:
-    """Index pairs of the longest matching blocks of two sequences, in order."""
-    matcher = SequenceMatcher(a=left, b=right, autojunk=False)
-    return [(block.a + k, block.b + k)
-            for block in matcher.get_matching_blocks() for k in range(block.size)]
+def _align(left: Sequence[str], right: Sequence[str]) -> list[Pair]:
+    return align(left, right)
+
+
+MAX_EDITS = 1000  # beyond this many insertions + deletions, align greedily (see ``align``)
+GREEDY_WINDOW = 64  # how far ahead the greedy fallback looks for the next equal item
+
+
+def align(left: Sequence[str], right: Sequence[str]) -> list[Pair]:
+    """Index pairs of a longest common subsequence of two sequences, in order.
+
+    The equal prefix and suffix are paired first (linear); the middle is aligned
+    with Myers' O((N+M)D) difference algorithm (E. W. Myers, "An O(ND) Difference
+    Algorithm and Its Variations", Algorithmica 1986), so a few edits in a huge
+    graph cost little. Past ``MAX_EDITS`` edits the two sides have little in
+    common and an exact alignment would be quadratic: the middle is then paired
+    greedily in order (each left item with the next equal right item within
+    ``GREEDY_WINDOW``), still linear and still order-preserving.
+    """
+    n, m = len(left), len(right)
+    start = 0
+    while start < n and start < m and left[start] == right[start]:
+        start += 1
+    end = 0
+    while end < n - start and end < m - start and left[n - 1 - end] == right[m - 1 - end]:
+        end += 1
+    mid_left, mid_right = left[start:n - end], right[start:m - end]
+    middle = _myers(mid_left, mid_right, MAX_EDITS)
+    if middle is None:
+        middle = _greedy(mid_left, mid_right)
+    return ([(i, i) for i in range(start)]
+            + [(a + start, b + start) for a, b in middle]
+            + [(n - end + k, m - end + k) for k in range(end)])
+
+
+def _myers(a: Sequence[str], b: Sequence[str], max_edits: int) -> list[Pair] | None:
+    """The pairs of a shortest edit script of ``a`` into ``b``, or None past ``max_edits``."""
+    n, m = len(a), len(b)
+    frontier: dict[int, int] = {1: 0}  # diagonal k = x - y -> furthest x reached
+    trace: list[dict[int, int]] = []
+    for d in range(min(n + m, max_edits) + 1):
+        trace.append(dict(frontier))
+        for k in range(-d, d + 1, 2):
+            if k == -d or (k != d and frontier[k - 1] < frontier[k + 1]):
+                x = frontier[k + 1]
+            else:
+                x = frontier[k - 1] + 1
+            y = x - k
+            while x < n and y < m and a[x] == b[y]:
+                x += 1
+                y += 1
+            frontier[k] = x
+            if x >= n and y >= m:
+                return _backtrack(trace, n, m)
+    return None
+
+
+def _backtrack(trace: list[dict[int, int]], n: int, m: int) -> list[Pair]:
+    pairs: list[Pair] = []
+    x, y = n, m
+    for d in range(len(trace) - 1, -1, -1):
+        frontier, k = trace[d], x - y
+        prev_k = k + 1 if k == -d or (k != d and frontier[k - 1] < frontier[k + 1]) else k - 1
+        prev_x = frontier[prev_k]
+        prev_y = prev_x - prev_k
+        while x > prev_x and y > prev_y:
+            x, y = x - 1, y - 1
+            pairs.append((x, y))
+        x, y = prev_x, prev_y
+    pairs.reverse()
+    return pairs
+
+
+def _greedy(a: Sequence[str], b: Sequence[str]) -> list[Pair]:
+    pairs: list[Pair] = []
+    j = 0
+    for i, item in enumerate(a):
+        for k in range(j, min(j + GREEDY_WINDOW, len(b))):
+            if b[k] == item:
+                pairs.append((i, k))
+                j = k + 1
+                break
+    return pairs
 
 
 # --- building the diff ----------------------------------------------------------------
@@ -173,7 +257,11 @@ def _changes(base: Sequence[LayerRecord], head: Sequence[LayerRecord],
 
 def _matched(base: LayerRecord, head: LayerRecord, how: str) -> LayerChange:
     deltas = metric_deltas(base, head)
-    status = CHANGED if deltas or base.signature != head.signature else UNCHANGED
+    known_moved = any(b is not None and h is not None for b, h in deltas.values())
+    if known_moved or base.signature != head.signature:
+        status = CHANGED
+    else:  # unknown vs anything is unknown, never unchanged ('=') or a 0 delta
+        status = UNKNOWN if deltas else UNCHANGED
     return LayerChange(status, base.name, head.name, head.op_type, how, deltas)
 
 

@@ -65,7 +65,7 @@ def run_files(config: ProjectConfig, models: Sequence[str], *, baseline: str | N
     planned = file_jobs(config, models)
     _load_targets_once(planned)
     refuse_unjudged_groups([(job.model, group) for job, group in planned])
-    policies = PolicyCache(config)
+    policies = PolicyCache(config, today)
     check_scopes(config, policies, [group for _, group in planned], _known_models(config, planned))
     refuse_unjudged_pairs(config, policies, [(job.model, group) for job, group in planned])
     stored = base_by_model(read_snapshot_runs(baseline)) if baseline else {}

@@ -74,6 +74,7 @@ def plan_fusion(profile: ModelProfile, spec: FusionSpec,
             layer.index != i for i, layer in enumerate(profile.layers)):
         return NO_FUSION  # a hand-built profile without its graph: nothing to walk
     wiring = _Wiring.of(profile.model.graph)
+    engine_of = _remembered(engine_of)
     taken: set[int] = set()
     groups = []
     for layer in profile.layers:
@@ -89,6 +90,18 @@ def plan_fusion(profile: ModelProfile, spec: FusionSpec,
         group_of_head=MappingProxyType({g.head: g for g in groups}),
         head_of_member=MappingProxyType({m: g.head for g in groups for m in g.members}),
     )
+
+
+def _remembered(engine_of: Callable[[LayerProfile], str]) -> Callable[[LayerProfile], str]:
+    """``engine_of`` asked once per layer (a layer is asked as a head and as a member)."""
+    engines: dict[int, str] = {}
+
+    def remembered(layer: LayerProfile) -> str:
+        engine = engines.get(layer.index)
+        if engine is None:
+            engine = engines[layer.index] = engine_of(layer)
+        return engine
+    return remembered
 
 
 # ------------------------------------------------------------------ the graph's wiring
@@ -193,7 +206,7 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
         else:
             chain.epilogue.append(position)
             chain.epilogue_ops += _element_ops(candidate)
-            chain.extra_input_bytes += max(0, candidate.input_bytes - last.output_bytes)
+            chain.extra_input_bytes += max(0, candidate.sized[0] - last.sized[1])
         last = candidate
     if not chain.members:
         return None
@@ -202,13 +215,13 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
 
 def _finish(head: LayerProfile, pad: int | None, last: LayerProfile, chain: _Chain,
             layers: tuple[LayerProfile, ...]) -> FusedGroup:
-    inputs = head.input_bytes
+    inputs = head.sized[0]
     if pad is not None:  # the conv reads the unpadded tensor straight from the Pad's input
-        inputs += layers[pad].input_bytes - layers[pad].output_bytes
+        inputs += layers[pad].sized[0] - layers[pad].sized[1]
     return FusedGroup(
         head=head.index, members=tuple(chain.members), folded=tuple(chain.folded),
         epilogue_ops=chain.epilogue_ops, input_bytes=max(0, inputs) + chain.extra_input_bytes,
-        output_bytes=last.output_bytes)
+        output_bytes=last.sized[1])
 
 
 def _role(layer: LayerProfile, node: Node, tensor: str, previous: Node, chain: _Chain,
@@ -254,7 +267,7 @@ def _element_ops(layer: LayerProfile) -> int:
     work = layer.work
     if work is None:
         return 0
-    return work.vector_ops or layer.flops
+    return work.vector_ops or work.flops
 
 
 def _pad_prologue(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: FusionSpec,

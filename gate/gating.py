@@ -1,7 +1,10 @@
 """What every judging run shares: jobs from model groups, policies per group, and the refusals
 that keep a run from passing what no rule judged.
 
-* ``PolicyCache`` loads each group's policy files once per run.
+* ``PolicyCache`` loads each group's policy files once per run, and refuses
+  waivers without a real reason or beyond the config's horizon
+  (``gate.policy.waivers.refuse_weak_waivers``; every judging run loads its
+  policies here, so the limits hold alike in check, evaluate and audit).
 * ``refuse_unjudged_groups`` (before analysing): a model whose group names no
   policy is exit 2 with the remedy, never an "analysed" PASS.
 * ``check_scopes`` (before analysing): a policy or rule scope that matches no
@@ -15,6 +18,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 from dataclasses import replace
+from datetime import date
 from typing import TYPE_CHECKING
 
 from gate.config import ModelGroup, ProjectConfig, resolve_file, resolve_target
@@ -30,15 +34,23 @@ NO_POLICY_TEXT = ("no policy applies to this model, so nothing would judge it; p
 
 
 class PolicyCache:
-    """Policies per model group, each file set loaded once per run."""
+    """Policies per model group, each file set loaded (and its waivers checked) once per run.
 
-    def __init__(self, config: ProjectConfig) -> None:
+    ``today`` is the day waiver expiries are judged against (the run's clock).
+    """
+
+    def __init__(self, config: ProjectConfig, today: date) -> None:
         self.config = config
+        self.today = today
         self._loaded: dict[tuple[str, ...], list[Policy]] = {}
 
     def get(self, group: ModelGroup) -> list[Policy]:
         if group.policies not in self._loaded:
-            self._loaded[group.policies] = _policies(self.config, group)
+            from gate.policy.waivers import refuse_weak_waivers
+
+            loaded = _policies(self.config, group)
+            refuse_weak_waivers(loaded, self.today, self.config.waiver_horizon_days)
+            self._loaded[group.policies] = loaded
         return self._loaded[group.policies]
 
     def all(self) -> list[Policy]:
@@ -81,7 +93,8 @@ def check_scopes(config: ProjectConfig, policies: PolicyCache, groups: Iterable[
     names = target_names(config, groups)
     if None in names:  # a target that does not load fails its models on its own, later
         loaded = [replace(p, targets=(), rules=tuple(replace(r, scope=replace(
-            r.scope, targets=())) for r in p.rules)) for p in loaded]
+            r.scope, targets=())) for r in p.rules), waivers=tuple(replace(w, scope=replace(
+                w.scope, targets=())) for w in p.waivers)) for p in loaded]
     problems = scope_problems(loaded, targets=[n for n in names if n is not None],
                               models=models)
     if problems:

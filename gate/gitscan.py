@@ -21,9 +21,10 @@ import re
 import subprocess
 import tempfile
 from collections.abc import Callable, Mapping, Sequence
+from contextlib import closing
 from dataclasses import dataclass
 from pathlib import Path
-from typing import BinaryIO
+from typing import IO, BinaryIO
 
 from gate.errors import InputError
 
@@ -237,11 +238,13 @@ def read_raw_blob(rev: str, path: str, cwd: str | Path) -> bytes:
 
 
 def read_blob(rev: str, path: str, cwd: str | Path) -> bytes:
-    """The contents of ``path`` at ``rev`` (an LFS pointer resolved as ``write_blob`` does)."""
-    with tempfile.TemporaryDirectory(prefix="roofgate-blob-") as tmp:
-        dest = Path(tmp) / "blob"
-        write_blob(rev, path, cwd, dest)
-        return dest.read_bytes()
+    """The contents of ``path`` at ``rev`` (an LFS pointer resolved as ``write_blob`` does;
+    one that stays a pointer is returned as it is)."""
+    with tempfile.TemporaryDirectory(prefix="roofgate-blob-") as tmp, \
+            closing(BlobReader(cwd)) as reader:
+        spill = Path(tmp) / "blob"
+        got = read_model_blob(reader, rev, path, cwd, spill)
+        return got if isinstance(got, bytes) else spill.read_bytes()
 
 
 def write_blob(rev: str, path: str, cwd: str | Path, dest: str | Path) -> bool:
@@ -260,6 +263,103 @@ def write_blob(rev: str, path: str, cwd: str | Path, dest: str | Path) -> bool:
         return False
     _smudge_in_place(path, cwd, Path(dest))
     return not _is_pointer_file(dest)
+
+
+SPILL_BYTES = 1024**3  # a blob this large goes to a file (streamed), not into memory
+
+
+class BlobReader:
+    """Blobs at revisions through ONE ``git cat-file --batch`` process (started on first use).
+
+    A process per blob (and a temporary copy of each) cost most of a large check's
+    time; here each blob's bytes go straight to the ONNX parser. Raw bytes, as
+    ``read_raw_blob``: no filters or attributes. Close it (``contextlib.closing``).
+    """
+
+    def __init__(self, cwd: str | Path) -> None:
+        self.cwd = cwd
+        self._proc: subprocess.Popen[bytes] | None = None
+
+    def close(self) -> None:
+        proc, self._proc = self._proc, None
+        if proc is not None:
+            for stream in (proc.stdin, proc.stdout):
+                if stream is not None:
+                    stream.close()
+            try:
+                proc.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait()
+
+    def read(self, rev: str, path: str, spill_to: Path) -> bytes | Path:
+        """The bytes of ``path`` at ``rev`` (``STAGED``: the index), or, for a blob of
+        ``SPILL_BYTES`` or more, the file ``spill_to`` it was streamed into."""
+        what = f"reading {path} at {rev[:12] or 'the index'}"
+        spec = f"{rev}:{path}".encode("utf-8", "surrogateescape")
+        if b"\n" in spec:  # the batch protocol is line-based: such a path gets its own git
+            return git(["cat-file", "blob", f"{rev}:{path}"], self.cwd, what=what)
+        proc = self._process()
+        assert proc.stdin is not None and proc.stdout is not None
+        try:
+            proc.stdin.write(spec + b"\n")
+            proc.stdin.flush()
+            header = proc.stdout.readline()
+        except OSError:
+            header = b""
+        fields = header.split()
+        if len(fields) != 3 or fields[1] != b"blob":
+            self.close()
+            detail = " ".join(header.decode("utf-8", "replace").split()[-1:]) or "no answer"
+            raise InputError(f"git failed while {what}: {detail}")
+        size = int(fields[2])
+        if size >= SPILL_BYTES:
+            with open(spill_to, "wb") as out:
+                _copy(proc.stdout, out, size)
+            proc.stdout.read(1)  # the newline after the contents
+            return spill_to
+        data = proc.stdout.read(size)
+        proc.stdout.read(1)
+        if len(data) != size:
+            self.close()
+            raise InputError(f"git failed while {what}: the blob ended early")
+        return data
+
+    def _process(self) -> subprocess.Popen[bytes]:
+        if self._proc is None:
+            env = {**os.environ, "GIT_TERMINAL_PROMPT": "0", "LC_ALL": "C"}
+            try:
+                self._proc = subprocess.Popen(
+                    ["git", "-c", "core.quotepath=off", "cat-file", "--batch"], cwd=self.cwd,
+                    stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                    shell=False, env=env)
+            except FileNotFoundError:
+                raise InputError("git is not installed or not on PATH; install git") from None
+        return self._proc
+
+
+def _copy(source: IO[bytes], out: IO[bytes], size: int) -> None:
+    left = size
+    while left:
+        chunk = source.read(min(left, 1 << 24))
+        if not chunk:
+            raise InputError("git ended a blob early")
+        out.write(chunk)
+        left -= len(chunk)
+
+
+def read_model_blob(reader: BlobReader, rev: str, path: str, cwd: str | Path,
+                    spill_to: Path) -> bytes | Path | None:
+    """``path`` at ``rev`` for analysis: its bytes (or a spilled file), an LFS pointer resolved
+    from the local store as ``write_blob`` does, or None when it stays a pointer."""
+    got = reader.read(rev, path, spill_to)
+    if isinstance(got, Path) or not is_lfs_pointer(got):
+        return got
+    spill_to.write_bytes(got)
+    if filter_at(rev, path, cwd) != "lfs" or not _lfs_object_present(spill_to, cwd):
+        return None
+    _smudge_in_place(path, cwd, spill_to)
+    return None if _is_pointer_file(spill_to) else spill_to
 
 
 def filter_at(rev: str, path: str, cwd: str | Path) -> str | None:

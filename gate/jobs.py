@@ -16,21 +16,22 @@ Every command that analyses a model (``profile``, ``evaluate``, ``baseline``,
 from __future__ import annotations
 
 import concurrent.futures
+import itertools
 import multiprocessing
 import os
 import shutil
 import signal
 import sys
 import traceback
-from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, replace
-from typing import Any, TextIO
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from typing import TextIO
 
 from gate.costmodel import ModelCost, cost_model
 from gate.errors import InputError, InternalError, RoofgateError, one_safe_line
 from gate.model.loader import LoadedModel, load_model
 from gate.profile import ModelProfile, profile_model
-from gate.records import RunRecord, run_from_dict, run_to_dict, with_unknown_totals
+from gate.records import RunRecord, canonical_run, with_unknown_totals
 from gate.summarize import build_run_record
 from gate.targets.spec import TargetProfile
 
@@ -46,6 +47,8 @@ class Job:
     precision: str | None = None
     key: str = ""  # what results are keyed by (default: ``model``), e.g. to tell base from head
     shapes: tuple[tuple[str, tuple[int, ...]], ...] = ()  # whole-input bindings (--shape)
+    # the file's bytes when already read (a git blob): ``file`` is then never opened
+    data: bytes | None = field(default=None, repr=False)
 
     @property
     def result_key(self) -> str:
@@ -64,10 +67,12 @@ class Analysis:
 
 @dataclass(frozen=True, slots=True)
 class JobOutcome:
-    """What a worker sends back: records as JSON-ready dicts, or why there are none."""
+    """What a worker sends back: its records (canonical, as a JSON round trip gives them;
+    pickled as they are, far cheaper than dicts rebuilt into records), or why there are
+    none."""
 
     key: str
-    runs: tuple[dict[str, Any], ...] = ()
+    runs: tuple[RunRecord, ...] = ()
     error: str = ""  # the model cannot be analysed (exit 2 unless allow_unanalysable)
     internal: str = ""  # roofgate's own bug (exit 3, always)
 
@@ -81,17 +86,18 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
                   dims: Mapping[str, int] | None = None, precision: str | None = None,
                   shown_path: str | None = None,
                   shapes: Mapping[str, tuple[int, ...]] | None = None,
-                  fusion: bool = True) -> Analysis:
+                  fusion: bool = True, data: bytes | None = None) -> Analysis:
     """Load and profile the model at ``path`` once, cost it on every target.
 
     ``fusion`` False costs layer by layer even on targets that declare ``fusion:``.
+    ``data``: the file's bytes, already read (``path`` is then never opened).
 
     Records name the model ``shown_path`` (default ``path``). Load warnings (for
     example external data that was not opened) are kept as record notes so
     reports show them. Raises ``RoofgateError`` for input that cannot be analysed.
     """
     _refuse_duplicate_targets(targets)
-    loaded = load_model(path, dict(dims or {}), dict(shapes or {}))
+    loaded = load_model(path, dict(dims or {}), dict(shapes or {}), data=data)
     profile = profile_model(loaded, precision)
     name = shown_path if shown_path is not None else path
     costs = tuple((target, cost_model(profile, target, fusion=fusion)) for target in targets)
@@ -108,10 +114,11 @@ def analyse(path: str, targets: Sequence[TargetProfile], *,
             dims: Mapping[str, int] | None = None, precision: str | None = None,
             shown_path: str | None = None,
             shapes: Mapping[str, tuple[int, ...]] | None = None,
-            fusion: bool = True) -> list[RunRecord]:
+            fusion: bool = True, data: bytes | None = None) -> list[RunRecord]:
     """The records of ``analyse_model`` (one per target)."""
     return list(analyse_model(path, targets, dims=dims, precision=precision,
-                              shown_path=shown_path, shapes=shapes, fusion=fusion).records)
+                              shown_path=shown_path, shapes=shapes, fusion=fusion,
+                              data=data).records)
 
 
 def _refuse_duplicate_targets(targets: Sequence[TargetProfile]) -> None:
@@ -155,12 +162,12 @@ def analyse_job(job: Job) -> JobOutcome:
     try:
         targets = [load_target(name) for name in job.targets]
         runs = analyse(job.file, targets, dims=dict(job.dims), precision=job.precision,
-                       shown_path=job.model, shapes=dict(job.shapes))
+                       shown_path=job.model, shapes=dict(job.shapes), data=job.data)
     except InternalError:
         raise
     except RoofgateError as exc:
         return JobOutcome(job.result_key, error=model_error_text(exc, job.model, job.file))
-    return JobOutcome(job.result_key, runs=tuple(run_to_dict(r) for r in runs))
+    return JobOutcome(job.result_key, runs=tuple(canonical_run(r) for r in runs))
 
 
 def _analyse_job_in_worker(job: Job) -> JobOutcome:
@@ -183,9 +190,12 @@ def internal_error(model: str, detail: str) -> InternalError:
 # --- many models --------------------------------------------------------------------
 
 def run_jobs(jobs: Sequence[Job], workers: int,
-             progress: Callable[[int, int, str], None] | None = None) -> Analysed:
+             progress: Callable[[int, int, str], None] | None = None,
+             prepare: Callable[[Job], Job | None] | None = None) -> Analysed:
     """Analyse every job (in ``workers`` processes when > 1); results keyed by result key.
 
+    ``prepare`` runs in this process just before a job is handed out (e.g. to read
+    its git blob, so only the blobs in flight are in memory); None skips the job.
     Raises ``InternalError`` on the first bug met, in-process or in a worker.
     """
     out: Analysed = {}
@@ -194,32 +204,48 @@ def run_jobs(jobs: Sequence[Job], workers: int,
     def keep(outcome: JobOutcome, model: str) -> None:
         if outcome.internal:
             raise internal_error(model, outcome.internal)
-        out[outcome.key] = ([run_from_dict(d) for d in outcome.runs], outcome.error)
+        out[outcome.key] = (list(outcome.runs), outcome.error)
         if progress:
             progress(len(out), total, model)
 
+    ready = (job for job in (prepare(j) if prepare else j for j in jobs) if job is not None)
     if workers <= 1 or total <= 1:
-        for job in jobs:
+        for job in ready:
             keep(_analyse_in_process(job), job.model)
         return out
-    _run_in_processes(jobs, min(workers, total), keep)
+    _run_in_processes(ready, min(workers, total), keep)
     return out
 
 
-def _run_in_processes(jobs: Sequence[Job], workers: int,
-                      keep: Callable[[JobOutcome, str], None]) -> None:
-    """Analyse ``jobs`` in ``workers`` processes, handing each outcome to ``keep``.
+IN_FLIGHT_PER_WORKER = 2  # jobs handed out ahead per worker: no idle worker, bounded memory
 
-    On Ctrl-C, SIGTERM (raised as SystemExit by the CLI) or any error the
-    worker processes are terminated at once instead of finishing their models
-    (which could take minutes after the run was stopped).
+
+def _run_in_processes(jobs: Iterator[Job], workers: int,
+                      keep: Callable[[JobOutcome, str], None]) -> None:
+    """Analyse ``jobs`` in ``workers`` processes (started once, reused for every job),
+    handing each outcome to ``keep``.
+
+    Jobs are handed out as workers finish, a few ahead, so a job's bytes are read
+    (``prepare``) only shortly before a worker needs them. On Ctrl-C, SIGTERM
+    (raised as SystemExit by the CLI) or any error the worker processes are
+    terminated at once instead of finishing their models (which could take
+    minutes after the run was stopped).
     """
     pool = concurrent.futures.ProcessPoolExecutor(max_workers=workers,
                                                   initializer=_worker_signals)
     try:
-        futures = {pool.submit(_analyse_job_in_worker, job): job for job in jobs}
-        for future in concurrent.futures.as_completed(futures):
-            keep(future.result(), futures[future].model)
+        pending: dict[concurrent.futures.Future[JobOutcome], Job] = {}
+        for job in itertools.islice(jobs, workers * IN_FLIGHT_PER_WORKER):
+            pending[pool.submit(_analyse_job_in_worker, job)] = job
+        while pending:
+            done, _ = concurrent.futures.wait(pending,
+                                              return_when=concurrent.futures.FIRST_COMPLETED)
+            for future in done:
+                job = pending.pop(future)
+                keep(future.result(), job.model)
+                following = next(jobs, None)
+                if following is not None:
+                    pending[pool.submit(_analyse_job_in_worker, following)] = following
     except BaseException:
         pool.shutdown(wait=False, cancel_futures=True)
         for child in multiprocessing.active_children():

@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from math import prod
 
 from gate.errors import InputError, InternalError
+from gate.model.constants import logical_source
 from gate.model.convert import UNKNOWN_DIM
 from gate.model.graph import (
     DTYPE_BITS,
@@ -50,6 +51,11 @@ class LayerProfile:
     precision the layer runs at as deployed (``gate.precision``) or the
     ``--precision`` override. ``role`` is "layer", "folded" (computed offline from
     constants) or "fused" (an activation quantize/dequantize pair).
+
+    Unknown is never zero: ``macs`` and ``flops`` are None when the layer is not
+    modelled, ``input_bytes`` / ``output_bytes`` None when a tensor's size is not
+    known (an unbound dim), and the figures derived from them None as well. A
+    modelled layer has every figure known.
     """
 
     index: int
@@ -63,10 +69,10 @@ class LayerProfile:
     param_names: tuple[str, ...]  # initializers this layer reads (its parameters)
     param_count: int
     param_bytes: int
-    input_bytes: int  # activation inputs (parameters excluded)
-    output_bytes: int
-    macs: int
-    flops: int
+    input_bytes: int | None  # activation inputs (parameters excluded); None: a size unknown
+    output_bytes: int | None
+    macs: int | None  # None: not modelled (unknown, never 0)
+    flops: int | None
     modelled: bool
     unmodelled_reason: str  # "" when modelled
     work: OpWork | None  # None when unmodelled
@@ -80,18 +86,39 @@ class LayerProfile:
         return self.param_bytes if self.param_new_bytes is None else self.param_new_bytes
 
     @property
-    def bytes_moved(self) -> int:
+    def bytes_moved(self) -> int | None:
+        if self.input_bytes is None or self.output_bytes is None:
+            return None
         return self.param_bytes + self.input_bytes + self.output_bytes
 
     @property
-    def arithmetic_intensity(self) -> float:
-        """FLOP per byte moved (parameters + input and output activations), as in the roofline model."""
-        return self.flops / self.bytes_moved if self.bytes_moved else 0.0
+    def arithmetic_intensity(self) -> float | None:
+        """FLOP per byte moved (parameters + input and output activations), as in the roofline
+        model; None when the FLOPs or the bytes are unknown."""
+        moved = self.bytes_moved
+        if self.flops is None or moved is None:
+            return None
+        return self.flops / moved if moved else 0.0
 
     @property
-    def param_reuse(self) -> float:
+    def param_reuse(self) -> float | None:
         """MACs per parameter byte: how often each fetched parameter byte is used."""
+        if self.macs is None:
+            return None
         return self.macs / self.param_bytes if self.param_bytes else 0.0
+
+    @property
+    def sized(self) -> tuple[int, int]:
+        """(input bytes, output bytes) of a layer whose sizes are known: every modelled layer."""
+        if self.input_bytes is None or self.output_bytes is None:
+            raise InternalError(f"layer '{self.name}' is costed but a tensor size is unknown")
+        return self.input_bytes, self.output_bytes
+
+    @property
+    def counted_macs(self) -> int:
+        """MACs of a layer that is counted (every modelled layer); 0 for an unmodelled one,
+        for sums that skip unknowns on purpose (coverage, the dominant precision)."""
+        return self.macs or 0
 
 
 @dataclass(frozen=True, slots=True)
@@ -184,8 +211,8 @@ def profile_model(model: LoadedModel, precision: str | None = None) -> ModelProf
         precision=label,
         layers=layers,
         coverage=_coverage(layers),
-        total_macs=sum(layer.macs for layer in modelled),
-        total_flops=sum(layer.flops for layer in modelled),
+        total_macs=sum(layer.counted_macs for layer in modelled),
+        total_flops=sum(layer.flops or 0 for layer in modelled),
         total_param_count=ledger.total_count(),
         total_param_bytes=ledger.total_bytes(),
         notes=_notes(model, precision, override_bits, unbound, layers),
@@ -353,6 +380,8 @@ def _layer_params(node: Node) -> dict[str, _Param]:
         for position in sorted(current.param_inputs):
             tensor = current.input(position)
             source = current.param_source(position)
+            if source is not None:  # a packed weight counts the logical weights it holds
+                source = logical_source(current, position, source)
             if tensor is not None and source is not None:
                 params.setdefault(tensor.name, (tensor, source, is_bias(current, position)))
         for name in counted_subgraphs(current):
@@ -405,10 +434,14 @@ def _work(node: Node, unbound: dict[str, int]) -> tuple[OpWork | None, str]:
                             f"it") from exc
 
 
-def _sum_bytes(tensors: Iterable[TensorInfo], counting: _Counting) -> int:
+def _sum_bytes(tensors: Iterable[TensorInfo], counting: _Counting) -> int | None:
+    """Bytes of ``tensors`` together; None when any one's size is unknown (never 0)."""
     total = 0
     for tensor in tensors:
-        total += _tensor_bytes(tensor, counting) or 0
+        nbytes = _tensor_bytes(tensor, counting)
+        if nbytes is None:
+            return None
+        total += nbytes
     return total
 
 
@@ -424,6 +457,10 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
                    and t.name not in params}
     outputs = [t for i, t in enumerate(node.outputs) if t.name and i not in node.unused_outputs]
     work, reason = _work(node, unbound)
+    input_bytes = _sum_bytes(activations.values(), counting)
+    output_bytes = _sum_bytes(outputs, counting)
+    if work is not None and (input_bytes is None or output_bytes is None):
+        work, reason = None, "a tensor's size is unknown (element type without a fixed size)"
     precision = counting.override or layer_precision(node, counting.deployed)
     if work is not None and _requantizes(node, work, precision, outputs, counting):
         work = requantized(work)
@@ -439,10 +476,10 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
         param_names=charge.names,
         param_count=charge.count,
         param_bytes=charge.nbytes,
-        input_bytes=_sum_bytes(activations.values(), counting),
-        output_bytes=_sum_bytes(outputs, counting),
-        macs=work.macs if work else 0,
-        flops=work.flops if work else 0,
+        input_bytes=input_bytes,
+        output_bytes=output_bytes,
+        macs=work.macs if work else None,
+        flops=work.flops if work else None,
         modelled=work is not None,
         unmodelled_reason=reason,
         work=work,
@@ -496,7 +533,7 @@ def _coverage(layers: tuple[LayerProfile, ...]) -> Coverage:
     return Coverage(
         nodes_total=len(layers),
         nodes_modelled=len(modelled),
-        work_modelled=sum(layer.macs for layer in modelled),
+        work_modelled=sum(layer.counted_macs for layer in modelled),
         work_unmodelled_estimate=work_unmodelled,
         unmodelled=unmodelled,
         unsized_unmodelled_nodes=unsized,
@@ -562,7 +599,7 @@ def _deployed_note(layers: tuple[LayerProfile, ...]) -> str:
     """Which precisions the layers run at, read from the graph (weighted by layer count)."""
     counts: dict[str, int] = {}
     for layer in layers:
-        if layer.role == "layer" and layer.precision and layer.macs > 0:
+        if layer.role == "layer" and layer.precision and layer.counted_macs > 0:
             counts[layer.precision] = counts.get(layer.precision, 0) + 1
     if not counts:
         return f"precision {DEPLOYED_LABEL}: read from the graph (no layer with MACs)"

@@ -14,7 +14,7 @@ directions. Values are ints for counts and bytes, floats otherwise.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from gate.metrics import LAYER_METRICS, MODEL_METRICS, TARGET_FIGURES
@@ -42,7 +42,7 @@ class LayerRecord:
     modelled: bool
     unmodelled_reason: str
     params_fit: bool
-    activations_fit: bool
+    activations_fit: bool | None  # None: an activation's size is unknown (never "fits")
     metrics: Mapping[str, Metric]
     fused_into: str = ""  # head layer of the fused group this layer runs in ("" when alone)
     fused_ops: tuple[str, ...] = ()  # on a group's head: the op types it absorbed, in order
@@ -80,6 +80,10 @@ class RunRecord:
     layers: tuple[LayerRecord, ...]
     unmodelled: tuple[UnmodelledRecord, ...] = ()
     notes: tuple[str, ...] = ()
+    # name -> first layer of that name, built on the first lookup (a scan per lookup made
+    # every per-layer caller quadratic); not part of the record's value
+    _by_name: dict[str, LayerRecord] | None = field(default=None, init=False, repr=False,
+                                                    compare=False)
 
     @property
     def key(self) -> tuple[str, str]:
@@ -89,10 +93,17 @@ class RunRecord:
         return self.metrics[name]
 
     def layer(self, name: str) -> LayerRecord | None:
-        for layer in self.layers:
-            if layer.name == name:
-                return layer
-        return None
+        """The first layer named ``name`` (None if there is none), through the name index."""
+        return self.layer_index().get(name)
+
+    def layer_index(self) -> Mapping[str, LayerRecord]:
+        """Layer name -> the first layer of that name; built once per record."""
+        if self._by_name is None:
+            index: dict[str, LayerRecord] = {}
+            for layer in self.layers:
+                index.setdefault(layer.name, layer)
+            object.__setattr__(self, "_by_name", index)  # a cache on a frozen record
+        return self._by_name  # type: ignore[return-value]
 
 
 def nothing_costed(run: RunRecord) -> bool:
@@ -139,6 +150,23 @@ def coverage_note(run: RunRecord) -> str:
     return f"{run.model} on {run.target}: {unmodelled} of {layers} layers unmodelled: {what}{fix}"
 
 
+def canonical_run(run: RunRecord) -> RunRecord:
+    """``run`` exactly as a JSON round trip (``run_from_dict(run_to_dict(run))``) gives it
+    back, metrics in sorted order, without building the dicts: what workers send back, so
+    in-process, worker and shard-file records report byte for byte alike."""
+    layers = tuple(_canonical_layer(layer) for layer in run.layers)
+    return RunRecord(run.model, run.model_name, run.target, run.precision,
+                     dict(sorted(run.metrics.items())), dict(sorted(run.target_figures.items())),
+                     layers, tuple(run.unmodelled), tuple(run.notes))
+
+
+def _canonical_layer(layer: LayerRecord) -> LayerRecord:
+    return LayerRecord(layer.name, layer.op_type, layer.signature, layer.engine, layer.bound,
+                       layer.modelled, layer.unmodelled_reason, layer.params_fit,
+                       layer.activations_fit, dict(sorted(layer.metrics.items())),
+                       layer.fused_into, tuple(layer.fused_ops), layer.precision)
+
+
 # --- JSON-ready dicts (the snapshot/result writers add versioning around these) ---
 
 def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:
@@ -169,7 +197,8 @@ def layer_from_dict(data: Mapping[str, Any]) -> LayerRecord:
         modelled=bool(data["modelled"]),
         unmodelled_reason=str(data["unmodelled_reason"]),
         params_fit=bool(data["params_fit"]),
-        activations_fit=bool(data["activations_fit"]),
+        activations_fit=(None if data["activations_fit"] is None
+                         else bool(data["activations_fit"])),
         metrics=_metrics(data["metrics"]),
         fused_into=str(data.get("fused_into", "")),
         fused_ops=tuple(str(op) for op in data.get("fused_ops", ())),

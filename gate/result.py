@@ -86,7 +86,7 @@ class Verdict:
 class LayerChange:
     """A layer matched (or not) between the base and head profile of a model on a target."""
 
-    status: str  # "added", "removed", "changed", "unchanged"
+    status: str  # "added", "removed", "changed", "unchanged", "unknown" (gate.diff)
     base_name: str | None
     head_name: str | None
     op_type: str
@@ -239,6 +239,11 @@ class Blocker:
         if finding is None:
             return f"{where}: {v.summary}.{fix}"
         at = f" at layer {finding.layer}" if finding.layer is not None else ""
+        if finding.value is None:  # unknown: neither above nor below, and never a pass
+            limit = ("the rule" if finding.limit is None else
+                     f"the limit of {metrics.fmt(finding.metric, finding.limit)}")
+            return (f"{where}{at}: {metrics.label(finding.metric)} unknown (?), so {limit} "
+                    f"cannot be checked.{fix}")
         relation = "above" if _above(finding) else "below"
         return (f"{where}{at}: {metrics.label(finding.metric)} "
                 f"{metrics.fmt(finding.metric, finding.value)}, {relation} the limit of "
@@ -300,6 +305,35 @@ def _excess(finding: Finding) -> float:
 
 
 @dataclass(frozen=True, slots=True)
+class RulesSource:
+    """Where a ``check`` run took its rules from, and what the pull request changes in them.
+
+    Every report shows ``statement`` at the top and ``changes`` as its own section
+    (gate/rules_source.py decides both; reporters only lay them out).
+    """
+
+    side: str  # "base" (the merge base's rules judge) or "head" (the pull request's)
+    statement: str  # one sentence: where the rules came from, and why
+    changes: tuple[str, ...] = ()  # one line per change the pull request makes to the rules
+
+    @property
+    def from_head(self) -> bool:
+        """The pull request's own rules judge it: every report says so at the top."""
+        return self.side == "head"
+
+    @property
+    def heading(self) -> str:
+        """The title of the changes section, saying when the changes take effect."""
+        when = "they judge this run" if self.from_head else "they take effect after merge"
+        return f"Rules changed in this pull request ({when})"
+
+    @property
+    def loosened(self) -> tuple[str, ...]:
+        """The changes that let more through (rules_diff marks them 'loosened')."""
+        return tuple(line for line in self.changes if "loosened" in line)
+
+
+@dataclass(frozen=True, slots=True)
 class Counts:
     """Outcome counts of a run (rule results count once per model x target)."""
 
@@ -323,6 +357,7 @@ class GateResult:
     notes: tuple[str, ...] = ()  # e.g. "no models changed"
     allow_errors: bool = False  # policy explicitly lets unanalysable models through
     ungated: tuple[UngatedModel, ...] = ()  # .onnx files no model group covers, sorted
+    rules_source: RulesSource | None = None  # check: where the rules came from, what changed
 
     @property
     def failed_verdicts(self) -> tuple[Verdict, ...]:
@@ -401,7 +436,20 @@ def result_to_dict(result: GateResult) -> dict[str, Any]:
                     for u in result.ungated],
         "model_counts": result.model_counts,
         "entries": [_entry_to_dict(e) for e in result.entries],
+        **({"rules_source": _rules_to_dict(result.rules_source)} if result.rules_source else {}),
     }
+
+
+def _rules_to_dict(rules: RulesSource) -> dict[str, Any]:
+    return {"side": rules.side, "statement": rules.statement, "heading": rules.heading,
+            "changes": list(rules.changes), "loosened": list(rules.loosened)}
+
+
+def _rules_from_dict(data: Mapping[str, Any] | None) -> RulesSource | None:
+    if not data:
+        return None
+    return RulesSource(str(data["side"]), str(data["statement"]),
+                       tuple(str(line) for line in data["changes"]))
 
 
 def result_from_dict(data: Mapping[str, Any]) -> GateResult:
@@ -414,6 +462,7 @@ def result_from_dict(data: Mapping[str, Any]) -> GateResult:
         entries=tuple(_entry_from_dict(e) for e in data["entries"]),
         ungated=tuple(UngatedModel(str(u["model"]), str(u["reason"]), bool(u["skipped"]))
                       for u in data.get("ungated", ())),
+        rules_source=_rules_from_dict(data.get("rules_source")),
     )
 
 

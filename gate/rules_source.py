@@ -12,9 +12,9 @@ this pull request" (gate/rules_diff.py); they take effect after merge.
 A repository may opt into the pull request's rules with ``rules_from: head``
 in the *base's* ``roofgate.yaml``; the reports then say so first. When the
 base has no ``roofgate.yaml`` yet (the pull request adds roofgate), the
-pull request's rules are used, and the reports say that too. ``check`` also
-refuses waivers of the rules it uses whose reason is a token or whose expiry
-lies beyond the config's ``waiver_horizon_days`` (gate/policy/waivers.py).
+pull request's rules are used, and the reports say that too. Waivers of the
+rules a run uses are checked where every run loads its policies
+(gate/gating.PolicyCache, gate/policy/waivers.refuse_weak_waivers).
 """
 
 from __future__ import annotations
@@ -23,20 +23,17 @@ import tempfile
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import date
 from pathlib import Path
 
 from gate import gitscan
 from gate.bundled import names_a_file
 from gate.config import CONFIG_FILE, ProjectConfig, find_config, resolve_file
-from gate.errors import ConfigError
 from gate.policy.load import load_policy
 from gate.policy.spec import Policy
-from gate.policy.waivers import waiver_problems
+from gate.result import RulesSource
 from gate.rules_diff import config_changes, policy_changes
 
 RULE_SUFFIXES = (".yaml", ".yml")
-CHANGES_HEADING = "Rules changed in this pull request (they take effect after merge)"
 
 # load(config file or None for "as the working tree has it", apply command-line flags?)
 ConfigLoader = Callable[[Path | None, bool], ProjectConfig]
@@ -47,7 +44,7 @@ class CheckRules:
     """The rules one ``check`` run judges with, and what the reports must say about them."""
 
     config: ProjectConfig
-    notes: tuple[str, ...]  # where the rules come from, then one line per change
+    source: RulesSource | None  # where the rules come from, what changed (None: the operator's)
     repo_files: tuple[str, ...]  # the rule files in the working tree (no report may replace them)
     baseline: str | None  # the snapshot to read: the base's copy when the path is committed
     tree: str = ""  # the temporary folder the rules were read from
@@ -59,7 +56,7 @@ class CheckRules:
 
 @contextmanager
 def check_rules(root: Path, base_commit: str, load: ConfigLoader, *, config_path: str | None,
-                baseline: str | None, today: date) -> Iterator[CheckRules]:
+                baseline: str | None) -> Iterator[CheckRules]:
     """The rules of a ``check`` run (see the module docstring), valid for the ``with`` block."""
     config_rel = _config_rel(root, config_path)
     baseline_rel = _repo_rel(root, baseline) if baseline else None
@@ -69,14 +66,13 @@ def check_rules(root: Path, base_commit: str, load: ConfigLoader, *, config_path
         for rev, folder in ((base_commit, trees["base"]), ("HEAD", trees["head"])):
             export_rule_files(root, rev, folder, baseline_rel)
         if config_rel is None:  # a config outside the repository: the operator's, used as is
-            yield CheckRules(load(None, True), (), (), baseline)
+            yield CheckRules(load(None, True), None, (), baseline)
             return
         raw = {side: _load_raw(load, folder / config_rel) for side, folder in trees.items()}
-        side, note = _chosen_side(raw["base"], base_commit)
+        side, statement = _chosen_side(raw["base"], base_commit)
         config = load(trees[side] / config_rel, True) if raw[side] else load(None, True)
-        _refuse_weak_waivers(config, today)
-        notes = [note, *_changes(raw, trees, baseline_rel)]
-        yield CheckRules(config, tuple(notes), _repo_files(config, trees[side], root),
+        source = RulesSource(side, statement, tuple(_changes(raw, trees, baseline_rel)))
+        yield CheckRules(config, source, _repo_files(config, trees[side], root),
                          _baseline(trees[side], baseline_rel, baseline), str(trees[side]))
 
 
@@ -118,7 +114,7 @@ def _changes(raw: dict[str, ProjectConfig | None], trees: dict[str, Path],
     lines += policy_changes(_policies(base, trees["base"]), _policies(head, trees["head"]))
     if baseline_rel and _bytes(trees["base"] / baseline_rel) != _bytes(trees["head"] / baseline_rel):
         lines.append(f"{baseline_rel}: the committed baseline snapshot changed")
-    return [f"{CHANGES_HEADING}: {line}" for line in lines]
+    return lines
 
 
 def _policies(config: ProjectConfig | None, tree: Path) -> dict[str, Policy]:
@@ -131,13 +127,6 @@ def _policies(config: ProjectConfig | None, tree: Path) -> dict[str, Policy]:
         key = _tree_rel(tree, file) if names_a_file(ref) else ref
         out[key] = load_policy(file)  # a policy that cannot be read stops the run (exit 2)
     return out
-
-
-def _refuse_weak_waivers(config: ProjectConfig, today: date) -> None:
-    policies = list(_policies(config, Path(config.root)).values())
-    problems = waiver_problems(policies, today, config.waiver_horizon_days)
-    if problems:
-        raise ConfigError(problems)
 
 
 def _repo_files(config: ProjectConfig, tree: Path, root: Path) -> tuple[str, ...]:

@@ -2,10 +2,14 @@
 
 from __future__ import annotations
 
-from gate.costmodel import LayerCost, ModelCost
+from functools import lru_cache
+
+from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
 from gate.profile import LayerProfile, ModelProfile
 from gate.records import LayerRecord, Metric, RunRecord, UnmodelledRecord
 from gate.targets.spec import TargetProfile
+
+_ENERGY_PARTS = tuple(EnergyBreakdown().as_dict())
 
 
 def build_run_record(model_path: str, profile: ModelProfile, cost: ModelCost,
@@ -37,14 +41,24 @@ def layer_signature(layer: LayerProfile) -> str:
     return f"{layer.domain + '.' if layer.domain else ''}{layer.op_type}({ins})->({outs})"
 
 
+@lru_cache(maxsize=1 << 16)  # graphs repeat a few (shape, dtype) pairs across many layers
 def _shape_text(shape: tuple[int | str, ...] | None, dtype: str) -> str:
-    dims = "?" if shape is None else "x".join(str(d) for d in shape)
+    dims = "?" if shape is None else "x".join(map(str, shape))
     return f"{dtype.lower()}[{dims}]"
+
+
+def _achieved(flops: int | None, latency_s: float | None) -> float | None:
+    """FLOP/s a layer achieves; None when either side is unknown (0 when it takes no time)."""
+    if flops is None or latency_s is None:
+        return None
+    return flops / latency_s if latency_s > 0 else 0.0
 
 
 def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
     energy = cost.energy
-    achieved = layer.flops / cost.latency_s if cost.latency_s > 0 else 0.0
+    parts: dict[str, Metric] = ({f"energy_{part}": value for part, value in energy.as_dict().items()}
+                                if energy is not None else
+                                {f"energy_{part}": None for part in _ENERGY_PARTS})
     metrics: dict[str, Metric] = {
         "macs": layer.macs,
         "flops": layer.flops,
@@ -62,9 +76,9 @@ def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
         "latency_s": cost.latency_s,
         "param_dram_bytes": cost.param_dram_bytes,
         "act_dram_bytes": cost.act_dram_bytes,
-        "achieved_flops_per_s": achieved,
-        "energy_j": energy.total_j,
-        **{f"energy_{part}": value for part, value in energy.as_dict().items()},
+        "achieved_flops_per_s": _achieved(layer.flops, cost.latency_s),
+        "energy_j": None if energy is None else energy.total_j,
+        **parts,
     }
     return LayerRecord(
         name=layer.name,

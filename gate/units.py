@@ -11,6 +11,10 @@ KiB is ``1.00 MiB`` (never ``1024 KiB``), 999.96 nJ is ``1.00 uJ``. A value that
 rounds to zero is written without a sign (never ``-0.0 pp``). An unknown figure
 (``None``) is ``?`` everywhere, and so is NaN; infinities are ``inf``/``-inf``.
 
+The formatters are memoised (``lru_cache``, typed, so ``1`` and ``1.0`` and ``True`` stay
+apart): a table of 100,000 layers repeats the same few values, and the output depends
+on the value alone.
+
 Micro is written ``u``: plain ASCII survives every CI log, console and XML
 consumer, and it is what target and policy files are written with (``2 us``).
 
@@ -21,10 +25,13 @@ This module imports nothing from roofgate: it sits below the metric catalogue
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 
 UNKNOWN = "?"
 
 Number = int | float
+
+_CACHED_VALUES = 1 << 14  # distinct values remembered per formatter
 
 # Ladders of (unit, size in base units), largest first.
 BINARY_BYTES: tuple[tuple[str, float], ...] = (
@@ -96,6 +103,7 @@ def _join(number: str, unit: str) -> str:
     return f"{number} {unit}" if unit else number
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_bytes(value: Number | None) -> str:
     """Bytes with a binary prefix: ``512 B``, ``1.50 KiB``, ``5.06 MiB``."""
     special = _special(value)
@@ -107,6 +115,7 @@ def fmt_bytes(value: Number | None) -> str:
     return scaled(value, BINARY_BYTES, step=1024, zero="0 B")
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_count(value: Number | None, unit: str = "") -> str:
     """A count or rate with an SI prefix: ``950``, ``1.23 M``, ``2.05 TFLOP/s``.
 
@@ -122,16 +131,19 @@ def fmt_count(value: Number | None, unit: str = "") -> str:
                   zero=_join("0", unit))
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_seconds(value: Number | None) -> str:
     """Time on a decimal ladder: ``2.41 ms``, ``9.25 us``, ``1.20 s``."""
     return scaled(value, TIME_UNITS, step=1000, zero="0 s")
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_joules(value: Number | None) -> str:
     """Energy on a decimal ladder: ``1.15 mJ``, ``471 uJ``."""
     return scaled(value, ENERGY_UNITS, step=1000, zero="0 J")
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_share(value: Number | None) -> str:
     """A share in [0, 1] as a percentage with one decimal: ``87.5%``.
 
@@ -147,6 +159,7 @@ def fmt_share(value: Number | None) -> str:
     return no_negative_zero(f"{percent:.1f}") + "%"
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_points(delta_share: Number | None) -> str:
     """A change of a share in signed percentage points: ``-4.2 pp``, ``+0.04 pp``."""
     special = _special(delta_share)
@@ -156,6 +169,7 @@ def fmt_points(delta_share: Number | None) -> str:
     return _signed(float(delta_share) * 100, "0 pp", " pp")
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_ratio_change(ratio: Number | None) -> str:
     """A relative change (0.774 = +77.4%) with its sign: ``+77.4%``, ``-3.0%``, ``+3100%``."""
     special = _special(ratio)
@@ -180,6 +194,7 @@ def _signed(amount: float, zero: str, unit: str) -> str:
     return ("+" if amount > 0 else "-") + "<0.01" + unit
 
 
+@lru_cache(maxsize=_CACHED_VALUES, typed=True)
 def fmt_plain(value: Number | None) -> str:
     """A number without a unit, three significant digits (``0.123``, ``45.6``, ``1.20 k``)."""
     special = _special(value)

@@ -173,3 +173,51 @@ def test_a_bug_in_a_worker_process_stops_the_run_as_an_internal_error(tmp_path, 
     monkeypatch.setattr(jobs, "_analyse_in_process", jobs._analyse_job_in_worker)
     with pytest.raises(InternalError, match="models/m.onnx.*ZeroDivisionError"):
         jobs.run_jobs([job], workers=1)
+
+
+def test_worker_records_are_what_a_json_round_trip_gives_back(tmp_path) -> None:
+    """Workers send records as they are (pickled), not as dicts: they must equal, key order
+    included, what a shard file read back holds, or merged reports would differ."""
+    import pickle
+
+    from gate.records import canonical_run, run_from_dict, run_to_dict
+    from gate.synth.archs import mobilenet_v1
+    from gate.synth.builder import save_model
+
+    save_model(mobilenet_v1(width=0.25, resolution=64, batch=1), tmp_path / "m.onnx")
+    job = jobs.Job(model="models/m.onnx", file=str(tmp_path / "m.onnx"),
+                   targets=("ws-64x64-4mib", "os-16x16-512kib"))
+    outcome = pickle.loads(pickle.dumps(jobs._analyse_job_in_worker(job)))
+    assert len(outcome.runs) == 2
+    for sent in outcome.runs:
+        read_back = run_from_dict(json.loads(json.dumps(run_to_dict(sent))))
+        assert sent == read_back == canonical_run(read_back)
+        assert list(sent.metrics) == list(read_back.metrics)
+        assert list(sent.target_figures) == list(read_back.target_figures)
+        assert [list(x.metrics) for x in sent.layers] == [list(x.metrics) for x in read_back.layers]
+        assert [type(x.fused_ops) for x in sent.layers] == [tuple] * len(sent.layers)
+
+
+def test_run_jobs_hands_jobs_out_lazily_and_skips_what_prepare_drops(tmp_path) -> None:
+    from gate.synth.builder import save_model
+    from gate.synth.layers import NetBuilder
+
+    for k in range(6):
+        b = NetBuilder("fc")
+        b.output(b.gemm(b.input("x", [1, 16]), 8 + k, name="fc"))
+        save_model(b.build(), tmp_path / f"m{k}.onnx")
+    all_jobs = [jobs.Job(model=f"models/m{k}.onnx", file=str(tmp_path / f"m{k}.onnx"),
+                         targets=("ws-64x64-4mib",)) for k in range(6)]
+    for workers in (1, 2):
+        prepared: list[str] = []
+
+        def prepare(job: jobs.Job, seen: list[str] = prepared) -> jobs.Job | None:
+            seen.append(job.model)
+            if job.model.endswith("m3.onnx"):
+                return None
+            return replace(job, data=Path(job.file).read_bytes(), file=job.model)
+
+        out = jobs.run_jobs(all_jobs, workers, prepare=prepare)
+        assert prepared == [j.model for j in all_jobs]  # each once, in order
+        assert sorted(out) == [f"models/m{k}.onnx" for k in (0, 1, 2, 4, 5)]
+        assert all(runs and not error for runs, error in out.values())

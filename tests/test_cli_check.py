@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import json
 import os
+import subprocess
+import sys
 from pathlib import Path
 from xml.etree import ElementTree
 
@@ -132,6 +134,50 @@ def test_hostile_file_names(repo: Repo, name: str) -> None:
     assert any(name in value for case in tree.iter("testcase") for value in case.attrib.values())
 
 
+def test_staged_check_judges_the_index_not_head_nor_the_working_tree(repo: Repo) -> None:
+    """--staged reads the pull-request side from the index (``git cat-file`` of ``:path``)."""
+    save_model(fc_model(2048), repo.path / "models/a.onnx")  # 8 MiB: past a 4 MiB buffer
+    repo.git("add", "models/a.onnx")
+    save_model(fc_model(64), repo.path / "models/a.onnx")  # the working tree: small again
+    code, out, _ = check("--staged")
+    assert code == 1, out  # the staged (grown) model is judged
+    assert "in the staged files" in out and "models/a.onnx" in out
+    assert "fc.grown" in (repo.path / "roofgate-out/junit.xml").read_text(encoding="utf-8")
+    code, out, _ = check()  # HEAD still holds the base's model: nothing changed
+    assert code == 0 and "no models changed" in out, out
+
+    repo.git("add", "models/a.onnx")  # stage the small one
+    repo.git("commit", "-q", "-m", "small")
+    save_model(fc_model(2048), repo.path / "models/b.onnx")  # grown, in the working tree only
+    save_model(fc_model(4096), repo.path / "models/a.onnx")  # and this one too
+    code, out, _ = check("--staged")
+    assert code == 0, out  # the index holds the small a.onnx and the base's b.onnx
+    assert "1 changed model(s)" in out
+
+    repo.git("add", "models/b.onnx")
+    repo.git("checkout", "--", "models/a.onnx")
+    repo.git("commit", "-q", "-m", "grown b")  # HEAD now fails ...
+    assert check()[0] == 1
+    repo.git("reset", "-q", "--soft", "HEAD~1")
+    repo.git("restore", "--staged", "models/b.onnx")  # ... but the index does not
+    save_model(fc_model(2048), repo.path / "models/b.onnx")
+    code, out, _ = check("--staged")
+    assert code == 0, out
+
+
+def test_check_reports_are_byte_identical_with_one_or_two_workers(repo: Repo) -> None:
+    for k, width in enumerate((64, 2048, 32, 96, 512)):
+        save_model(fc_model(width, name=f"fc{k}"), repo.path / f"models/m{k}.onnx")
+    save_model(fc_model(512), repo.path / "models/a.onnx")
+    (repo.path / "models/b.onnx").unlink()
+    repo.commit("many changes")
+    runner = CliRunner()
+    one = runner.invoke(cli, ["check", "--base", "main", "-j", "1", *reports("j1")])
+    two = runner.invoke(cli, ["check", "--base", "main", "-j", "2", *reports("j2")])
+    assert one.exit_code == two.exit_code == 1, one.output
+    assert read_reports("j1") == read_reports("j2")
+
+
 def test_base_side_from_a_stored_snapshot(repo: Repo) -> None:
     runner = CliRunner()
     done = runner.invoke(cli, ["audit", "--snapshot", "base.json", "--json", "audit.json"])
@@ -234,6 +280,26 @@ def test_sharded_audit_merged_equals_unsharded_byte_for_byte(zoo: Path) -> None:
     assert "not an onnx" in one.stdout.lower() or "broken.onnx" in one.stdout
     missing = runner.invoke(cli, ["merge", shards[0], shards[2]])
     assert missing.exit_code == 2 and "missing shard(s) 2/3" in missing.stderr
+
+
+def test_merge_reads_shards_without_importing_the_analysis_stack(zoo: Path) -> None:
+    """merge re-analyses nothing, so it must not pay for onnx and numpy at start-up."""
+    runner = CliRunner()
+    for index in (1, 2):
+        done = runner.invoke(cli, ["audit", "--shard", f"{index}/2",
+                                   "--shard-out", f"shards/s{index}.json"])
+        assert done.exit_code in (0, 1, 2), done.output
+    probe = ("import sys\nfrom gate.cli import main\n"
+             "sys.argv = ['roofgate', 'merge', 'shards/s1.json', 'shards/s2.json',"
+             " '--json', 'merged.json']\n"
+             "try:\n    main()\nfinally:\n"
+             "    print(sorted(m for m in ('onnx', 'numpy') if m in sys.modules))\n")
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
+                          env={**os.environ, "PYTHONPATH": str(Path(__file__).parents[1])},
+                          check=False)
+    assert done.returncode == 2, done.stderr  # broken.onnx: exit 2, like the audit
+    assert done.stdout.strip().splitlines()[-1] == "[]"
+    assert "m0 x.onnx" in Path("merged.json").read_text()
 
 
 def test_audit_progress_lines_and_trend(zoo: Path) -> None:

@@ -28,7 +28,8 @@ rules:
 """
 WAIVED_POLICY = POLICY + """\
 waivers:
-  - {rule: params-fit, models: ["**"], layers: ["stage4.*"], reason: "widening approved",
+  - {rule: params-fit, models: ["**"], layers: ["stage4.*"],
+     reason: "widening approved by the vision team",
      expires: 2026-12-31}
 """
 

@@ -9,6 +9,7 @@ Patterson, CACM 2009; energy arithmetic with per-operation energies of the
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import replace
 from math import ceil
 from types import MappingProxyType
@@ -91,7 +92,7 @@ def other_layer(op_type: str, *, index: int = 0, vector_ops: int = 0, is_view: b
         index=index, name=f"{op_type.lower()}{index}", op_type=op_type, domain="",
         input_shapes=(), input_dtypes=("INT8",), output_shapes=(), output_dtypes=("INT8",),
         param_names=(), param_count=0, param_bytes=0, input_bytes=nbytes, output_bytes=nbytes,
-        macs=0, flops=vector_ops, modelled=modelled,
+        macs=0 if modelled else None, flops=vector_ops if modelled else None, modelled=modelled,
         unmodelled_reason="" if modelled else "no cost function", work=work)
 
 
@@ -102,12 +103,12 @@ def make_profile(*layers: LayerProfile, precision: str = "native") -> ModelProfi
     unmodelled = [layer for layer in layers if not layer.modelled]
     coverage = Coverage(
         nodes_total=len(layers), nodes_modelled=len(layers) - len(unmodelled),
-        work_modelled=sum(layer.macs for layer in layers), work_unmodelled_estimate=0,
+        work_modelled=sum(layer.counted_macs for layer in layers), work_unmodelled_estimate=0,
         unmodelled=tuple(UnmodelledOp(u.op_type, "", 1, u.unmodelled_reason) for u in unmodelled))
     return ModelProfile(
         model=model, precision=precision, layers=layers, coverage=coverage,
-        total_macs=sum(layer.macs for layer in layers),
-        total_flops=sum(layer.flops for layer in layers),
+        total_macs=sum(layer.counted_macs for layer in layers),
+        total_flops=sum(layer.flops or 0 for layer in layers),
         total_param_count=sum(layer.param_count for layer in layers),
         total_param_bytes=sum(layer.param_bytes for layer in layers))
 
@@ -272,6 +273,14 @@ def test_model_totals_are_sums_of_layers_and_parts_sum_to_total() -> None:
     assert sum([EnergyBreakdown(mac_j=1.0), EnergyBreakdown(static_j=2.0)]).total_j == 3.0
 
 
+def test_energy_parts_are_every_field() -> None:
+    """as_dict and + spell the fields out (speed); a field added later must be in both."""
+    names = [f.name for f in dataclasses.fields(EnergyBreakdown)]
+    parts = EnergyBreakdown(*(float(2 ** i) for i in range(len(names))))
+    assert list(parts.as_dict()) == names
+    assert (parts + parts).as_dict() == {name: 2 * value for name, value in parts.as_dict().items()}
+
+
 def test_peak_flops_per_joule_pays_mac_energy_and_static_power() -> None:
     target = make_target(static_power_w=0.0)
     assert target.peak_flops_per_j("int8") == pytest.approx(2 / HOROWITZ_INT8_MAC_J)
@@ -345,7 +354,11 @@ def test_view_ops_are_free_and_unmodelled_layers_are_marked_not_free() -> None:
     view, unknown, gemm = cost.layers
     assert (view.engine, view.latency_s, view.modelled) == ("none", 0.0, True)
     assert (unknown.engine, unknown.bound, unknown.modelled) == ("none", "none", False)
-    assert unknown.energy.total_j == 0.0
+    # unknown is never zero: every time, traffic and energy figure of it is None
+    assert (unknown.energy, unknown.latency_s, unknown.cycles, unknown.utilization,
+            unknown.param_dram_bytes, unknown.act_dram_bytes) == (None,) * 6
+    assert unknown.activations_fit is True  # its byte counts are known (64 B in, 64 B out)
+    assert cost.latency_s == view.latency_s + gemm.latency_s  # the totals skip the unknown
     big_unknown = replace(other_layer("Mystery", modelled=False), param_bytes=2 << 20)
     assert not cost_model(make_profile(big_unknown), make_target()).layers[0].params_fit
     assert gemm.engine == "array"

@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import sys
+from collections.abc import Callable
 from dataclasses import replace
+from itertools import pairwise
 
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from gate.diff import diff_runs, match_layers, ranked_changes, same_value
+from gate.diff import align, diff_runs, match_layers, ranked_changes, same_value
 from tests.recordkit import layer, run
 
 
@@ -143,3 +146,131 @@ def test_every_layer_is_accounted_for_once(base_spec, head_spec, rename) -> None
             assert change.base_name == change.head_name
     if base_spec == head_spec:
         assert {c.status for c in diff.layers} <= {"unchanged"}
+
+
+# --- the alignment and the indexes: linear in the number of layers -------------------
+
+def _lcs_length(a: list[str], b: list[str]) -> int:
+    """Textbook dynamic-programming LCS length (Cormen et al., Introduction to Algorithms,
+    section 15.4): the independent reference the fast alignment must reach."""
+    table = [[0] * (len(b) + 1) for _ in range(len(a) + 1)]
+    for i, x in enumerate(a):
+        for j, y in enumerate(b):
+            table[i + 1][j + 1] = table[i][j] + 1 if x == y else max(table[i][j + 1], table[i + 1][j])
+    return table[len(a)][len(b)]
+
+
+_symbols = st.lists(st.sampled_from("abc"), max_size=14)
+
+
+@settings(max_examples=200, deadline=None)
+@given(_symbols, _symbols)
+def test_alignment_is_a_longest_common_subsequence(a, b) -> None:
+    pairs = align(a, b)
+    assert all(a[i] == b[j] for i, j in pairs)
+    assert all(p[0] < q[0] and p[1] < q[1] for p, q in pairwise(pairs))  # in order
+    assert len(pairs) == _lcs_length(a, b)
+
+
+@settings(max_examples=60, deadline=None)
+@given(_symbols, _symbols)
+def test_alignment_past_the_edit_budget_stays_in_order(a, b) -> None:
+    import gate.diff as diff_module
+
+    saved = diff_module.MAX_EDITS
+    diff_module.MAX_EDITS = 0  # force the greedy fallback on any difference
+    try:
+        pairs = align(a, b)
+    finally:
+        diff_module.MAX_EDITS = saved
+    assert all(a[i] == b[j] for i, j in pairs)
+    assert all(p[0] < q[0] and p[1] < q[1] for p, q in pairwise(pairs))
+
+
+class _Counted(str):
+    """A str that counts equality comparisons (dict lookups by the same object skip them)."""
+
+    calls = 0
+
+    def __eq__(self, other: object) -> bool:
+        _Counted.calls += 1
+        return str.__eq__(self, other)
+
+    __hash__ = str.__hash__
+
+
+def _renumbered_chain(size: int, insert_at: int) -> tuple[tuple, tuple]:
+    """A Conv/Relu/Add chain of ``size`` layers and the same chain with one layer inserted
+    and every node renumbered after it (what an exporter does): names pair nothing, so
+    the whole graph goes through the signature alignment."""
+    kinds = ("Conv", "Relu", "Add")
+    base = tuple(layer(f"n{i}", kinds[i % 3], macs=0) for i in range(size))
+    head_kinds = [kinds[i % 3] for i in range(size)]
+    head_kinds.insert(insert_at, "Sigmoid")
+    head = tuple(layer(f"n{i}", kind, macs=0) for i, kind in enumerate(head_kinds))
+    counted = [tuple(replace(x, signature=_Counted(x.signature)) for x in side)
+               for side in (base, head)]
+    return counted[0], counted[1]
+
+
+def _lines_run(func: Callable[[], object]) -> int:
+    """How many Python lines ``func`` executes (``sys.settrace`` line events): a count of
+    work that does not depend on the machine's speed, unlike a timer."""
+    count = 0
+
+    def tracer(frame: object, event: str, arg: object) -> Callable[..., object]:
+        nonlocal count
+        if event == "line":
+            count += 1
+        return tracer
+
+    sys.settrace(tracer)
+    try:
+        func()
+    finally:
+        sys.settrace(None)
+    return count
+
+
+def _diff_lines(size: int, edits: int) -> int:
+    base, head = _renumbered_chain(size, insert_at=size // 2)
+    for k in range(1, edits):  # further insertions, spread over the graph
+        at = k * size // edits
+        head = head[:at] + (layer(f"extra{k}", "Sigmoid", macs=0),) + head[at:]
+    diff = diff_runs(run(layers=base), run(layers=head))
+    assert [c.status for c in diff.layers].count("added") == edits
+    return _lines_run(lambda: diff_runs(run(layers=base), run(layers=head)))
+
+
+def test_matching_a_renumbered_graph_is_linear_in_its_size() -> None:
+    # Doubling the graph must about double the work (a longest-block search, as difflib
+    # does, compares each layer with every layer of the same signature: 4x).
+    for edits in (1, 3):
+        small, large = _diff_lines(600, edits), _diff_lines(1200, edits)
+        assert large / small < 2.3, (edits, small, large)
+
+
+def test_renumbered_graph_with_one_insertion_pairs_everything_else() -> None:
+    size = 3000
+    base, head = _renumbered_chain(size, insert_at=size // 2)
+    diff = diff_runs(run(layers=base), run(layers=head))
+    assert [c.status for c in diff.layers].count("added") == 1
+    assert [c.status for c in diff.layers].count("unchanged") == size
+
+
+def test_layer_lookup_goes_through_the_name_index() -> None:
+    size = 2000
+    record = run(layers=tuple(layer(_Counted(f"layer{i}")) for i in range(size)))
+    names = [x.name for x in record.layers]
+    _Counted.calls = 0
+    found = [record.layer(name) for name in names]
+    # A scan per lookup would compare about size^2 / 2 = 2,000,000 names.
+    assert _Counted.calls <= 2 * size
+    assert [x.name for x in found if x is not None] == names
+    assert record.layer("absent") is None
+    assert record.layer_index()["layer7"] is record.layers[7]
+
+
+def test_layer_lookup_returns_the_first_of_duplicated_names() -> None:
+    first, second = layer("dup", macs=1), layer("dup", macs=2)
+    assert run(layers=(first, second)).layer("dup") is first

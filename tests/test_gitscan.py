@@ -304,3 +304,69 @@ def test_a_pointer_the_commit_does_not_track_with_lfs_is_not_smudged(repo: Repo,
     assert gitscan.filter_at("HEAD", "models/fake.onnx", repo.path) is None
     assert not gitscan.write_blob("HEAD", "models/fake.onnx", repo.path, tmp_path / "f.onnx")
     assert (tmp_path / "f.onnx").read_bytes() == pointer
+
+
+# --- one `git cat-file --batch` process for every blob of a run -----------------------
+
+def _count_batch_processes(monkeypatch: pytest.MonkeyPatch) -> list[list[str]]:
+    started: list[list[str]] = []
+    real = subprocess.Popen
+
+    def counting(args, *rest, **kwargs):  # type: ignore[no-untyped-def]
+        if "cat-file" in args:
+            started.append(list(args))
+        return real(args, *rest, **kwargs)
+
+    monkeypatch.setattr(gitscan.subprocess, "Popen", counting)
+    return started
+
+
+def test_blob_reader_reads_every_blob_through_one_git_process(
+        repo: Repo, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    base = gitscan.merge_base("main", repo.path)
+    repo.write("models/change.onnx", b"change-v3-staged" * 50)
+    repo.git("add", "models/change.onnx")
+    repo.write("models/change.onnx", b"change-v4-working-tree" * 50)
+    started = _count_batch_processes(monkeypatch)
+    reader = gitscan.BlobReader(repo.path)
+    try:
+        for _ in range(3):
+            assert reader.read(base, "models/change.onnx", tmp_path / "s") == b"change-v1" * 50
+            assert reader.read("HEAD", "models/change.onnx", tmp_path / "s") == b"change-v2" * 50
+            assert reader.read(gitscan.STAGED, "models/change.onnx",
+                               tmp_path / "s") == b"change-v3-staged" * 50
+            assert reader.read("HEAD", "models/moved/here.onnx",
+                               tmp_path / "s") == b"move-me-unchanged" * 50
+        with pytest.raises(InputError, match="reading models/nope.onnx at HEAD"):
+            reader.read("HEAD", "models/nope.onnx", tmp_path / "s")
+        assert reader.read("HEAD", "models/added.onnx", tmp_path / "s") == b"brand new" * 50
+    finally:
+        reader.close()
+    assert [a[-2:] for a in started] == [["cat-file", "--batch"]] * 2  # one, restarted once
+    assert not (tmp_path / "s").exists()  # nothing copied to a file on the way
+
+
+def test_blob_reader_streams_a_large_blob_to_a_file(repo: Repo, tmp_path: Path,
+                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(gitscan, "SPILL_BYTES", 100)
+    reader = gitscan.BlobReader(repo.path)
+    try:
+        got = reader.read("HEAD", "models/change.onnx", tmp_path / "big")
+        small = reader.read("HEAD", "README.md", tmp_path / "small")
+    finally:
+        reader.close()
+    assert got == tmp_path / "big" and got.read_bytes() == b"change-v2" * 50
+    assert small == b"changed\n"
+
+
+def test_blob_reader_reads_names_the_batch_protocol_cannot_carry(tmp_path: Path) -> None:
+    repo = Repo(tmp_path / "nl")
+    for k, name in enumerate(HOSTILE):
+        repo.write(name, f"model {k}".encode() * 20)
+    repo.commit("hostile")
+    reader = gitscan.BlobReader(repo.path)
+    try:
+        for k, name in enumerate(HOSTILE):
+            assert reader.read("HEAD", name, tmp_path / "s") == f"model {k}".encode() * 20
+    finally:
+        reader.close()

@@ -20,6 +20,7 @@ import re
 import subprocess
 import sys
 import xml.etree.ElementTree as ET
+from datetime import date, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -1002,6 +1003,7 @@ def test_hostile_policy_strings_are_escaped_too(tmp_path) -> None:
     """A pull request can edit the policy file: its remedy, description and waiver reason
     reach the PR comment, JUnit and annotations, so they are escaped like node names."""
     text = json.dumps("<img src=x onerror=alert(3)>|`</details>\n::error::forged @all")
+    soon = date.today() + timedelta(days=30)  # waivers must expire within 90 days
     policy = tmp_path / "p.yaml"
     policy.write_text(f"""version: 1
 name: {text}
@@ -1010,7 +1012,7 @@ rules:
   - {{id: fits, kind: fits_in_buffer, check: params, remedy: {text}, description: {text}}}
   - {{id: util, kind: min_utilization, min: 90%, severity: warning, remedy: {text}}}
 waivers:
-  - {{rule: util, models: ["**"], reason: {text}, expires: 2099-01-01}}
+  - {{rule: util, models: ["**"], reason: {text}, expires: {soon}}}
 """, encoding="utf-8")
     path = save(model([helper.make_node("MatMul", ["x", "w"], ["y"], name="mm")],
                       [vi("x", [1, 2048])], [vi("y", None)], [weight("w", [2048, 2048])]),

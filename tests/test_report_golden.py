@@ -117,3 +117,36 @@ def test_each_remedy_is_said_once_per_finding_in_the_comment() -> None:
     text = markdown.render(result)
     for verdict in (v for e in result.entries for v in e.verdicts if v.status == FAIL):
         assert text.count(verdict.remedy) == 1, verdict.rule_id
+
+
+def test_every_report_names_a_changed_model_outside_every_group() -> None:
+    """The demo's result with one changed .onnx no model group covers (rule not-gated): every
+    report names the rule and the file, and the formats that lead with what blocked put it
+    right after the blocking findings."""
+    from dataclasses import replace
+
+    from gate.result import UngatedModel, not_gated_sentence
+
+    item = UngatedModel("models/drone/landing.onnx",
+                        "no model group covers it; add a group or list it under ungated:")
+    result = replace(_result("demo"), ungated=(item,))
+    assert result.exit_code == 1
+    texts = {
+        "terminal": terminal.render(result),
+        "markdown": markdown.render(result),
+        "junit": junit.render(result),
+        "sarif": json.dumps(sarif.sarif_log(result)),
+        "annotations": "\n".join(annotation_lines(result)),
+        "html": html.render(result),
+    }
+    for report, text in texts.items():
+        assert "not-gated" in text and item.model in text, report
+    sentence = not_gated_sentence(item)
+    last_blocking = result.blocking[-1].sentence()
+    for report in ("terminal", "markdown", "html"):
+        text = texts[report]
+        lead = text.index(last_blocking.split(" Fix:")[0])
+        assert lead < text.index(sentence) < text.index("species.onnx", text.index(sentence)), \
+            report
+    results = sarif.sarif_log(result)["runs"][0]["results"]
+    assert [r["ruleId"] for r in results[:2]] == ["params-fit-buffer", "not-gated"]

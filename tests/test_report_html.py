@@ -20,9 +20,19 @@ from pathlib import Path
 
 import pytest
 
-from gate.report import all_reporters, charts
+from gate.report import all_reporters, charts, html_layers
 from gate.report.html import REPORTER, render
-from gate.result import FAIL, PASS, Entry, GateResult, ModelError
+from gate.report.text import html_escape
+from gate.result import (
+    FAIL,
+    PASS,
+    Entry,
+    GateResult,
+    ModelError,
+    UngatedModel,
+    blocking_lines,
+    not_gated_sentence,
+)
 from gate.units import fmt_joules
 from tests.reportkit import (
     DRAM_BYTES_PER_S,
@@ -97,8 +107,9 @@ def _bar_ids(svg: ET.Element, prefix: str) -> list[int]:
 
 
 def _plottable(run) -> int:
-    return sum(1 for l in run.layers
-               if l.metrics["arithmetic_intensity"] > 0 and l.metrics["achieved_flops_per_s"] > 0)
+    return sum(1 for l in run.layers  # an unmodelled layer's figures are None: not plotted
+               if (l.metrics["arithmetic_intensity"] or 0) > 0
+               and (l.metrics["achieved_flops_per_s"] or 0) > 0)
 
 
 @pytest.fixture(scope="module")
@@ -267,9 +278,14 @@ def test_huge_model_plots_top_layers_and_says_how_many_were_left_out() -> None:
     assert "120 layers with the smallest latency left out" in page
     assert int(bars.get("data-layers-shown")) == charts.MAX_BAR_LAYERS
     assert _bar_ids(bars, "e0-layers-latency") == list(range(charts.MAX_BAR_LAYERS))
-    assert "390 layers more in the table below" in page
+    assert "390 layers more (the table below lists the ones that matter)" in page
     rows = re.search(r"<h3>Layers</h3>.*?<tbody>(.*?)</tbody>", page, re.DOTALL).group(1)
-    assert rows.count("<tr") == 420  # the table keeps every layer
+    # the table lists the slowest layers (no base, no failing rule) and counts the rest
+    assert rows.count("<tr") == html_layers.MAX_SLOWEST_LAYERS
+    listed = re.findall(r'<td class="name">([^<]*)</td>', rows)
+    assert listed == [f"block{i}.conv" for i in range(420 - html_layers.MAX_SLOWEST_LAYERS, 420)]
+    assert ("And 370 more layers, none named by a rule, none among the slowest; full detail "
+            "in the JSON report.") in page
 
 
 def test_rules_and_layer_diff_table(demo_page: str) -> None:
@@ -470,3 +486,218 @@ def test_a_chart_costs_milliseconds_not_seconds() -> None:
     run = make_run("models/huge.onnx", "ws-64x64-4mib", layers)
     svg = ET.fromstring(charts.roofline_svg(run, None, "t"))
     assert sum(1 for _ in svg.iter()) < 6 * charts.MAX_ROOFLINE_POINTS + 200
+
+
+def _with_ungated(result: GateResult) -> GateResult:
+    return replace(result, ungated=(
+        UngatedModel("models/new/<b>extra</b>.onnx", "no model group covers it; add a group or "
+                     "list it under ungated: in roofgate.yaml"),
+        UngatedModel("models/scratch/tmp.onnx", "matches ungated: models/scratch/**",
+                     skipped=True)))
+
+
+def test_blocking_findings_then_not_gated_models_lead_the_page() -> None:
+    result = _with_ungated(demo_result())
+    page = render(result)
+    _parse(page)
+    lead = page[page.index('id="blocking"'):page.index("</section>", page.index('id="blocking"'))]
+    findings = re.findall(r"<li><a href=\"#e\d+\">(.*?)</a></li>", lead)
+    assert findings == [html_escape(s) for _e, s in blocking_lines(result)]
+    assert lead.index('id="blocking-findings"') < lead.index('id="not-gated"')
+    assert html_escape(not_gated_sentence(result.not_gated[0])) in lead
+    assert "<b>extra" not in page  # the file name is escaped
+    assert "What blocks the merge (2 rules)" in lead  # params-fit and not-gated
+    # the skipped file is listed (never silently), but not as blocking, and below the lead
+    assert "scratch/tmp.onnx" not in lead
+    assert page.index('id="blocking"') < page.index('id="skipped"') < page.index('id="overview"')
+    assert "1 not gated, 1 skipped" in page
+
+
+def test_only_not_gated_models_still_block_at_the_top() -> None:
+    only = GateResult("check", ("p.yaml",), (), ungated=(
+        UngatedModel("models/x.onnx", "no model group covers it"),))
+    page = render(only)
+    _parse(page)
+    assert "merge blocked" in page and 'id="not-gated"' in page
+    assert 'id="blocking-findings"' not in page
+
+
+def test_every_section_lists_the_rules_that_applied(demo_page: str) -> None:
+    result = demo_result(hostile=True)
+    sections = re.findall(r'<section class="card st-[a-z]+ entry".*?</section>', demo_page,
+                          re.DOTALL)
+    assert len(sections) == len(result.ranked_entries)
+    for section, entry in zip(sections, result.ranked_entries):
+        applied = re.search(r'<p class="rules-applied">Rules applied: (.*?)\.</p>', section)
+        assert applied is not None
+        assert re.findall(r"<code>([^<]*)</code>", applied.group(1)) == list(entry.rules_applied)
+
+
+# --- unknown figures (None): never drawn or printed as 0 --------------------------------------
+
+def _with_unknowns() -> tuple[GateResult, set[str]]:
+    """The demo's species model, head and base, where one layer is not modelled (its own MACs,
+    latency and energy unknown: None) and one modelled layer has an unknown energy part."""
+    base = make_run("models/odd.onnx", "ws-64x64-4mib", cnn_layers())
+    layers = cnn_layers(2)
+    unknown = {m: None for m in ("macs", "flops", "latency_s", "energy_j", "compute_s",
+                                 "achieved_flops_per_s", "arithmetic_intensity", "cycles",
+                                 *(f"energy_{p}" for p in ("mac_j", "buffer_j", "noc_j",
+                                                           "dram_param_j", "dram_act_j",
+                                                           "static_j")))}
+    layers[2] = replace(layers[2], modelled=False, unmodelled_reason="unbound dim 'seq'",
+                        metrics=dict(layers[2].metrics, **unknown))
+    layers[1] = replace(layers[1], metrics=dict(layers[1].metrics, energy_noc_j=None))
+    head = replace(make_run("models/odd.onnx", "ws-64x64-4mib", cnn_layers(2)),
+                   layers=tuple(layers))
+    base_layers = list(base.layers)
+    base_layers[3] = replace(base_layers[3], metrics=dict(base_layers[3].metrics,
+                                                          latency_s=None))
+    base = replace(base, layers=tuple(base_layers))
+    from tests.reportkit import diff_of
+
+    entry = Entry(head.model, head.target, head, base, diff_of(base, head), ())
+    return GateResult("check", (), (entry,)), {layers[2].name, layers[1].name}
+
+
+def test_unknown_figures_are_skipped_and_counted_in_the_captions() -> None:
+    result, _names = _with_unknowns()
+    page = render(result)
+    _parse(page)
+    roof, bars = _svgs(page)
+    entry = result.entries[0]
+    dead = "stage1.dw"
+    # the roofline: the unmodelled layer is counted, not placed; no marker for it anywhere
+    assert roof.get("data-head-unmodelled") == "1"
+    assert dead not in {c.get("data-layer") for c in _marks(_by_id(roof, "e0-roofline-head-points"))}
+    assert "1 layer not modelled" in page
+    # the bar chart: no bar for the unknown latency, the caption says how many
+    assert bars.get("data-latency-unknown") == "1"
+    shown = int(bars.get("data-layers-shown"))
+    assert shown == len(entry.head.layers) - 1
+    labels = [t.text for t in bars.iter(f"{SVG_NS}text") if t.get("text-anchor") == "end"]
+    assert dead not in labels
+    assert "1 layer with an unknown latency not drawn (unknown, not zero)" in page
+    # a row whose energy split is partly unknown gets a '?' and no stack at all
+    row = next(k for k, l in enumerate(charts.bar_layers(entry.head).layers)
+               if l.name == "stage1.conv")
+    assert _by_id(bars, f"e0-layers-energy-mac-j-{row}") is None
+    assert [t.get("data-layer") for t in bars.iter(f"{SVG_NS}text")
+            if t.get("data-unknown") == "energy"] == ["stage1.conv"]
+    assert bars.get("data-energy-unknown") == "1" and "energy unknown for 1 layer" in page
+    # the base's unknown latency of stage2.conv gets no tick, the known ones do
+    ticks = _by_id(bars, "e0-layers-base-latency")
+    assert ticks is not None and len(list(ticks)) == shown - 1
+    # tables: unknown figures read '?', never 0
+    table = page.split("<h3>Layers</h3>")[1].split("</table>")[0]
+    dead_row = re.search(r"<tr[^>]*>(?:(?!</tr>).)*stage1\.dw(?:(?!</tr>).)*</tr>", table,
+                         re.DOTALL).group()
+    cells = re.findall(r'<td class="num[^"]*" data-v="[^"]*">([^<]*)</td>', dead_row)
+    assert cells[1] == "?" and cells[2] == "?"  # head latency, latency change
+    assert "0 s" not in dead_row
+
+
+def test_unknown_figures_read_as_unknown_in_markdown_and_terminal() -> None:
+    from gate.report import markdown, terminal
+
+    result, _names = _with_unknowns()
+    text = markdown.render(result)
+    rows = {line.split(" | ")[0][2:]: line for line in text.splitlines()
+            if line.startswith("| stage")}
+    assert "5.10 us \u2192 ? | ? |" in rows["stage1.dw"]  # head latency unknown
+    assert "| ? \u2192 20.1 us | ? |" in rows["stage2.conv"]  # base latency unknown
+    # totals whose latency is unknown on one side: neither "unchanged" nor "improved"
+    entry = result.entries[0]
+    assert entry.diff is not None
+    totals = {m: (v[1], v[1]) for m, v in entry.diff.totals.items()}
+    totals["latency_s"] = (None, entry.diff.totals["latency_s"][1])
+    flat = replace(result, entries=(replace(entry, diff=replace(entry.diff, totals=totals)),))
+    line = terminal.render(flat).splitlines()[1]
+    assert "unchanged" not in line and "improved" not in line and "(?)" in line
+
+
+# --- bounded: a 200k-layer model gives a small page ---------------------------------------------
+
+BIG_CHAIN_LAYERS = 200_000
+
+
+def _big_chain_result() -> tuple[GateResult, str, str]:
+    """A 200k-layer chain built as records (no ONNX, no profiling: the reporters only see the
+    result): one layer changed against the base, another named by a failing rule."""
+    from gate.result import LayerChange, RunDiff
+
+    template = make_layer("t", 50_000, 2_000, 40_000)
+    names = [f"chain.{k}.conv" for k in range(BIG_CHAIN_LAYERS)]
+    layers = [replace(template, name=name) for name in names]
+    changed, failing = names[123_456], names[7_777]
+    wide = make_layer(changed, 400_000, 300_000, 40_000)
+    head_layers = list(layers)
+    head_layers[123_456] = wide
+    base = replace(make_run("models/chain.onnx", "ws-64x64-4mib", layers[:2]),
+                   layers=tuple(layers))
+    head = replace(base, layers=tuple(head_layers))
+    deltas = {m: (template.metrics[m], wide.metrics[m]) for m in wide.metrics
+              if wide.metrics[m] != template.metrics[m]}
+    changes = tuple(
+        LayerChange("changed" if k == 123_456 else "unchanged", name, name, "Conv", "name",
+                    deltas if k == 123_456 else {})
+        for k, name in enumerate(names))
+    diff = RunDiff(head.model, head.target, {m: (base.metrics[m], head.metrics[m])
+                                             for m in base.metrics}, changes)
+    verdict = make_verdict("params-fit", head.model, head.target, FAIL, layer=failing)
+    entry = Entry(head.model, head.target, head, base, diff, (verdict,))
+    return GateResult("check", ("p.yaml",), (entry,)), changed, failing
+
+
+@pytest.mark.slow
+def test_a_200k_layer_model_gives_an_html_page_under_5_mb_listing_what_matters() -> None:
+    from gate.report import markdown
+
+    result, changed, failing = _big_chain_result()
+    page = render(result)
+    size = len(page.encode("utf-8"))
+    assert size < 5 * 1024 * 1024, size
+    table = page.split("<h3>Layers</h3>")[1].split("</table>")[0]
+    listed = set(re.findall(r'<td class="name">([^<]*)</td>', table))
+    assert failing in listed and changed in listed  # the failing and the changed layer
+    assert len(listed) <= 2 + html_layers.MAX_SLOWEST_LAYERS
+    rest = BIG_CHAIN_LAYERS - len(listed)
+    assert (f"And {rest:,} more layers, unchanged; full detail in the JSON report."
+            in page)
+    assert re.search(r'<tr class="[^"]*flagged[^"]*">(?:(?!</tr>).)*' + re.escape(failing),
+                     table, re.DOTALL)
+    # the pull-request comment of the same run stays under the code host's limit and names
+    # the failing layer (its rule row) and the changed layer, with a count of the rest
+    text = markdown.render(result)
+    assert markdown.comment_size(text) <= markdown.COMMENT_LIMIT_CHARS
+    assert failing in text and changed in text
+    assert f"And {BIG_CHAIN_LAYERS - 1:,} more layers unchanged" in text
+
+
+def test_changed_layers_beyond_the_cap_are_counted_largest_change_first() -> None:
+    """300 changed layers of 1,000: the table lists the 200 with the largest latency change
+    (gate.diff.ranked_changes), the slowest and the failing one, and counts the rest."""
+    from gate.result import LayerChange, RunDiff
+
+    count, moved = 1000, 300
+    base_layers = [make_layer(f"l{k}", 10_000, 500, 20_000) for k in range(count)]
+    head_layers = [make_layer(f"l{k}", 10_000, 500, 20_000 + 1000 * k) if k < moved
+                   else base_layers[k] for k in range(count)]
+    base = make_run("models/m.onnx", "t", base_layers)
+    head = make_run("models/m.onnx", "t", head_layers)
+    changes = tuple(LayerChange(
+        "changed" if k < moved else "unchanged", f"l{k}", f"l{k}", "Conv", "name",
+        {"latency_s": (base_layers[k].metrics["latency_s"], head_layers[k].metrics["latency_s"])}
+        if k < moved else {}) for k in range(count))
+    diff = RunDiff(head.model, "t", {}, changes)
+    entry = Entry(head.model, "t", head, base, diff,
+                  (make_verdict("r", head.model, "t", FAIL, layer="l999"),))
+    picked = html_layers.pick_changes(diff, head.layers, {"l999"})
+    listed = {f"l{k}" for k in picked.positions}
+    assert {f"l{k}" for k in range(moved - 200, moved)} <= listed  # largest changes
+    assert "l999" in listed and "l0" not in listed
+    assert picked.rest_changed == moved - 200
+    assert picked.rest_unchanged == count - len(listed) - picked.rest_changed
+    page = render(GateResult("check", (), (entry,)))
+    assert (f"And {moved - 200} more changed layers with a smaller latency change and "
+            f"{picked.rest_unchanged} layers, unchanged; full detail in the JSON report.") in page

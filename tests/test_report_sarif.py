@@ -30,7 +30,17 @@ from gate.report.sarif import (
     sarif_level,
 )
 from gate.report.text import term_safe
-from gate.result import FAIL, PASS, WAIVED, Entry, GateResult, ModelError
+from gate.result import (
+    FAIL,
+    NOT_GATED,
+    PASS,
+    WAIVED,
+    Entry,
+    GateResult,
+    ModelError,
+    UngatedModel,
+    not_gated_sentence,
+)
 from tests.reportkit import HOSTILE, cnn_layers, demo_result, make_run, make_verdict
 
 SCHEMA_PATH = Path(__file__).parent / "schemas" / "sarif-schema-2.1.0.json"
@@ -266,3 +276,54 @@ def _markdown_failures(result: GateResult) -> tuple[set, set]:
             elif "warning" in cells[1]:
                 warnings.add(key)
     return blocking, warnings
+
+
+# --- what blocked leads; models outside every model group; rules applied ------------------
+
+def _with_ungated(result: GateResult) -> GateResult:
+    return replace(result, ungated=(
+        UngatedModel("models/new dir/extra.onnx", "no model group covers it; add a group or "
+                     "list it under ungated: in roofgate.yaml"),
+        UngatedModel("models/scratch/tmp.onnx", "matches ungated: models/scratch/**",
+                     skipped=True)))
+
+
+def test_not_gated_models_are_error_results_of_their_own_rule(validator) -> None:
+    result = _with_ungated(demo_result())
+    log = _written(result)
+    assert [e.message for e in validator.iter_errors(log)] == []
+    run = log["runs"][0]
+    rules = run["tool"]["driver"]["rules"]
+    not_gated = [r for r in run["results"] if r["ruleId"] == NOT_GATED]
+    assert len(not_gated) == 1  # the skipped file is not a result
+    res = not_gated[0]
+    assert res["level"] == "error" and rules[res["ruleIndex"]]["id"] == NOT_GATED == "not-gated"
+    assert res["locations"][0]["physicalLocation"]["artifactLocation"]["uri"] == \
+        "models/new%20dir/extra.onnx"
+    assert res["message"]["text"] == not_gated_sentence(result.not_gated[0])
+    notes = run["invocations"][0]["toolExecutionNotifications"]
+    by_level = {n["level"]: n["message"]["text"] for n in notes}
+    assert "extra.onnx" in by_level["error"] and "scratch/tmp.onnx" in by_level["note"]
+    assert run["invocations"][0]["executionSuccessful"] is True  # a gate failure, not a crash
+    assert run["properties"]["modelCounts"] == {"seen": 4, "gated": 2, "notGated": 1,
+                                                "skipped": 1}
+
+
+def test_results_lead_with_what_blocked_then_not_gated_models() -> None:
+    result = _with_ungated(demo_result())
+    results = _written(result)["runs"][0]["results"]
+    kinds = ["waived" if "suppressions" in r else "not-gated" if r["ruleId"] == NOT_GATED
+             else "block" if r["level"] == "error" else "warning" for r in results]
+    assert kinds == ["block", "not-gated", "warning", "waived"]
+    first = result.blocking[0]
+    # the blocking result's message opens with the sentence every report leads with
+    assert results[0]["message"]["text"].splitlines()[0] == term_safe(first.sentence())
+
+
+def test_every_model_target_lists_the_rules_that_applied() -> None:
+    result = demo_result()
+    listed = _written(result)["runs"][0]["properties"]["modelTargets"]
+    assert [(m["model"], m["target"], m["status"], m["rulesApplied"]) for m in listed] == \
+        [(e.model, e.target, e.status_word, list(e.rules_applied))
+         for e in result.ranked_entries]
+    assert any("min-utilization" in m["rulesApplied"] and m["status"] == "fail" for m in listed)

@@ -32,8 +32,8 @@ from gate.cli import cli
 from gate.config import Overrides, load_config
 from gate.errors import ConfigError, InputError
 from gate.model.loader import load_model
+from gate.model.shape_text import parse_shape, parse_shape_binding
 from gate.model.shape_values import propagate_values
-from gate.model.shapes import parse_shape, parse_shape_binding
 from gate.profile import profile_model
 
 I64 = TensorProto.INT64

@@ -95,7 +95,7 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
     today = utc_today()
     base_commit = merge_base(base_ref, root)
     with check_rules(root, base_commit, _config_loader(kwargs), config_path=kwargs["config_path"],
-                     baseline=kwargs["baseline"], today=today) as chosen:
+                     baseline=kwargs["baseline"]) as chosen:
         config = chosen.config
         paths = chosen_reports(kwargs, config)
         rules = output_rules(kwargs, config, root, chosen.repo_files)
@@ -103,7 +103,7 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
         result, title = run_check(root, config, base_ref, baseline=chosen.baseline,
                                   workers=default_workers(kwargs["jobs"]), today=today,
                                   staged=staged)
-        result = replace(result, notes=(*chosen.notes, *result.notes),
+        result = replace(result, rules_source=chosen.source,
                          policies=tuple(chosen.repo_name(p) for p in result.policies))
         finish(result, paths, title, rules=rules)
 

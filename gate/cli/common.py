@@ -28,7 +28,7 @@ from gate.config import (
 )
 from gate.errors import InputError
 from gate.model.graph import INT64_MAX
-from gate.model.shapes import StaticShape, parse_shape_binding, shape_text
+from gate.model.shape_text import StaticShape, parse_shape_binding, shape_text
 from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, remove_stale
 from gate.report import report_paths, report_targets, terminal, write_reports
 from gate.report.text import shorten

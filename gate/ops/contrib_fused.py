@@ -12,10 +12,11 @@ Each costs exactly its decomposition into standard ONNX ops (the tests build bot
 Input orders and attributes follow the public contrib-op documentation
 (ContribOperators.md); the ``activation``/``activation_params`` names of FusedConv
 and FusedGemm and MatMulNBits' packed layout ``[N, K / block_size, block_size *
-bits / 8]`` are from memory. MatMulNBits' weight bytes equal the decomposition's
-(4-bit weights as 4 bits); its parameter *count* is the packed uint8 elements, since
-roofgate counts initializer elements and never reads the packing; its scales and zero
-points are quantization metadata, as a DequantizeLinear's are.
+bits / 8]`` are from memory. MatMulNBits' parameters are those of the decomposition:
+N x K weights at ``bits`` bits each (``gate.model.constants.logical_source`` reads the
+packed uint8 tensor as the logical weights it holds), so count and bytes both equal
+the int4 ``[K, N]`` weight's; its scales and zero points are quantization metadata, as
+a DequantizeLinear's are.
 """
 
 from __future__ import annotations

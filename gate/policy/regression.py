@@ -8,12 +8,13 @@ shows in the model totals, which a model-level rule limits.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from gate import metrics
 from gate.diff import diff_runs
 from gate.policy import spec
-from gate.policy.rules import Breach, Outcome, remedy_of
+from gate.policy.rules import UNKNOWN_REMEDY, Breach, Outcome, remedy_of
 from gate.policy.spec import Rule
 from gate.policy.thresholds import regression_bound, regression_exceeds, worsening
 from gate.records import Metric, RunRecord
@@ -48,12 +49,19 @@ def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
     if rule.level == spec.MODEL and not pairs:
         return Outcome((), 0, "", f"the baseline has no '{rule.metric}' (older roofgate?); "
                                   "regression not checked: refresh the baseline")
+    if rule.level == spec.MODEL and any(p.base is None or p.head is None for p in pairs):
+        # an unknown head total fails the built-in not-costed rule; say so, never "within"
+        return Outcome((), 0, "", f"{metrics.label(rule.metric)} unknown on one side (a model "
+                                  "not costed); regression not checked")
     better_higher = metrics.higher_is_better(rule.metric)
     allowed = allowed_text(rule)
     breaches = []
     for pair in pairs:
         if pair.base is None or pair.head is None:
-            continue  # unknown: the model fails not-costed; a layer's coverage rule judges it
+            unknown = _unknown(rule, pair)
+            if unknown is not None:
+                breaches.append(unknown)
+            continue
         if not regression_exceeds(pair.base, pair.head, higher_is_better=better_higher,
                                   max_pct=rule.max_change_pct, max_abs=rule.max_change_abs):
             continue
@@ -75,6 +83,19 @@ def check_max_regression(rule: Rule, head: RunRecord, base: RunRecord | None,
     label = metrics.label(rule.metric)
     return Outcome(tuple(breaches), len(pairs), f"regressed in {label} beyond {allowed}",
                    f"{what}: {label} within {allowed} of the baseline")
+
+
+def _unknown(rule: Rule, pair: _Pair) -> Breach | None:
+    """A layer whose figure is unknown on either side cannot be shown not to regress: a
+    finding, as an unknown figure is for every limit (never a silent pass)."""
+    if pair.layer is None:
+        return None
+    side = ("base and head" if pair.base is None and pair.head is None
+            else "head" if pair.head is None else "base")
+    text = (f"{pair.label}: {metrics.phrase(rule.metric)} is unknown in the {side}, so the "
+            "regression cannot be checked")
+    return Breach(pair.layer, rule.metric, pair.head, None, f"{text}: {UNKNOWN_REMEDY}.", text,
+                  f"{pair.layer} ?", math.inf)
 
 
 def _model_pairs(rule: Rule, head: RunRecord, base: RunRecord,

@@ -158,8 +158,7 @@ def _limit_check(rule: Rule, head: RunRecord, metric: str, what: str,
             text = f"{label}: {named} is unknown, so the limit cannot be checked"
             return Breach(None if label == "Model" else short_name, metric, value,
                           bounds[0][1] if bounds else None,
-                          f"{text}: bind the unbound dims or see `roofgate profile`.", text,
-                          f"{short_name} ?", math.inf)
+                          f"{text}: {UNKNOWN_REMEDY}.", text, f"{short_name} ?", math.inf)
         for name, limit, low in bounds:
             failed = below_minimum(value, limit) if low else above_maximum(value, limit)
             if failed:
@@ -248,7 +247,10 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
             value = layer.metrics.get("param_bytes", 0)
             breaches.append(_buffer_breach(layer, "param_bytes", value, "parameters",
                                            param_buffer, param_kind, head.target, remedy))
-        if rule.check_activations and not layer.activations_fit:
+        if rule.check_activations and layer.activations_fit is None:
+            breaches.append(_unknown_breach(layer, "activation_bytes",
+                                            "input and output activation size"))
+        elif rule.check_activations and not layer.activations_fit:
             value = (layer.metrics.get("input_bytes") or 0) + (layer.metrics.get("output_bytes") or 0)
             breaches.append(_buffer_breach(layer, "activation_bytes", value,
                                            "input and output activations", act_buffer,
@@ -259,6 +261,17 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
     return Outcome(tuple(breaches), len(layers), f"whose {fail_what} do not fit on-chip buffers",
                    f"{len(layers)} layer{'s' if len(layers) != 1 else ''} checked, {what} fit "
                    "on-chip buffers")
+
+
+UNKNOWN_REMEDY = "bind the unbound dims (--dim, --shape) or see `roofgate profile` for why"
+
+
+def _unknown_breach(layer: LayerRecord, metric: str, what: str) -> Breach:
+    """A layer whose figure is unknown: a limit it cannot be shown to meet is not met (the
+    convention of every rule, as for unknown model totals)."""
+    text = f"{_layer_label(layer)}: {what} is unknown, so the limit cannot be checked"
+    return Breach(layer.name, metric, None, None, f"{text}: {UNKNOWN_REMEDY}.", text,
+                  f"{layer.name} ?", math.inf)
 
 
 def _buffer_breach(layer: LayerRecord, metric: str, value: Metric, what: str, buffer: Metric,

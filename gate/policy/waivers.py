@@ -13,6 +13,7 @@ from __future__ import annotations
 from collections.abc import Iterable
 from datetime import date, timedelta
 
+from gate.errors import ConfigError
 from gate.policy.globs import match_any
 from gate.policy.rules import Breach
 from gate.policy.spec import Policy, Rule, Waiver
@@ -78,7 +79,7 @@ def _used(waiver: Waiver, verdict: Verdict) -> bool:
         for finding in verdict.findings
     )
 
-# --- what check asks of a waiver -----------------------------------------------------
+# --- what every judging run asks of a waiver -------------------------------------------
 
 MIN_REASON_CHARS = 15  # "." or "temp" is no reason; a short sentence is (common practice, no source)
 MIN_REASON_WORDS = 3
@@ -91,7 +92,8 @@ def waiver_problems(policies: Iterable[Policy], today: date,
     decided), or whose expiry lies more than ``horizon_days`` after ``today``.
 
     Why: a waiver with ``reason: '.'`` and a far-future expiry turns a rule off
-    for good; ``check`` refuses such waivers (exit 2).
+    for good; ``check``, ``evaluate`` and ``audit`` refuse such waivers (exit 2)
+    through ``refuse_weak_waivers``.
     """
     out = []
     for policy in policies:
@@ -107,3 +109,15 @@ def waiver_problems(policies: Iterable[Policy], today: date,
                            f"{horizon_days} days after {today.isoformat()}; set an earlier date "
                            "(or raise waiver_horizon_days in roofgate.yaml)")
     return out
+
+
+def refuse_weak_waivers(policies: Iterable[Policy], today: date,
+                        horizon_days: int = DEFAULT_HORIZON_DAYS) -> None:
+    """ConfigError (exit 2) listing every ``waiver_problems`` line, if there is one.
+
+    The one place a run validates waivers: gate/gating.PolicyCache calls it for
+    every policy file it loads, so ``check``, ``evaluate`` and ``audit`` agree.
+    """
+    problems = waiver_problems(policies, today, horizon_days)
+    if problems:
+        raise ConfigError(problems)

@@ -20,6 +20,7 @@ the roof is what the target allows at the run's precision.
 
 from __future__ import annotations
 
+import heapq
 import math
 from collections.abc import Collection, Mapping, Sequence
 from dataclasses import dataclass
@@ -65,29 +66,37 @@ class RoofSelection:
     left_out: int  # plottable but beyond MAX_ROOFLINE_POINTS (smallest latency first)
     unplottable: int  # modelled, but no FLOPs, traffic or latency: no place on log-log axes
     unmodelled: int = 0  # not modelled at all (no cost counted): never plotted
+    unknown: int = 0  # modelled, but intensity, FLOP/s or latency unknown: never plotted as 0
 
 
 # --- what to plot ---------------------------------------------------------------------------
 
+_ROOF_FIGURES = ("arithmetic_intensity", "achieved_flops_per_s", "latency_s")
+
+
 def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSelection:
-    """The layers of ``run`` placed on its roofline: top ``max_points`` by latency."""
-    total_s = _finite(run.metrics, "latency_s") or 1.0
-    plottable, unplottable, unmodelled = [], 0, 0
+    """The layers of ``run`` placed on its roofline: top ``max_points`` by latency. A layer
+    with an unknown figure is counted, never placed as if the figure were 0."""
+    plottable, unplottable, unmodelled, unknown = [], 0, 0, 0
     for layer in run.layers:
+        figures = [known(layer.metrics, name) for name in _ROOF_FIGURES]
         if not layer.modelled:
             unmodelled += 1
-        elif (_positive(_finite(layer.metrics, "arithmetic_intensity"))
-              and _positive(_finite(layer.metrics, "achieved_flops_per_s"))):
+        elif any(value is None for value in figures):
+            unknown += 1
+        elif _positive(figures[0] or 0.0) and _positive(figures[1] or 0.0):
             plottable.append(layer)
         else:
             unplottable += 1
-    ranked = sorted(plottable, key=_latency_rank)
+    top = heapq.nsmallest(max_points, plottable, key=_latency_rank)  # no full sort of 200k
+    total_s = known(run.metrics, "latency_s") or sum(_finite(l.metrics, "latency_s")
+                                                     for l in plottable) or 1.0
     points = tuple(
         RoofPoint(layer.name, _finite(layer.metrics, "arithmetic_intensity"),
                   _finite(layer.metrics, "achieved_flops_per_s"),
                   _finite(layer.metrics, "latency_s") / total_s)
-        for layer in ranked[:max_points])
-    return RoofSelection(points, max(len(ranked) - max_points, 0), unplottable, unmodelled)
+        for layer in top)
+    return RoofSelection(points, len(plottable) - len(top), unplottable, unmodelled, unknown)
 
 
 def roof_vertices(peak_flops_per_s: float, dram_bytes_per_s: float,
@@ -98,22 +107,48 @@ def roof_vertices(peak_flops_per_s: float, dram_bytes_per_s: float,
             (ridge, peak_flops_per_s), (hi_flop_per_byte, peak_flops_per_s)]
 
 
-def bar_layers(run: RunRecord, max_layers: int = MAX_BAR_LAYERS) -> tuple[list[LayerRecord], int]:
-    """The layers shown in the bar chart (largest latency first) and how many were left out."""
-    ranked = sorted(run.layers, key=_latency_rank)
-    return ranked[:max_layers], max(len(ranked) - max_layers, 0)
+@dataclass(frozen=True, slots=True)
+class BarSelection:
+    """The layers of one run in the bar chart (largest latency first), how many with a known
+    latency were left out, and how many have no known latency (never drawn as 0)."""
+
+    layers: tuple[LayerRecord, ...]
+    left_out: int
+    unknown_latency: int
+
+
+def bar_layers(run: RunRecord, max_layers: int = MAX_BAR_LAYERS) -> BarSelection:
+    """The slowest ``max_layers`` layers of ``run`` with a known latency."""
+    timed = [layer for layer in run.layers if known(layer.metrics, "latency_s") is not None]
+    top = heapq.nsmallest(max_layers, timed, key=_latency_rank)
+    return BarSelection(tuple(top), len(timed) - len(top), len(run.layers) - len(timed))
+
+
+def unknown_energy(layer: LayerRecord) -> bool:
+    """True when any energy component of ``layer`` is unknown (its stack is not drawn)."""
+    return any(known(layer.metrics, metric) is None for metric, _l, _c in ENERGY_PARTS)
 
 
 def _latency_rank(layer: LayerRecord) -> tuple[float, str]:
     return (-_finite(layer.metrics, "latency_s"), layer.name)
 
 
-def _finite(values: Mapping[str, object], name: str) -> float:
-    """A metric as a float, 0 when missing, unknown or not finite (never drawn as inf)."""
+def known(values: Mapping[str, object], name: str) -> float | None:
+    """A metric as a float, or None when missing, unknown (None) or not finite."""
     value = values.get(name)
-    if not isinstance(value, (int, float)) or isinstance(value, bool):
-        return 0.0
-    return float(value) if math.isfinite(value) else 0.0
+    kind = type(value)
+    # the common cases first (this runs for every layer); bool is not a figure
+    if kind is not float and kind is not int and (
+            isinstance(value, bool) or not isinstance(value, (int, float))):
+        return None
+    return float(value) if math.isfinite(value) else None  # type: ignore[arg-type]
+
+
+def _finite(values: Mapping[str, object], name: str) -> float:
+    """A metric as a float, 0 when missing, unknown or not finite: only for sorting and for
+    figures already checked with ``known`` (an unknown is never drawn as 0)."""
+    value = known(values, name)
+    return 0.0 if value is None else value
 
 
 def _positive(value: float) -> bool:
@@ -203,13 +238,15 @@ class _LogAxes:
 # --- the roofline -----------------------------------------------------------------------------
 
 def roofline_svg(head: RunRecord, base: RunRecord | None, chart_id: str, *,
-                 flagged: Collection[str] = (), max_points: int = MAX_ROOFLINE_POINTS) -> str:
-    """Roofline of ``head`` (and ``base`` hollow when given); ``flagged`` layers ringed."""
+                 flagged: Collection[str] = (), max_points: int = MAX_ROOFLINE_POINTS,
+                 head_points: RoofSelection | None = None) -> str:
+    """Roofline of ``head`` (and ``base`` hollow when given); ``flagged`` layers ringed.
+    ``head_points``: ``roof_points(head, max_points)`` when the caller already has it."""
     figures = head.target_figures
     peak = _finite(figures, "peak_flops_per_s")
     bandwidth = _finite(figures, "dram_bytes_per_s")
     has_roof = _positive(peak) and _positive(bandwidth)
-    head_sel = roof_points(head, max_points)
+    head_sel = head_points if head_points is not None else roof_points(head, max_points)
     base_sel = roof_points(base, max_points) if base is not None else None
     axes = _roof_axes(head_sel, base_sel, peak if has_roof else 0.0,
                       bandwidth if has_roof else 0.0)
@@ -230,13 +267,14 @@ def roofline_svg(head: RunRecord, base: RunRecord | None, chart_id: str, *,
         "precision": head.precision,
         "head-points": len(head_sel.points), "head-left-out": head_sel.left_out,
         "head-unplottable": head_sel.unplottable, "head-unmodelled": head_sel.unmodelled,
+        "head-unknown": head_sel.unknown,
         "peak-flops-per-s": peak, "dram-bytes-per-s": bandwidth,
         "ridge-flop-per-byte": _finite(figures, "ridge_flop_per_byte") if has_roof else 0.0,
         "flagged": len([p for p in head_sel.points if p.name in flagged]),
     }
     if base_sel is not None:
         data.update({"base-points": len(base_sel.points), "base-left-out": base_sel.left_out,
-                     "base-unplottable": base_sel.unplottable})
+                     "base-unplottable": base_sel.unplottable, "base-unknown": base_sel.unknown})
     label = f"Roofline of {head.model_name} on {head.target} ({head.precision})"
     return _svg(chart_id, 860, 430, label, data, body)
 
@@ -402,13 +440,15 @@ def _roof_legend(axes: _LogAxes, with_base: bool, with_flags: bool) -> str:
 # --- per-layer latency and energy -------------------------------------------------------------
 
 def layer_bars_svg(head: RunRecord, base_latency_s: Mapping[str, float], chart_id: str, *,
-                   flagged: Collection[str] = (), max_layers: int = MAX_BAR_LAYERS) -> str:
+                   flagged: Collection[str] = (), max_layers: int = MAX_BAR_LAYERS,
+                   bars: BarSelection | None = None) -> str:
     """Latency (the base's as a tick) and energy by component of the slowest layers.
 
     ``base_latency_s`` maps a head layer name to its matched base layer's latency;
     rows of ``flagged`` layers are marked.
     """
-    layers, left_out = bar_layers(head, max_layers)
+    selection = bars if bars is not None else bar_layers(head, max_layers)
+    layers, left_out = selection.layers, selection.left_out
     row_px, top, label_w = 20.0, 64.0, 230.0
     height = int(top + row_px * max(len(layers), 1) + 46)
     panels = ((label_w, 250.0), (label_w + 290.0, 330.0))
@@ -418,6 +458,8 @@ def layer_bars_svg(head: RunRecord, base_latency_s: Mapping[str, float], chart_i
     body += _energy_panel(layers, chart_id, panels[1], top, row_px)
     data: dict[str, object] = {"chart": "layers", "model": head.model, "target": head.target,
                                "layers-shown": len(layers), "layers-left-out": left_out,
+                               "latency-unknown": selection.unknown_latency,
+                               "energy-unknown": sum(1 for l in layers if unknown_energy(l)),
                                "flagged": sum(1 for layer in layers if layer.name in flagged)}
     label = f"Latency and energy per layer of {head.model_name} on {head.target}"
     return _svg(chart_id, 860, height, label, data, body)
@@ -484,7 +526,10 @@ def _latency_panel(layers: Sequence[LayerRecord], base_latency_s: Mapping[str, f
 def _energy_panel(layers: Sequence[LayerRecord], chart_id: str, panel: tuple[float, float],
                   top: float, row_px: float) -> list[str]:
     x0, width = panel
-    totals = [sum(_finite(layer.metrics, m) for m, _l, _c in ENERGY_PARTS) for layer in layers]
+    # a row with an unknown component gets no stack (a '?' instead): never a short bar
+    unknown_rows = [unknown_energy(layer) for layer in layers]
+    totals = [0.0 if unknown else sum(_finite(layer.metrics, m) for m, _l, _c in ENERGY_PARTS)
+              for layer, unknown in zip(layers, unknown_rows)]
     scale, unit = ladder_unit(totals, units.ENERGY_UNITS)
     ticks = nice_ticks(max([t / scale for t in totals] + [0.0]))
     bottom = top + row_px * max(len(layers), 1)
@@ -494,12 +539,17 @@ def _energy_panel(layers: Sequence[LayerRecord], chart_id: str, panel: tuple[flo
     for metric, _label, prop in ENERGY_PARTS:
         rects = []
         for row, layer in enumerate(layers):
+            if unknown_rows[row]:
+                continue
             w = _finite(layer.metrics, metric) / scale / ticks[-1] * width
             rects.append(f'<rect id="{chart_id}-{metric.replace("_", "-")}-{row}" '
                          f'x="{_n(x0 + lefts[row])}" y="{_n(top + row * row_px + 3)}" '
                          f'width="{_n(w)}" height="{_n(row_px - 6)}"/>')
             lefts[row] += w
         out.append(f'<g fill="var({prop})">{"".join(rects)}</g>')
+    out += [_text(x0 + 4, top + row * row_px + row_px * 0.7, "? (energy unknown)", css="muted",
+                  extra=f' data-unknown="energy" data-layer="{_x(layer.name)}"')
+            for row, layer in enumerate(layers) if unknown_rows[row]]
     out += _bar_legend(x0, top - 44, [(f"var({p})", label) for _m, label, p in ENERGY_PARTS])
     return out
 

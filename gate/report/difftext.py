@@ -42,8 +42,9 @@ def render_diff(result: GateResult, limit: int, written: Sequence[str] = (),
         ranked = ranked_changes(entry.diff)
         shown = ranked if limit == 0 else ranked[:limit]
         counts = {s: sum(1 for c in entry.diff.layers if c.status == s)
-                  for s in ("added", "removed", "changed", "unchanged")}
-        lines.append("  layers: " + ", ".join(f"{n} {s}" for s, n in counts.items()))
+                  for s in ("added", "removed", "changed", "unchanged", "unknown")}
+        lines.append("  layers: " + ", ".join(f"{n} {s}" for s, n in counts.items()
+                                              if n or s != "unknown"))
         for change in shown:
             lines.append("    " + _change_line(change))
         if len(ranked) > len(shown):

@@ -29,7 +29,15 @@ from gate.report.html_tables import (
     status_chip,
 )
 from gate.report.text import html_escape
-from gate.result import FAIL, Entry, GateResult, blocking_lines
+from gate.result import (
+    FAIL,
+    NOT_GATED,
+    Entry,
+    GateResult,
+    blocking_lines,
+    blocking_rule_count,
+    not_gated_sentence,
+)
 
 # Key figures per entry (labels, units and directions from the metric catalogue).
 KEY_FIGURES: tuple[str, ...] = (
@@ -59,8 +67,9 @@ def render(result: GateResult) -> str:
     """The whole page."""
     ranked = result.ranked_entries
     anchors = {(e.model, e.target): entry_anchor(k) for k, e in enumerate(ranked)}
-    parts = [_page_head(result), _summary(result), _blocking(result, anchors),
-             _notes(result.notes), _errors(result)]
+    parts = [_page_head(result), _summary(result), _rules_source(result),
+             _blocking(result, anchors), _rules_changed(result), _errors(result),
+             _skipped(result), _notes(result.notes)]
     if result.entries:
         parts.append(overview_table(result))
     for index, entry in enumerate(ranked):
@@ -93,22 +102,54 @@ def _summary(result: GateResult) -> str:
         "</h1>\n"
         f"<p class=\"sub\">{counts.entries} model \u00d7 target runs, {counts.rules} rule "
         f"results: {counts.blocking} blocking, {counts.warnings} warnings, {counts.waived} "
-        f"waived; {counts.errors} models not analysed. Policies: {policies}.</p>\n"
+        f"waived; {counts.errors} models not analysed. {_model_counts(result)} "
+        f"Policies: {policies}.</p>\n"
         "<p class=\"sub\">Analytical estimates from the model file and the target profile, "
         "not device measurements: confirm on the device before release.</p>\n</header>\n"
     )
 
 
 def _blocking(result: GateResult, anchors: Mapping[tuple[str, str], str]) -> str:
-    """One sentence per blocking finding, each linking to its section."""
+    """What blocks the merge: one sentence per blocking finding (each linking to its
+    section), then each changed model outside every model group (rule ``not-gated``)."""
     lines = blocking_lines(result)
-    if not lines:
+    not_gated = result.not_gated
+    if not lines and not not_gated:
         return ""
-    items = "".join(f"<li><a href=\"#{anchors[(entry.model, entry.target)]}\">"
-                    f"{html_escape(sentence)}</a></li>" for entry, sentence in lines)
-    count = result.counts.blocking
-    return (f"<section class=\"card st-fail\" id=\"blocking\"><h2>What blocks the merge "
-            f"({count} rule{'s' if count != 1 else ''})</h2><ol>{items}</ol></section>\n")
+    count = blocking_rule_count(result)
+    parts = [(f"<section class=\"card st-fail\" id=\"blocking\"><h2>What blocks the merge "
+              f"({count} rule{'s' if count != 1 else ''})</h2>")]
+    if lines:
+        items = "".join(f"<li><a href=\"#{anchors[(entry.model, entry.target)]}\">"
+                        f"{html_escape(sentence)}</a></li>" for entry, sentence in lines)
+        parts.append(f"<ol id=\"blocking-findings\">{items}</ol>")
+    if not_gated:
+        items = "".join(f"<li data-model=\"{html_escape(item.model)}\">"
+                        f"{html_escape(not_gated_sentence(item))}</li>" for item in not_gated)
+        parts.append(f"<p class=\"lead\">Not gated: changed models outside every model "
+                     f"group (rule <code>{NOT_GATED}</code>)</p><ul class=\"plain\" "
+                     f"id=\"not-gated\">{items}</ul>")
+    return "".join(parts) + "</section>\n"
+
+
+def _skipped(result: GateResult) -> str:
+    """Model files left out on purpose (an ``ungated:`` or ``exclude:`` glob, a deletion):
+    listed so nothing is skipped without a word, but they do not block."""
+    skipped = [item for item in result.ungated if item.skipped]
+    if not skipped:
+        return ""
+    items = "".join(f"<li><code class=\"name\">{html_escape(item.model)}</code>: "
+                    f"{html_escape(item.reason)}</li>" for item in skipped)
+    return (f"<section class=\"card\" id=\"skipped\"><h2>Skipped on purpose "
+            f"({len(skipped)} model file{'s' if len(skipped) != 1 else ''})</h2>"
+            f"<ul class=\"plain\">{items}</ul></section>\n")
+
+
+def _model_counts(result: GateResult) -> str:
+    """Model files seen, gated, not gated and skipped (the run's coverage of the repository)."""
+    seen = result.model_counts
+    return (f"Model files: {seen['seen']} seen, {seen['gated']} gated, {seen['not_gated']} not "
+            f"gated, {seen['skipped']} skipped.")
 
 
 def _notes(notes: Sequence[str]) -> str:
@@ -151,7 +192,7 @@ def _entry_section(entry: Entry, index: int) -> str:
         f"<p class=\"sub\">model file <code class=\"name\">{html_escape(entry.model)}</code>"
         f"{_precision(entry.head)}{_baseline_note(entry)}</p>\n")
     ]
-    parts.append("<h3>Rules</h3>\n" + rules_table(entry))
+    parts.append("<h3>Rules</h3>\n" + _rules_applied(entry) + rules_table(entry))
     if entry.head is None:
         parts.append("<p class=\"note\">This model was removed in this change: nothing to "
                      "gate.</p>\n")
@@ -163,6 +204,12 @@ def _entry_section(entry: Entry, index: int) -> str:
         parts.append("<h3>Layers</h3>\n" + layer_table(entry, flagged))
     parts.append("</section>\n")
     return "".join(parts)
+
+
+def _rules_applied(entry: Entry) -> str:
+    """Which rules judged this model x target (every report says it, passing or not)."""
+    names = ", ".join(f"<code>{html_escape(rule)}</code>" for rule in entry.rules_applied)
+    return f"<p class=\"rules-applied\">Rules applied: {names or 'none'}.</p>\n"
 
 
 def flagged_layers(entry: Entry) -> frozenset[str]:
@@ -216,8 +263,9 @@ def _coverage(head: RunRecord) -> str:
 def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     assert entry.head is not None
     head, base = entry.head, entry.base
-    roof = charts.roofline_svg(head, base, f"{anchor}-roofline", flagged=flagged)
     sel = charts.roof_points(head)
+    roof = charts.roofline_svg(head, base, f"{anchor}-roofline", flagged=flagged,
+                               head_points=sel)
     caption = [(f"{_layers(len(sel.points))} plotted at the FLOP/s each achieves, marker area "
                "by share of latency; the roof is what the target attains at "
                f"{html_escape(head.precision)}")]
@@ -231,17 +279,27 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     if sel.unmodelled:
         caption.append(f"{_layers(sel.unmodelled)} not modelled (no cost counted; see the "
                        "note above)")
+    if sel.unknown:
+        caption.append(f"{_layers(sel.unknown)} with an unknown intensity, FLOP/s or latency "
+                       "not plotted (unknown, not zero)")
     if base is not None:
         caption.append("hollow markers are the base")
     caption.append("intensity counts every byte a layer moves (parameters, inputs, outputs), "
                    "so a layer whose activations stay in on-chip buffers can sit above the "
                    "DRAM bandwidth slope")
-    shown, left_out = charts.bar_layers(head)
+    chosen = charts.bar_layers(head)
+    shown, left_out = chosen.layers, chosen.left_out
     bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers",
-                                 flagged=flagged)
+                                 flagged=flagged, bars=chosen)
     bar_caption = f"the {_layers(len(shown))} with the largest latency"
     if left_out:
-        bar_caption += f"; {_layers(left_out)} more in the table below"
+        bar_caption += f"; {_layers(left_out)} more (the table below lists the ones that matter)"
+    unknown = chosen.unknown_latency
+    if unknown:
+        bar_caption += f"; {_layers(unknown)} with an unknown latency not drawn (unknown, not zero)"
+    no_energy = sum(1 for layer in shown if charts.unknown_energy(layer))
+    if no_energy:
+        bar_caption += f"; energy unknown for {_layers(no_energy)} shown (marked ?)"
     if flagged:
         bar_caption += "; rows shaded red are named by a failing rule"
     return (f"<h3>Roofline</h3>\n<figure>{roof}<figcaption>{'; '.join(caption)}."
@@ -266,6 +324,27 @@ def base_latencies(entry: Entry) -> Mapping[str, float]:
         if change.head_name is None or change.base_name is None:
             continue
         matched = base_layers.get(change.base_name)
-        if matched is not None and "latency_s" in matched.metrics:
-            out[change.head_name] = float(matched.metrics["latency_s"] or 0.0)
+        latency = charts.known(matched.metrics, "latency_s") if matched is not None else None
+        if latency is not None:  # an unknown base latency gets no tick (never one at 0)
+            out[change.head_name] = latency
     return out
+
+
+def _rules_source(result: GateResult) -> str:
+    """Where ``check`` took its rules from, right under the headline."""
+    source = result.rules_source
+    if source is None:
+        return ""
+    style = " st-fail" if source.from_head else ""
+    return (f"<section class=\"card{style}\" id=\"rules-source\"><p>"
+            f"{html_escape(source.statement)}</p></section>\n")
+
+
+def _rules_changed(result: GateResult) -> str:
+    """The rules section: one item per change the pull request makes to the rules."""
+    source = result.rules_source
+    if source is None or not source.changes:
+        return ""
+    items = "".join(f"<li>{html_escape(line)}</li>" for line in source.changes)
+    return (f"<section class=\"card\" id=\"rules-changed\"><h2>{html_escape(source.heading)}"
+            f"</h2><ul class=\"plain\">{items}</ul></section>\n")

@@ -14,6 +14,7 @@ from collections.abc import Collection, Sequence
 
 from gate import metrics, units
 from gate.records import LayerRecord, Metric, RunRecord
+from gate.report.html_layers import Picked, pick_changes, pick_layers, rest_line
 from gate.report.text import html_escape
 from gate.result import FAIL, PASS, REMOVED, WAIVED, WARN, Entry, Finding, GateResult, Verdict
 
@@ -53,9 +54,13 @@ def verdict_chip(verdict: Verdict) -> str:
     return f"<span class=\"chip {css.get(word, 'v-none')}\">{html_escape(word)}</span>"
 
 
+_ABSENT = "<td class=\"num same\" data-v=\"-Infinity\">\u2013</td>"  # no such layer or run
+
+
 def _num(metric: str, value: Metric | None) -> str:
+    """A figure; an unknown one (None) reads ``?`` (the catalogue's spelling), never 0."""
     if value is None:
-        return "<td class=\"num\" data-v=\"-Infinity\">\u2013</td>"
+        return f"<td class=\"num unknown\" data-v=\"-Infinity\">{metrics.fmt(metric, None)}</td>"
     return (f"<td class=\"num\" data-v=\"{_sort_value(value)}\">"
             f"{html_escape(metrics.fmt(metric, value))}</td>")
 
@@ -68,8 +73,10 @@ def _sort_value(value: float) -> str:
 
 
 def _change(metric: str, base: Metric | None, head: Metric | None) -> str:
+    """The change of a figure both sides have; ``?`` when either side is unknown."""
     if base is None or head is None:
-        return "<td class=\"num same\" data-v=\"-Infinity\">\u2013</td>"
+        return (f"<td class=\"num unknown\" data-v=\"-Infinity\">"
+                f"{html_escape(metrics.fmt_change(metric, base, head))}</td>")
     impact = float(head) - float(base)
     return (f"<td class=\"num {change_class(metric, base, head)}\" "
             f"data-v=\"{_sort_value(impact)}\">"
@@ -115,12 +122,12 @@ def _overview_row(entry: Entry, index: int) -> str:
               f"{html_escape(entry.model)}</a></td>"),
              f"<td><code>{html_escape(entry.target)}</code></td>", f"<td>{failed}</td>",
              f"<td class=\"name layer\">{html_escape(worst) if worst else '&ndash;'}</td>"]
-    cells.append(_num("latency_s", _totals(entry, "latency_s")[1]))
+    cells.append(_num("latency_s", _totals(entry, "latency_s")[1]) if entry.head else _ABSENT)
     for metric in ("latency_s", "energy_j"):
         base, head = _totals(entry, metric)
         if entry.head is None:
             cells.append("<td class=\"num\" data-v=\"-Infinity\">removed</td>")
-        elif base is None:
+        elif entry.base is None:
             cells.append("<td class=\"num\" data-v=\"-Infinity\">new</td>")
         else:
             cells.append(_change(metric, base, head))
@@ -176,23 +183,35 @@ _LAYER_METRICS = ("latency_s", "energy_j", "utilization", "arithmetic_intensity"
 
 
 def layer_table(entry: Entry, flagged: Collection[str] = ()) -> str:
-    """All layers of the head (or the diff's layer pairs when there is a base); rows of
-    ``flagged`` layers (named by failing findings) are marked."""
+    """The layers that matter (``gate.report.html_layers``) of the head, or of the diff's
+    layer pairs when there is a base, and one line counting the rest; rows of ``flagged``
+    layers (named by failing findings) are marked."""
     if entry.diff is not None and entry.base is not None and entry.head is not None:
         headers = [("change", False), ("layer", False), ("op", False),
                    ("base latency", True), ("latency", True), ("latency change", True),
-                   ("energy change", True), ("parameter size", True),
-                   ("parameter size change", True), ("PE utilization", True)]
-        return _table(headers, _diff_rows(entry, flagged), sortable=True, scroll=True)
+                   ("energy change", True), (metrics.label("param_bytes"), True),
+                   (f"{metrics.label('param_bytes')} change", True),
+                   (metrics.label("utilization"), True)]
+        picked = pick_changes(entry.diff, entry.head.layers, flagged)
+        return (_table(headers, _diff_rows(entry, flagged, picked.positions), sortable=True,
+                       scroll=True) + _rest(picked, with_base=True))
     run = entry.head or entry.base
     assert run is not None
-    total_s = float(run.metrics.get("latency_s") or 0.0)
+    total_s = run.metrics.get("latency_s")
     headers = [("layer", False), ("op", False), ("precision", False), ("bound", False),
                ("latency", True),
                ("share of latency", True),
                *((metrics.label(m), True) for m in _LAYER_METRICS[1:]), ("params fit", False)]
-    rows = [_layer_row(layer, total_s, layer.name in flagged) for layer in run.layers]
-    return _table(headers, rows, sortable=True, scroll=True)
+    picked = pick_layers(run.layers, flagged)
+    rows = [_layer_row(run.layers[k], total_s, run.layers[k].name in flagged)
+            for k in picked.positions]
+    return _table(headers, rows, sortable=True, scroll=True) + _rest(picked, with_base=False)
+
+
+def _rest(picked: Picked, *, with_base: bool) -> str:
+    line = rest_line(picked, with_base=with_base)
+    return (f"<p class=\"note\" data-rest=\"{picked.rest}\">{html_escape(line)}</p>\n"
+            if line else "")
 
 
 def _row_open(is_flagged: bool, css: str = "") -> str:
@@ -200,9 +219,16 @@ def _row_open(is_flagged: bool, css: str = "") -> str:
     return f"<tr class=\"{classes}\">" if classes else "<tr>"
 
 
-def _layer_row(layer: LayerRecord, total_s: float, is_flagged: bool) -> str:
+def _share_cell(latency_s: Metric | None, total_s: Metric | None) -> str:
+    """The layer's share of the model's latency; ``?`` when either is unknown."""
+    if latency_s is None or total_s is None or not total_s:
+        return f"<td class=\"num unknown\" data-v=\"-Infinity\">{units.fmt_share(None)}</td>"
+    share = float(latency_s) / float(total_s)
+    return f"<td class=\"num\" data-v=\"{_sort_value(share)}\">{units.fmt_share(share)}</td>"
+
+
+def _layer_row(layer: LayerRecord, total_s: Metric | None, is_flagged: bool) -> str:
     m = layer.metrics
-    share = float(m.get("latency_s") or 0.0) / total_s if total_s else 0.0
     note = "" if layer.modelled else f" <em>(not modelled: {html_escape(layer.unmodelled_reason)})</em>"
     if layer.fused_label:
         note += f" <span class=\"note\">({html_escape(layer.fused_label)})</span>"
@@ -210,7 +236,7 @@ def _layer_row(layer: LayerRecord, total_s: float, is_flagged: bool) -> str:
             f"<td><code>{html_escape(layer.op_type)}</code></td>"
             f"<td>{html_escape(layer.precision or '-')}</td><td>{html_escape(layer.bound)}</td>"
             + _num("latency_s", m.get("latency_s"))
-            + f"<td class=\"num\" data-v=\"{_sort_value(share)}\">{units.fmt_share(share)}</td>"
+            + _share_cell(m.get("latency_s"), total_s)
             + "".join(_num(metric, m.get(metric)) for metric in _LAYER_METRICS[1:])
             + f"<td>{'yes' if layer.params_fit else 'no'}</td></tr>")
 
@@ -222,11 +248,22 @@ def _index(run: RunRecord) -> dict[str, LayerRecord]:
     return out
 
 
-def _diff_rows(entry: Entry, flagged: Collection[str]) -> list[str]:
+def _layer_num(layer: LayerRecord | None, metric: str) -> str:
+    """A layer's figure: a dash when the layer is absent on that side, ``?`` when unknown."""
+    return _ABSENT if layer is None else _num(metric, layer.metrics.get(metric))
+
+
+def _layer_change(old: LayerRecord | None, new: LayerRecord | None, metric: str) -> str:
+    if old is None or new is None:
+        return _ABSENT
+    return _change(metric, old.metrics.get(metric), new.metrics.get(metric))
+
+
+def _diff_rows(entry: Entry, flagged: Collection[str], positions: Sequence[int]) -> list[str]:
     assert entry.diff is not None and entry.base is not None and entry.head is not None
     base_layers, head_layers = _index(entry.base), _index(entry.head)
     rows = []
-    for change in entry.diff.layers:
+    for change in (entry.diff.layers[k] for k in positions):
         old = base_layers.get(change.base_name) if change.base_name is not None else None
         new = head_layers.get(change.head_name) if change.head_name is not None else None
         name = change.head_name if change.head_name is not None else change.base_name
@@ -234,18 +271,13 @@ def _diff_rows(entry: Entry, flagged: Collection[str]) -> list[str]:
         if old is not None and new is not None and old.name != new.name:
             renamed = f" <span class=\"note\">(was {html_escape(old.name)})</span>"
 
-        def get(layer: LayerRecord | None, metric: str) -> Metric | None:
-            return layer.metrics.get(metric) if layer is not None else None
-
         rows.append(
             _row_open(name in flagged, f"ch-{html_escape(change.status)}")
             + f"<td>{html_escape(change.status)}</td>"
             f"<td class=\"name\">{html_escape(name or '')}{renamed}</td>"
             f"<td><code>{html_escape(change.op_type)}</code></td>"
-            + _num("latency_s", get(old, "latency_s")) + _num("latency_s", get(new, "latency_s"))
-            + _change("latency_s", get(old, "latency_s"), get(new, "latency_s"))
-            + _change("energy_j", get(old, "energy_j"), get(new, "energy_j"))
-            + _num("param_bytes", get(new, "param_bytes"))
-            + _change("param_bytes", get(old, "param_bytes"), get(new, "param_bytes"))
-            + _num("utilization", get(new, "utilization")) + "</tr>")
+            + _layer_num(old, "latency_s") + _layer_num(new, "latency_s")
+            + _layer_change(old, new, "latency_s") + _layer_change(old, new, "energy_j")
+            + _layer_num(new, "param_bytes") + _layer_change(old, new, "param_bytes")
+            + _layer_num(new, "utilization") + "</tr>")
     return rows

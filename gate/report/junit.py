@@ -68,8 +68,9 @@ def render(result: GateResult) -> str:
     suites.extend(_ungated_suite(item) for item in result.ungated)
     if not suites:
         suites.append(_empty_suite(result))
-    elif result.notes:  # run notes (where the rules came from, what changed) on the first suite
+    elif result.notes:  # run notes on the first suite
         suites[0].stdout = _x("\n".join(result.notes), multiline=True)
+    _add_rules_source(result, suites[0])
     return to_xml_report_string(suites, prettyprint=True)
 
 
@@ -215,3 +216,20 @@ def _number(value: float | None) -> str:
 
 def _x(text: str, *, multiline: bool = False) -> str:
     return xml_safe(text, multiline=multiline)
+
+
+def _add_rules_source(result: GateResult, suite: TestSuite) -> None:
+    """Where ``check`` took its rules from, and the rules section, on the first suite:
+    properties for machines (``rules_from``, ``rules_changed``, ``rules_loosened``), and the
+    statement and the changes first in its system-out."""
+    source = result.rules_source
+    if source is None:
+        return
+    suite.properties = {**(suite.properties or {}), "rules_from": source.side,
+                        "rules_changed": str(len(source.changes)),
+                        "rules_loosened": str(len(source.loosened))}
+    lines = [source.statement]
+    if source.changes:
+        lines += [f"{source.heading}:"] + [f"- {line}" for line in source.changes]
+    text = _x("\n".join(lines), multiline=True)
+    suite.stdout = f"{text}\n{suite.stdout}" if suite.stdout else text

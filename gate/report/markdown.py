@@ -134,10 +134,13 @@ def comment_size(text: str) -> int:
 def _render(result: GateResult, limits: _Limits, *, squeezed: bool = False) -> str:
     out = _Render(limits, squeezed)
     out.lines += [MARKER, "", _headline(result)]
+    rules, rules_first = rules_lines(result)
+    out.lines += rules if rules_first else []
     _blocking(result, out)
     _warnings_line(result, out)
     _errors(result, out)
     _ungated(result, out)
+    out.lines += [] if rules_first else rules
     for note in result.notes:
         out.lines.append(f"\n> {md_escape(note)}")
     out.lines.append(f"\n_{_counts_line(result)} Analytical estimates from the model graph "
@@ -381,6 +384,10 @@ def _layer_changes(entry: Entry, out: _Render) -> None:
         out.lines += [_layer_row(change, head.get(change.head_name or ""),
                                  _precision(entry, change)) for change in ranked[:limit]]
     out.trimmed(min(limit, len(ranked)), len(ranked), "changed layers")
+    unchanged = len(entry.diff.layers) - len(ranked)
+    if unchanged:
+        out.lines.append(f"\n_And {unchanged:,} more layer{'s' if unchanged != 1 else ''} "
+                         "unchanged; full detail in the JSON report._")
 
 
 def _precision(entry: Entry, change: LayerChange) -> str:
@@ -406,7 +413,7 @@ def _layer_row(change: LayerChange, head_layer: LayerRecord | None = None,
         latency, what = f"\u2014 \u2192 {metrics.fmt('latency_s', head)}", "added"
     elif change.status == "removed":
         latency, what = f"{metrics.fmt('latency_s', base)} \u2192 \u2014", "removed"
-    elif base is None:
+    elif "latency_s" not in change.deltas:
         latency, what = "unchanged", "unchanged"
     else:
         latency = f"{metrics.fmt('latency_s', base)} \u2192 {metrics.fmt('latency_s', head)}"
@@ -453,3 +460,26 @@ def rendered_sizes(result: GateResult) -> Sequence[int]:
     return [comment_size(_render(result, limits, squeezed=level > 0))
             for level, limits in enumerate(_LEVELS)]
 
+
+# --- where check took its rules from, and what the pull request changes in them --------
+
+MAX_RULE_CHANGE_LINES = 40  # a pull request rewriting every policy still fits the comment
+
+
+def rules_lines(result: GateResult) -> tuple[list[str], bool]:
+    """Where ``check`` took its rules from, then the rules section (a heading and one bullet
+    per change, the rest counted); and whether they lead the comment (the pull request's
+    own rules judge it, said as a warning) rather than follow what blocks the merge."""
+    source = result.rules_source
+    if source is None:
+        return [], False
+    mark = "**Warning: the pull request's own rules judge it.** " if source.from_head else ""
+    lines = [f"\n> {mark}{md_escape(source.statement)}"]
+    if source.changes:
+        shown = source.changes[:MAX_RULE_CHANGE_LINES]
+        lines += ["", f"#### {md_escape(source.heading)}", ""]
+        lines += [f"- {md_escape(shorten(line, 400))}" for line in shown]
+        if len(source.changes) > len(shown):
+            lines.append(f"- ... and {len(source.changes) - len(shown)} more (see the JSON "
+                         "report)")
+    return lines, source.from_head

@@ -12,7 +12,9 @@ import csv
 import io
 import json
 import unicodedata
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import replace
+from functools import lru_cache
 from typing import Any
 
 from gate import metrics, units
@@ -20,7 +22,7 @@ from gate.costmodel import ModelCost
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
-from gate.records import RunRecord, no_work_costed, run_to_dict
+from gate.records import RunRecord, layer_to_dict, no_work_costed, run_to_dict
 from gate.targets.spec import TargetProfile
 
 FORMAT_NAME = "roofgate-profile"
@@ -46,17 +48,24 @@ CSV_TARGET_FIELDS: tuple[str, ...] = (
 def render(fmt: str, profile: ModelProfile, runs: Sequence[Run],
            records: Sequence[RunRecord]) -> str:
     """The whole output of ``roofgate profile`` in ``fmt`` (table, json or csv)."""
+    return "".join(render_chunks(fmt, profile, runs, records))
+
+
+def render_chunks(fmt: str, profile: ModelProfile, runs: Sequence[Run],
+                  records: Sequence[RunRecord]) -> Iterator[str]:
+    """``render`` in pieces to write one after another (JSON is built as it is written)."""
     if fmt == "json":
-        return to_json(profile, records)
+        return json_chunks(profile, records)
     if fmt == "csv":  # CSV keeps model text as is, apart from runner markers (gate/logsafe)
-        return defuse_runner_markers(to_csv(profile, runs))
-    return defuse_runner_markers(to_table(profile, runs))
+        return iter([defuse_runner_markers(to_csv(profile, runs))])
+    return iter([defuse_runner_markers(to_table(profile, runs))])
 
 
 # ------------------------------------------------------------------ JSON
 
+@lru_cache(maxsize=1 << 16)  # graphs repeat a few shapes across many layers
 def shape_text(shape: Shape | None) -> str:
-    return "?" if shape is None else "x".join(str(d) for d in shape) or "scalar"
+    return "?" if shape is None else "x".join(map(str, shape)) or "scalar"
 
 
 def layer_dict(layer: LayerProfile, input_names: Sequence[str],
@@ -83,8 +92,19 @@ def layer_dict(layer: LayerProfile, input_names: Sequence[str],
 
 def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[str, Any]:
     """The JSON document (plain data, stable keys)."""
+    return {**_document_head(profile), "layers": list(_layer_dicts(profile)),
+            "targets": [run_to_dict(record) for record in records]}
+
+
+def _layer_dicts(profile: ModelProfile) -> Iterator[dict[str, Any]]:
+    for layer, node in zip(profile.layers, profile.model.graph.nodes):
+        yield layer_dict(layer, [t.name if t else "" for t in node.inputs],
+                         [t.name for t in node.outputs])
+
+
+def _document_head(profile: ModelProfile) -> dict[str, Any]:
+    """The document without its per-layer lists (``layers``, ``targets``)."""
     model, coverage = profile.model, profile.coverage
-    nodes = model.graph.nodes
     unknown = no_work_costed(profile.coverage.nodes_total,
                              profile.coverage.nodes_total - profile.coverage.nodes_modelled,
                              bool(profile.total_macs or profile.total_flops))
@@ -112,16 +132,75 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
                      "unmodelled": [{"op_type": u.op_type, "domain": u.domain, "count": u.count,
                                      "reason": u.reason} for u in coverage.unmodelled]},
         "notes": list(profile.notes),
-        "layers": [layer_dict(layer, [t.name if t else "" for t in node.inputs],
-                              [t.name for t in node.outputs])
-                   for layer, node in zip(profile.layers, nodes)],
-        "targets": [run_to_dict(record) for record in records],
     }
 
 
 def to_json(profile: ModelProfile, records: Sequence[RunRecord]) -> str:
-    return defuse_json_markers(json.dumps(profile_dict(profile, records), sort_keys=True,
-                                          indent=2, allow_nan=False)) + "\n"
+    return "".join(json_chunks(profile, records))
+
+
+def json_chunks(profile: ModelProfile, records: Sequence[RunRecord]) -> Iterator[str]:
+    """The JSON document in pieces, built while it is written (memory stays bounded).
+
+    Layout: keys sorted, indent 2, except that each element of a ``layers`` list is
+    one line (written by the C encoder: a pure-Python indenting encoder was most of
+    the time of a large profile). Deterministic: the same profile, the same bytes.
+    """
+    document = {**_document_head(profile), "layers": _Rows(_layer_dicts(profile)),
+                "targets": [{**run_to_dict(replace(record, layers=())),
+                             "layers": _Rows(layer_to_dict(x) for x in record.layers)}
+                            for record in records]}
+    for chunk in _emit(document, ""):
+        yield defuse_json_markers(chunk)  # a chunk never ends inside a JSON string
+    yield "\n"
+
+
+class _Rows:
+    """A list written one element per line."""
+
+    def __init__(self, items: Iterable[Any]) -> None:
+        self.items = items
+
+
+_ONE_LINE = json.JSONEncoder(sort_keys=True, separators=(", ", ": "), allow_nan=False)
+_ROWS_PER_CHUNK = 256
+
+
+def _emit(value: Any, indent: str) -> Iterator[str]:
+    """``value`` as JSON with ``json.dumps(indent=2, sort_keys=True)``'s layout; ``_Rows``
+    one element per line."""
+    inner = indent + "  "
+    if isinstance(value, _Rows):
+        yield from _emit_rows(value.items, indent)
+    elif isinstance(value, dict) and value:
+        opening = "{\n"
+        for key in sorted(value):
+            yield f"{opening}{inner}{_ONE_LINE.encode(key)}: "
+            yield from _emit(value[key], inner)
+            opening = ",\n"
+        yield f"\n{indent}}}"
+    elif isinstance(value, list) and value:
+        opening = "[\n"
+        for item in value:
+            yield opening + inner
+            yield from _emit(item, inner)
+            opening = ",\n"
+        yield f"\n{indent}]"
+    else:
+        yield _ONE_LINE.encode(value)
+
+
+def _emit_rows(items: Iterable[Any], indent: str) -> Iterator[str]:
+    inner, opening, batch = indent + "  ", "[\n", []
+    for item in items:
+        batch.append(inner + _ONE_LINE.encode(item))
+        if len(batch) == _ROWS_PER_CHUNK:
+            yield opening + ",\n".join(batch)
+            opening, batch = ",\n", []
+    if batch:
+        yield opening + ",\n".join(batch)
+        opening = ",\n"
+    yield "[]" if opening == "[\n" else f"\n{indent}]"
 
 
 # ------------------------------------------------------------------ CSV
@@ -131,14 +210,22 @@ def _csv_text(value: str) -> str:
     return "'" + value if value[:1] in ("=", "+", "-", "@", "\t", "\r") else value
 
 
+def _csv_number(value: float | None) -> str:
+    """A number as CSV text: floats exactly (repr), unknown (None) as an empty cell, never 0."""
+    if value is None:
+        return ""
+    return repr(value) if isinstance(value, float) else str(value)
+
+
 def _csv_row(layer: LayerProfile) -> list[Any]:
     return [
         layer.index, _csv_text(layer.name), _csv_text(layer.op_type), _csv_text(layer.domain),
         ";".join(shape_text(s) for s in layer.input_shapes), ";".join(layer.input_dtypes),
         ";".join(shape_text(s) for s in layer.output_shapes), ";".join(layer.output_dtypes),
         _csv_text(";".join(layer.param_names)), layer.param_count, layer.param_bytes,
-        layer.input_bytes, layer.output_bytes, layer.macs, layer.flops,
-        repr(layer.arithmetic_intensity), repr(layer.param_reuse),
+        _csv_number(layer.input_bytes), _csv_number(layer.output_bytes),
+        _csv_number(layer.macs), _csv_number(layer.flops),
+        _csv_number(layer.arithmetic_intensity), _csv_number(layer.param_reuse),
         "true" if layer.modelled else "false", _csv_text(layer.unmodelled_reason),
         layer.precision, layer.role,
     ]
@@ -155,10 +242,12 @@ def to_csv(profile: ModelProfile, runs: Sequence[Run]) -> str:
     writer.writerow(CSV_FIELDS + CSV_TARGET_FIELDS)
     for target, cost in runs:
         for layer, lc in zip(profile.layers, cost.layers):
+            energy_j = None if lc.energy is None else lc.energy.total_j
             writer.writerow(_csv_row(layer) + [
-                _csv_text(target.name), lc.engine, lc.bound, repr(lc.utilization), lc.cycles,
-                repr(lc.latency_s), repr(lc.energy.total_j), lc.param_dram_bytes,
-                lc.act_dram_bytes, _csv_text(lc.fused_into), ";".join(lc.fused_ops)])
+                _csv_text(target.name), lc.engine, lc.bound, _csv_number(lc.utilization),
+                _csv_number(lc.cycles), _csv_number(lc.latency_s), _csv_number(energy_j),
+                _csv_number(lc.param_dram_bytes), _csv_number(lc.act_dram_bytes),
+                _csv_text(lc.fused_into), ";".join(lc.fused_ops)])
     return out.getvalue()
 
 
@@ -177,7 +266,8 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
     ``keep_end`` cuts in the middle instead, so a long dotted layer name keeps
     both its block prefix and its last part (``block3.attn...q_proj.matmul``).
     """
-    text = "".join(" " if _unprintable(ch) else ch for ch in text)
+    if not text.isprintable():  # printable: no category C, Zl or Zp character (fast path)
+        text = "".join(" " if _unprintable(ch) else ch for ch in text)
     if limit and len(text) > limit:
         if keep_end:
             head = (limit - 3) // 2
@@ -187,9 +277,11 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
 
 
 def _align(rows: list[list[str]], right_from: int) -> list[str]:
-    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
-    return ["  ".join(cell.rjust(w) if i >= right_from else cell.ljust(w)
-                      for i, (cell, w) in enumerate(zip(row, widths))).rstrip() for row in rows]
+    """Columns padded to their widest cell (left-aligned before ``right_from``, right-aligned
+    from it), two spaces apart; one format string for every row (a table may have 100k)."""
+    widths = [max(map(len, column)) for column in zip(*rows)]
+    line = "  ".join(f"{{:{'>' if i >= right_from else '<'}{w}}}" for i, w in enumerate(widths))
+    return [line.format(*row).rstrip() for row in rows]
 
 
 def _known(shapes: Sequence[Shape | None]) -> bool:
@@ -203,26 +295,41 @@ def _layer_cells(layer: LayerProfile) -> list[str]:
     counted = layer.modelled
     return [str(layer.index), clean(layer.name, 40, keep_end=True), clean(layer.op_type, 24),
             clean(out, 24), layer.precision if layer.role == "layer" else layer.role,
-            units.fmt_count(layer.macs) if counted else "-",
-            units.fmt_count(layer.flops) if counted else "-",
+            units.fmt_count(layer.macs),  # '?' when not modelled (None), never 0
+            units.fmt_count(layer.flops),
             units.fmt_bytes(layer.param_bytes),
             units.fmt_bytes(layer.input_bytes) if _known(layer.input_shapes) else "?",
             units.fmt_bytes(layer.output_bytes) if _known(layer.output_shapes) else "?",
-            units.fmt_plain(layer.arithmetic_intensity) if counted else "-",
-            units.fmt_plain(layer.param_reuse) if counted and layer.param_bytes else "-"]
+            units.fmt_plain(layer.arithmetic_intensity),
+            units.fmt_plain(layer.param_reuse) if not counted or layer.param_bytes else "-"]
 
 
-_HEAD = ["#", "layer", "op", "output shape", "precision", "MACs", "FLOPs", "param size", "input",
-         "output size", "FLOP/B", "MACs/param B"]
-_TARGET_HEAD = ["PE util.", "bound", "latency"]
-LEGEND = ("columns: FLOP/B = arithmetic intensity, FLOPs per byte of parameters, inputs and "
-          "outputs; MACs/param B = MACs per parameter byte (weight reuse)")
-TARGET_LEGEND = (f"target columns: PE util. = {metrics.label('utilization')} (share of the PE "
-                 "array kept busy); bound = what limits the layer (compute, memory, overhead, "
-                 "none; '+' heads a fused group that costs the layers marked 'fused')")
-MARKS = ("marks: - not counted or not applicable; precision: what the layer runs at (folded: "
+def _header(label: str) -> tuple[str, str]:
+    """A column label on two header lines, split at the space nearest its middle, so
+    spelled-out labels keep the table narrow (``parameter`` over ``size``)."""
+    spaces = [k for k, char in enumerate(label) if char == " "]
+    if not spaces:
+        return "", label
+    cut = min(spaces, key=lambda k: abs(2 * k - len(label)))
+    return label[:cut], label[cut + 1:]
+
+
+# Column labels spelled out from the metric catalogue, each on two header lines.
+_HEAD = [_header(text) for text in (
+    "#", "layer", "op", "output shape", "precision", metrics.label("macs"),
+    metrics.label("flops"), metrics.label("param_bytes"), metrics.label("input_bytes"),
+    metrics.label("output_bytes"), metrics.label("arithmetic_intensity"),
+    metrics.label("param_reuse"))]
+_TARGET_HEAD = [_header(text) for text in (
+    metrics.label("utilization"), "bound", metrics.label("latency_s"))]
+LEGEND = (f"columns: {metrics.label('arithmetic_intensity')} in FLOP per byte of parameters, "
+          f"inputs and outputs; {metrics.label('param_reuse')} = weight reuse")
+TARGET_LEGEND = (f"target columns: {metrics.label('utilization')} = share of the PE array kept "
+                 "busy; bound = what limits the layer (compute, memory, overhead, none; '+' "
+                 "heads a fused group that costs the layers marked 'fused')")
+MARKS = ("marks: - not applicable; precision: what the layer runs at (folded: "
          "computed offline from constants; fused: a quantize/dequantize pair absorbed)")
-UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? size unknown"
+UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? unknown (not modelled or size unknown)"
 
 
 def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
@@ -241,8 +348,10 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
               f"opsets: {clean(opsets, 120)}"),
              ""]
     flagged = any(not layer.modelled for layer in profile.layers)
-    head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + (["!"] if flagged else [])
-    rows = [head] + [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
+    head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + \
+        ([("", "!")] if flagged else [])
+    rows = [[top for top, _ in head], [bottom for _, bottom in head]] + \
+        [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
     table = _align(rows, right_from=5)
     if runs:
         table.insert(0, _group_line(rows, [clean(target.name, 40) for target, _ in runs]))
@@ -260,8 +369,8 @@ def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> lis
     cells = _layer_cells(layer)
     for _, cost in runs:
         lc = cost.layers[i]
-        if not layer.modelled:
-            cells += ["-", "-", "-"]
+        if not layer.modelled:  # its cost is unknown, not nothing
+            cells += [units.UNKNOWN, "-", units.UNKNOWN]
             continue
         bound = "fused" if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
         cells += [units.fmt_share(lc.utilization) if lc.engine == "array" else "-", bound,

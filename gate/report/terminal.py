@@ -54,7 +54,10 @@ def render(result: GateResult, written: Sequence[str] = (), title: str | None = 
     lines = [_t(title) if title is not None else
              f"roofgate {result.command}: {len(result.entries)} model x target pair(s), "
              f"{len(result.errors)} unanalysable"]
+    rules, rules_first = rules_lines(result)
+    lines.extend(rules if rules_first else [])
     lines.extend(blocking_lines(result))
+    lines.extend([] if rules_first else rules)
     for note in result.notes:
         lines.append(f"  note: {_t(note)}")
     for entry in result.ranked_entries:
@@ -70,6 +73,19 @@ def render(result: GateResult, written: Sequence[str] = (), title: str | None = 
     if files:
         lines.append(reports_line(files))
     return "\n".join(lines) + "\n"
+
+
+def rules_lines(result: GateResult) -> tuple[list[str], bool]:
+    """Where ``check`` took its rules from, then one line per change the pull request makes
+    to them; and whether they lead the summary (the pull request's own rules judge it)
+    rather than follow what blocks the merge."""
+    source = result.rules_source
+    if source is None:
+        return [], False
+    lines = [f"  rules: {_t(source.statement)}"]
+    if source.changes:
+        lines += [f"{source.heading}:"] + [f"  - {_t(line)}" for line in source.changes]
+    return lines, source.from_head
 
 
 def reports_line(files: Sequence[str]) -> str:
@@ -186,6 +202,8 @@ def _trend(entry: Entry) -> str:
     for metric in metrics.COST_METRICS:
         if metric in entry.diff.totals:
             word = metrics.direction(metric, *entry.diff.totals[metric])
+            if word == units.UNKNOWN:
+                return ""  # an unknown cost is neither unchanged nor improved
             if word in ("better", "worse"):
                 moved.append(word == "better")
     if not moved:
