@@ -16,10 +16,10 @@ import pytest
 BENCH = Path(__file__).resolve().parent.parent / "bench"
 sys.path.insert(0, str(BENCH))
 
-import case_graphs  # noqa: E402
-import measure  # noqa: E402
-from measure import Sample, Series  # noqa: E402
-from table import Goal  # noqa: E402
+import case_graphs
+import measure
+from measure import Sample, Series
+from table import Goal
 
 
 def _appender(log: Path, name: str) -> measure.Command:
