@@ -107,8 +107,6 @@ def _chain_repo(folder: Path, nodes: int) -> Path:
     inputs.new_repo(repo, inputs.project_config(Path("out"), html=True))
     model = repo / "models" / "chain.onnx"
     model.parent.mkdir(parents=True)
-
-
     onnx.save(inputs.chain_model(nodes), str(model))
     inputs.commit_all(repo, "base")
     inputs.git(repo, "checkout", "-q", "-b", "pr")
@@ -119,8 +117,6 @@ def _chain_repo(folder: Path, nodes: int) -> Path:
 
 def _chain_commands(folder: Path, nodes: int, skip: set[str]) -> dict[str, Command]:
     """The commands measured on one graph size (those stopped at a smaller size left out)."""
-
-
     folder.mkdir(parents=True)
     path = folder / "chain.onnx"
     onnx.save(inputs.chain_model(nodes), str(path))
@@ -164,8 +160,7 @@ def measure_chains(ctx: Context) -> dict[int, dict[str, Series]]:
 
 
 def assert_fully_modelled_chain(ctx: Context) -> None:
-
-
+    """The chain and its one-node change are fully modelled (else the rows time nothing)."""
     folder = ctx.work / "modelled"
     folder.mkdir()
     for name, model in (("base", inputs.chain_model(30)),

@@ -102,3 +102,22 @@ def test_quick_start_up_case_prints_its_rows_and_the_load() -> None:
     assert len(rows) == 4, done.stdout
     assert all(line.count("|") == 7 for line in rows)
     assert "Load average (1 min)" in done.stdout
+
+
+def test_update_readme_replaces_only_the_block_between_the_markers(tmp_path: Path) -> None:
+    import run
+
+    readme = tmp_path / "README.md"
+    readme.write_text(f"intro\n{run.README_BEGIN}\nold table\n{run.README_END}\nafter\n")
+    run.update_readme("new table", readme)
+    assert readme.read_text() == f"intro\n{run.README_BEGIN}\nnew table\n{run.README_END}\nafter\n"
+    readme.write_text("no markers\n")
+    with pytest.raises(SystemExit, match="markers not found"):
+        run.update_readme("new table", readme)
+
+
+def test_the_readme_holds_the_markers_the_benchmark_writes_between() -> None:
+    import run
+
+    text = (BENCH.parent / "README.md").read_text(encoding="utf-8")
+    assert text.count(run.README_BEGIN) == 1 and text.count(run.README_END) == 1
