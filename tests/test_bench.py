@@ -121,3 +121,14 @@ def test_the_readme_holds_the_markers_the_benchmark_writes_between() -> None:
 
     text = (BENCH.parent / "README.md").read_text(encoding="utf-8")
     assert text.count(run.README_BEGIN) == 1 and text.count(run.README_END) == 1
+
+
+def test_per_node_cost_against_the_floor_uses_the_whole_size_range() -> None:
+    results = {10_000: {"floor": _series(1.0), "profile": _series(2.0)},
+               100_000: {"floor": _series(1.2), "profile": _series(11.0)},
+               200_000: {"floor": _series(1.1), "profile": _series(21.0)}}
+    # profile (21 - 2) / 190k = 100 us; floor (1.1 - 1.0) / 190k = 0.5 us (its last step
+    # is negative: noise), so the whole range is the figure.
+    assert case_graphs.overall_slope(results, "profile") == pytest.approx(100e-6)
+    assert case_graphs._slope_against_floor(results, "profile") == (
+        "10k->200k: 100 us vs floor's 0.5 us (190.00x)")
