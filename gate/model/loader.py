@@ -1,7 +1,9 @@
 """Loading an ONNX file for profiling: validate, inline, bind dims, infer shapes, convert.
 
-Weights are never read: the file is parsed with ``load_external_data=False`` and
-every size comes from an initializer's dims and dtype. The steps, in order:
+Weights are never read: the file is parsed with ``load_external_data=False``,
+the values of large inline initializers of the main graph are left out while it
+is read (``gate.model.skeleton``), and every size comes from an initializer's
+dims and dtype. The steps, in order:
 
 1. refuse what is not a model, with one line naming the file and the remedy
    (missing, empty, Git LFS pointer, truncated, random bytes, a protobuf that is
