@@ -579,7 +579,7 @@ def test_unknown_figures_are_skipped_and_counted_in_the_captions() -> None:
     assert dead not in labels
     assert "1 layer with an unknown latency not drawn (unknown, not zero)" in page
     # a row whose energy split is partly unknown gets a '?' and no stack at all
-    row = next(k for k, l in enumerate(charts.bar_layers(entry.head)[0])
+    row = next(k for k, l in enumerate(charts.bar_layers(entry.head).layers)
                if l.name == "stage1.conv")
     assert _by_id(bars, f"e0-layers-energy-mac-j-{row}") is None
     assert [t.get("data-layer") for t in bars.iter(f"{SVG_NS}text")
@@ -672,3 +672,32 @@ def test_a_200k_layer_model_gives_an_html_page_under_5_mb_listing_what_matters()
     assert markdown.comment_size(text) <= markdown.COMMENT_LIMIT_CHARS
     assert failing in text and changed in text
     assert f"And {BIG_CHAIN_LAYERS - 1:,} more layers unchanged" in text
+
+
+def test_changed_layers_beyond_the_cap_are_counted_largest_change_first() -> None:
+    """300 changed layers of 1,000: the table lists the 200 with the largest latency change
+    (gate.diff.ranked_changes), the slowest and the failing one, and counts the rest."""
+    from gate.result import LayerChange, RunDiff
+
+    count, moved = 1000, 300
+    base_layers = [make_layer(f"l{k}", 10_000, 500, 20_000) for k in range(count)]
+    head_layers = [make_layer(f"l{k}", 10_000, 500, 20_000 + 1000 * k) if k < moved
+                   else base_layers[k] for k in range(count)]
+    base = make_run("models/m.onnx", "t", base_layers)
+    head = make_run("models/m.onnx", "t", head_layers)
+    changes = tuple(LayerChange(
+        "changed" if k < moved else "unchanged", f"l{k}", f"l{k}", "Conv", "name",
+        {"latency_s": (base_layers[k].metrics["latency_s"], head_layers[k].metrics["latency_s"])}
+        if k < moved else {}) for k in range(count))
+    diff = RunDiff(head.model, "t", {}, changes)
+    entry = Entry(head.model, "t", head, base, diff,
+                  (make_verdict("r", head.model, "t", FAIL, layer="l999"),))
+    picked = html_layers.pick_changes(diff, head.layers, {"l999"})
+    listed = {f"l{k}" for k in picked.positions}
+    assert {f"l{k}" for k in range(moved - 200, moved)} <= listed  # largest changes
+    assert "l999" in listed and "l0" not in listed
+    assert picked.rest_changed == moved - 200
+    assert picked.rest_unchanged == count - len(listed) - picked.rest_changed
+    page = render(GateResult("check", (), (entry,)))
+    assert (f"And {moved - 200} more changed layers with a smaller latency change and "
+            f"{picked.rest_unchanged} layers, unchanged; full detail in the JSON report.") in page

@@ -263,8 +263,9 @@ def _coverage(head: RunRecord) -> str:
 def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     assert entry.head is not None
     head, base = entry.head, entry.base
-    roof = charts.roofline_svg(head, base, f"{anchor}-roofline", flagged=flagged)
     sel = charts.roof_points(head)
+    roof = charts.roofline_svg(head, base, f"{anchor}-roofline", flagged=flagged,
+                               head_points=sel)
     caption = [(f"{_layers(len(sel.points))} plotted at the FLOP/s each achieves, marker area "
                "by share of latency; the roof is what the target attains at "
                f"{html_escape(head.precision)}")]
@@ -286,13 +287,14 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     caption.append("intensity counts every byte a layer moves (parameters, inputs, outputs), "
                    "so a layer whose activations stay in on-chip buffers can sit above the "
                    "DRAM bandwidth slope")
-    shown, left_out = charts.bar_layers(head)
+    chosen = charts.bar_layers(head)
+    shown, left_out = chosen.layers, chosen.left_out
     bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers",
-                                 flagged=flagged)
+                                 flagged=flagged, bars=chosen)
     bar_caption = f"the {_layers(len(shown))} with the largest latency"
     if left_out:
         bar_caption += f"; {_layers(left_out)} more (the table below lists the ones that matter)"
-    unknown = charts.unknown_latency(head)
+    unknown = chosen.unknown_latency
     if unknown:
         bar_caption += f"; {_layers(unknown)} with an unknown latency not drawn (unknown, not zero)"
     no_energy = sum(1 for layer in shown if charts.unknown_energy(layer))
