@@ -1,7 +1,9 @@
 """Loading an ONNX file for profiling: validate, inline, bind dims, infer shapes, convert.
 
-Weights are never read: the file is parsed with ``load_external_data=False`` and
-every size comes from an initializer's dims and dtype. The steps, in order:
+Weights are never read: the file is parsed with ``load_external_data=False``,
+the values of large inline initializers of the main graph are left out while it
+is read (``gate.model.skeleton``), and every size comes from an initializer's
+dims and dtype. The steps, in order:
 
 1. refuse what is not a model, with one line naming the file and the remedy
    (missing, empty, Git LFS pointer, truncated, random bytes, a protobuf that is
@@ -50,6 +52,7 @@ from gate.model.guards import refuse_huge_shape_data
 from gate.model.shape_text import MAX_DIM, StaticShape
 from gate.model.shape_values import refine_shapes
 from gate.model.shapes import bind_input_shapes, sizing_notes
+from gate.model.skeleton import file_without_weights, without_weights
 from gate.model.text import repair_text_fields
 from gate.ops.contrib_shapes import register_contrib_schemas
 
@@ -78,7 +81,7 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     bindings = _check_bindings(dict(dims or {}), text_path)
     shape_bindings = _check_shapes(dict(shapes or {}), text_path)
     size_bytes = _check_file(text_path) if data is None else _check_head(len(data), data, text_path)
-    proto = _parse(text_path, data)
+    proto = _parse(text_path, data, lean=size_bytes < PATH_INFERENCE_BYTES)
     _validate(proto, text_path)
     warnings: list[str] = []
     repaired = repair_text_fields(proto)
@@ -164,8 +167,14 @@ def _check_head(size_bytes: int, head: bytes, path: str) -> int:
     return size_bytes
 
 
-def _parse(path: str, data: bytes | None = None) -> onnx.ModelProto:
+def _parse(path: str, data: bytes | None = None, lean: bool = False) -> onnx.ModelProto:
+    """The parsed model; ``lean``: without inline weight values (``gate.model.skeleton``)."""
     try:
+        skeleton = None
+        if lean:
+            skeleton = without_weights(data) if data is not None else file_without_weights(path)
+        if skeleton is not None:
+            return onnx.load_model_from_string(skeleton)
         if data is not None:
             return onnx.load_model_from_string(data)  # no folder: external data never loaded
         return onnx.load(path, load_external_data=False)
