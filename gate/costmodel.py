@@ -10,8 +10,9 @@ N times one target.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields
 from math import ceil
+from typing import Any, TypeVar
 
 from gate.errors import InputError, InternalError
 from gate.fusion import NO_FUSION, FusedGroup, FusionPlan, plan_fusion
@@ -291,13 +292,29 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
     """
     members = [layers[i] for i in group.members]
     kept = [_kept_params(m, m.index in group.folded) for m in members]
-    as_one = replace(
+    as_one = _replaced(
         head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
         param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
         param_new_bytes=head.first_read_param_bytes + sum(new for _, new, _ in kept),
         param_count=head.param_count + sum(count for _, _, count in kept))
     cost = _cost_layer(as_one, ctx, epilogue_ops=group.epilogue_ops)
-    return replace(cost, fused_ops=tuple(m.op_type for m in members))
+    return _replaced(cost, fused_ops=tuple(m.op_type for m in members))
+
+
+def _replaced(record: _Record, **changes: Any) -> _Record:
+    """``dataclasses.replace`` with the field names looked up once per class (it is
+    called twice per fused group, and ``replace`` introspects the fields every call)."""
+    cls = type(record)
+    names = _FIELD_NAMES.get(cls)
+    if names is None:
+        names = _FIELD_NAMES[cls] = tuple(f.name for f in fields(cls) if f.init)
+    values = {name: getattr(record, name) for name in names}
+    values.update(changes)
+    return cls(**values)
+
+
+_Record = TypeVar("_Record", LayerProfile, LayerCost)
+_FIELD_NAMES: dict[type, tuple[str, ...]] = {}
 
 
 def _kept_params(member: LayerProfile, folded: bool) -> tuple[int, int, int]:

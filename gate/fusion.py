@@ -74,6 +74,7 @@ def plan_fusion(profile: ModelProfile, spec: FusionSpec,
             layer.index != i for i, layer in enumerate(profile.layers)):
         return NO_FUSION  # a hand-built profile without its graph: nothing to walk
     wiring = _Wiring.of(profile.model.graph)
+    engine_of = _remembered(engine_of)
     taken: set[int] = set()
     groups = []
     for layer in profile.layers:
@@ -89,6 +90,18 @@ def plan_fusion(profile: ModelProfile, spec: FusionSpec,
         group_of_head=MappingProxyType({g.head: g for g in groups}),
         head_of_member=MappingProxyType({m: g.head for g in groups for m in g.members}),
     )
+
+
+def _remembered(engine_of: Callable[[LayerProfile], str]) -> Callable[[LayerProfile], str]:
+    """``engine_of`` asked once per layer (a layer is asked as a head and as a member)."""
+    engines: dict[int, str] = {}
+
+    def remembered(layer: LayerProfile) -> str:
+        engine = engines.get(layer.index)
+        if engine is None:
+            engine = engines[layer.index] = engine_of(layer)
+        return engine
+    return remembered
 
 
 # ------------------------------------------------------------------ the graph's wiring

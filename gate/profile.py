@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import dataclass
+from functools import lru_cache
 from math import prod
 
 from gate.errors import InputError, InternalError
@@ -393,12 +394,20 @@ def _layer_params(node: Node) -> dict[str, _Param]:
     return params
 
 
+@lru_cache(maxsize=1 << 16)  # graphs repeat a few shapes across many layers
+def _all_ints(shape: Shape) -> bool:
+    return all(isinstance(d, int) for d in shape)
+
+
 def _shape_problem(node: Node, unbound: dict[str, int]) -> str:
     """Why the layer's tensors cannot be sized, or "" when all are static."""
-    symbolic: list[str] = []
-    other = ""
     tensors = [t for t in node.inputs if t is not None] + [
         t for i, t in enumerate(node.outputs) if t.name and i not in node.unused_outputs]
+    if all(t.shape is not None and _all_ints(t.shape) and DTYPE_BITS.get(t.dtype, 0)
+           for t in tensors):
+        return ""  # the common case, decided with one cached look per shape
+    symbolic: list[str] = []
+    other = ""
     for tensor in tensors:
         if tensor.shape is None:
             other = other or f"shape of tensor '{tensor.name}' was not inferred"
@@ -456,10 +465,12 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
     params = _layer_params(node)
     charge = ledger.charge([(source, counting.param_bits(tensor, source, bias))
                             for tensor, source, bias in params.values()])
-    activations = {t.name: t for i, t in enumerate(node.inputs)
-                   if t is not None and i not in node.param_sources and i not in node.param_inputs
+    inputs, sources, param_inputs = node.inputs, node.param_sources, node.param_inputs
+    activations = {t.name: t for i, t in enumerate(inputs)
+                   if t is not None and i not in sources and i not in param_inputs
                    and t.name not in params}
-    outputs = [t for i, t in enumerate(node.outputs) if t.name and i not in node.unused_outputs]
+    unused = node.unused_outputs
+    outputs = [t for i, t in enumerate(node.outputs) if t.name and i not in unused]
     work, reason = _work(node, unbound)
     input_bytes = _sum_bytes(activations.values(), counting)
     output_bytes = _sum_bytes(outputs, counting)
@@ -473,10 +484,10 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
         name=node.name,
         op_type=node.op_type,
         domain=node.domain,
-        input_shapes=tuple(None if t is None else t.shape for t in node.inputs),
-        input_dtypes=tuple("" if t is None else t.dtype for t in node.inputs),
-        output_shapes=tuple(t.shape for t in node.outputs),
-        output_dtypes=tuple(t.dtype for t in node.outputs),
+        input_shapes=tuple([None if t is None else t.shape for t in inputs]),
+        input_dtypes=tuple(["" if t is None else t.dtype for t in inputs]),
+        output_shapes=tuple([t.shape for t in node.outputs]),
+        output_dtypes=tuple([t.dtype for t in node.outputs]),
         param_names=charge.names,
         param_count=charge.count,
         param_bytes=charge.nbytes,
