@@ -93,7 +93,8 @@ def check_scopes(config: ProjectConfig, policies: PolicyCache, groups: Iterable[
     names = target_names(config, groups)
     if None in names:  # a target that does not load fails its models on its own, later
         loaded = [replace(p, targets=(), rules=tuple(replace(r, scope=replace(
-            r.scope, targets=())) for r in p.rules)) for p in loaded]
+            r.scope, targets=())) for r in p.rules), waivers=tuple(replace(w, scope=replace(
+                w.scope, targets=())) for w in p.waivers)) for p in loaded]
     problems = scope_problems(loaded, targets=[n for n in names if n is not None],
                               models=models)
     if problems:

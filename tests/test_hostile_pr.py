@@ -20,8 +20,11 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+import onnx
 import pytest
 from click.testing import CliRunner, Result
+from onnx import TensorProto, helper, numpy_helper
 
 from gate.cli import cli
 from gate.synth.builder import save_model
@@ -415,6 +418,146 @@ def test_a_weight_with_negative_dims_is_an_error_not_zero_bytes(tmp_path: Path) 
     assert fingerprint(repo) == before
 
 
+FOUR_BILLION = 4_000_000_000
+
+
+def _const(name: str, value: object, dtype: type = np.int64) -> onnx.NodeProto:
+    return helper.make_node("Constant", [], [name], name=f"const_{name}",
+                            value=numpy_helper.from_array(np.array(value, dtype), name))
+
+
+def _vector_nodes(kind: str, count: int) -> list[onnx.NodeProto]:
+    """Nodes building the 1-D vector ``v`` of ``count`` elements from constants."""
+    builders = {
+        "Range": [_const("start", 0), _const("limit", count), _const("delta", 1),
+                  helper.make_node("Range", ["start", "limit", "delta"], ["v"], name="big")],
+        "ConstantOfShape": [_const("shp", [count]),
+                            helper.make_node("ConstantOfShape", ["shp"], ["v"], name="big")],
+        "Expand": [_const("one", [1.0], np.float32), _const("shp", [count]),
+                   helper.make_node("Expand", ["one", "shp"], ["v"], name="big")],
+        "Tile": [_const("one", [1.0], np.float32), _const("rep", [count]),
+                 helper.make_node("Tile", ["one", "rep"], ["v"], name="big")],
+    }
+    return builders[kind]
+
+
+def with_vector(kind: str, count: int) -> onnx.ModelProto:
+    """MatMul [1, 64] x [64, 64] (costed work) plus the sum of a 1-D vector of ``count``
+    elements read through Cast, an op onnx shape inference propagates values through
+    (``OpSchema.has_data_propagation_function``). ``kind``: the op that builds the vector
+    from constants, ``If`` (a Range inside an If branch) or ``input`` (a declared input)."""
+    from tests.loadkit import model, vi, weight
+
+    def summed(nodes: list[onnx.NodeProto], out: str) -> list[onnx.NodeProto]:
+        return [*nodes, helper.make_node("Cast", ["v"], ["vf"], name="cast", to=TensorProto.FLOAT),
+                helper.make_node("ReduceSum", ["vf"], [out], name="sum", keepdims=0)]
+
+    inputs = [vi("x", [1, 64])]
+    if kind == "computed":  # limit = (x's dim 1) * count / 64: known only by evaluating shapes
+        inputs.append(vi("z", [1, 64]))
+        extra = summed([helper.make_node("Shape", ["z"], ["zs"], name="zshape"),
+                        _const("one", 1), _const("k", count // 64), _const("start", 0),
+                        _const("delta", 1),
+                        helper.make_node("Gather", ["zs", "one"], ["n"], name="dim1", axis=0),
+                        helper.make_node("Mul", ["n", "k"], ["limit"], name="times"),
+                        helper.make_node("Range", ["start", "limit", "delta"], ["v"],
+                                         name="big")], "s")
+    elif kind == "input":
+        inputs.append(vi("v", [count], TensorProto.INT64))
+        extra = summed([], "s")
+    elif kind == "If":
+        body = helper.make_graph(summed(_vector_nodes("Range", count), "t"), "then", [],
+                                 [vi("t", [])])
+        other = helper.make_graph([_const("e", 0.0, np.float32)], "else", [], [vi("e", [])])
+        extra = [_const("cond", True, np.bool_),
+                 helper.make_node("If", ["cond"], ["s"], name="branch", then_branch=body,
+                                  else_branch=other)]
+    else:
+        extra = summed(_vector_nodes(kind, count), "s")
+    nodes = [helper.make_node("MatMul", ["x", "w"], ["h"], name="mm"), *extra,
+             helper.make_node("Add", ["h", "s"], ["y"], name="add")]
+    return model(nodes, inputs, [vi("y", None)], [weight("w", [64, 64])])
+
+
+# roofgate's entry point under a 2 GiB address-space cap (its git children inherit it), saying
+# its own peak resident size (ru_maxrss, KiB on Linux) on stderr as it exits.
+CAPPED = """
+import atexit, resource, sys
+resource.setrlimit(resource.RLIMIT_AS, (2 * 1024**3, 2 * 1024**3))
+atexit.register(lambda: print("peak-kib", resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
+                              file=sys.stderr))
+from gate.cli import main
+main()
+"""
+
+
+def run_cli_in_2_gib(repo: Repo, *args: str) -> tuple[subprocess.CompletedProcess[str], int]:
+    """``roofgate ARGS`` capped at 2 GiB, and its peak resident KiB. The peak is what tells a
+    guard that works from one that does not: under the cap onnx's allocation failure may be
+    caught as a MemoryError and the run go on, but only after it used the whole cap."""
+    env = {**os.environ, "PYTHONPATH": str(WORKTREE)}
+    done = subprocess.run([sys.executable, "-c", CAPPED, *args], cwd=repo.path, env=env,
+                          capture_output=True, text=True, check=False, timeout=300)
+    peaks = [int(line.split()[1]) for line in done.stderr.splitlines()
+             if line.startswith("peak-kib ")]
+    assert peaks, done.stdout + done.stderr  # the process exited (no crash)
+    return done, peaks[0]
+
+
+@pytest.mark.parametrize("kind, needle", [
+    ("Range", "node 'big' (Range) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("ConstantOfShape", "node 'big' (ConstantOfShape) makes a 1-D tensor of 4,000,000,000"),
+    ("Expand", "node 'big' (Expand) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("Tile", "node 'big' (Tile) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("If", "node 'big' (Range) makes a 1-D tensor of 4,000,000,000 elements"),
+    ("input", "node 'cast' (Cast) reads a 1-D tensor of 4,000,000,000 elements"),
+])
+def test_a_vector_of_billions_built_from_constants_is_refused_in_bounded_memory(
+        tmp_path: Path, kind: str, needle: str) -> None:
+    """Without the guard, onnx data propagation holds such a vector element by element (it
+    took ~24 GB on a Range of 4e9 and crashed under this cap)."""
+    from tests.loadkit import save
+
+    repo = make_repo(tmp_path)
+    save(with_vector(kind, FOUR_BILLION), repo.path / "models/vec.onnx")
+    repo.commit("a model with a huge constant-built vector")
+    before = fingerprint(repo)
+    done, peak_kib = run_cli_in_2_gib(repo, "check", "--base", "main")
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert peak_kib < 1024**2  # under 1 GiB
+    (line,) = [ln for ln in done.stdout.splitlines() if needle in ln]  # the summary's one line
+    assert line.startswith("  ERROR  models/vec.onnx: ")
+    assert "above the limit of 1,048,576" in line and "Traceback" not in done.stderr
+    assert fingerprint(repo) == before
+
+
+def test_a_vector_sized_by_shape_arithmetic_is_left_unsized_in_bounded_memory(
+        tmp_path: Path) -> None:
+    """The Range limit is computed from a shape (gate/model/shape_values evaluates it to 4e9
+    and would hand it to inference as a constant): that round of inference is skipped, the
+    vector stays unsized and is reported as such, within the memory cap."""
+    from tests.loadkit import save
+
+    repo = make_repo(tmp_path)
+    save(with_vector("computed", FOUR_BILLION), repo.path / "models/vec.onnx")
+    repo.commit("a model whose vector length comes from shape arithmetic")
+    done, peak_kib = run_cli_in_2_gib(repo, "profile", "models/vec.onnx", "-t", TARGET)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "starting at node 'big' (Range, output 'v')" in done.stdout + done.stderr
+    assert peak_kib < 1024**2  # under 1 GiB (without the guard: the whole cap, then on)
+
+
+def test_a_small_constant_built_vector_still_passes_in_bounded_memory(tmp_path: Path) -> None:
+    from tests.loadkit import save
+
+    repo = make_repo(tmp_path)
+    save(with_vector("Range", 1000), repo.path / "models/vec.onnx")
+    repo.commit("a model with a small constant-built vector")
+    done, peak_kib = run_cli_in_2_gib(repo, "check", "--base", "main")
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert peak_kib < 1024**2
+
+
 # --- 5. exit codes and processes ---------------------------------------------------------
 
 # roofgate's own entry point, with every analysis slowed to a crawl after it says it started
@@ -775,6 +918,79 @@ def test_a_rename_with_a_re_export_is_still_compared_with_the_old_model(tmp_path
     assert_clean_exit(result, 1, "latency-regression")
     assert ("models/mlp.onnx was renamed to models/renamed/b.onnx (git saw a deletion and an "
             "addition; their layers match)") in result.stdout
+    assert fingerprint(repo) == before
+
+
+MANY_FILES = 1001  # git's default diff.renameLimit is 1000: past 1000 x 1000 candidates it
+# skips inexact rename detection with only a warning (git-diff(1), diff.renameLimit; from memory)
+
+
+@pytest.mark.slow
+def test_renames_are_followed_in_a_pull_request_with_over_a_thousand_files(
+        tmp_path: Path) -> None:
+    """1001 files moved and edited, a model moved and regressed (git pairs it only when its
+    rename limit is lifted: the layer shapes differ, so layer structure would not), and a
+    model renamed and re-exported (git never pairs it; gate/renames.py does)."""
+    repo = make_repo(tmp_path)
+    for k in range(MANY_FILES):
+        repo.write(f"data/f{k}.txt", f"record {k}\nshared text shared text shared\n")
+    save_model(mlp(256, "fc"), repo.path / "models/mlp.onnx")
+    repo.commit("data and an mlp")
+    repo.git("branch", "-f", "main")
+    for k in range(MANY_FILES):
+        (repo.path / f"data/f{k}.txt").unlink()
+        repo.write(f"data2/g{k}.txt", f"record {k}\nshared text shared text shared\nedit {k}\n")
+    (repo.path / "models/a.onnx").unlink()
+    save_model(fc_model(900), repo.path / "models/moved/a.onnx")
+    (repo.path / "models/mlp.onnx").unlink()
+    save_model(mlp(900, "dense_"), repo.path / "models/renamed/b.onnx")
+    repo.commit("move everything, regress two models")
+    default = subprocess.run(["git", "diff", "--name-status", "-M", "main", "HEAD"],
+                             cwd=repo.path, capture_output=True, text=True, check=True)
+    assert "rename detection was skipped" in default.stderr  # the situation is real
+    assert "R" not in {line[:1] for line in default.stdout.splitlines()}
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 1, "latency-regression")
+    assert "models/a.onnx was renamed to models/moved/a.onnx; compared with the old file." \
+        in result.stdout
+    assert ("models/mlp.onnx was renamed to models/renamed/b.onnx (git saw a deletion and an "
+            "addition; their layers match)") in result.stdout
+    blocked = [line for line in result.stdout.splitlines() if "rule latency-regression" in line]
+    assert {"models/moved/a.onnx", "models/renamed/b.onnx"} == {
+        line.split()[1] for line in blocked if line.split()[1].startswith("models/")}
+    assert fingerprint(repo) == before
+
+
+@pytest.mark.parametrize("attributes, filtered_differs", [
+    ("*.onnx text eol=crlf", True),  # LF -> CRLF on the way out (gitattributes(5), eol)
+    ("*.onnx filter=rot -text", True),  # a smudge filter the repository configures
+    ("models/** text", False),  # LF stays LF on Linux checkouts; only adding would convert
+])
+def test_attributes_added_by_the_pull_request_never_touch_the_base_side(
+        tmp_path: Path, attributes: str, filtered_differs: bool) -> None:
+    """The PR regresses the model, then adds .gitattributes declaring models text (LF -> CRLF
+    on the way out of git) or a filter. Both sides are read as git stores them (cat-file,
+    no filters, no attributes), so the base is the model it was and the regression rule
+    applies; through the filters the base would be corrupted (the negative control)."""
+    repo = make_repo(tmp_path)
+    repo.git("config", "filter.rot.smudge", "tr a-z n-za-m")
+    repo.git("config", "filter.rot.clean", "tr a-z n-za-m")
+    raw_base = (repo.path / "models/a.onnx").read_bytes()
+    save_model(fc_model(900), repo.path / "models/a.onnx")
+    repo.commit("regress")
+    repo.write(".gitattributes", attributes + "\n")
+    repo.git("add", ".gitattributes")  # only it: re-adding the model would normalise it too
+    repo.git("commit", "-q", "-m", "declare the models text")
+    filtered = subprocess.run(["git", "cat-file", "--filters", "main:models/a.onnx"],
+                              cwd=repo.path, capture_output=True, check=True).stdout
+    assert b"\n" in raw_base and (filtered != raw_base) is filtered_differs
+    before = fingerprint(repo)
+    result = check(repo)
+    assert_clean_exit(result, 1, "latency-regression")
+    assert "judged as new" not in result.stdout + result.stderr
+    entry = json.loads(reports(repo)["result.json"])["result"]["entries"][0]
+    assert entry["base"] is not None and entry["model"] == "models/a.onnx"
     assert fingerprint(repo) == before
 
 

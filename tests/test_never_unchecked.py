@@ -7,6 +7,8 @@ one-line message (README, "Exit codes": 1 a rule failed or a model was not gated
 
 from __future__ import annotations
 
+import os
+from datetime import date, timedelta
 from pathlib import Path
 
 import pytest
@@ -161,6 +163,43 @@ def test_a_scope_that_matches_nothing_is_exit_2_with_did_you_mean(zoo: Path, cas
     assert quoted in line and hint in line and "policies/p.yaml" in line, line
 
 
+def waiver(models: str = "['models/**']", targets: str = f"[{TARGET}]") -> str:
+    """A valid waiver of params-fit (expiring in 30 days) with the given scope."""
+    expires = (date.today() + timedelta(days=30)).isoformat()
+    return (f"waivers:\n  - rule: params-fit\n    models: {models}\n    targets: {targets}\n"
+            f"    reason: 'the vendor compiler splits this layer, decided by ml-infra'\n"
+            f"    expires: {expires}\n")
+
+
+WAIVER_TYPOS = {
+    "waiver targets": (waiver(targets="[ws-64x64-4mb]"), "targets: 'ws-64x64-4mb'",
+                       "did you mean 'ws-64x64-4mib'?"),
+    "waiver models": (waiver(models="['models/b.onnx']"), "models: 'models/b.onnx'",
+                      "did you mean 'models/a.onnx'?"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(WAIVER_TYPOS))
+@pytest.mark.parametrize("command", ["audit", "evaluate"])
+def test_a_waiver_scope_that_matches_nothing_is_exit_2_with_did_you_mean(
+        zoo: Path, case: str, command: str) -> None:
+    waiver_text, quoted, hint = WAIVER_TYPOS[case]
+    write(zoo, "policies/p.yaml", POLICY.format(policy_extra="", rule_extra="") + waiver_text)
+    args = ["audit"] if command == "audit" else ["evaluate", "models/a.onnx"]
+    result = invoke(args)
+    assert result.exit_code == 2, (case, result.output)
+    line = one_line(result)
+    assert "waivers[params-fit]" in line and quoted in line and hint in line, line
+    assert "a waiver that matches nothing waives nothing" in line, line
+
+
+def test_a_waiver_whose_scope_matches_passes_the_scope_check(zoo: Path) -> None:
+    """The negative control: the same waiver with a matching scope is no error."""
+    write(zoo, "policies/p.yaml", POLICY.format(policy_extra="", rule_extra="") + waiver())
+    result = invoke(["audit"])
+    assert result.exit_code == 0, result.output
+
+
 def test_a_scope_typo_fails_check_too(repo: Repo) -> None:
     repo.write("policies/p.yaml", POLICY.format(policy_extra="targets: [ws-64x64-4mb]\n",
                                                rule_extra=""))
@@ -231,40 +270,77 @@ MISTAKES = {
         policy_extra="", rule_extra="") + "  - {id: c, kind: max_unmodelled, "
         "max_work_share: 5}\n"),
     "model outside groups": lambda: ("stray", ""),
+    "waiver target typo": lambda: ("policy", POLICY.format(policy_extra="", rule_extra="")
+                                   + waiver(targets="[ws-64x64-4mb]")),
+    "waiver model typo": lambda: ("policy", POLICY.format(policy_extra="", rule_extra="")
+                                  + waiver(models="['modles/**']")),
 }
 
 
-@settings(max_examples=16, deadline=None,
-          suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(mistakes=st.lists(st.sampled_from(sorted(MISTAKES)), min_size=1, max_size=3, unique=True),
-       command=st.sampled_from(["audit", "evaluate"]))
-def test_no_run_with_a_mistake_exits_0(tmp_path_factory, mistakes: list[str],
-                                       command: str) -> None:
-    root = tmp_path_factory.mktemp("mistake")
-    write(root, "roofgate.yaml", CONFIG)
-    write(root, "policies/p.yaml", POLICY.format(policy_extra="", rule_extra=""))
-    save_model(fc_model(64), root / "models/a.onnx")
+def _apply_mistakes(mistakes: list[str], write_file, stray) -> None:
+    """Write the config and policy with ``mistakes`` in them through ``write_file``."""
+    write_file("roofgate.yaml", CONFIG)
+    write_file("policies/p.yaml", POLICY.format(policy_extra="", rule_extra=""))
     for name in mistakes:
         kind, text = MISTAKES[name]()
         if kind == "config":
-            write(root, "roofgate.yaml", text)
+            write_file("roofgate.yaml", text)
         elif kind == "policy":
-            write(root, "policies/p.yaml", text)
+            write_file("policies/p.yaml", text)
         else:
-            save_model(fc_model(32), root / "scratch/stray.onnx")
-    if command == "evaluate" and mistakes == ["model outside groups"]:
-        return  # evaluate judges the named files only: a stray file elsewhere is no mistake
-    args = ["audit"] if command == "audit" else ["evaluate", "models/a.onnx"]
-    old = Path.cwd()
-    import os
+            stray()
 
+
+def _run_in(root: Path, args: list[str]):
+    old = Path.cwd()
     os.chdir(root)
     try:
-        result = invoke(args)
+        return invoke(args)
     finally:
         os.chdir(old)
+
+
+def _check_repo(root: Path, mistakes: list[str]) -> None:
+    """A real git repository: the mistakes on the target branch (check reads its rules at
+    the merge base), a pull request that grows the model (and adds a stray one)."""
+    repo = Repo(root)
+    save_model(fc_model(64), root / "models/a.onnx")
+    strays: list[bool] = []
+    _apply_mistakes(mistakes, repo.write, lambda: strays.append(True))
+    repo.commit("base with the mistakes")
+    repo.branch("pr")
+    save_model(fc_model(96), root / "models/a.onnx")
+    if strays:  # a changed .onnx outside every model group
+        save_model(fc_model(32), root / "scratch/stray.onnx")
+    repo.commit("grow")
+
+
+@settings(max_examples=20, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(mistakes=st.lists(st.sampled_from(sorted(MISTAKES)), min_size=1, max_size=3, unique=True),
+       command=st.sampled_from(["audit", "evaluate", "check"]))
+def test_no_run_with_a_mistake_exits_0(tmp_path_factory, mistakes: list[str],
+                                       command: str) -> None:
+    root = tmp_path_factory.mktemp("mistake")
+    if command == "check":
+        _check_repo(root, mistakes)
+        result = _run_in(root, ["check", "--base", "main"])
+    else:
+        save_model(fc_model(64), root / "models/a.onnx")
+        _apply_mistakes(mistakes, lambda path, text: write(root, path, text),
+                        lambda: save_model(fc_model(32), root / "scratch/stray.onnx"))
+        if command == "evaluate" and mistakes == ["model outside groups"]:
+            return  # evaluate judges the named files only: a stray file elsewhere is no mistake
+        result = _run_in(root, ["audit"] if command == "audit" else ["evaluate", "models/a.onnx"])
     assert result.exit_code in (1, 2), (mistakes, command, result.output)
     assert "Traceback" not in result.output
+
+
+def test_check_without_a_mistake_exits_0(tmp_path: Path) -> None:
+    """The negative control of the property above: the same repository, no mistake."""
+    _check_repo(tmp_path / "repo", [])
+    result = _run_in(tmp_path / "repo", ["check", "--base", "main"])
+    assert result.exit_code == 0, result.output
 
 
 # --- unknown is never zero: an unbound dim in every command ------------------------------

@@ -26,6 +26,8 @@ from gate.errors import InputError
 from gate.model.loader import load_model
 from gate.ops import cost_function_for
 from gate.ops.contrib_attention import ROTARY_OPS_PER_ROTATED_ELEMENT
+from gate.ops.normalization import SOFTMAX_OPS_PER_ELEMENT
+from gate.profile import profile_model
 from tests.opkit import (
     assert_fused_equals_decomposition,
     graph_model,
@@ -45,11 +47,9 @@ def _w(*shape):
     return RNG.standard_normal(shape).astype(np.float32)
 
 
-def _check(tmp_path, fused, parts, feeds=None, params_equal=True):
+def _check(tmp_path, fused, parts, feeds=None):
     fused_totals = profile_totals(fused, tmp_path, "fused")
     parts_totals = profile_totals(parts, tmp_path, "parts")
-    if not params_equal:  # packed storage: bytes equal, element counts differ (see module)
-        fused_totals["params"] = parts_totals["params"]
     assert_fused_equals_decomposition(fused_totals, parts_totals)
     assert fused_totals["macs"] > 0 or fused_totals["flops"] > 0
     if feeds is not None:  # execution trace of the decomposition
@@ -116,8 +116,36 @@ def test_matmul_nbits_is_blockwise_dequantize_matmul(tmp_path):
                          helper.make_node("Add", ["m", "bias"], ["Y"])], {"A": (2, 5, k)}, ["Y"],
                         {"wscale": np.ones((k // block, n), np.float32), "bias": _w(n)})
     parts.graph.initializer.append(weight)
-    totals = _check(tmp_path, fused, parts, params_equal=False)
+    totals = _check(tmp_path, fused, parts)  # parameter count and bytes equal, not packed
     assert totals["macs"] == 2 * 5 * k * n
+    # N x K logical weights at 4 bits (ContribOperators.md: B holds N x K bits-wide values),
+    # plus the bias's N floats; scales are quantization metadata
+    assert totals["params"] == k * n + n
+    assert totals["param_bytes"] == k * n // 2 + 4 * n
+
+
+@pytest.mark.parametrize("bits", [2, 4, 8])
+def test_matmul_nbits_counts_logical_weights_at_its_bit_width(tmp_path, bits):
+    """K=48 in blocks of 16 (3 blocks a row), N=8: N x K weights at ``bits`` bits each,
+    whatever the packing; the negative control is a packed tensor of the wrong size,
+    counted as stored (and the op unmodelled) rather than guessed."""
+    k, n, block = 48, 8, 16
+    packed = np.zeros((n, k // block, block * bits // 8), np.uint8)
+    model = graph_model([_ms("MatMulNBits", ["A", "Bq", "scales"], ["Y"], K=k, N=n, bits=bits,
+                             block_size=block)], {"A": (1, k)}, ["Y"],
+                        {"Bq": packed, "scales": np.ones(n * (k // block), np.float32)},
+                        contrib=True)
+    totals = profile_totals(model, tmp_path, f"nbits{bits}")
+    assert totals["params"] == n * k
+    assert totals["param_bytes"] == n * k * bits // 8 == packed.nbytes
+    assert totals["macs"] == k * n
+    wrong = np.zeros((n, k // block, block * bits // 8 + 1), np.uint8)  # one byte too many
+    model.graph.initializer[0].CopyFrom(onnx.numpy_helper.from_array(wrong, "Bq"))
+    onnx.save(model, str(tmp_path / "wrong.onnx"))
+    profile = profile_model(load_model(tmp_path / "wrong.onnx"))
+    (layer,) = profile.layers
+    assert not layer.modelled and "does not hold" in layer.unmodelled_reason
+    assert profile.total_param_count == wrong.size  # as stored: no logical reading guessed
 
 
 # --- fused elementwise and normalisation ------------------------------------
@@ -387,6 +415,84 @@ def test_group_query_attention_rotary_adds_the_rotary_embedding_of_q_and_k():
     work = cost_function_for(MS, "GroupQueryAttention")
     rotated = b * s * (heads + kv_heads) * head
     assert work(rotary).flops - work(plain).flops == ROTARY_OPS_PER_ROTATED_ELEMENT * rotated
+
+
+def _gqa_pair(window: int):
+    """GroupQueryAttention with a sliding window and the ONNX Attention (opset 25) that
+    masks the same scores: causal plus ``left_window_size``."""
+    b, s, past, heads, kv_heads, head = 1, 3, 5, 4, 2, 8
+    shapes = {"Q": (b, s, heads * head), "K": (b, s, kv_heads * head),
+              "V": (b, s, kv_heads * head), "past_key": (b, kv_heads, past, head),
+              "past_value": (b, kv_heads, past, head), "seqlens_k": (b,), "total_len": ()}
+    dtypes = {"seqlens_k": TensorProto.INT32, "total_len": TensorProto.INT32}
+    outputs = ["Y", "present_key", "present_value"]
+    fused = graph_model([_ms("GroupQueryAttention", ["Q", "K", "V", "past_key", "past_value",
+                                                     "seqlens_k", "total_len"], outputs,
+                             num_heads=heads, kv_num_heads=kv_heads, local_window_size=window)],
+                        shapes, outputs, contrib=True, opset=25, dtypes=dtypes)
+    parts = graph_model([helper.make_node("Attention", ["Q", "K", "V", "", "past_key",
+                                                        "past_value"], outputs,
+                                          q_num_heads=heads, kv_num_heads=kv_heads, is_causal=1,
+                                          left_window_size=window)],
+                        shapes, outputs, opset=25, dtypes=dtypes)
+    return fused, parts
+
+
+def test_group_query_attention_sliding_window_is_windowed_onnx_attention(tmp_path):
+    # Source: ONNX Attention (opset 25) left_window_size; the window masks scores that a
+    # plain kernel still computes, so both count every score (an upper bound).
+    fused, parts = _gqa_pair(window=2)
+    _check(tmp_path, fused, parts)
+
+
+def _gqa_node(**attrs):
+    b, s, heads, kv_heads, head = 1, 3, 4, 2, 8
+    inputs = [(b, s, heads * head), (b, s, kv_heads * head), (b, s, kv_heads * head),
+              None, None, (b,), (), (16, head // 2), (16, head // 2)]
+    return node("GroupQueryAttention", inputs, [(b, s, heads * head)],
+                {"num_heads": heads, "kv_num_heads": kv_heads, **attrs})
+
+
+def test_group_query_attention_smooth_softmax_adds_one_logit_per_row():
+    """The zero logit (from memory of the contrib-op documentation) is one more softmax
+    element per query row and head: b * s * heads rows of Softmax over kv + 1 elements."""
+    work = cost_function_for(MS, "GroupQueryAttention")
+    plain, smooth = work(_gqa_node()), work(_gqa_node(smooth_softmax=1))
+    assert smooth.macs == plain.macs
+    assert smooth.flops - plain.flops == SOFTMAX_OPS_PER_ELEMENT * 1 * 3 * 4
+
+
+def _ms_attention_node(past: int = 0, **attrs):
+    b, s, hidden, heads = 2, 3, 16, 4
+    inputs = [(b, s, hidden), (hidden, 3 * hidden), (3 * hidden,), None,
+              (2, b, heads, past, hidden // heads) if past else None]
+    total = past if attrs.get("past_present_share_buffer") else past + s
+    outputs = [(b, s, hidden), (2, b, heads, total, hidden // heads)]
+    return node("Attention", inputs, outputs, {"num_heads": heads, **attrs}, params=(1, 2))
+
+
+def test_ms_attention_do_rotary_adds_the_rotary_embedding_of_q_and_k():
+    work = cost_function_for(MS, "Attention")
+    plain, rotary = work(_ms_attention_node()), work(_ms_attention_node(do_rotary=1))
+    assert rotary.macs == plain.macs
+    # RotaryEmbedding (ONNX spec: 2 multiplies + 1 add per rotated element) of Q and K over
+    # the whole head (rotary_embedding_dim defaults to the head size: from memory)
+    assert rotary.flops - plain.flops == ROTARY_OPS_PER_ROTATED_ELEMENT * 2 * 3 * (4 + 4) * 4
+    partial = work(_ms_attention_node(do_rotary=1, rotary_embedding_dim=2))
+    assert partial.flops - plain.flops == ROTARY_OPS_PER_ROTATED_ELEMENT * 2 * 3 * (4 + 4) * 2
+
+
+def test_ms_attention_shared_buffer_attends_over_the_whole_buffer():
+    """A shared cache buffer of 8 positions is attended in full (its filled length is a
+    run-time input: an upper bound), like a separate past of 8 - 3 = 5 plus 3 new tokens;
+    only the new tokens are written into it."""
+    work = cost_function_for(MS, "Attention")
+    shared = work(_ms_attention_node(past=8, past_present_share_buffer=1))
+    separate = work(_ms_attention_node(past=5))
+    assert shared.macs == separate.macs and shared.flops == separate.flops
+    new_tokens = 2 * 3 * 4 * (4 + 4)  # K and V of the new tokens, every head
+    whole_present = 2 * 2 * 4 * 8 * 4  # a separate present is written in full: [2, b, n, 8, h]
+    assert shared.vector_ops - separate.vector_ops == new_tokens - whole_present
 
 
 # --- rotary embedding ----------------------------------------------------------

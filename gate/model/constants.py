@@ -35,7 +35,7 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper
 
-from gate.model.graph import ParamSource, TensorInfo, stored_as_itself
+from gate.model.graph import Node, ParamSource, StoredTensor, TensorInfo, stored_as_itself
 from gate.model.shape_rules import evaluate_node
 
 CONST_VALUE_LIMIT = 64
@@ -94,6 +94,29 @@ def is_parameter(op_type: str, position: int, tensor: TensorInfo | None,
     if position in QUANT_METADATA_POSITIONS.get(op_type, ()):
         return False
     return not is_metadata(tensor, source)
+
+
+def logical_source(node: Node, position: int, source: ParamSource) -> ParamSource:
+    """A packed weight as the logical weights it holds: a ``com.microsoft`` MatMulNBits
+    weight (input 1) is stored as uint8 ``[N, ceil(K / block_size), block_size * bits /
+    8]``, two 4-bit values per byte; its parameters are the N x K weights of its
+    decomposition (DequantizeLinear of an int4 ``[K, N]`` tensor + MatMul), each stored at
+    ``bits`` bits. The layout is from memory (public contrib-op documentation); a tensor
+    that does not hold exactly that many bytes is left as stored. The padding of a last
+    partial block (K not a multiple of block_size) is not counted: under one block per row.
+    """
+    if node.op_type != "MatMulNBits" or node.domain != "com.microsoft" or position != 1:
+        return source
+    k, n = int(node.attr("K", 0)), int(node.attr("N", 0))
+    bits, block = int(node.attr("bits", 4)), int(node.attr("block_size", 0))
+    if min(k, n, bits, block) < 1 or len(source.stored) != 1 or (block * bits) % 8:
+        return source
+    stored = source.stored[0]
+    packed = n * -(-k // block) * (block * bits // 8)
+    if stored.bits != 8 or stored.numel != packed or source.numel != packed:
+        return source
+    logical = StoredTensor(stored.name, n * k, bits, stored.dtype)
+    return ParamSource((logical,), n * k, bits, source.dtype)
 
 
 def folds(proto: onnx.NodeProto, input_names: Sequence[str],

@@ -23,6 +23,7 @@ from collections.abc import Callable, Mapping
 import onnx
 from onnx import AttributeProto, helper, numpy_helper
 
+from gate.model.guards import huge_shape_data
 from gate.model.order import topological_order
 from gate.model.shape_rules import Value, evaluate_node, stored_value
 
@@ -217,6 +218,8 @@ def _infer_with_values(model: onnx.ModelProto, values: Mapping[str, Value],
     scratch.CopyFrom(model)
     _forget_unsized(scratch.graph, declared)
     originals = _substitute(scratch.graph, values)
+    if huge_shape_data(scratch) is not None:
+        return None  # the values would make inference hold a huge vector: keep what is known
     if scratch.ir_version < 4:  # older IR: every initializer must also be a graph input
         scratch.graph.input.extend(helper.make_tensor_value_info(
             c, helper.np_dtype_to_tensor_dtype(values[o].dtype), values[o].shape)

@@ -3,14 +3,16 @@
 Each reuses the scaled dot-product core of ``gate.ops.attention`` and costs its
 decomposition into standard ops:
 
-- ``Attention`` = MatMul(input, packed QKV weights) [+ Add bias] + the ONNX
-  Attention core (``unidirectional`` = causal, ``attention_bias`` and ``mask_index``
-  add to the scores);
+- ``Attention`` = MatMul(input, packed QKV weights) [+ Add bias] [+ RotaryEmbedding of
+  Q and K with ``do_rotary``] + the ONNX Attention core (``unidirectional`` = causal,
+  ``attention_bias`` and ``mask_index`` add to the scores; ``past_present_share_buffer``
+  attends over the whole shared buffer);
 - ``MultiHeadAttention`` = [Add of the packed Q/K/V bias] + the ONNX Attention core
   (3-D query/key/value, 4-D key/value already split into heads, packed QKV
   ``[B, S, N, 3, H]`` or packed KV ``[B, L, N, 2, H]``);
 - ``GroupQueryAttention`` = [rotary embedding of Q and K] + the causal grouped-query
-  core over the present cache;
+  core over the present cache (a ``local_window_size`` window masks the same scores;
+  ``smooth_softmax`` adds one zero logit per softmax row);
 - ``RotaryEmbedding`` (both domains) = per rotated element x1*cos - x2*sin (or
   x2*cos + x1*sin): 2 multiplies and 1 add; the cos/sin gathers and the elements
   beyond ``rotary_embedding_dim`` are copies.
@@ -27,8 +29,6 @@ length (past + new tokens, no shared buffer) are from memory.
 
 from __future__ import annotations
 
-from onnx import TypeProto
-
 from gate.model.graph import Node
 from gate.ops._common import add_work, arithmetic, input_shape, movement, numel
 from gate.ops.attention import (
@@ -38,8 +38,8 @@ from gate.ops.attention import (
     split_heads,
     written_elements,
 )
-from gate.ops.contrib_shapes import Facts, add_dims, same_as, shape_rule, tensor_type, times_dims
 from gate.ops.matmul import orient_gemm
+from gate.ops.normalization import SOFTMAX_OPS_PER_ELEMENT
 from gate.ops.registry import OpWork, Unmodelled, register
 
 MS = "com.microsoft"
@@ -68,10 +68,20 @@ def _ms_attention_sizes(node: Node) -> tuple[int, int, int]:
     return sizes[0], sizes[2], heads
 
 
+def _rotary_ops(dims: AttentionDims, rotated: int) -> int:
+    """RotaryEmbedding of the new query and key tokens (the past is stored rotated)."""
+    if rotated < 2 or rotated % 2 or rotated > dims.head_size:
+        raise Unmodelled(f"rotary dim {rotated} does not fit head size {dims.head_size}")
+    return (ROTARY_OPS_PER_ROTATED_ELEMENT * dims.batch * dims.q_len
+            * (dims.q_heads + dims.kv_heads) * rotated)
+
+
 @register("Attention", domain=MS)
 def ms_attention(node: Node) -> OpWork:
-    if node.attr("do_rotary", 0) or node.attr("past_present_share_buffer", 0):
-        raise Unmodelled("Attention with do_rotary or past_present_share_buffer is not modelled")
+    """``do_rotary`` adds the RotaryEmbedding of Q and K (``rotary_embedding_dim``, default
+    the head size: from memory); ``past_present_share_buffer`` attends over the whole
+    shared cache buffer (an upper bound: its filled length is a run-time input) and
+    writes only the new tokens into it."""
     x = input_shape(node, 0, "input")
     if len(x) != 3:
         raise Unmodelled(f"Attention input must be [batch, seq, hidden], got {x}")
@@ -80,12 +90,20 @@ def ms_attention(node: Node) -> OpWork:
     projection = orient_gemm(batch * seq, hidden_in, 2 * qk_hidden + v_hidden, 1, False,
                              node.is_param(1), fold_batch=True)
     bias = projection.m * projection.n if node.input(2) is not None else 0
+    shared = bool(node.attr("past_present_share_buffer", 0))
     past = ranked_shape(node, 4, "past", 5)[3] if node.input(4) is not None else 0
-    dims = AttentionDims(batch, heads, heads, seq, past + seq, split_heads(qk_hidden, heads, "Q"),
+    if shared and not past:
+        raise Unmodelled("Attention past_present_share_buffer without a past buffer")
+    attended = past if shared else past + seq
+    dims = AttentionDims(batch, heads, heads, seq, attended, split_heads(qk_hidden, heads, "Q"),
                          split_heads(v_hidden, heads, "V"))
     core = _core(dims, _bias_terms(node, (3, 5), bool(node.attr("unidirectional", 0))))
-    return add_work([arithmetic(bias, macs=projection.macs, gemms=(projection,)), core,
-                     movement(written_elements(node, (1,)))])
+    rotary = (_rotary_ops(dims, int(node.attr("rotary_embedding_dim", 0)) or dims.head_size)
+              if node.attr("do_rotary", 0) else 0)
+    copies = (batch * seq * heads * (dims.head_size + dims.v_head_size) if shared
+              else written_elements(node, (1,)))
+    return add_work([arithmetic(bias + rotary, macs=projection.macs, gemms=(projection,)), core,
+                     movement(copies)])
 
 
 def _mha_dims(node: Node) -> tuple[AttentionDims, int]:
@@ -135,17 +153,24 @@ def _gqa_dims(node: Node) -> AttentionDims:
 
 @register("GroupQueryAttention", domain=MS)
 def group_query_attention(node: Node) -> OpWork:
-    """Always causal; the cache is taken to hold exactly the past tokens (no shared buffer)."""
-    if int(node.attr("local_window_size", -1)) >= 0 or node.attr("smooth_softmax", 0):
-        raise Unmodelled("GroupQueryAttention local_window_size/smooth_softmax are not modelled")
+    """Always causal; the cache is taken to hold exactly the past tokens (no shared buffer).
+
+    ``local_window_size`` narrows the causal mask to a sliding window: the same one bias
+    per score, every score still computed (an upper bound, as for ONNX Attention's
+    ``left_window_size``). ``smooth_softmax`` adds a zero logit to each softmax row (from
+    memory): one more softmax element per query row and head.
+    """
     dims = _gqa_dims(node)
     rotary = 0
     if node.attr("do_rotary", 0):
-        rotated = 2 * ranked_shape(node, 7, "cos_cache", 2)[1]
-        rotary = ROTARY_OPS_PER_ROTATED_ELEMENT * dims.batch * dims.q_len * (
-            dims.q_heads + dims.kv_heads) * rotated
+        rotary = _rotary_ops(dims, 2 * ranked_shape(node, 7, "cos_cache", 2)[1])
     core = _core(dims, 1, softcap=float(node.attr("softcap", 0.0)) > 0.0)
-    return add_work([arithmetic(rotary), core, movement(written_elements(node, (1, 2)))])
+    smooth = (SOFTMAX_OPS_PER_ELEMENT * dims.batch * dims.q_heads * dims.q_len
+              if node.attr("smooth_softmax", 0) else 0)
+    windowed = int(node.attr("local_window_size", -1)) >= 0
+    note = "sliding-window scores counted in full (upper bound)" if windowed else ""
+    return add_work([arithmetic(rotary + smooth), core,
+                     movement(written_elements(node, (1, 2)), note=note)])
 
 
 def _rotary_work(node: Node, cos_pos: int) -> OpWork:
@@ -178,63 +203,3 @@ def ms_rotary_embedding(node: Node) -> OpWork:
 @register("RotaryEmbedding")
 def rotary_embedding(node: Node) -> OpWork:
     return _rotary_work(node, cos_pos=1)
-
-
-# --- output shapes (onnx shape inference knows no com.microsoft op)
-
-shape_rule("RotaryEmbedding")(same_as(0))
-
-
-@shape_rule("Attention")
-def _ms_attention_shape(facts: Facts) -> list[TypeProto | None]:
-    x, weights, past = facts.dims(0), facts.dims(1), facts.dims(4)
-    heads = int(facts.attr("num_heads", 0))
-    sizes = list(facts.attr("qkv_hidden_sizes", []))
-    if x is None or len(x) != 3 or weights is None or len(weights) != 2 or heads < 1:
-        return [None, None]
-    if not sizes and isinstance(weights[1], int):
-        sizes = [weights[1] // 3] * 3
-    if len(sizes) != 3:
-        return [None, None]
-    total = add_dims(past[3], x[1]) if past is not None and len(past) == 5 else x[1]
-    present = [2, x[0], heads, total, sizes[1] // heads]
-    return [tensor_type(facts.elem(0), [x[0], x[1], sizes[2]]),
-            tensor_type(facts.elem(0), present)]
-
-
-@shape_rule("MultiHeadAttention")
-def _mha_shape(facts: Facts) -> list[TypeProto | None]:
-    q, k, v, past = facts.dims(0), facts.dims(1), facts.dims(2), facts.dims(6)
-    heads = int(facts.attr("num_heads", 0))
-    if q is None or heads < 1:
-        return [None]
-    if len(q) == 5:
-        kv_len, head, v_head, out = q[1], q[4], q[4], times_dims(q[2], q[4])
-    elif k is not None and len(k) == 5:
-        kv_len, v_head, head = k[1], k[4], k[4]
-        out = times_dims(heads, k[4])
-    elif k is not None and v is not None and len(k) in (3, 4) and len(k) == len(v):
-        four = len(k) == 4
-        kv_len = k[2] if four else k[1]
-        v_head = v[3] if four else (v[2] // heads if isinstance(v[2], int) else None)
-        head = k[3] if four else (k[2] // heads if isinstance(k[2], int) else None)
-        out = times_dims(heads, v_head)
-    else:
-        return [None]
-    total = add_dims(past[2], kv_len) if past is not None and len(past) == 4 else kv_len
-    return [tensor_type(facts.elem(0), [q[0], q[1], out]),
-            tensor_type(facts.elem(0), [q[0], heads, total, head]),
-            tensor_type(facts.elem(0), [q[0], heads, total, v_head])]
-
-
-@shape_rule("GroupQueryAttention")
-def _gqa_shape(facts: Facts) -> list[TypeProto | None]:
-    q, past = facts.dims(0), facts.dims(3)
-    heads, kv_heads = int(facts.attr("num_heads", 0)), int(facts.attr("kv_num_heads", 0))
-    if q is None or len(q) != 3 or heads < 1 or kv_heads < 1 or not isinstance(q[2], int):
-        return [None]
-    packed = facts.tensor(1) is None
-    head = q[2] // (heads + 2 * kv_heads) if packed else q[2] // heads
-    total = add_dims(past[2], q[1]) if past is not None and len(past) == 4 else q[1]
-    present = tensor_type(facts.elem(0), [q[0], kv_heads, total, head])
-    return [tensor_type(facts.elem(0), [q[0], q[1], heads * head]), present, present]

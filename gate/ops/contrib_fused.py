@@ -12,17 +12,16 @@ Each costs exactly its decomposition into standard ONNX ops (the tests build bot
 Input orders and attributes follow the public contrib-op documentation
 (ContribOperators.md); the ``activation``/``activation_params`` names of FusedConv
 and FusedGemm and MatMulNBits' packed layout ``[N, K / block_size, block_size *
-bits / 8]`` are from memory. MatMulNBits' weight bytes equal the decomposition's
-(4-bit weights as 4 bits); its parameter *count* is the packed uint8 elements, since
-roofgate counts initializer elements and never reads the packing; its scales and zero
-points are quantization metadata, as a DequantizeLinear's are.
+bits / 8]`` are from memory. MatMulNBits' parameters are those of the decomposition:
+N x K weights at ``bits`` bits each (``gate.model.constants.logical_source`` reads the
+packed uint8 tensor as the logical weights it holds), so count and bytes both equal
+the int4 ``[K, N]`` weight's; its scales and zero points are quantization metadata, as
+a DequantizeLinear's are.
 """
 
 from __future__ import annotations
 
 from dataclasses import replace
-
-from onnx import TypeProto
 
 from gate.model.graph import Node, TensorInfo
 from gate.ops._common import (
@@ -32,12 +31,6 @@ from gate.ops._common import (
     input_shape,
     numel,
     str_attr,
-)
-from gate.ops.contrib_shapes import (
-    Facts,
-    as_standard,
-    shape_rule,
-    tensor_type,
 )
 from gate.ops.conv import conv_work
 from gate.ops.elementwise import UNARY_OPS_PER_ELEMENT
@@ -118,33 +111,3 @@ def matmul_nbits(node: Node) -> OpWork:
     shape = GemmShape(m=rows, k=k, n=n, weights_are_params=node.is_param(1))
     bias = rows * n if node.input(5) is not None else 0
     return arithmetic(bias, macs=shape.macs, gemms=(shape,))
-
-
-# --- output shapes (onnx shape inference knows no com.microsoft op)
-
-shape_rule("FusedConv")(as_standard("Conv", (0, 1, 2)))
-shape_rule("FusedGemm")(as_standard("Gemm", (0, 1, 2)))
-
-
-_MATMUL_SHAPE = as_standard("MatMul", (0, 1))
-
-
-@shape_rule("FusedMatMul")
-def _fused_matmul_shape(facts: Facts) -> list[TypeProto | None]:
-    """MatMul's output shape on the operands as transposed by transA/transB."""
-    for position, flag in ((0, "transA"), (1, "transB")):
-        dims = facts.dims(position)
-        if facts.attr(flag, 0) and dims is not None and len(dims) >= 2:
-            swapped = [*dims[:-2], dims[-1], dims[-2]]
-            facts = facts.with_input(position, tensor_type(facts.elem(position), swapped))
-    return _MATMUL_SHAPE(facts)
-
-
-@shape_rule("MatMulNBits")
-def _matmul_nbits_shape(facts: Facts) -> list[TypeProto | None]:
-    a = facts.dims(0)
-    n = int(facts.attr("N", 0))
-    if a is None or n < 1:
-        return [None]
-    return [tensor_type(facts.elem(0), [*a[:-1], n])]
-

@@ -13,8 +13,11 @@ pattern matches nothing this run could ever judge is a configuration error
   ONNX operator set) plus the op types of the run, so a rule for an op that a
   change merely did not contain is no error, while ``Convv`` is.
 
-Waiver scopes are not checked here: a waiver that covers nothing is already
-reported as unused, and it can only ever let less through.
+A waiver's ``targets`` and ``models`` are checked the same way: a waiver whose
+scope matches nothing this run could judge is a typo (or names a model or target
+since renamed), and its author believes a finding is waived that is not. Its
+``layers`` are not checked here (layer names are only known after analysis; a
+waiver that matched no finding is reported as unused).
 """
 
 from __future__ import annotations
@@ -25,6 +28,9 @@ from functools import lru_cache
 
 from gate.policy.globs import match_any, match_model
 from gate.policy.spec import Policy
+
+_RULE_FIX = "fix the pattern (a scope that matches nothing switches the rule off)"
+_WAIVER_FIX = "fix the pattern (a waiver that matches nothing waives nothing) or remove it"
 
 
 def scope_problems(policies: Sequence[Policy], *, targets: Iterable[str],
@@ -41,7 +47,14 @@ def scope_problems(policies: Sequence[Policy], *, targets: Iterable[str],
             problems += _unmatched(where, "targets", rule.scope.targets, target_set, _name_match)
             problems += _unmatched(where, "models", rule.scope.models, model_set, match_model)
             problems += _unmatched(where, "op_types", rule.scope.op_types, ops, _name_match)
+        for waiver in policy.waivers:
+            where = f"{policy.path}:{waiver.line}: waivers[{waiver.rule_id}]"
+            problems += _unmatched(where, "targets", waiver.scope.targets, target_set,
+                                   _name_match, _WAIVER_FIX)
+            problems += _unmatched(where, "models", waiver.scope.models, model_set, match_model,
+                                   _WAIVER_FIX)
     return problems
+
 
 
 def _name_match(pattern: str, name: str) -> bool:
@@ -49,7 +62,7 @@ def _name_match(pattern: str, name: str) -> bool:
 
 
 def _unmatched(where: str, key: str, patterns: Sequence[str], known: Sequence[str],
-               matches: Callable[[str, str], bool]) -> list[str]:
+               matches: Callable[[str, str], bool], fix: str = _RULE_FIX) -> list[str]:
     out = []
     for pattern in patterns:
         if any(matches(pattern, name) for name in known):
@@ -57,7 +70,7 @@ def _unmatched(where: str, key: str, patterns: Sequence[str], known: Sequence[st
         what = {"targets": "target of this run", "models": "model file of this run",
                 "op_types": "known op type"}[key]
         out.append(f"{where}.{key}: '{pattern}' matches no {what}{_did_you_mean(pattern, known)}; "
-                   "fix the pattern (a scope that matches nothing switches the rule off)")
+                   f"{fix}")
     return out
 
 
