@@ -10,8 +10,9 @@ N times one target.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields
 from math import ceil
+from typing import Any, TypeVar
 
 from gate.errors import InputError, InternalError
 from gate.fusion import NO_FUSION, FusedGroup, FusionPlan, plan_fusion
@@ -19,6 +20,10 @@ from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
 from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
 from gate.targets.spec import DATAFLOWS, EngineSpec, TargetProfile, normal_precision
+
+# The engine of a layer run inside a fused group (its cost is on the group's head); distinct
+# from the profile role "qdq-absorbed" (a quantize/dequantize node absorbed by precision).
+FUSION_MEMBER = "fusion-member"
 
 
 @dataclass(frozen=True, slots=True)
@@ -65,7 +70,7 @@ class LayerCost:
 
     index: int
     name: str
-    engine: str  # "array", "vector", "host", "fused" (costed in its group's head) or "none"
+    engine: str  # "array", "vector", "host", FUSION_MEMBER (costed in its group's head), "none"
     cycles: int | None  # engine cycles for the compute (0 for none)
     utilization: float | None  # useful MACs / (PE count x MACs per PE per cycle x cycles); 0 off the array
     compute_s: float | None
@@ -268,7 +273,7 @@ def _fused_member(layer: LayerProfile, head_name: str) -> LayerCost:
     """No time or energy of its own; its tensors stream through the head's output path, so
     the head's buffer fit applies (it is reported as fitting)."""
     return LayerCost(
-        index=layer.index, name=layer.name, engine="fused", cycles=0, utilization=0.0,
+        index=layer.index, name=layer.name, engine=FUSION_MEMBER, cycles=0, utilization=0.0,
         compute_s=0.0, memory_s=0.0, overhead_s=0.0, latency_s=0.0, bound="none",
         param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=True,
         activations_fit=True, energy=_NO_ENERGY, fused_into=head_name)
@@ -287,13 +292,29 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
     """
     members = [layers[i] for i in group.members]
     kept = [_kept_params(m, m.index in group.folded) for m in members]
-    as_one = replace(
+    as_one = _replaced(
         head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
         param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
         param_new_bytes=head.first_read_param_bytes + sum(new for _, new, _ in kept),
         param_count=head.param_count + sum(count for _, _, count in kept))
     cost = _cost_layer(as_one, ctx, epilogue_ops=group.epilogue_ops)
-    return replace(cost, fused_ops=tuple(m.op_type for m in members))
+    return _replaced(cost, fused_ops=tuple(m.op_type for m in members))
+
+
+def _replaced(record: _Record, **changes: Any) -> _Record:
+    """``dataclasses.replace`` with the field names looked up once per class (it is
+    called twice per fused group, and ``replace`` introspects the fields every call)."""
+    cls = type(record)
+    names = _FIELD_NAMES.get(cls)
+    if names is None:
+        names = _FIELD_NAMES[cls] = tuple(f.name for f in fields(cls) if f.init)
+    values = {name: getattr(record, name) for name in names}
+    values.update(changes)
+    return cls(**values)
+
+
+_Record = TypeVar("_Record", LayerProfile, LayerCost)
+_FIELD_NAMES: dict[type, tuple[str, ...]] = {}
 
 
 def _kept_params(member: LayerProfile, folded: bool) -> tuple[int, int, int]:

@@ -15,7 +15,7 @@ elementwise epilogue ops; optionally a constant Pad in front of a conv. Every
 intermediate tensor must have exactly one consumer and not be a graph output
 (otherwise it has to be written out anyway), and each op must keep the element
 count (no broadcast to a larger tensor). A chain runs through view layers and
-layers the profile already costs as nothing (a quantize/dequantize pair fused into
+layers the profile already costs as nothing (a quantize/dequantize pair absorbed by
 its producer, as QDQ exports put around every conv); they join the group only when
 a fold or epilogue op follows them.
 """
@@ -74,6 +74,7 @@ def plan_fusion(profile: ModelProfile, spec: FusionSpec,
             layer.index != i for i, layer in enumerate(profile.layers)):
         return NO_FUSION  # a hand-built profile without its graph: nothing to walk
     wiring = _Wiring.of(profile.model.graph)
+    engine_of = _remembered(engine_of)
     taken: set[int] = set()
     groups = []
     for layer in profile.layers:
@@ -89,6 +90,18 @@ def plan_fusion(profile: ModelProfile, spec: FusionSpec,
         group_of_head=MappingProxyType({g.head: g for g in groups}),
         head_of_member=MappingProxyType({m: g.head for g in groups for m in g.members}),
     )
+
+
+def _remembered(engine_of: Callable[[LayerProfile], str]) -> Callable[[LayerProfile], str]:
+    """``engine_of`` asked once per layer (a layer is asked as a head and as a member)."""
+    engines: dict[int, str] = {}
+
+    def remembered(layer: LayerProfile) -> str:
+        engine = engines.get(layer.index)
+        if engine is None:
+            engine = engines[layer.index] = engine_of(layer)
+        return engine
+    return remembered
 
 
 # ------------------------------------------------------------------ the graph's wiring
@@ -170,7 +183,7 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
     if pad is not None:
         chain.members.append(pad)
     last, previous = head, nodes[head.index]  # the last layer with work; the last node
-    passed: list[int] = []  # free layers (views, fused Q/DQ) waiting for a member after them
+    passed: list[int] = []  # free layers (views, absorbed Q/DQ) waiting for a member after them
     tensor = _single_output(previous)
     while tensor is not None:
         position = wiring.sole_consumer(tensor)

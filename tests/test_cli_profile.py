@@ -62,7 +62,35 @@ def test_json_is_deterministic_and_matches_profile(cnn: Path) -> None:
     assert conv["inputs"][1] == {"name": "w1", "shape": [8, 3, 3, 3], "dtype": "FLOAT"}
     assert conv["macs"] == expected.layers[0].macs and conv["modelled"] is True
     assert data["coverage"]["node_share"] == 1.0 and data["targets"] == []
-    assert first.stdout == json.dumps(data, sort_keys=True, indent=2) + "\n"  # sorted keys
+    assert first.stdout == _expected_layout(data)
+
+
+def _expected_layout(data: dict) -> str:
+    """json.dumps(indent=2, sort_keys=True), except that every element of a ``layers`` list
+    is one line (``, `` and ``: `` separators, keys sorted)."""
+    rows: dict[str, str] = {}
+
+    def placeholders(items: list) -> list:
+        marks = []
+        for item in items:
+            mark = f"<row {len(rows)}>"
+            rows[json.dumps(mark)] = json.dumps(item, sort_keys=True, separators=(", ", ": "))
+            marks.append(mark)
+        return marks
+
+    shaped = {**data, "layers": placeholders(data["layers"]),
+              "targets": [{**t, "layers": placeholders(t["layers"])} for t in data["targets"]]}
+    text = json.dumps(shaped, sort_keys=True, indent=2)
+    for mark, row in rows.items():
+        text = text.replace(mark, row)
+    return text + "\n"
+
+
+def test_json_layout_with_targets(cnn: Path) -> None:
+    result = _run(str(cnn), "--dim", "batch=2", "--format", "json", "-t", "ws-64x64-4mib")
+    data = json.loads(result.stdout)
+    assert len(data["targets"][0]["layers"]) == len(data["layers"]) == 9
+    assert result.stdout == _expected_layout(data)
 
 
 def test_csv_fields_and_rows(cnn: Path) -> None:
@@ -224,11 +252,13 @@ def test_table_of_a_hundred_layers_is_aligned_and_shows_coverage(tmp_path: Path)
     assert done.exit_code == 0, done.output
     lines = done.stdout.splitlines()
     header = next(i for i, line in enumerate(lines) if line.startswith("#   layer"))
-    assert all(f"-{n}-" in lines[header - 1] for n in names)  # a named group per target
+    # a named group per target, above the two header lines (labels spelled out in full)
+    assert all(f"-{n}-" in lines[header - 2] for n in names)
+    assert "PE" in lines[header - 1].split() and "parameter byte" in lines[header]
     rows = lines[header + 1: header + 101]
     assert [int(r.split()[0]) for r in rows] == list(range(100))
     # right-aligned numeric columns end at the same place on every row
-    util_end = lines[header].index("PE util.") + len("PE util.")
+    util_end = lines[header].index("utilization") + len("utilization")
     assert all(r[util_end - 1] != " " for r in rows)
     # 64 x 64 fp32 weights = 16 KiB; 1 x 64 x 64 MACs = 4.1k (ONNX MatMul spec)
     assert " fp32 " in rows[0]  # precision as deployed, then counts
@@ -237,13 +267,14 @@ def test_table_of_a_hundred_layers_is_aligned_and_shows_coverage(tmp_path: Path)
     custom = [r for r in rows if ".custom" in r]
     assert len(custom) == 33 and all(r.rstrip().endswith("!") for r in custom)
     assert all(not r.rstrip().endswith("!") for r in rows if ".custom" not in r)
-    assert max(len(line) for line in rows) < 220  # names are cut, not allowed to sprawl
+    assert max(len(line) for line in rows) < 225  # names are cut, not allowed to sprawl
     out = done.stdout
     assert "total: 100 layers (67 modelled)" in out
     assert "coverage: 67/100 layers modelled" in out
     assert "unmodelled: vendor.x.Frobnicate x33" in out
     assert out.count("lower bounds: only 67/100 layers") == 2  # once per target
-    assert "! layer not modelled" in out and "MACs/param B = MACs per parameter byte" in out
+    assert "! layer not modelled" in out and "MACs per parameter byte = weight reuse" in out
+    assert "PE util." not in out and "MACs/param B" not in out
     assert any(unit in out for unit in ("us", "ms"))
 
 

@@ -388,3 +388,21 @@ def test_names_that_are_not_utf8_load_with_visible_escapes(tmp_path: Path) -> No
     assert first.name == "\\xffAMEY" and first.outputs[0].name == "\\xe3AMEX"
     assert second.inputs[0].name == "\\xe3AMEX" and second.outputs[0].shape == (1, 4)
     assert any("not valid UTF-8" in w for w in loaded.warnings)
+
+
+def test_the_parsed_proto_is_walked_once_before_inference(tmp_path: Path,
+                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    """Refusing impossible dims, warning about external data, collecting symbolic dims and
+    dropping weight values share one walk of the graphs (each walk of a large proto costs
+    tenths of a second); counted, not timed."""
+    walks = []
+    real = loader_module.all_graph_protos
+
+    def counting(graph: onnx.GraphProto):
+        walks.append(graph.name)
+        return real(graph)
+
+    monkeypatch.setattr(loader_module, "all_graph_protos", counting)
+    loaded = load_model(save(loop_model(3), tmp_path / "loop.onnx"), {"batch": 1})
+    assert walks == [loop_model(3).graph.name]
+    assert loaded.graph.nodes  # the walk still reached every scope the loader needs

@@ -117,3 +117,40 @@ def test_failing_section_comes_first_and_offending_layers_are_marked(tmp_path: P
     assert len(svgs) == 2
     for svg in svgs:  # the roofline ring and the bar-chart row of the widened layer
         assert re.search(r'class="flagged" data-layer="stage4\.block1\.conv2"', svg), svg[:200]
+
+
+def test_blocking_and_not_gated_lead_the_rendered_page(tmp_path: Path) -> None:
+    """The realistic demo result plus a changed model outside every model group: after the
+    browser ran the page, the first section is what blocks the merge (the blocking findings,
+    then the not-gated model), above the overview and every model's section; on screen that
+    section is at the top, marked with the failure colour; and the failing layer is marked in
+    both of its charts."""
+    import re
+    from dataclasses import replace
+
+    import numpy as np
+
+    from gate.report.jsonout import read_result
+    from gate.result import UngatedModel
+
+    golden = Path(__file__).parent / "golden" / "demo_result.json"
+    result = replace(read_result(str(golden)), ungated=(
+        UngatedModel("models/drone/landing.onnx", "no model group covers it"),))
+    page = tmp_path / "lead.html"
+    page.write_text(render(result), encoding="utf-8")
+    done = _run(["--dump-dom"], tmp_path, page)
+    assert done.returncode == 0, done.stderr[-800:]
+    dom = done.stdout
+    sections = re.findall(r'<section class="[^"]*" id="([^"]*)"', dom)
+    assert sections[0] == "blocking" and sections.index("overview") > 0
+    lead = dom[dom.index('id="blocking"'):dom.index("</section>", dom.index('id="blocking"'))]
+    assert lead.index('id="blocking-findings"') < lead.index('id="not-gated"')
+    assert "stage4.block1.conv2" in lead and "models/drone/landing.onnx" in lead
+    flagged = re.findall(r'<svg\b.*?</svg>', dom, re.DOTALL)[:2]  # the failing model's charts
+    assert all('class="flagged" data-layer="stage4.block1.conv2"' in svg for svg in flagged)
+    # on screen: the failure colour (--rg-fail, #b3261e in the light palette) marks the left
+    # edge of the first card, in the top half of a 1200 x 900 window
+    pixels = _screenshot(tmp_path, page, "lead").astype(int)
+    red = np.abs(pixels - np.array([0xb3, 0x26, 0x1e])).sum(axis=2) < 40
+    rows = np.nonzero(red[:, :80].any(axis=1))[0]
+    assert rows.size and rows.min() < 450, rows[:5]

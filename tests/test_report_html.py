@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-from gate.report import all_reporters, charts
+from gate.report import all_reporters, charts, html_layers
 from gate.report.html import REPORTER, render
 from gate.report.text import html_escape
 from gate.result import (
@@ -278,9 +278,14 @@ def test_huge_model_plots_top_layers_and_says_how_many_were_left_out() -> None:
     assert "120 layers with the smallest latency left out" in page
     assert int(bars.get("data-layers-shown")) == charts.MAX_BAR_LAYERS
     assert _bar_ids(bars, "e0-layers-latency") == list(range(charts.MAX_BAR_LAYERS))
-    assert "390 layers more in the table below" in page
+    assert "390 layers more (the table below lists the ones that matter)" in page
     rows = re.search(r"<h3>Layers</h3>.*?<tbody>(.*?)</tbody>", page, re.DOTALL).group(1)
-    assert rows.count("<tr") == 420  # the table keeps every layer
+    # the table lists the slowest layers (no base, no failing rule) and counts the rest
+    assert rows.count("<tr") == html_layers.MAX_SLOWEST_LAYERS
+    listed = re.findall(r'<td class="name">([^<]*)</td>', rows)
+    assert listed == [f"block{i}.conv" for i in range(420 - html_layers.MAX_SLOWEST_LAYERS, 420)]
+    assert ("And 370 more layers, none named by a rule, none among the slowest; full detail "
+            "in the JSON report.") in page
 
 
 def test_rules_and_layer_diff_table(demo_page: str) -> None:
@@ -574,7 +579,7 @@ def test_unknown_figures_are_skipped_and_counted_in_the_captions() -> None:
     assert dead not in labels
     assert "1 layer with an unknown latency not drawn (unknown, not zero)" in page
     # a row whose energy split is partly unknown gets a '?' and no stack at all
-    row = next(k for k, l in enumerate(charts.bar_layers(entry.head)[0])
+    row = next(k for k, l in enumerate(charts.bar_layers(entry.head).layers)
                if l.name == "stage1.conv")
     assert _by_id(bars, f"e0-layers-energy-mac-j-{row}") is None
     assert [t.get("data-layer") for t in bars.iter(f"{SVG_NS}text")
@@ -609,3 +614,110 @@ def test_unknown_figures_read_as_unknown_in_markdown_and_terminal() -> None:
     flat = replace(result, entries=(replace(entry, diff=replace(entry.diff, totals=totals)),))
     line = terminal.render(flat).splitlines()[1]
     assert "unchanged" not in line and "improved" not in line and "(?)" in line
+
+
+# --- bounded: a 200k-layer model gives a small page ---------------------------------------------
+
+BIG_CHAIN_LAYERS = 200_000
+
+
+def _big_chain_result() -> tuple[GateResult, str, str]:
+    """A 200k-layer chain built as records (no ONNX, no profiling: the reporters only see the
+    result): one layer changed against the base, another named by a failing rule."""
+    from gate.result import LayerChange, RunDiff
+
+    template = make_layer("t", 50_000, 2_000, 40_000)
+    names = [f"chain.{k}.conv" for k in range(BIG_CHAIN_LAYERS)]
+    layers = [replace(template, name=name) for name in names]
+    changed, failing = names[123_456], names[7_777]
+    wide = make_layer(changed, 400_000, 300_000, 40_000)
+    head_layers = list(layers)
+    head_layers[123_456] = wide
+    base = replace(make_run("models/chain.onnx", "ws-64x64-4mib", layers[:2]),
+                   layers=tuple(layers))
+    head = replace(base, layers=tuple(head_layers))
+    deltas = {m: (template.metrics[m], wide.metrics[m]) for m in wide.metrics
+              if wide.metrics[m] != template.metrics[m]}
+    changes = tuple(
+        LayerChange("changed" if k == 123_456 else "unchanged", name, name, "Conv", "name",
+                    deltas if k == 123_456 else {})
+        for k, name in enumerate(names))
+    diff = RunDiff(head.model, head.target, {m: (base.metrics[m], head.metrics[m])
+                                             for m in base.metrics}, changes)
+    verdict = make_verdict("params-fit", head.model, head.target, FAIL, layer=failing)
+    entry = Entry(head.model, head.target, head, base, diff, (verdict,))
+    return GateResult("check", ("p.yaml",), (entry,)), changed, failing
+
+
+@pytest.mark.slow
+def test_a_200k_layer_model_gives_an_html_page_under_5_mb_listing_what_matters() -> None:
+    from gate.report import markdown
+
+    result, changed, failing = _big_chain_result()
+    page = render(result)
+    size = len(page.encode("utf-8"))
+    assert size < 5 * 1024 * 1024, size
+    table = page.split("<h3>Layers</h3>")[1].split("</table>")[0]
+    listed = set(re.findall(r'<td class="name">([^<]*)</td>', table))
+    assert failing in listed and changed in listed  # the failing and the changed layer
+    assert len(listed) <= 2 + html_layers.MAX_SLOWEST_LAYERS
+    rest = BIG_CHAIN_LAYERS - len(listed)
+    assert (f"And {rest:,} more layers, unchanged; full detail in the JSON report."
+            in page)
+    assert re.search(r'<tr class="[^"]*flagged[^"]*">(?:(?!</tr>).)*' + re.escape(failing),
+                     table, re.DOTALL)
+    # the pull-request comment of the same run stays under the code host's limit and names
+    # the failing layer (its rule row) and the changed layer, with a count of the rest
+    text = markdown.render(result)
+    assert markdown.comment_size(text) <= markdown.COMMENT_LIMIT_CHARS
+    assert failing in text and changed in text
+    assert f"And {BIG_CHAIN_LAYERS - 1:,} more layers unchanged" in text
+
+
+def test_changed_layers_beyond_the_cap_are_counted_largest_change_first() -> None:
+    """300 changed layers of 1,000: the table lists the 200 with the largest latency change
+    (gate.diff.ranked_changes), the slowest and the failing one, and counts the rest."""
+    from gate.result import LayerChange, RunDiff
+
+    count, moved = 1000, 300
+    base_layers = [make_layer(f"l{k}", 10_000, 500, 20_000) for k in range(count)]
+    head_layers = [make_layer(f"l{k}", 10_000, 500, 20_000 + 1000 * k) if k < moved
+                   else base_layers[k] for k in range(count)]
+    base = make_run("models/m.onnx", "t", base_layers)
+    head = make_run("models/m.onnx", "t", head_layers)
+    changes = tuple(LayerChange(
+        "changed" if k < moved else "unchanged", f"l{k}", f"l{k}", "Conv", "name",
+        {"latency_s": (base_layers[k].metrics["latency_s"], head_layers[k].metrics["latency_s"])}
+        if k < moved else {}) for k in range(count))
+    diff = RunDiff(head.model, "t", {}, changes)
+    entry = Entry(head.model, "t", head, base, diff,
+                  (make_verdict("r", head.model, "t", FAIL, layer="l999"),))
+    picked = html_layers.pick_changes(diff, head.layers, {"l999"})
+    listed = {f"l{k}" for k in picked.positions}
+    assert {f"l{k}" for k in range(moved - 200, moved)} <= listed  # largest changes
+    assert "l999" in listed and "l0" not in listed
+    assert picked.rest_changed == moved - 200
+    assert picked.rest_unchanged == count - len(listed) - picked.rest_changed
+    page = render(GateResult("check", (), (entry,)))
+    assert (f"And {moved - 200} more changed layers with a smaller latency change and "
+            f"{picked.rest_unchanged} layers, unchanged; full detail in the JSON report.") in page
+
+
+def test_a_rule_failing_at_every_layer_lists_its_worst_findings_and_counts_the_rest() -> None:
+    from gate.report.html_tables import MAX_FINDINGS_PER_RULE
+    from gate.result import Finding, Verdict
+
+    layers = [make_layer(f"l{k}", 10_000, 500, 20_000) for k in range(5000)]
+    run = make_run("models/m.onnx", "t", layers)
+    findings = tuple(Finding(f"l{k}", "utilization", 0.01 * (k % 7), 0.3,
+                             f"layer l{k}: utilization below 30%", FAIL) for k in range(5000))
+    verdict = Verdict("min-util", "min_layer_metric", "error", "d", run.model, "t", FAIL,
+                      "5000 layers below 30%", "fuse it", findings)
+    page = render(GateResult("check", (), (Entry(run.model, "t", run, None, None,
+                                                  (verdict,)),)))
+    rules = page.split("<h3>Rules</h3>")[1].split("</table>")[0]
+    shown = re.findall(r'<tr class="finding failing" data-layer="([^"]*)"', rules)
+    assert len(shown) == MAX_FINDINGS_PER_RULE
+    assert set(shown) <= {f"l{k}" for k in range(5000) if k % 7 == 0}  # furthest below first
+    assert f"And {5000 - MAX_FINDINGS_PER_RULE:,} more findings of this rule" in rules
+    assert len(page.encode("utf-8")) < 1024 * 1024

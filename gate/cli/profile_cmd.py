@@ -56,7 +56,7 @@ def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
     bound, latency per layer) and a line of model totals (latency, energy, DRAM
     traffic); JSON and CSV carry every per-layer figure. Targets that declare
     fusion cost each fused group as one layer on its head (the absorbed layers
-    show 'fused'); --no-fusion costs layer by layer.
+    show 'fusion-member'); --no-fusion costs layer by layer.
     """
     if not model.strip():
         raise InputError("empty model path; pass the .onnx file to profile")
@@ -67,7 +67,7 @@ def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
 def _profile(model: str, fmt: str, no_fusion: bool, kwargs: dict[str, Any]) -> None:
     from gate.config import resolve_target
     from gate.jobs import analyse_model
-    from gate.report.profile_text import render
+    from gate.report.profile_text import render_chunks
     from gate.targets import load_target
 
     config = load_project(kwargs, policies=False)
@@ -83,8 +83,9 @@ def _profile(model: str, fmt: str, no_fusion: bool, kwargs: dict[str, Any]) -> N
         binds = " ".join(f"--dim {term_safe(one_line(d))}=N" for d in analysis.loaded.unbound_dims)
         click.echo(f"warning: unbound symbolic dims leave layers unmodelled; bind them with "
                    f"{binds} (or size whole inputs with --shape INPUT=SHAPE)", err=True)
-    click.echo(render(fmt, analysis.profile, list(analysis.costs), list(analysis.records)),
-               nl=False)
+    for chunk in render_chunks(fmt, analysis.profile, list(analysis.costs),
+                               list(analysis.records)):
+        click.echo(chunk, nl=False)
 
 
 @contextmanager

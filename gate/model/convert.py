@@ -8,7 +8,7 @@ need them; a tensor with external data is never read.
 Parameters (``Node.param_inputs``) are inputs constant at inference: initializers,
 Constant nodes and tensors folded from constants alone (``gate.model.constants``
 decides what folds, how each constant is stored, and which constants are
-metadata rather than parameters). Folded nodes, fused activation
+metadata rather than parameters). Folded nodes, absorbed activation
 QuantizeLinear -> DequantizeLinear pairs and unused outputs are marked on the
 ``Node``.
 
@@ -21,7 +21,6 @@ from __future__ import annotations
 import os
 from collections import ChainMap
 from collections.abc import Iterator
-from pathlib import Path
 from typing import Any
 
 import onnx
@@ -36,7 +35,7 @@ from gate.model.constants import (
     is_parameter,
     small_values,
 )
-from gate.model.graph import Graph, Node, ParamSource, TensorInfo, stored_as_itself
+from gate.model.graph import Graph, Node, ParamSource, Shape, TensorInfo, stored_as_itself
 from gate.model.order import topological_order
 
 UNKNOWN_DIM = "?"
@@ -46,22 +45,31 @@ _SUBGRAPH_READER = "<subgraph>"  # a consumer that is a body graph (or a graph o
 _INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", "INT64",
                          "UINT64", "BOOL", "INT4", "UINT4"})
 _Scope = ChainMap[str, Any]  # name -> value, innermost scope first
+_NO_POSITIONS: frozenset[int] = frozenset()
 
 
 def dtype_name(elem_type: int) -> str:
     """ONNX TensorProto data type name, or "UNDEFINED" for an unknown enum value."""
-    try:
-        return TensorProto.DataType.Name(elem_type)
-    except ValueError:
-        return "UNDEFINED"
+    name = _DTYPE_NAMES.get(elem_type)
+    if name is None:
+        try:
+            name = TensorProto.DataType.Name(elem_type)
+        except ValueError:
+            name = "UNDEFINED"
+        _DTYPE_NAMES[elem_type] = name
+    return name
+
+
+_DTYPE_NAMES: dict[int, str] = {}  # enum value -> name (asked once per tensor otherwise)
 
 
 def _dims(shape: onnx.TensorShapeProto, declared: frozenset[str] | None) -> tuple[int | str, ...]:
     out: list[int | str] = []
     for dim in shape.dim:
-        if dim.HasField("dim_value") and dim.dim_value >= 0:
+        kind = dim.WhichOneof("value")  # one call instead of two HasField
+        if kind == "dim_value" and dim.dim_value >= 0:
             out.append(int(dim.dim_value))
-        elif dim.HasField("dim_param") and dim.dim_param and (
+        elif kind == "dim_param" and dim.dim_param and (
                 declared is None or dim.dim_param in declared):
             out.append(dim.dim_param)
         else:
@@ -129,11 +137,7 @@ class _Converter:
         for value in (*proto.input, *proto.value_info, *proto.output):
             if value.name not in initializers or value.type.tensor_type.HasField("shape"):
                 infos.setdefault(value.name, value_info(value, self.declared))
-        for node in proto.node:  # every produced name is in scope, shaped or not
-            for name in node.output:
-                if name and name not in infos:
-                    infos[name] = TensorInfo(name, None, "UNDEFINED")
-        _constant_values(proto, consts)
+        readers = _scan_nodes(proto, infos, consts)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
         order = topological_order(
@@ -141,7 +145,7 @@ class _Converter:
                                                          and name in outer_infos), self.path)
         ctx = {name: _chain(local if outer is None else outer[name].new_child(local))
                for name, local in (("infos", infos), ("sources", sources), ("consts", consts))}
-        walk = _Walk(ctx, _readers(proto), set())
+        walk = _Walk(ctx, readers, set())
         nodes = tuple(self._node(index, proto.node[i], walk, depth)
                       for index, i in enumerate(order))
         return Graph(nodes=nodes, initializers=initializers, inputs=inputs,
@@ -178,7 +182,7 @@ class _Converter:
         return found
 
     def _node(self, index: int, proto: onnx.NodeProto, walk: _Walk, depth: int) -> Node:
-        infos, sources, consts = walk.scope("infos"), walk.scope("sources"), walk.scope("consts")
+        infos, sources, consts = walk.infos, walk.sources, walk.consts
         input_names = list(proto.input)  # one read of the protobuf field (reads are not free)
         inputs = tuple(None if not name else infos.get(name) or TensorInfo(name, None, "UNDEFINED")
                        for name in input_names)
@@ -187,7 +191,8 @@ class _Converter:
                         else TensorInfo("", None, "UNDEFINED") for name in output_names)
         attributes: dict[str, Any] = {}
         subgraphs: dict[str, Graph] = {}
-        for attribute in proto.attribute if len(proto.attribute) else ():
+        proto_attributes = proto.attribute
+        for attribute in proto_attributes if len(proto_attributes) else ():
             if attribute.type == AttributeProto.GRAPH:
                 subgraphs[attribute.name] = self.graph(attribute.g, walk.ctx, depth + 1)
             elif attribute.type == AttributeProto.GRAPHS:
@@ -202,6 +207,7 @@ class _Converter:
         input_sources = {i: sources[n] for i, n in enumerate(input_names) if n and n in sources}
         params = {i: source for i, source in input_sources.items()
                   if is_parameter(op_type, i, inputs[i], source)}
+        readers = walk.readers
         return Node(
             index=index,
             name=walk.unique_name(proto.name, op_type, index),
@@ -210,14 +216,14 @@ class _Converter:
             inputs=inputs,
             outputs=outputs,
             attributes=attributes,
-            param_inputs=frozenset(params),
+            param_inputs=frozenset(params) if params else _NO_POSITIONS,
             subgraphs=subgraphs,
             const_values={i: consts[n] for i, n in enumerate(input_names) if n and n in consts},
             param_sources=input_sources,
             folded=folded,
-            fused=not folded and walk.fuses(proto, input_names, output_names),
+            qdq_absorbed=not folded and walk.absorbs_qdq(proto, input_names, output_names),
             unused_outputs=frozenset(i for i, n in enumerate(output_names)
-                                     if n and n not in walk.readers),
+                                     if n and n not in readers) or _NO_POSITIONS,
         )
 
     def _fold(self, proto: onnx.NodeProto, inputs: tuple[TensorInfo | None, ...],
@@ -242,15 +248,18 @@ class _Converter:
 
 
 class _Walk:
-    """The state of converting one graph's nodes in order: scopes, readers, fused pairs."""
+    """The state of converting one graph's nodes in order: scopes, readers, absorbed Q/DQ pairs."""
 
     def __init__(self, ctx: dict[str, _Scope], readers: dict[str, set[str]],
                  used_names: set[str]) -> None:
         self.ctx = ctx
         self.readers = readers
         self.used_names = used_names
-        self.fused_quantized: set[str] = set()
+        self.absorbed_quantized: set[str] = set()
         self.nested = len(ctx["infos"].maps) > 1
+        self.infos = self.scope("infos")  # looked up for every node: resolved once
+        self.sources = self.scope("sources")
+        self.consts = self.scope("consts")
 
     def scope(self, name: str) -> Any:
         """The scope for lookups: the plain dict at the top level (fast), chained inside subgraphs."""
@@ -259,34 +268,48 @@ class _Walk:
     def local(self, name: str) -> Any:
         return self.ctx[name].maps[0]
 
-    def fuses(self, proto: onnx.NodeProto, input_names: list[str],
-              output_names: list[str]) -> bool:
+    def absorbs_qdq(self, proto: onnx.NodeProto, input_names: list[str],
+                    output_names: list[str]) -> bool:
         """An activation QuantizeLinear read only by DequantizeLinear nodes, and those nodes."""
         if proto.domain not in ("", "ai.onnx") or not output_names:
             return False
         if proto.op_type == "QuantizeLinear":
             readers = self.readers.get(output_names[0], set())
             if readers and readers == {"DequantizeLinear"}:
-                self.fused_quantized.add(output_names[0])
+                self.absorbed_quantized.add(output_names[0])
                 return True
             return False
         return (proto.op_type == "DequantizeLinear" and bool(input_names)
-                and input_names[0] in self.fused_quantized)
+                and input_names[0] in self.absorbed_quantized)
 
     def unique_name(self, name: str, op_type: str, index: int) -> str:
         return _unique_name(name, op_type, index, self.used_names)
 
 
-def _readers(proto: onnx.GraphProto) -> dict[str, set[str]]:
-    """Tensor name -> op types of the nodes that read it; graph outputs and names read
-    inside body graphs are read by ``_SUBGRAPH_READER``."""
+def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
+                consts: dict[str, tuple[int, ...]]) -> dict[str, set[str]]:
+    """One walk of the graph's nodes: every produced name goes in scope (shaped or not),
+    Constant nodes' small integer values into ``consts``; returns the readers: tensor
+    name -> op types of the nodes that read it (graph outputs and names read inside body
+    graphs are read by ``_SUBGRAPH_READER``)."""
     readers: dict[str, set[str]] = {}
     for node in proto.node:
-        op_type = node.op_type if node.domain in ("", "ai.onnx") else f"{node.domain}.{node.op_type}"
+        for name in node.output:
+            if name and name not in infos:
+                infos[name] = TensorInfo(name, None, "UNDEFINED")
+        domain = node.domain
+        if node.op_type == "Constant" and domain in ("", "ai.onnx"):
+            _constant_value(node, consts)
+        op_type = node.op_type if domain in ("", "ai.onnx") else f"{domain}.{node.op_type}"
         for name in node.input:
             if name:
-                readers.setdefault(name, set()).add(op_type)
-        for attribute in node.attribute:
+                known = readers.get(name)
+                if known is None:
+                    readers[name] = {op_type}
+                else:
+                    known.add(op_type)
+        attributes = node.attribute
+        for attribute in attributes if len(attributes) else ():
             if attribute.type == AttributeProto.GRAPH:
                 bodies = [attribute.g]
             elif attribute.type == AttributeProto.GRAPHS:
@@ -303,27 +326,26 @@ def _readers(proto: onnx.GraphProto) -> dict[str, set[str]]:
 
 def _names_read_in(graph: onnx.GraphProto) -> set[str]:
     names: set[str] = set()
-    for current in _all_graph_protos(graph):
+    for current in all_graph_protos(graph):
         for node in current.node:
             names.update(n for n in node.input if n)
         names.update(v.name for v in current.output)
     return names
 
 
-def _constant_values(proto: onnx.GraphProto, consts: dict[str, tuple[int, ...]]) -> None:
-    """Small integer values of the graph's Constant nodes (metadata the cost functions read)."""
-    for node in proto.node:
-        if node.op_type != "Constant" or node.domain not in ("", "ai.onnx") or not node.output:
-            continue
-        for attribute in node.attribute:
-            if attribute.name == "value" and attribute.type == AttributeProto.TENSOR:
-                values = _small_int_values(attribute.t)
-                if values is not None:
-                    consts[node.output[0]] = values
-            elif attribute.name == "value_int":
-                consts[node.output[0]] = (int(attribute.i),)
-            elif attribute.name == "value_ints" and len(attribute.ints) <= CONST_VALUE_LIMIT:
-                consts[node.output[0]] = tuple(int(v) for v in attribute.ints)
+def _constant_value(node: onnx.NodeProto, consts: dict[str, tuple[int, ...]]) -> None:
+    """The small integer value of a Constant node (metadata the cost functions read)."""
+    if not node.output:
+        return
+    for attribute in node.attribute:
+        if attribute.name == "value" and attribute.type == AttributeProto.TENSOR:
+            values = _small_int_values(attribute.t)
+            if values is not None:
+                consts[node.output[0]] = values
+        elif attribute.name == "value_int":
+            consts[node.output[0]] = (int(attribute.i),)
+        elif attribute.name == "value_ints" and len(attribute.ints) <= CONST_VALUE_LIMIT:
+            consts[node.output[0]] = tuple(int(v) for v in attribute.ints)
 
 
 def _chain(scope: Any) -> _Scope:
@@ -373,16 +395,22 @@ def convert_model(proto: onnx.ModelProto, path: str,
     return graph, converter.warnings
 
 
-def _all_graph_protos(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
+def all_graph_protos(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
+    """``graph`` and every subgraph nested in its nodes' attributes (depth first)."""
     stack = [graph]
     while stack:
         current = stack.pop()
         yield current
         for node in current.node:
+            if not len(node.attribute):  # most nodes: no attribute to look into
+                continue
             for attribute in node.attribute:
                 if attribute.HasField("g"):
                     stack.append(attribute.g)
                 stack.extend(attribute.graphs)
+
+
+_all_graph_protos = all_graph_protos
 
 
 _DATA_FIELDS = ("raw_data", "float_data", "int32_data", "string_data", "int64_data",
@@ -397,66 +425,54 @@ def drop_weight_values(graph: onnx.GraphProto) -> None:
     integer tensors small enough to be shapes or indices (data propagation may
     read them). Shape inference then copies kilobytes instead of the weights.
     """
-    for current in _all_graph_protos(graph):
+    for current in all_graph_protos(graph):
         for tensor in current.initializer:
-            if tensor.data_location == TensorProto.EXTERNAL:
-                continue
-            count = 1
-            for dim in tensor.dims:
-                count *= int(dim)
-            if count <= CONST_VALUE_LIMIT or (tensor.data_type in _SHAPE_DTYPES
-                                              and count <= 64 * CONST_VALUE_LIMIT):
-                continue
-            for name in _DATA_FIELDS:
-                tensor.ClearField(name)
+            if tensor.data_location != TensorProto.EXTERNAL:
+                drop_tensor_values(tensor)
 
 
-def collect_symbolic_dims(graph: onnx.GraphProto) -> set[str]:
-    """Every ``dim_param`` declared on a graph input, output or value_info (all scopes)."""
-    names: set[str] = set()
-    for current in _all_graph_protos(graph):
-        for value in (*current.input, *current.output, *current.value_info):
-            for dim in value.type.tensor_type.shape.dim:
-                if dim.HasField("dim_param") and dim.dim_param:
-                    names.add(dim.dim_param)
-    return names
+def drop_tensor_values(tensor: TensorProto) -> None:
+    """Clear one inline initializer's values unless it is small or may be a shape."""
+    count = 1
+    for dim in tensor.dims:
+        count *= int(dim)
+    if count <= CONST_VALUE_LIMIT or (tensor.data_type in _SHAPE_DTYPES
+                                      and count <= 64 * CONST_VALUE_LIMIT):
+        return
+    for name in _DATA_FIELDS:
+        tensor.ClearField(name)
 
 
 def graph_symbolic_dims(graph: Graph) -> set[str]:
     """Every symbolic dim left on a tensor of ``graph`` or its subgraphs."""
-    names: set[str] = set()
+    shapes: set[Shape] = set()  # graphs repeat shapes: look at each distinct one once
     stack = [graph]
     while stack:
         current = stack.pop()
-        for tensor in current.inputs:
-            names.update(tensor.symbolic_dims())
+        shapes.update(t.shape for t in current.inputs if t.shape)
         for node in current.nodes:
             for maybe in (*node.inputs, *node.outputs):  # an omitted optional input is None
-                if maybe is not None:
-                    names.update(maybe.symbolic_dims())
-            stack.extend(node.subgraphs.values())
-    return names
+                if maybe is not None and maybe.shape:
+                    shapes.add(maybe.shape)
+            if node.subgraphs:
+                stack.extend(node.subgraphs.values())
+    return {d for shape in shapes for d in shape if isinstance(d, str)}
 
 
-def external_data_warnings(graph: onnx.GraphProto, folder: Path) -> list[str]:
-    """Warnings for external-data locations outside the model's folder (never opened)."""
-    warnings: list[str] = []
-    root = os.path.realpath(folder)
-    for current in _all_graph_protos(graph):
-        for tensor in current.initializer:
-            if tensor.data_location != TensorProto.EXTERNAL:
-                continue
-            location = next((e.value for e in tensor.external_data if e.key == "location"), "")
-            try:
-                target = os.path.realpath(os.path.join(root, location)) if location else ""
-            except (ValueError, OSError):  # e.g. an embedded NUL: no file system path at all
-                target = ""
-            if not target:
-                warnings.append(f"initializer '{tensor.name}' has an unusable external-data "
-                                f"location ({location!r}); not opened (roofgate reads no "
-                                f"weights), but re-export the model before shipping it")
-            elif os.path.isabs(location) or os.path.commonpath([root, target]) != root:
-                warnings.append(f"initializer '{tensor.name}' points its external data outside "
-                                f"the model's folder ('{location}'); not opened (roofgate "
-                                f"reads no weights), but do not ship such a model")
-    return warnings
+def external_data_warning(tensor: TensorProto, root: str) -> str:
+    """A warning for an external-data location outside the folder ``root`` (a real path),
+    or "" (the data is never opened either way)."""
+    location = next((e.value for e in tensor.external_data if e.key == "location"), "")
+    try:
+        target = os.path.realpath(os.path.join(root, location)) if location else ""
+    except (ValueError, OSError):  # e.g. an embedded NUL: no file system path at all
+        target = ""
+    if not target:
+        return (f"initializer '{tensor.name}' has an unusable external-data "
+                f"location ({location!r}); not opened (roofgate reads no "
+                f"weights), but re-export the model before shipping it")
+    if os.path.isabs(location) or os.path.commonpath([root, target]) != root:
+        return (f"initializer '{tensor.name}' points its external data outside "
+                f"the model's folder ('{location}'); not opened (roofgate "
+                f"reads no weights), but do not ship such a model")
+    return ""

@@ -1,7 +1,9 @@
 """Loading an ONNX file for profiling: validate, inline, bind dims, infer shapes, convert.
 
-Weights are never read: the file is parsed with ``load_external_data=False`` and
-every size comes from an initializer's dims and dtype. The steps, in order:
+Weights are never read: the file is parsed with ``load_external_data=False``,
+the values of large inline initializers of the main graph are left out while it
+is read (``gate.model.skeleton``), and every size comes from an initializer's
+dims and dtype. The steps, in order:
 
 1. refuse what is not a model, with one line naming the file and the remedy
    (missing, empty, Git LFS pointer, truncated, random bytes, a protobuf that is
@@ -37,12 +39,14 @@ import onnx.shape_inference
 from google.protobuf.message import DecodeError
 
 from gate.errors import InputError
+from gate.model.contrib_shapes import register_contrib_schemas
 from gate.model.convert import (
     UNKNOWN_DIM,
-    collect_symbolic_dims,
+    all_graph_protos,
     convert_model,
+    drop_tensor_values,
     drop_weight_values,
-    external_data_warnings,
+    external_data_warning,
     graph_symbolic_dims,
 )
 from gate.model.graph import INT64_MAX, Graph, LoadedModel
@@ -50,9 +54,9 @@ from gate.model.guards import refuse_huge_shape_data
 from gate.model.shape_text import MAX_DIM, StaticShape
 from gate.model.shape_values import refine_shapes
 from gate.model.shapes import bind_input_shapes, sizing_notes
+from gate.model.skeleton import file_without_weights, without_weights
 from gate.model.stored_shapes import infer_checked
 from gate.model.text import repair_text_fields
-from gate.ops.contrib_shapes import register_contrib_schemas
 
 # Files at least this large go through the path-based shape inference (protobuf's
 # in-memory serialisation limit is 2 GiB).
@@ -79,17 +83,16 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     bindings = _check_bindings(dict(dims or {}), text_path)
     shape_bindings = _check_shapes(dict(shapes or {}), text_path)
     size_bytes = _check_file(text_path) if data is None else _check_head(len(data), data, text_path)
-    proto = _parse(text_path, data)
+    proto = _parse(text_path, data, lean=size_bytes < PATH_INFERENCE_BYTES)
     _validate(proto, text_path)
-    refuse_impossible_dims(proto.graph, text_path)
-    refuse_huge_shape_data(proto, text_path, bindings, shape_bindings)  # before any inference
-    warnings = list(external_data_warnings(proto.graph, Path(text_path).resolve().parent))
+    warnings: list[str] = []
     repaired = repair_text_fields(proto)
     if repaired:
         warnings.append(f"{repaired} name(s) in the model are not valid UTF-8; they are shown "
                         "with \\xNN escapes (re-export the model to fix them)")
-    declared = collect_symbolic_dims(proto.graph)
-    drop_weight_values(proto.graph)
+    declared, found = scan_graphs(proto.graph, text_path)
+    warnings[:0] = found
+    refuse_huge_shape_data(proto, text_path, bindings, shape_bindings)  # before any inference
     register_contrib_schemas()  # shape inference then sizes the contrib ops we cost
     unused = sorted(set(bindings) - declared)
     warnings.extend(f"--dim {name}={bindings[name]}: the model declares no symbolic dim "
@@ -163,8 +166,14 @@ def _check_head(size_bytes: int, head: bytes, path: str) -> int:
     return size_bytes
 
 
-def _parse(path: str, data: bytes | None = None) -> onnx.ModelProto:
+def _parse(path: str, data: bytes | None = None, lean: bool = False) -> onnx.ModelProto:
+    """The parsed model; ``lean``: without inline weight values (``gate.model.skeleton``)."""
     try:
+        skeleton = None
+        if lean:
+            skeleton = without_weights(data) if data is not None else file_without_weights(path)
+        if skeleton is not None:
+            return onnx.load_model_from_string(skeleton)
         if data is not None:
             return onnx.load_model_from_string(data)  # no folder: external data never loaded
         return onnx.load(path, load_external_data=False)
@@ -279,46 +288,72 @@ def _unbound_dims(graph: Graph) -> tuple[str, ...]:
     return tuple(sorted(d for d in graph_symbolic_dims(graph) if d != UNKNOWN_DIM))
 
 
-# --- integrity of the shapes the file declares -----------------------------------------
+# --- one pass over the parsed file ----------------------------------------------------
+
+def scan_graphs(graph: onnx.GraphProto, path: str) -> tuple[set[str], list[str]]:
+    """Everything the loader checks and collects before inference, in one walk of ``graph``
+    and its subgraphs: refuses impossible dims (``refuse_impossible_dims``), warns about
+    external data outside the model's folder (``gate.model.convert.external_data_warning``),
+    collects the declared symbolic dims and drops inline weight values
+    (``gate.model.convert.drop_weight_values``). Returns (declared dims, warnings).
+
+    Why one walk: each walk of a 100,000-node proto costs tenths of a second in Python.
+    """
+    folder = os.path.realpath(Path(path).resolve().parent)
+    declared: set[str] = set()
+    warnings: list[str] = []
+    for current in all_graph_protos(graph):
+        for tensor in current.initializer:
+            _refuse_impossible_weight(tensor, path)
+            if tensor.data_location == onnx.TensorProto.EXTERNAL:
+                warning = external_data_warning(tensor, folder)
+                if warning:
+                    warnings.append(warning)
+            else:
+                drop_tensor_values(tensor)
+        for value in (*current.input, *current.output, *current.value_info):
+            if value.type.HasField("tensor_type"):
+                _scan_declared_shape(value, declared, path)
+    return declared, warnings
+
 
 def refuse_impossible_dims(graph: onnx.GraphProto, path: str) -> None:
     """Refuse a negative dim on a weight or below -1 on a declared tensor, and a weight too
-    large to exist.
+    large to exist (every scope; ``scan_graphs`` does the same in its one walk).
 
     Why: a negative dim made a weight count as 0 bytes. ONNX dims are
     non-negative (an unknown size is a named ``dim_param``); some exporters
     write -1 for an unknown size of an input or output, which stays unknown
     (``--shape`` can bind it); a weight's element count must fit in int64.
     """
-    for current in _graphs(graph):
+    for current in all_graph_protos(graph):
         for tensor in current.initializer:
-            dims = [int(d) for d in tensor.dims]
-            if any(d < 0 for d in dims):
-                raise InputError(f"weight '{tensor.name}' has a negative dim {dims}; re-export "
-                                 "the model", path)
-            if math.prod(dims) > INT64_MAX:
-                raise InputError(f"weight '{tensor.name}' has dims {dims}, more elements than "
-                                 "an ONNX tensor can hold; re-export the model", path)
+            _refuse_impossible_weight(tensor, path)
         for value in (*current.input, *current.output, *current.value_info):
-            if not value.type.HasField("tensor_type"):
-                continue
-            dims = [d.dim_value for d in value.type.tensor_type.shape.dim
-                    if d.HasField("dim_value")]
-            if any(d < -1 for d in dims):  # -1: "unknown" as some exporters write it
-                raise InputError(f"tensor '{value.name}' declares a negative dim {dims}; use a "
-                                 "named dim (dim_param) for a size not known in advance, or "
-                                 "re-export the model", path)
+            if value.type.HasField("tensor_type"):
+                _scan_declared_shape(value, set(), path)
 
 
-def _graphs(graph: onnx.GraphProto) -> list[onnx.GraphProto]:
-    """``graph`` and every subgraph nested in its nodes' attributes."""
-    found, stack = [], [graph]
-    while stack:
-        current = stack.pop()
-        found.append(current)
-        for node in current.node:
-            for attribute in node.attribute:
-                if attribute.HasField("g"):
-                    stack.append(attribute.g)
-                stack.extend(attribute.graphs)
-    return found
+def _refuse_impossible_weight(tensor: onnx.TensorProto, path: str) -> None:
+    dims = [int(d) for d in tensor.dims]
+    if any(d < 0 for d in dims):
+        raise InputError(f"weight '{tensor.name}' has a negative dim {dims}; re-export "
+                         "the model", path)
+    if math.prod(dims) > INT64_MAX:
+        raise InputError(f"weight '{tensor.name}' has dims {dims}, more elements than "
+                         "an ONNX tensor can hold; re-export the model", path)
+
+
+def _scan_declared_shape(value: onnx.ValueInfoProto, declared: set[str], path: str) -> None:
+    """Refuse a dim below -1 on a declared tensor; add its symbolic dims to ``declared``."""
+    values = []
+    for dim in value.type.tensor_type.shape.dim:
+        kind = dim.WhichOneof("value")
+        if kind == "dim_value":
+            values.append(dim.dim_value)
+        elif kind == "dim_param" and dim.dim_param:
+            declared.add(dim.dim_param)
+    if values and min(values) < -1:  # -1: "unknown" as some exporters write it
+        raise InputError(f"tensor '{value.name}' declares a negative dim {values}; use a "
+                         "named dim (dim_param) for a size not known in advance, or "
+                         "re-export the model", path)

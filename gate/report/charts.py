@@ -20,6 +20,7 @@ the roof is what the target allows at the run's precision.
 
 from __future__ import annotations
 
+import heapq
 import math
 from collections.abc import Collection, Mapping, Sequence
 from dataclasses import dataclass
@@ -87,16 +88,15 @@ def roof_points(run: RunRecord, max_points: int = MAX_ROOFLINE_POINTS) -> RoofSe
             plottable.append(layer)
         else:
             unplottable += 1
-    ranked = sorted(plottable, key=_latency_rank)
+    top = heapq.nsmallest(max_points, plottable, key=_latency_rank)  # no full sort of 200k
     total_s = known(run.metrics, "latency_s") or sum(_finite(l.metrics, "latency_s")
-                                                     for l in ranked) or 1.0
+                                                     for l in plottable) or 1.0
     points = tuple(
         RoofPoint(layer.name, _finite(layer.metrics, "arithmetic_intensity"),
                   _finite(layer.metrics, "achieved_flops_per_s"),
                   _finite(layer.metrics, "latency_s") / total_s)
-        for layer in ranked[:max_points])
-    return RoofSelection(points, max(len(ranked) - max_points, 0), unplottable, unmodelled,
-                         unknown)
+        for layer in top)
+    return RoofSelection(points, len(plottable) - len(top), unplottable, unmodelled, unknown)
 
 
 def roof_vertices(peak_flops_per_s: float, dram_bytes_per_s: float,
@@ -107,17 +107,21 @@ def roof_vertices(peak_flops_per_s: float, dram_bytes_per_s: float,
             (ridge, peak_flops_per_s), (hi_flop_per_byte, peak_flops_per_s)]
 
 
-def bar_layers(run: RunRecord, max_layers: int = MAX_BAR_LAYERS) -> tuple[list[LayerRecord], int]:
-    """The layers shown in the bar chart (largest latency first) and how many with a known
-    latency were left out (``unknown_latency`` counts the others: never drawn as 0)."""
-    ranked = sorted((layer for layer in run.layers if known(layer.metrics, "latency_s")
-                     is not None), key=_latency_rank)
-    return ranked[:max_layers], max(len(ranked) - max_layers, 0)
+@dataclass(frozen=True, slots=True)
+class BarSelection:
+    """The layers of one run in the bar chart (largest latency first), how many with a known
+    latency were left out, and how many have no known latency (never drawn as 0)."""
+
+    layers: tuple[LayerRecord, ...]
+    left_out: int
+    unknown_latency: int
 
 
-def unknown_latency(run: RunRecord) -> int:
-    """How many layers of ``run`` have no known latency (left out of the bar chart)."""
-    return sum(1 for layer in run.layers if known(layer.metrics, "latency_s") is None)
+def bar_layers(run: RunRecord, max_layers: int = MAX_BAR_LAYERS) -> BarSelection:
+    """The slowest ``max_layers`` layers of ``run`` with a known latency."""
+    timed = [layer for layer in run.layers if known(layer.metrics, "latency_s") is not None]
+    top = heapq.nsmallest(max_layers, timed, key=_latency_rank)
+    return BarSelection(tuple(top), len(timed) - len(top), len(run.layers) - len(timed))
 
 
 def unknown_energy(layer: LayerRecord) -> bool:
@@ -132,9 +136,12 @@ def _latency_rank(layer: LayerRecord) -> tuple[float, str]:
 def known(values: Mapping[str, object], name: str) -> float | None:
     """A metric as a float, or None when missing, unknown (None) or not finite."""
     value = values.get(name)
-    if not isinstance(value, (int, float)) or isinstance(value, bool):
+    kind = type(value)
+    # the common cases first (this runs for every layer); bool is not a figure
+    if kind is not float and kind is not int and (
+            isinstance(value, bool) or not isinstance(value, (int, float))):
         return None
-    return float(value) if math.isfinite(value) else None
+    return float(value) if math.isfinite(value) else None  # type: ignore[arg-type]
 
 
 def _finite(values: Mapping[str, object], name: str) -> float:
@@ -231,13 +238,15 @@ class _LogAxes:
 # --- the roofline -----------------------------------------------------------------------------
 
 def roofline_svg(head: RunRecord, base: RunRecord | None, chart_id: str, *,
-                 flagged: Collection[str] = (), max_points: int = MAX_ROOFLINE_POINTS) -> str:
-    """Roofline of ``head`` (and ``base`` hollow when given); ``flagged`` layers ringed."""
+                 flagged: Collection[str] = (), max_points: int = MAX_ROOFLINE_POINTS,
+                 head_points: RoofSelection | None = None) -> str:
+    """Roofline of ``head`` (and ``base`` hollow when given); ``flagged`` layers ringed.
+    ``head_points``: ``roof_points(head, max_points)`` when the caller already has it."""
     figures = head.target_figures
     peak = _finite(figures, "peak_flops_per_s")
     bandwidth = _finite(figures, "dram_bytes_per_s")
     has_roof = _positive(peak) and _positive(bandwidth)
-    head_sel = roof_points(head, max_points)
+    head_sel = head_points if head_points is not None else roof_points(head, max_points)
     base_sel = roof_points(base, max_points) if base is not None else None
     axes = _roof_axes(head_sel, base_sel, peak if has_roof else 0.0,
                       bandwidth if has_roof else 0.0)
@@ -431,13 +440,15 @@ def _roof_legend(axes: _LogAxes, with_base: bool, with_flags: bool) -> str:
 # --- per-layer latency and energy -------------------------------------------------------------
 
 def layer_bars_svg(head: RunRecord, base_latency_s: Mapping[str, float], chart_id: str, *,
-                   flagged: Collection[str] = (), max_layers: int = MAX_BAR_LAYERS) -> str:
+                   flagged: Collection[str] = (), max_layers: int = MAX_BAR_LAYERS,
+                   bars: BarSelection | None = None) -> str:
     """Latency (the base's as a tick) and energy by component of the slowest layers.
 
     ``base_latency_s`` maps a head layer name to its matched base layer's latency;
     rows of ``flagged`` layers are marked.
     """
-    layers, left_out = bar_layers(head, max_layers)
+    selection = bars if bars is not None else bar_layers(head, max_layers)
+    layers, left_out = selection.layers, selection.left_out
     row_px, top, label_w = 20.0, 64.0, 230.0
     height = int(top + row_px * max(len(layers), 1) + 46)
     panels = ((label_w, 250.0), (label_w + 290.0, 330.0))
@@ -447,7 +458,7 @@ def layer_bars_svg(head: RunRecord, base_latency_s: Mapping[str, float], chart_i
     body += _energy_panel(layers, chart_id, panels[1], top, row_px)
     data: dict[str, object] = {"chart": "layers", "model": head.model, "target": head.target,
                                "layers-shown": len(layers), "layers-left-out": left_out,
-                               "latency-unknown": unknown_latency(head),
+                               "latency-unknown": selection.unknown_latency,
                                "energy-unknown": sum(1 for l in layers if unknown_energy(l)),
                                "flagged": sum(1 for layer in layers if layer.name in flagged)}
     label = f"Latency and energy per layer of {head.model_name} on {head.target}"

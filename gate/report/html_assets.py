@@ -57,6 +57,7 @@ tr.flagged td{background:color-mix(in srgb,var(--rg-fail) 12%,transparent)}
 tr.finding.failing td{color:var(--rg-ink)}
 section.card.st-warn{border-left-color:var(--rg-warn)}
 #blocking ol{margin:.4rem 0;padding-left:1.4rem}#blocking li{margin:.25rem 0}
+#blocking p.lead{font-weight:700;margin:.8rem 0 .2rem}
 table{border-collapse:collapse;width:100%;font-size:.84rem}
 th,td{padding:.3rem .55rem;border-bottom:1px solid var(--rg-grid);text-align:left;
 vertical-align:top}

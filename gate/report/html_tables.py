@@ -14,6 +14,7 @@ from collections.abc import Collection, Sequence
 
 from gate import metrics, units
 from gate.records import LayerRecord, Metric, RunRecord
+from gate.report.html_layers import Picked, pick_changes, pick_layers, rest_line
 from gate.report.text import html_escape
 from gate.result import FAIL, PASS, REMOVED, WAIVED, WARN, Entry, Finding, GateResult, Verdict
 
@@ -144,6 +145,11 @@ def _totals(entry: Entry, metric: str) -> tuple[Metric | None, Metric | None]:
 
 # --- rules ----------------------------------------------------------------------
 
+# Findings listed under a rule (failing ones first, furthest past the limit first): a rule
+# that fails at every layer of a 200k-layer model must not write 200k rows.
+MAX_FINDINGS_PER_RULE = 20
+
+
 def rules_table(entry: Entry) -> str:
     """Every rule with its outcome, failing first; the findings (layer, sentence, waiver) under
     each, and the remedy once per rule. Never in a scroll box: it is what a reader came for."""
@@ -158,7 +164,12 @@ def rules_table(entry: Entry) -> str:
                     f"<td>{html_escape(v.summary)}<br><span class=\"note\">"
                     f"{html_escape(v.description)}</span></td><td>{remedy}</td></tr>")
         ordered = [*v.failing, *(f for f in v.findings if f.status != FAIL)]
-        rows += [_finding_row(v, f) for f in ordered]
+        rows += [_finding_row(v, f) for f in ordered[:MAX_FINDINGS_PER_RULE]]
+        if len(ordered) > MAX_FINDINGS_PER_RULE:
+            rest = len(ordered) - MAX_FINDINGS_PER_RULE
+            rows.append(f"<tr class=\"finding rest\" data-rest=\"{rest}\"><td></td>"
+                        f"<td colspan=\"3\">And {rest:,} more finding{'s' if rest != 1 else ''}"
+                        " of this rule; full detail in the JSON report.</td></tr>")
     headers = [("outcome", False), ("rule", False), ("summary", False), ("fix", False)]
     return _table(headers, rows, sortable=False)
 
@@ -182,14 +193,18 @@ _LAYER_METRICS = ("latency_s", "energy_j", "utilization", "arithmetic_intensity"
 
 
 def layer_table(entry: Entry, flagged: Collection[str] = ()) -> str:
-    """All layers of the head (or the diff's layer pairs when there is a base); rows of
-    ``flagged`` layers (named by failing findings) are marked."""
+    """The layers that matter (``gate.report.html_layers``) of the head, or of the diff's
+    layer pairs when there is a base, and one line counting the rest; rows of ``flagged``
+    layers (named by failing findings) are marked."""
     if entry.diff is not None and entry.base is not None and entry.head is not None:
         headers = [("change", False), ("layer", False), ("op", False),
                    ("base latency", True), ("latency", True), ("latency change", True),
-                   ("energy change", True), ("parameter size", True),
-                   ("parameter size change", True), ("PE utilization", True)]
-        return _table(headers, _diff_rows(entry, flagged), sortable=True, scroll=True)
+                   ("energy change", True), (metrics.label("param_bytes"), True),
+                   (f"{metrics.label('param_bytes')} change", True),
+                   (metrics.label("utilization"), True)]
+        picked = pick_changes(entry.diff, entry.head.layers, flagged)
+        return (_table(headers, _diff_rows(entry, flagged, picked.positions), sortable=True,
+                       scroll=True) + _rest(picked, with_base=True))
     run = entry.head or entry.base
     assert run is not None
     total_s = run.metrics.get("latency_s")
@@ -197,8 +212,16 @@ def layer_table(entry: Entry, flagged: Collection[str] = ()) -> str:
                ("latency", True),
                ("share of latency", True),
                *((metrics.label(m), True) for m in _LAYER_METRICS[1:]), ("params fit", False)]
-    rows = [_layer_row(layer, total_s, layer.name in flagged) for layer in run.layers]
-    return _table(headers, rows, sortable=True, scroll=True)
+    picked = pick_layers(run.layers, flagged)
+    rows = [_layer_row(run.layers[k], total_s, run.layers[k].name in flagged)
+            for k in picked.positions]
+    return _table(headers, rows, sortable=True, scroll=True) + _rest(picked, with_base=False)
+
+
+def _rest(picked: Picked, *, with_base: bool) -> str:
+    line = rest_line(picked, with_base=with_base)
+    return (f"<p class=\"note\" data-rest=\"{picked.rest}\">{html_escape(line)}</p>\n"
+            if line else "")
 
 
 def _row_open(is_flagged: bool, css: str = "") -> str:
@@ -246,11 +269,11 @@ def _layer_change(old: LayerRecord | None, new: LayerRecord | None, metric: str)
     return _change(metric, old.metrics.get(metric), new.metrics.get(metric))
 
 
-def _diff_rows(entry: Entry, flagged: Collection[str]) -> list[str]:
+def _diff_rows(entry: Entry, flagged: Collection[str], positions: Sequence[int]) -> list[str]:
     assert entry.diff is not None and entry.base is not None and entry.head is not None
     base_layers, head_layers = _index(entry.base), _index(entry.head)
     rows = []
-    for change in entry.diff.layers:
+    for change in (entry.diff.layers[k] for k in positions):
         old = base_layers.get(change.base_name) if change.base_name is not None else None
         new = head_layers.get(change.head_name) if change.head_name is not None else None
         name = change.head_name if change.head_name is not None else change.base_name

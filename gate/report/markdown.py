@@ -384,6 +384,10 @@ def _layer_changes(entry: Entry, out: _Render) -> None:
         out.lines += [_layer_row(change, head.get(change.head_name or ""),
                                  _precision(entry, change)) for change in ranked[:limit]]
     out.trimmed(min(limit, len(ranked)), len(ranked), "changed layers")
+    unchanged = len(entry.diff.layers) - len(ranked)
+    if unchanged:
+        out.lines.append(f"\n_And {unchanged:,} more layer{'s' if unchanged != 1 else ''} "
+                         "unchanged; full detail in the JSON report._")
 
 
 def _precision(entry: Entry, change: LayerChange) -> str:

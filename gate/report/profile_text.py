@@ -12,16 +12,17 @@ import csv
 import io
 import json
 import unicodedata
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import replace
 from functools import lru_cache
 from typing import Any
 
 from gate import metrics, units
-from gate.costmodel import ModelCost
+from gate.costmodel import FUSION_MEMBER, ModelCost
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
-from gate.records import RunRecord, no_work_costed, run_to_dict
+from gate.records import RunRecord, layer_to_dict, no_work_costed, run_to_dict
 from gate.targets.spec import TargetProfile
 
 FORMAT_NAME = "roofgate-profile"
@@ -47,11 +48,23 @@ CSV_TARGET_FIELDS: tuple[str, ...] = (
 def render(fmt: str, profile: ModelProfile, runs: Sequence[Run],
            records: Sequence[RunRecord]) -> str:
     """The whole output of ``roofgate profile`` in ``fmt`` (table, json or csv)."""
+    return "".join(render_chunks(fmt, profile, runs, records))
+
+
+def render_chunks(fmt: str, profile: ModelProfile, runs: Sequence[Run],
+                  records: Sequence[RunRecord]) -> Iterator[str]:
+    """``render`` in pieces to write one after another (JSON is built as it is written)."""
     if fmt == "json":
-        return to_json(profile, records)
+        return json_chunks(profile, records)
     if fmt == "csv":  # CSV keeps model text as is, apart from runner markers (gate/logsafe)
-        return defuse_runner_markers(to_csv(profile, runs))
-    return defuse_runner_markers(to_table(profile, runs))
+        return iter([_defused(to_csv(profile, runs))])
+    return iter([_defused(to_table(profile, runs))])
+
+
+def _defused(text: str) -> str:
+    """``defuse_runner_markers``, skipped when no marker can be in the text: every marker
+    holds ``##`` or ``::`` (two substring searches instead of two regex passes)."""
+    return defuse_runner_markers(text) if "##" in text or "::" in text else text
 
 
 # ------------------------------------------------------------------ JSON
@@ -85,8 +98,19 @@ def layer_dict(layer: LayerProfile, input_names: Sequence[str],
 
 def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[str, Any]:
     """The JSON document (plain data, stable keys)."""
+    return {**_document_head(profile), "layers": list(_layer_dicts(profile)),
+            "targets": [run_to_dict(record) for record in records]}
+
+
+def _layer_dicts(profile: ModelProfile) -> Iterator[dict[str, Any]]:
+    for layer, node in zip(profile.layers, profile.model.graph.nodes):
+        yield layer_dict(layer, [t.name if t else "" for t in node.inputs],
+                         [t.name for t in node.outputs])
+
+
+def _document_head(profile: ModelProfile) -> dict[str, Any]:
+    """The document without its per-layer lists (``layers``, ``targets``)."""
     model, coverage = profile.model, profile.coverage
-    nodes = model.graph.nodes
     unknown = no_work_costed(profile.coverage.nodes_total,
                              profile.coverage.nodes_total - profile.coverage.nodes_modelled,
                              bool(profile.total_macs or profile.total_flops))
@@ -114,16 +138,75 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
                      "unmodelled": [{"op_type": u.op_type, "domain": u.domain, "count": u.count,
                                      "reason": u.reason} for u in coverage.unmodelled]},
         "notes": list(profile.notes),
-        "layers": [layer_dict(layer, [t.name if t else "" for t in node.inputs],
-                              [t.name for t in node.outputs])
-                   for layer, node in zip(profile.layers, nodes)],
-        "targets": [run_to_dict(record) for record in records],
     }
 
 
 def to_json(profile: ModelProfile, records: Sequence[RunRecord]) -> str:
-    return defuse_json_markers(json.dumps(profile_dict(profile, records), sort_keys=True,
-                                          indent=2, allow_nan=False)) + "\n"
+    return "".join(json_chunks(profile, records))
+
+
+def json_chunks(profile: ModelProfile, records: Sequence[RunRecord]) -> Iterator[str]:
+    """The JSON document in pieces, built while it is written (memory stays bounded).
+
+    Layout: keys sorted, indent 2, except that each element of a ``layers`` list is
+    one line (written by the C encoder: a pure-Python indenting encoder was most of
+    the time of a large profile). Deterministic: the same profile, the same bytes.
+    """
+    document = {**_document_head(profile), "layers": _Rows(_layer_dicts(profile)),
+                "targets": [{**run_to_dict(replace(record, layers=())),
+                             "layers": _Rows(layer_to_dict(x) for x in record.layers)}
+                            for record in records]}
+    for chunk in _emit(document, ""):
+        yield defuse_json_markers(chunk)  # a chunk never ends inside a JSON string
+    yield "\n"
+
+
+class _Rows:
+    """A list written one element per line."""
+
+    def __init__(self, items: Iterable[Any]) -> None:
+        self.items = items
+
+
+_ONE_LINE = json.JSONEncoder(sort_keys=True, separators=(", ", ": "), allow_nan=False)
+_ROWS_PER_CHUNK = 256
+
+
+def _emit(value: Any, indent: str) -> Iterator[str]:
+    """``value`` as JSON with ``json.dumps(indent=2, sort_keys=True)``'s layout; ``_Rows``
+    one element per line."""
+    inner = indent + "  "
+    if isinstance(value, _Rows):
+        yield from _emit_rows(value.items, indent)
+    elif isinstance(value, dict) and value:
+        opening = "{\n"
+        for key in sorted(value):
+            yield f"{opening}{inner}{_ONE_LINE.encode(key)}: "
+            yield from _emit(value[key], inner)
+            opening = ",\n"
+        yield f"\n{indent}}}"
+    elif isinstance(value, list) and value:
+        opening = "[\n"
+        for item in value:
+            yield opening + inner
+            yield from _emit(item, inner)
+            opening = ",\n"
+        yield f"\n{indent}]"
+    else:
+        yield _ONE_LINE.encode(value)
+
+
+def _emit_rows(items: Iterable[Any], indent: str) -> Iterator[str]:
+    inner, opening, batch = indent + "  ", "[\n", []
+    for item in items:
+        batch.append(inner + _ONE_LINE.encode(item))
+        if len(batch) == _ROWS_PER_CHUNK:
+            yield opening + ",\n".join(batch)
+            opening, batch = ",\n", []
+    if batch:
+        yield opening + ",\n".join(batch)
+        opening = ",\n"
+    yield "[]" if opening == "[\n" else f"\n{indent}]"
 
 
 # ------------------------------------------------------------------ CSV
@@ -227,16 +310,32 @@ def _layer_cells(layer: LayerProfile) -> list[str]:
             units.fmt_plain(layer.param_reuse) if not counted or layer.param_bytes else "-"]
 
 
-_HEAD = ["#", "layer", "op", "output shape", "precision", "MACs", "FLOPs", "param size", "input",
-         "output size", "FLOP/B", "MACs/param B"]
-_TARGET_HEAD = ["PE util.", "bound", "latency"]
-LEGEND = ("columns: FLOP/B = arithmetic intensity, FLOPs per byte of parameters, inputs and "
-          "outputs; MACs/param B = MACs per parameter byte (weight reuse)")
-TARGET_LEGEND = (f"target columns: PE util. = {metrics.label('utilization')} (share of the PE "
-                 "array kept busy); bound = what limits the layer (compute, memory, overhead, "
-                 "none; '+' heads a fused group that costs the layers marked 'fused')")
+def _header(label: str) -> tuple[str, str]:
+    """A column label on two header lines, split at the space nearest its middle, so
+    spelled-out labels keep the table narrow (``parameter`` over ``size``)."""
+    spaces = [k for k, char in enumerate(label) if char == " "]
+    if not spaces:
+        return "", label
+    cut = min(spaces, key=lambda k: abs(2 * k - len(label)))
+    return label[:cut], label[cut + 1:]
+
+
+# Column labels spelled out from the metric catalogue, each on two header lines.
+_HEAD = [_header(text) for text in (
+    "#", "layer", "op", "output shape", "precision", metrics.label("macs"),
+    metrics.label("flops"), metrics.label("param_bytes"), metrics.label("input_bytes"),
+    metrics.label("output_bytes"), metrics.label("arithmetic_intensity"),
+    metrics.label("param_reuse"))]
+_TARGET_HEAD = [_header(text) for text in (
+    metrics.label("utilization"), "bound", metrics.label("latency_s"))]
+LEGEND = (f"columns: {metrics.label('arithmetic_intensity')} in FLOP per byte of parameters, "
+          f"inputs and outputs; {metrics.label('param_reuse')} = weight reuse")
+TARGET_LEGEND = (f"target columns: {metrics.label('utilization')} = share of the PE array kept "
+                 "busy; bound = what limits the layer (compute, memory, overhead, none; '+' "
+                 "heads a fused group that costs the layers marked 'fusion-member')")
 MARKS = ("marks: - not applicable; precision: what the layer runs at (folded: "
-         "computed offline from constants; fused: a quantize/dequantize pair absorbed)")
+         "computed offline from constants; qdq-absorbed: a quantize/dequantize pair the layers "
+         "beside it absorb)")
 UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? unknown (not modelled or size unknown)"
 
 
@@ -256,8 +355,10 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
               f"opsets: {clean(opsets, 120)}"),
              ""]
     flagged = any(not layer.modelled for layer in profile.layers)
-    head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + (["!"] if flagged else [])
-    rows = [head] + [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
+    head = list(_HEAD) + [cell for _ in runs for cell in _TARGET_HEAD] + \
+        ([("", "!")] if flagged else [])
+    rows = [[top for top, _ in head], [bottom for _, bottom in head]] + \
+        [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
     table = _align(rows, right_from=5)
     if runs:
         table.insert(0, _group_line(rows, [clean(target.name, 40) for target, _ in runs]))
@@ -278,7 +379,7 @@ def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> lis
         if not layer.modelled:  # its cost is unknown, not nothing
             cells += [units.UNKNOWN, "-", units.UNKNOWN]
             continue
-        bound = "fused" if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
+        bound = FUSION_MEMBER if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
         cells += [units.fmt_share(lc.utilization) if lc.engine == "array" else "-", bound,
                   units.fmt_seconds(lc.latency_s)]
     if flagged:

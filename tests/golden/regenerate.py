@@ -9,8 +9,8 @@ Two runs, both on the fictional demo repository that ``roofgate demo`` builds:
 
 Each run's JSON result is stored (``<run>_result.json``) and every text report is
 rendered from it (``<run>.md``, ``.junit.xml``, ``.terminal.txt``, ``.sarif.json``,
-``.annotations.txt``); tests/test_report_golden.py renders the stored results again
-and compares. Run from the repository root after an intended change, then review
+``.annotations.txt``, and the demo's page ``demo.html``); tests/test_report_golden.py
+renders the stored results again and compares. Run from the repository root after an intended change, then review
 ``git diff tests/golden/``::
 
     PYTHONPATH=. python3 tests/golden/regenerate.py
@@ -29,6 +29,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
 RUNS = ("demo", "audit")
+HTML_RUNS = ("demo",)  # the page of one realistic run (the audit's would repeat its layout)
 
 
 def _roofgate(repo: Path, *args: str) -> None:
@@ -68,12 +69,14 @@ def realistic_results(work: Path) -> dict[str, Path]:
 
 def render_all(name: str, result_path: Path) -> dict[str, str]:
     """Every text report of the stored result ``result_path``: file name -> text."""
-    from gate.report import junit, markdown, sarif, terminal
+    from gate.report import html, junit, markdown, sarif, terminal
     from gate.report.annotations import render as annotation_lines
     from gate.report.jsonout import read_result
 
     result = read_result(str(result_path))
+    html_page = {f"{name}.html": html.render(result)} if name in HTML_RUNS else {}
     return {
+        **html_page,
         f"{name}.md": markdown.render(result),
         f"{name}.junit.xml": junit.render(result),
         f"{name}.terminal.txt": terminal.render(result),

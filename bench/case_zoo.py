@@ -1,0 +1,139 @@
+"""Cases 4-5: model zoos (audit and check at -j 1 and -j 2, a 2-shard matrix) and HTML cost."""
+
+from __future__ import annotations
+
+import statistics
+from pathlib import Path
+
+import inputs
+import onnx
+from context import Context, progress
+from inputs import TARGET
+from measure import SAFETY_S, Series, roofgate, rounds, run_process
+from table import Goal, Row, pair_spread, ratio_text, rounds_text, seconds, time_ratio
+
+SECOND_TARGET = "os-16x16-512kib"
+
+
+def zoo_sizes(ctx: Context) -> dict[int, int]:
+    """Zoo size -> rounds (one round for the 1000-model zoo keeps the run under budget)."""
+    if ctx.quick:
+        return {6: ctx.reps(1), 12: ctx.reps(1)}
+    return {200: ctx.reps(3), 1000: ctx.reps(1)}
+
+
+def zoo_repo(folder: Path, count: int, templates: list[onnx.ModelProto]) -> tuple[Path, int]:
+    """A repository of ``count`` models whose pull request (branch pr) retrains every one
+    (all weights new). Returns the repository and the bytes of one side's models."""
+    repo = folder / "repo"
+    inputs.new_repo(repo, inputs.project_config(Path("out"), html=False))
+    size = inputs.write_zoo(repo, count, templates, side=0)
+    inputs.commit_all(repo, "base")
+    inputs.git(repo, "checkout", "-q", "-b", "pr")
+    inputs.write_zoo(repo, count, templates, side=1)
+    inputs.commit_all(repo, "every model retrained")
+    return repo, size
+
+
+def _speedup(j1: Series, j2: Series) -> float | None:
+    return time_ratio(j1, j2)
+
+
+def _parallel_row(label: str, count: int, s: dict[str, Series], goal: Goal | None) -> Row:
+    value = _speedup(s["j1"], s["j2"])
+    return Row("4", f"{label}, {count} models: `-j 1` vs `-j 2` ({rounds_text(s['j1'].runs)})",
+               f"{seconds(s['j1'].seconds)} vs {seconds(s['j2'].seconds)}",
+               f"speed-up {ratio_text(value)}" + pair_spread(s["j1"], s["j2"]),
+               goal.text if goal else "- (goal set at another size)",
+               goal.verdict(value) if goal else "-")
+
+
+def shard_rounds(repo: Path, folder: Path, runs: int) -> tuple[Series, list[float], bool]:
+    """Unsharded ``audit -j 1`` against a 2-job matrix (shard 1, shard 2, merge; each a whole
+    process, run one after the other as if each had the machine to itself), in turns.
+    Returns the unsharded series, each round's critical path (slower shard + merge) and
+    whether the merged JSON is byte-identical to the unsharded one."""
+    unsharded_json, merged_json = folder / "unsharded.json", folder / "merged.json"
+    unsharded = roofgate("audit", "-j", "1", "--json", str(unsharded_json), cwd=repo)
+    shards = [roofgate("audit", "-j", "1", "--shard", f"{i}/2", "--shard-out",
+                       str(folder / f"shard{i}.json"), cwd=repo) for i in (1, 2)]
+    merge = roofgate("merge", *(str(folder / f"shard{i}.json") for i in (1, 2)),
+                     "--json", str(merged_json), cwd=repo)
+    series, critical = Series(), []
+    for index in range(runs):
+        if index % 2 == 0:
+            series.samples.append(run_process(unsharded, SAFETY_S))
+        parts = [run_process(command, SAFETY_S).seconds or 0.0 for command in (*shards, merge)]
+        critical.append(max(parts[:2]) + parts[2])
+        if index % 2 == 1:
+            series.samples.append(run_process(unsharded, SAFETY_S))
+    same = unsharded_json.read_bytes() == merged_json.read_bytes()
+    return series, critical, same
+
+
+def _shard_row(count: int, unsharded: Series, critical: list[float], same: bool,
+               goal: Goal | None) -> Row:
+    path = statistics.median(critical)
+    value = path / unsharded.seconds if unsharded.seconds else None
+    return Row("4", f"2-shard matrix, {count} models: critical path (slower shard process + "
+               f"merge process) vs unsharded `audit -j 1` ({rounds_text(len(critical))})",
+               f"{seconds(path)} vs {seconds(unsharded.seconds)}; merged JSON identical: "
+               f"{'yes' if same else 'NO'}", ratio_text(value),
+               goal.text if goal else "- (goal set at another size)",
+               (goal.verdict(value) if same else "missed") if goal else "-")
+
+
+def case_zoos(ctx: Context) -> list[Row]:
+    """Zoos of 200 and 1000 models with realistic (random fp32) inline weights."""
+    templates = inputs.zoo_templates(ctx.quick)
+    sizes = zoo_sizes(ctx)
+    small, big = list(sizes)
+    rows = []
+    for count, runs in sizes.items():
+        folder = ctx.work / f"zoo{count}"
+        progress(f"case 4: writing a zoo of {count} models (two commits)")
+        repo, size_bytes = zoo_repo(folder, count, templates)
+        progress(f"case 4: {count} models, {size_bytes / 2**20:.0f} MiB per side, "
+                 f"{runs} round(s)")
+        progress(f"case 4: audit -j 1 vs -j 2, {count} models")
+        audit = rounds({f"j{j}": roofgate("audit", "-j", str(j), cwd=repo) for j in (1, 2)},
+                       runs)
+        rows.append(_parallel_row(f"`audit` ({size_bytes / 2**20:.0f} MiB of weights)", count,
+                                  audit, Goal(">=", 1.7, ">= 1.7x") if count == small else None))
+        progress(f"case 4: 2-shard matrix vs unsharded, {count} models")
+        unsharded, critical, same = shard_rounds(repo, folder, runs)
+        rows.append(_shard_row(count, unsharded, critical, same,
+                               Goal("<=", 0.65, "<= 0.65x") if count == small else None))
+        progress(f"case 4: check -j 1 vs -j 2, {count} models")
+        check = rounds({f"j{j}": roofgate("check", "--base", "main", "-j", str(j), cwd=repo)
+                        for j in (1, 2)}, runs)
+        rows.append(_parallel_row("`check`, every model changed", count, check,
+                                  Goal(">=", 1.7, ">= 1.7x") if count == big else None))
+    return rows
+
+
+# --- 5. HTML -----------------------------------------------------------------------
+
+def case_html(ctx: Context) -> list[Row]:
+    """What ``--html`` adds to an audit, per model x target (whole processes, in turns)."""
+    count = 2 if ctx.quick else 20
+    folder = ctx.work / "html"
+    inputs.write_zoo(folder, count, inputs.zoo_templates(ctx.quick), side=0)
+    common = ("audit", str(folder / "models"), "-t", TARGET, "-t", SECOND_TARGET,
+              "-p", "default", "-j", "1", "--json", str(ctx.work / "html.json"))
+    s = rounds({"plain": roofgate(*common),
+                "html": roofgate(*common, "--html", str(ctx.work / "report.html"))},
+               ctx.reps(3))
+    pairs = count * 2
+    added = (s["html"].seconds - s["plain"].seconds) / pairs \
+        if s["html"].seconds is not None and s["plain"].seconds is not None else None
+    goal = Goal("<=", 0.3, "<= 0.3 s per model x target")
+    return [Row("5", f"HTML report: `audit` of {count} models x 2 targets with vs without "
+                f"`--html` ({rounds_text(s['html'].runs)})",
+                f"{seconds(s['html'].seconds)} vs {seconds(s['plain'].seconds)}",
+                f"{ratio_text(time_ratio(s['html'], s['plain']))}; "
+                f"{added:+.3f} s per model x target" if added is not None else "n/a",
+                goal.text, goal.verdict(added))]
+
+
+
