@@ -81,8 +81,12 @@ def _pretty(value: Any, indent: str) -> str:
 
 
 def _compact(value: Any) -> str:
-    return json.dumps(value, sort_keys=True, separators=(", ", ": "), ensure_ascii=True,
-                      allow_nan=False)
+    return _COMPACT.encode(value)
+
+
+# One encoder for every container (json.dumps with options builds a new one per call).
+_COMPACT = json.JSONEncoder(sort_keys=True, separators=(", ", ": "), ensure_ascii=True,
+                            allow_nan=False)
 
 
 def snapshot_to_dict(runs: Iterable[RunRecord]) -> dict[str, Any]:
