@@ -122,6 +122,7 @@ class _Converter:
         self.declared = declared
         self.opset = opset
         self.warnings: list[str] = []
+        self.types: dict[bytes, tuple[Shape | None, str]] = {}  # see _value_info
 
     def graph(self, proto: onnx.GraphProto, outer: dict[str, _Scope] | None,
               depth: int) -> Graph:
@@ -135,8 +136,10 @@ class _Converter:
         inputs = tuple(value_info(v, self.declared) for v in proto.input
                        if v.name not in initializers)
         for value in (*proto.input, *proto.value_info, *proto.output):
-            if value.name not in initializers or value.type.tensor_type.HasField("shape"):
-                infos.setdefault(value.name, value_info(value, self.declared))
+            name = value.name
+            if name not in infos and (name not in initializers
+                                      or value.type.tensor_type.HasField("shape")):
+                infos[name] = self._value_info(value)
         readers = _scan_nodes(proto, infos, consts)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
@@ -151,6 +154,17 @@ class _Converter:
         return Graph(nodes=nodes, initializers=initializers, inputs=inputs,
                      outputs=tuple(ctx["infos"].get(v.name) or value_info(v, self.declared)
                                    for v in proto.output))
+
+    def _value_info(self, value: onnx.ValueInfoProto) -> TensorInfo:
+        """``value_info``, its shape and dtype remembered by the type's bytes (a graph's
+        tensors share a few types; reading a shape dim by dim costs microseconds)."""
+        key = value.type.SerializeToString()
+        known = self.types.get(key)
+        if known is None:
+            info = value_info(value, self.declared)
+            self.types[key] = (info.shape, info.dtype)
+            return info
+        return TensorInfo(value.name, known[0], known[1])
 
     def _initializers(self, proto: onnx.GraphProto, infos: dict[str, TensorInfo],
                       sources: dict[str, ParamSource],
