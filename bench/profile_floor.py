@@ -17,11 +17,13 @@ import os
 import statistics
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent.parent
 TARGET = "ws-64x64-4mib"
+EMPTY = tempfile.mkdtemp(prefix="roofgate-bench-")
 FLOOR = ("import sys, onnx, onnx.shape_inference; "
          "onnx.shape_inference.infer_shapes(onnx.load(sys.argv[1]))")
 
@@ -30,7 +32,9 @@ def run_once(argv: list[str], checkout: str) -> tuple[float, float, float]:
     """Wall seconds, CPU seconds and peak RSS (MiB) of one whole process."""
     env = {**os.environ, "PYTHONPATH": checkout}
     start = time.perf_counter()
-    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
+    # cwd: an empty folder, so `-c` imports gate from PYTHONPATH, not from where we stand
+    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env,
+                            cwd=EMPTY)
     _, status, usage = os.wait4(proc.pid, 0)
     seconds = time.perf_counter() - start
     stderr = proc.stderr.read().decode() if proc.stderr else ""
@@ -48,9 +52,10 @@ def main() -> None:
                         help="the roofgate source tree to run (default: this one)")
     args = parser.parse_args()
     for model in args.models:
+        path = str(Path(model).resolve())
         candidate = [sys.executable, "-c", "from gate.cli import main; main()", "profile",
-                     model, "-t", TARGET, "--format", args.format]
-        floor = [sys.executable, "-c", FLOOR, model]
+                     path, "-t", TARGET, "--format", args.format]
+        floor = [sys.executable, "-c", FLOOR, path]
         time_ratios, cpu_ratios, mem_ratios, rows = [], [], [], []
         for run in range(args.runs):
             order = (candidate, floor) if run % 2 == 0 else (floor, candidate)

@@ -20,7 +20,8 @@ from __future__ import annotations
 
 import os
 from collections import ChainMap
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
+from types import MappingProxyType
 from typing import Any
 
 import onnx
@@ -46,6 +47,9 @@ _INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", 
                          "UINT64", "BOOL", "INT4", "UINT4"})
 _Scope = ChainMap[str, Any]  # name -> value, innermost scope first
 _NO_POSITIONS: frozenset[int] = frozenset()
+# One read-only empty mapping shared by every node without attributes, subgraphs, ...
+# (a dict each costs 64 bytes per field per node: megabytes on large graphs).
+_NOTHING: Mapping[Any, Any] = MappingProxyType({})
 
 
 def dtype_name(elem_type: int) -> str:
@@ -229,11 +233,12 @@ class _Converter:
             domain="" if domain == "ai.onnx" else domain,
             inputs=inputs,
             outputs=outputs,
-            attributes=attributes,
+            attributes=attributes or _NOTHING,
             param_inputs=frozenset(params) if params else _NO_POSITIONS,
-            subgraphs=subgraphs,
-            const_values={i: consts[n] for i, n in enumerate(input_names) if n and n in consts},
-            param_sources=input_sources,
+            subgraphs=subgraphs or _NOTHING,
+            const_values={i: consts[n] for i, n in enumerate(input_names)
+                          if n and n in consts} or _NOTHING,
+            param_sources=input_sources or _NOTHING,
             folded=folded,
             fused=not folded and walk.fuses(proto, input_names, output_names),
             unused_outputs=frozenset(i for i, n in enumerate(output_names)
