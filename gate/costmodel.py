@@ -23,6 +23,10 @@ from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
 from gate.targets.spec import DATAFLOWS, EngineSpec, TargetProfile, normal_precision
 
+# The engine of a layer run inside a fused group (its cost is on the group's head); distinct
+# from the profile role "qdq-absorbed" (a quantize/dequantize node absorbed by precision).
+FUSION_MEMBER = "fusion-member"
+
 
 @dataclass(frozen=True, slots=True)
 class EnergyBreakdown:
@@ -68,7 +72,7 @@ class LayerCost:
 
     index: int
     name: str
-    engine: str  # "array", "vector", "host", "fused" (costed in its group's head) or "none"
+    engine: str  # "array", "vector", "host", FUSION_MEMBER (costed in its group's head), "none"
     cycles: int | None  # engine cycles for the compute (0 for none)
     utilization: float | None  # useful MACs / (PE count x MACs per PE per cycle x cycles); 0 off the array
     compute_s: float | None
@@ -271,7 +275,7 @@ def _fused_member(layer: LayerProfile, head_name: str) -> LayerCost:
     """No time or energy of its own; its tensors stream through the head's output path, so
     the head's buffer fit applies (it is reported as fitting)."""
     return LayerCost(
-        index=layer.index, name=layer.name, engine="fused", cycles=0, utilization=0.0,
+        index=layer.index, name=layer.name, engine=FUSION_MEMBER, cycles=0, utilization=0.0,
         compute_s=0.0, memory_s=0.0, overhead_s=0.0, latency_s=0.0, bound="none",
         param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=True,
         activations_fit=True, energy=_NO_ENERGY, fused_into=head_name)

@@ -8,7 +8,7 @@ need them; a tensor with external data is never read.
 Parameters (``Node.param_inputs``) are inputs constant at inference: initializers,
 Constant nodes and tensors folded from constants alone (``gate.model.constants``
 decides what folds, how each constant is stored, and which constants are
-metadata rather than parameters). Folded nodes, fused activation
+metadata rather than parameters). Folded nodes, absorbed activation
 QuantizeLinear -> DequantizeLinear pairs and unused outputs are marked on the
 ``Node``.
 
@@ -240,7 +240,7 @@ class _Converter:
                           if n and n in consts} or _NOTHING,
             param_sources=input_sources or _NOTHING,
             folded=folded,
-            fused=not folded and walk.fuses(proto, input_names, output_names),
+            qdq_absorbed=not folded and walk.absorbs_qdq(proto, input_names, output_names),
             unused_outputs=frozenset(i for i, n in enumerate(output_names)
                                      if n and n not in readers) or _NO_POSITIONS,
         )
@@ -267,14 +267,14 @@ class _Converter:
 
 
 class _Walk:
-    """The state of converting one graph's nodes in order: scopes, readers, fused pairs."""
+    """The state of converting one graph's nodes in order: scopes, readers, absorbed Q/DQ pairs."""
 
     def __init__(self, ctx: dict[str, _Scope], readers: dict[str, set[str]],
                  used_names: set[str]) -> None:
         self.ctx = ctx
         self.readers = readers
         self.used_names = used_names
-        self.fused_quantized: set[str] = set()
+        self.absorbed_quantized: set[str] = set()
         self.nested = len(ctx["infos"].maps) > 1
         self.infos = self.scope("infos")  # looked up for every node: resolved once
         self.sources = self.scope("sources")
@@ -287,19 +287,19 @@ class _Walk:
     def local(self, name: str) -> Any:
         return self.ctx[name].maps[0]
 
-    def fuses(self, proto: onnx.NodeProto, input_names: list[str],
-              output_names: list[str]) -> bool:
+    def absorbs_qdq(self, proto: onnx.NodeProto, input_names: list[str],
+                    output_names: list[str]) -> bool:
         """An activation QuantizeLinear read only by DequantizeLinear nodes, and those nodes."""
         if proto.domain not in ("", "ai.onnx") or not output_names:
             return False
         if proto.op_type == "QuantizeLinear":
             readers = self.readers.get(output_names[0], set())
             if readers and readers == {"DequantizeLinear"}:
-                self.fused_quantized.add(output_names[0])
+                self.absorbed_quantized.add(output_names[0])
                 return True
             return False
         return (proto.op_type == "DequantizeLinear" and bool(input_names)
-                and input_names[0] in self.fused_quantized)
+                and input_names[0] in self.absorbed_quantized)
 
     def unique_name(self, name: str, op_type: str, index: int) -> str:
         return _unique_name(name, op_type, index, self.used_names)

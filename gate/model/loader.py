@@ -38,6 +38,7 @@ import onnx.shape_inference
 from google.protobuf.message import DecodeError
 
 from gate.errors import InputError
+from gate.model.contrib_shapes import register_contrib_schemas
 from gate.model.convert import (
     UNKNOWN_DIM,
     all_graph_protos,
@@ -54,7 +55,6 @@ from gate.model.shape_values import refine_shapes
 from gate.model.shapes import bind_input_shapes, sizing_notes
 from gate.model.skeleton import file_without_weights, without_weights
 from gate.model.text import repair_text_fields
-from gate.ops.contrib_shapes import register_contrib_schemas
 
 # Files at least this large go through the path-based shape inference (protobuf's
 # in-memory serialisation limit is 2 GiB).
