@@ -10,6 +10,8 @@ from gate.records import LayerRecord, Metric, RunRecord, UnmodelledRecord
 from gate.targets.spec import TargetProfile
 
 _ENERGY_PARTS = tuple(EnergyBreakdown().as_dict())
+_ENERGY_KEYS = tuple(f"energy_{part}" for part in _ENERGY_PARTS)
+_UNKNOWN_ENERGY_PARTS: dict[str, Metric] = dict.fromkeys(_ENERGY_KEYS)
 
 
 def build_run_record(model_path: str, profile: ModelProfile, cost: ModelCost,
@@ -55,10 +57,10 @@ def _achieved(flops: int | None, latency_s: float | None) -> float | None:
 
 
 def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
+    """One layer's record; its energy parts spelled out (called per layer per target)."""
     energy = cost.energy
-    parts: dict[str, Metric] = ({f"energy_{part}": value for part, value in energy.as_dict().items()}
-                                if energy is not None else
-                                {f"energy_{part}": None for part in _ENERGY_PARTS})
+    parts: dict[str, Metric] = (_UNKNOWN_ENERGY_PARTS if energy is None
+                                else dict(zip(_ENERGY_KEYS, energy.as_dict().values())))
     metrics: dict[str, Metric] = {
         "macs": layer.macs,
         "flops": layer.flops,

@@ -701,3 +701,23 @@ def test_changed_layers_beyond_the_cap_are_counted_largest_change_first() -> Non
     page = render(GateResult("check", (), (entry,)))
     assert (f"And {moved - 200} more changed layers with a smaller latency change and "
             f"{picked.rest_unchanged} layers, unchanged; full detail in the JSON report.") in page
+
+
+def test_a_rule_failing_at_every_layer_lists_its_worst_findings_and_counts_the_rest() -> None:
+    from gate.report.html_tables import MAX_FINDINGS_PER_RULE
+    from gate.result import Finding, Verdict
+
+    layers = [make_layer(f"l{k}", 10_000, 500, 20_000) for k in range(5000)]
+    run = make_run("models/m.onnx", "t", layers)
+    findings = tuple(Finding(f"l{k}", "utilization", 0.01 * (k % 7), 0.3,
+                             f"layer l{k}: utilization below 30%", FAIL) for k in range(5000))
+    verdict = Verdict("min-util", "min_layer_metric", "error", "d", run.model, "t", FAIL,
+                      "5000 layers below 30%", "fuse it", findings)
+    page = render(GateResult("check", (), (Entry(run.model, "t", run, None, None,
+                                                  (verdict,)),)))
+    rules = page.split("<h3>Rules</h3>")[1].split("</table>")[0]
+    shown = re.findall(r'<tr class="finding failing" data-layer="([^"]*)"', rules)
+    assert len(shown) == MAX_FINDINGS_PER_RULE
+    assert set(shown) <= {f"l{k}" for k in range(5000) if k % 7 == 0}  # furthest below first
+    assert f"And {5000 - MAX_FINDINGS_PER_RULE:,} more findings of this rule" in rules
+    assert len(page.encode("utf-8")) < 1024 * 1024

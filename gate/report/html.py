@@ -263,13 +263,26 @@ def _coverage(head: RunRecord) -> str:
 def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     assert entry.head is not None
     head, base = entry.head, entry.base
-    sel = charts.roof_points(head)
+    points = charts.roof_points(head)
     roof = charts.roofline_svg(head, base, f"{anchor}-roofline", flagged=flagged,
-                               head_points=sel)
+                               head_points=points)
+    chosen = charts.bar_layers(head)
+    bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers",
+                                 flagged=flagged, bars=chosen)
+    return (f"<h3>Roofline</h3>\n<figure>{roof}<figcaption>"
+            f"{_roof_caption(points, head, base is not None, bool(flagged))}."
+            f"</figcaption></figure>\n<h3>Latency and energy per layer</h3>\n"
+            f"<figure>{bars}<figcaption>{_bar_caption(chosen, bool(flagged))}; energy split "
+            f"by component.</figcaption></figure>\n")
+
+
+def _roof_caption(sel: charts.RoofSelection, head: RunRecord, with_base: bool,
+                  with_flags: bool) -> str:
+    """What the roofline shows, and every layer it does not (never silently)."""
     caption = [(f"{_layers(len(sel.points))} plotted at the FLOP/s each achieves, marker area "
                "by share of latency; the roof is what the target attains at "
                f"{html_escape(head.precision)}")]
-    if flagged:
+    if with_flags:
         caption.append("ringed in red: layers a failing rule names")
     if sel.left_out:
         caption.append(f"{_layers(sel.left_out)} with the smallest latency left out")
@@ -282,30 +295,28 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     if sel.unknown:
         caption.append(f"{_layers(sel.unknown)} with an unknown intensity, FLOP/s or latency "
                        "not plotted (unknown, not zero)")
-    if base is not None:
+    if with_base:
         caption.append("hollow markers are the base")
     caption.append("intensity counts every byte a layer moves (parameters, inputs, outputs), "
                    "so a layer whose activations stay in on-chip buffers can sit above the "
                    "DRAM bandwidth slope")
-    chosen = charts.bar_layers(head)
-    shown, left_out = chosen.layers, chosen.left_out
-    bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers",
-                                 flagged=flagged, bars=chosen)
-    bar_caption = f"the {_layers(len(shown))} with the largest latency"
-    if left_out:
-        bar_caption += f"; {_layers(left_out)} more (the table below lists the ones that matter)"
-    unknown = chosen.unknown_latency
-    if unknown:
-        bar_caption += f"; {_layers(unknown)} with an unknown latency not drawn (unknown, not zero)"
-    no_energy = sum(1 for layer in shown if charts.unknown_energy(layer))
+    return "; ".join(caption)
+
+
+def _bar_caption(chosen: charts.BarSelection, with_flags: bool) -> str:
+    """What the bar chart shows, and the layers it leaves out or cannot draw."""
+    caption = f"the {_layers(len(chosen.layers))} with the largest latency"
+    if chosen.left_out:
+        caption += f"; {_layers(chosen.left_out)} more (the table below lists the ones that matter)"
+    if chosen.unknown_latency:
+        caption += (f"; {_layers(chosen.unknown_latency)} with an unknown latency not drawn "
+                    "(unknown, not zero)")
+    no_energy = sum(1 for layer in chosen.layers if charts.unknown_energy(layer))
     if no_energy:
-        bar_caption += f"; energy unknown for {_layers(no_energy)} shown (marked ?)"
-    if flagged:
-        bar_caption += "; rows shaded red are named by a failing rule"
-    return (f"<h3>Roofline</h3>\n<figure>{roof}<figcaption>{'; '.join(caption)}."
-            f"</figcaption></figure>\n<h3>Latency and energy per layer</h3>\n"
-            f"<figure>{bars}<figcaption>{bar_caption.capitalize()}; energy split by "
-            f"component.</figcaption></figure>\n")
+        caption += f"; energy unknown for {_layers(no_energy)} shown (marked ?)"
+    if with_flags:
+        caption += "; rows shaded red are named by a failing rule"
+    return caption[:1].upper() + caption[1:]  # (str.capitalize would lower the rest)
 
 
 def _layers(count: int) -> str:

@@ -145,6 +145,11 @@ def _totals(entry: Entry, metric: str) -> tuple[Metric | None, Metric | None]:
 
 # --- rules ----------------------------------------------------------------------
 
+# Findings listed under a rule (failing ones first, furthest past the limit first): a rule
+# that fails at every layer of a 200k-layer model must not write 200k rows.
+MAX_FINDINGS_PER_RULE = 20
+
+
 def rules_table(entry: Entry) -> str:
     """Every rule with its outcome, failing first; the findings (layer, sentence, waiver) under
     each, and the remedy once per rule. Never in a scroll box: it is what a reader came for."""
@@ -159,7 +164,12 @@ def rules_table(entry: Entry) -> str:
                     f"<td>{html_escape(v.summary)}<br><span class=\"note\">"
                     f"{html_escape(v.description)}</span></td><td>{remedy}</td></tr>")
         ordered = [*v.failing, *(f for f in v.findings if f.status != FAIL)]
-        rows += [_finding_row(v, f) for f in ordered]
+        rows += [_finding_row(v, f) for f in ordered[:MAX_FINDINGS_PER_RULE]]
+        if len(ordered) > MAX_FINDINGS_PER_RULE:
+            rest = len(ordered) - MAX_FINDINGS_PER_RULE
+            rows.append(f"<tr class=\"finding rest\" data-rest=\"{rest}\"><td></td>"
+                        f"<td colspan=\"3\">And {rest:,} more finding{'s' if rest != 1 else ''}"
+                        " of this rule; full detail in the JSON report.</td></tr>")
     headers = [("outcome", False), ("rule", False), ("summary", False), ("fix", False)]
     return _table(headers, rows, sortable=False)
 

@@ -18,7 +18,7 @@ from functools import lru_cache
 from typing import Any
 
 from gate import metrics, units
-from gate.costmodel import ModelCost
+from gate.costmodel import FUSION_MEMBER, ModelCost
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
@@ -57,8 +57,14 @@ def render_chunks(fmt: str, profile: ModelProfile, runs: Sequence[Run],
     if fmt == "json":
         return json_chunks(profile, records)
     if fmt == "csv":  # CSV keeps model text as is, apart from runner markers (gate/logsafe)
-        return iter([defuse_runner_markers(to_csv(profile, runs))])
-    return iter([defuse_runner_markers(to_table(profile, runs))])
+        return iter([_defused(to_csv(profile, runs))])
+    return iter([_defused(to_table(profile, runs))])
+
+
+def _defused(text: str) -> str:
+    """``defuse_runner_markers``, skipped when no marker can be in the text: every marker
+    holds ``##`` or ``::`` (two substring searches instead of two regex passes)."""
+    return defuse_runner_markers(text) if "##" in text or "::" in text else text
 
 
 # ------------------------------------------------------------------ JSON
@@ -326,9 +332,10 @@ LEGEND = (f"columns: {metrics.label('arithmetic_intensity')} in FLOP per byte of
           f"inputs and outputs; {metrics.label('param_reuse')} = weight reuse")
 TARGET_LEGEND = (f"target columns: {metrics.label('utilization')} = share of the PE array kept "
                  "busy; bound = what limits the layer (compute, memory, overhead, none; '+' "
-                 "heads a fused group that costs the layers marked 'fused')")
+                 "heads a fused group that costs the layers marked 'fusion-member')")
 MARKS = ("marks: - not applicable; precision: what the layer runs at (folded: "
-         "computed offline from constants; fused: a quantize/dequantize pair absorbed)")
+         "computed offline from constants; qdq-absorbed: a quantize/dequantize pair the layers "
+         "beside it absorb)")
 UNMODELLED_MARKS = "; ! layer not modelled (see coverage); ? unknown (not modelled or size unknown)"
 
 
@@ -372,7 +379,7 @@ def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> lis
         if not layer.modelled:  # its cost is unknown, not nothing
             cells += [units.UNKNOWN, "-", units.UNKNOWN]
             continue
-        bound = "fused" if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
+        bound = FUSION_MEMBER if lc.fused_into else lc.bound + ("+" if lc.fused_ops else "")
         cells += [units.fmt_share(lc.utilization) if lc.engine == "array" else "-", bound,
                   units.fmt_seconds(lc.latency_s)]
     if flagged:
