@@ -11,11 +11,13 @@ N times one target.
 from __future__ import annotations
 
 from dataclasses import dataclass, fields
+from functools import lru_cache
 from math import ceil
 from typing import Any, TypeVar
 
 from gate.errors import InputError, InternalError
 from gate.fusion import NO_FUSION, FusedGroup, FusionPlan, plan_fusion
+from gate.ops.registry import GemmShape
 from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
 from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
@@ -404,7 +406,7 @@ def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> Laye
     precision = _layer_precision(layer, ctx)
     spec = target.precision_spec(precision)
     elem_bytes = target.element_bytes(precision)
-    maps = [(map_gemm(g, target.pe_rows, target.pe_cols, target.dataflow), g.weights_are_params)
+    maps = [(_mapped(g, target.pe_rows, target.pe_cols, target.dataflow), g.weights_are_params)
             for g in work.gemms if g.macs > 0]
     weight_elems = sum(g.k * g.n * g.count for g in work.gemms if g.weights_are_params)
     base_cycles = sum(m.cycles for m, _ in maps)
@@ -431,6 +433,11 @@ def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> Laye
         fit=(params_fit, acts_fit), precision=precision, array_macs=macs,
         arithmetic_j=macs * spec.mac_energy_j + side_j + epilogue_j,
         noc_j=noc_bytes * target.noc_energy_j_per_byte)
+
+
+@lru_cache(maxsize=1 << 14)  # layers repeat a few GEMM shapes; the mapping is pure
+def _mapped(gemm: GemmShape, rows: int, cols: int, dataflow: str) -> GemmMapping:
+    return map_gemm(gemm, rows, cols, dataflow)
 
 
 def _side_work(target: TargetProfile, ops: int, mac_energy_j: float) -> tuple[float, float]:
