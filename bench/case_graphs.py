@@ -107,8 +107,6 @@ def _chain_repo(folder: Path, nodes: int) -> Path:
     inputs.new_repo(repo, inputs.project_config(Path("out"), html=True))
     model = repo / "models" / "chain.onnx"
     model.parent.mkdir(parents=True)
-
-
     onnx.save(inputs.chain_model(nodes), str(model))
     inputs.commit_all(repo, "base")
     inputs.git(repo, "checkout", "-q", "-b", "pr")
@@ -119,8 +117,6 @@ def _chain_repo(folder: Path, nodes: int) -> Path:
 
 def _chain_commands(folder: Path, nodes: int, skip: set[str]) -> dict[str, Command]:
     """The commands measured on one graph size (those stopped at a smaller size left out)."""
-
-
     folder.mkdir(parents=True)
     path = folder / "chain.onnx"
     onnx.save(inputs.chain_model(nodes), str(path))
@@ -164,8 +160,7 @@ def measure_chains(ctx: Context) -> dict[int, dict[str, Series]]:
 
 
 def assert_fully_modelled_chain(ctx: Context) -> None:
-
-
+    """The chain and its one-node change are fully modelled (else the rows time nothing)."""
     folder = ctx.work / "modelled"
     folder.mkdir()
     for name, model in (("base", inputs.chain_model(30)),
@@ -242,6 +237,27 @@ def marginal_slope(results: dict[int, dict[str, Series]], name: str) -> float | 
     return (b.seconds - a.seconds) / (big - small)
 
 
+def overall_slope(results: dict[int, dict[str, Series]], name: str) -> float | None:
+    """Seconds per node between the smallest and the biggest size (the floor's steps are
+    within the noise of its start-up; the whole range is not)."""
+    small, big = min(results), max(results)
+    a, b = results[small].get(name), results[big].get(name)
+    if a is None or b is None or a.seconds is None or b.seconds is None:
+        return None
+    return (b.seconds - a.seconds) / (big - small)
+
+
+def _slope_against_floor(results: dict[int, dict[str, Series]], name: str) -> str:
+    slope, floor = overall_slope(results, name), overall_slope(results, "floor")
+    span = f"{size_label(min(results))}->{size_label(max(results))}"
+    if slope is None or floor is None:
+        return f"{span}: n/a"
+    if floor <= 0:
+        return f"{span}: {slope * 1e6:.0f} us vs floor's within noise"
+    return (f"{span}: {slope * 1e6:.0f} us vs floor's {floor * 1e6:.1f} us "
+            f"({ratio_text(slope / floor)})")
+
+
 def case_chains(ctx: Context) -> list[Row]:
     """Chain graphs of growing size: profile vs its floor, evaluate and check vs profile."""
     results = measure_chains(ctx)
@@ -258,14 +274,10 @@ def case_chains(ctx: Context) -> list[Row]:
                   "both sides read from git, JSON+markdown+JUnit+HTML) vs `profile`, time",
                   Goal("<=", 3, "<= 3x"), goal_size),
     ]
-    floor_slope = marginal_slope(results, "floor")
     for name in CHAIN_COMMANDS:
-        slope = marginal_slope(results, name)
-        relative = slope / floor_slope if slope is not None and floor_slope else None
         rows.append(Row("3", f"marginal cost per node, `{name}`",
                         ", ".join(marginal_us_per_node(results, name)),
-                        "last step vs floor's: " + ratio_text(relative) if name != "floor"
-                        else "-"))
+                        _slope_against_floor(results, name) if name != "floor" else "-"))
     rows.append(report_sizes(ctx, results))
     return rows
 

@@ -63,8 +63,11 @@ def shard_rounds(repo: Path, folder: Path, runs: int) -> tuple[Series, list[floa
     for index in range(runs):
         if index % 2 == 0:
             series.samples.append(run_process(unsharded, SAFETY_S))
-        parts = [run_process(command, SAFETY_S).seconds or 0.0 for command in (*shards, merge)]
-        critical.append(max(parts[:2]) + parts[2])
+        parts = [run_process(command, SAFETY_S).seconds for command in (*shards, merge)]
+        if any(part is None for part in parts):
+            raise SystemExit(f"a shard or the merge ran past {SAFETY_S:.0f} s")
+        s1, s2, merged = (part or 0.0 for part in parts)
+        critical.append(max(s1, s2) + merged)
         if index % 2 == 1:
             series.samples.append(run_process(unsharded, SAFETY_S))
     same = unsharded_json.read_bytes() == merged_json.read_bytes()

@@ -122,6 +122,7 @@ def warm_up(work: Path) -> None:
 def run_cases(options: argparse.Namespace) -> str:
     """Every chosen case in order; returns the README block (header, table, load)."""
     rows: list[str] = []
+    header = _header(options)  # the commit measured, before anything can change it
     started = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="roofgate-bench-") as tmp:
         warm_up(Path(tmp))
@@ -138,7 +139,7 @@ def run_cases(options: argparse.Namespace) -> str:
                     print(rows[-1], flush=True)
         load = watch.stop()
     minutes = (time.perf_counter() - started) / 60
-    return "\n".join([_header(options), "", HEADER, *rows, "",
+    return "\n".join([header, "", HEADER, *rows, "",
                       f"{load} The run took {minutes:.1f} minutes."])
 
 

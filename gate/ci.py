@@ -85,12 +85,26 @@ def _check_changes(root: Path, config: ProjectConfig, changes: Sequence[gitscan.
     stored = base_by_model(read_snapshot_runs(baseline)) if baseline else None
     errors: dict[str, list[str]] = {}
     jobs, blobs = _check_jobs(config, changes, revs, stored)
+    early: dict[str, GateResult] = {}
+    left = {c.path: sum(1 for key in blobs if _change_path(key) == c.path) for c in changes}
+    by_path = {c.path: c for c in changes}
+
+    def judge_when_complete(key: str, analysed: _Analysed) -> None:
+        """Judge a change as soon as all its sides are in, while the workers go on; an
+        addition or deletion waits (it may turn out a rename, found by structure)."""
+        change = by_path[_change_path(key)]
+        left[change.path] -= 1
+        if not left[change.path] and change.status not in ("added", "deleted"):
+            early[change.path] = _judge_change(change, analysed, stored,
+                                               errors.get(change.path, []), policies, today)
+
     with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp, \
             closing(gitscan.BlobReader(root)) as reader:
         read = _blob_reader(root, reader, blobs, Path(tmp), errors)
-        analysed = engine.run_jobs(jobs, workers, prepare=read)
+        analysed = engine.run_jobs(jobs, workers, prepare=read, done=judge_when_complete)
     changes = _pair_by_structure(list(changes), analysed, stored)
-    results = [_judge_change(change, analysed, stored, errors.get(change.path, []), policies,
+    results = [early[change.path] if change.path in early and not change.by_structure else
+               _judge_change(change, analysed, stored, errors.get(change.path, []), policies,
                              today) for change in changes]
     return combine_results(results, "check")
 
@@ -190,6 +204,11 @@ def _base_key(model: str) -> str:
     return f"\0base\0{model}"
 
 
+def _change_path(key: str) -> str:
+    """The change a result key belongs to (a head key is the path itself)."""
+    return key.removeprefix("\0base\0")
+
+
 def _group(config: ProjectConfig, change: gitscan.ModelChange) -> ModelGroup:
     for path in (change.head_path, change.base_path):
         if path is not None:
@@ -202,24 +221,23 @@ def _group(config: ProjectConfig, change: gitscan.ModelChange) -> ModelGroup:
 def _check_jobs(config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
                 revs: tuple[str, str], stored: object,
                 ) -> tuple[list[engine.Job], dict[str, tuple[str, str, str]]]:
-    """Every side's job (head sides first) and where its blob is: result key -> (side,
+    """Every side's job (a change's sides together) and where its blob is: result key -> (side,
     revision, path). ``revs`` are the (head, base) revisions the blobs are read from;
     nothing is read here (``_blob_reader`` reads each blob just before its analysis)."""
     head, base_commit = revs
     jobs: list[engine.Job] = []
-    base_jobs: list[engine.Job] = []
     blobs: dict[str, tuple[str, str, str]] = {}
-    for change in changes:
+    for change in changes:  # both sides of a change together: it can be judged early
         group = _group(config, change)
-        sides = [("head", head, change.head_path, change.path, jobs)]
+        sides = [("head", head, change.head_path, change.path)]
         if stored is None:
-            sides.append(("base", base_commit, change.base_path, _base_key(change.path), base_jobs))
-        for side, rev, path, key, out in sides:
+            sides.append(("base", base_commit, change.base_path, _base_key(change.path)))
+        for side, rev, path, key in sides:
             if path is None:
                 continue
             blobs[key] = (side, rev, path)
-            out.append(replace(make_job(config, group, change.path, change.path), key=key))
-    return [*jobs, *base_jobs], blobs
+            jobs.append(replace(make_job(config, group, change.path, change.path), key=key))
+    return jobs, blobs
 
 
 def _blob_reader(root: Path, reader: gitscan.BlobReader, blobs: Mapping[str, tuple[str, str, str]],
@@ -315,8 +333,14 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
     refuse_unjudged_pairs(config, policies, planned)
     jobs = [make_job(config, _audit_group(config, m), m, str(root / m))
             for m in mine if m in present]
-    analysed = engine.run_jobs(jobs, workers, engine.Progress(label="audit"))
-    results = [_judge_audited(model, model in present, analysed, stored, policies, config, today)
+    judged: dict[str, GateResult] = {}
+
+    def judge_at_once(model: str, analysed: _Analysed) -> None:  # while the workers go on
+        judged[model] = _judge_audited(model, True, analysed, stored, policies, config, today)
+
+    analysed = engine.run_jobs(jobs, workers, engine.Progress(label="audit"), done=judge_at_once)
+    results = [judged[model] if model in judged else
+               _judge_audited(model, model in present, analysed, stored, policies, config, today)
                for model in mine]
     result = replace(combine_results(results, "audit"), ungated=tuple(ungated))
     return result, models

@@ -11,15 +11,21 @@ N times one target.
 from __future__ import annotations
 
 from dataclasses import dataclass, fields
+from functools import lru_cache
 from math import ceil
 from typing import Any, TypeVar
 
 from gate.errors import InputError, InternalError
 from gate.fusion import NO_FUSION, FusedGroup, FusionPlan, plan_fusion
+from gate.ops.registry import GemmShape
 from gate.precision import DEPLOYED_LABEL, INTEGER_PRECISIONS
 from gate.profile import LayerProfile, ModelProfile
 from gate.targets.dataflow import GemmMapping, map_gemm
 from gate.targets.spec import DATAFLOWS, EngineSpec, TargetProfile, normal_precision
+
+# The engine of a layer run inside a fused group (its cost is on the group's head); distinct
+# from the profile role "qdq-absorbed" (a quantize/dequantize node absorbed by precision).
+FUSION_MEMBER = "fusion-member"
 
 
 @dataclass(frozen=True, slots=True)
@@ -66,7 +72,7 @@ class LayerCost:
 
     index: int
     name: str
-    engine: str  # "array", "vector", "host", "fused" (costed in its group's head) or "none"
+    engine: str  # "array", "vector", "host", FUSION_MEMBER (costed in its group's head), "none"
     cycles: int | None  # engine cycles for the compute (0 for none)
     utilization: float | None  # useful MACs / (PE count x MACs per PE per cycle x cycles); 0 off the array
     compute_s: float | None
@@ -269,7 +275,7 @@ def _fused_member(layer: LayerProfile, head_name: str) -> LayerCost:
     """No time or energy of its own; its tensors stream through the head's output path, so
     the head's buffer fit applies (it is reported as fitting)."""
     return LayerCost(
-        index=layer.index, name=layer.name, engine="fused", cycles=0, utilization=0.0,
+        index=layer.index, name=layer.name, engine=FUSION_MEMBER, cycles=0, utilization=0.0,
         compute_s=0.0, memory_s=0.0, overhead_s=0.0, latency_s=0.0, bound="none",
         param_dram_bytes=0, act_dram_bytes=0, buffer_bytes=0, params_fit=True,
         activations_fit=True, energy=_NO_ENERGY, fused_into=head_name)
@@ -400,7 +406,7 @@ def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> Laye
     precision = _layer_precision(layer, ctx)
     spec = target.precision_spec(precision)
     elem_bytes = target.element_bytes(precision)
-    maps = [(map_gemm(g, target.pe_rows, target.pe_cols, target.dataflow), g.weights_are_params)
+    maps = [(_mapped(g, target.pe_rows, target.pe_cols, target.dataflow), g.weights_are_params)
             for g in work.gemms if g.macs > 0]
     weight_elems = sum(g.k * g.n * g.count for g in work.gemms if g.weights_are_params)
     base_cycles = sum(m.cycles for m, _ in maps)
@@ -427,6 +433,11 @@ def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> Laye
         fit=(params_fit, acts_fit), precision=precision, array_macs=macs,
         arithmetic_j=macs * spec.mac_energy_j + side_j + epilogue_j,
         noc_j=noc_bytes * target.noc_energy_j_per_byte)
+
+
+@lru_cache(maxsize=1 << 14)  # layers repeat a few GEMM shapes; the mapping is pure
+def _mapped(gemm: GemmShape, rows: int, cols: int, dataflow: str) -> GemmMapping:
+    return map_gemm(gemm, rows, cols, dataflow)
 
 
 def _side_work(target: TargetProfile, ops: int, mac_energy_j: float) -> tuple[float, float]:

@@ -70,6 +70,8 @@ def match_layers(base: Sequence[LayerRecord], head: Sequence[LayerRecord],
 def metric_deltas(base: LayerRecord | RunRecord, head: LayerRecord | RunRecord,
                   ) -> dict[str, tuple[Metric, Metric]]:
     """Metrics present on both sides whose values differ (beyond float rounding)."""
+    if base.metrics == head.metrics and None not in head.metrics.values():
+        return {}  # the common case, decided in one C-level comparison
     return {
         name: (base.metrics[name], head.metrics[name])
         for name in sorted(set(base.metrics) & set(head.metrics))

@@ -15,7 +15,7 @@ elementwise epilogue ops; optionally a constant Pad in front of a conv. Every
 intermediate tensor must have exactly one consumer and not be a graph output
 (otherwise it has to be written out anyway), and each op must keep the element
 count (no broadcast to a larger tensor). A chain runs through view layers and
-layers the profile already costs as nothing (a quantize/dequantize pair fused into
+layers the profile already costs as nothing (a quantize/dequantize pair absorbed by
 its producer, as QDQ exports put around every conv); they join the group only when
 a fold or epilogue op follows them.
 """
@@ -120,7 +120,9 @@ class _Wiring:
         consumers: dict[str, list[int]] = {}
         producer: dict[str, int] = {}
         for position, node in enumerate(graph.nodes):
-            for name in dict.fromkeys(_names_read(node)):
+            names = _names_read(node) if node.subgraphs else [  # most nodes: inputs only
+                t.name for t in node.inputs if t is not None and t.name]
+            for name in dict.fromkeys(names):
                 consumers.setdefault(name, []).append(position)
             for tensor in node.outputs:
                 if tensor.name:
@@ -183,7 +185,7 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
     if pad is not None:
         chain.members.append(pad)
     last, previous = head, nodes[head.index]  # the last layer with work; the last node
-    passed: list[int] = []  # free layers (views, fused Q/DQ) waiting for a member after them
+    passed: list[int] = []  # free layers (views, absorbed Q/DQ) waiting for a member after them
     tensor = _single_output(previous)
     while tensor is not None:
         position = wiring.sole_consumer(tensor)

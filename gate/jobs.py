@@ -191,11 +191,14 @@ def internal_error(model: str, detail: str) -> InternalError:
 
 def run_jobs(jobs: Sequence[Job], workers: int,
              progress: Callable[[int, int, str], None] | None = None,
-             prepare: Callable[[Job], Job | None] | None = None) -> Analysed:
+             prepare: Callable[[Job], Job | None] | None = None,
+             done: Callable[[str, Analysed], None] | None = None) -> Analysed:
     """Analyse every job (in ``workers`` processes when > 1); results keyed by result key.
 
     ``prepare`` runs in this process just before a job is handed out (e.g. to read
     its git blob, so only the blobs in flight are in memory); None skips the job.
+    ``done(key, results so far)`` runs in this process as each result arrives, while
+    the workers go on (e.g. to judge a model at once rather than all at the end).
     Raises ``InternalError`` on the first bug met, in-process or in a worker.
     """
     out: Analysed = {}
@@ -207,6 +210,8 @@ def run_jobs(jobs: Sequence[Job], workers: int,
         out[outcome.key] = (list(outcome.runs), outcome.error)
         if progress:
             progress(len(out), total, model)
+        if done:
+            done(outcome.key, out)
 
     ready = (job for job in (prepare(j) if prepare else j for j in jobs) if job is not None)
     if workers <= 1 or total <= 1:

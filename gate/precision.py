@@ -52,7 +52,7 @@ def deployed_dtypes(graph: Graph) -> dict[str, str]:
             if source is not None and node.outputs and node.outputs[0].name:
                 types[node.outputs[0].name] = types.get(source.name, source.dtype)
     for node in graph.nodes:
-        if node.op_type == "QuantizeLinear" and node.fused:
+        if node.op_type == "QuantizeLinear" and node.qdq_absorbed:
             source = node.input(0)
             quantized = node.outputs[0].dtype if node.outputs else "UNDEFINED"
             if source is not None and quantized != "UNDEFINED":

@@ -38,8 +38,10 @@ from gate.precision import (
 )
 from gate.targets.spec import PRECISION_BITS, normal_precision
 
+QDQ_ABSORBED = "qdq-absorbed"  # the role of a quantize/dequantize node absorbed by its neighbours
 FOLDED_NOTE = "folded: computed offline from constants (not a layer of the deployed model)"
-FUSED_NOTE = "fused: activation quantize/dequantize pair absorbed by the layers beside it"
+QDQ_ABSORBED_NOTE = ("qdq-absorbed: activation quantize/dequantize pair absorbed by the layers "
+                      "beside it")
 
 
 @dataclass(frozen=True, slots=True)
@@ -51,7 +53,9 @@ class LayerProfile:
     stays resident is fetched once, by its first reader). ``precision`` is the
     precision the layer runs at as deployed (``gate.precision``) or the
     ``--precision`` override. ``role`` is "layer", "folded" (computed offline from
-    constants) or "fused" (an activation quantize/dequantize pair).
+    constants) or "qdq-absorbed" (an activation quantize/dequantize pair the layers
+    beside it absorb). Not to be confused with layer fusion (``gate.fusion``): a layer run
+    inside a fused group has engine "fusion-member" in its cost, whatever its role.
 
     Unknown is never zero: ``macs`` and ``flops`` are None when the layer is not
     modelled, ``input_bytes`` / ``output_bytes`` None when a tensor's size is not
@@ -376,7 +380,7 @@ def _layer_params(node: Node) -> dict[str, _Param]:
     stack = [node]
     while stack:
         current = stack.pop()
-        if current.folded or current.fused:
+        if current.folded or current.qdq_absorbed:
             continue
         for position in sorted(current.param_inputs):
             tensor = current.input(position)
@@ -456,7 +460,7 @@ def _sum_bytes(tensors: Iterable[TensorInfo], counting: _Counting) -> int | None
 
 def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
                    unbound: dict[str, int]) -> LayerProfile:
-    if node.folded or node.fused:
+    if node.folded or node.qdq_absorbed:
         return _offline_layer(node, counting)
     params = _layer_params(node)
     charge = ledger.charge([(source, counting.param_bits(tensor, source, bias))
@@ -512,7 +516,7 @@ def _requantizes(node: Node, work: OpWork, precision: str, outputs: list[TensorI
 
 def _offline_layer(node: Node, counting: _Counting) -> LayerProfile:
     """A folded node or a fused quantize/dequantize: no work, no bytes, no parameters."""
-    role, note = ("folded", FOLDED_NOTE) if node.folded else ("fused", FUSED_NOTE)
+    role, note = ("folded", FOLDED_NOTE) if node.folded else (QDQ_ABSORBED, QDQ_ABSORBED_NOTE)
     return LayerProfile(
         index=node.index, name=node.name, op_type=node.op_type, domain=node.domain,
         input_shapes=tuple(None if t is None else t.shape for t in node.inputs),
@@ -597,7 +601,7 @@ def _notes(model: LoadedModel, precision: str | None, override_bits: int | None,
     else:
         notes.append(_deployed_note(layers))
     for role, what in (("folded", "folded offline from constants"),
-                       ("fused", "activation quantize/dequantize nodes fused away")):
+                       (QDQ_ABSORBED, "activation quantize/dequantize nodes absorbed")):
         count = sum(1 for layer in layers if layer.role == role)
         if count:
             notes.append(f"{count} node(s) {what}: they cost nothing and are not layers of "

@@ -243,7 +243,9 @@ def run_from_dict(data: Mapping[str, Any]) -> RunRecord:
 def _metrics(data: Mapping[str, Any]) -> dict[str, Metric]:
     out: dict[str, Metric] = {}
     for key, value in data.items():
-        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
+        kind = type(value)  # exact types first (the common case; a bool is not a number)
+        if kind is not float and kind is not int and value is not None and (
+                isinstance(value, bool) or not isinstance(value, (int, float))):
             raise ValueError(f"metric {key!r} is not a number")
         out[str(key)] = value
     return out

@@ -82,6 +82,11 @@ class Verdict:
                             key=lambda f: -_excess(f)))
 
 
+# The remedy of a finding whose figure is unknown (a layer not modelled, a size left unbound):
+# the rule's own remedy (speed it up, quantize) would not help; knowing the figure would.
+UNKNOWN_REMEDY = "bind the unbound dims (--dim, --shape) or see `roofgate profile` for why"
+
+
 @dataclass(frozen=True, slots=True)
 class LayerChange:
     """A layer matched (or not) between the base and head profile of a model on a target."""
@@ -242,6 +247,7 @@ class Blocker:
         if finding.value is None:  # unknown: neither above nor below, and never a pass
             limit = ("the rule" if finding.limit is None else
                      f"the limit of {metrics.fmt(finding.metric, finding.limit)}")
+            fix = f" Fix: {UNKNOWN_REMEDY}." if self.index == 0 else ""
             return (f"{where}{at}: {metrics.label(finding.metric)} unknown (?), so {limit} "
                     f"cannot be checked.{fix}")
         relation = "above" if _above(finding) else "below"

@@ -59,8 +59,9 @@ def shard_to_dict(result: GateResult, index: int, count: int,
 
 def write_shard(path: str, result: GateResult, index: int, count: int,
                 models: Sequence[str]) -> None:
-    data = json.dumps(shard_to_dict(result, index, count, models), indent=1, sort_keys=True,
-                      allow_nan=False)
+    # compact: a file for machines (merge), and without indent json uses its C encoder
+    data = json.dumps(shard_to_dict(result, index, count, models), sort_keys=True,
+                      allow_nan=False, separators=(",", ":"))
     with open_output(path, "shard result") as stream:
         stream.write(data + "\n")
 

@@ -80,9 +80,23 @@ def _pretty(value: Any, indent: str) -> str:
     return _compact(value)
 
 
+_ENCODER = json.JSONEncoder(sort_keys=True, separators=(", ", ": "), ensure_ascii=True,
+                            allow_nan=False)  # one encoder: building one per value cost most
+
+
 def _compact(value: Any) -> str:
-    return json.dumps(value, sort_keys=True, separators=(", ", ": "), ensure_ascii=True,
-                      allow_nan=False)
+    """``value`` as one line of JSON; scalars written directly, exactly as the encoder
+    would (floats are finite here: ``_rounded`` refused the others)."""
+    kind = type(value)
+    if kind is str:
+        return json.encoder.encode_basestring_ascii(value)
+    if kind is int or kind is float:
+        return repr(value)
+    if value is None:
+        return "null"
+    if kind is bool:
+        return "true" if value else "false"
+    return _ENCODER.encode(value)
 
 
 def snapshot_to_dict(runs: Iterable[RunRecord]) -> dict[str, Any]:
@@ -210,6 +224,11 @@ def _refuse_duplicates(keys: list[tuple[str, str]], where: str) -> None:
 
 def _rounded(value: Any) -> Any:
     """A copy of ``value`` with every float rounded to FLOAT_DIGITS significant digits."""
+    kind = type(value)  # exact types first: abstract isinstance checks cost most here
+    if kind is dict:
+        return {str(k): _rounded(v) for k, v in value.items()}
+    if kind is str or kind is int or kind is bool or value is None:
+        return value
     if isinstance(value, float):
         if not math.isfinite(value):
             raise InternalError(f"cannot write a non-finite number ({value}) to JSON")

@@ -221,3 +221,30 @@ def test_run_jobs_hands_jobs_out_lazily_and_skips_what_prepare_drops(tmp_path) -
         assert prepared == [j.model for j in all_jobs]  # each once, in order
         assert sorted(out) == [f"models/m{k}.onnx" for k in (0, 1, 2, 4, 5)]
         assert all(runs and not error for runs, error in out.values())
+
+
+def test_a_worker_process_that_dies_is_exit_3(tmp_path, monkeypatch) -> None:
+    """A worker killed mid-model (here it exits at once) breaks the pool: the run stops
+    with exit 3 and one line, never a partial pass."""
+    import multiprocessing
+    import os
+
+    from click.testing import CliRunner
+
+    from gate.cli import cli
+    from gate.synth.builder import save_model
+    from gate.synth.layers import NetBuilder
+
+    if multiprocessing.get_start_method() != "fork":
+        pytest.skip("the simulated crash reaches workers only when they are forked")
+    for k in range(3):
+        b = NetBuilder("fc")
+        b.output(b.gemm(b.input("x", [1, 16]), 8 + k, name="fc"))
+        save_model(b.build(), tmp_path / f"zoo/m{k}.onnx")
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setattr(jobs, "analyse", lambda *a, **k: os._exit(7))
+    done = CliRunner().invoke(cli, ["audit", "zoo", "-t", "ws-64x64-4mib", "-p", "default",
+                                    "-j", "2", "--json", "r.json"])
+    assert done.exit_code == 3, done.output
+    assert "internal error" in done.output and "Traceback" not in done.output
+    assert not (tmp_path / "r.json").exists()

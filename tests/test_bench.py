@@ -102,3 +102,33 @@ def test_quick_start_up_case_prints_its_rows_and_the_load() -> None:
     assert len(rows) == 4, done.stdout
     assert all(line.count("|") == 7 for line in rows)
     assert "Load average (1 min)" in done.stdout
+
+
+def test_update_readme_replaces_only_the_block_between_the_markers(tmp_path: Path) -> None:
+    import run
+
+    readme = tmp_path / "README.md"
+    readme.write_text(f"intro\n{run.README_BEGIN}\nold table\n{run.README_END}\nafter\n")
+    run.update_readme("new table", readme)
+    assert readme.read_text() == f"intro\n{run.README_BEGIN}\nnew table\n{run.README_END}\nafter\n"
+    readme.write_text("no markers\n")
+    with pytest.raises(SystemExit, match="markers not found"):
+        run.update_readme("new table", readme)
+
+
+def test_the_readme_holds_the_markers_the_benchmark_writes_between() -> None:
+    import run
+
+    text = (BENCH.parent / "README.md").read_text(encoding="utf-8")
+    assert text.count(run.README_BEGIN) == 1 and text.count(run.README_END) == 1
+
+
+def test_per_node_cost_against_the_floor_uses_the_whole_size_range() -> None:
+    results = {10_000: {"floor": _series(1.0), "profile": _series(2.0)},
+               100_000: {"floor": _series(1.2), "profile": _series(11.0)},
+               200_000: {"floor": _series(1.1), "profile": _series(21.0)}}
+    # profile (21 - 2) / 190k = 100 us; floor (1.1 - 1.0) / 190k = 0.5 us (its last step
+    # is negative: noise), so the whole range is the figure.
+    assert case_graphs.overall_slope(results, "profile") == pytest.approx(100e-6)
+    assert case_graphs._slope_against_floor(results, "profile") == (
+        "10k->200k: 100 us vs floor's 0.5 us (190.00x)")

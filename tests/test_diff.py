@@ -274,3 +274,13 @@ def test_layer_lookup_goes_through_the_name_index() -> None:
 def test_layer_lookup_returns_the_first_of_duplicated_names() -> None:
     first, second = layer("dup", macs=1), layer("dup", macs=2)
     assert run(layers=(first, second)).layer("dup") is first
+
+
+def test_equal_metrics_with_an_unknown_value_still_show_it() -> None:
+    # The shortcut for identical metrics must not hide an unknown (None) figure: unknown
+    # equals nothing, so it shows as '?' on both sides.
+    unknown = layer("x", arithmetic_intensity=None)
+    diff = diff_runs(run(layers=(unknown,)), run(layers=(unknown,)))
+    assert diff.layers[0].deltas == {"arithmetic_intensity": (None, None)}
+    same = layer("y")
+    assert diff_runs(run(layers=(same,)), run(layers=(same,))).layers[0].deltas == {}

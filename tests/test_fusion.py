@@ -82,7 +82,7 @@ def test_residual_block_fuses_bn_activation_and_residual_add_into_its_convs(tmp_
     cost = cost_model(profile, load_target(WS))
     by_name = {layer.name: layer for layer in cost.layers}
     assert by_name["conv2"].fused_ops == ("BatchNormalization", "Add", "Relu")
-    assert by_name["add"].engine == "fused" and by_name["add"].fused_into == "conv2"
+    assert by_name["add"].engine == "fusion-member" and by_name["add"].fused_into == "conv2"
     assert by_name["add"].latency_s == 0.0 and by_name["add"].energy.total_j == 0.0
     spilled = {c.name: c for c in cost_model(profile, _spilling(load_target(WS))).layers}
     assert not spilled["conv2"].activations_fit and spilled["add"].activations_fit  # head's fit
@@ -217,7 +217,7 @@ def test_a_target_without_fusion_costs_layer_by_layer(tmp_path: Path) -> None:
     profile = _profile(residual_block(), tmp_path)
     ws = load_target(WS)
     assert cost_model(profile, replace(ws, fusion=None)) == cost_model(profile, ws, fusion=False)
-    assert all(layer.engine != "fused" for layer in cost_model(profile, ws, fusion=False).layers)
+    assert all(layer.engine != "fusion-member" for layer in cost_model(profile, ws, fusion=False).layers)
 
 
 def test_resnet50_on_a_2_tflops_weight_stationary_array_runs_at_about_half_of_peak(
@@ -273,7 +273,7 @@ def test_profile_no_fusion_flag_gives_layer_by_layer_figures(tmp_path: Path) -> 
     table = runner.invoke(cli, ["profile", path, "-t", WS])
     # the last cells are bound and latency, which is a number and a unit ("1.23 us")
     bounds = [line.split()[-3] for line in table.stdout.splitlines() if len(line.split()) > 3]
-    assert bounds.count("fused") == 5 and "compute+" in bounds
+    assert bounds.count("fusion-member") == 5 and "compute+" in bounds
     assert ("fused: 5 layers run inside 2 groups as the target declares (--no-fusion: layer by "
             "layer): conv1+BatchNormalization+Relu, conv2+BatchNormalization+Add+Relu"
             ) in table.stdout
@@ -310,7 +310,7 @@ def test_a_chain_runs_through_the_quantize_dequantize_pairs_of_a_qdq_export(
     assert groups == {
         "conv1": ["c1.q.quantize", "c1.q.dequantize", "bn1", "relu1"],
         "conv2": ["c2.q.quantize", "c2.q.dequantize", "bn2", "add", "relu2"]}
-    assert {layer.role for layer in qdq.layers if layer.name.startswith("c1.q.")} == {"fused"}
+    assert {layer.role for layer in qdq.layers if layer.name.startswith("c1.q.")} == {"qdq-absorbed"}
     at_int8 = _profile(residual_block(), tmp_path, "int8")
     for fusion in (True, False):
         a, b = cost_model(at_int8, target, fusion=fusion), cost_model(qdq, target, fusion=fusion)

@@ -194,7 +194,7 @@ def test_path_based_inference_never_overwrites_input(tmp_path: Path, monkeypatch
     monkeypatch.setattr(loader_module, "PATH_INFERENCE_BYTES", 1)
     monkeypatch.setattr(onnx.shape_inference, "infer_shapes_path", spy)
     by_path = load_model(path)
-    assert calls and calls[0][0] == str(path) and calls[0][1] != str(path)
+    assert calls and str(path) not in calls[0]  # a weightless copy, in a temporary folder
     assert path.read_bytes() == before  # the input file is untouched
     assert by_path.graph == in_memory.graph
 

@@ -561,7 +561,7 @@ def test_contrib_outputs_and_everything_downstream_are_sized(tmp_path):
 
 def test_a_conflicting_declared_shape_is_treated_as_for_a_standard_op(tmp_path):
     # A declared value_info that contradicts the shape the inputs give: one error naming
-    # the tensor (stale stored shapes, gate/model/loader.infer_checked), exactly as for a
+    # the tensor (stale stored shapes, gate/model/stored_shapes.infer_checked), exactly as for a
     # standard op.
     def load(first):
         model = graph_model([first, helper.make_node("Relu", ["g"], ["Y"])], {"X": (2, 3)}, ["Y"],

@@ -13,9 +13,9 @@ import onnx.defs
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from gate.model.contrib_shapes import contrib_ops_with_shape_rules
 from gate.model.graph import TensorInfo
 from gate.ops import Unmodelled, cost_function_for, modelled_op_types
-from gate.ops.contrib_shapes import contrib_ops_with_shape_rules
 from tests.opkit import graph, node
 
 REQUIRED = [

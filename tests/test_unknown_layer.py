@@ -100,6 +100,8 @@ def test_evaluate_reports_null_and_fails_a_layer_rule_that_reads_the_unknown(fol
     assert f"at layer {ODD}: latency unknown (?), so the limit of 5.00 ms cannot be checked" \
         in result.output, result.output
     assert "above the limit" not in result.output
+    # the remedy fits an unknown figure (know it), not the rule's (speed the layer up)
+    assert "cannot be checked. Fix: bind the unbound dims (--dim, --shape)" in result.output
     document = json.loads((folder / "r.json").read_text(encoding="utf-8"))
     text = json.dumps(document)
     assert '"latency_s": null' in text

@@ -56,7 +56,7 @@ def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
     bound, latency per layer) and a line of model totals (latency, energy, DRAM
     traffic); JSON and CSV carry every per-layer figure. Targets that declare
     fusion cost each fused group as one layer on its head (the absorbed layers
-    show 'fused'); --no-fusion costs layer by layer.
+    show 'fusion-member'); --no-fusion costs layer by layer.
     """
     if not model.strip():
         raise InputError("empty model path; pass the .onnx file to profile")

@@ -8,7 +8,7 @@ need them; a tensor with external data is never read.
 Parameters (``Node.param_inputs``) are inputs constant at inference: initializers,
 Constant nodes and tensors folded from constants alone (``gate.model.constants``
 decides what folds, how each constant is stored, and which constants are
-metadata rather than parameters). Folded nodes, fused activation
+metadata rather than parameters). Folded nodes, absorbed activation
 QuantizeLinear -> DequantizeLinear pairs and unused outputs are marked on the
 ``Node``.
 
@@ -20,7 +20,8 @@ from __future__ import annotations
 
 import os
 from collections import ChainMap
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
+from types import MappingProxyType
 from typing import Any
 
 import onnx
@@ -46,6 +47,9 @@ _INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", 
                          "UINT64", "BOOL", "INT4", "UINT4"})
 _Scope = ChainMap[str, Any]  # name -> value, innermost scope first
 _NO_POSITIONS: frozenset[int] = frozenset()
+# One read-only empty mapping shared by every node without attributes, subgraphs, ...
+# (a dict each costs 64 bytes per field per node: megabytes on large graphs).
+_NOTHING: Mapping[Any, Any] = MappingProxyType({})
 
 
 def dtype_name(elem_type: int) -> str:
@@ -122,6 +126,7 @@ class _Converter:
         self.declared = declared
         self.opset = opset
         self.warnings: list[str] = []
+        self.types: dict[bytes, tuple[Shape | None, str]] = {}  # see _value_info
 
     def graph(self, proto: onnx.GraphProto, outer: dict[str, _Scope] | None,
               depth: int) -> Graph:
@@ -135,8 +140,10 @@ class _Converter:
         inputs = tuple(value_info(v, self.declared) for v in proto.input
                        if v.name not in initializers)
         for value in (*proto.input, *proto.value_info, *proto.output):
-            if value.name not in initializers or value.type.tensor_type.HasField("shape"):
-                infos.setdefault(value.name, value_info(value, self.declared))
+            name = value.name
+            if name not in infos and (name not in initializers
+                                      or value.type.tensor_type.HasField("shape")):
+                infos[name] = self._value_info(value)
         readers = _scan_nodes(proto, infos, consts)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
@@ -151,6 +158,17 @@ class _Converter:
         return Graph(nodes=nodes, initializers=initializers, inputs=inputs,
                      outputs=tuple(ctx["infos"].get(v.name) or value_info(v, self.declared)
                                    for v in proto.output))
+
+    def _value_info(self, value: onnx.ValueInfoProto) -> TensorInfo:
+        """``value_info``, its shape and dtype remembered by the type's bytes (a graph's
+        tensors share a few types; reading a shape dim by dim costs microseconds)."""
+        key = value.type.SerializeToString()
+        known = self.types.get(key)
+        if known is None:
+            info = value_info(value, self.declared)
+            self.types[key] = (info.shape, info.dtype)
+            return info
+        return TensorInfo(value.name, known[0], known[1])
 
     def _initializers(self, proto: onnx.GraphProto, infos: dict[str, TensorInfo],
                       sources: dict[str, ParamSource],
@@ -215,13 +233,14 @@ class _Converter:
             domain="" if domain == "ai.onnx" else domain,
             inputs=inputs,
             outputs=outputs,
-            attributes=attributes,
+            attributes=attributes or _NOTHING,
             param_inputs=frozenset(params) if params else _NO_POSITIONS,
-            subgraphs=subgraphs,
-            const_values={i: consts[n] for i, n in enumerate(input_names) if n and n in consts},
-            param_sources=input_sources,
+            subgraphs=subgraphs or _NOTHING,
+            const_values={i: consts[n] for i, n in enumerate(input_names)
+                          if n and n in consts} or _NOTHING,
+            param_sources=input_sources or _NOTHING,
             folded=folded,
-            fused=not folded and walk.fuses(proto, input_names, output_names),
+            qdq_absorbed=not folded and walk.absorbs_qdq(proto, input_names, output_names),
             unused_outputs=frozenset(i for i, n in enumerate(output_names)
                                      if n and n not in readers) or _NO_POSITIONS,
         )
@@ -248,14 +267,14 @@ class _Converter:
 
 
 class _Walk:
-    """The state of converting one graph's nodes in order: scopes, readers, fused pairs."""
+    """The state of converting one graph's nodes in order: scopes, readers, absorbed Q/DQ pairs."""
 
     def __init__(self, ctx: dict[str, _Scope], readers: dict[str, set[str]],
                  used_names: set[str]) -> None:
         self.ctx = ctx
         self.readers = readers
         self.used_names = used_names
-        self.fused_quantized: set[str] = set()
+        self.absorbed_quantized: set[str] = set()
         self.nested = len(ctx["infos"].maps) > 1
         self.infos = self.scope("infos")  # looked up for every node: resolved once
         self.sources = self.scope("sources")
@@ -268,19 +287,19 @@ class _Walk:
     def local(self, name: str) -> Any:
         return self.ctx[name].maps[0]
 
-    def fuses(self, proto: onnx.NodeProto, input_names: list[str],
-              output_names: list[str]) -> bool:
+    def absorbs_qdq(self, proto: onnx.NodeProto, input_names: list[str],
+                    output_names: list[str]) -> bool:
         """An activation QuantizeLinear read only by DequantizeLinear nodes, and those nodes."""
         if proto.domain not in ("", "ai.onnx") or not output_names:
             return False
         if proto.op_type == "QuantizeLinear":
             readers = self.readers.get(output_names[0], set())
             if readers and readers == {"DequantizeLinear"}:
-                self.fused_quantized.add(output_names[0])
+                self.absorbed_quantized.add(output_names[0])
                 return True
             return False
         return (proto.op_type == "DequantizeLinear" and bool(input_names)
-                and input_names[0] in self.fused_quantized)
+                and input_names[0] in self.absorbed_quantized)
 
     def unique_name(self, name: str, op_type: str, index: int) -> str:
         return _unique_name(name, op_type, index, self.used_names)

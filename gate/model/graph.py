@@ -141,7 +141,7 @@ class Node:
     initializer or Constant of at most 64 elements stored inline: shapes, axes, trip
     counts, a boolean condition); weights are never read.
     ``folded``: every input is constant, so a deploying runtime computes this node
-    offline; it is not a layer of the deployed model. ``fused``: an activation
+    offline; it is not a layer of the deployed model. ``qdq_absorbed``: an activation
     QuantizeLinear -> DequantizeLinear pair the neighbouring layers absorb.
     ``unused_outputs``: output positions nothing reads (a Dropout mask, training
     outputs of BatchNormalization); their shapes do not matter.
@@ -159,7 +159,7 @@ class Node:
     const_values: Mapping[int, tuple[int, ...]] = field(default_factory=dict)
     param_sources: Mapping[int, ParamSource] = field(default_factory=dict)
     folded: bool = False
-    fused: bool = False
+    qdq_absorbed: bool = False
     unused_outputs: frozenset[int] = frozenset()
 
     def attr(self, name: str, default: Any = None) -> Any:

@@ -14,9 +14,10 @@ dims and dtype. The steps, in order:
    symbolic dims (``--dim batch=1``) on every declared tensor shape;
 4. drop inline weight values from memory (shapes and dtypes stay), then run onnx
    shape inference with data propagation from the inputs alone, and refuse a
-   stored intermediate or output shape that contradicts it (``infer_checked``;
-   files over 2 GB go through the path-based API into a temporary file, the
-   input is never overwritten, and their stored shapes are not re-checked);
+   stored intermediate or output shape that contradicts it, in the main graph
+   and every subgraph (``gate.model.stored_shapes.infer_checked``; files over
+   2 GB go through the path-based API in a temporary folder, checked the same
+   way; the input is never overwritten);
 5. where a tensor is still unsized, evaluate the shape arithmetic that computes
    Reshape targets, Pad amounts, ... from the inputs' shapes and infer again
    (``gate.model.shape_values`` with the rules of ``gate.model.shape_rules``);
@@ -38,6 +39,7 @@ import onnx.shape_inference
 from google.protobuf.message import DecodeError
 
 from gate.errors import InputError
+from gate.model.contrib_shapes import register_contrib_schemas
 from gate.model.convert import (
     UNKNOWN_DIM,
     all_graph_protos,
@@ -53,8 +55,8 @@ from gate.model.shape_text import MAX_DIM, StaticShape
 from gate.model.shape_values import refine_shapes
 from gate.model.shapes import bind_input_shapes, sizing_notes
 from gate.model.skeleton import file_without_weights, without_weights
+from gate.model.stored_shapes import infer_checked
 from gate.model.text import repair_text_fields
-from gate.ops.contrib_shapes import register_contrib_schemas
 
 # Files at least this large go through the path-based shape inference (protobuf's
 # in-memory serialisation limit is 2 GiB).
@@ -95,14 +97,11 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     unused = sorted(set(bindings) - declared)
     warnings.extend(f"--dim {name}={bindings[name]}: the model declares no symbolic dim "
                     f"'{name}' (binding ignored)" for name in unused)
-    if size_bytes >= PATH_INFERENCE_BYTES and data is None:
-        proto, inference_warning = _infer_by_path(text_path, proto)
-        proto = _inline(proto, text_path)
-        _bind(proto.graph, bindings, shape_bindings, text_path)
-    else:
-        proto = _inline(proto, text_path)
-        _bind(proto.graph, bindings, shape_bindings, text_path)
-        proto, inference_warning = infer_checked(proto, text_path)
+    proto = _inline(proto, text_path)
+    _bind(proto.graph, bindings, shape_bindings, text_path)
+    by_path = size_bytes >= PATH_INFERENCE_BYTES and data is None
+    proto, inference_warning = infer_checked(proto, text_path,
+                                             _infer_by_path if by_path else _infer_in_memory)
     if inference_warning:
         warnings.append(inference_warning)
     else:
@@ -258,14 +257,15 @@ def _infer_in_memory(proto: onnx.ModelProto) -> tuple[onnx.ModelProto, str]:
         return proto, _inference_failed(exc)
 
 
-def _infer_by_path(path: str, proto: onnx.ModelProto) -> tuple[onnx.ModelProto, str]:
-    """Shape inference for models too large to serialise in memory, into a temporary file."""
+def _infer_by_path(proto: onnx.ModelProto) -> tuple[onnx.ModelProto, str]:
+    """Shape inference through files (onnx's path-based API, for models over 2 GiB): the
+    weightless ``proto`` is written to a temporary folder, never over the input."""
     with tempfile.TemporaryDirectory(prefix="roofgate-infer-") as folder:
+        in_path = os.path.join(folder, "model.onnx")
         out_path = os.path.join(folder, "inferred.onnx")
-        if os.path.abspath(out_path) == os.path.abspath(path):  # never overwrite the input
-            raise InputError("internal guard: shape inference output equals the input", path)
         try:
-            onnx.shape_inference.infer_shapes_path(path, out_path, data_prop=True)
+            onnx.save(proto, in_path)
+            onnx.shape_inference.infer_shapes_path(in_path, out_path, data_prop=True)
             inferred = onnx.load(out_path, load_external_data=False)
             drop_weight_values(inferred.graph)
             return inferred, ""
@@ -357,79 +357,3 @@ def _scan_declared_shape(value: onnx.ValueInfoProto, declared: set[str], path: s
         raise InputError(f"tensor '{value.name}' declares a negative dim {values}; use a "
                          "named dim (dim_param) for a size not known in advance, or "
                          "re-export the model", path)
-
-
-def infer_checked(proto: onnx.ModelProto, path: str) -> tuple[onnx.ModelProto, str]:
-    """Shape inference from the inputs alone, checked against the shapes the file stores.
-
-    Why: onnx's own (non-strict) inference keeps stored intermediate shapes
-    (``value_info``) and declared output shapes even when the inputs say
-    otherwise, so a model whose input was resized after export was costed at
-    its old size. Here inference runs without them; a stored shape that
-    contradicts the derived one is an InputError naming the tensor; a stored
-    shape inference cannot derive (after a custom op) is kept and inference
-    runs once more so what follows it is shaped too. Top-level graph only.
-    """
-    stored = {v.name: v for v in (*proto.graph.value_info, *proto.graph.output)}
-    bare = onnx.ModelProto()
-    bare.CopyFrom(proto)
-    del bare.graph.value_info[:]
-    for output in bare.graph.output:
-        if output.type.HasField("tensor_type"):
-            output.type.tensor_type.ClearField("shape")
-    inferred, warning = _infer_in_memory(bare)
-    if warning:  # inference failed: the stored shapes are all there is
-        return _infer_in_memory(proto)
-    derived = {v.name: v for v in (*inferred.graph.value_info, *inferred.graph.output)}
-    unverified = [name for name, value in stored.items()
-                  if not _same_or_unknown(value, derived.get(name), path)]
-    if not unverified:
-        return inferred, ""
-    _restore(inferred.graph, [stored[name] for name in unverified])
-    return _infer_in_memory(inferred)
-
-
-def _same_or_unknown(stored: onnx.ValueInfoProto, derived: onnx.ValueInfoProto | None,
-                     path: str) -> bool:
-    """True when inference derived the tensor's shape at least as fully as the file stores it;
-    False when the stored shape knows more (kept, unverified); InputError on a contradiction."""
-    mine, theirs = _known_dims(stored), _known_dims(derived)
-    if mine is None:
-        return True
-    if theirs is None:
-        return False
-    clash = len(mine) != len(theirs) or any(
-        a is not None and b is not None and a != b for a, b in zip(mine, theirs))
-    if not clash:
-        return not any(a is not None and b is None for a, b in zip(mine, theirs))
-    raise InputError(
-        f"tensor '{stored.name}': the file stores shape {_shape_text(mine)} but its inputs "
-        f"give {_shape_text(theirs)}; the stored shapes are stale (an input resized after "
-        "export?): re-export the model, or drop value_info and rerun onnx shape inference",
-        path)
-
-
-def _known_dims(value: onnx.ValueInfoProto | None) -> list[int | None] | None:
-    if value is None or not value.type.HasField("tensor_type") \
-            or not value.type.tensor_type.HasField("shape"):
-        return None
-    return [int(d.dim_value) if d.HasField("dim_value") else None
-            for d in value.type.tensor_type.shape.dim]
-
-
-def _shape_text(dims: list[int | None]) -> str:
-    return "[" + ", ".join("?" if d is None else str(d) for d in dims) + "]"
-
-
-def _restore(graph: onnx.GraphProto, values: list[onnx.ValueInfoProto]) -> None:
-    """Put stored shapes inference could not derive back: outputs in place, the rest as value_info."""
-    outputs = {o.name: o for o in graph.output}
-    replaced = {v.name for v in values}
-    kept = [v for v in graph.value_info if v.name not in replaced]
-    del graph.value_info[:]
-    graph.value_info.extend(kept)
-    for value in values:
-        if value.name in outputs:
-            outputs[value.name].type.CopyFrom(value.type)
-        else:
-            graph.value_info.append(value)

@@ -29,8 +29,6 @@ length (past + new tokens, no shared buffer) are from memory.
 
 from __future__ import annotations
 
-from onnx import TypeProto
-
 from gate.model.graph import Node
 from gate.ops._common import add_work, arithmetic, input_shape, movement, numel
 from gate.ops.attention import (
@@ -40,7 +38,6 @@ from gate.ops.attention import (
     split_heads,
     written_elements,
 )
-from gate.ops.contrib_shapes import Facts, add_dims, same_as, shape_rule, tensor_type, times_dims
 from gate.ops.matmul import orient_gemm
 from gate.ops.normalization import SOFTMAX_OPS_PER_ELEMENT
 from gate.ops.registry import OpWork, Unmodelled, register
@@ -206,65 +203,3 @@ def ms_rotary_embedding(node: Node) -> OpWork:
 @register("RotaryEmbedding")
 def rotary_embedding(node: Node) -> OpWork:
     return _rotary_work(node, cos_pos=1)
-
-
-# --- output shapes (onnx shape inference knows no com.microsoft op)
-
-shape_rule("RotaryEmbedding")(same_as(0))
-
-
-@shape_rule("Attention")
-def _ms_attention_shape(facts: Facts) -> list[TypeProto | None]:
-    x, weights, past = facts.dims(0), facts.dims(1), facts.dims(4)
-    heads = int(facts.attr("num_heads", 0))
-    sizes = list(facts.attr("qkv_hidden_sizes", []))
-    if x is None or len(x) != 3 or weights is None or len(weights) != 2 or heads < 1:
-        return [None, None]
-    if not sizes and isinstance(weights[1], int):
-        sizes = [weights[1] // 3] * 3
-    if len(sizes) != 3:
-        return [None, None]
-    shared = bool(facts.attr("past_present_share_buffer", 0))
-    total = x[1] if past is None or len(past) != 5 else (
-        past[3] if shared else add_dims(past[3], x[1]))  # a shared buffer keeps its length
-    present = [2, x[0], heads, total, sizes[1] // heads]
-    return [tensor_type(facts.elem(0), [x[0], x[1], sizes[2]]),
-            tensor_type(facts.elem(0), present)]
-
-
-@shape_rule("MultiHeadAttention")
-def _mha_shape(facts: Facts) -> list[TypeProto | None]:
-    q, k, v, past = facts.dims(0), facts.dims(1), facts.dims(2), facts.dims(6)
-    heads = int(facts.attr("num_heads", 0))
-    if q is None or heads < 1:
-        return [None]
-    if len(q) == 5:
-        kv_len, head, v_head, out = q[1], q[4], q[4], times_dims(q[2], q[4])
-    elif k is not None and len(k) == 5:
-        kv_len, v_head, head = k[1], k[4], k[4]
-        out = times_dims(heads, k[4])
-    elif k is not None and v is not None and len(k) in (3, 4) and len(k) == len(v):
-        four = len(k) == 4
-        kv_len = k[2] if four else k[1]
-        v_head = v[3] if four else (v[2] // heads if isinstance(v[2], int) else None)
-        head = k[3] if four else (k[2] // heads if isinstance(k[2], int) else None)
-        out = times_dims(heads, v_head)
-    else:
-        return [None]
-    total = add_dims(past[2], kv_len) if past is not None and len(past) == 4 else kv_len
-    return [tensor_type(facts.elem(0), [q[0], q[1], out]),
-            tensor_type(facts.elem(0), [q[0], heads, total, head]),
-            tensor_type(facts.elem(0), [q[0], heads, total, v_head])]
-
-
-@shape_rule("GroupQueryAttention")
-def _gqa_shape(facts: Facts) -> list[TypeProto | None]:
-    q, past = facts.dims(0), facts.dims(3)
-    heads, kv_heads = int(facts.attr("num_heads", 0)), int(facts.attr("kv_num_heads", 0))
-    if q is None or len(q) != 3 or heads < 1 or kv_heads < 1 or not isinstance(q[2], int):
-        return [None]
-    packed = facts.tensor(1) is None
-    head = q[2] // (heads + 2 * kv_heads) if packed else q[2] // heads
-    total = add_dims(past[2], q[1]) if past is not None and len(past) == 4 else q[1]
-    present = tensor_type(facts.elem(0), [q[0], kv_heads, total, head])
-    return [tensor_type(facts.elem(0), [q[0], q[1], heads * head]), present, present]

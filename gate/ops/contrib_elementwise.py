@@ -25,8 +25,6 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from onnx import TensorProto, TypeProto
-
 from gate.model.graph import Node, TensorInfo
 from gate.ops._common import (
     add_work,
@@ -36,7 +34,6 @@ from gate.ops._common import (
     movement,
     numel,
 )
-from gate.ops.contrib_shapes import Facts, same_as, shape_rule, tensor_type
 from gate.ops.elementwise import GELU_OPS_PER_ELEMENT, UNARY_OPS_PER_ELEMENT
 from gate.ops.normalization import layer_normalization, rms_normalization
 from gate.ops.reduction import REDUCE_OPS
@@ -115,38 +112,3 @@ def embed_layer_normalization(node: Node) -> OpWork:
 @register("SimplifiedLayerNormalization", domain=MS)
 def simplified_layer_normalization(node: Node) -> OpWork:
     return rms_normalization(node)
-
-
-# --- output shapes (onnx shape inference knows no com.microsoft op)
-
-shape_rule("Gelu", "BiasGelu", "FastGelu", "QuickGelu", "BiasAdd")(same_as(0))
-
-
-def _statistics_type(facts: Facts, axis: int) -> TypeProto | None:
-    """Mean / inverse std outputs: the input shape with the normalised axes set to 1 (float)."""
-    x = facts.dims(0)
-    if x is None:
-        return None
-    axis %= max(len(x), 1)
-    return tensor_type(TensorProto.FLOAT, [*x[:axis], *([1] * (len(x) - axis))])
-
-
-@shape_rule("SkipLayerNormalization", "SkipSimplifiedLayerNormalization")
-def _skip_norm_shape(facts: Facts) -> list[TypeProto | None]:
-    stats = _statistics_type(facts, -1)
-    return [facts.tensor(0), stats, stats, facts.tensor(0)]
-
-
-@shape_rule("EmbedLayerNormalization")
-def _embed_norm_shape(facts: Facts) -> list[TypeProto | None]:
-    ids, word = facts.dims(0), facts.dims(2)
-    if ids is None or word is None or len(ids) != 2 or len(word) != 2:
-        return [None]
-    output = tensor_type(facts.elem(2), [*ids, word[1]])
-    return [output, tensor_type(TensorProto.INT32, [ids[0]]), output]
-
-
-@shape_rule("SimplifiedLayerNormalization", domain="")
-@shape_rule("SimplifiedLayerNormalization")
-def _simplified_norm_shape(facts: Facts) -> list[TypeProto | None]:
-    return [facts.tensor(0), _statistics_type(facts, int(facts.attr("axis", -1)))]

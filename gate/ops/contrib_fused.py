@@ -23,8 +23,6 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from onnx import TypeProto
-
 from gate.model.graph import Node, TensorInfo
 from gate.ops._common import (
     add_work,
@@ -33,12 +31,6 @@ from gate.ops._common import (
     input_shape,
     numel,
     str_attr,
-)
-from gate.ops.contrib_shapes import (
-    Facts,
-    as_standard,
-    shape_rule,
-    tensor_type,
 )
 from gate.ops.conv import conv_work
 from gate.ops.elementwise import UNARY_OPS_PER_ELEMENT
@@ -119,33 +111,3 @@ def matmul_nbits(node: Node) -> OpWork:
     shape = GemmShape(m=rows, k=k, n=n, weights_are_params=node.is_param(1))
     bias = rows * n if node.input(5) is not None else 0
     return arithmetic(bias, macs=shape.macs, gemms=(shape,))
-
-
-# --- output shapes (onnx shape inference knows no com.microsoft op)
-
-shape_rule("FusedConv")(as_standard("Conv", (0, 1, 2)))
-shape_rule("FusedGemm")(as_standard("Gemm", (0, 1, 2)))
-
-
-_MATMUL_SHAPE = as_standard("MatMul", (0, 1))
-
-
-@shape_rule("FusedMatMul")
-def _fused_matmul_shape(facts: Facts) -> list[TypeProto | None]:
-    """MatMul's output shape on the operands as transposed by transA/transB."""
-    for position, flag in ((0, "transA"), (1, "transB")):
-        dims = facts.dims(position)
-        if facts.attr(flag, 0) and dims is not None and len(dims) >= 2:
-            swapped = [*dims[:-2], dims[-1], dims[-2]]
-            facts = facts.with_input(position, tensor_type(facts.elem(position), swapped))
-    return _MATMUL_SHAPE(facts)
-
-
-@shape_rule("MatMulNBits")
-def _matmul_nbits_shape(facts: Facts) -> list[TypeProto | None]:
-    a = facts.dims(0)
-    n = int(facts.attr("N", 0))
-    if a is None or n < 1:
-        return [None]
-    return [tensor_type(facts.elem(0), [*a[:-1], n])]
-

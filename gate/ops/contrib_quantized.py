@@ -27,8 +27,6 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from onnx import TensorProto, TypeProto
-
 from gate.model.graph import Node, TensorInfo
 from gate.ops._common import (
     add_work,
@@ -39,7 +37,6 @@ from gate.ops._common import (
     numel,
     output_shape,
 )
-from gate.ops.contrib_shapes import Facts, Rule, as_standard, same_as, shape_rule, tensor_type
 from gate.ops.elementwise import UNARY_OPS_PER_ELEMENT
 from gate.ops.matmul import gemm_shape
 from gate.ops.normalization import SOFTMAX_OPS_PER_ELEMENT
@@ -145,56 +142,3 @@ def dynamic_quantize_matmul(node: Node) -> OpWork:
     per_output = 1 + (1 if node.input(4) is not None else 0)  # scale Mul, bias Add
     return add_work([dynamic_quantize_linear(replace(node, inputs=(node.input(0),))), core,
                      arithmetic(scale + per_output * outputs)])
-
-
-# --- output shapes (onnx shape inference knows no com.microsoft op)
-
-shape_rule(*QLINEAR_UNARY_FLOAT_OPS)(same_as(0))
-
-
-@shape_rule("QLinearAdd", "QLinearMul")
-def _qlinear_binary_shape(facts: Facts) -> list[TypeProto | None]:
-    return [as_standard("Add", (0, 3))(facts)[0]]
-
-
-@shape_rule("QLinearConcat")
-def _qlinear_concat_shape(facts: Facts) -> list[TypeProto | None]:
-    positions = tuple(range(2, len(facts.inputs), 3))
-    return [as_standard("Concat", positions)(facts)[0]]
-
-
-def _pool_shape(op_type: str) -> Rule:
-    """The standard pool's output shape; ``channels_last=1`` permutes NHWC to NCHW and back."""
-    standard = as_standard(op_type, (0,))
-
-    def rule(facts: Facts) -> list[TypeProto | None]:
-        x = facts.dims(0)
-        if not facts.attr("channels_last", 0) or x is None or len(x) < 3:
-            return standard(facts)
-        nchw = facts.with_input(0, tensor_type(facts.elem(0), [x[0], x[-1], *x[1:-1]]),
-                                hidden_attr="channels_last")
-        (out,) = standard(nchw)
-        if out is None:
-            return [None]
-        dims = [d.dim_value if d.HasField("dim_value") else None
-                for d in out.tensor_type.shape.dim]
-        return [tensor_type(facts.elem(0), [dims[0], *dims[2:], dims[1]])]
-
-    return rule
-
-
-shape_rule("DynamicQuantizeMatMul")(as_standard("MatMul", (0, 1)))
-shape_rule("QLinearGlobalAveragePool")(_pool_shape("GlobalAveragePool"))
-shape_rule("QLinearAveragePool")(_pool_shape("AveragePool"))
-
-
-@shape_rule("QGemm")
-def _qgemm_shape(facts: Facts) -> list[TypeProto | None]:
-    (out,) = as_standard("Gemm", (0, 3))(facts)
-    if out is None:
-        return [None]
-    if facts.tensor(7) is None:  # no y_scale: a float output
-        out.tensor_type.elem_type = TensorProto.FLOAT
-    else:  # the y_zero_point's type (uint8 without one)
-        out.tensor_type.elem_type = facts.elem(8) if facts.tensor(8) is not None else TensorProto.UINT8
-    return [out]

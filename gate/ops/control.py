@@ -51,7 +51,7 @@ def graph_work(graph: Graph) -> OpWork:
         raise Unmodelled(f"control flow nested deeper than {MAX_NESTING} levels")
     token = _depth.set(depth + 1)
     try:
-        return add_work(_node_work(n) for n in graph.nodes if not (n.folded or n.fused))
+        return add_work(_node_work(n) for n in graph.nodes if not (n.folded or n.qdq_absorbed))
     finally:
         _depth.reset(token)
 

@@ -14,11 +14,11 @@ from dataclasses import dataclass
 from gate import metrics
 from gate.diff import diff_runs
 from gate.policy import spec
-from gate.policy.rules import UNKNOWN_REMEDY, Breach, Outcome, remedy_of
+from gate.policy.rules import Breach, Outcome, remedy_of
 from gate.policy.spec import Rule
 from gate.policy.thresholds import regression_bound, regression_exceeds, worsening
 from gate.records import Metric, RunRecord
-from gate.result import RunDiff
+from gate.result import UNKNOWN_REMEDY, RunDiff
 
 
 @dataclass(frozen=True, slots=True)

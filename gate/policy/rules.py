@@ -17,7 +17,7 @@ from gate.policy import spec
 from gate.policy.spec import Rule
 from gate.policy.thresholds import above_maximum, below_minimum, unmodelled_share
 from gate.records import LayerRecord, Metric, RunRecord
-from gate.result import RunDiff
+from gate.result import UNKNOWN_REMEDY, RunDiff
 
 DEFAULT_REMEDIES = {
     spec.MIN_UTILIZATION: "match channel counts to the PE array (multiples of its rows and "
@@ -261,9 +261,6 @@ def check_fits_in_buffer(rule: Rule, head: RunRecord, base: RunRecord | None,
     return Outcome(tuple(breaches), len(layers), f"whose {fail_what} do not fit on-chip buffers",
                    f"{len(layers)} layer{'s' if len(layers) != 1 else ''} checked, {what} fit "
                    "on-chip buffers")
-
-
-UNKNOWN_REMEDY = "bind the unbound dims (--dim, --shape) or see `roofgate profile` for why"
 
 
 def _unknown_breach(layer: LayerRecord, metric: str, what: str) -> Breach:

@@ -1,11 +1,11 @@
-"""Output shapes of the contrib ops we cost, taught to ``onnx.shape_inference``.
+"""Output shapes of the contrib ops we cost, taught to ``onnx.shape_inference``: the mechanism.
 
 onnx knows nothing of the ``com.microsoft`` operators graph optimizers emit, so
 its shape inference leaves their outputs (and everything downstream) unsized.
 ``register_contrib_schemas`` registers, once per process, a permissive schema
 for each contrib op we model (any inputs, outputs and attributes) whose type
-and shape inference function is a rule below; onnx then propagates the shapes
-through the rest of the graph as usual. A rule that cannot size an output
+and shape inference function is its rule in ``gate.model.contrib_rules``; onnx
+then propagates the shapes through the rest of the graph as usual. A rule that cannot size an output
 leaves it unsized (the layer is then reported as unmodelled); it never raises,
 since an exception would abort inference for the whole model.
 
@@ -160,7 +160,12 @@ def shape_rule(*op_types: str, domain: str = MS_DOMAIN) -> Callable[[Rule], Rule
 
 def contrib_ops_with_shape_rules() -> list[tuple[str, str]]:
     """Every (domain, op_type) whose output shapes we teach to onnx, sorted."""
+    _load_rules()
     return sorted(_RULES)
+
+
+def _load_rules() -> None:
+    from gate.model import contrib_rules  # noqa: F401  (its @shape_rule calls fill _RULES)
 
 
 def _inference_function(rule: Rule) -> Callable[[Any], None]:
@@ -183,7 +188,7 @@ def _any_type() -> list[str]:
 
 def register_contrib_schemas() -> None:
     """Teach onnx shape inference the contrib ops we model (idempotent; skips known ops)."""
-    import gate.ops  # noqa: F401  (the contrib op modules register their rules on import)
+    _load_rules()
 
     types = _any_type()
     variadic = OpSchema.FormalParameterOption.Variadic
