@@ -54,7 +54,7 @@ def _char_class(body: str) -> str:
     """'[!a-c]' body as a regex class: '!' negates, '-' makes ranges, all else is literal."""
     negate = body.startswith("!")
     chars = body[1:] if negate else body
-    members = []
+    members: list[str] = []
     for i, char in enumerate(chars):
         # a '-' between two members makes a range; any other '-' (first, last, or right
         # after a range's '-') is literal, so no '--' reaches the regex (a set difference)
