@@ -120,7 +120,9 @@ class _Wiring:
         consumers: dict[str, list[int]] = {}
         producer: dict[str, int] = {}
         for position, node in enumerate(graph.nodes):
-            for name in dict.fromkeys(_names_read(node)):
+            names = _names_read(node) if node.subgraphs else [  # most nodes: inputs only
+                t.name for t in node.inputs if t is not None and t.name]
+            for name in dict.fromkeys(names):
                 consumers.setdefault(name, []).append(position)
             for tensor in node.outputs:
                 if tensor.name:

@@ -53,8 +53,14 @@ def path_regex(pattern: str) -> re.Pattern[str]:
 def _char_class(body: str) -> str:
     """'[!a-c]' body as a regex class: '!' negates, '-' makes ranges, all else is literal."""
     negate = body.startswith("!")
-    members = re.escape(body[1:] if negate else body).replace("\\-", "-")
-    return f"[{'^' if negate else ''}{members}]"
+    chars = body[1:] if negate else body
+    members: list[str] = []
+    for i, char in enumerate(chars):
+        # a '-' between two members makes a range; any other '-' (first, last, or right
+        # after a range's '-') is literal, so no '--' reaches the regex (a set difference)
+        is_range = (char == "-" and 0 < i < len(chars) - 1 and members[-1] != "-")
+        members.append("-" if is_range else re.escape(char))
+    return f"[{'^' if negate else ''}{''.join(members)}]"
 
 
 def path_match(pattern: str, path: str) -> bool:

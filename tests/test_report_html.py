@@ -721,3 +721,22 @@ def test_a_rule_failing_at_every_layer_lists_its_worst_findings_and_counts_the_r
     assert set(shown) <= {f"l{k}" for k in range(5000) if k % 7 == 0}  # furthest below first
     assert f"And {5000 - MAX_FINDINGS_PER_RULE:,} more findings of this rule" in rules
     assert len(page.encode("utf-8")) < 1024 * 1024
+
+
+def test_captions_of_a_model_with_nothing_drawable_say_so_without_false_marks() -> None:
+    """Every layer unmodelled (figures unknown), one named by a failing rule: the captions
+    count them and do not claim a ringed point or a shaded row that is not drawn."""
+    unknown = {m: None for m in ("macs", "flops", "latency_s", "energy_j",
+                                 "achieved_flops_per_s", "arithmetic_intensity")}
+    layers = [replace(l, modelled=False, unmodelled_reason="unbound dim",
+                      metrics=dict(l.metrics, **unknown)) for l in cnn_layers()]
+    run = replace(make_run("models/u.onnx", "t", cnn_layers()), layers=tuple(layers))
+    entry = Entry(run.model, "t", run, None, None,
+                  (make_verdict("r", run.model, "t", FAIL, layer=layers[0].name),))
+    page = render(GateResult("check", (), (entry,)))
+    _parse(page)
+    captions = re.findall(r"<figcaption>(.*?)</figcaption>", page)
+    assert "6 layers not modelled" in captions[0] and "ringed" not in captions[0]
+    assert captions[1].startswith("No layer with a known latency to draw; 6 layers with an "
+                                  "unknown latency not drawn")
+    assert "shaded" not in captions[1]

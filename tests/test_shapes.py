@@ -792,3 +792,42 @@ def test_check_binds_both_sides_from_the_config_and_the_flag(tmp_path: Path,
         entry = json.loads(Path("out.json").read_text(encoding="utf-8"))["result"]["entries"][0]
         base, head = entry["base"]["metrics"]["macs"], entry["head"]["metrics"]["macs"]
         assert base == _vad_macs(samples) and head > base > 0
+
+
+# ------------------------------------------------------------------ walks on fully sized graphs
+
+def _relu_chain(nodes: int) -> onnx.ModelProto:
+    chain = [helper.make_node("Relu", [f"t{i}"], [f"t{i + 1}"]) for i in range(nodes)]
+    return onnx.shape_inference.infer_shapes(
+        model(chain, [vi("t0", [1, 4])], [vi(f"t{nodes}", [1, 4])]))
+
+
+def test_unsized_names_reads_each_distinct_type_once(monkeypatch: pytest.MonkeyPatch) -> None:
+    from gate.model import shape_values
+    asked = []
+    real = shape_values._type_is_sized
+
+    def counting(value_type: onnx.TypeProto, declared: frozenset[str]) -> bool:
+        asked.append(value_type)
+        return real(value_type, declared)
+
+    monkeypatch.setattr(shape_values, "_type_is_sized", counting)
+    proto = _relu_chain(20)
+    assert shape_values.unsized_names(proto.graph, frozenset()) == set()
+    assert len(asked) == 1  # 19 value_infos and 1 output, all float [1, 4]
+    # a different type is still read, and an unsized one still named
+    proto.graph.value_info[5].type.tensor_type.shape.dim[1].Clear()
+    assert shape_values.unsized_names(proto.graph, frozenset()) == {"t6"}
+    assert len(asked) == 3
+
+
+def test_sizing_notes_look_for_no_origin_when_every_output_is_sized(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from gate.model import shapes
+
+    def refuse(_: object) -> None:
+        raise AssertionError("searched for origins although every output is sized")
+
+    loaded = load_model(save(_relu_chain(5), tmp_path / "chain.onnx"))
+    monkeypatch.setattr(shapes, "_origins", refuse)
+    assert shapes.sizing_notes(loaded.graph) == []

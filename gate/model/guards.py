@@ -32,6 +32,7 @@ inference (gate/model/shape_values.py).
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
@@ -48,6 +49,8 @@ from gate.model.shape_rules import constant_node_value, stored_value
 MAX_SHAPE_DATA_ELEMENTS = 1 << 20
 # Ops whose output is small whatever their input's length (a shape, a count).
 _SMALL_OUTPUT_OPS = ("Shape", "Size")
+# Ops whose rank-0/1 output ``_built_elements`` sizes from constants.
+_BUILDING_OPS = frozenset(("Range", "ConstantOfShape", "Expand", "Tile"))
 
 
 @dataclass(frozen=True, slots=True)
@@ -96,6 +99,8 @@ def huge_shape_data(model: onnx.ModelProto, dims: Mapping[str, int] | None = Non
                 return HugeShapeData(_node_name(node), node.op_type, built)
             if built is not None and node.output and node.output[0]:
                 lengths[node.output[0]] = built
+    if not any(length > MAX_SHAPE_DATA_ELEMENTS for length in lengths.values()):
+        return None  # no tensor above the limit to read: skip the walk and its schema lookups
     for current in graphs:
         for node in current.node:
             if not _propagates_data(node, opset):
@@ -169,7 +174,7 @@ def _declared_length(value: onnx.ValueInfoProto, dims: Mapping[str, int]) -> int
 def _built_elements(node: onnx.NodeProto, constants: Mapping[str, np.ndarray],
                     lengths: Mapping[str, int]) -> int | None:
     """Elements of the node's rank-0/1 output when constants fix it (None otherwise)."""
-    if node.domain not in ("", "ai.onnx"):
+    if node.op_type not in _BUILDING_OPS or node.domain not in ("", "ai.onnx"):
         return None
     inputs = [constants.get(name) if name else None for name in node.input]
     try:
@@ -225,8 +230,14 @@ def _propagates_data(node: onnx.NodeProto, opset: int) -> bool:
     shape or a count)."""
     if node.domain not in ("", "ai.onnx") or node.op_type in _SMALL_OUTPUT_OPS:
         return False
+    return _schema_propagates(node.op_type, opset)
+
+
+@functools.lru_cache(maxsize=1024)
+def _schema_propagates(op_type: str, opset: int) -> bool:
+    """Asked once per (op_type, opset): a schema lookup costs microseconds, graphs repeat ops."""
     try:
-        schema = onnx.defs.get_schema(node.op_type, opset, "")
+        schema = onnx.defs.get_schema(op_type, opset, "")
     except onnx.defs.SchemaError:
         return False
     return bool(getattr(schema, "has_data_propagation_function", False))

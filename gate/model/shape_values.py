@@ -55,7 +55,16 @@ def _type_is_sized(value_type: onnx.TypeProto | None, declared: frozenset[str]) 
 
 def unsized_names(graph: onnx.GraphProto, declared: frozenset[str]) -> set[str]:
     """Node outputs of the main graph without a known rank or with a dim nobody can name."""
-    sized = {v.name: _type_is_sized(v.type, declared) for v in (*graph.value_info, *graph.output)}
+    # Graphs repeat a few types many times, and reading a type's dims from protobuf costs far
+    # more than serialising it: equal bytes parse to the same type, so ask once per encoding.
+    by_encoding: dict[bytes, bool] = {}
+    sized = {}
+    for value in (*graph.value_info, *graph.output):
+        encoding = value.type.SerializeToString()
+        known = by_encoding.get(encoding)
+        if known is None:
+            known = by_encoding[encoding] = _type_is_sized(value.type, declared)
+        sized[value.name] = known
     return {name for node in graph.node for name in node.output
             if name and not sized.get(name, False)}
 

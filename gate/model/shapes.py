@@ -162,6 +162,8 @@ def _origins(graph: Graph) -> list[tuple[Node, TensorInfo]]:
 
 
 def _origin_note(graph: Graph, has_symbolic: bool) -> str:
+    if not any(_is_unknown(t) for node in graph.nodes for t in node.outputs):
+        return ""  # the usual case: no unsized output, so no origin to look for
     origins = _origins(graph)
     if not origins:
         return ""

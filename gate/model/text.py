@@ -17,6 +17,8 @@ import onnx
 
 def repair_text_fields(model: onnx.ModelProto) -> int:
     """Decode every bytes-valued name in ``model`` in place; returns how many were repaired."""
+    if _all_text(model):
+        return 0  # the usual case, found in one pass; the repair below walks twice
     repaired = 0
     for holder, field in _text_fields(model):
         value = getattr(holder, field)
@@ -29,6 +31,38 @@ def repair_text_fields(model: onnx.ModelProto) -> int:
                 repeated[i] = _decode(value)
                 repaired += 1
     return repaired
+
+
+def _all_text(model: onnx.ModelProto) -> bool:
+    """Whether every field ``repair_text_fields`` repairs already holds ``str``.
+
+    One walk over the graphs (subgraphs found on the way) and functions; ``str.join``
+    raises TypeError on the first ``bytes`` it meets (an f-string would not).
+    """
+    try:
+        "".join((model.producer_name, model.producer_version,
+                 *(opset.domain for opset in model.opset_import)))
+        stack = [model.graph]
+        while stack:
+            graph = stack.pop()
+            for node in graph.node:
+                "".join((node.name, node.op_type, node.domain, *node.input, *node.output))
+                for attribute in node.attribute:
+                    if attribute.type == onnx.AttributeProto.GRAPH:
+                        stack.append(attribute.g)
+                    elif attribute.type == onnx.AttributeProto.GRAPHS:
+                        stack.extend(attribute.graphs)
+            "".join((graph.name, *(value.name for value in graph.input),
+                     *(value.name for value in graph.output),
+                     *(value.name for value in graph.value_info),
+                     *(tensor.name for tensor in graph.initializer)))
+        for function in model.functions:
+            "".join((function.name, function.domain, *function.input, *function.output))
+            for node in function.node:
+                "".join((node.name, node.op_type, node.domain, *node.input, *node.output))
+    except TypeError:
+        return False
+    return True
 
 
 def _decode(value: bytes) -> str:

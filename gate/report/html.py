@@ -267,12 +267,15 @@ def _charts(entry: Entry, anchor: str, flagged: frozenset[str]) -> str:
     roof = charts.roofline_svg(head, base, f"{anchor}-roofline", flagged=flagged,
                                head_points=points)
     chosen = charts.bar_layers(head)
+    # the captions mention the marks only when a marked layer is drawn
+    ringed = any(point.name in flagged for point in points.points)
+    shaded = any(layer.name in flagged for layer in chosen.layers)
     bars = charts.layer_bars_svg(head, base_latencies(entry), f"{anchor}-layers",
                                  flagged=flagged, bars=chosen)
     return (f"<h3>Roofline</h3>\n<figure>{roof}<figcaption>"
-            f"{_roof_caption(points, head, base is not None, bool(flagged))}."
+            f"{_roof_caption(points, head, base is not None, ringed)}."
             f"</figcaption></figure>\n<h3>Latency and energy per layer</h3>\n"
-            f"<figure>{bars}<figcaption>{_bar_caption(chosen, bool(flagged))}; energy split "
+            f"<figure>{bars}<figcaption>{_bar_caption(chosen, shaded)}; energy split "
             f"by component.</figcaption></figure>\n")
 
 
@@ -305,7 +308,8 @@ def _roof_caption(sel: charts.RoofSelection, head: RunRecord, with_base: bool,
 
 def _bar_caption(chosen: charts.BarSelection, with_flags: bool) -> str:
     """What the bar chart shows, and the layers it leaves out or cannot draw."""
-    caption = f"the {_layers(len(chosen.layers))} with the largest latency"
+    caption = (f"the {_layers(len(chosen.layers))} with the largest latency" if chosen.layers
+               else "no layer with a known latency to draw")
     if chosen.left_out:
         caption += f"; {_layers(chosen.left_out)} more (the table below lists the ones that matter)"
     if chosen.unknown_latency:

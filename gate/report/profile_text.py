@@ -58,7 +58,7 @@ def render_chunks(fmt: str, profile: ModelProfile, runs: Sequence[Run],
         return json_chunks(profile, records)
     if fmt == "csv":  # CSV keeps model text as is, apart from runner markers (gate/logsafe)
         return iter([_defused(to_csv(profile, runs))])
-    return iter([_defused(to_table(profile, runs))])
+    return (_defused(chunk) for chunk in table_chunks(profile, runs))
 
 
 def _defused(text: str) -> str:
@@ -282,12 +282,15 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
     return text
 
 
-def _align(rows: list[list[str]], right_from: int) -> list[str]:
+def _aligned(rows: list[list[str]], right_from: int) -> Iterator[str]:
     """Columns padded to their widest cell (left-aligned before ``right_from``, right-aligned
-    from it), two spaces apart; one format string for every row (a table may have 100k)."""
+    from it), two spaces apart, each line ending in a newline; in batches of lines. One
+    format string for every row (a table may have 100k)."""
     widths = [max(map(len, column)) for column in zip(*rows)]
     line = "  ".join(f"{{:{'>' if i >= right_from else '<'}{w}}}" for i, w in enumerate(widths))
-    return [line.format(*row).rstrip() for row in rows]
+    for first in range(0, len(rows), _ROWS_PER_CHUNK):
+        yield "".join(line.format(*row).rstrip() + "\n"
+                      for row in rows[first:first + _ROWS_PER_CHUNK])
 
 
 def _known(shapes: Sequence[Shape | None]) -> bool:
@@ -345,6 +348,12 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
     With targets, each target adds a group of columns under its name (a
     side-by-side matrix) and a line of model totals below the table.
     """
+    return "".join(table_chunks(profile, runs))
+
+
+def table_chunks(profile: ModelProfile, runs: Sequence[Run]) -> Iterator[str]:
+    """``to_table`` in pieces of whole lines: the aligned rows are written in batches
+    rather than joined into one string (a 100k-layer table is 15 MB)."""
     model = profile.model
     dims = " ".join([*(f"{k}={v}" for k, v in model.dim_bindings.items()),
                      *(f"{k}={shape_text(v)}" for k, v in model.shape_bindings.items())]) or "none"
@@ -359,17 +368,17 @@ def to_table(profile: ModelProfile, runs: Sequence[Run]) -> str:
         ([("", "!")] if flagged else [])
     rows = [[top for top, _ in head], [bottom for _, bottom in head]] + \
         [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
-    table = _align(rows, right_from=5)
     if runs:
-        table.insert(0, _group_line(rows, [clean(target.name, 40) for target, _ in runs]))
-    lines += table
-    lines += ["", LEGEND, *([TARGET_LEGEND] if runs else []),
-              MARKS + (UNMODELLED_MARKS if flagged else "")]
+        lines.append(_group_line(rows, [clean(target.name, 40) for target, _ in runs]))
+    yield "".join(line + "\n" for line in lines)
+    yield from _aligned(rows, right_from=5)
+    lines = ["", LEGEND, *([TARGET_LEGEND] if runs else []),
+             MARKS + (UNMODELLED_MARKS if flagged else "")]
     lines += ["", *_totals_lines(profile), *_coverage_lines(profile)]
     for target, cost in runs:
         lines += _target_lines(target, cost, profile)
     lines += _notes_lines(profile)
-    return "\n".join(lines) + "\n"
+    yield "".join(line + "\n" for line in lines)
 
 
 def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> list[str]:
