@@ -83,7 +83,7 @@ def _fusion_rows(ctx: Context, resnet: Path) -> list[Row]:
 
 # Functions that fold constants, decide parameters and charge them, read by name (so a
 # move between modules does not lose them); none of them calls another.
-FOLDING_FUNCTIONS = ("folds", "is_parameter", "_readers", "_fold", "fuses", "deployed_dtypes",
+FOLDING_FUNCTIONS = ("folds", "is_parameter", "_fold", "absorbs_qdq", "deployed_dtypes",
                      "layer_precision", "_layer_params", "charge")
 SHARE_CODE = """
 import cProfile, pstats, sys
