@@ -412,8 +412,11 @@ def _group_line(rows: list[list[str]], names: list[str]) -> str:
 def _totals_lines(profile: ModelProfile) -> list[str]:
     cov = profile.coverage
     modelled = "" if cov.nodes_modelled == cov.nodes_total else f" ({cov.nodes_modelled} modelled)"
-    return [(f"total: {len(profile.layers)} layers{modelled}, {units.fmt_count(profile.total_macs)} MACs, "
-             f"{units.fmt_count(profile.total_flops)} FLOPs, {units.fmt_count(profile.total_param_count)} parameters "
+    unknown = no_work_costed(cov.nodes_total, cov.nodes_total - cov.nodes_modelled,
+                             bool(profile.total_macs or profile.total_flops))
+    macs, flops = (None, None) if unknown else (profile.total_macs, profile.total_flops)
+    return [(f"total: {len(profile.layers)} layers{modelled}, {units.fmt_count(macs)} MACs, "
+             f"{units.fmt_count(flops)} FLOPs, {units.fmt_count(profile.total_param_count)} parameters "
              f"({units.fmt_bytes(profile.total_param_bytes)}, shared ones counted once)")]
 
 
