@@ -293,7 +293,7 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
     the array's output path or the vector unit; their parameters are read.
     """
     members = [layers[i] for i in group.members]
-    kept = [_kept_params(m, m.index in group.folded) for m in members]
+    kept = [_kept_params(m, m.index in group.folded, head) for m in members]
     as_one = _replaced(
         head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
         param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
@@ -319,13 +319,24 @@ _Record = TypeVar("_Record", LayerProfile, LayerCost)
 _FIELD_NAMES: dict[type, tuple[str, ...]] = {}
 
 
-def _kept_params(member: LayerProfile, folded: bool) -> tuple[int, int, int]:
-    """(bytes, bytes no earlier layer read, count) of a member's parameters the group reads."""
+def _kept_params(member: LayerProfile, folded: bool,
+                 head: LayerProfile) -> tuple[int, int, int]:
+    """(bytes, bytes no earlier layer read, count) of a member's parameters the group reads.
+
+    A folded member leaves one per-channel vector, the head's new bias, stored as the
+    head stores its parameters: a float BatchNormalization folded into an int8 Conv
+    becomes part of an int8 layer, so a QDQ export that leaves BN float costs what
+    the same network at ``--precision int8`` costs.
+    """
     if not folded:
         return member.param_bytes, member.first_read_param_bytes, member.param_count
     tensors = max(1, len(member.param_names))  # BatchNormalization: 4 vectors fold into 1 bias
+    count = ceil(member.param_count / tensors)
+    if head.param_count and member.param_bytes:
+        nbytes = ceil(count * head.param_bytes / head.param_count)
+        return nbytes, ceil(nbytes * member.first_read_param_bytes / member.param_bytes), count
     return (ceil(member.param_bytes / tensors), ceil(member.first_read_param_bytes / tensors),
-            ceil(member.param_count / tensors))
+            count)
 
 
 # ---------------------------------------------------------------- one layer
