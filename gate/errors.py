@@ -10,6 +10,7 @@ Exit codes (documented in the README):
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 
 import click
 
@@ -45,6 +46,10 @@ class RoofgateError(click.ClickException):
         text = f"{path}: {message}" if path else message
         super().__init__(text)
 
+    def rename_paths(self, named: Callable[[str], str]) -> None:
+        """Rewrite the file names in the message (a file read from a temporary copy)."""
+        self.message = named(self.message)  # type: ignore[misc]  # click marks it Final
+
     def format_message(self) -> str:
         # One line, always: a model-supplied newline must not forge extra output lines,
         # nor an escape sequence in a node name act on the user's terminal.
@@ -65,6 +70,10 @@ class ConfigError(RoofgateError):
     def __init__(self, problems: list[str]) -> None:
         self.problems = list(problems)
         super().__init__(self.problems[0] if self.problems else "invalid configuration")
+
+    def rename_paths(self, named: Callable[[str], str]) -> None:
+        super().rename_paths(named)
+        self.problems = [named(problem) for problem in self.problems]
 
     def format_message(self) -> str:
         extra = len(self.problems) - 1

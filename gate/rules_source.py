@@ -28,6 +28,7 @@ from pathlib import Path
 from gate import gitscan
 from gate.bundled import names_a_file
 from gate.config import CONFIG_FILE, ProjectConfig, find_config, resolve_file
+from gate.errors import RoofgateError
 from gate.policy.load import load_policy
 from gate.policy.spec import Policy
 from gate.result import RulesSource
@@ -61,7 +62,8 @@ def check_rules(root: Path, base_commit: str, load: ConfigLoader, *, config_path
     config_rel = _config_rel(root, config_path)
     baseline_rel = _repo_rel(root, baseline) if baseline else None
     with tempfile.TemporaryDirectory(prefix=f"roofgate-base-{base_commit[:12]}-") as base, \
-            tempfile.TemporaryDirectory(prefix="roofgate-head-") as head:
+            tempfile.TemporaryDirectory(prefix="roofgate-head-") as head, \
+            _named_in_repository({f"{base}/": f"{base_commit[:12]}:", f"{head}/": "HEAD:"}):
         trees = {"base": Path(base), "head": Path(head)}
         for rev, folder in ((base_commit, trees["base"]), ("HEAD", trees["head"])):
             export_rule_files(root, rev, folder, baseline_rel)
@@ -74,6 +76,21 @@ def check_rules(root: Path, base_commit: str, load: ConfigLoader, *, config_path
         source = RulesSource(side, statement, tuple(_changes(raw, trees, baseline_rel)))
         yield CheckRules(config, source, _repo_files(config, trees[side], root),
                          _baseline(trees[side], baseline_rel, baseline), str(trees[side]))
+
+
+@contextmanager
+def _named_in_repository(prefixes: dict[str, str]) -> Iterator[None]:
+    """An error about a rule file read from a temporary folder names it as git does,
+    ``REV:path`` (``4f2c9a1b0d3e:policies/gate.yaml:12: ...``), never the temporary path."""
+    try:
+        yield
+    except RoofgateError as exc:
+        def named(text: str) -> str:
+            for temporary, revision in prefixes.items():
+                text = text.replace(temporary, revision)
+            return text
+        exc.rename_paths(named)
+        raise
 
 
 def export_rule_files(root: Path, rev: str, folder: Path, extra: str | None = None) -> None:

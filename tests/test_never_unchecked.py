@@ -208,7 +208,12 @@ def test_a_scope_typo_fails_check_too(repo: Repo) -> None:
     save_model(fc_model(96), repo.path / "models/a.onnx")
     repo.commit("grow")
     result = invoke(["check", "--base", "main"])
-    assert result.exit_code == 2 and "did you mean 'ws-64x64-4mib'?" in one_line(result)
+    line = one_line(result)
+    assert result.exit_code == 2 and "did you mean 'ws-64x64-4mib'?" in line
+    # the base's policy file is named as git names it (REV:path), not by its temporary copy
+    base = repo.git("rev-parse", "--short=12", "main").strip()
+    assert line.startswith(f"Error: {base}:policies/p.yaml"), line
+    assert "roofgate-base-" not in result.output
 
 
 def test_a_model_x_target_no_rule_judges_is_exit_2(zoo: Path) -> None:
