@@ -429,9 +429,6 @@ def all_graph_protos(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
                 stack.extend(attribute.graphs)
 
 
-_all_graph_protos = all_graph_protos
-
-
 _DATA_FIELDS = ("raw_data", "float_data", "int32_data", "string_data", "int64_data",
                 "double_data", "uint64_data")
 _SHAPE_DTYPES = frozenset({TensorProto.INT64, TensorProto.INT32})

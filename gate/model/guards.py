@@ -34,14 +34,14 @@ from __future__ import annotations
 
 import functools
 import math
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import onnx
-from onnx import AttributeProto
 
 from gate.errors import InputError
+from gate.model.convert import all_graph_protos
 from gate.model.shape_rules import constant_node_value, stored_value
 
 # Elements of one 1-D tensor that onnx data propagation may hold (about 150 MB at the
@@ -88,8 +88,8 @@ def huge_shape_data(model: onnx.ModelProto, dims: Mapping[str, int] | None = Non
     """The first 1-D tensor above the limit that inference would hold, or None."""
     opset = next((int(o.version) for o in model.opset_import if o.domain in ("", "ai.onnx")),
                  onnx.defs.onnx_opset_version())
-    graphs = [*_graphs(model.graph),  # local functions are inlined before inference
-              *(g for f in model.functions for g in _graphs(onnx.GraphProto(node=f.node)))]
+    graphs = [*all_graph_protos(model.graph),  # local functions are inlined before inference
+              *(g for f in model.functions for g in all_graph_protos(onnx.GraphProto(node=f.node)))]
     constants = _constants(graphs)
     lengths = _declared_lengths(graphs, dims or {}, shapes or {})
     for current in graphs:
@@ -109,20 +109,6 @@ def huge_shape_data(model: onnx.ModelProto, dims: Mapping[str, int] | None = Non
                 if name and lengths.get(name, 0) > MAX_SHAPE_DATA_ELEMENTS:
                     return HugeShapeData(_node_name(node), node.op_type, lengths[name], True)
     return None
-
-
-def _graphs(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
-    """``graph`` and every subgraph (If/Loop/Scan bodies), depth first."""
-    stack = [graph]
-    while stack:
-        current = stack.pop()
-        yield current
-        for node in current.node:
-            for attribute in node.attribute:
-                if attribute.type == AttributeProto.GRAPH:
-                    stack.append(attribute.g)
-                elif attribute.type == AttributeProto.GRAPHS:
-                    stack.extend(attribute.graphs)
 
 
 def _constants(graphs: Sequence[onnx.GraphProto]) -> dict[str, np.ndarray]:

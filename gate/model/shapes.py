@@ -21,8 +21,7 @@ from collections.abc import Mapping, Sequence
 import onnx
 
 from gate.errors import InputError
-from gate.model.convert import UNKNOWN_DIM
-from gate.model.convert import _all_graph_protos as all_graph_protos
+from gate.model.convert import UNKNOWN_DIM, all_graph_protos
 from gate.model.graph import Graph, Node, Shape, TensorInfo
 from gate.model.shape_text import StaticShape, shape_text
 
