@@ -21,17 +21,23 @@ GIT_ENV = {
 
 # --- graphs ------------------------------------------------------------------
 
-def chain_model(nodes: int, changed_node: int | None = None) -> onnx.ModelProto:
-    """A chain of small Conv / Relu / Add layers, ``nodes`` long; ``changed_node`` (a Relu's
-    index) becomes a Sigmoid: the one-node change a pull request makes."""
+def chain_model(nodes: int, changed_node: int | None = None,
+                inserted_at: int | None = None) -> onnx.ModelProto:
+    """A chain of small Conv / Relu / Add layers, ``nodes`` long, named by position.
+
+    ``changed_node`` (a Relu's index) becomes a Sigmoid: the one-node change a pull request
+    makes. ``inserted_at`` adds one Sigmoid there instead, so every later node is renumbered
+    (an exporter's renumbering, the hard case for the layer matcher).
+    """
     weight = numpy_helper.from_array(np.zeros((8, 8, 1, 1), np.float32), "w")
+    kinds = [("Conv", "Relu", "Add")[i % 3] for i in range(nodes)]
+    if changed_node is not None:
+        kinds[changed_node] = "Sigmoid"
+    if inserted_at is not None:
+        kinds.insert(inserted_at, "Sigmoid")
     graph_nodes, x = [], "x"
-    kinds = ("Conv", "Relu", "Add")
-    for i in range(nodes):
-        kind = kinds[i % 3]
-        inputs = {"Conv": [x, "w"], "Relu": [x], "Add": [x, x]}[kind]
-        if i == changed_node:
-            kind = "Sigmoid"
+    for i, kind in enumerate(kinds):
+        inputs = {"Conv": [x, "w"], "Add": [x, x]}.get(kind, [x])
         graph_nodes.append(helper.make_node(kind, inputs, [f"t{i}"], name=f"n{i}"))
         x = f"t{i}"
     shape = [1, 8, 8, 8]

@@ -79,25 +79,10 @@ def git(repo: Path, *args: str) -> None:
 # --- inputs -------------------------------------------------------------------------
 
 def chain(nodes: int, inserted_at: int | None = None):  # -> onnx.ModelProto
-    """Conv / Relu / Add repeating, ``nodes`` long; ``inserted_at`` adds one Sigmoid there
-    and numbers every node by position (an exporter's renumbering)."""
-    import numpy as np
-    from onnx import TensorProto, helper, numpy_helper
+    """The benchmark chain (``bench/inputs.py``); ``inserted_at`` renumbers every later node."""
+    from inputs import chain_model  # bench/ is on the path when this script runs
 
-    weight = numpy_helper.from_array(np.zeros((8, 8, 1, 1), np.float32), "w")
-    kinds = [("Conv", "Relu", "Add")[i % 3] for i in range(nodes)]
-    if inserted_at is not None:
-        kinds.insert(inserted_at, "Sigmoid")
-    graph_nodes, x = [], "x"
-    for i, kind in enumerate(kinds):
-        inputs = {"Conv": [x, "w"], "Add": [x, x]}.get(kind, [x])
-        graph_nodes.append(helper.make_node(kind, inputs, [f"t{i}"], name=f"n{i}"))
-        x = f"t{i}"
-    shape = [1, 8, 8, 8]
-    graph = helper.make_graph(
-        graph_nodes, "chain", [helper.make_tensor_value_info("x", TensorProto.FLOAT, shape)],
-        [helper.make_tensor_value_info(x, TensorProto.FLOAT, shape)], [weight])
-    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    return chain_model(nodes, inserted_at=inserted_at)
 
 
 def zoo_model(i: int, variant: int = 0):  # -> onnx.ModelProto
