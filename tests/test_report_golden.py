@@ -59,12 +59,9 @@ def _worst_layers(result: GateResult) -> set[str]:
     return {e.worst_layer for e in result.entries if e.status == FAIL and e.worst_layer}
 
 
-@pytest.mark.parametrize("name", RUNS)
-def test_every_report_names_the_same_failed_rules_and_worst_layer(name: str) -> None:
-    result = _result(name)
-    rules, worst = _failed_rules(result), _worst_layers(result)
-    assert rules and worst
-    texts = {
+def _every_report(result) -> dict[str, str]:
+    """Each report format's text for ``result``, by format name."""
+    return {
         "terminal": terminal.render(result),
         "markdown": markdown.render(result),
         "junit": junit.render(result),
@@ -72,6 +69,14 @@ def test_every_report_names_the_same_failed_rules_and_worst_layer(name: str) -> 
         "annotations": "\n".join(annotation_lines(result)),
         "html": html.render(result),
     }
+
+
+@pytest.mark.parametrize("name", RUNS)
+def test_every_report_names_the_same_failed_rules_and_worst_layer(name: str) -> None:
+    result = _result(name)
+    rules, worst = _failed_rules(result), _worst_layers(result)
+    assert rules and worst
+    texts = _every_report(result)
     for report, text in texts.items():
         for rule in rules:
             assert rule in text, (report, rule)
@@ -131,14 +136,7 @@ def test_every_report_names_a_changed_model_outside_every_group() -> None:
                         "no model group covers it; add a group or list it under ungated:")
     result = replace(_result("demo"), ungated=(item,))
     assert result.exit_code == 1
-    texts = {
-        "terminal": terminal.render(result),
-        "markdown": markdown.render(result),
-        "junit": junit.render(result),
-        "sarif": json.dumps(sarif.sarif_log(result)),
-        "annotations": "\n".join(annotation_lines(result)),
-        "html": html.render(result),
-    }
+    texts = _every_report(result)
     for report, text in texts.items():
         assert "not-gated" in text and item.model in text, report
     sentence = not_gated_sentence(item)

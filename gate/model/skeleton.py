@@ -111,13 +111,19 @@ def _model(view: memoryview) -> bytes | None:
         if number == _MODEL_GRAPH and wire == _LEN:
             graph = _graph(view, start, stop)
             if graph is not None:
-                pieces += [view[copied:start - _length_size(view, start)],
-                           _encode_varint(len(graph)), graph]
+                pieces += _spliced(view, copied, start, graph)
                 copied, changed = stop, True
     if not changed:
         return None
     pieces.append(view[copied:end])
     return b"".join(pieces)
+
+
+def _spliced(view: memoryview, copied: int, start: int,
+             value: bytes) -> list[bytes | memoryview]:
+    """The bytes from ``copied`` up to a length-delimited field whose value starts at
+    ``start``, then that field's new length and new ``value`` (the caller skips the old)."""
+    return [view[copied:start - _length_size(view, start)], _encode_varint(len(value)), value]
 
 
 def _length_size(view: memoryview, start: int) -> int:
@@ -146,8 +152,7 @@ def _graph(view: memoryview, begin: int, end: int) -> bytes | None:
         if number == _GRAPH_INITIALIZER and wire == _LEN:
             tensor = _tensor(view, start, stop)
             if tensor is not None:
-                pieces += [view[copied:start - _length_size(view, start)],
-                           _encode_varint(len(tensor)), tensor]
+                pieces += _spliced(view, copied, start, tensor)
                 copied, changed = stop, True
     if pos != end:
         raise _NotPlain  # the last node ran past the graph's end
