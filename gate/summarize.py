@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable, Iterator, Mapping
 from functools import lru_cache
 
 from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
@@ -11,7 +12,6 @@ from gate.targets.spec import TargetProfile
 
 _ENERGY_PARTS = tuple(EnergyBreakdown().as_dict())
 _ENERGY_KEYS = tuple(f"energy_{part}" for part in _ENERGY_PARTS)
-_UNKNOWN_ENERGY_PARTS: dict[str, Metric] = dict.fromkeys(_ENERGY_KEYS)
 
 
 def build_run_record(model_path: str, profile: ModelProfile, cost: ModelCost,
@@ -57,31 +57,7 @@ def _achieved(flops: int | None, latency_s: float | None) -> float | None:
 
 
 def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
-    """One layer's record; its energy parts spelled out (called per layer per target)."""
-    energy = cost.energy
-    parts: dict[str, Metric] = (_UNKNOWN_ENERGY_PARTS if energy is None
-                                else dict(zip(_ENERGY_KEYS, energy.as_dict().values())))
-    metrics: dict[str, Metric] = {
-        "macs": layer.macs,
-        "flops": layer.flops,
-        "param_count": layer.param_count,
-        "param_bytes": layer.param_bytes,
-        "input_bytes": layer.input_bytes,
-        "output_bytes": layer.output_bytes,
-        "arithmetic_intensity": layer.arithmetic_intensity,
-        "param_reuse": layer.param_reuse,
-        "cycles": cost.cycles,
-        "utilization": cost.utilization,
-        "compute_s": cost.compute_s,
-        "memory_s": cost.memory_s,
-        "overhead_s": cost.overhead_s,
-        "latency_s": cost.latency_s,
-        "param_dram_bytes": cost.param_dram_bytes,
-        "act_dram_bytes": cost.act_dram_bytes,
-        "achieved_flops_per_s": _achieved(layer.flops, cost.latency_s),
-        "energy_j": None if energy is None else energy.total_j,
-        **parts,
-    }
+    """One layer's record (called per layer per target); its metrics are a view."""
     return LayerRecord(
         name=layer.name,
         op_type=layer.op_type,
@@ -92,11 +68,86 @@ def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
         unmodelled_reason=layer.unmodelled_reason,
         params_fit=cost.params_fit,
         activations_fit=cost.activations_fit,
-        metrics=metrics,
+        metrics=LayerMetrics(layer, cost),
         fused_into=cost.fused_into,
         fused_ops=cost.fused_ops,
         precision=cost.precision,
     )
+
+
+def _energy_part(part: str) -> Callable[[LayerProfile, LayerCost], Metric]:
+    """The reader of one energy part (an ``EnergyBreakdown`` field, as ``as_dict`` names it)."""
+    def read(_layer: LayerProfile, cost: LayerCost) -> Metric:
+        energy = cost.energy
+        return None if energy is None else getattr(energy, part)
+    return read
+
+
+# Each layer metric, in record order, read from the layer's profile and its cost.
+_LAYER_METRIC_READERS: dict[str, Callable[[LayerProfile, LayerCost], Metric]] = {
+    "macs": lambda layer, cost: layer.macs,
+    "flops": lambda layer, cost: layer.flops,
+    "param_count": lambda layer, cost: layer.param_count,
+    "param_bytes": lambda layer, cost: layer.param_bytes,
+    "input_bytes": lambda layer, cost: layer.input_bytes,
+    "output_bytes": lambda layer, cost: layer.output_bytes,
+    "arithmetic_intensity": lambda layer, cost: layer.arithmetic_intensity,
+    "param_reuse": lambda layer, cost: layer.param_reuse,
+    "cycles": lambda layer, cost: cost.cycles,
+    "utilization": lambda layer, cost: cost.utilization,
+    "compute_s": lambda layer, cost: cost.compute_s,
+    "memory_s": lambda layer, cost: cost.memory_s,
+    "overhead_s": lambda layer, cost: cost.overhead_s,
+    "latency_s": lambda layer, cost: cost.latency_s,
+    "param_dram_bytes": lambda layer, cost: cost.param_dram_bytes,
+    "act_dram_bytes": lambda layer, cost: cost.act_dram_bytes,
+    "achieved_flops_per_s": lambda layer, cost: _achieved(layer.flops, cost.latency_s),
+    "energy_j": lambda layer, cost: None if cost.energy is None else cost.energy.total_j,
+    **{key: _energy_part(part) for key, part in zip(_ENERGY_KEYS, _ENERGY_PARTS)},
+}
+_LAYER_METRIC_NAMES = tuple(_LAYER_METRIC_READERS)
+
+
+class LayerMetrics(Mapping[str, Metric]):
+    """A layer record's metrics, read from its (immutable) profile and cost when asked.
+
+    Why a view rather than a dict: a dict of 24 metrics per layer per target was
+    the largest allocation of a big model's analysis (about 1 kB a layer) and most
+    of its values are never read (the profile table reads none). It behaves as the
+    dict did: same keys in the same order, same values, equal to that dict;
+    ``gate.records.canonical_run`` and the JSON writers turn it into a plain dict.
+    """
+
+    __slots__ = ("_cost", "_layer")
+
+    def __init__(self, layer: LayerProfile, cost: LayerCost) -> None:
+        self._layer = layer
+        self._cost = cost
+
+    def __getitem__(self, name: str) -> Metric:
+        return _LAYER_METRIC_READERS[name](self._layer, self._cost)
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(_LAYER_METRIC_NAMES)
+
+    def __len__(self) -> int:
+        return len(_LAYER_METRIC_NAMES)
+
+    def __contains__(self, name: object) -> bool:
+        return name in _LAYER_METRIC_READERS
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, Mapping):
+            return dict(self.items()) == dict(other.items())
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]  # like a dict: unhashable
+
+    def __repr__(self) -> str:
+        return repr(dict(self.items()))
+
+    def __reduce__(self) -> tuple[type[dict[str, Metric]], tuple[dict[str, Metric]]]:
+        return dict, (dict(self.items()),)  # pickled as the plain dict it stands for
 
 
 def _model_metrics(profile: ModelProfile, cost: ModelCost) -> dict[str, Metric]:

@@ -27,11 +27,15 @@ dims and dtype. The steps, in order:
 
 from __future__ import annotations
 
+import ctypes
+import functools
 import math
 import os
+import sys
 import tempfile
 from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
 import onnx
 import onnx.inliner
@@ -79,7 +83,14 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
     anything that is not a usable ONNX model, and for a ``shapes`` entry that
     names no input or contradicts the model.
     """
-    text_path = os.fspath(path)
+    loaded = _load(os.fspath(path), dims, shapes, data)
+    release_freed_memory()  # the parsed protos are gone now; give their pages back
+    return loaded
+
+
+def _load(text_path: str, dims: Mapping[str, int] | None,
+          shapes: Mapping[str, StaticShape] | None, data: bytes | None) -> LoadedModel:
+    """``load_model``; every proto it parses is freed when it returns."""
     bindings = _check_bindings(dict(dims or {}), text_path)
     shape_bindings = _check_shapes(dict(shapes or {}), text_path)
     size_bytes = _check_file(text_path) if data is None else _check_head(len(data), data, text_path)
@@ -121,6 +132,30 @@ def load_model(path: str | os.PathLike[str], dims: Mapping[str, int] | None = No
         unbound_dims=_unbound_dims(graph),
         warnings=tuple(warnings),
     )
+
+
+def release_freed_memory() -> None:
+    """Return the C heap's free pages to the system (glibc ``malloc_trim``; elsewhere nothing).
+
+    Why: a parsed model and its inferred copy take about a kilobyte per node in
+    protobuf's C allocations. Once converted they are freed, but glibc keeps the
+    pages, and everything analysis allocates afterwards (Python objects live in
+    their own arenas) comes on top: a 100k-node profile peaked 40% higher.
+    """
+    trim = _malloc_trim()
+    if trim is not None:
+        trim(0)
+
+
+@functools.cache
+def _malloc_trim() -> Any:
+    """glibc's ``malloc_trim``, or None where there is none (macOS, musl, Windows)."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        return ctypes.CDLL(None).malloc_trim
+    except (OSError, AttributeError):
+        return None
 
 
 def _check_bindings(dims: dict[str, int], path: str) -> dict[str, int]:
