@@ -4,9 +4,19 @@ A snapshot holds, per model and per target, the model totals, the target's key
 figures and every layer's metrics (``gate.records.run_to_dict``), so a later
 run can diff against it and apply regression rules without re-profiling the
 old model. Writing is deterministic: runs sorted by (model, target), keys
-sorted, two-space indent (flat containers on one line), floats rounded to ``FLOAT_DIGITS`` significant
-digits, a final newline. The same records always give the same bytes, so a
-committed baseline only changes when a figure does.
+sorted, floats rounded to ``FLOAT_DIGITS`` significant digits, a final newline.
+The same records always give the same bytes, so a committed baseline only
+changes when a figure does.
+
+Text layout (``canonical_json``, also used by the JSON result): two-space indent,
+one layer per line. A container holding only plain values (strings, numbers,
+booleans, null) is written on one line, and so is a *row*: an object inside a
+list that holds no list of objects or lists (a layer with its metrics, a
+finding, a layer change with its deltas); every other object has one key per
+line and every other list one item per line. Each one-line value is written by
+the C JSON encoder in one call. The layout is whitespace only: readers parse
+JSON, so files written with the earlier layout (one key per line down to the
+flat containers) read the same, and changing it needs no version bump.
 
 Layout (version 2)::
 
@@ -31,7 +41,8 @@ from __future__ import annotations
 import json
 import math
 import os
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from json.encoder import c_make_encoder, encode_basestring_ascii  # type: ignore[attr-defined]
 from typing import Any
 
 from gate.errors import InputError, InternalError
@@ -46,57 +57,194 @@ MAX_SNAPSHOT_BYTES = 256 * 1024 * 1024
 
 
 def canonical_json(data: Any) -> str:
-    """``data`` as deterministic JSON text: sorted keys, indent 2, rounded floats, final newline.
+    """``data`` as deterministic JSON text (see ``canonical_json_pieces``), in one string."""
+    return "".join(canonical_json_pieces(data))
 
+
+def canonical_json_pieces(data: Any) -> Iterator[str]:
+    """``data`` as deterministic JSON text, in pieces of about ``PIECE_CHARS`` characters.
+
+    Sorted keys, floats rounded to ``FLOAT_DIGITS`` significant digits (never
+    ``-0.0``), two-space indent with one row per line (``_row``), final newline.
     Non-ASCII is written as ``\\uXXXX`` escapes, so any name (even one holding a
     lone surrogate, which UTF-8 cannot encode) is written and read back exactly;
-    ``##`` is written ``#\\u0023`` so no line can carry a CI runner marker.
+    ``##`` is written ``#\\u0023`` so no line can carry a CI runner marker. Every
+    piece ends at a line end, so no ``##`` spans two pieces, and a writer can
+    stream a large document without holding its whole text.
 
     Raises InternalError on a NaN or infinity: records must never carry one, and
     JSON cannot (``NaN`` is not JSON).
     """
+    lines: list[str] = []
+    size = 0
     try:
-        text = defuse_json_markers(_pretty(_rounded(data), ""))
-    except ValueError as exc:
+        for line in _lines(data, "", "", ""):
+            lines.append(line)
+            size += len(line)
+            if size >= PIECE_CHARS:
+                yield defuse_json_markers("".join(lines))
+                lines, size = [], 0
+    except ValueError as exc:  # the encoder refuses NaN and infinity (allow_nan=False)
         raise InternalError(f"cannot write JSON with a non-finite number ({exc})") from None
-    return text + "\n"
+    lines.append("\n")
+    yield defuse_json_markers("".join(lines))
 
 
-def _pretty(value: Any, indent: str) -> str:
-    """Indented JSON, except that a container holding only scalars stays on one line.
+PIECE_CHARS = 1 << 20  # characters per piece of canonical_json_pieces (a bound, not a size)
 
-    Why: ``json.dumps(indent=...)`` runs the pure-Python encoder, which made report
-    writing the slowest part of an audit; the flat containers (a layer's metrics,
-    the most numerous) go through the C encoder in one call instead. Keys sorted.
-    """
-    if isinstance(value, dict) and value and any(isinstance(v, (dict, list)) for v in value.values()):
-        inner = indent + "  "
-        items = [f"{inner}{_compact(str(key))}: {_pretty(value[key], inner)}"
-                 for key in sorted(value)]
-        return "{\n" + ",\n".join(items) + "\n" + indent + "}"
-    if isinstance(value, list) and value and any(isinstance(v, (dict, list)) for v in value):
-        inner = indent + "  "
-        return "[\n" + ",\n".join(inner + _pretty(v, inner) for v in value) + "\n" + indent + "]"
-    return _compact(value)
-
-
+# One encoder for every one-line value: keys sorted, ASCII only, NaN and infinity refused.
+# ``JSONEncoder.encode`` builds a new C encoder per call (most of an audit's report time
+# once); the C encoder built here once is called directly. Without a circular-reference
+# check (markers None): the values written are trees built for the purpose.
 _ENCODER = json.JSONEncoder(sort_keys=True, separators=(", ", ": "), ensure_ascii=True,
-                            allow_nan=False)  # one encoder: building one per value cost most
+                            allow_nan=False)
+_C_ENCODE = None if c_make_encoder is None else c_make_encoder(
+    None, _ENCODER.default, encode_basestring_ascii, None, ": ", ", ", True, False, False)
 
 
-def _compact(value: Any) -> str:
-    """``value`` as one line of JSON; scalars written directly, exactly as the encoder
-    would (floats are finite here: ``_rounded`` refused the others)."""
+def _encode(value: Any) -> str:
+    """``value`` as one line of JSON, exactly as ``_ENCODER.encode`` writes it."""
+    if _C_ENCODE is None:  # pragma: no cover - an interpreter without the C accelerator
+        return _ENCODER.encode(value)
+    return "".join(_C_ENCODE(value, 0))
+
+
+_NOT_FLAT = object()  # what _flat returns for a value that does not fit one line
+
+
+def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
+    """The lines of ``value`` at ``indent``: ``head`` before its first line (its key, or
+    nothing), ``tail`` after its last (a comma, or nothing); each line ends in a newline
+    except the last.
+
+    Layout, one layer per line: a scalar, a container holding only scalars, and a row
+    (``_row``: an object in a list that holds no list of containers) take one line,
+    written by the C encoder in one call; any other object has one key per line and any
+    other list one item per line.
+    """
+    flat = _flat(value)
+    if flat is not _NOT_FLAT:
+        yield f"{indent}{head}{_encode(flat)}{tail}"
+        return
+    inner = indent + "  "
+    if isinstance(value, Mapping):
+        items = _str_keys(value)
+        yield f"{indent}{head}{{\n"
+        last = len(items) - 1
+        for index, key in enumerate(sorted(items)):
+            yield from _lines(items[key], inner, _encode(key) + ": ", ",\n" if index < last else "\n")
+        yield f"{indent}}}{tail}"
+        return
+    yield f"{indent}{head}[\n"
+    last = len(value) - 1
+    for index, item in enumerate(value):
+        separator = ",\n" if index < last else "\n"
+        row = _row(item) if type(item) is dict else None
+        if row is not None:
+            yield f"{inner}{_encode(row)}{separator}"
+        else:
+            yield from _lines(item, inner, "", separator)
+    yield f"{indent}]{tail}"
+
+
+def _flat(value: Any) -> Any:
+    """A rounded copy of ``value`` if it is a scalar or a container of scalars only, else
+    ``_NOT_FLAT`` (``value`` itself when nothing needs rounding: the encoder only reads it).
+
+    The type checks run in C (``set(map(type, ...))``) and only floats are visited in
+    Python, since most values of a layer are ints and strings. A value of a type the fast
+    path does not know (a subclass, another mapping) goes through ``_rounded``.
+    """
     kind = type(value)
-    if kind is str:
-        return json.encoder.encode_basestring_ascii(value)
-    if kind is int or kind is float:
-        return repr(value)
-    if value is None:
-        return "null"
-    if kind is bool:
-        return "true" if value else "false"
-    return _ENCODER.encode(value)
+    if kind is dict:
+        if not set(map(type, value)) <= _STR_TYPE:
+            value = {str(key): item for key, item in value.items()}
+        kinds = set(map(type, value.values()))
+        if kinds <= _SCALAR_TYPES:
+            if float not in kinds:
+                return value
+            get = _ROUNDED.get
+            return {key: ((get(item) or _round_float(item)) if item else 0.0)
+                    if type(item) is float else item for key, item in value.items()}
+    elif kind is list or kind is tuple:
+        kinds = set(map(type, value))
+        if kinds <= _SCALAR_TYPES:
+            if float not in kinds:
+                return value
+            get = _ROUNDED.get
+            return [((get(item) or _round_float(item)) if item else 0.0)
+                    if type(item) is float else item for item in value]
+    elif kind is float:
+        return _round_float(value) if value else 0.0
+    elif kind in _SCALAR_TYPES:
+        return value
+    elif not isinstance(value, (Mapping, list, tuple)):
+        return _rounded(value)  # an unusual scalar (a subclass): as the writer always did
+    else:
+        kinds = set(map(type, value.values() if isinstance(value, Mapping) else value))
+    if kinds.isdisjoint(_CONTAINER_TYPES) and _holds_only_scalars(value):
+        return _rounded(value)  # scalars of unusual types (subclasses)
+    return _NOT_FLAT
+
+
+def _row(value: dict[Any, Any]) -> dict[str, Any] | None:
+    """A rounded copy of the object ``value`` if it holds no list of containers (it then
+    takes one line), else None.
+
+    Such an object in a list is a row: a layer with its metrics, a finding, a layer
+    change with its deltas. Keeping each on one line keeps the file diffable (one line
+    per layer) while the C encoder writes nearly all of it.
+    """
+    if set(map(type, value.values())) <= _SCALAR_TYPES:
+        return _flat(value)  # type: ignore[no-any-return]
+    out = {}
+    for key, item in value.items():
+        kind = type(item)
+        if kind is dict:
+            item = _row(item)
+            if item is None:
+                return None
+        elif kind is float:
+            item = (_ROUNDED.get(item) or _round_float(item)) if item else 0.0
+        elif kind not in _SCALAR_TYPES:
+            item = _flat(item)
+            if item is _NOT_FLAT:
+                return None
+        out[key if type(key) is str else str(key)] = item
+    return out
+
+
+_SCALAR_TYPES = frozenset({str, int, float, bool, type(None)})
+_STR_TYPE = frozenset({str})
+_CONTAINER_TYPES = frozenset({dict, list, tuple})
+
+
+# Memo of rounded floats: formatting costs most of the rounding, and a result repeats
+# many figures (every layer of a repeated block). Keys are the floats themselves (only
+# 0.0 and -0.0 compare equal while differing, and zeros never come here).
+_ROUNDED: dict[float, float] = {}
+_ROUNDED_MAX = 1 << 16  # entries, then the memo starts over (bounded memory)
+
+
+def _round_float(value: float) -> float:
+    """``value`` rounded to FLOAT_DIGITS significant digits; never -0.0 (a NaN or infinity
+    passes through: the encoder refuses it)."""
+    rounded = float(f"{value:.{FLOAT_DIGITS}g}")  # never 0: zeros are handled before
+    if len(_ROUNDED) >= _ROUNDED_MAX:
+        _ROUNDED.clear()
+    _ROUNDED[value] = rounded
+    return rounded
+
+
+def _holds_only_scalars(value: Any) -> bool:
+    items = value.values() if isinstance(value, Mapping) else value
+    return not any(isinstance(item, (Mapping, list, tuple)) for item in items)
+
+
+def _str_keys(value: Mapping[Any, Any]) -> dict[str, Any]:
+    if all(type(key) is str for key in value):
+        return value  # type: ignore[return-value]
+    return {str(key): item for key, item in value.items()}
 
 
 def snapshot_to_dict(runs: Iterable[RunRecord]) -> dict[str, Any]:

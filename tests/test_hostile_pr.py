@@ -209,7 +209,7 @@ def test_a_failing_renderer_leaves_no_report_beside_the_exit_code(
     def broken(result: object) -> str:
         raise ValueError("Out of range float values are not JSON compliant")
 
-    monkeypatch.setattr(jsonout, "render", broken)
+    monkeypatch.setattr(jsonout, "result_document", broken)
     repo = make_repo(tmp_path)
     save_model(fc_model(200), repo.path / "models/a.onnx")
     repo.commit("shrink")

@@ -6,8 +6,6 @@ import json
 from dataclasses import replace
 
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
 
 from gate.diff import diff_runs, same_value
 from gate.errors import InputError, InternalError
@@ -152,21 +150,3 @@ def test_a_version_1_snapshot_still_reads_and_unknown_metrics_round_trip(tmp_pat
     write_snapshot([unknown], str(tmp_path / "v2.json"))
     (back,) = read_snapshot(str(tmp_path / "v2.json"))
     assert back.metrics["latency_s"] is None
-
-
-_json_values = st.recursive(
-    st.none() | st.booleans() | st.integers() | st.floats(allow_nan=False, allow_infinity=False)
-    | st.text(),
-    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(), inner, max_size=4),
-    max_leaves=12)
-
-
-@settings(max_examples=300, deadline=None)
-@given(_json_values)
-def test_compact_writes_exactly_what_the_json_encoder_writes(value) -> None:
-    # The reference is the standard library's encoder with the same options; the fast
-    # path writes scalars itself, so it must agree byte for byte.
-    from gate.snapshot import _compact
-
-    assert _compact(value) == json.dumps(value, sort_keys=True, separators=(", ", ": "),
-                                         ensure_ascii=True, allow_nan=False)

@@ -1,9 +1,13 @@
 """JSON results for machines: the whole ``GateResult``, versioned.
 
 The document is ``gate.result.result_to_dict`` wrapped with a format name and
-version, written deterministically (sorted keys, indent 2, floats rounded to
-12 significant digits, as baseline snapshots are), so the same result always
-gives the same bytes. ``read_result`` reads it back into a ``GateResult``.
+version, written deterministically by ``gate.snapshot.canonical_json`` as baseline
+snapshots are (sorted keys, floats rounded to 12 significant digits, indent 2 with
+one layer per line: every layer, layer change and finding on one line), so the
+same result always gives the same bytes. The reporter streams the text in pieces
+(``canonical_json_pieces``). ``read_result`` reads it back into a ``GateResult``
+and reads files of the earlier layout alike (the layout is whitespace only, so
+it has no version of its own).
 
 Layout::
 
@@ -35,7 +39,7 @@ from typing import Any, TextIO
 
 from gate.errors import InputError
 from gate.result import GateResult, blocking_sentences, result_from_dict, result_to_dict
-from gate.snapshot import canonical_json, load_versioned_json
+from gate.snapshot import canonical_json, canonical_json_pieces, load_versioned_json
 
 RESULT_FORMAT = "roofgate-result"
 RESULT_VERSION = 3
@@ -46,7 +50,7 @@ class JsonReporter:
     help = "Write the full result as versioned JSON to PATH"
 
     def write(self, result: GateResult, stream: TextIO) -> None:
-        stream.write(render(result))
+        stream.writelines(canonical_json_pieces(result_document(result)))
 
 
 REPORTER = JsonReporter()

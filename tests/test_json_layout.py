@@ -1,0 +1,199 @@
+"""The deterministic JSON writer (``gate.snapshot.canonical_json``): content, rounding, layout.
+
+The reference for content is the standard library: ``json.dumps`` with indent,
+sorted keys and ASCII escapes of the value with every float rounded here to 12
+significant digits (``float(f"{x:.12g}")``, no -0.0). The fast writer must read
+back equal to it (``json.loads``) whatever the nesting: only whitespace may differ.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+from collections.abc import Mapping
+from types import MappingProxyType
+from typing import Any
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from gate import snapshot
+from gate.errors import InternalError
+from gate.report.jsonout import loads_result, render, result_document
+from gate.snapshot import canonical_json, canonical_json_pieces, loads_snapshot, snapshot_to_dict
+from tests.recordkit import HOSTILE_NAME, demo_result, layer, run
+
+
+def _reference_rounded(value: Any) -> Any:
+    """An independent copy of the rounding rule: floats to 12 significant digits, no -0.0."""
+    if isinstance(value, bool) or value is None or isinstance(value, (int, str)):
+        return value
+    if isinstance(value, float):
+        rounded = float(f"{value:.12g}")
+        return 0.0 if rounded == 0 else rounded
+    if isinstance(value, Mapping):
+        return {str(k): _reference_rounded(v) for k, v in value.items()}
+    return [_reference_rounded(v) for v in value]
+
+
+def _old_layout(value: Any) -> str:
+    """What the standard library writes with indent: one key or item per line everywhere
+    (the earlier layout kept only flat containers on one line; readers saw the same JSON)."""
+    return json.dumps(_reference_rounded(value), indent=2, sort_keys=True, ensure_ascii=True,
+                      allow_nan=False) + "\n"
+
+
+_scalars = (st.none() | st.booleans() | st.integers(min_value=-2**80, max_value=2**80)
+            | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=8))
+_json_values = st.recursive(
+    _scalars,
+    lambda inner: st.lists(inner, max_size=4) | st.tuples(inner, inner)
+    | st.dictionaries(st.text(max_size=6), inner, max_size=4),
+    max_leaves=20)
+
+
+@settings(max_examples=400, deadline=None)
+@given(_json_values)
+def test_any_nesting_reads_back_equal_to_the_standard_encoder(value) -> None:
+    text = canonical_json(value)
+    assert json.loads(text) == json.loads(_old_layout(value))
+    assert text.endswith("\n") and text.isascii() and "##" not in text
+
+
+@settings(max_examples=200, deadline=None)
+@given(_json_values)
+def test_every_one_line_value_is_written_as_the_encoder_writes_it(value) -> None:
+    # Whitespace outside strings is the only freedom: with it removed, both texts agree.
+    strip = re.compile(r'("(?:[^"\\]|\\.)*")|\s+')
+    ours = strip.sub(lambda m: m.group(1) or "", canonical_json(value))
+    reference = strip.sub(lambda m: m.group(1) or "", _old_layout(value))
+    assert ours == reference
+
+
+def _nested_result_document() -> dict[str, Any]:
+    return result_document(demo_result())  # runs, diffs with deltas, verdicts with findings
+
+
+def test_a_result_with_nested_structures_reads_back_equal_to_the_old_writers_output() -> None:
+    document = _nested_result_document()
+    assert json.loads(canonical_json(document)) == json.loads(_old_layout(document))
+    old_text = _old_layout(document)  # an old-layout result file still reads
+    assert render(loads_result(old_text)) == render(demo_result())
+
+
+def test_an_old_layout_snapshot_reads_as_the_new_one() -> None:
+    runs = (run(), run("models/b.onnx", layers=(layer(HOSTILE_NAME),)))
+    new_text = canonical_json(snapshot_to_dict(runs))
+    old_text = _old_layout(snapshot_to_dict(runs))
+    assert old_text != new_text and old_text.count("\n") > 3 * new_text.count("\n")
+    assert loads_snapshot(old_text) == loads_snapshot(new_text)
+
+
+def test_one_layer_per_line() -> None:
+    names = ["stem/conv", "stage1/relu", "head/gemm"]
+    lines = canonical_json(snapshot_to_dict([run()])).splitlines()
+    for name in names:  # each layer, with its metrics, on exactly one line
+        (line,) = [text for text in lines if f'"name": "{name}"' in text]
+        assert '"metrics": {' in line and '"fused_ops": [' in line
+        assert line.startswith("        {") and line.endswith(("},", "}"))
+    assert any(line.startswith('      "metrics": {') for line in lines)  # run totals: flat
+    text = canonical_json(_nested_result_document())
+    deltas = [line for line in text.splitlines() if '"deltas": {' in line]
+    assert deltas and all('"head_name": ' in line for line in deltas)  # a layer change: a row
+
+
+def test_an_object_holding_a_list_of_objects_is_not_one_line() -> None:
+    value = {"rows": [{"name": "a", "findings": [{"x": 1.0}, {"x": 2.0}]}]}
+    assert canonical_json(value) == (
+        '{\n'
+        '  "rows": [\n'
+        '    {\n'
+        '      "findings": [\n'
+        '        {"x": 1.0},\n'
+        '        {"x": 2.0}\n'
+        '      ],\n'
+        '      "name": "a"\n'
+        '    }\n'
+        '  ]\n'
+        '}\n')
+
+
+@pytest.mark.parametrize(("value", "written"), [
+    (-0.0, "0.0"),
+    (1e-300, "1e-300"),
+    (5e-324, "5e-324"),  # the smallest subnormal keeps its value
+    (0.1 + 0.2, "0.3"),
+    (1.0 / 3.0, "0.333333333333"),
+    (123456789012345.0, "123456789012000.0"),
+    (1e16, "1e+16"),
+    (2**70, str(2**70)),  # ints are exact, whatever their size
+    (-(2**70), str(-(2**70))),
+    (True, "true"),  # a bool is not an int here
+    (False, "false"),
+    (None, "null"),
+])
+def test_rounding_edge_cases_in_every_position(value, written) -> None:
+    # The same rule wherever the value sits: alone, in a flat object, in a flat list, in a
+    # row (an object in a list), in an object nested in a row, in a list nested in a row.
+    expected_line = {
+        "alone": f"{written}\n",
+        "flat_object": f'{{"v": {written}}}\n',
+        "flat_list": f"[{written}, 1]\n",
+    }
+    assert canonical_json(value) == expected_line["alone"]
+    assert canonical_json({"v": value}) == expected_line["flat_object"]
+    assert canonical_json([value, 1]) == expected_line["flat_list"]
+    rows = canonical_json({"t": [{"v": value, "m": {"v": value}, "l": [value]}]})
+    assert f'{{"l": [{written}], "m": {{"v": {written}}}, "v": {written}}}' in rows
+
+
+def test_a_bool_is_not_counted_as_the_int_it_equals() -> None:
+    text = canonical_json({"t": [{"a": True, "b": 1, "c": 1.0}], "f": [False, 0, 0.0]})
+    assert json.loads(text) == {"t": [{"a": True, "b": 1, "c": 1.0}], "f": [False, 0, 0.0]}
+    assert type(json.loads(text)["t"][0]["a"]) is bool
+
+
+@pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
+@pytest.mark.parametrize("where", ["alone", "flat", "list", "row", "nested_row", "deep"])
+def test_non_finite_numbers_are_refused_anywhere(bad, where) -> None:
+    value = {"alone": bad, "flat": {"a": 1, "b": bad}, "list": [1.0, bad],
+             "row": {"t": [{"x": bad}]}, "nested_row": {"t": [{"m": {"x": bad}}]},
+             "deep": {"t": [{"u": [{"x": [1, bad]}]}]}}[where]
+    with pytest.raises(InternalError, match="non-finite"):
+        canonical_json(value)
+
+
+def test_unusual_types_are_written_as_the_plain_ones() -> None:
+    class Ratio(float):
+        pass
+
+    class Count(int):
+        pass
+
+    value = {"t": [{"m": MappingProxyType({"r": Ratio(1 / 3), "c": Count(7)}),
+                    "l": (Ratio(-0.0), 2)}],
+             "flat": MappingProxyType({"r": Ratio(2 / 3)}), 1: "int key"}
+    assert json.loads(canonical_json(value)) == json.loads(_old_layout(value))
+
+
+def test_pieces_end_at_line_ends_and_defuse_markers_across_them(monkeypatch) -> None:
+    monkeypatch.setattr(snapshot, "PIECE_CHARS", 64)
+    value = {"t": [{"name": f"##[error] layer {i} ##vso[x]", "v": i / 7} for i in range(50)]}
+    pieces = list(canonical_json_pieces(value))
+    assert len(pieces) > 10
+    assert all(piece.endswith("\n") for piece in pieces)
+    assert "".join(pieces) == canonical_json(value)
+    assert "##" not in "".join(pieces)
+    assert json.loads("".join(pieces)) == _reference_rounded(value)
+
+
+def test_the_rounding_memo_stays_bounded_and_exact(monkeypatch) -> None:
+    monkeypatch.setattr(snapshot, "_ROUNDED", {})
+    monkeypatch.setattr(snapshot, "_ROUNDED_MAX", 8)
+    values = [i / 7 for i in range(1, 40)]
+    first = json.loads(canonical_json({"v": values}))["v"]
+    assert len(snapshot._ROUNDED) <= 8
+    assert json.loads(canonical_json({"v": values}))["v"] == first == [
+        float(f"{v:.12g}") for v in values]
