@@ -275,14 +275,9 @@ class _Counting:
 
 def _tensor_bytes(tensor: TensorInfo, counting: _Counting) -> int | None:
     """Storage bytes of an activation as counted, None when unknown."""
-    shape = tensor.shape
-    if shape is None:
+    count = tensor.numel  # cached per distinct shape
+    if count is None:
         return None
-    count = 1
-    for dim in shape:
-        if dim.__class__ is not int:
-            return None
-        count *= dim
     bits = counting.tensor_bits(tensor)
     if bits == 0:
         return None
