@@ -11,10 +11,8 @@ with ``gate.combine_results``.
 
 from __future__ import annotations
 
-import itertools
 import tempfile
-from collections.abc import Callable, Mapping, Sequence
-from contextlib import closing
+from collections.abc import Mapping, Sequence
 from dataclasses import replace
 from datetime import date
 from pathlib import Path
@@ -98,10 +96,15 @@ def _check_changes(root: Path, config: ProjectConfig, changes: Sequence[gitscan.
             early[change.path] = _judge_change(change, analysed, stored,
                                                errors.get(change.path, []), policies, today)
 
-    with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp, \
-            closing(gitscan.BlobReader(root)) as reader:
-        read = _blob_reader(root, reader, blobs, Path(tmp), errors)
-        analysed = engine.run_jobs(jobs, workers, prepare=read, done=judge_when_complete)
+    def unreadable(model: str, why: str) -> None:
+        errors.setdefault(model, []).append(why)
+
+    with tempfile.TemporaryDirectory(prefix="roofgate-check-") as tmp:
+        jobs = _reading_from_git(jobs, blobs, root, Path(tmp))
+        try:
+            analysed = engine.run_jobs(jobs, workers, done=judge_when_complete, unread=unreadable)
+        finally:
+            engine.close_blob_readers()
     changes = _pair_by_structure(list(changes), analysed, stored)
     results = [early[change.path] if change.path in early and not change.by_structure else
                _judge_change(change, analysed, stored, errors.get(change.path, []), policies,
@@ -223,7 +226,7 @@ def _check_jobs(config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
                 ) -> tuple[list[engine.Job], dict[str, tuple[str, str, str]]]:
     """Every side's job (a change's sides together) and where its blob is: result key -> (side,
     revision, path). ``revs`` are the (head, base) revisions the blobs are read from;
-    nothing is read here (``_blob_reader`` reads each blob just before its analysis)."""
+    nothing is read here (each job reads its blob where it is analysed)."""
     head, base_commit = revs
     jobs: list[engine.Job] = []
     blobs: dict[str, tuple[str, str, str]] = {}
@@ -240,31 +243,17 @@ def _check_jobs(config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
     return jobs, blobs
 
 
-def _blob_reader(root: Path, reader: gitscan.BlobReader, blobs: Mapping[str, tuple[str, str, str]],
-                 tmp: Path, errors: dict[str, list[str]],
-                 ) -> Callable[[engine.Job], engine.Job | None]:
-    """The ``prepare`` step of check's jobs: the side's blob read from git (bytes straight
-    to the parser); a blob git cannot give, or an LFS pointer, becomes an error of the
-    change and the job is skipped."""
-    spills = itertools.count()
-
-    def read(job: engine.Job) -> engine.Job | None:
+def _reading_from_git(jobs: Sequence[engine.Job], blobs: Mapping[str, tuple[str, str, str]],
+                      root: Path, tmp: Path) -> list[engine.Job]:
+    """Check's jobs, each reading its side's blob from git where it is analysed (bytes
+    straight to the parser); a blob too large for memory, or a resolved LFS object,
+    goes to its own file in ``tmp``."""
+    out = []
+    for index, job in enumerate(jobs):
         side, rev, path = blobs[job.result_key]
-        spill = tmp / f"{side}-{next(spills):05d}.onnx"
-        try:
-            got = gitscan.read_model_blob(reader, rev, path, root, spill)
-        except InputError as exc:  # e.g. the LFS smudge filter could not download
-            errors.setdefault(job.model, []).append(
-                f"cannot read the {side} side from git ({exc.format_message()})")
-            return None
-        if got is None:
-            errors.setdefault(job.model, []).append(
-                engine.error_text(gitscan.lfs_error_message(path, side, rev), path))
-            return None
-        if isinstance(got, Path):
-            return replace(job, file=str(got))
-        return replace(job, data=got)
-    return read
+        spill = tmp / f"{side}-{index:05d}.onnx"
+        out.append(replace(job, blob=engine.GitBlob(str(root), rev, path, side, str(spill))))
+    return out
 
 
 # --- audit ---------------------------------------------------------------------------

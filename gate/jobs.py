@@ -25,7 +25,8 @@ import sys
 import traceback
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field, replace
-from typing import TextIO
+from pathlib import Path
+from typing import TYPE_CHECKING, TextIO
 
 from gate.costmodel import ModelCost, cost_model
 from gate.errors import InputError, InternalError, RoofgateError, one_safe_line
@@ -34,6 +35,9 @@ from gate.profile import ModelProfile, profile_model
 from gate.records import RunRecord, canonical_run, with_unknown_totals
 from gate.summarize import build_run_record
 from gate.targets.spec import TargetProfile
+
+if TYPE_CHECKING:
+    from gate.gitscan import BlobReader
 
 
 @dataclass(frozen=True, slots=True)
@@ -47,12 +51,31 @@ class Job:
     precision: str | None = None
     key: str = ""  # what results are keyed by (default: ``model``), e.g. to tell base from head
     shapes: tuple[tuple[str, tuple[int, ...]], ...] = ()  # whole-input bindings (--shape)
-    # the file's bytes when already read (a git blob): ``file`` is then never opened
+    # the file's bytes when already read: ``file`` is then never opened
     data: bytes | None = field(default=None, repr=False)
+    blob: GitBlob | None = None  # read the model from git, in the process that analyses it
 
     @property
     def result_key(self) -> str:
         return self.key or self.model
+
+
+@dataclass(frozen=True, slots=True)
+class GitBlob:
+    """Where a job's model is when it comes from git: ``path`` at ``rev`` in the repository
+    at ``root``. ``side`` ('base' or 'head') names it in messages; ``spill`` is the file a
+    blob too large for memory, or a resolved Git LFS object, is written to.
+
+    Why the worker reads it: handing the bytes from the parent to a worker copied every
+    model through the parent (read, then pickled down a pipe), a serial step that kept
+    ``check -j 2`` from paying. Each process keeps one ``git cat-file --batch``.
+    """
+
+    root: str
+    rev: str
+    path: str
+    side: str
+    spill: str
 
 
 @dataclass(frozen=True, slots=True)
@@ -75,6 +98,7 @@ class JobOutcome:
     runs: tuple[RunRecord, ...] = ()
     error: str = ""  # the model cannot be analysed (exit 2 unless allow_unanalysable)
     internal: str = ""  # roofgate's own bug (exit 3, always)
+    unread: str = ""  # the job's git blob could not be read (no analysis was tried)
 
 
 Analysed = dict[str, tuple[list[RunRecord], str]]  # result key -> (runs, error text or '')
@@ -152,7 +176,8 @@ def error_text(message: str, model: str) -> str:
 
 
 def analyse_job(job: Job) -> JobOutcome:
-    """Analyse ``job``; a model that cannot be analysed comes back as an error message.
+    """Analyse ``job``; a model that cannot be analysed comes back as an error message,
+    a git blob that cannot be read as ``unread``.
 
     Anything but a ``RoofgateError`` (and an ``InternalError`` too) propagates:
     it is roofgate's bug, never a property of the model.
@@ -160,14 +185,71 @@ def analyse_job(job: Job) -> JobOutcome:
     from gate.targets import load_target
 
     try:
+        file, data = _job_input(job)
+    except UnreadableBlob as exc:
+        return JobOutcome(job.result_key, unread=str(exc))
+    try:
         targets = [load_target(name) for name in job.targets]
-        runs = analyse(job.file, targets, dims=dict(job.dims), precision=job.precision,
-                       shown_path=job.model, shapes=dict(job.shapes), data=job.data)
+        runs = analyse(file, targets, dims=dict(job.dims), precision=job.precision,
+                       shown_path=job.model, shapes=dict(job.shapes), data=data)
     except InternalError:
         raise
     except RoofgateError as exc:
-        return JobOutcome(job.result_key, error=model_error_text(exc, job.model, job.file))
+        return JobOutcome(job.result_key, error=model_error_text(exc, job.model, file))
     return JobOutcome(job.result_key, runs=tuple(canonical_run(r) for r in runs))
+
+
+# --- models read from git -------------------------------------------------------------
+
+class UnreadableBlob(Exception):
+    """A job's git blob cannot be read (git failed, or it stays a Git LFS pointer)."""
+
+
+def _job_input(job: Job) -> tuple[str, bytes | None]:
+    """The file to load and its bytes if already in memory (a git blob is read here)."""
+    if job.blob is None:
+        return job.file, job.data
+    got = read_git_blob(job.blob)
+    return (str(got), None) if isinstance(got, Path) else (job.file, got)
+
+
+def read_git_blob(blob: GitBlob) -> bytes | Path:
+    """The blob's bytes, or the spill file it went to; ``UnreadableBlob`` with the line
+    reports show when git cannot give it or it stays an LFS pointer."""
+    from gate import gitscan
+
+    try:
+        got = gitscan.read_model_blob(_blob_reader(blob.root), blob.rev, blob.path, blob.root,
+                                      Path(blob.spill))
+    except InputError as exc:  # e.g. the LFS smudge filter could not download
+        raise UnreadableBlob(f"cannot read the {blob.side} side from git "
+                             f"({exc.format_message()})") from None
+    if got is None:
+        raise UnreadableBlob(error_text(gitscan.lfs_error_message(blob.path, blob.side, blob.rev),
+                                        blob.path))
+    return got
+
+
+_BLOB_READERS: dict[str, tuple[int, BlobReader]] = {}  # root -> (owning process, reader)
+
+
+def _blob_reader(root: str) -> BlobReader:
+    """This process's reader of ``root``: one per process, never one a forked worker
+    inherited (its pipes belong to the parent's git)."""
+    from gate.gitscan import BlobReader
+
+    held = _BLOB_READERS.get(root)
+    if held is None or held[0] != os.getpid():
+        held = _BLOB_READERS[root] = (os.getpid(), BlobReader(root))
+    return held[1]
+
+
+def close_blob_readers() -> None:
+    """End this process's git readers (workers' end with their processes)."""
+    mine = [reader for pid, reader in _BLOB_READERS.values() if pid == os.getpid()]
+    _BLOB_READERS.clear()
+    for reader in mine:
+        reader.close()
 
 
 def _analyse_job_in_worker(job: Job) -> JobOutcome:
@@ -191,15 +273,15 @@ def internal_error(model: str, detail: str) -> InternalError:
 
 def run_jobs(jobs: Sequence[Job], workers: int,
              progress: Callable[[int, int, str], None] | None = None,
-             prepare: Callable[[Job], Job | None] | None = None,
-             done: Callable[[str, Analysed], None] | None = None) -> Analysed:
+             done: Callable[[str, Analysed], None] | None = None,
+             unread: Callable[[str, str], None] | None = None) -> Analysed:
     """Analyse every job (in ``workers`` processes when > 1); results keyed by result key.
 
-    ``prepare`` runs in this process just before a job is handed out (e.g. to read
-    its git blob, so only the blobs in flight are in memory); None skips the job.
     ``done(key, results so far)`` runs in this process as each result arrives, while
     the workers go on (e.g. to judge a model at once rather than all at the end).
-    Raises ``InternalError`` on the first bug met, in-process or in a worker.
+    ``unread(model, why)`` gets each job whose git blob could not be read; such a job
+    has no result. Raises ``InternalError`` on the first bug met, in-process or in a
+    worker.
     """
     out: Analysed = {}
     total = len(jobs)
@@ -207,18 +289,23 @@ def run_jobs(jobs: Sequence[Job], workers: int,
     def keep(outcome: JobOutcome, model: str) -> None:
         if outcome.internal:
             raise internal_error(model, outcome.internal)
+        if outcome.unread:
+            if unread is None:
+                raise InternalError(f"a git blob of {one_safe_line(model)} could not be read "
+                                    "and nothing was asked to take the message")
+            unread(model, outcome.unread)
+            return
         out[outcome.key] = (list(outcome.runs), outcome.error)
         if progress:
             progress(len(out), total, model)
         if done:
             done(outcome.key, out)
 
-    ready = (job for job in (prepare(j) if prepare else j for j in jobs) if job is not None)
     if workers <= 1 or total <= 1:
-        for job in ready:
+        for job in jobs:
             keep(_analyse_in_process(job), job.model)
         return out
-    _run_in_processes(ready, min(workers, total), keep)
+    _run_in_processes(iter(jobs), min(workers, total), keep)
     return out
 
 
@@ -230,8 +317,8 @@ def _run_in_processes(jobs: Iterator[Job], workers: int,
     """Analyse ``jobs`` in ``workers`` processes (started once, reused for every job),
     handing each outcome to ``keep``.
 
-    Jobs are handed out as workers finish, a few ahead, so a job's bytes are read
-    (``prepare``) only shortly before a worker needs them. On Ctrl-C, SIGTERM
+    Jobs are handed out as workers finish, a few ahead (a worker reads a git blob
+    itself, so only the models being analysed are in memory). On Ctrl-C, SIGTERM
     (raised as SystemExit by the CLI) or any error the worker processes are
     terminated at once instead of finishing their models (which could take
     minutes after the run was stopped).

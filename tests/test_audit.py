@@ -198,29 +198,40 @@ def test_worker_records_are_what_a_json_round_trip_gives_back(tmp_path) -> None:
         assert [type(x.fused_ops) for x in sent.layers] == [tuple] * len(sent.layers)
 
 
-def test_run_jobs_hands_jobs_out_lazily_and_skips_what_prepare_drops(tmp_path) -> None:
+def test_jobs_read_their_git_blobs_where_they_are_analysed(tmp_path) -> None:
+    """A check job names its git blob; the process that analyses it reads it (the parent
+    never starts a git reader when workers do the work), and a blob git cannot give
+    comes back through ``unread``, never as a result."""
     from gate.synth.builder import save_model
     from gate.synth.layers import NetBuilder
+    from tests.gitkit import Repo
 
-    for k in range(6):
+    repo = Repo(tmp_path / "repo")
+    for k in range(5):
         b = NetBuilder("fc")
         b.output(b.gemm(b.input("x", [1, 16]), 8 + k, name="fc"))
-        save_model(b.build(), tmp_path / f"m{k}.onnx")
-    all_jobs = [jobs.Job(model=f"models/m{k}.onnx", file=str(tmp_path / f"m{k}.onnx"),
-                         targets=("ws-64x64-4mib",)) for k in range(6)]
+        save_model(b.build(), repo.path / f"models/m{k}.onnx")
+    commit = repo.commit("models")
+    paths = [f"models/m{k}.onnx" for k in range(5)] + ["models/missing.onnx"]
+    all_jobs = [jobs.Job(model=path, file=path, targets=("ws-64x64-4mib",),
+                         blob=jobs.GitBlob(str(repo.path), commit, path, "head",
+                                           str(tmp_path / f"spill{i}.onnx")))
+                for i, path in enumerate(paths)]
     for workers in (1, 2):
-        prepared: list[str] = []
-
-        def prepare(job: jobs.Job, seen: list[str] = prepared) -> jobs.Job | None:
-            seen.append(job.model)
-            if job.model.endswith("m3.onnx"):
-                return None
-            return replace(job, data=Path(job.file).read_bytes(), file=job.model)
-
-        out = jobs.run_jobs(all_jobs, workers, prepare=prepare)
-        assert prepared == [j.model for j in all_jobs]  # each once, in order
-        assert sorted(out) == [f"models/m{k}.onnx" for k in (0, 1, 2, 4, 5)]
+        why: dict[str, str] = {}
+        try:
+            out = jobs.run_jobs(all_jobs, workers, unread=why.__setitem__)
+            started_here = bool(jobs._BLOB_READERS)
+        finally:
+            jobs.close_blob_readers()
+        assert sorted(out) == paths[:5]
         assert all(runs and not error for runs, error in out.values())
+        assert [r.layers[0].metrics["macs"] for r in (out[p][0][0] for p in paths[:5])] == \
+            [16 * (8 + k) for k in range(5)]  # each side's own blob: a Gemm of 16 x (8 + k)
+        assert list(why) == ["models/missing.onnx"]
+        assert why["models/missing.onnx"].startswith("cannot read the head side from git")
+        assert started_here == (workers == 1)
+        assert not jobs._BLOB_READERS
 
 
 def test_a_worker_process_that_dies_is_exit_3(tmp_path, monkeypatch) -> None:
