@@ -7,10 +7,11 @@ energy) are computed from it by ``gate.costmodel``; reporters only format.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from functools import lru_cache
 from math import prod
+from typing import Any
 
 from gate.errors import InputError, InternalError
 from gate.model.constants import logical_source
@@ -209,7 +210,9 @@ def profile_model(model: LoadedModel, precision: str | None = None) -> ModelProf
                          deployed_dtypes(model.graph))
     ledger = _ParamLedger(override_bits)
     unbound: dict[str, int] = {}  # symbolic dim -> layers it kept unmodelled
-    layers = tuple(_profile_layer(node, counting, ledger, unbound) for node in model.graph.nodes)
+    shared = _sharer()
+    layers = tuple(_profile_layer(node, counting, ledger, unbound, shared)
+                   for node in model.graph.nodes)
     modelled = [layer for layer in layers if layer.modelled]
     return ModelProfile(
         model=model,
@@ -458,8 +461,28 @@ def _sum_bytes(tensors: Iterable[TensorInfo], counting: _Counting) -> int | None
     return total
 
 
+_Share = Callable[[Any], Any]
+
+
+def _sharer() -> _Share:
+    """``shared(value)``: the equal value seen before, else ``value`` (remembered).
+
+    Why: a large graph repeats a few shape and dtype tuples and a few works, and a
+    copy of each per layer was about a third of the profile's memory. Only
+    immutable values are shared.
+    """
+    seen: dict[Any, Any] = {}
+
+    def shared(value: Any) -> Any:
+        try:
+            return seen.setdefault(value, value)
+        except TypeError:  # an unhashable part (a list for a shape in a hand-built graph)
+            return value
+    return shared
+
+
 def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
-                   unbound: dict[str, int]) -> LayerProfile:
+                   unbound: dict[str, int], shared: _Share) -> LayerProfile:
     if node.folded or node.qdq_absorbed:
         return _offline_layer(node, counting)
     params = _layer_params(node)
@@ -479,15 +502,21 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
     precision = counting.override or layer_precision(node, counting.deployed)
     if work is not None and _requantizes(node, work, precision, outputs, counting):
         work = requantized(work)
+    if work is not None:
+        work = shared(work)
+    input_shapes = tuple([None if t is None else t.shape for t in inputs])
+    input_dtypes = tuple(["" if t is None else t.dtype for t in inputs])
+    output_shapes = tuple([t.shape for t in node.outputs])
+    output_dtypes = tuple([t.dtype for t in node.outputs])
     return LayerProfile(
         index=node.index,
         name=node.name,
         op_type=node.op_type,
         domain=node.domain,
-        input_shapes=tuple([None if t is None else t.shape for t in inputs]),
-        input_dtypes=tuple(["" if t is None else t.dtype for t in inputs]),
-        output_shapes=tuple([t.shape for t in node.outputs]),
-        output_dtypes=tuple([t.dtype for t in node.outputs]),
+        input_shapes=shared(input_shapes),
+        input_dtypes=shared(input_dtypes),
+        output_shapes=shared(output_shapes),
+        output_dtypes=shared(output_dtypes),
         param_names=charge.names,
         param_count=charge.count,
         param_bytes=charge.nbytes,

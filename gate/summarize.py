@@ -6,6 +6,7 @@ from collections.abc import Callable, Iterator, Mapping
 from functools import lru_cache
 
 from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
+from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
 from gate.records import LayerRecord, Metric, RunRecord, UnmodelledRecord
 from gate.targets.spec import TargetProfile
@@ -38,9 +39,21 @@ def build_run_record(model_path: str, profile: ModelProfile, cost: ModelCost,
 
 def layer_signature(layer: LayerProfile) -> str:
     """Op type plus shapes and dtypes: stable across exporters that rename nodes."""
-    ins = ",".join(_shape_text(s, d) for s, d in zip(layer.input_shapes, layer.input_dtypes))
-    outs = ",".join(_shape_text(s, d) for s, d in zip(layer.output_shapes, layer.output_dtypes))
-    return f"{layer.domain + '.' if layer.domain else ''}{layer.op_type}({ins})->({outs})"
+    key = (layer.domain, layer.op_type, layer.input_shapes, layer.input_dtypes,
+           layer.output_shapes, layer.output_dtypes)
+    try:
+        return _signature(*key)
+    except TypeError:  # an unhashable part (a list for a shape in a hand-built profile)
+        return _signature.__wrapped__(*key)
+
+
+@lru_cache(maxsize=1 << 14)  # layers repeat a few signatures: one string each, built once
+def _signature(domain: str, op_type: str, input_shapes: tuple[Shape | None, ...],
+               input_dtypes: tuple[str, ...], output_shapes: tuple[Shape | None, ...],
+               output_dtypes: tuple[str, ...]) -> str:
+    ins = ",".join(_shape_text(s, d) for s, d in zip(input_shapes, input_dtypes))
+    outs = ",".join(_shape_text(s, d) for s, d in zip(output_shapes, output_dtypes))
+    return f"{domain + '.' if domain else ''}{op_type}({ins})->({outs})"
 
 
 @lru_cache(maxsize=1 << 16)  # graphs repeat a few (shape, dtype) pairs across many layers

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from functools import lru_cache
 from math import prod
 from typing import Any
 
@@ -34,6 +35,21 @@ FLOAT_DTYPES = frozenset({
 })
 
 
+def static_numel(shape: Shape) -> int | None:
+    """The element count of ``shape``, or None when a dim is not a known int."""
+    if shape.__class__ is tuple:
+        return _static_numel(shape)
+    return _static_numel.__wrapped__(shape)  # a list from a hand-built TensorInfo: unhashable
+
+
+@lru_cache(maxsize=1 << 16)  # a graph's tensors share a few shapes; asked many times per layer
+def _static_numel(shape: Shape) -> int | None:
+    for dim in shape:
+        if not isinstance(dim, int):
+            return None
+    return prod(shape)  # type: ignore[arg-type,return-value]
+
+
 @dataclass(frozen=True, slots=True)
 class TensorInfo:
     """A tensor's name, shape and element type; never its values."""
@@ -45,14 +61,12 @@ class TensorInfo:
     @property
     def is_static(self) -> bool:
         """True when every dim is a known non-negative int."""
-        return self.shape is not None and all(isinstance(d, int) for d in self.shape)
+        return self.shape is not None and static_numel(self.shape) is not None
 
     @property
     def numel(self) -> int | None:
         """Element count, or None if any dim is unknown or symbolic."""
-        if not self.is_static:
-            return None
-        return prod(self.shape)  # type: ignore[arg-type]
+        return None if self.shape is None else static_numel(self.shape)
 
     @property
     def bits_per_element(self) -> int:

@@ -22,6 +22,8 @@ def static_shape(tensor: TensorInfo | None, role: str) -> StaticShape:
     """The tensor's shape as ints, or ``Unmodelled`` naming what is missing."""
     if tensor is None:
         raise Unmodelled(f"{role} input is missing")
+    if tensor.is_static and tensor.shape.__class__ is tuple:  # the common case
+        return tensor.shape  # type: ignore[return-value]
     if tensor.shape is None:
         raise Unmodelled(f"shape of {role} '{tensor.name}' is unknown (shape inference found no rank)")
     symbolic = tensor.symbolic_dims()
