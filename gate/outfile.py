@@ -37,6 +37,9 @@ try:  # POSIX; elsewhere the folder lock is skipped (one run per folder then)
 except ImportError:  # pragma: no cover - not on Linux or macOS
     fcntl = None  # type: ignore[assignment]
 
+# What a file is written from: its text, or a function that writes the text to a stream.
+Content = str | Callable[[TextIO], None]
+
 PARTIAL_PREFIX = ".roofgate-"
 PARTIAL_SUFFIX = ".partial"
 NAME_MAX_BYTES = 255  # longest file name ext4, XFS, APFS and NTFS accept (POSIX NAME_MAX)
@@ -128,13 +131,18 @@ def _real(path: str) -> Path:
 
 # --- writing ---------------------------------------------------------------------------
 
-def write_files(files: Sequence[tuple[str, str, str]]) -> None:
-    """Write every ``(path, what, text)`` as one unit; '-' paths go to stdout last.
+def write_files(files: Sequence[tuple[str, str, Content]]) -> None:
+    """Write every ``(path, what, content)`` as one unit; '-' paths go to stdout last.
 
+    ``content`` is the text, or (files only) a function that writes it to a
+    stream, so a large report goes to its partial file in pieces instead of
+    being held whole in memory; if it raises, nothing of the set is written.
     All partial files are written before any is renamed into place; the
     folders are locked during the renames; if a rename fails, the files of
     this set already moved in are removed again, so no mix is left.
     """
+    if any(path == "-" and not isinstance(content, str) for path, _, content in files):
+        raise TypeError("stdout takes text (render it first), not a writer")
     on_disk = [(placed_path(p, what), p, what, text) for p, what, text in files if p != "-"]
     folders = sorted({target.parent for target, *_ in on_disk})
     for target, path, what, _ in on_disk:
@@ -151,7 +159,7 @@ def write_files(files: Sequence[tuple[str, str, str]]) -> None:
                 _unlink_quietly(partial)
     for path, _, text in files:
         if path == "-":
-            write_stdout(text)
+            write_stdout(text)  # type: ignore[arg-type]  # text: checked at the start
 
 
 def write_text(path: str, text: str, what: str) -> None:
@@ -223,14 +231,20 @@ def _rename_all(partials: Sequence[tuple[Path, Path, str, str]]) -> None:
         raise
 
 
-def _write_partial(folder: Path, text: str, path: str, what: str) -> Path:
+def _write_partial(folder: Path, content: Content, path: str, what: str) -> Path:
     name, fd = _new_partial(folder, path, what)
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as stream:
-            stream.write(text)
+            if isinstance(content, str):
+                stream.write(content)
+            else:
+                content(stream)
     except OSError as exc:
         _unlink_quietly(name)
         raise _write_error(exc, path, what) from None
+    except BaseException:  # a writer that failed: no partial file left behind
+        _unlink_quietly(name)
+        raise
     return name
 
 

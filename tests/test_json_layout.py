@@ -178,11 +178,13 @@ def test_unusual_types_are_written_as_the_plain_ones() -> None:
     assert json.loads(canonical_json(value)) == json.loads(_old_layout(value))
 
 
-def test_pieces_end_at_line_ends_and_defuse_markers_across_them(monkeypatch) -> None:
-    monkeypatch.setattr(snapshot, "PIECE_CHARS", 64)
+@pytest.mark.parametrize("piece_chars", [1, 64, 1 << 20])
+def test_pieces_end_at_line_ends_and_defuse_markers_across_them(monkeypatch,
+                                                                 piece_chars) -> None:
+    monkeypatch.setattr(snapshot, "PIECE_CHARS", piece_chars)
     value = {"t": [{"name": f"##[error] layer {i} ##vso[x]", "v": i / 7} for i in range(50)]}
     pieces = list(canonical_json_pieces(value))
-    assert len(pieces) > 10
+    assert len(pieces) > 10 or piece_chars > 10_000
     assert all(piece.endswith("\n") for piece in pieces)
     assert "".join(pieces) == canonical_json(value)
     assert "##" not in "".join(pieces)
@@ -197,3 +199,20 @@ def test_the_rounding_memo_stays_bounded_and_exact(monkeypatch) -> None:
     assert len(snapshot._ROUNDED) <= 8
     assert json.loads(canonical_json({"v": values}))["v"] == first == [
         float(f"{v:.12g}") for v in values]
+
+
+@pytest.mark.parametrize("enabled", [True, False])
+def test_the_cyclic_collector_is_left_as_it_was(enabled) -> None:
+    import gc
+
+    was = gc.isenabled()
+    try:
+        (gc.enable if enabled else gc.disable)()
+        pieces = canonical_json_pieces({"t": [{"v": 1.5}]})
+        next(pieces)
+        assert gc.isenabled() is enabled  # never paused across a yield
+        with pytest.raises(InternalError):
+            canonical_json({"t": [{"v": math.nan}]})
+        assert gc.isenabled() is enabled
+    finally:
+        (gc.enable if was else gc.disable)()

@@ -47,3 +47,32 @@ def test_dash_is_stdout(capsys: pytest.CaptureFixture[str]) -> None:
     with open_output("-", "report") as stream:
         stream.write("to the terminal\n")
     assert capsys.readouterr().out == "to the terminal\n"
+
+
+def test_a_writer_streams_into_the_file_and_a_failing_one_leaves_no_file_of_the_set(
+        tmp_path: Path) -> None:
+    from gate.outfile import write_files
+
+    def pieces(stream) -> None:
+        for k in range(3):
+            stream.write(f"piece {k}\n")
+
+    def broken(stream) -> None:
+        stream.write("half of a report that says PASSED")
+        raise RuntimeError("renderer failed")
+
+    write_files([(str(tmp_path / "a.txt"), "a", "text\n"),
+                 (str(tmp_path / "b.txt"), "b", pieces)])
+    assert (tmp_path / "b.txt").read_text() == "piece 0\npiece 1\npiece 2\n"
+    with pytest.raises(RuntimeError, match="renderer failed"):
+        write_files([(str(tmp_path / "c.txt"), "c", "complete\n"),
+                     (str(tmp_path / "d.txt"), "d", broken)])
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.txt", "b.txt"]  # no partials
+
+
+def test_stdout_takes_text_not_a_writer(tmp_path: Path) -> None:
+    from gate.outfile import write_files
+
+    with pytest.raises(TypeError, match="stdout takes text"):
+        write_files([(str(tmp_path / "a.txt"), "a", "text\n"), ("-", "b", lambda s: None)])
+    assert not list(tmp_path.iterdir())  # refused before anything was written

@@ -13,6 +13,8 @@ import io
 import warnings
 import xml.etree.ElementTree as ET
 
+import pytest
+
 from gate.report.junit import REPORTER, render
 from gate.result import FAIL, ModelError
 from tests.recordkit import (
@@ -154,3 +156,52 @@ def test_reporter_writes_without_deprecation_warnings() -> None:
         REPORTER.write(demo_result(), stream)
     assert stream.getvalue().startswith("<?xml")
     assert REPORTER.name == "junit"
+
+
+# --- the document text is junit-xml's, without its serialize/parse/pretty-print trip -----
+# Reference: junit_xml.to_xml_report_string(prettyprint=True), the package's own writer.
+
+def _hostile_result():
+    name = "a\rb\x00c<d>&\"e\x1b\U0010ffff\ud800\t\n\u2028 ]]> &amp; \x85"
+    return result(entry(run(layers=(layer(name),)), verdicts=(verdict(
+        name, status=FAIL, findings=(finding(name, message=f"layer {name} too big"),)),)),
+        notes=(f"note with {name}",))
+
+
+@pytest.mark.parametrize("make", [demo_result, _hostile_result,
+                                  lambda: result(notes=("no models changed",))])
+def test_text_is_byte_identical_to_junit_xmls_own_writer(make) -> None:
+    from junit_xml import to_xml_report_string
+
+    from gate.report.junit import junit_suites
+
+    res = make()
+    assert render(res) == to_xml_report_string(junit_suites(res), prettyprint=True)
+
+
+def test_raw_strings_are_treated_as_junit_xml_treats_them() -> None:
+    # Strings that did not pass xml_safe: the characters junit-xml deletes are deleted,
+    # markup characters escaped as minidom escapes them, a text of deleted characters
+    # only leaves an empty element; the same bytes as the package's writer.
+    from junit_xml import TestCase, TestSuite, to_xml_report_string
+
+    from gate.report.junit import _document_text
+
+    case = TestCase('x<"&>\x01\r\ty\n', classname="c\x7f")
+    case.stdout = "\x01\x02"  # only deleted characters: <system-out/>
+    case.add_failure_info(message="m\x0b&", output="line 1\r\nline 2 <&>\"'")
+    other = TestCase("plain")
+    other.add_skipped_info(message="why", output="\x1f")
+    suites = [TestSuite("s\x00", [case, other], properties={"k\x08": "v&<"}),
+              TestSuite("empty", [TestCase("only")])]
+    assert _document_text(suites) == to_xml_report_string(suites, prettyprint=True)
+
+
+def test_a_character_xml_cannot_hold_is_an_internal_error_not_a_broken_file() -> None:
+    from junit_xml import TestCase, TestSuite
+
+    from gate.errors import InternalError
+    from gate.report.junit import _document_text
+
+    with pytest.raises(InternalError, match="U\\+D800"):
+        _document_text([TestSuite("s", [TestCase("bad \ud800")])])

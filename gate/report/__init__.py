@@ -2,10 +2,12 @@
 
 A reporter is a tiny protocol (a name, the command-line option that asks for
 it, and ``write(result, stream)``), one module per format. ``write_reports``
-renders every asked-for report in memory first and hands them to
-``gate.outfile`` only when every renderer succeeded, so no report file can
+has every asked-for report written to its partial file by ``gate.outfile``
+(reports for stdout are rendered in memory first), and the files are renamed
+into place only when every renderer succeeded, so no report file can
 contradict the exit code (a renderer that fails leaves no report at all,
-never a "passed" beside an internal error).
+never a "passed" beside an internal error). A large report (the JSON of a
+200k-node check) thus goes to disk in pieces, never whole in memory.
 """
 
 from __future__ import annotations
@@ -13,11 +15,19 @@ from __future__ import annotations
 import importlib
 import io
 from collections.abc import Callable
+from functools import partial
 from typing import Protocol, TextIO, TypeVar
 
 import click
 
-from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, write_files, write_text
+from gate.outfile import (
+    TYPED_PATHS,
+    Content,
+    OutputRules,
+    check_output_paths,
+    write_files,
+    write_text,
+)
 from gate.result import GateResult
 
 # One module per format; each defines ``REPORTER``.
@@ -69,11 +79,13 @@ def write_reports(result: GateResult, paths: dict[str, str | None],
     written); nothing is written unless every renderer succeeded.
     """
     check_output_paths(report_targets(paths), rules)
-    rendered = []
+    rendered: list[tuple[str, str, Content]] = []
     for reporter in all_reporters():
         path = paths.get(reporter.name)
         if path:
-            rendered.append((path, f"{reporter.name} report", render_report(reporter, result)))
+            content = render_report(reporter, result) if path == "-" else \
+                partial(reporter.write, result)
+            rendered.append((path, f"{reporter.name} report", content))
     write_files(rendered)
     return [path for path, _, _ in rendered]
 

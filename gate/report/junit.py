@@ -8,8 +8,13 @@ The only module that uses the junit-xml package, wrapped here because of its pit
   escaping them, so every string goes through ``xml_safe`` first and stays
   readable (``\\r``, ``\\x00``);
 * properties exist only on test suites, so the key metrics go there;
-* ``TestSuite.to_xml_string`` is deprecated (and warns): we use
-  ``to_xml_report_string``.
+* ``to_xml_report_string`` serializes the tree, parses the text back with
+  minidom and pretty-prints it (most of the report's time on a large audit),
+  so this module builds each suite's element with junit-xml
+  (``TestSuite.build_xml_doc``) and writes the document itself
+  (``_document_text``) exactly as that function writes it: the same
+  ``testsuites`` totals, the characters junit-xml deletes deleted, minidom's
+  escaping and tab indent. ``TestSuite.to_xml_string`` is deprecated anyway.
 
 Status mapping: an error-severity rule that failed is a ``<failure>``; a
 warning-severity rule that failed passes (it does not block the merge, as the
@@ -21,12 +26,16 @@ timestamps or host names are written, so the output is a pure function of the re
 
 from __future__ import annotations
 
+import re
+from collections import defaultdict
 from collections.abc import Sequence
 from typing import TextIO
+from xml.etree.ElementTree import Element
 
-from junit_xml import TestCase, TestSuite, to_xml_report_string
+from junit_xml import TestCase, TestSuite
 
 from gate import metrics
+from gate.errors import InternalError
 from gate.report.text import xml_safe
 from gate.result import (
     FAIL,
@@ -63,6 +72,12 @@ REPORTER = JunitReporter()
 
 def render(result: GateResult) -> str:
     """The JUnit XML text of ``result``."""
+    return _document_text(junit_suites(result))
+
+
+def junit_suites(result: GateResult) -> list[TestSuite]:
+    """The junit-xml suites of ``result``: one per model x target worst first, then one per
+    unanalysable and per ungated model (or one saying there was nothing to gate)."""
     suites = [_entry_suite(entry) for entry in result.ranked_entries]  # worst first
     suites.extend(_error_suite(error, result.allow_errors) for error in result.errors)
     suites.extend(_ungated_suite(item) for item in result.ungated)
@@ -71,7 +86,7 @@ def render(result: GateResult) -> str:
     elif result.notes:  # run notes on the first suite
         suites[0].stdout = _x("\n".join(result.notes), multiline=True)
     _add_rules_source(result, suites[0])
-    return to_xml_report_string(suites, prettyprint=True)
+    return suites
 
 
 def _entry_suite(entry: Entry) -> TestSuite:
@@ -233,3 +248,76 @@ def _add_rules_source(result: GateResult, suite: TestSuite) -> None:
         lines += [f"{source.heading}:"] + [f"- {line}" for line in source.changes]
     text = _x("\n".join(lines), multiline=True)
     suite.stdout = f"{text}\n{suite.stdout}" if suite.stdout else text
+
+
+# --- the document text ---------------------------------------------------------------
+# What junit-xml's to_xml_report_string(prettyprint=True) writes, without its serialize ->
+# parse -> pretty-print round trip: identical bytes (tests/test_report_junit.py compares).
+
+# The characters junit-xml deletes that reach its deletion still as characters: it
+# serializes as US-ASCII first, so every other character is a reference by then, and so
+# is a carriage return in an attribute value (ElementTree writes "&#13;"), which survives.
+_JUNIT_DELETES = re.compile("[\x00-\x08\x0b-\x1f\x7f]")
+_JUNIT_DELETES_IN_ATTRIBUTES = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\x7f]")
+# Characters no XML document may hold (junit-xml's round trip fails on them); xml_safe
+# replaces them visibly, so finding one is a bug.
+_NOT_XML = re.compile("[\ud800-\udfff\ufffe\uffff]")
+
+
+def _document_text(suites: Sequence[TestSuite]) -> str:
+    """The pretty-printed JUnit XML of ``suites`` (one ``testsuites`` root with totals)."""
+    totals: defaultdict[str, int | float] = defaultdict(int)
+    elements = []
+    for suite in suites:
+        element = suite.build_xml_doc()
+        for key in ("disabled", "errors", "failures", "tests"):
+            totals[key] += int(element.get(key, 0))
+        totals["time"] += float(element.get("time", 0))
+        elements.append(element)
+    root = Element("testsuites", {key: str(value) for key, value in totals.items()})
+    root.extend(elements)
+    lines = ['<?xml version="1.0" ?>\n']
+    _write_element(root, "", lines)
+    # junit-xml's deletion in attribute values, over the whole text at once: the markup
+    # holds none of these characters, and text was cleaned already (before deciding
+    # whether an element is empty).
+    text = _JUNIT_DELETES_IN_ATTRIBUTES.sub("", "".join(lines))
+    bad = _NOT_XML.search(text)
+    if bad:
+        raise InternalError(f"JUnit XML would hold U+{ord(bad.group()):04X}, which XML "
+                            "cannot carry (a string that missed xml_safe)")
+    return text
+
+
+def _write_element(element: Element, indent: str, out: list[str]) -> None:
+    """One element as minidom's ``toprettyxml(indent="\\t")`` writes it: attributes in
+    order, a lone text child inline, children one per line, no children ``<tag/>``."""
+    attributes = "".join(f' {name}="{_escaped(value)}"' for name, value in element.items())
+    text = _JUNIT_DELETES.sub("", element.text) if element.text else ""
+    children = list(element)
+    if not children:
+        if text:
+            out.append(f"{indent}<{element.tag}{attributes}>{_escaped(text)}</{element.tag}>\n")
+        else:
+            out.append(f"{indent}<{element.tag}{attributes}/>\n")
+        return
+    out.append(f"{indent}<{element.tag}{attributes}>\n")
+    inner = indent + "\t"
+    if text:  # text beside child elements: its own line (junit-xml never writes this)
+        out.append(f"{inner}{_escaped(text)}\n")
+    for child in children:
+        _write_element(child, inner, out)
+    out.append(f"{indent}</{element.tag}>\n")
+
+
+def _escaped(value: str) -> str:
+    """minidom's escaping, for attribute values and text alike."""
+    if "&" in value:
+        value = value.replace("&", "&amp;")
+    if "<" in value:
+        value = value.replace("<", "&lt;")
+    if '"' in value:
+        value = value.replace('"', "&quot;")
+    if ">" in value:
+        value = value.replace(">", "&gt;")
+    return value
