@@ -12,6 +12,7 @@ with ``gate.combine_results``.
 from __future__ import annotations
 
 import tempfile
+from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import replace
 from datetime import date
@@ -84,7 +85,7 @@ def _check_changes(root: Path, config: ProjectConfig, changes: Sequence[gitscan.
     errors: dict[str, list[str]] = {}
     jobs, blobs = _check_jobs(config, changes, revs, stored)
     early: dict[str, GateResult] = {}
-    left = {c.path: sum(1 for key in blobs if _change_path(key) == c.path) for c in changes}
+    left = Counter(_change_path(key) for key in blobs)  # sides still to come, per change
     by_path = {c.path: c for c in changes}
 
     def judge_when_complete(key: str, analysed: _Analysed) -> None:

@@ -60,6 +60,8 @@ def _scopes(graph: onnx.GraphProto) -> Iterator[tuple[str, str, onnx.GraphProto]
         key, label, current = stack.pop()
         yield key, label, current
         for index, node in enumerate(current.node):
+            if not len(node.attribute):  # most nodes: no subgraph to look into, no name needed
+                continue
             name = node.name or f"{node.op_type} #{index}"
             for attribute in node.attribute:
                 subgraphs = [attribute.g] if attribute.type == AttributeProto.GRAPH else \
