@@ -212,7 +212,7 @@ class _Converter:
         attributes, subgraphs = (self._attributes(proto_attributes, walk, depth)
                                  if len(proto_attributes) else (_NOTHING, _NOTHING))
         op_type, domain = proto.op_type, proto.domain
-        folded = folds(proto, input_names, sources)
+        folded = folds(proto, op_type, domain, input_names, sources)
         if folded:
             outputs = self._fold(proto, inputs, outputs, walk)
         input_sources = {i: sources[n] for i, n in enumerate(input_names) if n and n in sources}
@@ -234,7 +234,8 @@ class _Converter:
                           if n and n in consts} or _NOTHING,
             param_sources=input_sources or _NOTHING,
             folded=folded,
-            qdq_absorbed=not folded and walk.absorbs_qdq(proto, input_names, output_names),
+            qdq_absorbed=not folded and walk.absorbs_qdq(op_type, domain, input_names,
+                                                         output_names),
             unused_outputs=frozenset(unused) if unused else _NO_POSITIONS,
         )
 
@@ -295,18 +296,18 @@ class _Walk:
     def local(self, name: str) -> Any:
         return self.ctx[name].maps[0]
 
-    def absorbs_qdq(self, proto: onnx.NodeProto, input_names: list[str],
+    def absorbs_qdq(self, op_type: str, domain: str, input_names: list[str],
                     output_names: list[str]) -> bool:
         """An activation QuantizeLinear read only by DequantizeLinear nodes, and those nodes."""
-        if proto.domain not in ("", "ai.onnx") or not output_names:
+        if domain not in ("", "ai.onnx") or not output_names:
             return False
-        if proto.op_type == "QuantizeLinear":
+        if op_type == "QuantizeLinear":
             readers = self.readers.get(output_names[0], set())
             if readers and readers == {"DequantizeLinear"}:
                 self.absorbed_quantized.add(output_names[0])
                 return True
             return False
-        return (proto.op_type == "DequantizeLinear" and bool(input_names)
+        return (op_type == "DequantizeLinear" and bool(input_names)
                 and input_names[0] in self.absorbed_quantized)
 
     def unique_name(self, name: str, op_type: str, index: int) -> str:
