@@ -37,7 +37,7 @@ from gate.model.constants import (
     small_values,
 )
 from gate.model.graph import Graph, Node, ParamSource, Shape, TensorInfo, stored_as_itself
-from gate.model.order import topological_order
+from gate.model.order import OrderScan
 
 UNKNOWN_DIM = "?"
 MAX_SUBGRAPH_DEPTH = 64
@@ -144,12 +144,12 @@ class _Converter:
             if name not in infos and (name not in initializers
                                       or value.type.tensor_type.HasField("shape")):
                 infos[name] = self._value_info(value)
-        readers = _scan_nodes(proto, infos, consts)
+        scan = OrderScan(proto, self.path)
+        readers = _scan_nodes(proto, infos, consts, scan)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
-        order = topological_order(
-            proto, lambda name: name in local_known or (outer_infos is not None
-                                                         and name in outer_infos), self.path)
+        order = scan.order(lambda name: name in local_known or (outer_infos is not None
+                                                                 and name in outer_infos))
         ctx = {name: _chain(local if outer is None else outer[name].new_child(local))
                for name, local in (("infos", infos), ("sources", sources), ("consts", consts))}
         walk = _Walk(ctx, readers, set())
@@ -315,14 +315,18 @@ class _Walk:
 
 
 def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
-                consts: dict[str, tuple[int, ...]]) -> dict[str, set[str]]:
+                consts: dict[str, tuple[int, ...]], scan: OrderScan) -> dict[str, set[str]]:
     """One walk of the graph's nodes: every produced name goes in scope (shaped or not),
-    Constant nodes' small integer values into ``consts``; returns the readers: tensor
-    name -> op types of the nodes that read it (graph outputs and names read inside body
-    graphs are read by ``_SUBGRAPH_READER``)."""
+    Constant nodes' small integer values into ``consts``, the edges into ``scan`` (the
+    topological order); returns the readers: tensor name -> op types of the nodes that
+    read it (graph outputs and names read inside body graphs are read by
+    ``_SUBGRAPH_READER``)."""
     readers: dict[str, set[str]] = {}
-    for node in proto.node:
-        for name in node.output:
+    for index, node in enumerate(proto.node):
+        input_names, output_names = list(node.input), list(node.output)
+        scan.read(index, input_names)
+        scan.produce(index, output_names)
+        for name in output_names:
             if name and name not in infos:
                 infos[name] = TensorInfo(name, None, "UNDEFINED")
         domain, op_type = node.domain, node.op_type
@@ -331,7 +335,7 @@ def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
                 _constant_value(node, consts)
         else:
             op_type = f"{domain}.{op_type}"
-        for name in node.input:
+        for name in input_names:
             if name:
                 known = readers.get(name)
                 if known is None:
