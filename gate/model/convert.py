@@ -150,6 +150,7 @@ class _Converter:
         outer_infos = None if outer is None else outer["infos"]
         order = scan.order(lambda name: name in local_known or (outer_infos is not None
                                                                  and name in outer_infos))
+        del scan  # its map of every produced name is not needed while the nodes are built
         ctx = {name: _chain(local if outer is None else outer[name].new_child(local))
                for name, local in (("infos", infos), ("sources", sources), ("consts", consts))}
         walk = _Walk(ctx, readers, set())
@@ -278,7 +279,7 @@ class _Converter:
 class _Walk:
     """The state of converting one graph's nodes in order: scopes, readers, absorbed Q/DQ pairs."""
 
-    def __init__(self, ctx: dict[str, _Scope], readers: dict[str, set[str]],
+    def __init__(self, ctx: dict[str, _Scope], readers: Mapping[str, frozenset[str]],
                  used_names: set[str]) -> None:
         self.ctx = ctx
         self.readers = readers
@@ -302,7 +303,7 @@ class _Walk:
         if domain not in ("", "ai.onnx") or not output_names:
             return False
         if op_type == "QuantizeLinear":
-            readers = self.readers.get(output_names[0], set())
+            readers = self.readers.get(output_names[0], frozenset())
             if readers and readers == {"DequantizeLinear"}:
                 self.absorbed_quantized.add(output_names[0])
                 return True
@@ -315,13 +316,13 @@ class _Walk:
 
 
 def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
-                consts: dict[str, tuple[int, ...]], scan: OrderScan) -> dict[str, set[str]]:
+                consts: dict[str, tuple[int, ...]], scan: OrderScan) -> _Readers:
     """One walk of the graph's nodes: every produced name goes in scope (shaped or not),
     Constant nodes' small integer values into ``consts``, the edges into ``scan`` (the
     topological order); returns the readers: tensor name -> op types of the nodes that
     read it (graph outputs and names read inside body graphs are read by
     ``_SUBGRAPH_READER``)."""
-    readers: dict[str, set[str]] = {}
+    readers = _Readers()
     for index, node in enumerate(proto.node):
         input_names, output_names = list(node.input), list(node.output)
         scan.read(index, input_names)
@@ -337,11 +338,7 @@ def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
             op_type = f"{domain}.{op_type}"
         for name in input_names:
             if name:
-                known = readers.get(name)
-                if known is None:
-                    readers[name] = {op_type}
-                else:
-                    known.add(op_type)
+                readers.add(name, op_type)
         attributes = node.attribute
         for attribute in attributes if len(attributes) else ():
             if attribute.type == AttributeProto.GRAPH:
@@ -352,10 +349,29 @@ def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
                 continue
             for body in bodies:
                 for name in _names_read_in(body):
-                    readers.setdefault(name, set()).add(_SUBGRAPH_READER)
+                    readers.add(name, _SUBGRAPH_READER)
     for value in proto.output:
-        readers.setdefault(value.name, set()).add(_SUBGRAPH_READER)
+        readers.add(value.name, _SUBGRAPH_READER)
     return readers
+
+
+class _Readers(dict[str, frozenset[str]]):
+    """Tensor name -> the op types of the nodes that read it.
+
+    The sets are shared: one frozenset per distinct combination (a set per tensor was
+    the largest transient allocation while converting a large graph).
+    """
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.distinct: dict[frozenset[str], frozenset[str]] = {}
+
+    def add(self, name: str, op_type: str) -> None:
+        known = self.get(name)
+        if known is not None and op_type in known:
+            return
+        types = frozenset({op_type}) if known is None else known | {op_type}
+        self[name] = self.distinct.setdefault(types, types)
 
 
 def _names_read_in(graph: onnx.GraphProto) -> set[str]:
