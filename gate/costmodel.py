@@ -10,7 +10,7 @@ N times one target.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 from functools import lru_cache
 from math import ceil
 from operator import attrgetter
@@ -126,6 +126,8 @@ class _Context:
     weights_resident: bool
     total_param_bytes: int
     shared_params_resident: bool  # parameters read by several layers stay on chip between reads
+    # array layers costed so far, by everything their cost depends on (see ``_on_array``)
+    array_costs: dict[tuple[Any, ...], LayerCost] = field(default_factory=dict, compare=False)
 
 
 def cost_model(profile: ModelProfile, target: TargetProfile,
@@ -416,6 +418,26 @@ def _unknown(layer: LayerProfile, ctx: _Context) -> LayerCost:
 
 
 def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
+    """A layer on the PE array, costed once per distinct set of inputs to its cost.
+
+    Why: large graphs repeat a few layer shapes, and costing one takes about ten
+    microseconds. The key holds every figure of the layer the costing reads (its work,
+    precision, operand types and byte counts); the target is the context's own.
+    """
+    if layer.input_bytes is None or layer.output_bytes is None:
+        return _on_array_once(layer, ctx, epilogue_ops)  # refused inside, naming the layer
+    key = (layer.work, layer.precision, layer.input_dtypes[:1], layer.output_dtypes[:1],
+           layer.input_bytes, layer.output_bytes, layer.param_bytes, layer.param_new_bytes,
+           layer.param_count, epilogue_ops)
+    cost = ctx.array_costs.get(key)
+    if cost is None:
+        cost = ctx.array_costs[key] = _on_array_once(layer, ctx, epilogue_ops)
+    if cost.index == layer.index and cost.name == layer.name:
+        return cost
+    return _replaced(cost, index=layer.index, name=layer.name)
+
+
+def _on_array_once(layer: LayerProfile, ctx: _Context, epilogue_ops: int) -> LayerCost:
     target = ctx.target
     work = layer.work
     assert work is not None
