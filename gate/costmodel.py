@@ -10,9 +10,10 @@ N times one target.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 from functools import lru_cache
 from math import ceil
+from operator import attrgetter
 from typing import Any, TypeVar
 
 from gate.errors import InputError, InternalError
@@ -125,6 +126,8 @@ class _Context:
     weights_resident: bool
     total_param_bytes: int
     shared_params_resident: bool  # parameters read by several layers stay on chip between reads
+    # array layers costed so far, by everything their cost depends on (see ``_on_array``)
+    array_costs: dict[tuple[Any, ...], LayerCost] = field(default_factory=dict, compare=False)
 
 
 def cost_model(profile: ModelProfile, target: TargetProfile,
@@ -304,19 +307,23 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
 
 
 def _replaced(record: _Record, **changes: Any) -> _Record:
-    """``dataclasses.replace`` with the field names looked up once per class (it is
-    called twice per fused group, and ``replace`` introspects the fields every call)."""
+    """``dataclasses.replace`` for the per-layer records, cheaper: the fields read in one
+    call and passed by position (it runs twice per fused group, and ``replace``
+    introspects the fields on every call)."""
     cls = type(record)
-    names = _FIELD_NAMES.get(cls)
-    if names is None:
-        names = _FIELD_NAMES[cls] = tuple(f.name for f in fields(cls) if f.init)
-    values = {name: getattr(record, name) for name in names}
-    values.update(changes)
-    return cls(**values)
+    known = _FIELDS.get(cls)
+    if known is None:
+        names = tuple(f.name for f in fields(cls) if f.init)
+        known = _FIELDS[cls] = (attrgetter(*names), {name: i for i, name in enumerate(names)})
+    read, position = known
+    values = list(read(record))
+    for name, value in changes.items():
+        values[position[name]] = value
+    return cls(*values)
 
 
 _Record = TypeVar("_Record", LayerProfile, LayerCost)
-_FIELD_NAMES: dict[type, tuple[str, ...]] = {}
+_FIELDS: dict[type, tuple[attrgetter[Any], dict[str, int]]] = {}
 
 
 def _kept_params(member: LayerProfile, folded: bool,
@@ -411,6 +418,26 @@ def _unknown(layer: LayerProfile, ctx: _Context) -> LayerCost:
 
 
 def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
+    """A layer on the PE array, costed once per distinct set of inputs to its cost.
+
+    Why: large graphs repeat a few layer shapes, and costing one takes about ten
+    microseconds. The key holds every figure of the layer the costing reads (its work,
+    precision, operand types and byte counts); the target is the context's own.
+    """
+    if layer.input_bytes is None or layer.output_bytes is None:
+        return _on_array_once(layer, ctx, epilogue_ops)  # refused inside, naming the layer
+    key = (layer.work, layer.precision, layer.input_dtypes[:1], layer.output_dtypes[:1],
+           layer.input_bytes, layer.output_bytes, layer.param_bytes, layer.param_new_bytes,
+           layer.param_count, epilogue_ops)
+    cost = ctx.array_costs.get(key)
+    if cost is None:
+        cost = ctx.array_costs[key] = _on_array_once(layer, ctx, epilogue_ops)
+    if cost.index == layer.index and cost.name == layer.name:
+        return cost
+    return _replaced(cost, index=layer.index, name=layer.name)
+
+
+def _on_array_once(layer: LayerProfile, ctx: _Context, epilogue_ops: int) -> LayerCost:
     target = ctx.target
     work = layer.work
     assert work is not None
@@ -545,6 +572,23 @@ def _float_rate_note(ctx: _Context) -> str:
             f"export it quantized (QDQ) or pass --precision {best}")
 
 
+def _energy_total(costs: list[LayerCost]) -> EnergyBreakdown:
+    """The layers' energies added up part by part, in layer order: what ``sum`` of
+    ``EnergyBreakdown`` gives (same additions, same order), without an intermediate
+    breakdown per layer."""
+    mac = buffer = noc = dram_param = dram_act = static = 0.0
+    for cost in costs:
+        energy = cost.energy
+        if energy:
+            mac += energy.mac_j
+            buffer += energy.buffer_j
+            noc += energy.noc_j
+            dram_param += energy.dram_param_j
+            dram_act += energy.dram_act_j
+            static += energy.static_j
+    return EnergyBreakdown(mac, buffer, noc, dram_param, dram_act, static)
+
+
 def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
             layers: tuple[LayerCost, ...], wanted_resident: bool, plan: FusionPlan) -> ModelCost:
     capacity = 0.0
@@ -574,7 +618,7 @@ def _totals(profile: ModelProfile, target: TargetProfile, ctx: _Context,
         precision=ctx.model_precision,
         layers=layers,
         latency_s=sum(cost.latency_s or 0.0 for cost in costed),
-        energy=sum((cost.energy for cost in costed if cost.energy), EnergyBreakdown()),
+        energy=_energy_total(costed),
         param_dram_bytes=sum(cost.param_dram_bytes or 0 for cost in costed),
         act_dram_bytes=sum(cost.act_dram_bytes or 0 for cost in costed),
         weights_resident=ctx.weights_resident,

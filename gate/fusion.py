@@ -22,7 +22,7 @@ a fold or epilogue op follows them.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from types import MappingProxyType
 
@@ -110,7 +110,7 @@ def _remembered(engine_of: Callable[[LayerProfile], str]) -> Callable[[LayerProf
 class _Wiring:
     """Who produces and who consumes each tensor; which tensors leave the graph."""
 
-    consumers: Mapping[str, tuple[int, ...]]
+    consumers: Mapping[str, Sequence[int]]  # built here, never changed
     producer: Mapping[str, int]
     graph_outputs: frozenset[str]
     constants: frozenset[int]  # positions of Constant nodes (their outputs are constant operands)
@@ -120,17 +120,20 @@ class _Wiring:
         consumers: dict[str, list[int]] = {}
         producer: dict[str, int] = {}
         for position, node in enumerate(graph.nodes):
-            names = _names_read(node) if node.subgraphs else [  # most nodes: inputs only
+            names = list(_names_read(node)) if node.subgraphs else [  # most: inputs only
                 t.name for t in node.inputs if t is not None and t.name]
-            for name in dict.fromkeys(names):
-                consumers.setdefault(name, []).append(position)
+            for name in dict.fromkeys(names) if len(names) > 1 else names:  # each reader once
+                readers = consumers.get(name)
+                if readers is None:
+                    consumers[name] = [position]
+                else:
+                    readers.append(position)
             for tensor in node.outputs:
                 if tensor.name:
                     producer[tensor.name] = position
         constants = frozenset(i for i, node in enumerate(graph.nodes)
                               if node.op_type == "Constant" and not node.domain)
-        return _Wiring({k: tuple(v) for k, v in consumers.items()}, producer,
-                       frozenset(t.name for t in graph.outputs), constants)
+        return _Wiring(consumers, producer, frozenset(t.name for t in graph.outputs), constants)
 
     def sole_consumer(self, tensor: str) -> int | None:
         """The one layer reading ``tensor``, or None (several, none, or a graph output)."""

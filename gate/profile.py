@@ -9,7 +9,6 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
-from functools import lru_cache
 from math import prod
 from typing import Any
 
@@ -275,14 +274,9 @@ class _Counting:
 
 def _tensor_bytes(tensor: TensorInfo, counting: _Counting) -> int | None:
     """Storage bytes of an activation as counted, None when unknown."""
-    shape = tensor.shape
-    if shape is None:
+    count = tensor.numel  # cached per distinct shape
+    if count is None:
         return None
-    count = 1
-    for dim in shape:
-        if dim.__class__ is not int:
-            return None
-        count *= dim
     bits = counting.tensor_bits(tensor)
     if bits == 0:
         return None
@@ -397,18 +391,20 @@ def _layer_params(node: Node) -> dict[str, _Param]:
     return params
 
 
-@lru_cache(maxsize=1 << 16)  # graphs repeat a few shapes across many layers
-def _all_ints(shape: Shape) -> bool:
-    return all(isinstance(d, int) for d in shape)
+def _sized(tensor: TensorInfo) -> bool:
+    """A static shape (element count cached per shape) and a fixed-size element type."""
+    return tensor.numel is not None and DTYPE_BITS.get(tensor.dtype, 0) > 0
 
 
 def _shape_problem(node: Node, unbound: dict[str, int]) -> str:
     """Why the layer's tensors cannot be sized, or "" when all are static."""
     tensors = [t for t in node.inputs if t is not None] + [
         t for i, t in enumerate(node.outputs) if t.name and i not in node.unused_outputs]
-    if all(t.shape is not None and _all_ints(t.shape) and DTYPE_BITS.get(t.dtype, 0)
-           for t in tensors):
-        return ""  # the common case, decided with one cached look per shape
+    for tensor in tensors:  # the common case: every tensor sized, one cached look each
+        if not _sized(tensor):
+            break
+    else:
+        return ""
     symbolic: list[str] = []
     other = ""
     for tensor in tensors:

@@ -8,6 +8,7 @@ back equal to it (``json.loads``) whatever the nesting: only whitespace may diff
 
 from __future__ import annotations
 
+import io
 import json
 import math
 import re
@@ -20,7 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from gate import snapshot
-from gate.errors import InternalError
+from gate.errors import InputError, InternalError
 from gate.report.jsonout import loads_result, render, result_document
 from gate.snapshot import canonical_json, canonical_json_pieces, loads_snapshot, snapshot_to_dict
 from tests.recordkit import HOSTILE_NAME, demo_result, layer, run
@@ -216,3 +217,30 @@ def test_the_cyclic_collector_is_left_as_it_was(enabled) -> None:
         assert gc.isenabled() is enabled
     finally:
         (gc.enable if was else gc.disable)()
+
+
+def test_readers_and_writers_pause_the_collector_and_restore_it(tmp_path, monkeypatch) -> None:
+    import gc
+
+    from gate.report.jsonout import REPORTER
+    from gate.snapshot import write_snapshot
+
+    states: list[bool] = []
+    real_loads = json.loads
+
+    def watching_loads(*args, **kwargs):
+        states.append(gc.isenabled())
+        return real_loads(*args, **kwargs)
+
+    monkeypatch.setattr(json, "loads", watching_loads)
+    assert gc.isenabled()
+    text = render(demo_result())
+    loads_result(text)
+    write_snapshot([run()], str(tmp_path / "base.json"))
+    loads_snapshot((tmp_path / "base.json").read_text(encoding="utf-8"))
+    REPORTER.write(demo_result(), io.StringIO())
+    assert states == [False, False]  # both reads parsed with the collector paused
+    assert gc.isenabled()  # and every reader and writer left it on
+    with pytest.raises(InputError):
+        loads_result("[")
+    assert gc.isenabled()

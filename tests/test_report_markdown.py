@@ -10,6 +10,9 @@ from __future__ import annotations
 
 import re
 
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
 from gate.report.markdown import COMMENT_LIMIT_CHARS, MARKER, comment_size, render
 from gate.result import FAIL, GateResult, ModelError
 from tests.recordkit import (
@@ -183,3 +186,33 @@ def test_worst_layer_is_the_largest_absolute_change_not_the_largest_percent() ->
     rows = [row for row in _table_rows(text) if row.startswith(("| conv", "| relu"))]
     assert rows[0].startswith("| conv |") and "worse by 1.67 ms (+298%)" in rows[0]
     assert "worse by 45.0 us (+3103%)" in rows[1]
+
+
+def _md_escape_per_character(text: str) -> str:
+    """The first md_escape, one character at a time: the reference for the one-pass one."""
+    from gate.report import text as t
+
+    text = t.term_safe(text)
+    out = []
+    for position, char in enumerate(text):
+        if char in t._MD_ENTITIES:
+            out.append(t._MD_ENTITIES[char])
+        elif char in t._MD_PUNCT or (position == 0 and char in t._MD_LEADING):
+            out.append("\\" + char)
+        else:
+            out.append(char)
+        following = text[position + 1:position + 2]
+        if char == "#" and following and following in "0123456789":
+            out.append(t._ZERO_WIDTH)
+    return t._MD_AUTOLINK.sub(lambda m: m.group() + t._ZERO_WIDTH, "".join(out))
+
+
+_MD_HOSTILE_CHARS = list("#-+=\\`*_[]|~$&<>\"@0123456789 aw.:/hgtpH\x00\n\x1b\u2028\x85\u00e9")
+
+
+@settings(max_examples=500, deadline=None)
+@given(st.text(alphabet=st.sampled_from(_MD_HOSTILE_CHARS), max_size=24) | st.text())
+def test_md_escape_in_one_pass_writes_what_the_per_character_escape_wrote(text) -> None:
+    from gate.report.text import md_escape
+
+    assert md_escape(text) == _md_escape_per_character(text)

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import os
 from collections import ChainMap
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from types import MappingProxyType
 from typing import Any
 
@@ -202,30 +202,24 @@ class _Converter:
     def _node(self, index: int, proto: onnx.NodeProto, walk: _Walk, depth: int) -> Node:
         infos, sources, consts = walk.infos, walk.sources, walk.consts
         input_names = list(proto.input)  # one read of the protobuf field (reads are not free)
-        inputs = tuple(None if not name else infos.get(name) or TensorInfo(name, None, "UNDEFINED")
-                       for name in input_names)
+        # list comprehensions, not generators: this runs once per node of a large graph
+        inputs = tuple([None if not name else infos.get(name) or TensorInfo(name, None, "UNDEFINED")
+                        for name in input_names])
         output_names = list(proto.output)
-        outputs = tuple(infos.get(name) or TensorInfo(name, None, "UNDEFINED") if name
-                        else TensorInfo("", None, "UNDEFINED") for name in output_names)
-        attributes: dict[str, Any] = {}
-        subgraphs: dict[str, Graph] = {}
+        outputs = tuple([infos.get(name) or TensorInfo(name, None, "UNDEFINED") if name
+                         else TensorInfo("", None, "UNDEFINED") for name in output_names])
         proto_attributes = proto.attribute
-        for attribute in proto_attributes if len(proto_attributes) else ():
-            if attribute.type == AttributeProto.GRAPH:
-                subgraphs[attribute.name] = self.graph(attribute.g, walk.ctx, depth + 1)
-            elif attribute.type == AttributeProto.GRAPHS:
-                for i, sub in enumerate(attribute.graphs):
-                    subgraphs[f"{attribute.name}[{i}]"] = self.graph(sub, walk.ctx, depth + 1)
-            else:
-                attributes[attribute.name] = _plain_attribute(attribute)
+        attributes, subgraphs = (self._attributes(proto_attributes, walk, depth)
+                                 if len(proto_attributes) else (_NOTHING, _NOTHING))
         op_type, domain = proto.op_type, proto.domain
         folded = folds(proto, input_names, sources)
         if folded:
             outputs = self._fold(proto, inputs, outputs, walk)
         input_sources = {i: sources[n] for i, n in enumerate(input_names) if n and n in sources}
-        params = {i: source for i, source in input_sources.items()
-                  if is_parameter(op_type, i, inputs[i], source)}
+        params = [i for i, source in input_sources.items()
+                  if is_parameter(op_type, i, inputs[i], source)] if input_sources else ()
         readers = walk.readers
+        unused = [i for i, n in enumerate(output_names) if n and n not in readers]
         return Node(
             index=index,
             name=walk.unique_name(proto.name, op_type, index),
@@ -233,17 +227,31 @@ class _Converter:
             domain="" if domain == "ai.onnx" else domain,
             inputs=inputs,
             outputs=outputs,
-            attributes=attributes or _NOTHING,
+            attributes=attributes,
             param_inputs=frozenset(params) if params else _NO_POSITIONS,
-            subgraphs=subgraphs or _NOTHING,
+            subgraphs=subgraphs,
             const_values={i: consts[n] for i, n in enumerate(input_names)
                           if n and n in consts} or _NOTHING,
             param_sources=input_sources or _NOTHING,
             folded=folded,
             qdq_absorbed=not folded and walk.absorbs_qdq(proto, input_names, output_names),
-            unused_outputs=frozenset(i for i, n in enumerate(output_names)
-                                     if n and n not in readers) or _NO_POSITIONS,
+            unused_outputs=frozenset(unused) if unused else _NO_POSITIONS,
         )
+
+    def _attributes(self, proto_attributes: Iterable[onnx.AttributeProto], walk: _Walk,
+                    depth: int) -> tuple[Mapping[str, Any], Mapping[str, Graph]]:
+        """A node's plain attributes and its converted subgraphs (by attribute name)."""
+        attributes: dict[str, Any] = {}
+        subgraphs: dict[str, Graph] = {}
+        for attribute in proto_attributes:
+            if attribute.type == AttributeProto.GRAPH:
+                subgraphs[attribute.name] = self.graph(attribute.g, walk.ctx, depth + 1)
+            elif attribute.type == AttributeProto.GRAPHS:
+                for i, sub in enumerate(attribute.graphs):
+                    subgraphs[f"{attribute.name}[{i}]"] = self.graph(sub, walk.ctx, depth + 1)
+            else:
+                attributes[attribute.name] = _plain_attribute(attribute)
+        return attributes or _NOTHING, subgraphs or _NOTHING
 
     def _fold(self, proto: onnx.NodeProto, inputs: tuple[TensorInfo | None, ...],
               outputs: tuple[TensorInfo, ...], walk: _Walk) -> tuple[TensorInfo, ...]:
@@ -316,10 +324,12 @@ def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
         for name in node.output:
             if name and name not in infos:
                 infos[name] = TensorInfo(name, None, "UNDEFINED")
-        domain = node.domain
-        if node.op_type == "Constant" and domain in ("", "ai.onnx"):
-            _constant_value(node, consts)
-        op_type = node.op_type if domain in ("", "ai.onnx") else f"{domain}.{node.op_type}"
+        domain, op_type = node.domain, node.op_type
+        if domain in ("", "ai.onnx"):
+            if op_type == "Constant":
+                _constant_value(node, consts)
+        else:
+            op_type = f"{domain}.{op_type}"
         for name in node.input:
             if name:
                 known = readers.get(name)

@@ -43,7 +43,7 @@ def infer_checked(proto: onnx.ModelProto, path: str, infer: Infer) -> tuple[onnx
     inferred, warning = infer(bare)
     if warning:  # inference failed: the stored shapes are all there is
         return infer(proto)
-    derived, _ = _stored(inferred.graph)
+    derived = _derived(inferred.graph, stored)
     unverified = [place for place, value in stored.items()
                   if not _same_or_unknown(value, derived.get(place), labels[place[0]], path)]
     if not unverified:
@@ -60,6 +60,8 @@ def _scopes(graph: onnx.GraphProto) -> Iterator[tuple[str, str, onnx.GraphProto]
         key, label, current = stack.pop()
         yield key, label, current
         for index, node in enumerate(current.node):
+            if not len(node.attribute):  # most nodes: no subgraph to look into, no name needed
+                continue
             name = node.name or f"{node.op_type} #{index}"
             for attribute in node.attribute:
                 subgraphs = [attribute.g] if attribute.type == AttributeProto.GRAPH else \
@@ -81,6 +83,28 @@ def _stored(graph: onnx.GraphProto) -> tuple[dict[Place, onnx.ValueInfoProto], d
         for value in (*current.value_info, *current.output):
             values[(key, value.name)] = value
     return values, labels
+
+
+def _derived(graph: onnx.GraphProto,
+             places: dict[Place, onnx.ValueInfoProto]) -> dict[Place, onnx.ValueInfoProto]:
+    """What ``_stored`` gives for ``places`` only (an output over a value_info of its name,
+    as there), without a dict entry for every tensor inference typed: the file usually
+    stores a few shapes, inference a shape per tensor."""
+    wanted: dict[str, set[str]] = {}
+    for key, name in places:
+        wanted.setdefault(key, set()).add(name)
+    found: dict[Place, onnx.ValueInfoProto] = {}
+    for key, _label, current in _scopes(graph) if wanted else ():
+        names = wanted.get(key)
+        if not names:
+            continue
+        outputs = {value.name: value for value in current.output if value.name in names}
+        if len(outputs) < len(names):
+            for value in current.value_info:
+                if value.name in names and value.name not in outputs:
+                    found[(key, value.name)] = value
+        found.update(((key, name), value) for name, value in outputs.items())
+    return found
 
 
 def _strip(graph: onnx.GraphProto) -> None:

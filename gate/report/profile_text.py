@@ -282,11 +282,15 @@ def clean(text: str, limit: int = 0, *, keep_end: bool = False) -> str:
     return text
 
 
-def _aligned(rows: list[list[str]], right_from: int) -> Iterator[str]:
-    """Columns padded to their widest cell (left-aligned before ``right_from``, right-aligned
+def _widths(rows: list[list[str]]) -> list[int]:
+    """Each column's widest cell."""
+    return [max(map(len, column)) for column in zip(*rows)]
+
+
+def _aligned(rows: list[list[str]], widths: list[int], right_from: int) -> Iterator[str]:
+    """Columns padded to ``widths`` (left-aligned before ``right_from``, right-aligned
     from it), two spaces apart, each line ending in a newline; in batches of lines. One
     format string for every row (a table may have 100k)."""
-    widths = [max(map(len, column)) for column in zip(*rows)]
     line = "  ".join(f"{{:{'>' if i >= right_from else '<'}{w}}}" for i, w in enumerate(widths))
     for first in range(0, len(rows), _ROWS_PER_CHUNK):
         yield "".join(line.format(*row).rstrip() + "\n"
@@ -295,12 +299,28 @@ def _aligned(rows: list[list[str]], right_from: int) -> Iterator[str]:
 
 def _known(shapes: Sequence[Shape | None]) -> bool:
     """Every (present) tensor's shape is fully numeric, so its byte count is real, not 0."""
+    try:
+        return _known_shapes(shapes)
+    except TypeError:  # an unhashable part (a list for a shape in a hand-built profile)
+        return _known_shapes.__wrapped__(shapes)
+
+
+@lru_cache(maxsize=1 << 14)  # layers share their shape tuples: one answer per distinct tuple
+def _known_shapes(shapes: Sequence[Shape | None]) -> bool:
     return all(shape is not None and all(isinstance(d, int) for d in shape)
                for shape in shapes if shape != ())
 
 
+@lru_cache(maxsize=1 << 14)
+def _shapes_text(shapes: tuple[Shape | None, ...]) -> str:
+    return ";".join(shape_text(s) for s in shapes)
+
+
 def _layer_cells(layer: LayerProfile) -> list[str]:
-    out = ";".join(shape_text(s) for s in layer.output_shapes)
+    try:
+        out = _shapes_text(layer.output_shapes)
+    except TypeError:  # an unhashable part (a list for a shape in a hand-built profile)
+        out = _shapes_text.__wrapped__(layer.output_shapes)
     counted = layer.modelled
     return [str(layer.index), clean(layer.name, 40, keep_end=True), clean(layer.op_type, 24),
             clean(out, 24), layer.precision if layer.role == "layer" else layer.role,
@@ -368,10 +388,11 @@ def table_chunks(profile: ModelProfile, runs: Sequence[Run]) -> Iterator[str]:
         ([("", "!")] if flagged else [])
     rows = [[top for top, _ in head], [bottom for _, bottom in head]] + \
         [_row(i, layer, runs, flagged) for i, layer in enumerate(profile.layers)]
+    widths = _widths(rows)
     if runs:
-        lines.append(_group_line(rows, [clean(target.name, 40) for target, _ in runs]))
+        lines.append(_group_line(widths, [clean(target.name, 40) for target, _ in runs]))
     yield "".join(line + "\n" for line in lines)
-    yield from _aligned(rows, right_from=5)
+    yield from _aligned(rows, widths, right_from=5)
     lines = ["", LEGEND, *([TARGET_LEGEND] if runs else []),
              MARKS + (UNMODELLED_MARKS if flagged else "")]
     lines += ["", *_totals_lines(profile), *_coverage_lines(profile)]
@@ -396,9 +417,8 @@ def _row(i: int, layer: LayerProfile, runs: Sequence[Run], flagged: bool) -> lis
     return cells
 
 
-def _group_line(rows: list[list[str]], names: list[str]) -> str:
+def _group_line(widths: list[int], names: list[str]) -> str:
     """The line above the header naming each target over its group of columns."""
-    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     start = sum(w + 2 for w in widths[:len(_HEAD)])
     line = " " * start
     for k, name in enumerate(names):

@@ -92,7 +92,10 @@ _MD_ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "@": "@&#
 # Also broken by a zero-width space: the starts of what GitHub turns into links by itself
 # (bare URLs "https://", "www.", "GH-123"; "#123" is handled beside the other characters).
 _ZERO_WIDTH = "&#8203;"
-_DIGITS = frozenset("0123456789")
+_HASH_DIGIT = re.compile("#(?=[0-9])")
+# Every character md_escape replaces, and the marker of a "#123" break ("\x00").
+_MD_TABLE = str.maketrans({**_MD_ENTITIES, **{char: "\\" + char for char in _MD_PUNCT},
+                           "\x00": _ZERO_WIDTH})
 _MD_AUTOLINK = re.compile(r"(?i)(?<![a-z0-9])(?:https?|ftp|mailto|xmpp)(?=:)"
                           r"|(?i:(?<![a-z0-9])www)(?=\.)|(?i:(?<![a-z0-9])gh)(?=-[0-9])")
 
@@ -105,17 +108,12 @@ def md_escape(text: str) -> str:
     characters become visible escapes, so the text stays on one line.
     """
     text = term_safe(text)  # newlines -> "\n" text, escape sequences -> "\x1b"
-    out = []
-    for position, char in enumerate(text):
-        if char in _MD_ENTITIES:
-            out.append(_MD_ENTITIES[char])
-        elif char in _MD_PUNCT or (position == 0 and char in _MD_LEADING):
-            out.append("\\" + char)
-        else:
-            out.append(char)
-        if char == "#" and text[position + 1:position + 2] in _DIGITS:
-            out.append(_ZERO_WIDTH)  # "#123" would link an issue or pull request
-    return _MD_AUTOLINK.sub(lambda m: m.group() + _ZERO_WIDTH, "".join(out))
+    if "#" in text:  # "#123" would link an issue or pull request: mark where a break goes
+        text = _HASH_DIGIT.sub("#\x00", text)  # no control character is left to clash
+    escaped = text.translate(_MD_TABLE)  # one pass in C (a reporter's hottest loop once)
+    if text[:1] in _MD_LEADING:
+        escaped = "\\" + escaped
+    return _MD_AUTOLINK.sub(lambda m: m.group() + _ZERO_WIDTH, escaped)
 
 
 def md_code(text: str) -> str:
