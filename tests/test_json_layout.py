@@ -8,6 +8,7 @@ back equal to it (``json.loads``) whatever the nesting: only whitespace may diff
 
 from __future__ import annotations
 
+import io
 import json
 import math
 import re
@@ -20,10 +21,19 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from gate import snapshot
-from gate.errors import InternalError
+from gate.errors import InputError, InternalError
 from gate.report.jsonout import loads_result, render, result_document
 from gate.snapshot import canonical_json, canonical_json_pieces, loads_snapshot, snapshot_to_dict
 from tests.recordkit import HOSTILE_NAME, demo_result, layer, run
+
+
+@pytest.fixture(autouse=True)
+def _cold_memos(monkeypatch) -> None:
+    """Each test starts with empty memos, so a value written by an earlier test cannot hide
+    a wrong first rounding (the edge cases also write twice: the warm memo must agree)."""
+    monkeypatch.setattr(snapshot, "_ROUNDED", {})
+    monkeypatch.setattr(snapshot, "_FLOAT_TEXTS", {})
+    monkeypatch.setattr(snapshot, "_KEY_TEXTS", {})
 
 
 def _reference_rounded(value: Any) -> Any:
@@ -145,8 +155,11 @@ def test_rounding_edge_cases_in_every_position(value, written) -> None:
     assert canonical_json(value) == expected_line["alone"]
     assert canonical_json({"v": value}) == expected_line["flat_object"]
     assert canonical_json([value, 1]) == expected_line["flat_list"]
-    rows = canonical_json({"t": [{"v": value, "m": {"v": value}, "l": [value]}]})
-    assert f'{{"l": [{written}], "m": {{"v": {written}}}, "v": {written}}}' in rows
+    rows = {"t": [{"v": value, "m": {"v": value}, "l": [value]}]}
+    row_line = f'{{"l": [{written}], "m": {{"v": {written}}}, "v": {written}}}'
+    assert row_line in canonical_json(rows)
+    assert row_line in canonical_json(rows)  # again, from the memos
+    assert canonical_json(value) == expected_line["alone"]
 
 
 def test_a_bool_is_not_counted_as_the_int_it_equals() -> None:
@@ -216,3 +229,73 @@ def test_the_cyclic_collector_is_left_as_it_was(enabled) -> None:
         assert gc.isenabled() is enabled
     finally:
         (gc.enable if was else gc.disable)()
+
+
+def test_readers_and_writers_pause_the_collector_and_restore_it(tmp_path, monkeypatch) -> None:
+    import gc
+
+    from gate.report.jsonout import REPORTER
+    from gate.snapshot import write_snapshot
+
+    states: list[bool] = []
+    real_loads = json.loads
+
+    def watching_loads(*args, **kwargs):
+        states.append(gc.isenabled())
+        return real_loads(*args, **kwargs)
+
+    monkeypatch.setattr(json, "loads", watching_loads)
+    assert gc.isenabled()
+    text = render(demo_result())
+    loads_result(text)
+    write_snapshot([run()], str(tmp_path / "base.json"))
+    loads_snapshot((tmp_path / "base.json").read_text(encoding="utf-8"))
+    REPORTER.write(demo_result(), io.StringIO())
+    assert states == [False, False]  # both reads parsed with the collector paused
+    assert gc.isenabled()  # and every reader and writer left it on
+    with pytest.raises(InputError):
+        loads_result("[")
+    assert gc.isenabled()
+
+
+_plain = (st.none() | st.booleans() | st.integers(min_value=-2**80, max_value=2**80)
+          | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=6))
+_rows = st.recursive(
+    st.dictionaries(st.text(max_size=5), _plain, max_size=5),
+    lambda inner: st.dictionaries(
+        st.text(max_size=5), _plain | inner | st.lists(_plain, max_size=3)
+        | st.lists(inner, max_size=2), max_size=5),
+    max_leaves=16)
+
+
+@settings(max_examples=400, deadline=None)
+@given(_rows)
+def test_a_rows_text_is_what_the_general_way_writes(row) -> None:
+    # Rows are written from memoised pieces (snapshot._row_text); the general way rounds
+    # a copy and hands it to the C encoder. Same bytes, and the same rows count as rows.
+    general = snapshot._row(row)
+    text = snapshot._row_text(row)
+    assert text is not snapshot._UNUSUAL  # plain types only here
+    assert text == (None if general is None else snapshot._encode(general))
+
+
+def test_a_row_holding_another_type_goes_the_general_way() -> None:
+    class Ratio(float):
+        pass
+
+    rows = {"t": [{"r": Ratio(1 / 3), "m": {"x": -0.0}}, {"r": 0.5, "m": {"x": 1e-300}}]}
+    assert snapshot._row_text(rows["t"][0]) is snapshot._UNUSUAL
+    lines = canonical_json(rows).splitlines()
+    assert lines[2] == '    {"m": {"x": 0.0}, "r": 0.333333333333},'
+    assert lines[3] == '    {"m": {"x": 1e-300}, "r": 0.5}'
+
+
+def test_the_text_memos_stay_bounded(monkeypatch) -> None:
+    monkeypatch.setattr(snapshot, "_FLOAT_TEXTS", {})
+    monkeypatch.setattr(snapshot, "_KEY_TEXTS", {})
+    monkeypatch.setattr(snapshot, "_TEXT_MEMO_MAX", 8)
+    rows = {"t": [{f"k{i}": i / 7} for i in range(1, 40)]}
+    first = canonical_json(rows)
+    assert len(snapshot._FLOAT_TEXTS) <= 8 and len(snapshot._KEY_TEXTS) <= 8
+    assert canonical_json(rows) == first
+    assert json.loads(first) == _reference_rounded(rows)

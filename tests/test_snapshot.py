@@ -150,3 +150,25 @@ def test_a_version_1_snapshot_still_reads_and_unknown_metrics_round_trip(tmp_pat
     write_snapshot([unknown], str(tmp_path / "v2.json"))
     (back,) = read_snapshot(str(tmp_path / "v2.json"))
     assert back.metrics["latency_s"] is None
+
+
+def test_a_snapshot_streams_to_the_file_and_one_over_the_limit_leaves_nothing(
+        tmp_path, monkeypatch, capsys) -> None:
+    from gate import snapshot
+
+    monkeypatch.setattr(snapshot, "PIECE_CHARS", 100)  # many pieces
+    path = tmp_path / "base.json"
+    write_snapshot(_runs(), str(path))
+    assert path.read_text(encoding="utf-8") == dumps_snapshot(_runs())
+    size = path.stat().st_size
+    monkeypatch.setattr(snapshot, "MAX_SNAPSHOT_BYTES", size - 1)
+    bigger = tmp_path / "bigger.json"
+    with pytest.raises(InputError, match=f"over the {size - 1}-byte limit"):
+        write_snapshot(_runs(), str(bigger))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["base.json"]  # no partial file
+    with pytest.raises(InputError, match="byte limit"):
+        write_snapshot(_runs(), "-")
+    assert capsys.readouterr().out == ""
+    monkeypatch.setattr(snapshot, "MAX_SNAPSHOT_BYTES", size)  # exactly the limit: written
+    write_snapshot(_runs(), str(bigger))
+    assert bigger.read_bytes() == path.read_bytes()
