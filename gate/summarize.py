@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, ItemsView, Iterator, Mapping, ValuesView
 from functools import lru_cache
 
 from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
@@ -149,18 +149,29 @@ class LayerMetrics(Mapping[str, Metric]):
     def __contains__(self, name: object) -> bool:
         return name in _LAYER_METRIC_READERS
 
+    def as_dict(self) -> dict[str, Metric]:
+        """Every metric, read at once into the dict this view stands for."""
+        layer, cost = self._layer, self._cost
+        return {name: read(layer, cost) for name, read in _LAYER_METRIC_READERS.items()}
+
+    def items(self) -> ItemsView[str, Metric]:
+        return self.as_dict().items()  # one pass, not a lookup per key (JSON writes them all)
+
+    def values(self) -> ValuesView[Metric]:
+        return self.as_dict().values()
+
     def __eq__(self, other: object) -> bool:
         if isinstance(other, Mapping):
-            return dict(self.items()) == dict(other.items())
+            return self.as_dict() == dict(other.items())
         return NotImplemented
 
     __hash__ = None  # type: ignore[assignment]  # like a dict: unhashable
 
     def __repr__(self) -> str:
-        return repr(dict(self.items()))
+        return repr(self.as_dict())
 
     def __reduce__(self) -> tuple[type[dict[str, Metric]], tuple[dict[str, Metric]]]:
-        return dict, (dict(self.items()),)  # pickled as the plain dict it stands for
+        return dict, (self.as_dict(),)  # pickled as the plain dict it stands for
 
 
 def _model_metrics(profile: ModelProfile, cost: ModelCost) -> dict[str, Metric]:
