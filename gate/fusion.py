@@ -165,7 +165,10 @@ def _can_head(layer: LayerProfile, spec: FusionSpec,
 
 
 def _single_output(node: Node) -> str | None:
-    named = [t.name for t in node.outputs if t.name]
+    outputs = node.outputs
+    if len(outputs) == 1:  # the common case, without a list
+        return outputs[0].name or None
+    named = [t.name for t in outputs if t.name]
     return named[0] if len(named) == 1 else None
 
 
@@ -194,12 +197,13 @@ def _grow(head: LayerProfile, profile: ModelProfile, wiring: _Wiring, spec: Fusi
         position = wiring.sole_consumer(tensor)
         if position is None or position in taken:
             break
-        candidate = layers[position]
-        role = _role(candidate, nodes[position], tensor, previous, chain, spec, wiring,
-                     engine_of)
+        candidate, node = layers[position], nodes[position]
+        output = _single_output(node)
+        role = None if output is None else _role(candidate, node, tensor, previous, chain,
+                                                  spec, wiring, engine_of)
         if role is None:
             break
-        previous, tensor = nodes[position], _single_output(nodes[position])
+        previous, tensor = node, output
         if role == "pass":
             passed.append(position)
             continue
@@ -232,8 +236,9 @@ def _finish(head: LayerProfile, pad: int | None, last: LayerProfile, chain: _Cha
 def _role(layer: LayerProfile, node: Node, tensor: str, previous: Node, chain: _Chain,
           spec: FusionSpec, wiring: _Wiring, engine_of: Callable[[LayerProfile], str]
           ) -> str | None:
-    """"fold", "epilogue", "pass" (a free layer the chain runs through) or None (it stops)."""
-    if (layer.work is None or layer.work.gemms or _single_output(node) is None
+    """"fold", "epilogue", "pass" (a free layer the chain runs through) or None (it stops);
+    ``node`` has a single output (the caller checked)."""
+    if (layer.work is None or layer.work.gemms
             or engine_of(layer) == "host" or not _keeps_size(node, previous)):
         return None
     if layer.work.is_view:  # a view, or a layer the profile already costs as nothing
