@@ -4,10 +4,12 @@ The floor is a fresh interpreter doing ``onnx.load`` + ``onnx.shape_inference.in
 on the same file. Each run starts one candidate and one floor process (the order
 alternates), and records wall seconds, CPU seconds (user + system: steadier than wall
 time on a busy machine) and peak resident memory (``ru_maxrss`` of the child); the
-ratios are medians of the per-pair ratios. Usage:
+ratios are medians of the per-pair ratios. ``--baseline PATH`` adds a third process per
+run, ``profile`` from another source tree (an earlier commit checked out or exported
+there), so before and after are measured in the same turns. Usage:
 
     python3 bench/profile_floor.py MODEL.onnx [MODEL.onnx ...] [--runs 5] [--format json]
-        [--checkout PATH]
+        [--checkout PATH] [--baseline PATH]
 """
 
 from __future__ import annotations
@@ -50,29 +52,39 @@ def main() -> None:
     parser.add_argument("--format", default="table")
     parser.add_argument("--checkout", default=str(HERE),
                         help="the roofgate source tree to run (default: this one)")
+    parser.add_argument("--baseline", default="",
+                        help="another roofgate source tree, run in the same turns (before/after)")
     args = parser.parse_args()
     for model in args.models:
-        path = str(Path(model).resolve())
-        candidate = [sys.executable, "-c", "from gate.cli import main; main()", "profile",
-                     path, "-t", TARGET, "--format", args.format]
-        floor = [sys.executable, "-c", FLOOR, path]
-        time_ratios, cpu_ratios, mem_ratios, rows = [], [], [], []
-        for run in range(args.runs):
-            order = (candidate, floor) if run % 2 == 0 else (floor, candidate)
-            measured = {id(argv): run_once(argv, args.checkout) for argv in order}
-            cand_s, cand_cpu, cand_mib = measured[id(candidate)]
-            floor_s, floor_cpu, floor_mib = measured[id(floor)]
-            time_ratios.append(cand_s / floor_s)
-            cpu_ratios.append(cand_cpu / floor_cpu)
-            mem_ratios.append(cand_mib / floor_mib)
-            rows.append(f"  run {run}: profile {cand_s:.2f} s ({cand_cpu:.2f} s CPU) "
-                        f"{cand_mib:.0f} MiB, floor {floor_s:.2f} s ({floor_cpu:.2f} s CPU) "
-                        f"{floor_mib:.0f} MiB")
-        print(f"{Path(model).name} ({args.format}, {args.runs} pairs, load "
-              f"{os.getloadavg()[0]:.2f}): time {statistics.median(time_ratios):.2f}x, "
-              f"CPU {statistics.median(cpu_ratios):.2f}x, "
-              f"peak memory {statistics.median(mem_ratios):.2f}x")
-        print("\n".join(rows))
+        _measure(str(Path(model).resolve()), args)
+
+
+def _measure(path: str, args: argparse.Namespace) -> None:
+    """One model: every run starts each process once, in a rotating order."""
+    candidate = [sys.executable, "-c", "from gate.cli import main; main()", "profile",
+                 path, "-t", TARGET, "--format", args.format]
+    sides = {"profile": (candidate, args.checkout)}
+    if args.baseline:
+        sides["baseline"] = (list(candidate), args.baseline)
+    sides["floor"] = ([sys.executable, "-c", FLOOR, path], args.checkout)
+    measured: dict[str, list[tuple[float, float, float]]] = {name: [] for name in sides}
+    for run in range(args.runs):
+        names = list(sides)
+        for name in names[run % len(names):] + names[:run % len(names)]:
+            argv, checkout = sides[name]
+            measured[name].append(run_once(argv, checkout))
+    print(f"{Path(path).name} ({args.format}, {args.runs} runs, load "
+          f"{os.getloadavg()[0]:.2f})")
+    floor = measured["floor"]
+    for name, rows in measured.items():
+        wall, cpu, mib = (statistics.median(row[k] for row in rows) for k in range(3))
+        line = f"  {name:8s} {wall:6.2f} s ({cpu:.2f} s CPU) {mib:5.0f} MiB"
+        if name != "floor":
+            ratios = [statistics.median(a[k] / b[k] for a, b in zip(rows, floor))
+                      for k in range(3)]
+            line += (f"   vs floor: time {ratios[0]:.2f}x, CPU {ratios[1]:.2f}x, "
+                     f"peak memory {ratios[2]:.2f}x")
+        print(line)
 
 
 if __name__ == "__main__":
