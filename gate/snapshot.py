@@ -13,8 +13,10 @@ one layer per line. A container holding only plain values (strings, numbers,
 booleans, null) is written on one line, and so is a *row*: an object inside a
 list that holds no list of objects or lists (a layer with its metrics, a
 finding, a layer change with its deltas); every other object has one key per
-line and every other list one item per line. Each one-line value is written by
-the C JSON encoder in one call. The layout is whitespace only: readers parse
+line and every other list one item per line. A row's text is put together from
+memoised pieces (``_row_text``), any other one-line value is written by the C JSON
+encoder in one call: no per-value work in Python but rounding floats and, for rows,
+one step per value. The layout is whitespace only: readers parse
 JSON, so files written with the earlier layout (one key per line down to the
 flat containers) read the same, and changing it needs no version bump.
 
@@ -311,7 +313,8 @@ def _row(value: dict[Any, Any]) -> dict[str, Any] | None:
 
     Such an object in a list is a row: a layer with its metrics, a finding, a layer
     change with its deltas. Keeping each on one line keeps the file diffable (one line
-    per layer) while the C encoder writes nearly all of it.
+    per layer). The general way to write a row (``_row_text`` is the fast one); also
+    the reference it is tested against.
     """
     if set(map(type, value.values())) <= _SCALAR_TYPES:
         return _flat(value)  # type: ignore[no-any-return]
