@@ -119,12 +119,16 @@ def logical_source(node: Node, position: int, source: ParamSource) -> ParamSourc
     return ParamSource((logical,), n * k, bits, source.dtype)
 
 
-def folds(proto: onnx.NodeProto, input_names: Sequence[str],
+def folds(proto: onnx.NodeProto, op_type: str, domain: str, input_names: Sequence[str],
           is_constant: Mapping[str, object]) -> bool:
-    """True when the node computes a constant: deterministic, no body, every input constant."""
-    if proto.domain not in ("", "ai.onnx") or proto.op_type in _NEVER_FOLDED:
+    """True when the node computes a constant: deterministic, no body, every input constant.
+
+    ``op_type``, ``domain`` and ``input_names`` are the node's, read once by the caller
+    (each read of a protobuf field builds a new object; this runs once per node).
+    """
+    if domain not in ("", "ai.onnx") or op_type in _NEVER_FOLDED:
         return False
-    if proto.op_type == "Constant":
+    if op_type == "Constant":
         return True
     present = False
     for name in input_names:

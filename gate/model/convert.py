@@ -37,7 +37,7 @@ from gate.model.constants import (
     small_values,
 )
 from gate.model.graph import Graph, Node, ParamSource, Shape, TensorInfo, stored_as_itself
-from gate.model.order import topological_order
+from gate.model.order import OrderScan
 
 UNKNOWN_DIM = "?"
 MAX_SUBGRAPH_DEPTH = 64
@@ -144,12 +144,13 @@ class _Converter:
             if name not in infos and (name not in initializers
                                       or value.type.tensor_type.HasField("shape")):
                 infos[name] = self._value_info(value)
-        readers = _scan_nodes(proto, infos, consts)
+        scan = OrderScan(proto, self.path)
+        readers = _scan_nodes(proto, infos, consts, scan)
         local_known = {v.name for v in proto.input} | set(initializers)
         outer_infos = None if outer is None else outer["infos"]
-        order = topological_order(
-            proto, lambda name: name in local_known or (outer_infos is not None
-                                                         and name in outer_infos), self.path)
+        order = scan.order(lambda name: name in local_known or (outer_infos is not None
+                                                                 and name in outer_infos))
+        del scan  # its map of every produced name is not needed while the nodes are built
         ctx = {name: _chain(local if outer is None else outer[name].new_child(local))
                for name, local in (("infos", infos), ("sources", sources), ("consts", consts))}
         walk = _Walk(ctx, readers, set())
@@ -212,7 +213,7 @@ class _Converter:
         attributes, subgraphs = (self._attributes(proto_attributes, walk, depth)
                                  if len(proto_attributes) else (_NOTHING, _NOTHING))
         op_type, domain = proto.op_type, proto.domain
-        folded = folds(proto, input_names, sources)
+        folded = folds(proto, op_type, domain, input_names, sources)
         if folded:
             outputs = self._fold(proto, inputs, outputs, walk)
         input_sources = {i: sources[n] for i, n in enumerate(input_names) if n and n in sources}
@@ -234,7 +235,8 @@ class _Converter:
                           if n and n in consts} or _NOTHING,
             param_sources=input_sources or _NOTHING,
             folded=folded,
-            qdq_absorbed=not folded and walk.absorbs_qdq(proto, input_names, output_names),
+            qdq_absorbed=not folded and walk.absorbs_qdq(op_type, domain, input_names,
+                                                         output_names),
             unused_outputs=frozenset(unused) if unused else _NO_POSITIONS,
         )
 
@@ -277,7 +279,7 @@ class _Converter:
 class _Walk:
     """The state of converting one graph's nodes in order: scopes, readers, absorbed Q/DQ pairs."""
 
-    def __init__(self, ctx: dict[str, _Scope], readers: dict[str, set[str]],
+    def __init__(self, ctx: dict[str, _Scope], readers: Mapping[str, frozenset[str]],
                  used_names: set[str]) -> None:
         self.ctx = ctx
         self.readers = readers
@@ -295,18 +297,18 @@ class _Walk:
     def local(self, name: str) -> Any:
         return self.ctx[name].maps[0]
 
-    def absorbs_qdq(self, proto: onnx.NodeProto, input_names: list[str],
+    def absorbs_qdq(self, op_type: str, domain: str, input_names: list[str],
                     output_names: list[str]) -> bool:
         """An activation QuantizeLinear read only by DequantizeLinear nodes, and those nodes."""
-        if proto.domain not in ("", "ai.onnx") or not output_names:
+        if domain not in ("", "ai.onnx") or not output_names:
             return False
-        if proto.op_type == "QuantizeLinear":
-            readers = self.readers.get(output_names[0], set())
+        if op_type == "QuantizeLinear":
+            readers = self.readers.get(output_names[0], frozenset())
             if readers and readers == {"DequantizeLinear"}:
                 self.absorbed_quantized.add(output_names[0])
                 return True
             return False
-        return (proto.op_type == "DequantizeLinear" and bool(input_names)
+        return (op_type == "DequantizeLinear" and bool(input_names)
                 and input_names[0] in self.absorbed_quantized)
 
     def unique_name(self, name: str, op_type: str, index: int) -> str:
@@ -314,14 +316,18 @@ class _Walk:
 
 
 def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
-                consts: dict[str, tuple[int, ...]]) -> dict[str, set[str]]:
+                consts: dict[str, tuple[int, ...]], scan: OrderScan) -> _Readers:
     """One walk of the graph's nodes: every produced name goes in scope (shaped or not),
-    Constant nodes' small integer values into ``consts``; returns the readers: tensor
-    name -> op types of the nodes that read it (graph outputs and names read inside body
-    graphs are read by ``_SUBGRAPH_READER``)."""
-    readers: dict[str, set[str]] = {}
-    for node in proto.node:
-        for name in node.output:
+    Constant nodes' small integer values into ``consts``, the edges into ``scan`` (the
+    topological order); returns the readers: tensor name -> op types of the nodes that
+    read it (graph outputs and names read inside body graphs are read by
+    ``_SUBGRAPH_READER``)."""
+    readers = _Readers()
+    for index, node in enumerate(proto.node):
+        input_names, output_names = list(node.input), list(node.output)
+        scan.read(index, input_names)
+        scan.produce(index, output_names)
+        for name in output_names:
             if name and name not in infos:
                 infos[name] = TensorInfo(name, None, "UNDEFINED")
         domain, op_type = node.domain, node.op_type
@@ -330,13 +336,9 @@ def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
                 _constant_value(node, consts)
         else:
             op_type = f"{domain}.{op_type}"
-        for name in node.input:
+        for name in input_names:
             if name:
-                known = readers.get(name)
-                if known is None:
-                    readers[name] = {op_type}
-                else:
-                    known.add(op_type)
+                readers.add(name, op_type)
         attributes = node.attribute
         for attribute in attributes if len(attributes) else ():
             if attribute.type == AttributeProto.GRAPH:
@@ -347,10 +349,29 @@ def _scan_nodes(proto: onnx.GraphProto, infos: dict[str, TensorInfo],
                 continue
             for body in bodies:
                 for name in _names_read_in(body):
-                    readers.setdefault(name, set()).add(_SUBGRAPH_READER)
+                    readers.add(name, _SUBGRAPH_READER)
     for value in proto.output:
-        readers.setdefault(value.name, set()).add(_SUBGRAPH_READER)
+        readers.add(value.name, _SUBGRAPH_READER)
     return readers
+
+
+class _Readers(dict[str, frozenset[str]]):
+    """Tensor name -> the op types of the nodes that read it.
+
+    The sets are shared: one frozenset per distinct combination (a set per tensor was
+    the largest transient allocation while converting a large graph).
+    """
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.distinct: dict[frozenset[str], frozenset[str]] = {}
+
+    def add(self, name: str, op_type: str) -> None:
+        known = self.get(name)
+        if known is not None and op_type in known:
+            return
+        types = frozenset({op_type}) if known is None else known | {op_type}
+        self[name] = self.distinct.setdefault(types, types)
 
 
 def _names_read_in(graph: onnx.GraphProto) -> set[str]:

@@ -117,6 +117,7 @@ def _load(text_path: str, dims: Mapping[str, int] | None,
         warnings.append(inference_warning)
     else:
         proto = refine_shapes(proto, frozenset(declared), _infer, text_path)
+    release_freed_memory()  # the file as parsed is gone: its pages back before conversion
     graph, more_warnings = convert_model(proto, text_path, frozenset(declared))
     warnings.extend(more_warnings)
     warnings.extend(sizing_notes(graph))

@@ -30,6 +30,56 @@ def _producers(proto: onnx.GraphProto, path: str) -> dict[str, int]:
     return producer
 
 
+class OrderScan:
+    """What ``topological_order`` needs, gathered while another walk reads the nodes.
+
+    Why: each read of a node's inputs or outputs from protobuf builds new strings; the
+    converter's one walk feeds this instead of a second walk here. For every node in
+    file order call ``read`` (its inputs), then ``produce`` (its outputs); ``order``
+    then decides exactly as ``topological_order`` does, with the same errors.
+    """
+
+    def __init__(self, proto: onnx.GraphProto, path: str) -> None:
+        self.proto = proto
+        self.path = path
+        self.producer: dict[str, int] = {}
+        self.not_yet: list[tuple[int, str]] = []  # (reader, name) no earlier node produced
+
+    def read(self, index: int, names: list[str]) -> None:
+        producer = self.producer
+        for name in names:
+            if name and name not in producer:
+                self.not_yet.append((index, name))
+
+    def produce(self, index: int, names: list[str]) -> None:
+        """Refuses a tensor two nodes produce (as ``_producers``, at the same first clash)."""
+        for name in names:
+            if not name:
+                continue
+            first = self.producer.setdefault(name, index)
+            if first != index:
+                raise InputError(f"tensor '{name}' is produced by both "
+                                 f"{_label(self.proto.node[first], first)} and "
+                                 f"{_label(self.proto.node[index], index)}; {_REMEDY}", self.path)
+
+    def order(self, known: Callable[[str], bool]) -> list[int]:
+        """``topological_order``'s result: the first dangling read (in node and input
+        order) is refused; a read of a later node's output sorts the graph."""
+        in_order = True
+        for index, name in self.not_yet:
+            source = self.producer.get(name)
+            if source is None:
+                if not known(name):
+                    raise InputError(f"{_label(self.proto.node[index], index)} reads tensor "
+                                     f"'{name}' that no node, graph input or initializer "
+                                     f"defines; {_REMEDY}", self.path)
+            elif source >= index:
+                in_order = False
+        if in_order:
+            return list(range(len(self.proto.node)))
+        return _kahn(self.proto, self.producer, self.path)
+
+
 def topological_order(proto: onnx.GraphProto, known: Callable[[str], bool], path: str) -> list[int]:
     """Node indices in an order where every input is produced before it is used.
 

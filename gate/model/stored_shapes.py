@@ -34,14 +34,18 @@ Place = tuple[str, str]
 
 
 def infer_checked(proto: onnx.ModelProto, path: str, infer: Infer) -> tuple[onnx.ModelProto, str]:
-    """Shape inference from the inputs alone, checked against every shape the file stores."""
+    """Shape inference from the inputs alone, checked against every shape the file stores.
+
+    ``proto`` itself is stripped of its stored shapes for the first inference, and put
+    back as it was when that inference fails. Why not a stripped copy: a copy of a
+    100k-node model is tens of megabytes, at the moment memory peaks.
+    """
     stored, labels = _stored(proto.graph)
-    bare = onnx.ModelProto()
-    bare.CopyFrom(proto)
-    for _key, _label, graph in _scopes(bare.graph):
-        _strip(graph)
-    inferred, warning = infer(bare)
+    removed = [(graph, _strip(graph)) for _key, _label, graph in list(_scopes(proto.graph))]
+    inferred, warning = infer(proto)
     if warning:  # inference failed: the stored shapes are all there is
+        for graph, (value_info, output_types) in removed:
+            _unstrip(graph, value_info, output_types)
         return infer(proto)
     derived = _derived(inferred.graph, stored)
     unverified = [place for place, value in stored.items()
@@ -80,8 +84,12 @@ def _stored(graph: onnx.GraphProto) -> tuple[dict[Place, onnx.ValueInfoProto], d
     labels: dict[str, str] = {}
     for key, label, current in _scopes(graph):
         labels[key] = label
-        for value in (*current.value_info, *current.output):
-            values[(key, value.name)] = value
+        for value in current.value_info:
+            values[(key, value.name)] = value  # stays readable when stripped from the graph
+        for value in current.output:
+            kept = onnx.ValueInfoProto()  # a copy: stripping clears the output's shape in place
+            kept.CopyFrom(value)
+            values[(key, value.name)] = kept
     return values, labels
 
 
@@ -107,12 +115,28 @@ def _derived(graph: onnx.GraphProto,
     return found
 
 
-def _strip(graph: onnx.GraphProto) -> None:
-    """Forget the stored intermediate shapes and the output shapes of one scope."""
+def _strip(graph: onnx.GraphProto) -> tuple[list[onnx.ValueInfoProto], list[onnx.TypeProto]]:
+    """Forget the stored intermediate shapes and the output shapes of one scope; returns
+    what ``_unstrip`` needs to put them back (the value_info, a copy of each output type)."""
+    value_info = list(graph.value_info)
+    output_types = []
+    for output in graph.output:
+        output_type = onnx.TypeProto()
+        output_type.CopyFrom(output.type)
+        output_types.append(output_type)
     del graph.value_info[:]
     for output in graph.output:
         if output.type.HasField("tensor_type"):
             output.type.tensor_type.ClearField("shape")
+    return value_info, output_types
+
+
+def _unstrip(graph: onnx.GraphProto, value_info: list[onnx.ValueInfoProto],
+             output_types: list[onnx.TypeProto]) -> None:
+    """The scope exactly as before ``_strip``."""
+    graph.value_info.extend(value_info)
+    for output, output_type in zip(graph.output, output_types):
+        output.type.CopyFrom(output_type)
 
 
 def _same_or_unknown(stored: onnx.ValueInfoProto, derived: onnx.ValueInfoProto | None,
