@@ -17,10 +17,10 @@ from typing import Any
 
 from gate import __version__
 from gate.errors import InputError
+from gate.jsontext import cyclic_gc_paused
 from gate.judge import combine_results
 from gate.outfile import open_output
 from gate.result import GateResult, result_from_dict, result_to_dict
-from gate.snapshot import cyclic_gc_paused
 
 SHARD_FORMAT = "roofgate-audit-shard"
 SHARD_VERSION = 1  # history: 1 = first version (shard index/count, model-set digest, result)

@@ -1,4 +1,4 @@
-"""The deterministic JSON writer (``gate.snapshot.canonical_json``): content, rounding, layout.
+"""The deterministic JSON writer (``gate.jsontext.canonical_json``): content, rounding, layout.
 
 The reference for content is the standard library: ``json.dumps`` with indent,
 sorted keys and ASCII escapes of the value with every float rounded here to 12
@@ -20,10 +20,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from gate import snapshot
+from gate import jsontext
 from gate.errors import InputError, InternalError
+from gate.jsontext import canonical_json, canonical_json_pieces
 from gate.report.jsonout import loads_result, render, result_document
-from gate.snapshot import canonical_json, canonical_json_pieces, loads_snapshot, snapshot_to_dict
+from gate.snapshot import loads_snapshot, snapshot_to_dict
 from tests.recordkit import HOSTILE_NAME, demo_result, layer, run
 
 
@@ -31,9 +32,9 @@ from tests.recordkit import HOSTILE_NAME, demo_result, layer, run
 def _cold_memos(monkeypatch) -> None:
     """Each test starts with empty memos, so a value written by an earlier test cannot hide
     a wrong first rounding (the edge cases also write twice: the warm memo must agree)."""
-    monkeypatch.setattr(snapshot, "_ROUNDED", {})
-    monkeypatch.setattr(snapshot, "_FLOAT_TEXTS", {})
-    monkeypatch.setattr(snapshot, "_KEY_TEXTS", {})
+    monkeypatch.setattr(jsontext, "_ROUNDED", {})
+    monkeypatch.setattr(jsontext, "_FLOAT_TEXTS", {})
+    monkeypatch.setattr(jsontext, "_KEY_TEXTS", {})
 
 
 def _reference_rounded(value: Any) -> Any:
@@ -194,7 +195,7 @@ def test_unusual_types_are_written_as_the_plain_ones() -> None:
 @pytest.mark.parametrize("piece_chars", [1, 64, 1 << 20])
 def test_pieces_end_at_line_ends_and_defuse_markers_across_them(monkeypatch,
                                                                  piece_chars) -> None:
-    monkeypatch.setattr(snapshot, "PIECE_CHARS", piece_chars)
+    monkeypatch.setattr(jsontext, "PIECE_CHARS", piece_chars)
     value = {"t": [{"name": f"##[error] layer {i} ##vso[x]", "v": i / 7} for i in range(50)]}
     pieces = list(canonical_json_pieces(value))
     assert len(pieces) > 10 or piece_chars > 10_000
@@ -205,11 +206,11 @@ def test_pieces_end_at_line_ends_and_defuse_markers_across_them(monkeypatch,
 
 
 def test_the_rounding_memo_stays_bounded_and_exact(monkeypatch) -> None:
-    monkeypatch.setattr(snapshot, "_ROUNDED", {})
-    monkeypatch.setattr(snapshot, "_ROUNDED_MAX", 8)
+    monkeypatch.setattr(jsontext, "_ROUNDED", {})
+    monkeypatch.setattr(jsontext, "_ROUNDED_MAX", 8)
     values = [i / 7 for i in range(1, 40)]
     first = json.loads(canonical_json({"v": values}))["v"]
-    assert len(snapshot._ROUNDED) <= 8
+    assert len(jsontext._ROUNDED) <= 8
     assert json.loads(canonical_json({"v": values}))["v"] == first == [
         float(f"{v:.12g}") for v in values]
 
@@ -271,12 +272,12 @@ _rows = st.recursive(
 @settings(max_examples=400, deadline=None)
 @given(_rows)
 def test_a_rows_text_is_what_the_general_way_writes(row) -> None:
-    # Rows are written from memoised pieces (snapshot._row_text); the general way rounds
+    # Rows are written from memoised pieces (jsontext._row_text); the general way rounds
     # a copy and hands it to the C encoder. Same bytes, and the same rows count as rows.
-    general = snapshot._row(row)
-    text = snapshot._row_text(row)
-    assert text is not snapshot._UNUSUAL  # plain types only here
-    assert text == (None if general is None else snapshot._encode(general))
+    general = jsontext._row(row)
+    text = jsontext._row_text(row)
+    assert text is not jsontext._UNUSUAL  # plain types only here
+    assert text == (None if general is None else jsontext._encode(general))
 
 
 def test_a_row_holding_another_type_goes_the_general_way() -> None:
@@ -284,18 +285,18 @@ def test_a_row_holding_another_type_goes_the_general_way() -> None:
         pass
 
     rows = {"t": [{"r": Ratio(1 / 3), "m": {"x": -0.0}}, {"r": 0.5, "m": {"x": 1e-300}}]}
-    assert snapshot._row_text(rows["t"][0]) is snapshot._UNUSUAL
+    assert jsontext._row_text(rows["t"][0]) is jsontext._UNUSUAL
     lines = canonical_json(rows).splitlines()
     assert lines[2] == '    {"m": {"x": 0.0}, "r": 0.333333333333},'
     assert lines[3] == '    {"m": {"x": 1e-300}, "r": 0.5}'
 
 
 def test_the_text_memos_stay_bounded(monkeypatch) -> None:
-    monkeypatch.setattr(snapshot, "_FLOAT_TEXTS", {})
-    monkeypatch.setattr(snapshot, "_KEY_TEXTS", {})
-    monkeypatch.setattr(snapshot, "_TEXT_MEMO_MAX", 8)
+    monkeypatch.setattr(jsontext, "_FLOAT_TEXTS", {})
+    monkeypatch.setattr(jsontext, "_KEY_TEXTS", {})
+    monkeypatch.setattr(jsontext, "_TEXT_MEMO_MAX", 8)
     rows = {"t": [{f"k{i}": i / 7} for i in range(1, 40)]}
     first = canonical_json(rows)
-    assert len(snapshot._FLOAT_TEXTS) <= 8 and len(snapshot._KEY_TEXTS) <= 8
+    assert len(jsontext._FLOAT_TEXTS) <= 8 and len(jsontext._KEY_TEXTS) <= 8
     assert canonical_json(rows) == first
     assert json.loads(first) == _reference_rounded(rows)

@@ -154,9 +154,9 @@ def test_a_version_1_snapshot_still_reads_and_unknown_metrics_round_trip(tmp_pat
 
 def test_a_snapshot_streams_to_the_file_and_one_over_the_limit_leaves_nothing(
         tmp_path, monkeypatch, capsys) -> None:
-    from gate import snapshot
+    from gate import jsontext, snapshot
 
-    monkeypatch.setattr(snapshot, "PIECE_CHARS", 100)  # many pieces
+    monkeypatch.setattr(jsontext, "PIECE_CHARS", 100)  # many pieces
     path = tmp_path / "base.json"
     write_snapshot(_runs(), str(path))
     assert path.read_text(encoding="utf-8") == dumps_snapshot(_runs())

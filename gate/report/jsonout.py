@@ -1,7 +1,7 @@
 """JSON results for machines: the whole ``GateResult``, versioned.
 
 The document is ``gate.result.result_to_dict`` wrapped with a format name and
-version, written deterministically by ``gate.snapshot.canonical_json`` as baseline
+version, written deterministically by ``gate.jsontext.canonical_json`` as baseline
 snapshots are (sorted keys, floats rounded to 12 significant digits, indent 2 with
 one layer per line: every layer, layer change and finding on one line), so the
 same result always gives the same bytes. The reporter streams the text in pieces
@@ -38,13 +38,9 @@ from dataclasses import asdict
 from typing import Any, TextIO
 
 from gate.errors import InputError
+from gate.jsontext import canonical_json, canonical_json_pieces, cyclic_gc_paused
 from gate.result import GateResult, blocking_sentences, result_from_dict, result_to_dict
-from gate.snapshot import (
-    canonical_json,
-    canonical_json_pieces,
-    cyclic_gc_paused,
-    load_versioned_json,
-)
+from gate.snapshot import load_versioned_json
 
 RESULT_FORMAT = "roofgate-result"
 RESULT_VERSION = 3
