@@ -484,12 +484,7 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
     params = _layer_params(node)
     charge = ledger.charge([(source, counting.param_bits(tensor, source, bias))
                             for tensor, source, bias in params.values()])
-    inputs, sources, param_inputs = node.inputs, node.param_sources, node.param_inputs
-    activations = {t.name: t for i, t in enumerate(inputs)
-                   if t is not None and i not in sources and i not in param_inputs
-                   and t.name not in params}
-    unused = node.unused_outputs
-    outputs = [t for i, t in enumerate(node.outputs) if t.name and i not in unused]
+    activations, outputs, types = _operands(node, params)
     work, reason = _work(node, unbound)
     input_bytes = _sum_bytes(activations.values(), counting)
     output_bytes = _sum_bytes(outputs, counting)
@@ -500,19 +495,16 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
         work = requantized(work)
     if work is not None:
         work = shared(work)
-    input_shapes = tuple([None if t is None else t.shape for t in inputs])
-    input_dtypes = tuple(["" if t is None else t.dtype for t in inputs])
-    output_shapes = tuple([t.shape for t in node.outputs])
-    output_dtypes = tuple([t.dtype for t in node.outputs])
+    input_shapes, input_dtypes, output_shapes, output_dtypes = types
     return LayerProfile(
         index=node.index,
         name=node.name,
         op_type=node.op_type,
         domain=node.domain,
-        input_shapes=shared(input_shapes),
-        input_dtypes=shared(input_dtypes),
-        output_shapes=shared(output_shapes),
-        output_dtypes=shared(output_dtypes),
+        input_shapes=shared(tuple(input_shapes)),
+        input_dtypes=shared(tuple(input_dtypes)),
+        output_shapes=shared(tuple(output_shapes)),
+        output_dtypes=shared(tuple(output_dtypes)),
         param_names=charge.names,
         param_count=charge.count,
         param_bytes=charge.nbytes,
@@ -526,6 +518,38 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
         precision=precision,
         param_new_bytes=charge.new_bytes,
     )
+
+
+_Types = tuple[list[Shape | None], list[str], list[Shape | None], list[str]]
+
+
+def _operands(node: Node, params: dict[str, _Param]
+              ) -> tuple[dict[str, TensorInfo], list[TensorInfo], _Types]:
+    """The layer's activation inputs by name (parameters and metadata left out), its used
+    outputs, and the shapes and dtypes of every input and output (one pass over each)."""
+    sources, param_inputs = node.param_sources, node.param_inputs
+    activations: dict[str, TensorInfo] = {}
+    input_shapes: list[Shape | None] = []
+    input_dtypes: list[str] = []
+    for i, tensor in enumerate(node.inputs):
+        if tensor is None:
+            input_shapes.append(None)
+            input_dtypes.append("")
+            continue
+        input_shapes.append(tensor.shape)
+        input_dtypes.append(tensor.dtype)
+        if i not in sources and i not in param_inputs and tensor.name not in params:
+            activations[tensor.name] = tensor
+    unused = node.unused_outputs
+    outputs: list[TensorInfo] = []
+    output_shapes: list[Shape | None] = []
+    output_dtypes: list[str] = []
+    for i, tensor in enumerate(node.outputs):
+        output_shapes.append(tensor.shape)
+        output_dtypes.append(tensor.dtype)
+        if tensor.name and i not in unused:
+            outputs.append(tensor)
+    return activations, outputs, (input_shapes, input_dtypes, output_shapes, output_dtypes)
 
 
 def _requantizes(node: Node, work: OpWork, precision: str, outputs: list[TensorInfo],
