@@ -61,12 +61,15 @@ class TensorInfo:
     @property
     def is_static(self) -> bool:
         """True when every dim is a known non-negative int."""
-        return self.shape is not None and static_numel(self.shape) is not None
+        return self.numel is not None
 
     @property
     def numel(self) -> int | None:
         """Element count, or None if any dim is unknown or symbolic."""
-        return None if self.shape is None else static_numel(self.shape)
+        shape = self.shape
+        if shape.__class__ is tuple:  # asked for every tensor of every layer: no extra call
+            return _static_numel(shape)
+        return None if shape is None else static_numel(shape)
 
     @property
     def bits_per_element(self) -> int:

@@ -40,8 +40,9 @@ def infer_checked(proto: onnx.ModelProto, path: str, infer: Infer) -> tuple[onnx
     back as it was when that inference fails. Why not a stripped copy: a copy of a
     100k-node model is tens of megabytes, at the moment memory peaks.
     """
-    stored, labels = _stored(proto.graph)
-    removed = [(graph, _strip(graph)) for _key, _label, graph in list(_scopes(proto.graph))]
+    scopes = list(_scopes(proto.graph))  # one walk over the nodes for both uses
+    stored, labels = _stored(scopes)
+    removed = [(graph, _strip(graph)) for _key, _label, graph in scopes]
     inferred, warning = infer(proto)
     if warning:  # inference failed: the stored shapes are all there is
         for graph, (value_info, output_types) in removed:
@@ -78,11 +79,12 @@ def _scopes(graph: onnx.GraphProto) -> Iterator[tuple[str, str, onnx.GraphProto]
                                   sub))
 
 
-def _stored(graph: onnx.GraphProto) -> tuple[dict[Place, onnx.ValueInfoProto], dict[str, str]]:
+def _stored(scopes: list[tuple[str, str, onnx.GraphProto]]
+            ) -> tuple[dict[Place, onnx.ValueInfoProto], dict[str, str]]:
     """Every value_info and output of every scope by place, and each scope's words."""
     values: dict[Place, onnx.ValueInfoProto] = {}
     labels: dict[str, str] = {}
-    for key, label, current in _scopes(graph):
+    for key, label, current in scopes:
         labels[key] = label
         for value in current.value_info:
             values[(key, value.name)] = value  # stays readable when stripped from the graph
@@ -102,7 +104,9 @@ def _derived(graph: onnx.GraphProto,
     for key, name in places:
         wanted.setdefault(key, set()).add(name)
     found: dict[Place, onnx.ValueInfoProto] = {}
-    for key, _label, current in _scopes(graph) if wanted else ():
+    # the main graph alone (the usual case) needs no walk over the nodes for subgraphs
+    scopes = [("", "", graph)] if wanted.keys() <= {""} else _scopes(graph)
+    for key, _label, current in scopes if wanted else ():
         names = wanted.get(key)
         if not names:
             continue
