@@ -30,6 +30,7 @@ from typing import TYPE_CHECKING, TextIO
 
 from gate.costmodel import ModelCost, cost_model
 from gate.errors import InputError, InternalError, RoofgateError, one_safe_line
+from gate.gcpause import cyclic_gc_paused
 from gate.model.loader import LoadedModel, load_model
 from gate.profile import ModelProfile, profile_model
 from gate.records import RunRecord, canonical_run, with_unknown_totals
@@ -190,13 +191,15 @@ def analyse_job(job: Job) -> JobOutcome:
         return JobOutcome(job.result_key, unread=str(exc))
     try:
         targets = [load_target(name) for name in job.targets]
-        runs = analyse(file, targets, dims=dict(job.dims), precision=job.precision,
-                       shown_path=job.model, shapes=dict(job.shapes), data=data)
+        with cyclic_gc_paused():  # millions of long-lived objects, no cycles (gate/gcpause.py)
+            runs = [canonical_run(r) for r in analyse(
+                file, targets, dims=dict(job.dims), precision=job.precision,
+                shown_path=job.model, shapes=dict(job.shapes), data=data)]
     except InternalError:
         raise
     except RoofgateError as exc:
         return JobOutcome(job.result_key, error=model_error_text(exc, job.model, file))
-    return JobOutcome(job.result_key, runs=tuple(canonical_run(r) for r in runs))
+    return JobOutcome(job.result_key, runs=tuple(runs))
 
 
 # --- models read from git -------------------------------------------------------------
@@ -299,7 +302,8 @@ def run_jobs(jobs: Sequence[Job], workers: int,
         if progress:
             progress(len(out), total, model)
         if done:
-            done(outcome.key, out)
+            with cyclic_gc_paused():  # judging a large model: the same reason
+                done(outcome.key, out)
 
     if workers <= 1 or total <= 1:
         for job in jobs:

@@ -17,7 +17,7 @@ from typing import Any
 
 from gate import __version__
 from gate.errors import InputError
-from gate.jsontext import cyclic_gc_paused
+from gate.gcpause import cyclic_gc_paused
 from gate.judge import combine_results
 from gate.outfile import open_output
 from gate.result import GateResult, result_from_dict, result_to_dict

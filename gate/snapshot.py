@@ -38,7 +38,8 @@ from functools import partial
 from typing import Any, TextIO
 
 from gate.errors import InputError
-from gate.jsontext import canonical_json, canonical_json_pieces, cyclic_gc_paused
+from gate.gcpause import cyclic_gc_paused
+from gate.jsontext import canonical_json, canonical_json_pieces
 from gate.outfile import write_files, write_text
 from gate.records import RunRecord, run_from_dict, run_to_dict
 

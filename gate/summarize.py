@@ -119,6 +119,7 @@ _LAYER_METRIC_READERS: dict[str, Callable[[LayerProfile, LayerCost], Metric]] = 
     **{key: _energy_part(part) for key, part in zip(_ENERGY_KEYS, _ENERGY_PARTS)},
 }
 _LAYER_METRIC_NAMES = tuple(_LAYER_METRIC_READERS)
+_ENERGY_FIELDS = tuple(zip(_ENERGY_KEYS, _ENERGY_PARTS))
 
 
 class LayerMetrics(Mapping[str, Metric]):
@@ -150,9 +151,30 @@ class LayerMetrics(Mapping[str, Metric]):
         return name in _LAYER_METRIC_READERS
 
     def as_dict(self) -> dict[str, Metric]:
-        """Every metric, read at once into the dict this view stands for."""
+        """Every metric, read at once into the dict this view stands for.
+
+        Spelled out rather than a call per reader: building these dicts (once per layer
+        and side for records sent between processes, and again for JSON) was a tenth of
+        a large check. ``tests/test_layer_metrics.py`` pins it to the readers above.
+        """
         layer, cost = self._layer, self._cost
-        return {name: read(layer, cost) for name, read in _LAYER_METRIC_READERS.items()}
+        energy = cost.energy
+        values: dict[str, Metric] = {
+            "macs": layer.macs, "flops": layer.flops, "param_count": layer.param_count,
+            "param_bytes": layer.param_bytes, "input_bytes": layer.input_bytes,
+            "output_bytes": layer.output_bytes,
+            "arithmetic_intensity": layer.arithmetic_intensity,
+            "param_reuse": layer.param_reuse, "cycles": cost.cycles,
+            "utilization": cost.utilization, "compute_s": cost.compute_s,
+            "memory_s": cost.memory_s, "overhead_s": cost.overhead_s,
+            "latency_s": cost.latency_s, "param_dram_bytes": cost.param_dram_bytes,
+            "act_dram_bytes": cost.act_dram_bytes,
+            "achieved_flops_per_s": _achieved(layer.flops, cost.latency_s),
+            "energy_j": None if energy is None else energy.total_j,
+        }
+        for key, part in _ENERGY_FIELDS:
+            values[key] = None if energy is None else getattr(energy, part)
+        return values
 
     def items(self) -> ItemsView[str, Metric]:
         return self.as_dict().items()  # one pass, not a lookup per key (JSON writes them all)

@@ -58,6 +58,7 @@ def test_metrics_view_is_the_dict_it_replaced(analysed) -> None:  # type: ignore
         assert isinstance(view, LayerMetrics)
         assert list(view) == list(expected) and len(view) == len(expected)
         assert [view[name] for name in view] == list(expected.values())
+        assert list(view.as_dict().items()) == list(expected.items())  # spelled out alike
         assert list(view.items()) == list(expected.items())
         assert view == expected and expected == view
         assert record.metric("latency_s") == expected["latency_s"]

@@ -8,9 +8,6 @@ documents the JSON and CSV field names.
 
 from __future__ import annotations
 
-import gc
-from collections.abc import Iterator
-from contextlib import contextmanager
 from typing import Any
 
 import click
@@ -24,6 +21,7 @@ from gate.cli.common import (
     target_option,
 )
 from gate.errors import InputError
+from gate.gcpause import cyclic_gc_paused
 from gate.report.text import one_line, term_safe
 
 
@@ -60,7 +58,7 @@ def profile(model: str, fmt: str, no_fusion: bool, **kwargs: Any) -> None:
     """
     if not model.strip():
         raise InputError("empty model path; pass the .onnx file to profile")
-    with _no_cyclic_gc():
+    with cyclic_gc_paused():  # the analysis and its table: no cycles worth collecting
         _profile(model, fmt, no_fusion, kwargs)
 
 
@@ -88,18 +86,3 @@ def _profile(model: str, fmt: str, no_fusion: bool, kwargs: dict[str, Any]) -> N
         click.echo(chunk, nl=False)
 
 
-@contextmanager
-def _no_cyclic_gc() -> Iterator[None]:
-    """Cyclic garbage collection off while one model is analysed and rendered.
-
-    Why: the analysis allocates millions of small objects that live until the
-    output is written, and each collection walks them all (14% of a 100k-node
-    profile); they hold no reference cycles worth collecting early. Restored after.
-    """
-    was_enabled = gc.isenabled()
-    gc.disable()
-    try:
-        yield
-    finally:
-        if was_enabled:
-            gc.enable()

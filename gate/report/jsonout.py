@@ -38,7 +38,8 @@ from dataclasses import asdict
 from typing import Any, TextIO
 
 from gate.errors import InputError
-from gate.jsontext import canonical_json, canonical_json_pieces, cyclic_gc_paused
+from gate.gcpause import cyclic_gc_paused
+from gate.jsontext import canonical_json, canonical_json_pieces
 from gate.result import GateResult, blocking_sentences, result_from_dict, result_to_dict
 from gate.snapshot import load_versioned_json
 
