@@ -181,7 +181,7 @@ def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:
         "params_fit": layer.params_fit,
         "activations_fit": layer.activations_fit,
         "precision": layer.precision,
-        "metrics": dict(layer.metrics.items()),  # every JSON writer sorts keys itself
+        "metrics": dict(sorted(layer.metrics.items())),
         "fused_into": layer.fused_into,
         "fused_ops": list(layer.fused_ops),
     }
