@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, ItemsView, Iterator, Mapping, ValuesView
 from functools import lru_cache
+from operator import attrgetter
 
 from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
 from gate.model.graph import Shape
@@ -88,38 +89,41 @@ def _layer_record(layer: LayerProfile, cost: LayerCost) -> LayerRecord:
     )
 
 
-def _energy_part(part: str) -> Callable[[LayerProfile, LayerCost], Metric]:
-    """The reader of one energy part (an ``EnergyBreakdown`` field, as ``as_dict`` names it)."""
-    def read(_layer: LayerProfile, cost: LayerCost) -> Metric:
-        energy = cost.energy
-        return None if energy is None else getattr(energy, part)
-    return read
+# The layer metrics, in record order: read from the layer's profile, from its cost, then
+# derived. One list of names serves both a single lookup and the whole dict.
+_FROM_PROFILE = ("macs", "flops", "param_count", "param_bytes", "input_bytes", "output_bytes",
+                 "arithmetic_intensity", "param_reuse")
+_FROM_COST = ("cycles", "utilization", "compute_s", "memory_s", "overhead_s", "latency_s",
+              "param_dram_bytes", "act_dram_bytes")
+_read_profile = attrgetter(*_FROM_PROFILE)  # a tuple of every field in one C call
+_read_cost = attrgetter(*_FROM_COST)
+_read_energy = attrgetter(*_ENERGY_PARTS)
+_NO_ENERGY = (None,) * len(_ENERGY_PARTS)
 
 
-# Each layer metric, in record order, read from the layer's profile and its cost.
-_LAYER_METRIC_READERS: dict[str, Callable[[LayerProfile, LayerCost], Metric]] = {
-    "macs": lambda layer, cost: layer.macs,
-    "flops": lambda layer, cost: layer.flops,
-    "param_count": lambda layer, cost: layer.param_count,
-    "param_bytes": lambda layer, cost: layer.param_bytes,
-    "input_bytes": lambda layer, cost: layer.input_bytes,
-    "output_bytes": lambda layer, cost: layer.output_bytes,
-    "arithmetic_intensity": lambda layer, cost: layer.arithmetic_intensity,
-    "param_reuse": lambda layer, cost: layer.param_reuse,
-    "cycles": lambda layer, cost: cost.cycles,
-    "utilization": lambda layer, cost: cost.utilization,
-    "compute_s": lambda layer, cost: cost.compute_s,
-    "memory_s": lambda layer, cost: cost.memory_s,
-    "overhead_s": lambda layer, cost: cost.overhead_s,
-    "latency_s": lambda layer, cost: cost.latency_s,
-    "param_dram_bytes": lambda layer, cost: cost.param_dram_bytes,
-    "act_dram_bytes": lambda layer, cost: cost.act_dram_bytes,
-    "achieved_flops_per_s": lambda layer, cost: _achieved(layer.flops, cost.latency_s),
-    "energy_j": lambda layer, cost: None if cost.energy is None else cost.energy.total_j,
-    **{key: _energy_part(part) for key, part in zip(_ENERGY_KEYS, _ENERGY_PARTS)},
-}
-_LAYER_METRIC_NAMES = tuple(_LAYER_METRIC_READERS)
-_ENERGY_FIELDS = tuple(zip(_ENERGY_KEYS, _ENERGY_PARTS))
+def _derived(layer: LayerProfile, cost: LayerCost) -> tuple[Metric, ...]:
+    """The metrics after the read ones, in record order: achieved FLOP/s, energy and its parts."""
+    energy = cost.energy
+    parts = _NO_ENERGY if energy is None else _read_energy(energy)
+    return (_achieved(layer.flops, cost.latency_s),
+            None if energy is None else energy.total_j, *parts)
+
+
+_DERIVED = ("achieved_flops_per_s", "energy_j", *_ENERGY_KEYS)
+_LAYER_METRIC_NAMES = (*_FROM_PROFILE, *_FROM_COST, *_DERIVED)
+
+
+def _single(name: str) -> Callable[[LayerProfile, LayerCost], Metric]:
+    """The reader of one metric (a record's ``metric(name)``), from the lists above."""
+    if name in _FROM_PROFILE:
+        return lambda layer, cost, read=attrgetter(name): read(layer)  # type: ignore[misc]
+    if name in _FROM_COST:
+        return lambda layer, cost, read=attrgetter(name): read(cost)  # type: ignore[misc]
+    index = _DERIVED.index(name)
+    return lambda layer, cost: _derived(layer, cost)[index]
+
+
+_LAYER_METRIC_READERS = {name: _single(name) for name in _LAYER_METRIC_NAMES}
 
 
 class LayerMetrics(Mapping[str, Metric]):
@@ -151,30 +155,12 @@ class LayerMetrics(Mapping[str, Metric]):
         return name in _LAYER_METRIC_READERS
 
     def as_dict(self) -> dict[str, Metric]:
-        """Every metric, read at once into the dict this view stands for.
-
-        Spelled out rather than a call per reader: building these dicts (once per layer
-        and side for records sent between processes, and again for JSON) was a tenth of
-        a large check. ``tests/test_layer_metrics.py`` pins it to the readers above.
-        """
+        """Every metric, read at once into the dict this view stands for (three C-level
+        reads, not a call per metric: these dicts are built for every layer and side
+        sent between processes and written as JSON)."""
         layer, cost = self._layer, self._cost
-        energy = cost.energy
-        values: dict[str, Metric] = {
-            "macs": layer.macs, "flops": layer.flops, "param_count": layer.param_count,
-            "param_bytes": layer.param_bytes, "input_bytes": layer.input_bytes,
-            "output_bytes": layer.output_bytes,
-            "arithmetic_intensity": layer.arithmetic_intensity,
-            "param_reuse": layer.param_reuse, "cycles": cost.cycles,
-            "utilization": cost.utilization, "compute_s": cost.compute_s,
-            "memory_s": cost.memory_s, "overhead_s": cost.overhead_s,
-            "latency_s": cost.latency_s, "param_dram_bytes": cost.param_dram_bytes,
-            "act_dram_bytes": cost.act_dram_bytes,
-            "achieved_flops_per_s": _achieved(layer.flops, cost.latency_s),
-            "energy_j": None if energy is None else energy.total_j,
-        }
-        for key, part in _ENERGY_FIELDS:
-            values[key] = None if energy is None else getattr(energy, part)
-        return values
+        return dict(zip(_LAYER_METRIC_NAMES,
+                        (*_read_profile(layer), *_read_cost(cost), *_derived(layer, cost))))
 
     def items(self) -> ItemsView[str, Metric]:
         return self.as_dict().items()  # one pass, not a lookup per key (JSON writes them all)

@@ -69,6 +69,18 @@ def test_metrics_view_is_the_dict_it_replaced(analysed) -> None:  # type: ignore
     assert run.layers[0].metrics != {**_expected(profile.layers[0], cost.layers[0]), "macs": -1}
 
 
+def test_a_layer_without_energy_reads_none_for_every_energy_metric(analysed) -> None:  # type: ignore[no-untyped-def]
+    from dataclasses import replace
+
+    profile, cost, _run = analysed
+    layer, layer_cost = profile.layers[0], replace(cost.layers[0], energy=None)
+    view = LayerMetrics(layer, layer_cost)
+    expected = _expected(layer, layer_cost)
+    assert list(view.as_dict().items()) == list(expected.items())
+    assert [view[name] for name in view] == list(expected.values())
+    assert view["energy_j"] is None and view["energy_noc_j"] is None
+
+
 def test_canonical_records_hold_plain_dicts(analysed) -> None:  # type: ignore[no-untyped-def]
     _profile, _cost, run = analysed
     canonical = canonical_run(run)
