@@ -18,6 +18,7 @@ loader parses the file as it is, where protobuf reports the problem.
 from __future__ import annotations
 
 import mmap
+from collections.abc import Callable
 
 from gate.model.constants import CONST_VALUE_LIMIT
 
@@ -102,17 +103,43 @@ def _field(view: memoryview, pos: int, end: int) -> tuple[int, int, int, int, in
 
 
 def _model(view: memoryview) -> bytes | None:
+    return _rewritten(view, 0, len(view), _MODEL_GRAPH, _graph)
+
+
+def _graph(view: memoryview, begin: int, end: int) -> bytes | None:
+    return _rewritten(view, begin, end, _GRAPH_INITIALIZER, _tensor, fast_key=_NODE_KEY)
+
+
+def _rewritten(view: memoryview, begin: int, end: int, number: int,
+               rewrite: Callable[[memoryview, int, int], bytes | None],
+               fast_key: int = -1) -> bytes | None:
+    """The message ``view[begin:end]`` with each length-delimited field ``number`` replaced
+    by ``rewrite(view, start, stop)`` (None: kept as it is); None when nothing changed.
+
+    A field whose key byte is ``fast_key`` (a graph's nodes: most of its bytes) is
+    jumped over without the general field reader when its length fits two bytes.
+    """
     pieces: list[bytes | memoryview] = []
-    copied = pos = 0
-    end = len(view)
+    copied = pos = begin
     changed = False
     while pos < end:
-        number, wire, start, stop, pos = _field(view, pos, end)
-        if number == _MODEL_GRAPH and wire == _LEN:
-            graph = _graph(view, start, stop)
-            if graph is not None:
-                pieces += _spliced(view, copied, start, graph)
+        if view[pos] == fast_key:
+            size = view[pos + 1]
+            if size < 0x80:
+                pos += 2 + size
+                continue
+            high = view[pos + 2]
+            if high < 0x80:
+                pos += 3 + ((size & 0x7F) | (high << 7))
+                continue
+        field, wire, start, stop, pos = _field(view, pos, end)
+        if field == number and wire == _LEN:
+            value = rewrite(view, start, stop)
+            if value is not None:
+                pieces += _spliced(view, copied, start, value)
                 copied, changed = stop, True
+    if pos != end:
+        raise _NotPlain  # a field jumped over ran past the message's end
     if not changed:
         return None
     pieces.append(view[copied:end])
@@ -132,34 +159,6 @@ def _length_size(view: memoryview, start: int) -> int:
     while start - size - 1 >= 0 and view[start - size - 1] >= 0x80:
         size += 1
     return size
-
-
-def _graph(view: memoryview, begin: int, end: int) -> bytes | None:
-    pieces: list[bytes | memoryview] = []
-    copied = pos = begin
-    changed = False
-    while pos < end:
-        if view[pos] == _NODE_KEY:  # a node (most fields): skipped without the general reader
-            size = view[pos + 1]
-            if size < 0x80:
-                pos += 2 + size
-                continue
-            high = view[pos + 2]
-            if high < 0x80:
-                pos += 3 + ((size & 0x7F) | (high << 7))
-                continue
-        number, wire, start, stop, pos = _field(view, pos, end)
-        if number == _GRAPH_INITIALIZER and wire == _LEN:
-            tensor = _tensor(view, start, stop)
-            if tensor is not None:
-                pieces += _spliced(view, copied, start, tensor)
-                copied, changed = stop, True
-    if pos != end:
-        raise _NotPlain  # the last node ran past the graph's end
-    if not changed:
-        return None
-    pieces.append(view[copied:end])
-    return b"".join(pieces)
 
 
 def _tensor(view: memoryview, begin: int, end: int) -> bytes | None:
