@@ -134,3 +134,25 @@ def test_with_fusion_the_difference_sits_at_the_group_heads(profiles) -> None:
     # parameters, in both forms: every conv head fetches the same parameter bytes
     for name in _convs():
         assert qdq[name].param_dram_bytes == at_int8[name].param_dram_bytes, name
+
+
+
+def test_on_a_small_buffer_the_float_residual_joins_show_and_nothing_else(profiles) -> None:
+    """On ``os-16x16-512kib`` (512 KiB unified buffer) the residual Add's output stays
+    float in the QDQ graph, as on every target, but here its Relu runs as its own vector
+    layer (reading that fp32 tensor) and the conv groups feeding the join write more than
+    the buffer holds in stages 1-2, where activations are largest, so they spill. Pinned by
+    name: every other layer, every conv of stages 3-4 included, costs the same."""
+    target = load_target("os-16x16-512kib")
+    at_int8, qdq = (_by_name(cost_model(p, target)) for p in profiles)
+    differing = {name for name, layer in at_int8.items()
+                 if _differ(layer.latency_s, qdq[name].latency_s)
+                 or _differ(layer.energy.total_j, qdq[name].energy.total_j)}
+    joins = {f"{block}.relu" for block in BLOCKS}
+    spilling = {"stage1.block1.conv2", "stage1.block2.conv2", "stage2.block1.conv2",
+                "stage2.block2.conv2", "stage2.block1.shortcut"}
+    assert differing == {"stem.conv", "stem.pool", "head.pool"} | joins | spilling
+    for name in joins:  # the Relu reads the Add's fp32 output: 4 bytes an element, not 1
+        assert qdq[name].engine == "vector"
+    for name in spilling:
+        assert qdq[name].act_dram_bytes > at_int8[name].act_dram_bytes, name
