@@ -27,10 +27,12 @@ import sys
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 from typing import TextIO
 
 from gate.errors import InputError
+from gate.forked import run_tasks
 
 try:  # POSIX; elsewhere the folder lock is skipped (one run per folder then)
     import fcntl
@@ -131,15 +133,16 @@ def _real(path: str) -> Path:
 
 # --- writing ---------------------------------------------------------------------------
 
-def write_files(files: Sequence[tuple[str, str, Content]]) -> None:
+def write_files(files: Sequence[tuple[str, str, Content]], processes: int = 1) -> None:
     """Write every ``(path, what, content)`` as one unit; '-' paths go to stdout last.
 
     ``content`` is the text, or (files only) a function that writes it to a
     stream, so a large report goes to its partial file in pieces instead of
     being held whole in memory; if it raises, nothing of the set is written.
-    All partial files are written before any is renamed into place; the
-    folders are locked during the renames; if a rename fails, the files of
-    this set already moved in are removed again, so no mix is left.
+    With ``processes`` > 1 the partial files are written side by side
+    (``gate.forked``). All partial files are written before any is renamed into
+    place; the folders are locked during the renames; if a rename fails, the
+    files of this set already moved in are removed again, so no mix is left.
     """
     if any(path == "-" and not isinstance(content, str) for path, _, content in files):
         raise TypeError("stdout takes text (render it first), not a writer")
@@ -149,14 +152,21 @@ def write_files(files: Sequence[tuple[str, str, Content]]) -> None:
         _make_folder(target.parent, path, what)
     with _locked(folders):
         partials: list[tuple[Path, Path, str, str]] = []
+        descriptors: list[int] = []
         try:
+            tasks = []
             for target, path, what, text in on_disk:
-                partials.append((_write_partial(target.parent, text, path, what),
-                                 target, path, what))
+                name, fd = _new_partial(target.parent, path, what)
+                partials.append((name, target, path, what))
+                descriptors.append(fd)
+                tasks.append((what, partial(_fill, fd, text, path, what)))
+            run_tasks(tasks, processes)
             _rename_all(partials)
         finally:
-            for partial, *_ in partials:
-                _unlink_quietly(partial)
+            for fd in descriptors:
+                os.close(fd)
+            for name, *_ in partials:
+                _unlink_quietly(name)
     for path, _, text in files:
         if path == "-":
             write_stdout(text)  # type: ignore[arg-type]  # text: checked at the start
@@ -175,17 +185,17 @@ def open_output(path: str, what: str) -> Iterator[TextIO]:
         return
     target = placed_path(path, what)
     _make_folder(target.parent, path, what)
-    partial = _new_partial(target.parent, path, what)
+    name, fd = _new_partial(target.parent, path, what)
     try:
         try:
-            with os.fdopen(partial[1], "w", encoding="utf-8", newline="\n") as stream:
+            with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as stream:
                 yield stream
         except OSError as exc:
             raise _write_error(exc, path, what) from None
         with _locked([target.parent]):
-            _rename_all([(partial[0], target, path, what)])
+            _rename_all([(name, target, path, what)])
     finally:
-        _unlink_quietly(partial[0])
+        _unlink_quietly(name)
 
 
 def write_stdout(text: str) -> None:
@@ -231,21 +241,17 @@ def _rename_all(partials: Sequence[tuple[Path, Path, str, str]]) -> None:
         raise
 
 
-def _write_partial(folder: Path, content: Content, path: str, what: str) -> Path:
-    name, fd = _new_partial(folder, path, what)
+def _fill(fd: int, content: Content, path: str, what: str) -> None:
+    """Write ``content`` to the partial file open at ``fd`` (through a duplicate, so the
+    caller closes ``fd`` itself, whichever process wrote)."""
     try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as stream:
+        with os.fdopen(os.dup(fd), "w", encoding="utf-8", newline="\n") as stream:
             if isinstance(content, str):
                 stream.write(content)
             else:
                 content(stream)
     except OSError as exc:
-        _unlink_quietly(name)
         raise _write_error(exc, path, what) from None
-    except BaseException:  # a writer that failed: no partial file left behind
-        _unlink_quietly(name)
-        raise
-    return name
 
 
 def _new_partial(folder: Path, path: str, what: str) -> tuple[Path, int]:

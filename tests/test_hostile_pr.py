@@ -202,20 +202,27 @@ def test_stale_reports_are_removed_when_the_run_exits_early(tmp_path: Path) -> N
     assert fingerprint(repo) == before
 
 
+@pytest.mark.parametrize(("jobs", "renderer"), [("1", "json"), ("2", "json"), ("2", "markdown")])
 def test_a_failing_renderer_leaves_no_report_beside_the_exit_code(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    from gate.report import jsonout
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, jobs: str, renderer: str) -> None:
+    """With -j 2 the reports are rendered side by side (gate/forked.py): the JSON one in
+    this process, the markdown one in a child; a failure in either is the same exit 3."""
+    from gate.report import jsonout, markdown
 
     def broken(result: object) -> str:
         raise ValueError("Out of range float values are not JSON compliant")
 
-    monkeypatch.setattr(jsonout, "result_document", broken)
+    if renderer == "json":
+        monkeypatch.setattr(jsonout, "result_document", broken)
+    else:
+        monkeypatch.setattr(markdown, "render", broken)
     repo = make_repo(tmp_path)
     save_model(fc_model(200), repo.path / "models/a.onnx")
     repo.commit("shrink")
     before = fingerprint(repo)
-    result = check(repo)
+    result = check(repo, "-j", jobs)
     assert_clean_exit(result, 3, "internal error")
+    assert "ValueError: Out of range float values" in result.stdout + result.stderr
     assert reports(repo) == {}  # no junit.xml or summary.md saying "passed"
     assert fingerprint(repo) == before
 

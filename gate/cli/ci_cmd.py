@@ -62,7 +62,8 @@ def _config_options(func: Any) -> Any:
                           "to compare against instead of the base side from git (check) or "
                           "nothing (audit)."),
         click.option("-j", "--jobs", default=1, show_default=True, metavar="N",
-                     type=click.IntRange(min=0), help="Parallel processes (0 = one per CPU)."),
+                     type=click.IntRange(min=0), help="Parallel processes for the analysis; above 1 the report "
+                          "files are also rendered side by side (0 = one per CPU)."),
     )):
         func = option(func)
     return func
@@ -100,12 +101,12 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
         paths = chosen_reports(kwargs, config)
         rules = output_rules(kwargs, config, root, chosen.repo_files)
         start_reports(paths, rules)
+        workers = default_workers(kwargs["jobs"])
         result, title = run_check(root, config, base_ref, baseline=chosen.baseline,
-                                  workers=default_workers(kwargs["jobs"]), today=today,
-                                  staged=staged)
+                                  workers=workers, today=today, staged=staged)
         result = replace(result, rules_source=chosen.source,
                          policies=tuple(chosen.repo_name(p) for p in result.policies))
-        finish(result, paths, title, rules=rules)
+        finish(result, paths, title, rules=rules, processes=workers)
 
 
 def _config_loader(kwargs: dict[str, Any]) -> Callable[[Path | None, bool], ProjectConfig]:
@@ -159,8 +160,9 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
     rules = output_rules(kwargs, config, Path.cwd())
     start_reports(chosen_reports(kwargs, config) if shard is None else report_paths(kwargs), rules)
     shard_ij = parse_shard(shard) if shard else None
+    workers = default_workers(kwargs["jobs"])
     result, models = run_audit(root, config, paths, baseline=kwargs["baseline"],
-                               workers=default_workers(kwargs["jobs"]), shard=shard_ij)
+                               workers=workers, shard=shard_ij)
     if shard_ij is not None:
         index, count = shard_ij
         out = shard_out or f"roofgate-out/shard-{index}-of-{count}.json"
@@ -168,14 +170,14 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
         # A shard writes only its shard file unless report flags ask for partial reports.
         _finish_audit(result, report_paths(kwargs), f"roofgate audit shard {index}/{count}: "
                       f"{len(shard_share(models, index, count))} of {len(models)} models",
-                      None, (out,), rules)
+                      None, (out,), rules, workers)
     _finish_audit(result, chosen_reports(kwargs, config), f"roofgate audit: {len(models)} models",
-                  snapshot, rules=rules)
+                  snapshot, rules=rules, processes=workers)
 
 
 def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
                   snapshot: str | None, written: tuple[str, ...] = (),
-                  rules: OutputRules = TYPED_PATHS) -> None:
+                  rules: OutputRules = TYPED_PATHS, processes: int = 1) -> None:
     """Add the trend notes, write the snapshot if asked, then the reports and the summary."""
     from gate.judge import with_notes
     from gate.trend import trend_notes
@@ -186,7 +188,7 @@ def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
 
         write_snapshot([e.head for e in result.entries if e.head is not None], snapshot)
         written += (snapshot,)
-    finish(result, paths, title, written, rules)
+    finish(result, paths, title, written, rules, processes)
 
 
 # --- merge ----------------------------------------------------------------------------

@@ -187,9 +187,11 @@ def output_rules(kwargs: dict[str, Any], config: ProjectConfig, root: str | Path
 
 
 def finish(result: GateResult, paths: dict[str, str | None], title: str | None = None,
-           extra_written: Sequence[str] = (), rules: OutputRules = TYPED_PATHS) -> None:
-    """Write the reports, print the summary (to stderr when a report goes to stdout), exit."""
-    written = write_reports(result, paths, rules)
+           extra_written: Sequence[str] = (), rules: OutputRules = TYPED_PATHS,
+           processes: int = 1) -> None:
+    """Write the reports (side by side when ``processes`` > 1), print the summary (to
+    stderr when a report goes to stdout), exit."""
+    written = write_reports(result, paths, rules, processes)
     to_stdout = any(path == "-" for path in paths.values())
     click.echo(terminal.render(result, [*written, *extra_written], title), nl=False,
                err=to_stdout)

@@ -72,11 +72,12 @@ def report_targets(paths: dict[str, str | None]) -> dict[str, str]:
 
 
 def write_reports(result: GateResult, paths: dict[str, str | None],
-                  rules: OutputRules = TYPED_PATHS) -> list[str]:
+                  rules: OutputRules = TYPED_PATHS, processes: int = 1) -> list[str]:
     """Render every report whose path is set, then write them all; returns the paths written.
 
     Paths are checked against ``rules`` first (exit 2 when one may not be
-    written); nothing is written unless every renderer succeeded.
+    written); nothing is written unless every renderer succeeded. With
+    ``processes`` > 1 (a ``-j N`` run) the report files are rendered side by side.
     """
     check_output_paths(report_targets(paths), rules)
     rendered: list[tuple[str, str, Content]] = []
@@ -86,7 +87,7 @@ def write_reports(result: GateResult, paths: dict[str, str | None],
             content = render_report(reporter, result) if path == "-" else \
                 partial(reporter.write, result)
             rendered.append((path, f"{reporter.name} report", content))
-    write_files(rendered)
+    write_files(rendered, processes)
     return [path for path, _, _ in rendered]
 
 

@@ -1,0 +1,172 @@
+"""Run a few functions at the same time, in short-lived forked child processes.
+
+After a parallel run (``-j N``) the reports are rendered one after another while
+every other core idles: for 1000 changed models the JSON report alone took over a
+second, beside a quarter of a second each for JUnit and markdown. ``run_tasks``
+renders them side by side instead: every task but the last in a child made with
+``fork`` (which shares the finished result with the parent, nothing is copied or
+pickled), the last one here. Each child writes only its own partial file; the
+parent renames nothing until every task succeeded, so the all-or-nothing rule of
+report writing is unchanged.
+
+A child's failure comes back to the parent as the same kind of error: a
+``RoofgateError`` with its message and exit code (a full disk stays exit 2), any
+other exception as an ``InternalError`` (exit 3) whose cause carries the child's
+traceback (shown under ``--debug``), a child killed by a signal as an
+``InternalError`` too. If anything fails, or the parent is interrupted, the
+children still running are killed and reaped before the error goes on.
+
+Fork is used on Linux only (macOS and Windows run the tasks one after another):
+there it is safe for a process whose worker pool has been shut down, and it is
+the only way to share the result without copying it.
+"""
+
+from __future__ import annotations
+
+import gc
+import json
+import os
+import signal
+import sys
+import traceback
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+from gate.errors import EXIT_INTERNAL, InputError, InternalError, RoofgateError
+
+Task = Callable[[], None]
+
+_MESSAGE_BYTES = 32 * 1024  # a child's report of its failure; well under a pipe's buffer
+
+
+class ChildTraceback(Exception):
+    """The traceback of a task that crashed in a child process, as text (its cause)."""
+
+
+def forking_available() -> bool:
+    """Whether ``run_tasks`` runs tasks side by side here (Linux, where ``fork`` is safe)."""
+    return sys.platform.startswith("linux") and hasattr(os, "fork")
+
+
+def run_tasks(tasks: Sequence[tuple[str, Task]], processes: int) -> None:
+    """Run every ``(label, task)``; side by side when ``processes`` > 1 and fork is safe.
+
+    The label names the task in errors ("json report"). Returns when every task
+    has finished; raises the first failure, in task order.
+    """
+    if processes <= 1 or len(tasks) < 2 or not forking_available():
+        for _, task in tasks:
+            task()
+        return
+    _flush_standard_streams()  # a child must not inherit (and never writes) unflushed text
+    children: list[_Child] = []
+    try:
+        for label, task in tasks[:-1]:
+            children.append(_fork(label, task))
+        tasks[-1][1]()
+        for child in children:
+            child.wait()
+    finally:
+        for child in children:
+            child.stop()
+
+
+@dataclass
+class _Child:
+    label: str
+    pid: int
+    messages: int  # read end of the pipe the child reports a failure on
+    reaped: bool = False
+
+    def wait(self) -> None:
+        """Wait for the child; raise its failure, if it had one."""
+        _, status = os.waitpid(self.pid, 0)
+        self.reaped = True
+        try:
+            if os.WIFSIGNALED(status):
+                raise InternalError(
+                    f"internal error: the process writing the {self.label} was ended by "
+                    f"signal {os.WTERMSIG(status)}; rerun with --debug and report it")
+            if os.waitstatus_to_exitcode(status) != 0:
+                raise _failure(self.label, os.read(self.messages, _MESSAGE_BYTES))
+        finally:
+            self._close()
+
+    def stop(self) -> None:
+        """Kill and reap the child if it is still running (after a failure or Ctrl-C)."""
+        if not self.reaped:
+            try:
+                os.kill(self.pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+            os.waitpid(self.pid, 0)
+            self.reaped = True
+        self._close()
+
+    def _close(self) -> None:
+        if self.messages >= 0:
+            os.close(self.messages)
+            self.messages = -1
+
+
+def _fork(label: str, task: Task) -> _Child:
+    read_end, write_end = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the child: run the task, report how it ended, never return
+        os.close(read_end)
+        _run_child(task, write_end)
+    os.close(write_end)
+    return _Child(label, pid, read_end)
+
+
+def _run_child(task: Task, messages: int) -> None:
+    """In the child: run ``task`` and leave with status 0, or 1 after writing why to
+    ``messages``. ``os._exit`` skips the parent's exit handlers and buffered output."""
+    status = 1
+    try:
+        # Ctrl-C or SIGTERM ends a child at once; the parent cleans up.
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
+        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+        gc.disable()  # short-lived: no collection walking the parent's whole heap
+        try:
+            task()
+            status = 0
+        except BaseException as exc:  # noqa: BLE001  (every failure goes to the parent)
+            os.write(messages, _describe(exc))
+    finally:
+        os._exit(status)
+
+
+def _describe(exc: BaseException) -> bytes:
+    """A child's failure as a small JSON message (bounded in size)."""
+    if isinstance(exc, RoofgateError):
+        data = {"message": exc.message, "exit_code": exc.exit_code}
+    else:
+        data = {"crash": " ".join(f"{type(exc).__name__}: {exc}".split())[:300],
+                "traceback": "".join(traceback.format_exception(
+                    type(exc), exc, exc.__traceback__))[-16 * 1024:]}
+    return json.dumps(data).encode("ascii")[:_MESSAGE_BYTES]
+
+
+def _failure(label: str, message: bytes) -> RoofgateError:
+    """The parent's error for a child that failed with ``message`` (see ``_describe``)."""
+    try:
+        data = json.loads(message)
+    except ValueError:
+        return InternalError(f"internal error: the process writing the {label} failed without "
+                             "saying why; rerun with --debug and report it")
+    if "message" in data:
+        kind = InternalError if data.get("exit_code") == EXIT_INTERNAL else InputError
+        return kind(str(data["message"]))
+    error = InternalError(f"internal error while writing the {label} ({data.get('crash')}); "
+                          "rerun with --debug and report the traceback")
+    error.__cause__ = ChildTraceback(str(data.get("traceback", "")))
+    return error
+
+
+def _flush_standard_streams() -> None:
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass  # a closed or full stream: the parent meets it again when it writes
