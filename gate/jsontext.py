@@ -91,8 +91,9 @@ _C_ENCODE = None if c_make_encoder is None else c_make_encoder(
     None, _ENCODER.default, encode_basestring_ascii, None, ": ", ", ", True, False, False)
 
 
-def _encode(value: Any) -> str:
-    """``value`` as one line of JSON, exactly as ``_ENCODER.encode`` writes it."""
+def encode_one_line(value: Any) -> str:
+    """``value`` as one line of JSON, exactly as ``_ENCODER.encode`` writes it (keys sorted,
+    ASCII only, NaN and infinity refused with ValueError); floats as they are, unrounded."""
     if _C_ENCODE is None:  # pragma: no cover - an interpreter without the C accelerator
         return _ENCODER.encode(value)
     return "".join(_C_ENCODE(value, 0))
@@ -113,7 +114,7 @@ def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
     """
     flat = _flat(value)
     if flat is not _NOT_FLAT:
-        yield f"{indent}{head}{_encode(flat)}{tail}"
+        yield f"{indent}{head}{encode_one_line(flat)}{tail}"
         return
     inner = indent + "  "
     if isinstance(value, Mapping):
@@ -121,7 +122,7 @@ def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
         yield f"{indent}{head}{{\n"
         last = len(items) - 1
         for index, key in enumerate(sorted(items)):
-            yield from _lines(items[key], inner, _encode(key) + ": ", ",\n" if index < last else "\n")
+            yield from _lines(items[key], inner, encode_one_line(key) + ": ", ",\n" if index < last else "\n")
         yield f"{indent}}}{tail}"
         return
     yield f"{indent}{head}[\n"
@@ -131,7 +132,7 @@ def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
         text = _row_text(item) if type(item) is dict else None
         if text is _UNUSUAL:  # a row holding a value of another type: the general way
             row = _row(item)
-            text = None if row is None else _encode(row)
+            text = None if row is None else encode_one_line(row)
         if text is not None:
             yield f"{inner}{text}{separator}"
         else:

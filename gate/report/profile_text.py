@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 import unicodedata
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import replace
@@ -19,6 +18,7 @@ from typing import Any
 
 from gate import metrics, units
 from gate.costmodel import FUSION_MEMBER, ModelCost
+from gate.jsontext import encode_one_line
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
 from gate.model.graph import Shape
 from gate.profile import LayerProfile, ModelProfile
@@ -168,7 +168,6 @@ class _Rows:
         self.items = items
 
 
-_ONE_LINE = json.JSONEncoder(sort_keys=True, separators=(", ", ": "), allow_nan=False)
 _ROWS_PER_CHUNK = 256
 
 
@@ -181,7 +180,7 @@ def _emit(value: Any, indent: str) -> Iterator[str]:
     elif isinstance(value, dict) and value:
         opening = "{\n"
         for key in sorted(value):
-            yield f"{opening}{inner}{_ONE_LINE.encode(key)}: "
+            yield f"{opening}{inner}{encode_one_line(key)}: "
             yield from _emit(value[key], inner)
             opening = ",\n"
         yield f"\n{indent}}}"
@@ -193,13 +192,13 @@ def _emit(value: Any, indent: str) -> Iterator[str]:
             opening = ",\n"
         yield f"\n{indent}]"
     else:
-        yield _ONE_LINE.encode(value)
+        yield encode_one_line(value)
 
 
 def _emit_rows(items: Iterable[Any], indent: str) -> Iterator[str]:
     inner, opening, batch = indent + "  ", "[\n", []
     for item in items:
-        batch.append(inner + _ONE_LINE.encode(item))
+        batch.append(inner + encode_one_line(item))
         if len(batch) == _ROWS_PER_CHUNK:
             yield opening + ",\n".join(batch)
             opening, batch = ",\n", []
