@@ -277,7 +277,7 @@ def test_a_rows_text_is_what_the_general_way_writes(row) -> None:
     general = jsontext._row(row)
     text = jsontext._row_text(row)
     assert text is not jsontext._UNUSUAL  # plain types only here
-    assert text == (None if general is None else jsontext._encode(general))
+    assert text == (None if general is None else jsontext.encode_one_line(general))
 
 
 def test_a_row_holding_another_type_goes_the_general_way() -> None:
