@@ -280,6 +280,21 @@ def test_a_rows_text_is_what_the_general_way_writes(row) -> None:
     assert text == (None if general is None else jsontext.encode_one_line(general))
 
 
+@settings(max_examples=300, deadline=None)
+@given(_rows)
+def test_the_one_line_encoder_writes_what_the_standard_library_writes(row) -> None:
+    # profile --format json and every one-line value use jsontext.encode_one_line (a C
+    # encoder built once); reference: json.dumps with the same settings (Python stdlib).
+    assert jsontext.encode_one_line(row) == json.dumps(
+        row, sort_keys=True, separators=(", ", ": "), ensure_ascii=True, allow_nan=False)
+
+
+@pytest.mark.parametrize("bad", [float("nan"), float("inf"), -float("inf")])
+def test_the_one_line_encoder_refuses_non_finite_numbers(bad: float) -> None:
+    with pytest.raises(ValueError, match="not JSON compliant"):
+        jsontext.encode_one_line({"macs": 1, "intensity": [bad]})
+
+
 def test_a_row_holding_another_type_goes_the_general_way() -> None:
     class Ratio(float):
         pass
