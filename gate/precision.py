@@ -63,17 +63,18 @@ def deployed_dtypes(graph: Graph) -> dict[str, str]:
 def operand_dtypes(node: Node, deployed: Mapping[str, str]) -> list[str]:
     """Element types of the node's data operands as deployed (metadata left out)."""
     skipped = QUANT_METADATA_POSITIONS.get(node.op_type, ())
+    bias = None if node.domain else BIAS_POSITIONS.get(node.op_type)  # ``is_bias``, hoisted
+    sources, params = node.param_sources, node.param_inputs
     dtypes = []
     for position, tensor in enumerate(node.inputs):
-        if tensor is None or position in skipped or is_bias(node, position):
+        if tensor is None or position in skipped or position == bias:
             continue  # a bias is added in the accumulator, whatever its stored type
-        if position in node.param_sources and position not in node.param_inputs:
-            continue  # small integer metadata
-        source = node.param_source(position)
-        if source is not None:
-            dtypes.append(source.dtype)
-        else:
+        if position in params:  # ``node.param_source`` without building a source
+            source = sources.get(position)
+            dtypes.append(tensor.dtype if source is None else source.dtype)
+        elif position not in sources:
             dtypes.append(deployed.get(tensor.name, tensor.dtype))
+        # else: small integer metadata
     return dtypes
 
 

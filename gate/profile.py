@@ -7,7 +7,7 @@ energy) are computed from it by ``gate.costmodel``; reporters only format.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
+from collections.abc import Callable
 from dataclasses import dataclass
 from math import prod
 from typing import Any
@@ -272,17 +272,6 @@ class _Counting:
         return source.bits
 
 
-def _tensor_bytes(tensor: TensorInfo, counting: _Counting) -> int | None:
-    """Storage bytes of an activation as counted, None when unknown."""
-    count = tensor.numel  # cached per distinct shape
-    if count is None:
-        return None
-    bits = counting.tensor_bits(tensor)
-    if bits == 0:
-        return None
-    return (count * bits + 7) // 8
-
-
 # ------------------------------------------------------------------ parameters
 
 @dataclass(frozen=True, slots=True)
@@ -391,20 +380,12 @@ def _layer_params(node: Node) -> dict[str, _Param]:
     return params
 
 
-def _sized(tensor: TensorInfo) -> bool:
-    """A static shape (element count cached per shape) and a fixed-size element type."""
-    return tensor.numel is not None and DTYPE_BITS.get(tensor.dtype, 0) > 0
-
-
 def _shape_problem(node: Node, unbound: dict[str, int]) -> str:
-    """Why the layer's tensors cannot be sized, or "" when all are static."""
+    """Why the layer's tensors cannot be sized, or "" when all are static; symbolic dims
+    that keep it unmodelled are counted in ``unbound``. Asked only for a layer
+    ``_operands`` found a tensor it cannot size (the common case costs nothing here)."""
     tensors = [t for t in node.inputs if t is not None] + [
         t for i, t in enumerate(node.outputs) if t.name and i not in node.unused_outputs]
-    for tensor in tensors:  # the common case: every tensor sized, one cached look each
-        if not _sized(tensor):
-            break
-    else:
-        return ""
     symbolic: list[str] = []
     other = ""
     for tensor in tensors:
@@ -428,14 +409,17 @@ def _shape_problem(node: Node, unbound: dict[str, int]) -> str:
     return other
 
 
-def _work(node: Node, unbound: dict[str, int]) -> tuple[OpWork | None, str]:
+def _work(node: Node, unbound: dict[str, int], sized: bool) -> tuple[OpWork | None, str]:
+    """The layer's work, or None and why not. ``sized``: every present input and used
+    output has a static shape and a fixed-size element type (``_operands`` checked)."""
     func = cost_function_for(node.domain, node.op_type)
     if func is None:
         where = f" (domain '{node.domain}')" if node.domain else ""
         return None, f"no cost model for op type {node.op_type}{where}"
-    problem = _shape_problem(node, unbound)
-    if problem:
-        return None, problem
+    if not sized:
+        problem = _shape_problem(node, unbound)
+        if problem:
+            return None, problem
     try:
         return func(node), ""
     except Unmodelled as exc:
@@ -444,17 +428,6 @@ def _work(node: Node, unbound: dict[str, int]) -> tuple[OpWork | None, str]:
         raise InternalError(f"cost function for {node.op_type} failed on layer '{node.name}' "
                             f"({type(exc).__name__}: {exc}); rerun with --debug and report "
                             f"it") from exc
-
-
-def _sum_bytes(tensors: Iterable[TensorInfo], counting: _Counting) -> int | None:
-    """Bytes of ``tensors`` together; None when any one's size is unknown (never 0)."""
-    total = 0
-    for tensor in tensors:
-        nbytes = _tensor_bytes(tensor, counting)
-        if nbytes is None:
-            return None
-        total += nbytes
-    return total
 
 
 _Share = Callable[[Any], Any]
@@ -483,11 +456,10 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
         return _offline_layer(node, counting)
     params = _layer_params(node)
     charge = ledger.charge([(source, counting.param_bits(tensor, source, bias))
-                            for tensor, source, bias in params.values()])
-    activations, outputs, types = _operands(node, params)
-    work, reason = _work(node, unbound)
-    input_bytes = _sum_bytes(activations.values(), counting)
-    output_bytes = _sum_bytes(outputs, counting)
+                            for tensor, source, bias in params.values()]) if params else _NOTHING
+    input_shapes, input_dtypes, input_bytes, inputs_sized, _ = _inputs(node, params, counting)
+    output_shapes, output_dtypes, output_bytes, outputs_sized, outputs = _outputs(node, counting)
+    work, reason = _work(node, unbound, inputs_sized and outputs_sized)
     if work is not None and (input_bytes is None or output_bytes is None):
         work, reason = None, "a tensor's size is unknown (element type without a fixed size)"
     precision = counting.override or layer_precision(node, counting.deployed)
@@ -495,16 +467,15 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
         work = requantized(work)
     if work is not None:
         work = shared(work)
-    input_shapes, input_dtypes, output_shapes, output_dtypes = types
     return LayerProfile(
         index=node.index,
         name=node.name,
         op_type=node.op_type,
         domain=node.domain,
-        input_shapes=shared(tuple(input_shapes)),
-        input_dtypes=shared(tuple(input_dtypes)),
-        output_shapes=shared(tuple(output_shapes)),
-        output_dtypes=shared(tuple(output_dtypes)),
+        input_shapes=shared(input_shapes),
+        input_dtypes=shared(input_dtypes),
+        output_shapes=shared(output_shapes),
+        output_dtypes=shared(output_dtypes),
         param_names=charge.names,
         param_count=charge.count,
         param_bytes=charge.nbytes,
@@ -520,39 +491,79 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
     )
 
 
-_Types = tuple[list[Shape | None], list[str], list[Shape | None], list[str]]
+# One side of a layer (its inputs or its outputs), read in one pass: every position's shape
+# and dtype, the bytes of the activations counted (None: a size unknown), whether every
+# present tensor has a static shape and a fixed-size element type, and (outputs only) the
+# tensors counted. A plain tuple: built twice per layer, a record class costs more.
+_Side = tuple[tuple[Shape | None, ...], tuple[str, ...], int | None, bool, tuple[TensorInfo, ...]]
 
 
-def _operands(node: Node, params: dict[str, _Param]
-              ) -> tuple[dict[str, TensorInfo], list[TensorInfo], _Types]:
-    """The layer's activation inputs by name (parameters and metadata left out), its used
-    outputs, and the shapes and dtypes of every input and output (one pass over each)."""
+def _activation_bytes(tensor: TensorInfo, counting: _Counting) -> int | None:
+    """Storage bytes of an activation as counted, None when unknown."""
+    count = tensor.numel  # cached per distinct shape
+    if count is None:
+        return None
+    bits = counting.tensor_bits(tensor)
+    return None if bits == 0 else (count * bits + 7) // 8
+
+
+def _inputs(node: Node, params: dict[str, _Param], counting: _Counting) -> _Side:
+    """Shapes, dtypes and sizedness of every input; bytes of the activation inputs
+    (parameters and metadata left out, a tensor read twice counted once)."""
     sources, param_inputs = node.param_sources, node.param_inputs
-    activations: dict[str, TensorInfo] = {}
-    input_shapes: list[Shape | None] = []
-    input_dtypes: list[str] = []
+    shapes: list[Shape | None] = []
+    dtypes: list[str] = []
+    counted: set[str] = set()
+    nbytes: int | None = 0
+    sized = True
     for i, tensor in enumerate(node.inputs):
         if tensor is None:
-            input_shapes.append(None)
-            input_dtypes.append("")
+            shapes.append(None)
+            dtypes.append("")
             continue
-        input_shapes.append(tensor.shape)
-        input_dtypes.append(tensor.dtype)
-        if i not in sources and i not in param_inputs and tensor.name not in params:
-            activations[tensor.name] = tensor
+        shapes.append(tensor.shape)
+        dtypes.append(tensor.dtype)
+        if sized:
+            sized = _sized(tensor)
+        name = tensor.name
+        if (i in sources or i in param_inputs or name in params or name in counted
+                or nbytes is None):
+            continue
+        counted.add(name)
+        size = _activation_bytes(tensor, counting)
+        nbytes = None if size is None else nbytes + size
+    return tuple(shapes), tuple(dtypes), nbytes, sized, ()
+
+
+def _outputs(node: Node, counting: _Counting) -> _Side:
+    """Shapes and dtypes of every output; bytes and sizedness of the used ones (an output
+    nothing reads, or an omitted one, is not written)."""
     unused = node.unused_outputs
-    outputs: list[TensorInfo] = []
-    output_shapes: list[Shape | None] = []
-    output_dtypes: list[str] = []
+    shapes: list[Shape | None] = []
+    dtypes: list[str] = []
+    used: list[TensorInfo] = []
+    nbytes: int | None = 0
+    sized = True
     for i, tensor in enumerate(node.outputs):
-        output_shapes.append(tensor.shape)
-        output_dtypes.append(tensor.dtype)
-        if tensor.name and i not in unused:
-            outputs.append(tensor)
-    return activations, outputs, (input_shapes, input_dtypes, output_shapes, output_dtypes)
+        shapes.append(tensor.shape)
+        dtypes.append(tensor.dtype)
+        if not tensor.name or i in unused:
+            continue
+        used.append(tensor)
+        if sized:
+            sized = _sized(tensor)
+        if nbytes is not None:
+            size = _activation_bytes(tensor, counting)
+            nbytes = None if size is None else nbytes + size
+    return tuple(shapes), tuple(dtypes), nbytes, sized, tuple(used)
 
 
-def _requantizes(node: Node, work: OpWork, precision: str, outputs: list[TensorInfo],
+def _sized(tensor: TensorInfo) -> bool:
+    """A static shape (element count cached per shape) and a fixed-size element type."""
+    return tensor.numel is not None and DTYPE_BITS.get(tensor.dtype, 0) > 0
+
+
+def _requantizes(node: Node, work: OpWork, precision: str, outputs: tuple[TensorInfo, ...],
                  counting: _Counting) -> bool:
     """A float matrix op running at an integer precision that writes integer outputs
     (its output read by a fused QuantizeLinear, or an integer --precision) requantizes
