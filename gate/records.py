@@ -163,11 +163,20 @@ def canonical_run(run: RunRecord) -> RunRecord:
 def _canonical_layer(layer: LayerRecord) -> LayerRecord:
     return LayerRecord(layer.name, layer.op_type, layer.signature, layer.engine, layer.bound,
                        layer.modelled, layer.unmodelled_reason, layer.params_fit,
-                       layer.activations_fit, dict(sorted(layer.metrics.items())),
+                       layer.activations_fit, sorted_metrics(layer.metrics),
                        layer.fused_into, tuple(layer.fused_ops), layer.precision)
 
 
 # --- JSON-ready dicts (the snapshot/result writers add versioning around these) ---
+
+def sorted_metrics(metrics: Mapping[str, Metric]) -> dict[str, Metric]:
+    """``dict(sorted(metrics.items()))``; a metrics view that knows its sorted order gives
+    it directly (``gate.summarize.LayerMetrics``: no sort per layer per target)."""
+    as_sorted = getattr(metrics, "sorted_dict", None)
+    if as_sorted is not None:
+        return as_sorted()  # type: ignore[no-any-return]
+    return dict(sorted(metrics.items()))
+
 
 def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:
     return {
@@ -181,7 +190,7 @@ def layer_to_dict(layer: LayerRecord) -> dict[str, Any]:
         "params_fit": layer.params_fit,
         "activations_fit": layer.activations_fit,
         "precision": layer.precision,
-        "metrics": dict(sorted(layer.metrics.items())),
+        "metrics": sorted_metrics(layer.metrics),
         "fused_into": layer.fused_into,
         "fused_ops": list(layer.fused_ops),
     }

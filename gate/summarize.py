@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, ItemsView, Iterator, Mapping, ValuesView
 from functools import lru_cache
-from operator import attrgetter
+from operator import attrgetter, itemgetter
 
 from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
 from gate.model.graph import Shape
@@ -124,6 +124,10 @@ def _single(name: str) -> Callable[[LayerProfile, LayerCost], Metric]:
 
 
 _LAYER_METRIC_READERS = {name: _single(name) for name in _LAYER_METRIC_NAMES}
+# The metrics in sorted name order, and where each sits in record order: a sorted dict is
+# built for every layer on every target (JSON rows, worker records) without sorting it.
+_SORTED_METRIC_NAMES = tuple(sorted(_LAYER_METRIC_NAMES))
+_in_sorted_order = itemgetter(*(_LAYER_METRIC_NAMES.index(n) for n in _SORTED_METRIC_NAMES))
 
 
 class LayerMetrics(Mapping[str, Metric]):
@@ -161,6 +165,12 @@ class LayerMetrics(Mapping[str, Metric]):
         layer, cost = self._layer, self._cost
         return dict(zip(_LAYER_METRIC_NAMES,
                         (*_read_profile(layer), *_read_cost(cost), *_derived(layer, cost))))
+
+    def sorted_dict(self) -> dict[str, Metric]:
+        """``dict(sorted(self.items()))``, without the sort (``gate.records.sorted_metrics``)."""
+        layer, cost = self._layer, self._cost
+        values = (*_read_profile(layer), *_read_cost(cost), *_derived(layer, cost))
+        return dict(zip(_SORTED_METRIC_NAMES, _in_sorted_order(values)))
 
     def items(self) -> ItemsView[str, Metric]:
         return self.as_dict().items()  # one pass, not a lookup per key (JSON writes them all)

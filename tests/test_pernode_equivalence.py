@@ -1,0 +1,73 @@
+"""Per-layer fast paths give what the plain computation gives.
+
+Each test states the plain computation the fast path replaced (a sort, a second pass
+over a layer's tensors) and checks the fast path against it on real layers, including
+the cases the fast path must not miss (an unsized tensor, a tensor read twice).
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import pytest
+from onnx import TensorProto, helper
+
+from gate.costmodel import cost_model
+from gate.model.loader import load_model
+from gate.profile import profile_model
+from gate.records import layer_to_dict, sorted_metrics
+from gate.summarize import LayerMetrics, build_run_record
+from gate.targets import load_target
+from tests.loadkit import model, save, small_cnn, vi
+
+
+@pytest.fixture(scope="module")
+def analysed(tmp_path_factory):  # type: ignore[no-untyped-def]
+    path = save(small_cnn(), tmp_path_factory.mktemp("m") / "cnn.onnx")
+    profile = profile_model(load_model(path))
+    target = load_target("ws-64x64-4mib")
+    cost = cost_model(profile, target)
+    return profile, cost, build_run_record(str(path), profile, cost, target)
+
+
+def test_sorted_metrics_are_the_sorted_dict_key_for_key(analysed) -> None:  # type: ignore[no-untyped-def]
+    profile, cost, run = analysed
+    for layer, layer_cost, record in zip(profile.layers, cost.layers, run.layers):
+        for view in (record.metrics, LayerMetrics(layer, replace(layer_cost, energy=None))):
+            plain = dict(sorted(view.as_dict().items()))
+            assert list(sorted_metrics(view).items()) == list(plain.items())  # order too
+    record = run.layers[0]
+    assert list(layer_to_dict(record)["metrics"]) == sorted(record.metrics)
+    plain_dict = {"b": 1, "a": 2.0}  # a record read back from JSON holds a plain dict
+    assert list(sorted_metrics(plain_dict).items()) == [("a", 2.0), ("b", 1)]
+
+
+def test_a_tensor_read_twice_is_counted_once(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    proto = model([helper.make_node("Add", ["x", "x"], ["y"], name="add")],
+                  [vi("x", [1, 16])], [vi("y", [1, 16])])
+    layer = profile_model(load_model(save(proto, tmp_path / "m.onnx"))).layers[0]
+    assert layer.input_bytes == 16 * 4 and layer.output_bytes == 16 * 4  # fp32: 4 bytes each
+
+
+@pytest.mark.parametrize("shape, reason", [
+    (["n", 16], "symbolic dim 'n' unbound: bind it with --dim n=N"),
+    (None, "shape of tensor 'x' was not inferred"),
+])
+def test_an_unsized_tensor_still_names_its_problem(tmp_path, shape, reason) -> None:  # type: ignore[no-untyped-def]
+    proto = model([helper.make_node("Relu", ["x"], ["y"], name="relu")],
+                  [vi("x", shape)], [vi("y", shape)])
+    profile = profile_model(load_model(save(proto, tmp_path / "m.onnx")))
+    layer = profile.layers[0]
+    assert not layer.modelled and layer.unmodelled_reason == reason
+    assert layer.input_bytes is None and layer.output_bytes is None
+    if shape is not None:
+        assert any("symbolic dim 'n' unbound" in note for note in profile.notes)
+
+
+def test_an_unused_unsized_output_does_not_unmodel_the_layer(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # Dropout's mask (output 1) is read by nothing: its size does not matter.
+    proto = model([helper.make_node("Dropout", ["x"], ["y", "mask"], name="drop")],
+                  [vi("x", [1, 16])], [vi("y", [1, 16])])
+    proto.graph.value_info.append(vi("mask", None, TensorProto.BOOL))
+    layer = profile_model(load_model(save(proto, tmp_path / "m.onnx"))).layers[0]
+    assert layer.modelled and layer.output_bytes == 16 * 4
