@@ -3,11 +3,13 @@
 After a parallel run (``-j N``) the reports are rendered one after another while
 every other core idles: for 1000 changed models the JSON report alone took over a
 second, beside a quarter of a second each for JUnit and markdown. ``run_tasks``
-renders them side by side instead: every task but the last in a child made with
-``fork`` (which shares the finished result with the parent, nothing is copied or
-pickled), the last one here. Each child writes only its own partial file; the
-parent renames nothing until every task succeeded, so the all-or-nothing rule of
-report writing is unchanged.
+renders them side by side instead, each task in a child made with ``fork`` (which
+shares the finished result with the parent: nothing is copied or pickled). Tasks
+may come from a generator: whatever it does between tasks (building the JSON
+document once before its parts are rendered) runs here while the children already
+work. Each child writes only its own partial file; the parent renames nothing
+until every task succeeded, so the all-or-nothing rule of report writing is
+unchanged.
 
 A child's failure comes back to the parent as the same kind of error: a
 ``RoofgateError`` with its message and exit code (a full disk stays exit 2), any
@@ -26,10 +28,11 @@ from __future__ import annotations
 import gc
 import json
 import os
+import select
 import signal
 import sys
 import traceback
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
 from gate.errors import EXIT_INTERNAL, InputError, InternalError, RoofgateError
@@ -48,27 +51,39 @@ def forking_available() -> bool:
     return sys.platform.startswith("linux") and hasattr(os, "fork")
 
 
-def run_tasks(tasks: Sequence[tuple[str, Task]], processes: int) -> None:
-    """Run every ``(label, task)``; side by side when ``processes`` > 1 and fork is safe.
+def run_tasks(tasks: Iterable[tuple[str, Task]], processes: int) -> None:
+    """Run every ``(label, task)``: one after another here when ``processes`` <= 1 or
+    fork is not safe, else each in its own child process, all at once.
 
     The label names the task in errors ("json report"). Returns when every task
-    has finished; raises the first failure, in task order.
+    has finished; raises the first failure to happen (the other children are then
+    killed, not waited for).
     """
-    if processes <= 1 or len(tasks) < 2 or not forking_available():
+    if processes <= 1 or not forking_available():
         for _, task in tasks:
             task()
         return
     _flush_standard_streams()  # a child must not inherit (and never writes) unflushed text
     children: list[_Child] = []
     try:
-        for label, task in tasks[:-1]:
+        for label, task in tasks:
             children.append(_fork(label, task))
-        tasks[-1][1]()
-        for child in children:
-            child.wait()
+        _wait_all(children)
     finally:
         for child in children:
             child.stop()
+
+
+def _wait_all(children: list[_Child]) -> None:
+    """Reap the children as they end (a child's pipe reads as ended, or holds its failure,
+    once it is done), raising the first failure at once."""
+    running = list(children)
+    while running:
+        ready, _, _ = select.select([child.messages for child in running], [], [])
+        for child in running:
+            if child.messages in ready:
+                child.wait()
+        running = [child for child in running if not child.reaped]
 
 
 @dataclass

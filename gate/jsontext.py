@@ -25,7 +25,8 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass
 from json.encoder import c_make_encoder, encode_basestring_ascii  # type: ignore[attr-defined]
 from typing import Any
 
@@ -55,7 +56,63 @@ def canonical_json_pieces(data: Any) -> Iterator[str]:
     Raises InternalError on a NaN or infinity: records must never carry one, and
     JSON cannot (``NaN`` is not JSON).
     """
-    lines = _lines(data, "", "", "\n")  # the tail of the document: its final newline
+    return _pieces(_lines(data, "", "", "\n"))  # the tail of the document: its final newline
+
+
+def canonical_json_share(data: Any, items: Sequence[Any], share: range, *, first: bool,
+                         last: bool) -> Iterator[str]:
+    """One part of ``canonical_json_pieces(data)`` cut at item boundaries of ``items``, a
+    list inside ``data`` (found by identity; it must appear once), so the parts of one
+    document can be rendered by several processes. Joined in order, the parts of
+    ``even_shares(len(items), n)`` (the first with ``first``, the last with ``last``)
+    are the whole document's text, byte for byte.
+
+    The part writes ``items[share]``, and the text before the list if ``first``, after
+    it if ``last``. No item outside the share is read, so a part's document may hold
+    placeholders (None) there; at least one item of the list must be a container, or the
+    list is written on one line (the first part then writes the whole document).
+    """
+    return _pieces(_part_lines(data, _Cut(items, share.start, share.stop), first, last))
+
+
+def even_shares(count: int, parts: int) -> list[range]:
+    """``range(count)`` cut into ``parts`` consecutive shares of nearly equal size."""
+    bounds = [count * k // parts for k in range(parts + 1)]
+    return [range(bounds[k], bounds[k + 1]) for k in range(parts)]
+
+
+@dataclass(frozen=True, slots=True)
+class _Cut:
+    """The share ``items[start:stop]`` of the list ``items`` one part writes."""
+
+    items: Sequence[Any]
+    start: int
+    stop: int
+
+
+class _Marker(str):
+    """Where the cut list's items begin and end in the lines of a document (never written;
+    told apart from every line by identity)."""
+
+
+_ENTER, _LEAVE = _Marker("enter"), _Marker("leave")
+
+
+def _part_lines(data: Any, cut: _Cut, first: bool, last: bool) -> Iterator[str]:
+    """The lines of one part: before the cut list only in the first, after it only in the
+    last, and in between the part's share of the items."""
+    before, inside, after = 0, 1, 2
+    phase = before
+    for line in _lines(data, "", "", "\n", cut):
+        if line is _ENTER or line is _LEAVE:
+            if (phase, line) not in ((before, _ENTER), (inside, _LEAVE)):
+                raise InternalError("a document was cut at a list that appears in it twice")
+            phase = inside if line is _ENTER else after
+        elif phase == inside or (first if phase == before else last):
+            yield line
+
+
+def _pieces(lines: Iterator[str]) -> Iterator[str]:
     while True:
         with cyclic_gc_paused():
             piece = _next_piece(lines)
@@ -102,7 +159,8 @@ def encode_one_line(value: Any) -> str:
 _NOT_FLAT = object()  # what _flat returns for a value that does not fit one line
 
 
-def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
+def _lines(value: Any, indent: str, head: str, tail: str,
+           cut: _Cut | None = None) -> Iterator[str]:
     """The lines of ``value`` at ``indent``: ``head`` before its first line (its key, or
     nothing), ``tail`` after its last (a comma and a newline, or a newline); so every
     piece yielded ends in a newline.
@@ -111,6 +169,9 @@ def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
     (``_row``: an object in a list that holds no list of containers) take one line (a
     row's text built by ``_row_text``, the others written by the C encoder in one call);
     any other object has one key per line and any other list one item per line.
+
+    ``cut``: of the list ``cut.items`` only the share of one part is written, between
+    the markers ``_ENTER`` and ``_LEAVE`` (``canonical_json_parts``).
     """
     flat = _flat(value)
     if flat is not _NOT_FLAT:
@@ -122,12 +183,18 @@ def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
         yield f"{indent}{head}{{\n"
         last = len(items) - 1
         for index, key in enumerate(sorted(items)):
-            yield from _lines(items[key], inner, encode_one_line(key) + ": ", ",\n" if index < last else "\n")
+            yield from _lines(items[key], inner, encode_one_line(key) + ": ",
+                              ",\n" if index < last else "\n", cut)
         yield f"{indent}}}{tail}"
         return
     yield f"{indent}{head}[\n"
     last = len(value) - 1
-    for index, item in enumerate(value):
+    window, cut_here = range(len(value)), False
+    if cut is not None and value is cut.items:
+        window, cut_here = range(cut.start, cut.stop), True
+        yield _ENTER
+    for index in window:
+        item = value[index]
         separator = ",\n" if index < last else "\n"
         text = _row_text(item) if type(item) is dict else None
         if text is _UNUSUAL:  # a row holding a value of another type: the general way
@@ -136,7 +203,9 @@ def _lines(value: Any, indent: str, head: str, tail: str) -> Iterator[str]:
         if text is not None:
             yield f"{inner}{text}{separator}"
         else:
-            yield from _lines(item, inner, "", separator)
+            yield from _lines(item, inner, "", separator, cut)
+    if cut_here:
+        yield _LEAVE
     yield f"{indent}]{tail}"
 
 

@@ -31,21 +31,35 @@ from functools import partial
 from pathlib import Path
 from typing import TextIO
 
-from gate.errors import InputError
-from gate.forked import run_tasks
+from gate.errors import InputError, InternalError
+from gate.forked import forking_available, run_tasks
 
 try:  # POSIX; elsewhere the folder lock is skipped (one run per folder then)
     import fcntl
 except ImportError:  # pragma: no cover - not on Linux or macOS
     fcntl = None  # type: ignore[assignment]
 
-# What a file is written from: its text, or a function that writes the text to a stream.
-Content = str | Callable[[TextIO], None]
+Writer = Callable[[TextIO], None]  # writes a file's text to a stream
+
+
+@dataclass(frozen=True, slots=True)
+class Parts:
+    """A file written in consecutive parts, each by its own writer, so the parts can be
+    rendered side by side: ``writers(count)`` (called once, in this process) returns the
+    writers of at most ``count`` parts, at least one; the file is their texts in order."""
+
+    writers: Callable[[int], Sequence[Writer]]
+
+
+# What a file is written from: its text, a function that writes the text to a stream,
+# or parts.
+Content = str | Writer | Parts
 
 PARTIAL_PREFIX = ".roofgate-"
 PARTIAL_SUFFIX = ".partial"
 NAME_MAX_BYTES = 255  # longest file name ext4, XFS, APFS and NTFS accept (POSIX NAME_MAX)
-_CREATE_FLAGS = (os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0)
+# read and write: the parts of a file in parts are read back to be joined
+_CREATE_FLAGS = (os.O_RDWR | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0)
                  | getattr(os, "O_CLOEXEC", 0))
 
 
@@ -138,11 +152,12 @@ def write_files(files: Sequence[tuple[str, str, Content]], processes: int = 1) -
 
     ``content`` is the text, or (files only) a function that writes it to a
     stream, so a large report goes to its partial file in pieces instead of
-    being held whole in memory; if it raises, nothing of the set is written.
-    With ``processes`` > 1 the partial files are written side by side
-    (``gate.forked``). All partial files are written before any is renamed into
-    place; the folders are locked during the renames; if a rename fails, the
-    files of this set already moved in are removed again, so no mix is left.
+    being held whole in memory, or ``Parts``; if any raises, nothing of the set
+    is written. With ``processes`` > 1 the partial files (and the parts of a
+    file, joined afterwards) are written side by side (``gate.forked``). All
+    partial files are written before any is renamed into place; the folders
+    are locked during the renames; if a rename fails, the files of this set
+    already moved in are removed again, so no mix is left.
     """
     if any(path == "-" and not isinstance(content, str) for path, _, content in files):
         raise TypeError("stdout takes text (render it first), not a writer")
@@ -150,23 +165,18 @@ def write_files(files: Sequence[tuple[str, str, Content]], processes: int = 1) -
     folders = sorted({target.parent for target, *_ in on_disk})
     for target, path, what, _ in on_disk:
         _make_folder(target.parent, path, what)
+    parts = processes if forking_available() else 1
     with _locked(folders):
-        partials: list[tuple[Path, Path, str, str]] = []
-        descriptors: list[int] = []
+        created = _Created()
+        placed: list[tuple[Path, Path, str, str]] = []
+        joins: list[tuple[list[int], str, str]] = []
         try:
-            tasks = []
-            for target, path, what, text in on_disk:
-                name, fd = _new_partial(target.parent, path, what)
-                partials.append((name, target, path, what))
-                descriptors.append(fd)
-                tasks.append((what, partial(_fill, fd, text, path, what)))
-            run_tasks(tasks, processes)
-            _rename_all(partials)
+            run_tasks(_fill_tasks(on_disk, parts, created, placed, joins), processes)
+            for descriptors, path, what in joins:
+                _join(descriptors, path, what)
+            _rename_all(placed)
         finally:
-            for fd in descriptors:
-                os.close(fd)
-            for name, *_ in partials:
-                _unlink_quietly(name)
+            created.remove()
     for path, _, text in files:
         if path == "-":
             write_stdout(text)  # type: ignore[arg-type]  # text: checked at the start
@@ -241,7 +251,81 @@ def _rename_all(partials: Sequence[tuple[Path, Path, str, str]]) -> None:
         raise
 
 
-def _fill(fd: int, content: Content, path: str, what: str) -> None:
+class _Created:
+    """The partial files of one ``write_files``: each open until the end, then removed
+    (the ones renamed into place are no longer there)."""
+
+    def __init__(self) -> None:
+        self.files: list[tuple[Path, int]] = []
+
+    def new(self, folder: Path, path: str, what: str) -> tuple[Path, int]:
+        created = _new_partial(folder, path, what)
+        self.files.append(created)
+        return created
+
+    def remove(self) -> None:
+        for name, fd in self.files:
+            os.close(fd)
+            _unlink_quietly(name)
+
+
+def _fill_tasks(on_disk: Sequence[tuple[Path, str, str, Content]], parts: int,
+                created: _Created, placed: list[tuple[Path, Path, str, str]],
+                joins: list[tuple[list[int], str, str]]) -> Iterator[tuple[str, Callable[[], None]]]:
+    """One task per partial file to fill, its file created just before; a file in parts
+    gets one partial file per part (the first is the one renamed in, the others are
+    joined to it after: ``joins``). ``Parts.writers`` runs here, between tasks."""
+    for target, path, what, content in on_disk:
+        name, fd = created.new(target.parent, path, what)
+        placed.append((name, target, path, what))
+        if not isinstance(content, Parts):
+            yield what, partial(_fill, fd, content, path, what)
+            continue
+        writers = content.writers(parts)
+        if not writers:
+            raise InternalError(f"the {what} came in no parts at all")
+        descriptors = [fd] + [created.new(target.parent, path, what)[1] for _ in writers[1:]]
+        joins.append((descriptors, path, what))
+        for part_fd, writer in zip(descriptors, writers):
+            yield what, partial(_fill, part_fd, writer, path, what)
+
+
+def _join(descriptors: Sequence[int], path: str, what: str) -> None:
+    """Append the second and later parts' files to the first's."""
+    first, *rest = descriptors
+    try:
+        os.lseek(first, 0, os.SEEK_END)
+        for part in rest:
+            _append(first, part)
+    except OSError as exc:
+        raise _write_error(exc, path, what) from None
+
+
+def _append(target: int, source: int) -> None:
+    """Copy the whole file open at ``source`` to the end of ``target`` (in the kernel where
+    it can: copy_file_range)."""
+    offset = 0
+    while True:
+        try:
+            copied = os.copy_file_range(source, target, 1 << 30, offset)
+        except (AttributeError, OSError) as exc:
+            if isinstance(exc, OSError) and exc.errno not in _NO_KERNEL_COPY:
+                raise
+            break
+        if copied == 0:
+            return
+        offset += copied
+    while chunk := os.pread(source, 1 << 20, offset):
+        offset += len(chunk)
+        view = memoryview(chunk)
+        while view:
+            view = view[os.write(target, view):]
+
+
+_NO_KERNEL_COPY = {errno.EXDEV, errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP}
+
+
+def _fill(fd: int, content: str | Writer, path: str, what: str) -> None:
     """Write ``content`` to the partial file open at ``fd`` (through a duplicate, so the
     caller closes ``fd`` itself, whichever process wrote)."""
     try:

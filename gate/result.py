@@ -431,7 +431,11 @@ class GateResult:
 
 # --- JSON-ready dicts -------------------------------------------------------
 
-def result_to_dict(result: GateResult) -> dict[str, Any]:
+def result_to_dict(result: GateResult, share: range | None = None) -> dict[str, Any]:
+    """The result as plain data; with ``share``, only the entries of that share (the others
+    None: the document of a process writing a share of the JSON report)."""
+    entries = [_entry_to_dict(e) for e in result.entries] if share is None else \
+        [_entry_to_dict(e) if k in share else None for k, e in enumerate(result.entries)]
     return {
         "command": result.command,
         "policies": list(result.policies),
@@ -441,7 +445,7 @@ def result_to_dict(result: GateResult) -> dict[str, Any]:
         "ungated": [{"model": u.model, "reason": u.reason, "skipped": u.skipped}
                     for u in result.ungated],
         "model_counts": result.model_counts,
-        "entries": [_entry_to_dict(e) for e in result.entries],
+        "entries": entries,
         **({"rules_source": _rules_to_dict(result.rules_source)} if result.rules_source else {}),
     }
 

@@ -295,6 +295,31 @@ def test_the_one_line_encoder_refuses_non_finite_numbers(bad: float) -> None:
         jsontext.encode_one_line({"macs": 1, "intensity": [bad]})
 
 
+@settings(max_examples=200, deadline=None)
+@given(st.lists(_rows, min_size=1, max_size=7), _rows, st.integers(min_value=1, max_value=9))
+def test_shares_of_a_document_joined_are_the_whole_document(items, rest, parts) -> None:
+    """The JSON report is rendered in shares side by side (-j N); each share's document
+    holds only its own items (None elsewhere). Joined, the shares are the whole text."""
+    items = [{"entry": item, "layers": [item, {}]} for item in items]  # containers: not a row
+    whole = jsontext.canonical_json({"head": rest, "result": {"entries": items, "z": 1}})
+    shares = jsontext.even_shares(len(items), min(parts, len(items)))
+    joined = []
+    for k, share in enumerate(shares):
+        mine = [item if i in share else None for i, item in enumerate(items)]
+        document = {"head": rest, "result": {"entries": mine, "z": 1}}
+        joined += jsontext.canonical_json_share(document, mine, share, first=k == 0,
+                                                last=k == len(shares) - 1)
+    assert "".join(joined) == whole
+
+
+def test_a_share_refuses_a_list_that_appears_twice() -> None:
+    items = [{"a": [{"b": 1}]}, {"a": [{"b": 2}]}]
+    document = {"one": items, "two": items}
+    with pytest.raises(InternalError, match="appears in it twice"):
+        "".join(jsontext.canonical_json_share(document, items, range(1), first=True,
+                                              last=False))
+
+
 def test_a_row_holding_another_type_goes_the_general_way() -> None:
     class Ratio(float):
         pass

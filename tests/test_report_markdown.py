@@ -118,6 +118,39 @@ def test_huge_result_fits_the_comment_limit_and_says_what_was_left_out() -> None
     assert text.count("<details>") == text.count("</details>")
 
 
+def test_detail_levels_share_what_they_show_alike(monkeypatch) -> None:
+    """A large result is rendered at several levels before one fits; each entry's overview
+    row and each block at a given detail are worked out once, not once per level."""
+    from gate.report import markdown
+
+    calls = {"rows": 0, "rules": 0}
+    row, rules = markdown._overview_row, markdown._rule_results
+
+    def counted_row(entry):
+        calls["rows"] += 1
+        return row(entry)
+
+    def counted_rules(entry, out):
+        calls["rules"] += 1
+        rules(entry, out)
+
+    monkeypatch.setattr(markdown, "_overview_row", counted_row)
+    monkeypatch.setattr(markdown, "_rule_results", counted_rules)
+    big = _big_result()
+    text = render(big)
+    assert "Trimmed to fit" in text  # several levels were rendered
+    assert calls["rows"] == len(big.entries)
+    # One block per entry and distinct (findings, layers, squeezed) detail, at most.
+    details = {(limits.findings, limits.layers, level > 0)
+               for level, limits in enumerate(markdown._LEVELS)}
+    assert calls["rules"] <= len(big.entries) * len(details)
+    monkeypatch.undo()
+    # The same text as each level rendered on its own (a fresh share per level).
+    alone = [markdown._render(big, limits, markdown._Shared.of(big), squeezed=level > 0)
+             for level, limits in enumerate(markdown._LEVELS)]
+    assert text == next(t for t in alone if comment_size(t) <= markdown.DEFAULT_BUDGET)
+
+
 def test_small_budget_still_gives_a_valid_report() -> None:
     text = render(_big_result(models=30), budget=2_000)
     assert comment_size(text) <= 2_000

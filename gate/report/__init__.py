@@ -14,9 +14,9 @@ from __future__ import annotations
 
 import importlib
 import io
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from functools import partial
-from typing import Protocol, TextIO, TypeVar
+from typing import Protocol, TextIO, TypeVar, cast
 
 import click
 
@@ -24,6 +24,8 @@ from gate.outfile import (
     TYPED_PATHS,
     Content,
     OutputRules,
+    Parts,
+    Writer,
     check_output_paths,
     write_files,
     write_text,
@@ -46,6 +48,13 @@ class Reporter(Protocol):
     help: str  # one line for --help
 
     def write(self, result: GateResult, stream: TextIO) -> None: ...
+
+
+class PartsReporter(Reporter, Protocol):
+    """A reporter whose file can be rendered in consecutive parts side by side (the JSON
+    report: the bulk of a large run's report time)."""
+
+    def write_parts(self, result: GateResult, parts: int) -> Sequence[Writer]: ...
 
 
 def all_reporters() -> list[Reporter]:
@@ -84,11 +93,20 @@ def write_reports(result: GateResult, paths: dict[str, str | None],
     for reporter in all_reporters():
         path = paths.get(reporter.name)
         if path:
-            content = render_report(reporter, result) if path == "-" else \
-                partial(reporter.write, result)
-            rendered.append((path, f"{reporter.name} report", content))
+            rendered.append((path, f"{reporter.name} report",
+                             _content(reporter, result, path, processes)))
     write_files(rendered, processes)
     return [path for path, _, _ in rendered]
+
+
+def _content(reporter: Reporter, result: GateResult, path: str, processes: int) -> Content:
+    """What ``write_files`` writes a report from: its text for stdout, else its writer, or
+    its parts when it has them and there are processes to render them side by side."""
+    if path == "-":
+        return render_report(reporter, result)
+    if processes > 1 and hasattr(reporter, "write_parts"):
+        return Parts(partial(cast(PartsReporter, reporter).write_parts, result))
+    return partial(reporter.write, result)
 
 
 F = TypeVar("F", bound=Callable[..., object])

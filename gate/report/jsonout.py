@@ -35,11 +35,18 @@ and add a line here and in docs/reports.md):
 from __future__ import annotations
 
 from dataclasses import asdict
+from functools import partial
 from typing import Any, TextIO
 
 from gate.errors import InputError
 from gate.gcpause import cyclic_gc_paused
-from gate.jsontext import canonical_json, canonical_json_pieces
+from gate.jsontext import (
+    canonical_json,
+    canonical_json_pieces,
+    canonical_json_share,
+    even_shares,
+)
+from gate.outfile import Writer
 from gate.result import GateResult, blocking_sentences, result_from_dict, result_to_dict
 from gate.snapshot import load_versioned_json
 
@@ -56,14 +63,32 @@ class JsonReporter:
             document = result_document(result)
         stream.writelines(canonical_json_pieces(document))
 
+    def write_parts(self, result: GateResult, parts: int) -> list[Writer]:
+        """Writers of up to ``parts`` consecutive parts of the same text, cut between
+        entries; each builds the document of its share of the entries only."""
+        shares = even_shares(len(result.entries), min(parts, len(result.entries)))
+        if len(shares) < 2:
+            return [partial(self.write, result)]
+        return [partial(_write_share, result, share, k == 0, k == len(shares) - 1)
+                for k, share in enumerate(shares)]
+
+
+def _write_share(result: GateResult, share: range, first: bool, last: bool,
+                 stream: TextIO) -> None:
+    with cyclic_gc_paused():
+        document = result_document(result, share)
+    stream.writelines(canonical_json_share(document, document["result"]["entries"], share,
+                                           first=first, last=last))
+
 
 REPORTER = JsonReporter()
 
 
-def result_document(result: GateResult) -> dict[str, Any]:
-    """The JSON-ready document of ``result``."""
+def result_document(result: GateResult, share: range | None = None) -> dict[str, Any]:
+    """The JSON-ready document of ``result`` (with ``share``: only those entries, the
+    others None, for ``canonical_json_share``)."""
     return {"format": RESULT_FORMAT, "version": RESULT_VERSION, "exit_code": result.exit_code,
-            "summary": summary_dict(result), "result": result_to_dict(result)}
+            "summary": summary_dict(result), "result": result_to_dict(result, share)}
 
 
 def summary_dict(result: GateResult) -> dict[str, Any]:

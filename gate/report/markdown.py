@@ -90,9 +90,28 @@ _LEVELS = (
 
 
 @dataclass
+class _Shared:
+    """What every detail level shows alike, worked out once per ``render`` rather than once
+    per level (a large result is rendered at several levels before one fits): the entries
+    worst first, the blocking sentences, and each overview row and block already rendered."""
+
+    ranked: tuple[Entry, ...]
+    sentences: list[str]
+    rows: dict[int, str] = field(default_factory=dict)  # id(entry) -> overview row
+    # (id(entry), findings, layers, squeezed) -> the block's lines and rows it left out
+    blocks: dict[tuple[int, int, int, bool], tuple[list[str], int]] = \
+        field(default_factory=dict)
+
+    @classmethod
+    def of(cls, result: GateResult) -> _Shared:
+        return cls(result.ranked_entries, blocking_sentences(result))
+
+
+@dataclass
 class _Render:
     limits: _Limits
     squeezed: bool  # True when detail was cut to fit the comment limit
+    shared: _Shared
     left_out: int = 0
     lines: list[str] = field(default_factory=list)
 
@@ -119,8 +138,9 @@ REPORTER = MarkdownReporter()
 def render(result: GateResult, budget: int = DEFAULT_BUDGET) -> str:
     """The comment text, at the most detailed level that fits ``budget`` characters."""
     text = ""
+    shared = _Shared.of(result)
     for level, limits in enumerate(_LEVELS):
-        text = _render(result, limits, squeezed=level > 0)
+        text = _render(result, limits, shared, squeezed=level > 0)
         if comment_size(text) <= budget:
             return text
     return _hard_cut(text, budget)
@@ -131,8 +151,9 @@ def comment_size(text: str) -> int:
     return len(text.encode("utf-16-le")) // 2
 
 
-def _render(result: GateResult, limits: _Limits, *, squeezed: bool = False) -> str:
-    out = _Render(limits, squeezed)
+def _render(result: GateResult, limits: _Limits, shared: _Shared, *,
+            squeezed: bool = False) -> str:
+    out = _Render(limits, squeezed, shared)
     out.lines += [MARKER, "", _headline(result)]
     rules, rules_first = rules_lines(result)
     out.lines += rules if rules_first else []
@@ -163,7 +184,7 @@ def _headline(result: GateResult) -> str:
 
 
 def _blocking(result: GateResult, out: _Render) -> None:
-    sentences = blocking_sentences(result)
+    sentences = out.shared.sentences
     if not sentences:
         return
     count = blocking_rule_count(result)
@@ -175,7 +196,7 @@ def _blocking(result: GateResult, out: _Render) -> None:
 
 
 def _warnings_line(result: GateResult, out: _Render) -> None:
-    warned = [v for e in result.ranked_entries for v in e.verdicts
+    warned = [v for e in out.shared.ranked for v in e.verdicts
               if v.status == FAIL and not v.blocks_merge]
     if not warned:
         return
@@ -223,12 +244,17 @@ def _ungated(result: GateResult, out: _Render) -> None:
 # --- overview ---------------------------------------------------------------------------
 
 def _overview(result: GateResult, out: _Render) -> None:
-    entries = result.ranked_entries
+    entries = out.shared.ranked
     limit = out.limits.summary_rows
     shown = entries if limit is None else entries[:limit]
     out.lines += ["", "| Status | Model | Target | Latency | Latency against base | Worst layer |",
                   "|---|---|---|---|---|---|"]
-    out.lines += ["| " + " | ".join(_overview_row(e)) + " |" for e in shown]
+    rows = out.shared.rows
+    for entry in shown:
+        row = rows.get(id(entry))
+        if row is None:
+            row = rows[id(entry)] = "| " + " | ".join(_overview_row(entry)) + " |"
+        out.lines.append(row)
     out.trimmed(len(shown), len(entries), "overview rows")
 
 
@@ -254,7 +280,7 @@ def _total_change(entry: Entry, metric: str) -> str:
 # --- per model x target blocks ------------------------------------------------------------
 
 def _blocks(result: GateResult, out: _Render) -> None:
-    entries = [e for e in result.ranked_entries if _has_details(e)]
+    entries = [e for e in out.shared.ranked if _has_details(e)]
     open_ = [e for e in entries if e.status_word in (FAIL, WARN)]
     folded = [e for e in entries if e.status_word not in (FAIL, WARN)]
     limit = out.limits.blocks
@@ -283,12 +309,20 @@ def _has_details(entry: Entry) -> bool:
 
 
 def _block(entry: Entry, out: _Render) -> None:
-    out.lines += ["", (f"### {entry.status_word} \u00b7 {md_escape(shorten(entry.model, 200))} "
-                      f"on {md_escape(entry.target)}")]
-    _notes(entry, out)
-    _totals(entry, out)
-    _rule_results(entry, out)
-    _layer_changes(entry, out)
+    """The entry's block, rendered once per detail it depends on (then reused)."""
+    key = (id(entry), out.limits.findings, out.limits.layers, out.squeezed)
+    done = out.shared.blocks.get(key)
+    if done is None:
+        block = _Render(out.limits, out.squeezed, out.shared)
+        block.lines += ["", (f"### {entry.status_word} \u00b7 "
+                             f"{md_escape(shorten(entry.model, 200))} on {md_escape(entry.target)}")]
+        _notes(entry, block)
+        _totals(entry, block)
+        _rule_results(entry, block)
+        _layer_changes(entry, block)
+        done = out.shared.blocks[key] = (block.lines, block.left_out)
+    out.lines += done[0]
+    out.left_out += done[1]
 
 
 def _notes(entry: Entry, out: _Render) -> None:
@@ -457,7 +491,8 @@ def _hard_cut(text: str, budget: int) -> str:
 
 def rendered_sizes(result: GateResult) -> Sequence[int]:
     """Size of every detail level (for tests and for tuning ``_LEVELS``)."""
-    return [comment_size(_render(result, limits, squeezed=level > 0))
+    shared = _Shared.of(result)
+    return [comment_size(_render(result, limits, shared, squeezed=level > 0))
             for level, limits in enumerate(_LEVELS)]
 
 
