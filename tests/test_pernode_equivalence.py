@@ -71,3 +71,18 @@ def test_an_unused_unsized_output_does_not_unmodel_the_layer(tmp_path) -> None: 
     proto.graph.value_info.append(vi("mask", None, TensorProto.BOOL))
     layer = profile_model(load_model(save(proto, tmp_path / "m.onnx"))).layers[0]
     assert layer.modelled and layer.output_bytes == 16 * 4
+
+
+def test_profile_rows_are_built_in_the_order_the_writer_sorts_them(analysed) -> None:  # type: ignore[no-untyped-def]
+    from gate.report.profile_text import _layer_dicts
+
+    def keys_sorted(value: object) -> bool:
+        if isinstance(value, dict):
+            return list(value) == sorted(value) and all(map(keys_sorted, value.values()))
+        if isinstance(value, list):
+            return all(map(keys_sorted, value))
+        return True
+
+    profile, _cost, _run = analysed
+    rows = list(_layer_dicts(profile))
+    assert rows and all(keys_sorted(row) for row in rows)
