@@ -297,13 +297,12 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
     """
     members = [layers[i] for i in group.members]
     kept = [_kept_params(m, m.index in group.folded, head) for m in members]
-    as_one = _replaced(
-        head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
-        param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
-        param_new_bytes=head.first_read_param_bytes + sum(new for _, new, _ in kept),
-        param_count=head.param_count + sum(count for _, _, count in kept))
-    cost = _cost_layer(as_one, ctx, epilogue_ops=group.epilogue_ops)
-    return _replaced(cost, fused_ops=tuple(m.op_type for m in members))
+    return _cost_layer(
+        _replaced(head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
+                  param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
+                  param_new_bytes=head.first_read_param_bytes + sum(new for _, new, _ in kept),
+                  param_count=head.param_count + sum(count for _, _, count in kept)),
+        ctx, epilogue_ops=group.epilogue_ops, fused_ops=tuple(m.op_type for m in members))
 
 
 def _replaced(record: _Record, **changes: Any) -> _Record:
@@ -357,7 +356,10 @@ def layer_engine(layer: LayerProfile, target: TargetProfile) -> str:
     return target.engine_for(layer.op_type, layer.domain, has_gemms, conv_kind(layer))
 
 
-def _cost_layer(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
+def _cost_layer(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0,
+                fused_ops: tuple[str, ...] = ()) -> LayerCost:
+    """``layer`` on its engine; ``epilogue_ops`` and ``fused_ops`` (the absorbed layers' op
+    types) when it stands for a fused group."""
     work = layer.work
     if not layer.modelled or work is None:
         return _unknown(layer, ctx)
@@ -366,7 +368,7 @@ def _cost_layer(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> La
     target = ctx.target
     engine = layer_engine(layer, target)
     if engine == "array":
-        return _on_array(layer, ctx, epilogue_ops)
+        return _on_array(layer, ctx, epilogue_ops, fused_ops)
     spec = target.vector if engine == "vector" else target.host
     if spec is None:
         raise InputError(f"target '{target.name}' declares no {engine} engine for layer "
@@ -375,7 +377,8 @@ def _cost_layer(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> La
     ops = work.vector_ops + work.macs
     if ops <= 0 and work.flops > 0:
         ops = work.flops
-    return _on_engine(layer, ctx, engine, spec, ops + epilogue_ops)
+    cost = _on_engine(layer, ctx, engine, spec, ops + epilogue_ops)
+    return _replaced(cost, fused_ops=fused_ops) if fused_ops else cost
 
 
 def conv_kind(layer: LayerProfile) -> str:
@@ -417,21 +420,26 @@ def _unknown(layer: LayerProfile, ctx: _Context) -> LayerCost:
         activations_fit=acts_fit, energy=None, modelled=False)
 
 
-def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0) -> LayerCost:
+def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0,
+              fused_ops: tuple[str, ...] = ()) -> LayerCost:
     """A layer on the PE array, costed once per distinct set of inputs to its cost.
 
     Why: large graphs repeat a few layer shapes, and costing one takes about ten
     microseconds. The key holds every figure of the layer the costing reads (its work,
-    precision, operand types and byte counts); the target is the context's own.
+    precision, operand types and byte counts) and the fused group's op types the cost
+    carries; the target is the context's own.
     """
     if layer.input_bytes is None or layer.output_bytes is None:
         return _on_array_once(layer, ctx, epilogue_ops)  # refused inside, naming the layer
     key = (layer.work, layer.precision, layer.input_dtypes[:1], layer.output_dtypes[:1],
            layer.input_bytes, layer.output_bytes, layer.param_bytes, layer.param_new_bytes,
-           layer.param_count, epilogue_ops)
+           layer.param_count, epilogue_ops, fused_ops)
     cost = ctx.array_costs.get(key)
     if cost is None:
-        cost = ctx.array_costs[key] = _on_array_once(layer, ctx, epilogue_ops)
+        cost = _on_array_once(layer, ctx, epilogue_ops)
+        if fused_ops:  # one record per distinct group, not a copy per group costed
+            cost = _replaced(cost, fused_ops=fused_ops)
+        ctx.array_costs[key] = cost
     if cost.index == layer.index and cost.name == layer.name:
         return cost
     return _replaced(cost, index=layer.index, name=layer.name)

@@ -18,7 +18,7 @@ from gate.profile import profile_model
 from gate.records import layer_to_dict, sorted_metrics
 from gate.summarize import LayerMetrics, build_run_record
 from gate.targets import load_target
-from tests.loadkit import model, save, small_cnn, vi
+from tests.loadkit import model, save, small_cnn, vi, weight
 
 
 @pytest.fixture(scope="module")
@@ -86,3 +86,21 @@ def test_profile_rows_are_built_in_the_order_the_writer_sorts_them(analysed) -> 
     profile, _cost, _run = analysed
     rows = list(_layer_dicts(profile))
     assert rows and all(keys_sorted(row) for row in rows)
+
+
+def test_fused_groups_alike_but_for_their_ops_keep_their_own_ops(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # Conv+LeakyRelu and Conv+Clip: same shapes, weights of the same size, and 2 epilogue
+    # ops per element each (ONNX spec formulas): every figure of the two groups' costing
+    # is alike, only the absorbed op types differ, and the remembered costs must keep them.
+    nodes = [helper.make_node("Conv", ["x", "w1"], ["c1"], name="conv1"),
+             helper.make_node("LeakyRelu", ["c1"], ["a1"], name="act1"),
+             helper.make_node("Conv", ["a1", "w2"], ["c2"], name="conv2"),
+             helper.make_node("Clip", ["c2"], ["y"], name="act2")]
+    proto = model(nodes, [vi("x", [1, 8, 4, 4])], [vi("y", [1, 8, 4, 4])],
+                  [weight("w1", [8, 8, 1, 1]), weight("w2", [8, 8, 1, 1])])
+    profile = profile_model(load_model(save(proto, tmp_path / "m.onnx")))
+    cost = cost_model(profile, load_target("ws-64x64-4mib"))
+    heads = {c.name: c for c in cost.layers if c.fused_ops}
+    assert heads["conv1"].fused_ops == ("LeakyRelu",) and heads["conv2"].fused_ops == ("Clip",)
+    assert heads["conv1"].latency_s == heads["conv2"].latency_s  # alike otherwise
+    assert heads["conv2"].index == 2 and cost.layers[3].fused_into == "conv2"
