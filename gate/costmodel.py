@@ -297,12 +297,18 @@ def _cost_group(head: LayerProfile, group: FusedGroup, ctx: _Context,
     """
     members = [layers[i] for i in group.members]
     kept = [_kept_params(m, m.index in group.folded, head) for m in members]
-    return _cost_layer(
-        _replaced(head, input_bytes=group.input_bytes, output_bytes=group.output_bytes,
-                  param_bytes=head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
-                  param_new_bytes=head.first_read_param_bytes + sum(new for _, new, _ in kept),
-                  param_count=head.param_count + sum(count for _, _, count in kept)),
-        ctx, epilogue_ops=group.epilogue_ops, fused_ops=tuple(m.op_type for m in members))
+    sizes = (group.input_bytes, group.output_bytes,  # the group's _SIZE_FIELDS
+             head.param_bytes + sum(nbytes for nbytes, _, _ in kept),
+             head.first_read_param_bytes + sum(new for _, new, _ in kept),
+             head.param_count + sum(count for _, _, count in kept))
+    fused_ops = tuple(m.op_type for m in members)
+    if layer_engine(head, ctx.target) == "array":  # as the group's layer would run
+        key = _array_key(head, sizes, group.epilogue_ops, fused_ops)
+        known = ctx.array_costs.get(key)
+        if known is not None:  # a group costed before: no layer record built to find it
+            return _as_layer(known, head)
+    return _cost_layer(_replaced(head, **dict(zip(_SIZE_FIELDS, sizes))), ctx,
+                       epilogue_ops=group.epilogue_ops, fused_ops=fused_ops)
 
 
 def _replaced(record: _Record, **changes: Any) -> _Record:
@@ -431,15 +437,31 @@ def _on_array(layer: LayerProfile, ctx: _Context, epilogue_ops: int = 0,
     """
     if layer.input_bytes is None or layer.output_bytes is None:
         return _on_array_once(layer, ctx, epilogue_ops)  # refused inside, naming the layer
-    key = (layer.work, layer.precision, layer.input_dtypes[:1], layer.output_dtypes[:1],
-           layer.input_bytes, layer.output_bytes, layer.param_bytes, layer.param_new_bytes,
-           layer.param_count, epilogue_ops, fused_ops)
+    key = _array_key(layer, _sizes(layer), epilogue_ops, fused_ops)
     cost = ctx.array_costs.get(key)
     if cost is None:
         cost = _on_array_once(layer, ctx, epilogue_ops)
         if fused_ops:  # one record per distinct group, not a copy per group costed
             cost = _replaced(cost, fused_ops=fused_ops)
         ctx.array_costs[key] = cost
+    return _as_layer(cost, layer)
+
+
+_SIZE_FIELDS = ("input_bytes", "output_bytes", "param_bytes", "param_new_bytes", "param_count")
+_sizes = attrgetter(*_SIZE_FIELDS)
+
+
+def _array_key(layer: LayerProfile, sizes: tuple[Any, ...], epilogue_ops: int,
+               fused_ops: tuple[str, ...]) -> tuple[Any, ...]:
+    """What the array cost of ``layer`` depends on: its work, precision and operand types,
+    ``sizes`` (its ``_SIZE_FIELDS`` in that order; a fused group's differ from its head's),
+    the epilogue and the group's op types."""
+    return (layer.work, layer.precision, layer.input_dtypes[:1], layer.output_dtypes[:1],
+            *sizes, epilogue_ops, fused_ops)
+
+
+def _as_layer(cost: LayerCost, layer: LayerProfile) -> LayerCost:
+    """A remembered cost under ``layer``'s index and name."""
     if cost.index == layer.index and cost.name == layer.name:
         return cost
     return _replaced(cost, index=layer.index, name=layer.name)

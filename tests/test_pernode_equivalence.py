@@ -104,3 +104,66 @@ def test_fused_groups_alike_but_for_their_ops_keep_their_own_ops(tmp_path) -> No
     assert heads["conv1"].fused_ops == ("LeakyRelu",) and heads["conv2"].fused_ops == ("Clip",)
     assert heads["conv1"].latency_s == heads["conv2"].latency_s  # alike otherwise
     assert heads["conv2"].index == 2 and cost.layers[3].fused_into == "conv2"
+
+
+class _Forgetful(dict):  # type: ignore[type-arg]
+    """An ``array_costs`` that remembers nothing: every layer and group costed afresh."""
+
+    def get(self, key, default=None):  # type: ignore[no-untyped-def]
+        return default
+
+
+def _costed_afresh(profile, target, **options):  # type: ignore[no-untyped-def]
+    """``cost_model`` with nothing remembered between layers."""
+    import gate.costmodel
+
+    context = gate.costmodel._Context
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(gate.costmodel, "_Context",
+                      lambda *args: context(*args, array_costs=_Forgetful()))
+        return cost_model(profile, target, **options)
+
+
+@pytest.fixture(scope="module")
+def networks(tmp_path_factory):  # type: ignore[no-untyped-def]
+    from gate.synth import archs
+    from gate.synth.forms import quantize
+
+    folder = tmp_path_factory.mktemp("nets")
+    built = {"resnet18": archs.resnet18(batch=1, resolution=64),
+             "resnet18-qdq": quantize(archs.resnet18(batch=1, resolution=64), "qdq"),
+             "mobilenet": archs.mobilenet_v1(0.25, 64, batch=1)}
+    return {name: load_model(save(proto, folder / f"{name}.onnx")) for name, proto in built.items()}
+
+
+@pytest.mark.parametrize("target", ["ws-64x64-4mib", "os-16x16-512kib"])
+@pytest.mark.parametrize("precision", [None, "int8"])
+def test_remembered_costs_are_the_costs_computed_afresh(networks, target,  # type: ignore[no-untyped-def]
+                                                       precision) -> None:
+    loaded_target = load_target(target)
+    for loaded in networks.values():
+        profile = profile_model(loaded, precision)
+        afresh = _costed_afresh(profile, loaded_target)
+        assert cost_model(profile, loaded_target) == afresh
+        assert any(cost.fused_ops for cost in afresh.layers)  # groups were costed
+
+
+def test_groups_alike_but_for_their_folded_parameters_keep_their_own_traffic(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # conv1 absorbs a per-channel Mul (8 scales), conv2 a per-pixel one (16): alike heads, alike
+    # op types, no epilogue; only the group's parameter figures differ. Weights not resident,
+    # so each group fetches its parameters: 8x8 fp32 weights (256 B) plus the folded scales,
+    # which fold into the conv's bias at the conv's 4 bytes per parameter (gate.costmodel).
+    nodes = [helper.make_node("Conv", ["x", "w1"], ["c1"], name="conv1"),
+             helper.make_node("Mul", ["c1", "s8"], ["m1"], name="scale1"),
+             helper.make_node("Conv", ["m1", "w2"], ["c2"], name="conv2"),
+             helper.make_node("Mul", ["c2", "s16"], ["y"], name="scale2")]
+    proto = model(nodes, [vi("x", [1, 8, 4, 4])], [vi("y", [1, 8, 4, 4])],
+                  [weight("w1", [8, 8, 1, 1]), weight("w2", [8, 8, 1, 1]),
+                   weight("s8", [1, 8, 1, 1]), weight("s16", [1, 1, 4, 4])])
+    profile = profile_model(load_model(save(proto, tmp_path / "m.onnx")))
+    target = load_target("ws-64x64-4mib")
+    cost = cost_model(profile, target, weights_resident=False)
+    heads = {c.name: c for c in cost.layers if c.fused_ops}
+    assert heads["conv1"].param_dram_bytes == 256 + 8 * 4
+    assert heads["conv2"].param_dram_bytes == 256 + 16 * 4
+    assert cost == _costed_afresh(profile, target, weights_resident=False)
