@@ -46,6 +46,11 @@ class ChildTraceback(Exception):
     """The traceback of a task that crashed in a child process, as text (its cause)."""
 
 
+def default_processes(requested: int) -> int:
+    """The processes ``-j N`` asks for: ``-j 0`` means one per CPU."""
+    return requested if requested > 0 else (os.cpu_count() or 1)
+
+
 def forking_available() -> bool:
     """Whether ``run_tasks`` runs tasks side by side here (Linux, where ``fork`` is safe)."""
     return sys.platform.startswith("linux") and hasattr(os, "fork")

@@ -370,11 +370,6 @@ def _analyse_in_process(job: Job) -> JobOutcome:
         raise internal_error(job.model, detail) from exc
 
 
-def default_workers(requested: int) -> int:
-    """``-j 0`` means one worker per CPU."""
-    return requested if requested > 0 else (os.cpu_count() or 1)
-
-
 class Progress:
     """Progress on stderr: a redrawn bar on a terminal, plain lines otherwise."""
 

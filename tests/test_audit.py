@@ -147,8 +147,12 @@ def test_progress_plain_lines_off_a_terminal_and_a_bar_on_one() -> None:
     assert "\r4/4 [########################] b.onnx" in text and text.endswith("\n")
 
 
-def test_default_workers() -> None:
-    assert jobs.default_workers(3) == 3 and jobs.default_workers(0) >= 1
+def test_default_processes() -> None:
+    import os
+
+    from gate.forked import default_processes
+
+    assert default_processes(3) == 3 and default_processes(0) == (os.cpu_count() or 1)
 
 
 def test_a_bug_in_a_worker_process_stops_the_run_as_an_internal_error(tmp_path, monkeypatch):

@@ -300,6 +300,9 @@ def test_sharded_audit_merged_equals_unsharded_byte_for_byte(zoo: Path) -> None:
     merged = runner.invoke(cli, ["merge", *reversed(shards), *reports("merged")])
     assert merged.exit_code == one.exit_code, merged.output
     assert read_reports("merged") == read_reports("j1")
+    side_by_side = runner.invoke(cli, ["merge", "-j", "2", *shards, *reports("merged2")])
+    assert side_by_side.exit_code == one.exit_code, side_by_side.output
+    assert read_reports("merged2") == read_reports("j1")
     assert "not an onnx" in one.stdout.lower() or "broken.onnx" in one.stdout
     missing = runner.invoke(cli, ["merge", shards[0], shards[2]])
     assert missing.exit_code == 2 and "missing shard(s) 2/3" in missing.stderr
@@ -313,7 +316,7 @@ def test_merge_reads_shards_without_importing_the_analysis_stack(zoo: Path) -> N
                                    "--shard-out", f"shards/s{index}.json"])
         assert done.exit_code in (0, 1, 2), done.output
     probe = ("import sys\nfrom gate.cli import main\n"
-             "sys.argv = ['roofgate', 'merge', 'shards/s1.json', 'shards/s2.json',"
+             "sys.argv = ['roofgate', 'merge', '-j', '2', 'shards/s1.json', 'shards/s2.json',"
              " '--json', 'merged.json']\n"
              "try:\n    main()\nfinally:\n"
              "    print(sorted(m for m in ('onnx', 'numpy') if m in sys.modules))\n")

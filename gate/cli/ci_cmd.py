@@ -86,8 +86,8 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
     Exit 0 pass, 1 a rule failed, 2 bad input or an unanalysable model.
     """
     from gate.ci import run_check
+    from gate.forked import default_processes
     from gate.gitscan import merge_base, repo_root
-    from gate.jobs import default_workers
     from gate.judge import utc_today
     from gate.rules_source import check_rules
 
@@ -101,7 +101,7 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
         paths = chosen_reports(kwargs, config)
         rules = output_rules(kwargs, config, root, chosen.repo_files)
         start_reports(paths, rules)
-        workers = default_workers(kwargs["jobs"])
+        workers = default_processes(kwargs["jobs"])
         result, title = run_check(root, config, base_ref, baseline=chosen.baseline,
                                   workers=workers, today=today, staged=staged)
         result = replace(result, rules_source=chosen.source,
@@ -152,7 +152,7 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
     got better or worse.
     """
     from gate.ci import run_audit
-    from gate.jobs import default_workers
+    from gate.forked import default_processes
     from gate.shards import parse_shard, shard_share, write_shard
 
     config = load_project(kwargs, require_targets=True)
@@ -160,7 +160,7 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
     rules = output_rules(kwargs, config, Path.cwd())
     start_reports(chosen_reports(kwargs, config) if shard is None else report_paths(kwargs), rules)
     shard_ij = parse_shard(shard) if shard else None
-    workers = default_workers(kwargs["jobs"])
+    workers = default_processes(kwargs["jobs"])
     result, models = run_audit(root, config, paths, baseline=kwargs["baseline"],
                                workers=workers, shard=shard_ij)
     if shard_ij is not None:
@@ -199,14 +199,18 @@ def _finish_audit(result: GateResult, paths: dict[str, str | None], title: str,
                "current folder or the nearest one above it).")
 @click.option("--snapshot", default=None, metavar="FILE",
               help="Write a baseline snapshot of the merged audit.")
+@click.option("-j", "--jobs", default=1, show_default=True, metavar="N",
+              type=click.IntRange(min=0),
+              help="Processes to render the report files side by side (0 = one per CPU).")
 @report_options
 def merge_command(shard_files: tuple[str, ...], config_path: str | None,
-                  snapshot: str | None, **kwargs: Any) -> None:
+                  snapshot: str | None, jobs: int, **kwargs: Any) -> None:
     """Combine `audit --shard` results into the reports an unsharded audit writes.
 
     Refuses a missing or duplicated shard, or shards from different roofgate
     versions or checkouts.
     """
+    from gate.forked import default_processes
     from gate.shards import read_shards
 
     config = load_project({"config_path": config_path})
@@ -216,7 +220,8 @@ def merge_command(shard_files: tuple[str, ...], config_path: str | None,
     result = read_shards(list(shard_files))
     models = len({e.model for e in result.entries} | {e.model for e in result.errors})
     _finish_audit(result, paths, f"roofgate audit (merged {len(shard_files)} "
-                  f"shards): {models} models", snapshot, rules=rules)
+                  f"shards): {models} models", snapshot, rules=rules,
+                  processes=default_processes(jobs))
 
 
 # --- demo -----------------------------------------------------------------------------
