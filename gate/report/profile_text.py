@@ -20,7 +20,7 @@ from gate import metrics, units
 from gate.costmodel import FUSION_MEMBER, ModelCost
 from gate.jsontext import encode_one_line
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
-from gate.model.graph import Shape
+from gate.model.graph import Shape, TensorInfo
 from gate.profile import LayerProfile, ModelProfile
 from gate.records import RunRecord, layer_to_dict, no_work_costed, run_to_dict
 from gate.targets.spec import TargetProfile
@@ -74,24 +74,28 @@ def shape_text(shape: Shape | None) -> str:
     return "?" if shape is None else "x".join(map(str, shape)) or "scalar"
 
 
-def layer_dict(layer: LayerProfile, input_names: Sequence[str],
-               output_names: Sequence[str]) -> dict[str, Any]:
-    """One row of the profile's ``layers``. Keys in sorted order, as the JSON writer sorts
-    them: sorting a sorted row is one pass instead of a sort per row of a large model."""
+def layer_dict(layer: LayerProfile, inputs: Sequence[TensorInfo | None],
+               outputs: Sequence[TensorInfo]) -> dict[str, Any]:
+    """One row of the profile's ``layers``; ``inputs`` and ``outputs`` are the layer's node's
+    tensors (their names; an omitted input is None). Keys in sorted order, as the JSON
+    writer sorts them: sorting a sorted row is one pass instead of a sort per row of a
+    large model."""
     return {
         "arithmetic_intensity": layer.arithmetic_intensity, "bytes_moved": layer.bytes_moved,
         "domain": layer.domain, "flops": layer.flops, "index": layer.index,
         "input_bytes": layer.input_bytes,
-        "inputs": [None if shape is None and not dtype else
-                   {"dtype": dtype, "name": name, "shape": None if shape is None else list(shape)}
-                   for name, shape, dtype in zip(input_names, layer.input_shapes,
-                                                 layer.input_dtypes)],
+        "inputs": [None if shape is None and not dtype else  # an omitted input: no dtype
+                   {"dtype": dtype, "name": tensor.name if tensor else "",
+                    "shape": None if shape is None else list(shape)}
+                   for tensor, shape, dtype in zip(inputs, layer.input_shapes,
+                                                   layer.input_dtypes)],
         "macs": layer.macs, "modelled": layer.modelled, "name": layer.name,
         "note": layer.work.note if layer.work else "", "op_type": layer.op_type,
         "output_bytes": layer.output_bytes,
-        "outputs": [{"dtype": dtype, "name": name, "shape": None if shape is None else list(shape)}
-                    for name, shape, dtype in zip(output_names, layer.output_shapes,
-                                                  layer.output_dtypes)],
+        "outputs": [{"dtype": dtype, "name": tensor.name,
+                     "shape": None if shape is None else list(shape)}
+                    for tensor, shape, dtype in zip(outputs, layer.output_shapes,
+                                                    layer.output_dtypes)],
         "param_bytes": layer.param_bytes, "param_count": layer.param_count,
         "param_names": list(layer.param_names), "param_reuse": layer.param_reuse,
         "precision": layer.precision, "role": layer.role,
@@ -107,8 +111,7 @@ def profile_dict(profile: ModelProfile, records: Sequence[RunRecord]) -> dict[st
 
 def _layer_dicts(profile: ModelProfile) -> Iterator[dict[str, Any]]:
     for layer, node in zip(profile.layers, profile.model.graph.nodes):
-        yield layer_dict(layer, [t.name if t else "" for t in node.inputs],
-                         [t.name for t in node.outputs])
+        yield layer_dict(layer, node.inputs, node.outputs)
 
 
 def _document_head(profile: ModelProfile) -> dict[str, Any]:
