@@ -42,6 +42,7 @@ from gate.model.order import OrderScan
 UNKNOWN_DIM = "?"
 MAX_SUBGRAPH_DEPTH = 64
 _SUBGRAPH_READER = "<subgraph>"  # a consumer that is a body graph (or a graph output)
+_QDQ_OPS = frozenset({"QuantizeLinear", "DequantizeLinear"})  # what ``_Walk.absorbs_qdq`` absorbs
 
 _INT_DTYPES = frozenset({"INT8", "UINT8", "INT16", "UINT16", "INT32", "UINT32", "INT64",
                          "UINT64", "BOOL", "INT4", "UINT4"})
@@ -221,9 +222,15 @@ class _Converter:
                   if is_parameter(op_type, i, inputs[i], source)] if input_sources else ()
         readers = walk.readers
         unused = [i for i, n in enumerate(output_names) if n and n not in readers]
+        name = proto.name
+        used_names = walk.used_names
+        if name and name not in used_names:  # the common case, without two calls
+            used_names.add(name)
+        else:
+            name = walk.unique_name(name, op_type, index)
         return Node(
             index=index,
-            name=walk.unique_name(proto.name, op_type, index),
+            name=name,
             op_type=op_type,
             domain="" if domain == "ai.onnx" else domain,
             inputs=inputs,
@@ -235,8 +242,8 @@ class _Converter:
                           if n and n in consts} or _NOTHING,
             param_sources=input_sources or _NOTHING,
             folded=folded,
-            qdq_absorbed=not folded and walk.absorbs_qdq(op_type, domain, input_names,
-                                                         output_names),
+            qdq_absorbed=(not folded and op_type in _QDQ_OPS  # most nodes: no call
+                          and walk.absorbs_qdq(op_type, domain, input_names, output_names)),
             unused_outputs=frozenset(unused) if unused else _NO_POSITIONS,
         )
 
@@ -365,13 +372,20 @@ class _Readers(dict[str, frozenset[str]]):
     def __init__(self) -> None:
         super().__init__()
         self.distinct: dict[frozenset[str], frozenset[str]] = {}
+        self.single: dict[str, frozenset[str]] = {}  # op type -> its one-type set (most names)
 
     def add(self, name: str, op_type: str) -> None:
         known = self.get(name)
-        if known is not None and op_type in known:
-            return
-        types = frozenset({op_type}) if known is None else known | {op_type}
-        self[name] = self.distinct.setdefault(types, types)
+        if known is None:  # a name's first reader: no set built
+            types = self.single.get(op_type)
+            if types is None:
+                types = self.single[op_type] = self._distinct(frozenset((op_type,)))
+            self[name] = types
+        elif op_type not in known:
+            self[name] = self._distinct(known | {op_type})
+
+    def _distinct(self, types: frozenset[str]) -> frozenset[str]:
+        return self.distinct.setdefault(types, types)
 
 
 def _names_read_in(graph: onnx.GraphProto) -> set[str]:
