@@ -119,7 +119,8 @@ class _Wiring:
     def of(graph: Graph) -> _Wiring:
         consumers: dict[str, list[int]] = {}
         producer: dict[str, int] = {}
-        for position, node in enumerate(graph.nodes):
+        constants: list[int] = []
+        for position, node in enumerate(graph.nodes):  # one pass over a large graph
             names = list(_names_read(node)) if node.subgraphs else [  # most: inputs only
                 t.name for t in node.inputs if t is not None and t.name]
             for name in dict.fromkeys(names) if len(names) > 1 else names:  # each reader once
@@ -131,9 +132,10 @@ class _Wiring:
             for tensor in node.outputs:
                 if tensor.name:
                     producer[tensor.name] = position
-        constants = frozenset(i for i, node in enumerate(graph.nodes)
-                              if node.op_type == "Constant" and not node.domain)
-        return _Wiring(consumers, producer, frozenset(t.name for t in graph.outputs), constants)
+            if node.op_type == "Constant" and not node.domain:
+                constants.append(position)
+        return _Wiring(consumers, producer, frozenset(t.name for t in graph.outputs),
+                       frozenset(constants))
 
     def sole_consumer(self, tensor: str) -> int | None:
         """The one layer reading ``tensor``, or None (several, none, or a graph output)."""
