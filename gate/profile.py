@@ -498,9 +498,9 @@ def _profile_layer(node: Node, counting: _Counting, ledger: _ParamLedger,
 _Side = tuple[tuple[Shape | None, ...], tuple[str, ...], int | None, bool, tuple[TensorInfo, ...]]
 
 
-def _activation_bytes(tensor: TensorInfo, counting: _Counting) -> int | None:
-    """Storage bytes of an activation as counted, None when unknown."""
-    count = tensor.numel  # cached per distinct shape
+def _activation_bytes(tensor: TensorInfo, count: int | None, counting: _Counting) -> int | None:
+    """Storage bytes of an activation as counted, None when unknown; ``count`` is its
+    element count (read once by the caller, who needs it too)."""
     if count is None:
         return None
     bits = counting.tensor_bits(tensor)
@@ -523,14 +523,15 @@ def _inputs(node: Node, params: dict[str, _Param], counting: _Counting) -> _Side
             continue
         shapes.append(tensor.shape)
         dtypes.append(tensor.dtype)
+        count = tensor.numel  # cached per distinct shape
         if sized:
-            sized = _sized(tensor)
+            sized = count is not None and DTYPE_BITS.get(tensor.dtype, 0) > 0
         name = tensor.name
         if (i in sources or i in param_inputs or name in params or name in counted
                 or nbytes is None):
             continue
         counted.add(name)
-        size = _activation_bytes(tensor, counting)
+        size = _activation_bytes(tensor, count, counting)
         nbytes = None if size is None else nbytes + size
     return tuple(shapes), tuple(dtypes), nbytes, sized, ()
 
@@ -550,17 +551,13 @@ def _outputs(node: Node, counting: _Counting) -> _Side:
         if not tensor.name or i in unused:
             continue
         used.append(tensor)
+        count = tensor.numel
         if sized:
-            sized = _sized(tensor)
+            sized = count is not None and DTYPE_BITS.get(tensor.dtype, 0) > 0
         if nbytes is not None:
-            size = _activation_bytes(tensor, counting)
+            size = _activation_bytes(tensor, count, counting)
             nbytes = None if size is None else nbytes + size
     return tuple(shapes), tuple(dtypes), nbytes, sized, tuple(used)
-
-
-def _sized(tensor: TensorInfo) -> bool:
-    """A static shape (element count cached per shape) and a fixed-size element type."""
-    return tensor.numel is not None and DTYPE_BITS.get(tensor.dtype, 0) > 0
 
 
 def _requantizes(node: Node, work: OpWork, precision: str, outputs: tuple[TensorInfo, ...],
