@@ -31,6 +31,7 @@ import os
 import select
 import signal
 import sys
+import threading
 import traceback
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
@@ -52,8 +53,11 @@ def default_processes(requested: int) -> int:
 
 
 def forking_available() -> bool:
-    """Whether ``run_tasks`` runs tasks side by side here (Linux, where ``fork`` is safe)."""
-    return sys.platform.startswith("linux") and hasattr(os, "fork")
+    """Whether ``run_tasks`` runs tasks side by side here: on Linux, and only while this
+    process runs one thread (a child forked beside another thread could inherit a lock
+    that thread holds, forever; the CLI's worker pool is shut down by then)."""
+    return sys.platform.startswith("linux") and hasattr(os, "fork") \
+        and threading.active_count() == 1
 
 
 def run_tasks(tasks: Iterable[tuple[str, Task]], processes: int) -> None:

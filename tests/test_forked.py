@@ -258,3 +258,21 @@ def test_the_json_report_is_rendered_in_shares_by_processes_of_their_own(
     shares = seen.read_text().split("\n")[:-1]  # only -j 2 renders in shares
     pids = {line.split()[0] for line in shares}
     assert len(shares) == 2 and len(pids) == 2 and str(os.getpid()) not in pids
+
+
+def test_one_after_another_while_another_thread_runs(tmp_path: Path) -> None:
+    """roofgate used as a library in a threaded program: no fork beside another thread."""
+    import threading
+
+    stop = threading.Event()
+    other = threading.Thread(target=stop.wait)
+    other.start()
+    try:
+        assert not forking_available()
+        paths = [tmp_path / f"{name}.txt" for name in "ab"]
+        write_files([(str(p), p.stem, _pid_writer) for p in paths], processes=2)
+        assert {int(p.read_text()) for p in paths} == {os.getpid()}
+    finally:
+        stop.set()
+        other.join()
+    assert forking_available()
