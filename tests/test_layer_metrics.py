@@ -10,15 +10,8 @@ from __future__ import annotations
 
 import pickle
 
-import pytest
-
-from gate.costmodel import cost_model
-from gate.model.loader import load_model
-from gate.profile import profile_model
 from gate.records import canonical_run, layer_to_dict
-from gate.summarize import LayerMetrics, build_run_record
-from gate.targets import load_target
-from tests.loadkit import save, small_cnn
+from gate.summarize import LayerMetrics
 
 
 def _expected(layer, cost) -> dict:  # type: ignore[no-untyped-def]
@@ -41,17 +34,8 @@ def _expected(layer, cost) -> dict:  # type: ignore[no-untyped-def]
     }
 
 
-@pytest.fixture(scope="module")
-def analysed(tmp_path_factory):  # type: ignore[no-untyped-def]
-    path = save(small_cnn(), tmp_path_factory.mktemp("m") / "cnn.onnx")
-    profile = profile_model(load_model(path))
-    target = load_target("ws-64x64-4mib")
-    cost = cost_model(profile, target)
-    return profile, cost, build_run_record(str(path), profile, cost, target)
-
-
-def test_metrics_view_is_the_dict_it_replaced(analysed) -> None:  # type: ignore[no-untyped-def]
-    profile, cost, run = analysed
+def test_metrics_view_is_the_dict_it_replaced(small_cnn_analysed) -> None:  # type: ignore[no-untyped-def]
+    profile, cost, run = small_cnn_analysed
     for layer, layer_cost, record in zip(profile.layers, cost.layers, run.layers):
         expected = _expected(layer, layer_cost)
         view = record.metrics
@@ -69,10 +53,10 @@ def test_metrics_view_is_the_dict_it_replaced(analysed) -> None:  # type: ignore
     assert run.layers[0].metrics != {**_expected(profile.layers[0], cost.layers[0]), "macs": -1}
 
 
-def test_a_layer_without_energy_reads_none_for_every_energy_metric(analysed) -> None:  # type: ignore[no-untyped-def]
+def test_a_layer_without_energy_reads_none_for_every_energy_metric(small_cnn_analysed) -> None:  # type: ignore[no-untyped-def]
     from dataclasses import replace
 
-    profile, cost, _run = analysed
+    profile, cost, _run = small_cnn_analysed
     layer, layer_cost = profile.layers[0], replace(cost.layers[0], energy=None)
     view = LayerMetrics(layer, layer_cost)
     expected = _expected(layer, layer_cost)
@@ -81,8 +65,8 @@ def test_a_layer_without_energy_reads_none_for_every_energy_metric(analysed) -> 
     assert view["energy_j"] is None and view["energy_noc_j"] is None
 
 
-def test_canonical_records_hold_plain_dicts(analysed) -> None:  # type: ignore[no-untyped-def]
-    _profile, _cost, run = analysed
+def test_canonical_records_hold_plain_dicts(small_cnn_analysed) -> None:  # type: ignore[no-untyped-def]
+    _profile, _cost, run = small_cnn_analysed
     canonical = canonical_run(run)
     assert all(type(layer.metrics) is dict for layer in canonical.layers)
     assert canonical == run  # equal: same names, values and order of every field

@@ -16,22 +16,13 @@ from gate.costmodel import cost_model
 from gate.model.loader import load_model
 from gate.profile import profile_model
 from gate.records import layer_to_dict, sorted_metrics
-from gate.summarize import LayerMetrics, build_run_record
+from gate.summarize import LayerMetrics
 from gate.targets import load_target
-from tests.loadkit import model, save, small_cnn, vi, weight
+from tests.loadkit import model, save, vi, weight
 
 
-@pytest.fixture(scope="module")
-def analysed(tmp_path_factory):  # type: ignore[no-untyped-def]
-    path = save(small_cnn(), tmp_path_factory.mktemp("m") / "cnn.onnx")
-    profile = profile_model(load_model(path))
-    target = load_target("ws-64x64-4mib")
-    cost = cost_model(profile, target)
-    return profile, cost, build_run_record(str(path), profile, cost, target)
-
-
-def test_sorted_metrics_are_the_sorted_dict_key_for_key(analysed) -> None:  # type: ignore[no-untyped-def]
-    profile, cost, run = analysed
+def test_sorted_metrics_are_the_sorted_dict_key_for_key(small_cnn_analysed) -> None:  # type: ignore[no-untyped-def]
+    profile, cost, run = small_cnn_analysed
     for layer, layer_cost, record in zip(profile.layers, cost.layers, run.layers):
         for view in (record.metrics, LayerMetrics(layer, replace(layer_cost, energy=None))):
             plain = dict(sorted(view.as_dict().items()))
@@ -73,7 +64,7 @@ def test_an_unused_unsized_output_does_not_unmodel_the_layer(tmp_path) -> None: 
     assert layer.modelled and layer.output_bytes == 16 * 4
 
 
-def test_profile_rows_are_built_in_the_order_the_writer_sorts_them(analysed) -> None:  # type: ignore[no-untyped-def]
+def test_profile_rows_are_built_in_the_order_the_writer_sorts_them(small_cnn_analysed) -> None:  # type: ignore[no-untyped-def]
     from gate.report.profile_text import _layer_dicts
 
     def keys_sorted(value: object) -> bool:
@@ -83,7 +74,7 @@ def test_profile_rows_are_built_in_the_order_the_writer_sorts_them(analysed) -> 
             return all(map(keys_sorted, value))
         return True
 
-    profile, _cost, _run = analysed
+    profile, _cost, _run = small_cnn_analysed
     rows = list(_layer_dicts(profile))
     assert rows and all(keys_sorted(row) for row in rows)
 
