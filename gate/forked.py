@@ -40,7 +40,12 @@ from gate.errors import EXIT_INTERNAL, InputError, InternalError, RoofgateError
 
 Task = Callable[[], None]
 
-_MESSAGE_BYTES = 32 * 1024  # a child's report of its failure; well under a pipe's buffer
+# A child's report of its failure: at most this many bytes, so writing it never waits for
+# the parent (a pipe holds 64 KiB). Its parts are cut so that even escaped as \uXXXX they
+# fit, and a message that would not fit is sent shorter, never cut mid-JSON.
+_MESSAGE_BYTES = 60 * 1024
+_MESSAGE_CHARS = 2_000
+_TRACEBACK_CHARS = 6_000
 
 
 class ChildTraceback(Exception):
@@ -164,12 +169,12 @@ def _run_child(task: Task, messages: int) -> None:
 def _describe(exc: BaseException) -> bytes:
     """A child's failure as a small JSON message (bounded in size)."""
     if isinstance(exc, RoofgateError):
-        data = {"message": exc.message, "exit_code": exc.exit_code}
+        data = {"message": exc.message[:_MESSAGE_CHARS], "exit_code": exc.exit_code}
     else:
         data = {"crash": " ".join(f"{type(exc).__name__}: {exc}".split())[:300],
                 "traceback": "".join(traceback.format_exception(
-                    type(exc), exc, exc.__traceback__))[-16 * 1024:]}
-    return json.dumps(data).encode("ascii")[:_MESSAGE_BYTES]
+                    type(exc), exc, exc.__traceback__))[-_TRACEBACK_CHARS:]}
+    return json.dumps(data).encode("ascii")  # 6 bytes a character at most: under the bound
 
 
 def _failure(label: str, message: bytes) -> RoofgateError:

@@ -276,3 +276,16 @@ def test_one_after_another_while_another_thread_runs(tmp_path: Path) -> None:
         stop.set()
         other.join()
     assert forking_available()
+
+
+def test_a_long_failure_message_still_fits_the_pipe() -> None:
+    """The child reports its failure in one write that must not wait for the parent (a
+    pipe holds 64 KiB): even the longest message, every character escaped, fits."""
+    from gate import forked
+
+    huge = "\u2028" * 100_000  # each escaped as \u2028: 6 bytes
+    for exc in (InputError(huge, huge), RuntimeError(huge)):
+        message = forked._describe(exc)
+        assert len(message) <= forked._MESSAGE_BYTES
+        error = forked._failure("json report", message)
+        assert "\u2028" in error.message or "RuntimeError" in error.message
