@@ -7,7 +7,7 @@ from functools import lru_cache
 from operator import attrgetter, itemgetter
 
 from gate.costmodel import EnergyBreakdown, LayerCost, ModelCost
-from gate.model.graph import Shape
+from gate.model.graph import Shape, cached_call
 from gate.profile import LayerProfile, ModelProfile
 from gate.records import LayerRecord, Metric, RunRecord, UnmodelledRecord
 from gate.targets.spec import TargetProfile
@@ -42,10 +42,7 @@ def layer_signature(layer: LayerProfile) -> str:
     """Op type plus shapes and dtypes: stable across exporters that rename nodes."""
     key = (layer.domain, layer.op_type, layer.input_shapes, layer.input_dtypes,
            layer.output_shapes, layer.output_dtypes)
-    try:
-        return _signature(*key)
-    except TypeError:  # an unhashable part (a list for a shape in a hand-built profile)
-        return _signature.__wrapped__(*key)
+    return cached_call(_signature, *key)
 
 
 @lru_cache(maxsize=1 << 14)  # layers repeat a few signatures: one string each, built once
@@ -158,19 +155,20 @@ class LayerMetrics(Mapping[str, Metric]):
     def __contains__(self, name: object) -> bool:
         return name in _LAYER_METRIC_READERS
 
-    def as_dict(self) -> dict[str, Metric]:
-        """Every metric, read at once into the dict this view stands for (three C-level
-        reads, not a call per metric: these dicts are built for every layer and side
-        sent between processes and written as JSON)."""
+    def _values(self) -> tuple[Metric, ...]:
+        """Every metric in record order, read at once (three C-level reads, not a call per
+        metric: these are read for every layer and side sent between processes and
+        written as JSON)."""
         layer, cost = self._layer, self._cost
-        return dict(zip(_LAYER_METRIC_NAMES,
-                        (*_read_profile(layer), *_read_cost(cost), *_derived(layer, cost))))
+        return (*_read_profile(layer), *_read_cost(cost), *_derived(layer, cost))
+
+    def as_dict(self) -> dict[str, Metric]:
+        """The dict this view stands for."""
+        return dict(zip(_LAYER_METRIC_NAMES, self._values()))
 
     def sorted_dict(self) -> dict[str, Metric]:
         """``dict(sorted(self.items()))``, without the sort (``gate.records.sorted_metrics``)."""
-        layer, cost = self._layer, self._cost
-        values = (*_read_profile(layer), *_read_cost(cost), *_derived(layer, cost))
-        return dict(zip(_SORTED_METRIC_NAMES, _in_sorted_order(values)))
+        return dict(zip(_SORTED_METRIC_NAMES, _in_sorted_order(self._values())))
 
     def items(self) -> ItemsView[str, Metric]:
         return self.as_dict().items()  # one pass, not a lookup per key (JSON writes them all)

@@ -7,11 +7,11 @@ no ``--dim`` binding resolved; ``shape is None`` means the rank is unknown.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from functools import lru_cache
 from math import prod
-from typing import Any
+from typing import Any, TypeVar
 
 # ONNX dims and element counts are int64 (protobuf); no size, dim or count may exceed this.
 INT64_MAX = 2**63 - 1
@@ -35,11 +35,22 @@ FLOAT_DTYPES = frozenset({
 })
 
 
+R = TypeVar("R")
+
+
+def cached_call(cached: Callable[..., R], *args: Any) -> R:
+    """``cached(*args)`` for an ``lru_cache`` function of shapes (graphs repeat a few);
+    when an argument is unhashable (a list for a shape in a hand-built TensorInfo or
+    profile) the function runs uncached."""
+    try:
+        return cached(*args)
+    except TypeError:
+        return cached.__wrapped__(*args)  # type: ignore[attr-defined,no-any-return]
+
+
 def static_numel(shape: Shape) -> int | None:
     """The element count of ``shape``, or None when a dim is not a known int."""
-    if shape.__class__ is tuple:
-        return _static_numel(shape)
-    return _static_numel.__wrapped__(shape)  # a list from a hand-built TensorInfo: unhashable
+    return cached_call(_static_numel, shape)
 
 
 @lru_cache(maxsize=1 << 16)  # a graph's tensors share a few shapes; asked many times per layer

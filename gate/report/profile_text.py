@@ -20,7 +20,7 @@ from gate import metrics, units
 from gate.costmodel import FUSION_MEMBER, ModelCost
 from gate.jsontext import encode_one_line
 from gate.logsafe import defuse_json_markers, defuse_runner_markers
-from gate.model.graph import Shape, TensorInfo
+from gate.model.graph import Shape, TensorInfo, cached_call
 from gate.profile import LayerProfile, ModelProfile
 from gate.records import RunRecord, layer_to_dict, no_work_costed, run_to_dict
 from gate.targets.spec import TargetProfile
@@ -304,10 +304,7 @@ def _aligned(rows: list[list[str]], widths: list[int], right_from: int) -> Itera
 
 def _known(shapes: Sequence[Shape | None]) -> bool:
     """Every (present) tensor's shape is fully numeric, so its byte count is real, not 0."""
-    try:
-        return _known_shapes(shapes)
-    except TypeError:  # an unhashable part (a list for a shape in a hand-built profile)
-        return _known_shapes.__wrapped__(shapes)
+    return cached_call(_known_shapes, shapes)
 
 
 @lru_cache(maxsize=1 << 14)  # layers share their shape tuples: one answer per distinct tuple
@@ -322,10 +319,7 @@ def _shapes_text(shapes: tuple[Shape | None, ...]) -> str:
 
 
 def _layer_cells(layer: LayerProfile) -> list[str]:
-    try:
-        out = _shapes_text(layer.output_shapes)
-    except TypeError:  # an unhashable part (a list for a shape in a hand-built profile)
-        out = _shapes_text.__wrapped__(layer.output_shapes)
+    out = cached_call(_shapes_text, layer.output_shapes)
     counted = layer.modelled
     return [str(layer.index), clean(layer.name, 40, keep_end=True), clean(layer.op_type, 24),
             clean(out, 24), layer.precision if layer.role == "layer" else layer.role,
