@@ -76,7 +76,9 @@ def canonical_json_share(data: Any, items: Sequence[Any], share: range, *, first
 
 
 def even_shares(count: int, parts: int) -> list[range]:
-    """``range(count)`` cut into ``parts`` consecutive shares of nearly equal size."""
+    """``range(count)`` cut into ``parts`` consecutive shares of nearly equal size (one
+    share, maybe empty, when ``parts`` is below 1 or ``count`` is 0)."""
+    parts = max(1, min(parts, count))
     bounds = [count * k // parts for k in range(parts + 1)]
     return [range(bounds[k], bounds[k + 1]) for k in range(parts)]
 

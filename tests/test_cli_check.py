@@ -178,6 +178,29 @@ def test_check_reports_are_byte_identical_with_one_or_two_workers(repo: Repo) ->
     assert read_reports("j1") == read_reports("j2")
 
 
+def test_a_run_that_judged_nothing_writes_the_same_reports_with_two_workers(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A target typo in the target branch's config: the changed model cannot be analysed,
+    so the run has no model x target at all (exit 2). With -j 2 its reports are rendered
+    side by side, and a JSON report without entries once crashed there (exit 3)."""
+    repo = Repo(tmp_path / "repo")
+    repo.write("roofgate.yaml", "targets: [ws-64x64-4mb]\npolicies: [policies/gate.yaml]\n")
+    repo.write("policies/gate.yaml", POLICY)
+    save_model(fc_model(256), repo.path / "models/a.onnx")
+    repo.commit("base, with a target typo")
+    repo.branch("pr")
+    save_model(fc_model(512), repo.path / "models/a.onnx")
+    repo.commit("a change")
+    monkeypatch.chdir(repo.path)
+    runner = CliRunner()
+    one = runner.invoke(cli, ["check", "--base", "main", "-j", "1", *reports("j1")])
+    two = runner.invoke(cli, ["check", "--base", "main", "-j", "2", *reports("j2")])
+    assert one.exit_code == two.exit_code == 2, two.output
+    assert "ws-64x64-4mb" in two.output and "internal error" not in two.output
+    assert json.loads(read_reports("j2")["result.json"])["result"]["entries"] == []
+    assert read_reports("j1") == read_reports("j2")
+
+
 def test_sides_left_per_change_are_counted_in_one_pass(repo: Repo, monkeypatch) -> None:
     """Knowing when a change's sides are all in (to judge it early) costs one look per
     side, not one per side and change: 1000 changed models once took 2 million."""

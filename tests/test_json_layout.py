@@ -312,6 +312,14 @@ def test_shares_of_a_document_joined_are_the_whole_document(items, rest, parts) 
     assert "".join(joined) == whole
 
 
+@given(st.integers(min_value=0, max_value=50), st.integers(min_value=-2, max_value=60))
+def test_even_shares_cover_every_item_once_in_order(count, parts) -> None:
+    shares = jsontext.even_shares(count, parts)
+    assert len(shares) == max(1, min(parts, count))  # one share even of nothing
+    assert [i for share in shares for i in share] == list(range(count))
+    assert max(map(len, shares)) - min(map(len, shares)) <= 1
+
+
 def test_a_share_refuses_a_list_that_appears_twice() -> None:
     items = [{"a": [{"b": 1}]}, {"a": [{"b": 2}]}]
     document = {"one": items, "two": items}

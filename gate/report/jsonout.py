@@ -66,7 +66,7 @@ class JsonReporter:
     def write_parts(self, result: GateResult, parts: int) -> list[Writer]:
         """Writers of up to ``parts`` consecutive parts of the same text, cut between
         entries; each builds the document of its share of the entries only."""
-        shares = even_shares(len(result.entries), min(parts, len(result.entries)))
+        shares = even_shares(len(result.entries), parts)
         if len(shares) < 2:
             return [partial(self.write, result)]
         return [partial(_write_share, result, share, k == 0, k == len(shares) - 1)
