@@ -1,6 +1,10 @@
 """The one owner of output files: where they may go and how they are written.
 
-'-' is stdout; folders are created. A file is first written to a partial file
+'-' is stdout; folders are created. A path that names a stream rather than a file
+(``stream_kind``: a character device such as /dev/null, a named pipe, bash's
+``>(...)``, /dev/stdout) is written into, after the files, and is never removed or
+replaced: renaming over /dev/null, as root in a CI container, would break every later
+step that uses it. A file is first written to a partial file
 created exclusively (``O_EXCL``, never through a symbolic link) under a name
 unique to this process, then renamed into place, so a crash never leaves a
 half-written file that a later step could read as a result, and a link
@@ -21,8 +25,10 @@ config, targets, baselines).
 from __future__ import annotations
 
 import errno
+import io
 import os
 import secrets
+import stat
 import sys
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import ExitStack, contextmanager
@@ -97,10 +103,15 @@ def check_output_paths(paths: Mapping[str, str], rules: OutputRules) -> None:
         if path == "-":
             continue
         target = placed_path(path, what)
-        reason = _placement_problem(target, path, rules, inputs)
+        kind = stream_kind(path)
+        reason = _placement_problem(target, path, rules, inputs) or (
+            "it is a block device (a disk); a report goes to a file, a pipe or a character "
+            "device such as /dev/null" if kind == BLOCK_DEVICE else "")
         if reason:
             raise InputError(f"the {what} may not be written here: {reason}; choose a path "
                              "inside the working tree, such as roofgate-out/", path)
+        if kind == STREAM:
+            continue  # written into, like stdout: two reports may share /dev/null
         if target in seen:
             raise InputError(f"the {what} and the {seen[target]} would be written to the same "
                              "file; give each report its own path", path)
@@ -117,6 +128,61 @@ def placed_path(path: str, what: str) -> Path:
         return given.parent.resolve() / given.name
     except (OSError, RuntimeError) as exc:  # a link loop in the folder
         raise InputError(f"cannot resolve the folder of the {what} ({exc})", path) from None
+
+
+STREAM, BLOCK_DEVICE = "stream", "block device"
+
+
+def stream_kind(path: str) -> str | None:
+    """``STREAM`` if ``path`` names a stream to write into rather than a file to replace:
+    a character device, a named pipe or a socket there, or a link in /dev or /proc
+    (/dev/stdout, /dev/fd/63 from bash's ``>(...)``); ``BLOCK_DEVICE`` for a disk; None
+    for a file, a folder, a link anywhere else, or nothing yet ('-' is stdout, not this).
+
+    A link outside /dev and /proc is never followed here: a link in the working tree
+    (one a pull request can commit) is replaced like a file, never written through.
+    """
+    if path == "-":
+        return None
+    try:
+        mode = os.lstat(path).st_mode
+        link = stat.S_ISLNK(mode)
+        if link:
+            if not _in_system_folder(path):
+                return None
+            mode = os.stat(path).st_mode
+    except (OSError, ValueError):
+        return None  # nothing there (or a dangling link): a new file
+    if stat.S_ISBLK(mode):
+        return BLOCK_DEVICE
+    if stat.S_ISREG(mode) or stat.S_ISDIR(mode):
+        # a link in /dev or /proc to a file (stdout redirected to one) is a stream still
+        return STREAM if link else None
+    return STREAM
+
+
+def goes_to_stdout(path: str) -> bool:
+    """Whether writing ``path`` writes to this process's stdout: '-', or a stream that is
+    stdout's own file (/dev/stdout, /proc/self/fd/1), so the caller moves its own
+    messages to stderr instead of mixing them into the report."""
+    if path == "-":
+        return True
+    if stream_kind(path) != STREAM:
+        return False
+    try:
+        there, out = os.stat(path), os.fstat(sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # stdout closed or not a real file
+        return False
+    return (there.st_dev, there.st_ino) == (out.st_dev, out.st_ino)
+
+
+def _in_system_folder(path: str) -> bool:
+    """Whether ``path``'s folder (links resolved) is /dev or lies in /proc."""
+    try:
+        folder = Path(os.path.abspath(path)).parent.resolve()
+    except (OSError, RuntimeError):
+        return False
+    return folder == Path("/dev") or folder.is_relative_to("/proc")
 
 
 def _placement_problem(target: Path, path: str, rules: OutputRules, inputs: set[Path]) -> str:
@@ -161,7 +227,12 @@ def write_files(files: Sequence[tuple[str, str, Content]], processes: int = 1) -
     """
     if any(path == "-" and not isinstance(content, str) for path, _, content in files):
         raise TypeError("stdout takes text (render it first), not a writer")
-    on_disk = [(placed_path(p, what), p, what, text) for p, what, text in files if p != "-"]
+    kinds = [stream_kind(path) for path, _, _ in files]
+    # a stream cannot be unwritten: its text is rendered whole before anything is written
+    streams = [(path, what, _rendered(content))
+               for (path, what, content), kind in zip(files, kinds) if kind == STREAM]
+    on_disk = [(placed_path(p, what), p, what, text)
+               for (p, what, text), kind in zip(files, kinds) if p != "-" and kind != STREAM]
     folders = sorted({target.parent for target, *_ in on_disk})
     for target, path, what, _ in on_disk:
         _make_folder(target.parent, path, what)
@@ -177,9 +248,12 @@ def write_files(files: Sequence[tuple[str, str, Content]], processes: int = 1) -
             _rename_all(placed)
         finally:
             created.remove()
-    for path, _, text in files:
+    for path, what, whole in streams:
+        with _stream(path, what) as stream:
+            stream.write(whole)
+    for path, _, content in files:
         if path == "-":
-            write_stdout(text)  # type: ignore[arg-type]  # text: checked at the start
+            write_stdout(content)  # type: ignore[arg-type]  # text: checked at the start
 
 
 def write_text(path: str, text: str, what: str) -> None:
@@ -192,6 +266,12 @@ def open_output(path: str, what: str) -> Iterator[TextIO]:
     """A text stream for ``path`` ('-' = stdout); the file appears only when the block succeeds."""
     if path == "-":
         yield sys.stdout
+        return
+    if stream_kind(path) == STREAM:
+        buffer = io.StringIO()  # a stream cannot be unwritten: written once the block succeeds
+        yield buffer
+        with _stream(path, what) as stream:
+            stream.write(buffer.getvalue())
         return
     target = placed_path(path, what)
     _make_folder(target.parent, path, what)
@@ -206,6 +286,34 @@ def open_output(path: str, what: str) -> Iterator[TextIO]:
             _rename_all([(name, target, path, what)])
     finally:
         _unlink_quietly(name)
+
+
+@contextmanager
+def _stream(path: str, what: str) -> Iterator[TextIO]:
+    """The stream at ``path`` opened for appending (never created, never truncated: a
+    device, a pipe, or /dev/stdout redirected to a file, which must not be overwritten
+    from its start); stdout is flushed first so what it already holds comes before."""
+    try:
+        sys.stdout.flush()
+    except (OSError, ValueError):
+        pass  # a broken stdout is reported where stdout itself is written
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_APPEND | getattr(os, "O_NOCTTY", 0)
+                     | getattr(os, "O_CLOEXEC", 0))
+        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as stream:
+            yield stream
+    except OSError as exc:
+        raise _write_error(exc, path, what) from None
+
+
+def _rendered(content: Content) -> str:
+    """The whole text of ``content``."""
+    if isinstance(content, str):
+        return content
+    buffer = io.StringIO()
+    for writer in content.writers(1) if isinstance(content, Parts) else [content]:
+        writer(buffer)
+    return buffer.getvalue()
 
 
 def write_stdout(text: str) -> None:
@@ -224,7 +332,7 @@ def remove_stale(paths: Sequence[str]) -> None:
     Called at the start of a run, after ``check_output_paths``, so an early
     exit cannot leave an old report that reads as this run's result.
     """
-    files = [p for p in paths if p != "-"]
+    files = [p for p in paths if p != "-" and stream_kind(p) is None]
     folders = sorted({placed_path(p, "report").parent for p in files})
     existing = [f for f in folders if f.is_dir()]
     with _locked(existing):

@@ -29,7 +29,13 @@ from gate.config import (
 from gate.errors import InputError
 from gate.model.graph import INT64_MAX
 from gate.model.shape_text import StaticShape, parse_shape_binding, shape_text
-from gate.outfile import TYPED_PATHS, OutputRules, check_output_paths, remove_stale
+from gate.outfile import (
+    TYPED_PATHS,
+    OutputRules,
+    check_output_paths,
+    goes_to_stdout,
+    remove_stale,
+)
 from gate.report import report_paths, report_targets, terminal, write_reports
 from gate.report.text import shorten
 from gate.result import GateResult
@@ -192,7 +198,7 @@ def finish(result: GateResult, paths: dict[str, str | None], title: str | None =
     """Write the reports (side by side when ``processes`` > 1), print the summary (to
     stderr when a report goes to stdout), exit."""
     written = write_reports(result, paths, rules, processes)
-    to_stdout = any(path == "-" for path in paths.values())
+    to_stdout = any(goes_to_stdout(path) for path in paths.values() if path)
     click.echo(terminal.render(result, [*written, *extra_written], title), nl=False,
                err=to_stdout)
     raise click.exceptions.Exit(result.exit_code)

@@ -28,7 +28,7 @@ from gate.cli.common import (
     start_reports,
 )
 from gate.errors import InputError
-from gate.outfile import OutputRules
+from gate.outfile import OutputRules, goes_to_stdout
 from gate.records import RunRecord
 from gate.report import report_options, report_paths, write_reports
 from gate.report.text import term_safe
@@ -140,7 +140,7 @@ def diff_command(old: str, new: str, limit: int, **kwargs: Any) -> None:
     config = load_project(kwargs, policies=False)
     result = diff_sides(config, old, new, explicit_targets=bool(kwargs["targets"]))
     written = write_reports(result, paths, rules)
-    to_stdout = any(path == "-" for path in paths.values())
+    to_stdout = any(goes_to_stdout(path) for path in paths.values() if path)
     _coverage_warnings([run for e in result.entries for run in (e.base, e.head) if run])
     click.echo(render_diff(result, limit, written, (old, new)), nl=False, err=to_stdout)
 
