@@ -732,6 +732,74 @@ def test_debug_shows_the_traceback_and_normal_runs_do_not(tmp_path, debug) -> No
         assert done.returncode == 3
 
 
+# --- closed standard streams ---------------------------------------------------------------
+# A launcher may start roofgate with stdin, stdout or stderr closed (``2>&-``), or with one
+# of them holding a file it opened read-only since (a shell reading a wrapper script).
+# Python then leaves None in sys.stderr (or a stream that cannot be written): the first
+# progress line crashed a passing audit into exit 3 (closed) or exit 1, "a rule failed",
+# with no message at all (read-only, as a pyenv shim leaves it).
+
+def _run_with_fds(fds: dict[int, str], args: list[str], cwd: Path) -> subprocess.CompletedProcess[str]:
+    """``roofgate ARGS`` in a child whose descriptors ``fds`` are 'closed' or 'read-only'
+    (the others captured)."""
+    def prepare() -> None:
+        for fd, how in fds.items():
+            os.close(fd)
+            if how == "read-only":
+                opened = os.open(sys.executable, os.O_RDONLY)
+                if opened != fd:
+                    os.dup2(opened, fd)
+                    os.close(opened)
+
+    return subprocess.run([sys.executable, "-c", "from gate.cli import main; main()", *args],
+                          capture_output=True, text=True, timeout=120, check=False, cwd=cwd,
+                          preexec_fn=prepare)
+
+
+@pytest.mark.parametrize("how", ["closed", "read-only"])
+def test_a_closed_stderr_keeps_every_exit_code_and_report(tmp_path, how) -> None:
+    """``audit`` writes progress to stderr, which crashed the run (exit 3 or 1); now each
+    verdict keeps its own exit code."""
+    (tmp_path / "zoo").mkdir()
+    save(small_cnn(), tmp_path / "zoo" / "m.onnx")
+    common = ["-t", TARGET, "-p", DEFAULT_POLICY]
+    passed = _run_with_fds({2: how}, ["audit", "zoo", *common, "--json", "r.json"], tmp_path)
+    assert passed.returncode == 0, passed.stdout
+    assert json.loads((tmp_path / "r.json").read_text())["summary"]["status"] == "passed"
+    assert "PASSED" in passed.stdout
+    missing = _run_with_fds({2: how}, ["audit", "nowhere", *common], tmp_path)
+    assert missing.returncode == 2
+    failed = _run_with_fds({2: how}, ["audit", "zoo", "-t", TARGET, "-p",
+                                      str(_write_policy(tmp_path))], tmp_path)
+    assert failed.returncode == 1, failed.stdout
+    assert "FAILED" in failed.stdout
+
+
+def _write_policy(folder: Path) -> Path:
+    """A policy no model can meet (utilization of every layer at least 100%)."""
+    policy = folder / "strict.yaml"
+    policy.write_text("version: 1\nname: strict\nrules:\n  - kind: min_utilization\n"
+                      "    id: all-busy\n    min: 1.0\n", encoding="utf-8")
+    return policy
+
+
+@pytest.mark.parametrize("how", ["closed", "read-only"])
+def test_a_closed_stdout_is_exit_2_with_the_reason_and_a_closed_stdin_is_fine(
+        tmp_path, how) -> None:
+    path = save(small_cnn(), tmp_path / "m.onnx")
+    args = ["evaluate", str(path), "-t", TARGET, "-p", DEFAULT_POLICY]
+    no_stdout = _run_with_fds({1: how}, args, tmp_path)
+    assert no_stdout.returncode == 2
+    assert "standard output is closed" in no_stdout.stderr
+    assert_no_traceback_text(no_stdout.stderr)
+    no_stdin = _run_with_fds({0: "closed"}, args, tmp_path)
+    assert no_stdin.returncode == 0, no_stdin.stderr
+
+
+def assert_no_traceback_text(text: str) -> None:
+    assert "Traceback" not in text, text
+
+
 # --- safe loaders ------------------------------------------------------------------------------
 
 FORBIDDEN = [r"\bpickle\b", r"(?<![\w.])eval\(", r"(?<![\w.])exec\(", r"yaml\.load\(",

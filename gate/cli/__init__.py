@@ -20,6 +20,11 @@ import traceback
 
 import click
 
+try:  # POSIX: the access mode of the standard descriptors
+    import fcntl
+except ImportError:  # pragma: no cover - Windows
+    fcntl = None  # type: ignore[assignment]
+
 from gate import __version__
 from gate.errors import InputError, InternalError
 
@@ -132,6 +137,7 @@ def cli(debug: bool) -> None:
 
 def main() -> None:
     """Console-script entry point; SIGTERM ends the run (and its worker processes) cleanly."""
+    _refuse_closed_stdout(_occupy_closed_standard_fds())
     signal.signal(signal.SIGTERM, _terminated)
     code: object
     try:
@@ -140,6 +146,52 @@ def main() -> None:
         code = exc.code
     _flush_or_drop_stdout()
     sys.exit(code)
+
+
+def _occupy_closed_standard_fds() -> set[int]:
+    """Point each closed standard descriptor (``2>&-``, a launcher that closed them) at
+    /dev/null and return the closed ones.
+
+    Left closed, the first file the run opens would take its number (git's error
+    messages, fd 2 of the processes started here, would land in it), and the first
+    progress line crashed a passing run: into exit 3 when Python left None in
+    ``sys.stderr``, into exit 1 ("a rule failed") with no message at all when a wrapper
+    left a file open there read-only (a pyenv shim does). With stderr closed, messages
+    are dropped; the exit code still carries the verdict.
+    """
+    closed = {fd for fd in (0, 1, 2) if not _usable(fd)}
+    for fd in sorted(closed):
+        devnull = os.open(os.devnull, os.O_RDWR)
+        if devnull != fd:
+            os.dup2(devnull, fd)
+            os.close(devnull)
+    if 1 in closed and sys.stdout is None:
+        sys.stdout = open(1, "w", encoding="utf-8", closefd=False)  # noqa: SIM115
+    if 2 in closed and sys.stderr is None:
+        sys.stderr = open(2, "w", encoding="utf-8", closefd=False)  # noqa: SIM115
+    return closed
+
+
+def _usable(fd: int) -> bool:
+    """Whether ``fd`` is open, and for stdout and stderr open for writing (a closed one
+    may hold a file the launcher opened since: a shell reading a wrapper script)."""
+    try:
+        if fcntl is None:
+            os.fstat(fd)
+            return True
+        flags = fcntl.fcntl(fd, fcntl.F_GETFL)
+    except OSError:
+        return False
+    return fd == 0 or flags & os.O_ACCMODE != os.O_RDONLY
+
+
+def _refuse_closed_stdout(closed: set[int]) -> None:
+    """Exit 2 when stdout was closed: the summary (or a report sent to '-') has nowhere to
+    go, as a full or broken stdout is exit 2."""
+    if 1 in closed:
+        click.echo("Error: standard output is closed (>&-); leave it open, or send it to "
+                   "/dev/null to discard the summary", err=True)
+        sys.exit(InputError.exit_code)
 
 
 def _flush_or_drop_stdout() -> None:
