@@ -34,7 +34,14 @@ from gate.gating import (
 from gate.judge import base_by_model, combine_results, judge, utc_today
 from gate.records import RunRecord
 from gate.result import GateResult, ModelError, UngatedModel
-from gate.selection import check_globs, files_under, is_onnx, model_files, ungated_model
+from gate.selection import (
+    check_globs,
+    files_under,
+    is_onnx,
+    listed,
+    model_files,
+    ungated_model,
+)
 from gate.shards import shard_share
 
 _Analysed = engine.Analysed
@@ -270,7 +277,7 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
         if not path.exists():
             raise InputError("no such file or folder", given)
         files = [path] if path.is_file() else sorted(
-            p for p in path.rglob("*") if p.is_file() and ".git" not in p.parts)
+            p for p in path.rglob("*") if listed(p) and ".git" not in p.parts)
         if not path.is_file():
             refuse_links_out((root, path), files)
         for file in files:
@@ -299,8 +306,10 @@ def refuse_links_out(tops: Sequence[Path], files: Sequence[Path]) -> None:
 
 
 def _model_name(root: Path, file: Path) -> str:
+    # a link to nothing is named by where it lies, not by where it points
+    resolved = file.resolve() if file.exists() else file.parent.resolve() / file.name
     try:
-        return file.resolve().relative_to(root.resolve()).as_posix()
+        return resolved.relative_to(root.resolve()).as_posix()
     except ValueError:
         return file.as_posix()
 

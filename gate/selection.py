@@ -73,9 +73,17 @@ def _glob_hint(pattern: str, files: Sequence[str]) -> str:
 
 
 def files_under(root: Path) -> list[str]:
-    """Every file below ``root`` (outside ``.git``), as sorted root-relative POSIX paths."""
+    """Every file below ``root`` (outside ``.git``), as sorted root-relative POSIX paths
+    (a link to nothing included: ``listed``)."""
     return sorted(p.relative_to(root).as_posix() for p in root.rglob("*")
-                  if p.is_file() and ".git" not in p.relative_to(root).parts)
+                  if listed(p) and ".git" not in p.relative_to(root).parts)
+
+
+def listed(path: Path) -> bool:
+    """Whether a walk over a folder lists ``path``: a file, or a link to nothing (a model
+    whose content was never fetched, as git-annex leaves it, or whose target moved), so
+    the loader says what is wrong instead of the audit passing without it."""
+    return path.is_file() or (path.is_symlink() and not path.exists())
 
 
 def model_files(config: ProjectConfig, files: Iterable[str]) -> list[str]:

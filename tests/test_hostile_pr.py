@@ -793,6 +793,27 @@ def test_audit_does_not_follow_links_out_of_the_repository(tmp_path: Path) -> No
     assert fingerprint(repo) == before
 
 
+def test_a_link_to_nothing_is_never_skipped_unseen(tmp_path: Path) -> None:
+    """A model committed as a link whose content was never fetched (git-annex leaves a link
+    into .git/annex; a moved target leaves one to nowhere) was left out of the walk as
+    "not a file": the audit passed without it. It now fails closed, naming the link."""
+    repo = make_repo(tmp_path, f"targets: [{TARGET}]\npolicies: [policies/gate.yaml]\n")
+    os.symlink("../.git/annex/objects/Xq/SHA256E-s1--00.onnx", repo.path / "models/annexed.onnx")
+    repo.commit("a model whose content was not fetched")
+    audited = run_cli(repo, "audit", "--json", f"{REPORT_DIR}/audit.json")
+    assert audited.returncode == 2, audited.stdout + audited.stderr
+    assert "models/annexed.onnx: a link to a missing file" in audited.stdout
+    data = json.loads((repo.path / REPORT_DIR / "audit.json").read_text())
+    assert [e["model"] for e in data["result"]["errors"]] == ["models/annexed.onnx"]
+    evaluated = run_cli(repo, "evaluate", "models/annexed.onnx")
+    assert evaluated.returncode == 2 and "a link to a missing file" in evaluated.stdout
+    os.remove(repo.path / "models/annexed.onnx")
+    os.symlink(tmp_path / "moved-away.onnx", repo.path / "models/dangling.onnx")
+    outside = run_cli(repo, "audit")
+    assert outside.returncode == 2 and "a link leading out of the repository" in outside.stderr
+    assert "Traceback" not in audited.stderr + evaluated.stderr + outside.stderr
+
+
 # --- 1. rules come from the base -----------------------------------------------------------
 
 WAIVER = """

@@ -42,7 +42,7 @@ import onnx.inliner
 import onnx.shape_inference
 from google.protobuf.message import DecodeError
 
-from gate.errors import InputError
+from gate.errors import InputError, one_safe_line
 from gate.model.contrib_shapes import register_contrib_schemas
 from gate.model.convert import (
     UNKNOWN_DIM,
@@ -183,6 +183,10 @@ def _check_file(path: str) -> int:
         with open(path, "rb") as handle:
             head = handle.read(len(_LFS_MAGIC))
     except FileNotFoundError:
+        if os.path.islink(path):
+            raise InputError(f"a link to a missing file ({_link_target(path)}); fetch the "
+                             "content it points to (e.g. git annex get) or remove the link",
+                             path) from None
         raise InputError("model file not found; check the path", path) from None
     except IsADirectoryError:
         raise InputError("is a directory, not an ONNX model file; pass the .onnx file", path) from None
@@ -190,6 +194,13 @@ def _check_file(path: str) -> int:
         raise InputError(f"cannot read the model file ({exc.strerror}); check its permissions",
                          path) from None
     return _check_head(size_bytes, head, path)
+
+
+def _link_target(path: str) -> str:
+    try:
+        return one_safe_line(os.readlink(path))
+    except OSError:
+        return "unreadable"
 
 
 def _check_head(size_bytes: int, head: bytes, path: str) -> int:
