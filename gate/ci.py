@@ -21,7 +21,7 @@ from pathlib import Path
 from gate import gitscan
 from gate import jobs as engine
 from gate.config import ModelGroup, ProjectConfig, resolve_file
-from gate.errors import InputError
+from gate.errors import InputError, one_safe_line
 from gate.gating import (
     PolicyCache,
     check_scopes,
@@ -324,6 +324,10 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
     stored = base_by_model(read_snapshot_runs(baseline)) if baseline else {}
     gone = [m for m in stored if m not in present and _in_scope(root, config, paths, m)]
     models = sorted({*present, *gone})
+    if not models and not ungated:  # an audit that checks nothing must not read as a pass
+        where = ", ".join(one_safe_line(p) for p in paths) or "the repository"
+        raise InputError(f"no model to audit under {where}: no .onnx file there (and none "
+                         "in the baseline); check the path, or point audit at the models")
     mine = shard_share(models, *shard) if shard else models
     policies = PolicyCache(config, today)
     planned = [(m, _audit_group(config, m)) for m in present]

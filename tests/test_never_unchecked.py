@@ -137,6 +137,20 @@ def test_audit_lists_stray_models_and_skips_ungated_ones(zoo: Path) -> None:
     assert "SKIPPED  scratch/b.onnx: skipped: listed under 'ungated:'" in result.output
 
 
+def test_audit_of_a_folder_without_models_is_exit_2_not_a_pass(zoo: Path) -> None:
+    """``audit PATH`` on a folder holding no model (a wrong path, models not downloaded
+    yet) checked nothing and passed; a shard left empty by the deal still passes, since
+    the merge covers the zoo."""
+    (zoo / "downloads").mkdir()
+    write(zoo, "downloads/README.md", "models land here\n")
+    result = invoke(["audit", "downloads"])
+    assert result.exit_code == 2, result.output
+    assert "no model to audit under downloads" in one_line(result)
+    assert not (zoo / "roofgate-out" / "result.json").exists()
+    empty_shard = invoke(["audit", "--shard", "2/2", "--shard-out", "s2.json"])
+    assert empty_shard.exit_code == 0, empty_shard.output  # one model: shard 2 gets none
+
+
 # --- a policy or rule scope typo -------------------------------------------------------
 
 SCOPE_TYPOS = {
