@@ -13,6 +13,7 @@ then the gate runs once on every model it could read.
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from importlib import resources
@@ -52,11 +53,12 @@ class Plan:
 
 
 def find_models(root: Path) -> list[FoundModel]:
-    """Every ``.onnx`` file git knows in ``root`` (tracked or untracked-not-ignored), read."""
+    """Every ``.onnx`` file git knows in ``root`` (tracked or untracked-not-ignored) that
+    is in the working tree (one deleted there but still in the index is gone), read."""
     raw = gitscan.git(["ls-files", "-z", "--cached", "--others", "--exclude-standard", "--",
                        "*.onnx"], root, what="listing the repository's files")
     names = sorted({n.decode("utf-8", "surrogateescape") for n in raw.split(b"\0") if n})
-    return [inspect_model(root, name) for name in names]
+    return [inspect_model(root, name) for name in names if os.path.lexists(root / name)]
 
 
 def inspect_model(root: Path, name: str) -> FoundModel:
@@ -64,9 +66,12 @@ def inspect_model(root: Path, name: str) -> FoundModel:
     from gate.model.loader import load_model
 
     path = root / name
-    with open(path, "rb") as head:
-        if gitscan.is_lfs_pointer(head.read(gitscan.LFS_POINTER_MAX_BYTES + 1)):
-            return FoundModel(name, lfs_pointer=True)
+    try:
+        with open(path, "rb") as head:
+            if gitscan.is_lfs_pointer(head.read(gitscan.LFS_POINTER_MAX_BYTES + 1)):
+                return FoundModel(name, lfs_pointer=True)
+    except OSError:
+        pass  # a link to nothing, unreadable: the loader says which
     try:
         return FoundModel(name, dims=tuple(sorted(load_model(path).unbound_dims)))
     except RoofgateError as exc:

@@ -107,6 +107,21 @@ def test_init_explains_what_to_fetch_for_an_lfs_pointer(repo: Repo) -> None:
     assert "roofgate init --force" in out
 
 
+def test_init_explains_a_model_it_cannot_open_instead_of_crashing(repo: Repo) -> None:
+    """A model deleted from the working tree but still in the index, and a link to
+    nothing (git-annex content not fetched), are listed by git but cannot be opened:
+    init crashed (exit 3). The deleted one is gone (no glob is written for its folder);
+    the link is named with the reason; the rest is gated."""
+    (repo.path / "models/cam/a.onnx").unlink()
+    (repo.path / "models/annexed.onnx").symlink_to("../.git/annex/objects/xx/m.onnx")
+    code, out = invoke("init")
+    assert code == 0, out
+    assert "models/cam" not in out + (repo.path / "roofgate.yaml").read_text()
+    assert "models/annexed.onnx: could not be read" in out
+    assert "a link to a missing file" in out and "Traceback" not in out
+    assert "PASS     models/odd[1]/b.onnx" in out
+
+
 def test_init_names_the_dims_it_could_not_pick(repo: Repo) -> None:
     b = NetBuilder("seqnet", weights="external")
     x = b.input("x", ["tokens", 256])
