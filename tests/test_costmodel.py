@@ -432,17 +432,21 @@ def test_depthwise_layer_uses_the_array_far_worse_than_a_standard_conv_of_equal_
 # ------------------------------------------------------------------ facts of the trade, end to end
 
 def _cost_of(proto: object, tmp_path_factory: pytest.TempPathFactory, dims: dict[str, int],
-             target_name: str = "ws-64x64-4mib", precision: str = "int8",
+             target_name: str | None = None, precision: str = "int8",
              changes: dict[str, object] | None = None):
+    """Profile and cost ``proto``; on the trade-sized test target (tests/tradekit.py)
+    unless a built-in ``target_name`` is given."""
     from gate.model.loader import load_model
     from gate.profile import profile_model
     from gate.synth.builder import save_model
     from gate.targets import load_target
+    from tests.tradekit import trade_sized_target
 
     path = tmp_path_factory.mktemp("models") / "model.onnx"
     save_model(proto, path)  # type: ignore[arg-type]
     profile = profile_model(load_model(path, dims), precision)
-    target = replace(load_target(target_name), **(changes or {}))  # type: ignore[arg-type]
+    base = load_target(target_name) if target_name else trade_sized_target()
+    target = replace(base, **(changes or {}))  # type: ignore[arg-type]
     return profile, cost_model(profile, target)
 
 

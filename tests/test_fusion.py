@@ -224,11 +224,13 @@ def test_resnet50_on_a_2_tflops_weight_stationary_array_runs_at_about_half_of_pe
         tmp_path_factory: pytest.TempPathFactory) -> None:
     # Common practice, no source: CNNs average roughly half of peak on a large
     # weight-stationary array of about 2 TFLOP/s with 4 MiB of parameter and 2 MiB of
-    # activation buffer (ws-64x64-4mib at fp16 is that array: 2.05 TFLOP/s). A range.
+    # activation buffer (tests/tradekit.py declares that array: 2.05 TFLOP/s). A range.
+    from tests.tradekit import trade_sized_target
+
     path = tmp_path_factory.mktemp("m") / "resnet50.onnx"
     save_model(archs.resnet50(), path)  # He et al. 2016, rebuilt
     profile = profile_model(load_model(path, {"batch": 1}), "fp16")
-    target = load_target(WS)
+    target = trade_sized_target()
     assert target.peak_flops_per_s("fp16") == pytest.approx(2.05e12, rel=0.01)
     for fusion in (True, False):
         cost = cost_model(profile, target, fusion=fusion)

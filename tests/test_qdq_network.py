@@ -21,7 +21,7 @@ the precision reading, the builder or the cost model is caught:
   group heads. A folded BN vector becomes the conv's bias, stored as the conv stores
   its parameters (int8 in both forms), so the conv heads fetch the same bytes. Only
   three layers differ: ``stem.conv`` (its group writes the 112x112x64 ReLU output at
-  fp32 because MaxPool reads it as float: 3.2 MB, beyond the 2 MiB activation buffer,
+  fp32 because MaxPool reads it as float: 3.2 MB, beyond the 3 MiB activation buffer,
   so it spills to DRAM), ``stem.pool`` (which reads that fp32 tensor back) and
   ``head.pool`` (GlobalAveragePool left float reads fp32 activations).
 """
@@ -40,7 +40,7 @@ from gate.synth import archs, save_model
 from gate.synth.forms import quantize
 from gate.targets import load_target
 
-TARGET = "ws-64x64-4mib"  # 2 MiB activation buffer
+TARGET = "ws-64x64-4mib"  # 3 MiB activation buffer
 FP32_BYTES, INT8_BYTES = 4, 1
 # ResNet-18's basic blocks (He et al. 2016, Table 1): two per stage, a 1x1 projection
 # shortcut in the first block of stages 2-4.
