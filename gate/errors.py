@@ -9,8 +9,9 @@ Exit codes (documented in the README):
 
 from __future__ import annotations
 
+import difflib
 import re
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 
 import click
 
@@ -87,3 +88,10 @@ class InternalError(RoofgateError):
     """A bug in roofgate. Distinct exit code so a crash never reads as a pass."""
 
     exit_code = EXIT_INTERNAL
+
+
+def near_name(word: str, names: Iterable[str]) -> str | None:
+    """The one of ``names`` that ``word`` most likely misspells, or None (difflib's ratio
+    of at least 0.6, as every "did you mean" of roofgate uses)."""
+    close = difflib.get_close_matches(word, sorted(names), n=1, cutoff=0.6)
+    return close[0] if close else None

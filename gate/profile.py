@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from math import prod
 from typing import Any
 
-from gate.errors import InputError, InternalError
+from gate.errors import InputError, InternalError, near_name
 from gate.model.constants import logical_source
 from gate.model.convert import UNKNOWN_DIM
 from gate.model.graph import (
@@ -651,7 +651,8 @@ def _numel(shape: Shape | None) -> int:
 def _notes(model: LoadedModel, precision: str | None, override_bits: int | None,
            unbound: dict[str, int], layers: tuple[LayerProfile, ...]) -> tuple[str, ...]:
     notes = [f"symbolic dim '{dim}' unbound: bind it with --dim {dim}=N ({count} layers "
-             f"unmodelled)" for dim, count in sorted(unbound.items())]
+             f"unmodelled{_typo_hint(dim, model.unused_bindings)})"
+             for dim, count in sorted(unbound.items())]
     if override_bits is not None:
         notes.append(f"floating-point tensors counted at {_precision_label(precision)} "
                      f"({override_bits} bits) as deployed; MACs unchanged")
@@ -665,6 +666,13 @@ def _notes(model: LoadedModel, precision: str | None, override_bits: int | None,
                          f"the deployed model")
     notes.extend(model.warnings)
     return tuple(notes)
+
+
+def _typo_hint(dim: str, unused_bindings: tuple[str, ...]) -> str:
+    """'; the binding 'seqlen' names no dim of this model: a typo?' when one is near ``dim``."""
+    near = near_name(dim, unused_bindings)
+    return f"; the binding '{near}' names no dim of this model: a typo for '{dim}'?" \
+        if near else ""
 
 
 def _deployed_note(layers: tuple[LayerProfile, ...]) -> str:

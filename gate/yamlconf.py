@@ -19,7 +19,6 @@ Typical use::
 
 from __future__ import annotations
 
-import difflib
 import math
 import re
 from collections.abc import Iterator
@@ -31,7 +30,7 @@ from typing import Any
 import yaml
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
-from gate.errors import ConfigError
+from gate.errors import ConfigError, near_name
 from gate.model.graph import INT64_MAX
 
 MAX_FILE_BYTES = 4 * 1024 * 1024
@@ -159,8 +158,9 @@ def refuse_foreign_tags(root: Node | None, shown: str) -> None:
 
 def suggest(word: str, choices: list[str]) -> str:
     """A ' (did you mean ...?)' hint for a misspelled key, or ''."""
-    close = difflib.get_close_matches(word, choices, n=1, cutoff=0.6)
-    return f" (did you mean '{close[0]}'?)" if close else ""
+    near = near_name(word, choices)
+    return f" (did you mean '{near}'?)" if near else ""
+
 
 
 _QUANTITY = re.compile(r"^\s*([-+]?[0-9]*\.?[0-9]+(?:[eE][-+]?[0-9]+)?)\s*([A-Za-z/]*)\s*$")

@@ -234,3 +234,4 @@ class LoadedModel:
     unbound_dims: tuple[str, ...]  # symbolic dims still unresolved somewhere in the graph
     warnings: tuple[str, ...] = ()  # e.g. external data outside the model folder (never opened)
     shape_bindings: Mapping[str, tuple[int, ...]] = field(default_factory=dict)  # --shape/config
+    unused_bindings: tuple[str, ...] = ()  # bound dims this model does not declare (typos?)

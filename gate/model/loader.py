@@ -42,7 +42,7 @@ import onnx.inliner
 import onnx.shape_inference
 from google.protobuf.message import DecodeError
 
-from gate.errors import InputError, one_safe_line
+from gate.errors import InputError, near_name, one_safe_line
 from gate.model.contrib_shapes import register_contrib_schemas
 from gate.model.convert import (
     UNKNOWN_DIM,
@@ -106,8 +106,8 @@ def _load(text_path: str, dims: Mapping[str, int] | None,
     refuse_huge_shape_data(proto, text_path, bindings, shape_bindings)  # before any inference
     register_contrib_schemas()  # shape inference then sizes the contrib ops we cost
     unused = sorted(set(bindings) - declared)
-    warnings.extend(f"--dim {name}={bindings[name]}: the model declares no symbolic dim "
-                    f"'{name}' (binding ignored)" for name in unused)
+    warnings.extend(_unused_binding_note(name, bindings[name], declared - set(bindings))
+                    for name in unused)
     proto = _inline(proto, text_path)
     _bind(proto.graph, bindings, shape_bindings, text_path)
     by_path = size_bytes >= PATH_INFERENCE_BYTES and data is None
@@ -132,7 +132,17 @@ def _load(text_path: str, dims: Mapping[str, int] | None,
         shape_bindings=shape_bindings,
         unbound_dims=_unbound_dims(graph),
         warnings=tuple(warnings),
+        unused_bindings=tuple(unused),
     )
+
+
+
+def _unused_binding_note(name: str, value: int, unbound: set[str]) -> str:
+    """The note for a dim binding (``--dim`` or ``dims:``) this model does not declare."""
+    near = near_name(name, unbound)
+    hint = f"; did you mean '{near}'?" if near else ""
+    return (f"dim binding {name}={value} (--dim or dims:): the model declares no symbolic dim "
+            f"'{name}' (binding ignored{hint})")
 
 
 def release_freed_memory() -> None:
