@@ -22,10 +22,10 @@ waiver that matched no finding is reported as unused).
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Callable, Iterable, Sequence
 from functools import lru_cache
 
+from gate.errors import near_name
 from gate.policy.globs import match_any, match_model
 from gate.policy.spec import Policy
 
@@ -75,9 +75,9 @@ def _unmatched(where: str, key: str, patterns: Sequence[str], known: Sequence[st
 
 
 def _did_you_mean(pattern: str, known: Sequence[str]) -> str:
-    close = difflib.get_close_matches(pattern, list(known), n=1, cutoff=0.6)
-    if close:
-        return f" (did you mean '{close[0]}'?)"
+    near = near_name(pattern, known)
+    if near:
+        return f" (did you mean '{near}'?)"
     shown = ", ".join(known[:5]) + (", ..." if len(known) > 5 else "")
     return f" (known: {shown})" if known else ""
 
