@@ -164,16 +164,20 @@ def stream_kind(path: str) -> str | None:
 def goes_to_stdout(path: str) -> bool:
     """Whether writing ``path`` writes to this process's stdout: '-', or a stream that is
     stdout's own file (/dev/stdout, /proc/self/fd/1), so the caller moves its own
-    messages to stderr instead of mixing them into the report."""
+    messages to stderr instead of mixing them into the report (not when both are the
+    null device)."""
     if path == "-":
         return True
     if stream_kind(path) != STREAM:
         return False
     try:
         there, out = os.stat(path), os.fstat(sys.stdout.fileno())
+        null = os.stat(os.devnull)
     except (OSError, ValueError, AttributeError):  # stdout closed or not a real file
         return False
-    return (there.st_dev, there.st_ino) == (out.st_dev, out.st_ino)
+    same = (there.st_dev, there.st_ino) == (out.st_dev, out.st_ino)
+    # both discarded (``--junit /dev/null > /dev/null``): nothing would mix, nothing moves
+    return same and (there.st_dev, there.st_ino) != (null.st_dev, null.st_ino)
 
 
 def _in_system_folder(path: str) -> bool:

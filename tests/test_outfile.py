@@ -248,6 +248,13 @@ def test_audit_json_to_its_own_stdout_keeps_the_summary_out_of_the_report(
     assert done.returncode == 0, done.stderr
     assert json.loads(out.read_text())["summary"]["status"] == "passed"
     assert "PASSED (exit 0)" in done.stderr
+    # stdout and the report both discarded (the null device): the summary is not moved
+    quiet = subprocess.run([sys.executable, "-c", "from gate.cli import main; main()",
+                            "audit", "zoo", "-t", "ws-64x64-4mib", "-p", "default",
+                            "--junit", "/proc/self/fd/1"],
+                           cwd=tmp_path, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                           text=True, timeout=120, check=False)
+    assert quiet.returncode == 0 and "PASSED" not in quiet.stderr, quiet.stderr
 
 
 @needs_fifo
