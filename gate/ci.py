@@ -194,6 +194,9 @@ def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
         base_runs = [replace(r, model=change.path) for r in stored.get(change.base_path, [])]
         base_runs, skipped = on_head_targets(base_runs, head_runs)
         notes += skipped
+    if "head" in change.links:
+        head_err = (f"{change.head_path}: the head side is a symbolic link in git (git stores "
+                    "the path it points to, not a model); commit the model file itself")
     errors = [ModelError(change.path, engine.error_text(m, change.path))
               for m in (head_err, *lfs_errors) if m]
     if change.status == "renamed":
@@ -201,6 +204,8 @@ def _judge_change(change: gitscan.ModelChange, analysed: _Analysed,
                if change.by_structure else "")
         notes.append(f"{change.base_path} was renamed to {change.head_path}{how}; compared "
                      "with the old file.")
+    if "base" in change.links and stored is None:
+        base_err = "it is a symbolic link in git, not a model file"
     if base_err:
         notes.append(f"{change.path}: the base side could not be analysed, so the model is "
                      f"judged as new ({base_err})")
@@ -244,7 +249,7 @@ def _check_jobs(config: ProjectConfig, changes: Sequence[gitscan.ModelChange],
         if stored is None:
             sides.append(("base", base_commit, change.base_path, _base_key(change.path)))
         for side, rev, path, key in sides:
-            if path is None:
+            if path is None or side in change.links:  # a link: nothing to read (_judge_change)
                 continue
             blobs[key] = (side, rev, path)
             jobs.append(replace(make_job(config, group, change.path, change.path), key=key))

@@ -22,7 +22,7 @@ import subprocess
 import tempfile
 from collections.abc import Callable, Mapping, Sequence
 from contextlib import closing
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import IO, BinaryIO
 
@@ -42,6 +42,9 @@ class ModelChange:
     base_path: str | None  # path at the base revision; None when added
     head_path: str | None  # path at HEAD; None when deleted
     by_structure: bool = False  # a rename found by layer structure, not by git (gate/renames)
+    # sides ("base", "head") git stores as a symbolic link (its blob is the link's target
+    # path, not a model): never read as a model
+    links: frozenset[str] = frozenset()
 
     @property
     def path(self) -> str:
@@ -140,22 +143,29 @@ def merge_base(ref: str, cwd: str | Path, head: str = "HEAD") -> str:
     return out.decode("ascii").strip()
 
 
-def parse_name_status(raw: bytes) -> list[tuple[str, str | None, str | None]]:
-    """Parse ``git diff --name-status -z`` output into (status letter, base path, head path)."""
+LINK_MODE = "120000"  # git's file mode of a symbolic link
+
+
+def parse_raw_diff(raw: bytes) -> list[tuple[str, str | None, str | None, frozenset[str]]]:
+    """Parse ``git diff --raw -z`` output into (status letter, base path, head path, the
+    sides that are symbolic links in git)."""
     fields = raw.split(b"\0")
     if fields and fields[-1] == b"":
         fields.pop()
-    out: list[tuple[str, str | None, str | None]] = []
+    out: list[tuple[str, str | None, str | None, frozenset[str]]] = []
     i = 0
     while i < len(fields):
-        letter = fields[i].decode("ascii", "replace")[:1]
+        old_mode, new_mode, _, _, status = fields[i].decode("ascii", "replace").lstrip(":").split()
+        letter = status[:1]
+        links = frozenset(side for side, mode in (("base", old_mode), ("head", new_mode))
+                          if mode == LINK_MODE)
         if letter in ("R", "C"):
-            old, new = _decode(fields[i + 1]), _decode(fields[i + 2])
-            out.append((letter, old, new))
+            out.append((letter, _decode(fields[i + 1]), _decode(fields[i + 2]), links))
             i += 3
             continue
         path = _decode(fields[i + 1])
-        out.append((letter, None if letter == "A" else path, None if letter == "D" else path))
+        out.append((letter, None if letter == "A" else path, None if letter == "D" else path,
+                    links))
         i += 2
     return out
 
@@ -174,13 +184,15 @@ def changed_models(base: str, cwd: str | Path, is_model: Callable[[str], bool],
     sides = ["--cached", base] if head == STAGED else [base, head]
     # -l0: no limit on rename detection (git skips it past 1000 files by default, with only
     # a warning); pairs git still misses are found by layer structure (gate/renames.py).
-    raw = git(["diff", "--name-status", "-M", "-l0", "-z", "--no-ext-diff", "--no-textconv",
-               *sides, "--"], cwd, what="listing changed files")
+    raw = git(["diff", "--raw", "--no-abbrev", "-M", "-l0", "-z", "--no-ext-diff",
+               "--no-textconv", *sides, "--"], cwd, what="listing changed files")
     changes = []
-    for letter, old, new in parse_name_status(raw):
+    for letter, old, new, links in parse_raw_diff(raw):
         change = _classify(letter, old, new, is_model)
         if change is not None:
-            changes.append(change)
+            kept = {side for side in links if (change.base_path if side == "base"
+                                               else change.head_path) is not None}
+            changes.append(replace(change, links=frozenset(kept)) if kept else change)
     return sorted(changes, key=lambda c: c.path)
 
 

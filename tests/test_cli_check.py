@@ -408,3 +408,25 @@ def test_an_unanalysable_model_is_named_once_per_line(zoo: Path) -> None:
     assert line.count("models/broken.onnx") == 1, line
     message = json.loads(Path("r.json").read_text())["result"]["errors"][0]["message"]
     assert not message.startswith("models/broken.onnx")
+
+
+def test_a_model_committed_as_a_symbolic_link_is_named_not_parsed(repo: Repo) -> None:
+    """Git stores a link as its target path: a head side that is a link was read as a
+    model and failed as "cannot parse as an ONNX model". It is now named as a link (exit
+    2); a base side that was a link makes the model judged as new, with a note."""
+    os.remove(repo.path / "models/b.onnx")
+    os.symlink("a.onnx", repo.path / "models/b.onnx")  # a valid model behind it
+    repo.commit("b becomes a link")
+    code, out, _ = check()
+    assert code == 2, out
+    assert "models/b.onnx: the head side is a symbolic link in git" in out
+    assert "cannot parse" not in out
+    repo.git("branch", "-f", "main")  # the link is now the base
+    os.remove(repo.path / "models/b.onnx")
+    save_model(fc_model(128), repo.path / "models/b.onnx")
+    repo.commit("b is a file again")
+    code, out, _ = check("--json", "r.json")
+    assert code == 0, out
+    text = (repo.path / "r.json").read_text()
+    assert "the base side could not be analysed, so the model is judged as new (it is a " \
+           "symbolic link in git, not a model file)" in text

@@ -85,11 +85,22 @@ def test_hostile_file_names_round_trip_without_a_shell(tmp_path: Path) -> None:
     assert not (repo.path / "models" / "pwned").exists() and not Path("pwned").exists()
 
 
-def test_parse_name_status_with_renames_and_copies() -> None:
-    raw = b"M\0a b.onnx\0R087\0old.onnx\0new.onnx\0C100\0src.onnx\0copy.onnx\0D\0-x.onnx\0A\0y\0"
-    assert gitscan.parse_name_status(raw) == [
-        ("M", "a b.onnx", "a b.onnx"), ("R", "old.onnx", "new.onnx"),
-        ("C", "src.onnx", "copy.onnx"), ("D", "-x.onnx", None), ("A", None, "y"),
+def test_parse_raw_diff_with_renames_copies_and_links() -> None:
+    # `git diff --raw -z` layout (git-diff documentation, "Raw output format"): modes,
+    # object names, status (with a similarity score for R and C), then the path(s).
+    a, b, z = "a" * 40, "b" * 40, "0" * 40
+    raw = (f":100644 100644 {a} {b} M\0a b.onnx\0"
+           f":100644 100644 {a} {b} R087\0old.onnx\0new.onnx\0"
+           f":100644 100644 {a} {a} C100\0src.onnx\0copy.onnx\0"
+           f":100644 000000 {a} {z} D\0-x.onnx\0"
+           f":000000 120000 {z} {b} A\0y\0"
+           f":120000 100644 {a} {b} T\0was-link.onnx\0").encode()
+    none: frozenset[str] = frozenset()
+    assert gitscan.parse_raw_diff(raw) == [
+        ("M", "a b.onnx", "a b.onnx", none), ("R", "old.onnx", "new.onnx", none),
+        ("C", "src.onnx", "copy.onnx", none), ("D", "-x.onnx", None, none),
+        ("A", None, "y", frozenset({"head"})), ("T", "was-link.onnx", "was-link.onnx",
+                                                 frozenset({"base"})),
     ]
 
 
