@@ -144,29 +144,52 @@ def merge_base(ref: str, cwd: str | Path, head: str = "HEAD") -> str:
 
 
 LINK_MODE = "120000"  # git's file mode of a symbolic link
+SUBMODULE_MODE = "160000"  # git's file mode of a submodule (a commit, not a blob)
 
 
-def parse_raw_diff(raw: bytes) -> list[tuple[str, str | None, str | None, frozenset[str]]]:
-    """Parse ``git diff --raw -z`` output into (status letter, base path, head path, the
-    sides that are symbolic links in git)."""
+@dataclass(frozen=True, slots=True)
+class RawChange:
+    """One entry of ``git diff --raw -z``: the status letter, each side's path (None when
+    the side does not exist), git's file mode and object name of each side (all zeros
+    for a missing side)."""
+
+    letter: str
+    base_path: str | None
+    head_path: str | None
+    base_mode: str
+    head_mode: str
+    base_object: str
+    head_object: str
+
+    @property
+    def links(self) -> frozenset[str]:
+        """The sides ("base", "head") git stores as a symbolic link."""
+        return frozenset(side for side, mode in (("base", self.base_mode),
+                                                 ("head", self.head_mode)) if mode == LINK_MODE)
+
+
+def parse_raw_diff(raw: bytes) -> list[RawChange]:
+    """Parse ``git diff --raw -z`` output (renames and copies carry two paths)."""
     fields = raw.split(b"\0")
     if fields and fields[-1] == b"":
         fields.pop()
-    out: list[tuple[str, str | None, str | None, frozenset[str]]] = []
+    out: list[RawChange] = []
     i = 0
     while i < len(fields):
-        old_mode, new_mode, _, _, status = fields[i].decode("ascii", "replace").lstrip(":").split()
+        base_mode, head_mode, base_object, head_object, status = \
+            fields[i].decode("ascii", "replace").lstrip(":").split()
         letter = status[:1]
-        links = frozenset(side for side, mode in (("base", old_mode), ("head", new_mode))
-                          if mode == LINK_MODE)
+        base: str | None
+        head: str | None
         if letter in ("R", "C"):
-            out.append((letter, _decode(fields[i + 1]), _decode(fields[i + 2]), links))
+            base, head = _decode(fields[i + 1]), _decode(fields[i + 2])
             i += 3
-            continue
-        path = _decode(fields[i + 1])
-        out.append((letter, None if letter == "A" else path, None if letter == "D" else path,
-                    links))
-        i += 2
+        else:
+            path = _decode(fields[i + 1])
+            base, head = (None if letter == "A" else path), (None if letter == "D" else path)
+            i += 2
+        out.append(RawChange(letter, base, head, base_mode, head_mode, base_object,
+                             head_object))
     return out
 
 
@@ -187,11 +210,11 @@ def changed_models(base: str, cwd: str | Path, is_model: Callable[[str], bool],
     raw = git(["diff", "--raw", "--no-abbrev", "-M", "-l0", "-z", "--no-ext-diff",
                "--no-textconv", *sides, "--"], cwd, what="listing changed files")
     changes = []
-    for letter, old, new, links in parse_raw_diff(raw):
-        change = _classify(letter, old, new, is_model)
+    for entry in parse_raw_diff(raw):
+        change = _classify(entry.letter, entry.base_path, entry.head_path, is_model)
         if change is not None:
-            kept = {side for side in links if (change.base_path if side == "base"
-                                               else change.head_path) is not None}
+            kept = {side for side in entry.links if (change.base_path if side == "base"
+                                                     else change.head_path) is not None}
             changes.append(replace(change, links=frozenset(kept)) if kept else change)
     return sorted(changes, key=lambda c: c.path)
 
@@ -203,14 +226,13 @@ def submodule_changes(base: str, cwd: str | Path, head: str = "HEAD",
     sides = ["--cached", base] if head == STAGED else [base, head]
     raw = git(["diff", "--raw", "-z", "--no-abbrev", "--no-renames", *sides, "--"], cwd,
               what="listing changed submodules")
-    fields = raw.split(b"\0")
     out = []
-    for meta, name in zip(fields[0::2], fields[1::2]):
-        parts = meta.decode("ascii", "replace").lstrip(":").split()
-        if len(parts) >= 4 and "160000" in parts[:2]:
-            old = parts[2] if parts[0] == "160000" else ""
-            new = parts[3] if parts[1] == "160000" else ""
-            out.append((_decode(name), old.strip("0") and old, new.strip("0") and new))
+    for entry in parse_raw_diff(raw):
+        if SUBMODULE_MODE in (entry.base_mode, entry.head_mode):
+            old = entry.base_object if entry.base_mode == SUBMODULE_MODE else ""
+            new = entry.head_object if entry.head_mode == SUBMODULE_MODE else ""
+            out.append((entry.head_path or entry.base_path or "", old.strip("0") and old,
+                        new.strip("0") and new))
     return out
 
 

@@ -96,12 +96,15 @@ def test_parse_raw_diff_with_renames_copies_and_links() -> None:
            f":000000 120000 {z} {b} A\0y\0"
            f":120000 100644 {a} {b} T\0was-link.onnx\0").encode()
     none: frozenset[str] = frozenset()
-    assert gitscan.parse_raw_diff(raw) == [
+    parsed = gitscan.parse_raw_diff(raw)
+    assert [(e.letter, e.base_path, e.head_path, e.links) for e in parsed] == [
         ("M", "a b.onnx", "a b.onnx", none), ("R", "old.onnx", "new.onnx", none),
         ("C", "src.onnx", "copy.onnx", none), ("D", "-x.onnx", None, none),
         ("A", None, "y", frozenset({"head"})), ("T", "was-link.onnx", "was-link.onnx",
                                                  frozenset({"base"})),
     ]
+    assert (parsed[1].base_object, parsed[1].head_object) == (a, b)
+    assert (parsed[4].base_mode, parsed[4].head_mode) == ("000000", "120000")
 
 
 @pytest.mark.parametrize("letter,old,new,expected", [
