@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import os
 import subprocess
+from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
 GIT_ENV = {
     "GIT_AUTHOR_NAME": "Roofgate Test", "GIT_AUTHOR_EMAIL": "test@example.invalid",
@@ -40,3 +42,20 @@ class Repo:
 
     def branch(self, name: str) -> None:
         self.git("checkout", "-q", "-b", name)
+
+
+def repo_with_a_change(path: Path, files: Mapping[str, str], model: str, base: Any,
+                       head: Any) -> Repo:
+    """A repository whose main branch holds ``files`` (config, policies) and the model
+    ``base`` at ``model``, and whose branch pr replaces it by ``head`` (checked out)."""
+    from gate.synth.builder import save_model
+
+    repo = Repo(path)
+    for rel, text in files.items():
+        repo.write(rel, text)
+    save_model(base, repo.path / model)
+    repo.commit("base")
+    repo.branch("pr")
+    save_model(head, repo.path / model)
+    repo.commit("a change")
+    return repo

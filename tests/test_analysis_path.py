@@ -19,7 +19,7 @@ from gate.diff import diff_runs
 from gate.policy.regression import _layer_pairs
 from gate.synth.builder import save_model
 from gate.synth.layers import NetBuilder
-from tests.gitkit import Repo
+from tests.gitkit import Repo, repo_with_a_change
 
 TARGET = "ws-64x64-4mib"
 POLICY = """\
@@ -44,14 +44,10 @@ def invoke(args: list[str]):
 
 @pytest.fixture(params=["false", "true"], ids=["strict", "allow_unanalysable"])
 def repo(request, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Repo:
-    repo = Repo(tmp_path / "repo")
-    repo.write("roofgate.yaml", f"targets: [{TARGET}]\npolicies: [policies/p.yaml]\n")
-    repo.write("policies/p.yaml", POLICY.format(allow=request.param))
-    save_model(fc_model(64), repo.path / "models/a.onnx")
-    repo.commit("base")
-    repo.branch("pr")
-    save_model(fc_model(96), repo.path / "models/a.onnx")
-    repo.commit("grow a")
+    repo = repo_with_a_change(
+        tmp_path / "repo", {"roofgate.yaml": f"targets: [{TARGET}]\npolicies: [policies/p.yaml]\n",
+                            "policies/p.yaml": POLICY.format(allow=request.param)},
+        "models/a.onnx", fc_model(64), fc_model(96))
     monkeypatch.chdir(repo.path)
     return repo
 

@@ -21,7 +21,7 @@ from click.testing import CliRunner
 from gate.cli import cli
 from gate.synth.builder import save_model
 from gate.synth.layers import NetBuilder
-from tests.gitkit import Repo
+from tests.gitkit import Repo, repo_with_a_change
 
 TARGET = "ws-64x64-4mib"
 MIB = 1024 * 1024
@@ -183,14 +183,11 @@ def test_a_run_that_judged_nothing_writes_the_same_reports_with_two_workers(
     """A target typo in the target branch's config: the changed model cannot be analysed,
     so the run has no model x target at all (exit 2). With -j 2 its reports are rendered
     side by side, and a JSON report without entries once crashed there (exit 3)."""
-    repo = Repo(tmp_path / "repo")
-    repo.write("roofgate.yaml", "targets: [ws-64x64-4mb]\npolicies: [policies/gate.yaml]\n")
-    repo.write("policies/gate.yaml", POLICY)
-    save_model(fc_model(256), repo.path / "models/a.onnx")
-    repo.commit("base, with a target typo")
-    repo.branch("pr")
-    save_model(fc_model(512), repo.path / "models/a.onnx")
-    repo.commit("a change")
+    repo = repo_with_a_change(
+        tmp_path / "repo", {"roofgate.yaml": "targets: [ws-64x64-4mb]\n"
+                                             "policies: [policies/gate.yaml]\n",
+                            "policies/gate.yaml": POLICY},
+        "models/a.onnx", fc_model(256), fc_model(512))
     monkeypatch.chdir(repo.path)
     runner = CliRunner()
     one = runner.invoke(cli, ["check", "--base", "main", "-j", "1", *reports("j1")])
