@@ -253,8 +253,7 @@ def write_files(files: Sequence[tuple[str, str, Content]], processes: int = 1) -
         finally:
             created.remove()
     for path, what, whole in streams:
-        with _stream(path, what) as stream:
-            stream.write(whole)
+        _write_stream(path, what, whole)
     for path, _, content in files:
         if path == "-":
             write_stdout(content)  # type: ignore[arg-type]  # text: checked at the start
@@ -274,8 +273,7 @@ def open_output(path: str, what: str) -> Iterator[TextIO]:
     if stream_kind(path) == STREAM:
         buffer = io.StringIO()  # a stream cannot be unwritten: written once the block succeeds
         yield buffer
-        with _stream(path, what) as stream:
-            stream.write(buffer.getvalue())
+        _write_stream(path, what, buffer.getvalue())
         return
     target = placed_path(path, what)
     _make_folder(target.parent, path, what)
@@ -292,11 +290,11 @@ def open_output(path: str, what: str) -> Iterator[TextIO]:
         _unlink_quietly(name)
 
 
-@contextmanager
-def _stream(path: str, what: str) -> Iterator[TextIO]:
-    """The stream at ``path`` opened for appending (never created, never truncated: a
-    device, a pipe, or /dev/stdout redirected to a file, which must not be overwritten
-    from its start); stdout is flushed first so what it already holds comes before."""
+def _write_stream(path: str, what: str, text: str) -> None:
+    """Write ``text`` into the stream at ``path``, opened for appending (never created,
+    never truncated: a device, a pipe, or /dev/stdout redirected to a file, which must
+    not be overwritten from its start); stdout is flushed first so what it already holds
+    comes before."""
     try:
         sys.stdout.flush()
     except (OSError, ValueError):
@@ -305,7 +303,7 @@ def _stream(path: str, what: str) -> Iterator[TextIO]:
         fd = os.open(path, os.O_WRONLY | os.O_APPEND | getattr(os, "O_NOCTTY", 0)
                      | getattr(os, "O_CLOEXEC", 0))
         with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as stream:
-            yield stream
+            stream.write(text)
     except OSError as exc:
         raise _write_error(exc, path, what) from None
 
@@ -316,8 +314,16 @@ def _rendered(content: Content) -> str:
         return content
     buffer = io.StringIO()
     for writer in content.writers(1) if isinstance(content, Parts) else [content]:
-        writer(buffer)
+        _put(buffer, writer)
     return buffer.getvalue()
+
+
+def _put(stream: TextIO, content: str | Writer) -> None:
+    """Write ``content`` (its text, or a function that writes it) to ``stream``."""
+    if isinstance(content, str):
+        stream.write(content)
+    else:
+        content(stream)
 
 
 def write_stdout(text: str) -> None:
@@ -442,10 +448,7 @@ def _fill(fd: int, content: str | Writer, path: str, what: str) -> None:
     caller closes ``fd`` itself, whichever process wrote)."""
     try:
         with os.fdopen(os.dup(fd), "w", encoding="utf-8", newline="\n") as stream:
-            if isinstance(content, str):
-                stream.write(content)
-            else:
-                content(stream)
+            _put(stream, content)
     except OSError as exc:
         raise _write_error(exc, path, what) from None
 
