@@ -38,9 +38,9 @@ from gate.selection import (
     check_globs,
     files_under,
     is_onnx,
-    listed,
     model_files,
     ungated_model,
+    walk_files,
 )
 from gate.shards import shard_share
 
@@ -281,8 +281,7 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
         path = Path(given)
         if not path.exists():
             raise InputError("no such file or folder", given)
-        files = [path] if path.is_file() else sorted(
-            p for p in path.rglob("*") if listed(p) and ".git" not in p.parts)
+        files = [path] if path.is_file() else walk_files(path)
         if not path.is_file():
             refuse_links_out((root, path), files)
         for file in files:

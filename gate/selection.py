@@ -75,8 +75,14 @@ def _glob_hint(pattern: str, files: Sequence[str]) -> str:
 def files_under(root: Path) -> list[str]:
     """Every file below ``root`` (outside ``.git``), as sorted root-relative POSIX paths
     (a link to nothing included: ``listed``)."""
-    return sorted(p.relative_to(root).as_posix() for p in root.rglob("*")
-                  if listed(p) and ".git" not in p.relative_to(root).parts)
+    return sorted(p.relative_to(root).as_posix() for p in walk_files(root))
+
+
+def walk_files(folder: Path) -> list[Path]:
+    """Every file below ``folder`` outside ``.git`` folders (a link to nothing included:
+    ``listed``; links to folders are not walked into), sorted."""
+    return sorted(p for p in folder.rglob("*")
+                  if listed(p) and ".git" not in p.relative_to(folder).parts)
 
 
 def listed(path: Path) -> bool:
