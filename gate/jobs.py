@@ -16,6 +16,7 @@ Every command that analyses a model (``profile``, ``evaluate``, ``baseline``,
 from __future__ import annotations
 
 import concurrent.futures
+import contextlib
 import itertools
 import multiprocessing
 import os
@@ -28,17 +29,16 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, TextIO
 
-from gate.costmodel import ModelCost, cost_model
 from gate.errors import InputError, InternalError, RoofgateError, one_safe_line
 from gate.gcpause import cyclic_gc_paused
-from gate.model.loader import LoadedModel, load_model
-from gate.profile import ModelProfile, profile_model
 from gate.records import RunRecord, canonical_run, with_unknown_totals
-from gate.summarize import build_run_record
 from gate.targets.spec import TargetProfile
 
 if TYPE_CHECKING:
+    from gate.costmodel import ModelCost
     from gate.gitscan import BlobReader
+    from gate.model.loader import LoadedModel
+    from gate.profile import ModelProfile
 
 
 @dataclass(frozen=True, slots=True)
@@ -121,6 +121,11 @@ def analyse_model(path: str, targets: Sequence[TargetProfile], *,
     example external data that was not opened) are kept as record notes so
     reports show them. Raises ``RoofgateError`` for input that cannot be analysed.
     """
+    from gate.costmodel import cost_model
+    from gate.model.loader import load_model
+    from gate.profile import profile_model
+    from gate.summarize import build_run_record
+
     _refuse_duplicate_targets(targets)
     loaded = load_model(path, dict(dims or {}), dict(shapes or {}), data=data)
     profile = profile_model(loaded, precision)
@@ -305,21 +310,25 @@ def run_jobs(jobs: Sequence[Job], workers: int,
             with cyclic_gc_paused():  # judging a large model: the same reason
                 done(outcome.key, out)
 
-    if workers <= 1 or total <= 1:
+    started = _STARTED.pop() if _STARTED else None
+    if started is not None and not jobs:
+        _stop(started[0])  # nothing to analyse: no waiting for the workers' imports
+    if started is None and (workers <= 1 or total <= 1) or not jobs:
         for job in jobs:
             keep(_analyse_in_process(job), job.model)
         return out
-    _run_in_processes(iter(jobs), min(workers, total), keep)
+    pool, count = started or (_new_pool(min(workers, total)), min(workers, total))
+    _run_in_processes(iter(jobs), pool, count, keep)
     return out
 
 
 IN_FLIGHT_PER_WORKER = 2  # jobs handed out ahead per worker: no idle worker, bounded memory
 
 
-def _run_in_processes(jobs: Iterator[Job], workers: int,
-                      keep: Callable[[JobOutcome, str], None]) -> None:
-    """Analyse ``jobs`` in ``workers`` processes (started once, reused for every job),
-    handing each outcome to ``keep``.
+def _run_in_processes(jobs: Iterator[Job], pool: concurrent.futures.ProcessPoolExecutor,
+                      workers: int, keep: Callable[[JobOutcome, str], None]) -> None:
+    """Analyse ``jobs`` in the ``workers`` processes of ``pool`` (started once, reused for
+    every job), handing each outcome to ``keep``; the pool is shut down at the end.
 
     Jobs are handed out as workers finish, a few ahead (a worker reads a git blob
     itself, so only the models being analysed are in memory). On Ctrl-C, SIGTERM
@@ -327,8 +336,6 @@ def _run_in_processes(jobs: Iterator[Job], workers: int,
     terminated at once instead of finishing their models (which could take
     minutes after the run was stopped).
     """
-    pool = concurrent.futures.ProcessPoolExecutor(max_workers=workers,
-                                                  initializer=_worker_signals)
     try:
         pending: dict[concurrent.futures.Future[JobOutcome], Job] = {}
         for job in itertools.islice(jobs, workers * IN_FLIGHT_PER_WORKER):
@@ -343,11 +350,64 @@ def _run_in_processes(jobs: Iterator[Job], workers: int,
                 if following is not None:
                     pending[pool.submit(_analyse_job_in_worker, following)] = following
     except BaseException:
-        pool.shutdown(wait=False, cancel_futures=True)
-        for child in multiprocessing.active_children():
-            child.terminate()
+        _stop(pool)
         raise
     pool.shutdown()
+
+
+# --- worker processes ------------------------------------------------------------------
+
+# workers_started's pool and its number of workers, until a run takes it
+_STARTED: list[tuple[concurrent.futures.ProcessPoolExecutor, int]] = []
+
+
+@contextlib.contextmanager
+def workers_started(workers: int) -> Iterator[None]:
+    """Start the worker processes of a parallel run (``workers`` > 1) now; the first
+    ``run_jobs`` in the block uses them (and shuts them down), and the block's end stops
+    them if nothing did.
+
+    Why early: each worker imports the analysis stack (onnx and numpy, about 0.13 s)
+    itself, while this process reads the config and walks the zoo, instead of this
+    process importing it alone before forking; this process never imports it.
+    """
+    if workers <= 1 or _STARTED:
+        yield
+        return
+    pool = _new_pool(workers)
+    pool.submit(_ready)  # the first task starts the workers (every one, under fork)
+    _STARTED.append((pool, workers))
+    try:
+        yield
+    finally:
+        if (pool, workers) in _STARTED:  # the block ended before any run took the workers
+            _STARTED.remove((pool, workers))
+            _stop(pool)
+
+
+def _new_pool(workers: int) -> concurrent.futures.ProcessPoolExecutor:
+    return concurrent.futures.ProcessPoolExecutor(max_workers=workers,
+                                                  initializer=_worker_start)
+
+
+def _ready() -> None:
+    """A task that does nothing: submitting it starts the workers."""
+
+
+def _stop(pool: concurrent.futures.ProcessPoolExecutor) -> None:
+    """Stop ``pool`` at once: its queued jobs are dropped, its workers terminated."""
+    pool.shutdown(wait=False, cancel_futures=True)
+    for child in multiprocessing.active_children():
+        child.terminate()
+
+
+def _worker_start() -> None:
+    """In a new worker: its signal handling, then the analysis stack, imported once."""
+    _worker_signals()
+    import gate.costmodel
+    import gate.model.loader
+    import gate.profile
+    import gate.summarize  # noqa: F401
 
 
 def _worker_signals() -> None:

@@ -2,7 +2,7 @@
 maps a bug in roofgate to exit 3 whatever the policy allows.
 
 The crash is simulated by monkeypatching the cost function the analysis path calls
-(``gate.jobs.cost_model``), in-process (``-j 1``); the worker-process mapping is
+(``gate.costmodel.cost_model``), in-process (``-j 1``); the worker-process mapping is
 tested in test_audit.
 """
 
@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from gate import jobs
+from gate import costmodel
 from gate.cli import cli
 from gate.diff import diff_runs
 from gate.policy.regression import _layer_pairs
@@ -69,7 +69,7 @@ def test_a_bug_in_a_cost_function_exits_3_in_every_command_under_every_policy(
     def crash(*args: object, **kwargs: object) -> None:
         raise ZeroDivisionError("simulated bug in a cost function")
 
-    monkeypatch.setattr(jobs, "cost_model", crash)
+    monkeypatch.setattr(costmodel, "cost_model", crash)
     result = invoke(COMMANDS[command])
     assert result.exit_code == 3, (command, result.output, result.stderr)
     (line,) = result.stderr.strip().splitlines()

@@ -12,7 +12,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from gate import jobs, judge, shards, trend
+from gate import costmodel, jobs, judge, shards, trend
 from gate.errors import InputError
 from gate.result import FAIL, ModelError, result_to_dict
 from tests.recordkit import entry, finding, layer, result, run, verdict
@@ -170,7 +170,7 @@ def test_a_bug_in_a_worker_process_stops_the_run_as_an_internal_error(tmp_path, 
     save_model(b.build(), tmp_path / "m.onnx")
     job = jobs.Job(model="models/m.onnx", file=str(tmp_path / "m.onnx"),
                    targets=("ws-64x64-4mib",))
-    monkeypatch.setattr(jobs, "cost_model", crash)
+    monkeypatch.setattr(costmodel, "cost_model", crash)
     outcome = jobs._analyse_job_in_worker(job)
     assert outcome.internal.startswith("ZeroDivisionError: simulated bug") and not outcome.runs
     assert not outcome.error  # not blamed on the model

@@ -30,7 +30,7 @@ import pytest
 from click.testing import CliRunner, Result
 from onnx import TensorProto, helper, numpy_helper
 
-from gate import jobs as pipeline
+from gate import costmodel
 from gate.cli import cli
 from gate.ops import registry
 from tests.gitkit import Repo
@@ -685,7 +685,7 @@ def _crash(*args: object, **kwargs: object) -> Any:
 
 
 def test_internal_error_exits_3_with_one_line_and_no_traceback(tmp_path, monkeypatch) -> None:
-    monkeypatch.setattr(pipeline, "cost_model", _crash)
+    monkeypatch.setattr(costmodel, "cost_model", _crash)
     path = save(small_cnn(), tmp_path / "m.onnx")
     result = gate(path, tmp_path / "out")
     assert result.exit_code == 3
@@ -708,10 +708,10 @@ def test_cost_function_crash_is_internal_not_bad_input(tmp_path, monkeypatch) ->
 
 _DEBUG_SCRIPT = """
 import sys
-import gate.jobs
+import gate.costmodel
 def crash(*args, **kwargs):
     raise ZeroDivisionError("simulated bug")
-gate.jobs.cost_model = crash
+gate.costmodel.cost_model = crash
 from gate.cli import main
 sys.argv = ["roofgate", *sys.argv[1:]]
 main()

@@ -177,6 +177,27 @@ def test_a_scope_that_matches_nothing_is_exit_2_with_did_you_mean(zoo: Path, cas
     assert quoted in line and hint in line and "policies/p.yaml" in line, line
 
 
+@pytest.mark.parametrize("op_types", ["[Conv, 'Gemm*']", "[InstanceNormalization]"])
+def test_an_op_type_scope_naming_an_onnx_op_passes_the_scope_check(zoo: Path,
+                                                                    op_types: str) -> None:
+    """The negative control of the op-type typo: ops of the common list (checked without
+    importing onnx) and an op outside it (checked against onnx's whole list) are no error."""
+    write(zoo, "policies/p.yaml", POLICY.format(
+        policy_extra="", rule_extra=f"    level: layer\n    op_types: {op_types}\n"))
+    result = invoke(["audit"])
+    assert result.exit_code == 0, result.output
+
+
+def test_the_common_op_types_are_onnx_operators() -> None:
+    # source: the ONNX operator specification, as the installed onnx lists it (onnx.defs)
+    import onnx.defs
+
+    from gate.policy.scopes import COMMON_OP_TYPES
+
+    standard = {s.name for s in onnx.defs.get_all_schemas_with_history() if s.domain == ""}
+    assert COMMON_OP_TYPES <= standard, sorted(COMMON_OP_TYPES - standard)
+
+
 def waiver(models: str = "['models/**']", targets: str = f"[{TARGET}]") -> str:
     """A valid waiver of params-fit (expiring in 30 days) with the given scope."""
     expires = (date.today() + timedelta(days=30)).isoformat()

@@ -9,10 +9,11 @@ from math import prod
 import onnx
 import pytest
 
-from gate import jobs as pipeline
+from gate import profile
 from gate.errors import InputError, RoofgateError
 from gate.jobs import analyse
 from gate.judge import judge
+from gate.model import loader
 from gate.policy import load_policy
 from gate.result import FAIL, PASS, WAIVED, ModelError
 from gate.synth.builder import save_model
@@ -73,7 +74,7 @@ def test_analyse_gives_one_record_per_target_named_as_shown(species_path) -> Non
 
 def test_analyse_loads_and_profiles_once_for_all_targets(species_path, monkeypatch) -> None:
     calls = {"load": 0, "profile": 0}
-    real_load, real_profile = pipeline.load_model, pipeline.profile_model
+    real_load, real_profile = loader.load_model, profile.profile_model
 
     def counting_load(*args, **kwargs):
         calls["load"] += 1
@@ -83,8 +84,8 @@ def test_analyse_loads_and_profiles_once_for_all_targets(species_path, monkeypat
         calls["profile"] += 1
         return real_profile(*args, **kwargs)
 
-    monkeypatch.setattr(pipeline, "load_model", counting_load)
-    monkeypatch.setattr(pipeline, "profile_model", counting_profile)
+    monkeypatch.setattr(loader, "load_model", counting_load)  # looked up where it is used
+    monkeypatch.setattr(profile, "profile_model", counting_profile)
     analyse(species_path, [load_target(name) for name in TARGETS])
     assert calls == {"load": 1, "profile": 1}
 

@@ -31,8 +31,8 @@ print("\\nMODULES " + json.dumps(sorted(sys.modules)))
 """
 
 
-def _loaded_after(args: list[str]) -> set[str]:
-    done = subprocess.run([sys.executable, "-c", _PROBE, json.dumps(args)], cwd=ROOT,
+def _loaded_after(args: list[str], cwd: Path = ROOT) -> set[str]:
+    done = subprocess.run([sys.executable, "-c", _PROBE, json.dumps(args)], cwd=cwd,
                           capture_output=True, text=True, check=True,
                           env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"})
     line = next(x for x in done.stdout.splitlines() if x.startswith("MODULES "))
@@ -45,9 +45,35 @@ def test_quick_commands_import_nothing_heavy(args: list[str]) -> None:
     assert not [m for m in HEAVY if m in loaded], args
 
 
-def test_the_probe_sees_a_heavy_import() -> None:
-    """Negative control: a command that needs onnx does load it."""
-    assert "onnx" in _loaded_after(["diff", "/nonexistent-a.onnx", "/nonexistent-b.onnx"])
+def _two_models(folder: Path) -> Path:
+    from gate.synth.builder import save_model
+    from gate.synth.layers import NetBuilder
+
+    for name, width in (("a", 8), ("b", 16)):
+        b = NetBuilder(name)
+        b.output(b.gemm(b.input("x", [1, 16]), width, name="fc"))
+        save_model(b.build(), folder / "models" / f"{name}.onnx")
+    return folder / "models"
+
+
+def test_the_probe_sees_a_heavy_import(tmp_path: Path) -> None:
+    """Negative control: a command that analyses in its own process loads onnx."""
+    models = _two_models(tmp_path)
+    assert "onnx" in _loaded_after(["profile", str(models / "a.onnx")])
+    assert "onnx" in _loaded_after(["audit", "-j", "1", "-t", "ws-64x64-4mib", "-p",
+                                    "default", str(models)], cwd=tmp_path)
+
+
+def test_a_parallel_runs_parent_never_imports_the_analysis_stack(tmp_path: Path) -> None:
+    """Under -j 2 the workers import onnx and numpy, each side by side with the parent's
+    config reading and model search; the parent, which judges and writes reports, never
+    does (it paid about 0.13 s for it alone, before forking the workers)."""
+    models = _two_models(tmp_path)
+    loaded = _loaded_after(["audit", "-j", "2", "-t", "ws-64x64-4mib", "-p", "default",
+                            str(models), "--json", "out.json"], cwd=tmp_path)
+    assert not [m for m in HEAVY if m in loaded and m != "junit_xml"]
+    entries = json.loads((tmp_path / "out.json").read_text())["result"]["entries"]
+    assert len(entries) == 2  # and both models were analysed (by the workers)
 
 
 def test_listed_help_is_each_commands_own() -> None:

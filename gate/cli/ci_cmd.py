@@ -88,6 +88,7 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
     from gate.ci import run_check
     from gate.forked import default_processes
     from gate.gitscan import merge_base, repo_root
+    from gate.jobs import workers_started
     from gate.judge import utc_today
     from gate.rules_source import check_rules
 
@@ -95,13 +96,14 @@ def check_command(base_ref: str, staged: bool, **kwargs: Any) -> None:
     _remove_stale_reports(kwargs, root)
     today = utc_today()
     base_commit = merge_base(base_ref, root)
-    with check_rules(root, base_commit, _config_loader(kwargs), config_path=kwargs["config_path"],
-                     baseline=kwargs["baseline"]) as chosen:
+    workers = default_processes(kwargs["jobs"])
+    with workers_started(workers), \
+            check_rules(root, base_commit, _config_loader(kwargs),
+                        config_path=kwargs["config_path"], baseline=kwargs["baseline"]) as chosen:
         config = chosen.config
         paths = chosen_reports(kwargs, config)
         rules = output_rules(kwargs, config, root, chosen.repo_files)
         start_reports(paths, rules)
-        workers = default_processes(kwargs["jobs"])
         result, title = run_check(root, config, base_ref, baseline=chosen.baseline,
                                   workers=workers, today=today, staged=staged)
         result = replace(result, rules_source=chosen.source,
@@ -153,16 +155,19 @@ def audit_command(paths: tuple[str, ...], shard: str | None, shard_out: str | No
     """
     from gate.ci import run_audit
     from gate.forked import default_processes
+    from gate.jobs import workers_started
     from gate.shards import parse_shard, shard_share, write_shard
 
-    config = load_project(kwargs, require_targets=True)
-    root = Path(config.root) if config.source else Path.cwd()
-    rules = output_rules(kwargs, config, Path.cwd())
-    start_reports(chosen_reports(kwargs, config) if shard is None else report_paths(kwargs), rules)
-    shard_ij = parse_shard(shard) if shard else None
     workers = default_processes(kwargs["jobs"])
-    result, models = run_audit(root, config, paths, baseline=kwargs["baseline"],
-                               workers=workers, shard=shard_ij)
+    with workers_started(workers):  # they import the analysis stack while the zoo is found
+        config = load_project(kwargs, require_targets=True)
+        root = Path(config.root) if config.source else Path.cwd()
+        rules = output_rules(kwargs, config, Path.cwd())
+        start_reports(chosen_reports(kwargs, config) if shard is None else report_paths(kwargs),
+                      rules)
+        shard_ij = parse_shard(shard) if shard else None
+        result, models = run_audit(root, config, paths, baseline=kwargs["baseline"],
+                                   workers=workers, shard=shard_ij)
     if shard_ij is not None:
         index, count = shard_ij
         out = shard_out or f"roofgate-out/shard-{index}-of-{count}.json"
