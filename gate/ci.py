@@ -284,8 +284,9 @@ def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
         files = [path] if path.is_file() else walk_files(path)
         if not path.is_file():
             refuse_links_out((root, path), files)
+        real_folders: dict[Path, Path] = {}
         for file in files:
-            name = _model_name(root, file)
+            name = _model_name(root, file, real_folders)
             if config.is_model(name) or (path.is_file() and is_onnx(name)):
                 found.add(name)
             elif is_onnx(name):
@@ -302,18 +303,29 @@ def refuse_links_out(tops: Sequence[Path], files: Sequence[Path]) -> None:
     command line is the operator's choice and is not checked.
     """
     allowed = [top.resolve() for top in tops]
-    for file in files:
-        if not any(file.resolve().is_relative_to(top) for top in allowed):
+    for file in files:  # a file met without following a link lies where it was met
+        if file.is_symlink() and not any(file.resolve().is_relative_to(top)
+                                         for top in allowed):
             raise InputError(f"a link leading out of the repository (to {file.resolve()}); "
                              "audit reads only the repository's own files: remove the link, or "
                              "pass the file it points to explicitly", str(file))
 
 
-def _model_name(root: Path, file: Path) -> str:
-    # a link to nothing is named by where it lies, not by where it points
-    resolved = file.resolve() if file.exists() else file.parent.resolve() / file.name
+def _model_name(root: Path, file: Path, real_folders: dict[Path, Path] | None = None) -> str:
+    """``file`` relative to ``root``, both resolved; a link to a file is named by where it
+    points, a link to nothing by where it lies. ``real_folders`` caches resolved folders
+    across the files of one walk (resolving each file cost a system call per part)."""
+    folders = real_folders if real_folders is not None else {}
+
+    def real(folder: Path) -> Path:
+        if folder not in folders:
+            folders[folder] = folder.resolve()
+        return folders[folder]
+
+    resolved = file.resolve() if file.is_symlink() and file.exists() \
+        else real(file.parent) / file.name
     try:
-        return resolved.relative_to(root.resolve()).as_posix()
+        return resolved.relative_to(real(root)).as_posix()
     except ValueError:
         return file.as_posix()
 

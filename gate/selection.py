@@ -11,11 +11,12 @@ off for a whole folder.
 from __future__ import annotations
 
 import difflib
+import os
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 
 from gate.config import ProjectConfig
-from gate.errors import ConfigError
+from gate.errors import ConfigError, InputError
 from gate.globs import path_match
 from gate.result import UngatedModel
 
@@ -80,9 +81,31 @@ def files_under(root: Path) -> list[str]:
 
 def walk_files(folder: Path) -> list[Path]:
     """Every file below ``folder`` outside ``.git`` folders (a link to nothing included:
-    ``listed``; links to folders are not walked into), sorted."""
-    return sorted(p for p in folder.rglob("*")
-                  if listed(p) and ".git" not in p.relative_to(folder).parts)
+    ``listed``; links to folders are not walked into), sorted.
+
+    One ``scandir`` per folder: the kind of each entry comes with it, so only links
+    cost a further system call (``rglob`` and ``is_file`` took one or two per file:
+    0.06 s for 1000 models, before any work). A folder that cannot be listed is an
+    ``InputError``: skipping it would leave its models unchecked.
+    """
+    found: list[Path] = []
+    pending = [str(folder)]
+    while pending:
+        where = pending.pop()
+        try:
+            entries = list(os.scandir(where))
+        except OSError as exc:
+            raise InputError(f"cannot list this folder ({exc.strerror}); its models would go "
+                             "unchecked: make it readable, or leave it out of the paths",
+                             where) from None
+        for entry in entries:
+            if entry.name == ".git":  # the repository's own folder, or a submodule's file
+                continue
+            if entry.is_dir(follow_symlinks=False):
+                pending.append(entry.path)
+            elif entry.is_file() or (entry.is_symlink() and not os.path.exists(entry.path)):
+                found.append(Path(entry.path))
+    return sorted(found)
 
 
 def listed(path: Path) -> bool:

@@ -137,6 +137,29 @@ def test_audit_lists_stray_models_and_skips_ungated_ones(zoo: Path) -> None:
     assert "SKIPPED  scratch/b.onnx: skipped: listed under 'ungated:'" in result.output
 
 
+def test_a_folder_audit_cannot_list_is_exit_2_not_skipped(zoo: Path,
+                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    """A folder of models the runner may not read (a mount with other owners, a cache
+    dir) was skipped without a word by the walk (pathlib's rglob passes over
+    PermissionError), and the audit passed on the rest. The tests run as root, which
+    reads everything, so the denial is simulated where the walk lists a folder."""
+    save_model(fc_model(64), zoo / "models/locked/b.onnx")
+    real_scandir = os.scandir
+
+    def scandir(path):  # type: ignore[no-untyped-def]
+        if str(path).endswith("locked"):
+            raise PermissionError(13, "Permission denied", str(path))
+        return real_scandir(path)
+
+    assert invoke(["audit"]).exit_code == 0  # the control: readable, both models pass
+    monkeypatch.setattr(os, "scandir", scandir)
+    result = invoke(["audit"])
+    assert result.exit_code == 2, result.output
+    line = one_line(result)
+    assert "models/locked" in line and "cannot list this folder (Permission denied)" in line
+    assert "would go unchecked" in line, line
+
+
 def test_audit_of_a_folder_without_models_is_exit_2_not_a_pass(zoo: Path) -> None:
     """``audit PATH`` on a folder holding no model (a wrong path, models not downloaded
     yet) checked nothing and passed; a shard left empty by the deal still passes, since
