@@ -160,6 +160,29 @@ def test_a_folder_audit_cannot_list_is_exit_2_not_skipped(zoo: Path,
     assert "would go unchecked" in line, line
 
 
+def test_a_model_whose_graph_has_no_nodes_is_exit_2_not_a_pass(zoo: Path) -> None:
+    """A graph with no node (its input wired straight to its output: an export that lost
+    the network) cost 0 s and 0 J, and every rule passed it. The control: a graph of one
+    Identity, which really costs nothing, still passes."""
+    import onnx
+    from onnx import TensorProto, helper
+
+    x = helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 16])
+    y = helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 16])
+    opset = [helper.make_opsetid("", 17)]
+    onnx.save(helper.make_model(helper.make_graph([], "lost", [x], [x]), opset_imports=opset),
+              zoo / "models/lost.onnx")
+    onnx.save(helper.make_model(helper.make_graph([helper.make_node("Identity", ["x"], ["y"])],
+                                                  "wire", [x], [y]), opset_imports=opset),
+              zoo / "models/wire.onnx")
+    result = invoke(["audit"])
+    assert result.exit_code == 2, result.output
+    assert "ERROR  models/lost.onnx: the model's graph has no nodes" in result.output
+    assert "PASS     models/wire.onnx" in result.output
+    profiled = invoke(["profile", "models/lost.onnx", "-t", TARGET])
+    assert profiled.exit_code == 2 and "graph has no nodes" in one_line(profiled)
+
+
 def test_audit_of_a_folder_without_models_is_exit_2_not_a_pass(zoo: Path) -> None:
     """``audit PATH`` on a folder holding no model (a wrong path, models not downloaded
     yet) checked nothing and passed; a shard left empty by the deal still passes, since

@@ -109,6 +109,7 @@ def _load(text_path: str, dims: Mapping[str, int] | None,
     warnings.extend(_unused_binding_note(name, bindings[name], declared - set(bindings))
                     for name in unused)
     proto = _inline(proto, text_path)
+    _refuse_empty_graph(proto, text_path)
     _bind(proto.graph, bindings, shape_bindings, text_path)
     by_path = size_bytes >= PATH_INFERENCE_BYTES and data is None
     proto, inference_warning = infer_checked(proto, text_path,
@@ -264,6 +265,15 @@ def _validate(proto: onnx.ModelProto, path: str) -> None:
             raise InputError(f"model uses ai.onnx opset {opset.version}, newer than the installed "
                              f"onnx {onnx.__version__} knows (up to {known}); upgrade onnx "
                              f"(pip install -U onnx)", path)
+
+
+def _refuse_empty_graph(proto: onnx.ModelProto, path: str) -> None:
+    """A graph with no node (after local functions are inlined) costs nothing and would
+    pass every rule: an export that lost the network, never a model to ship."""
+    if not proto.graph.node:
+        raise InputError("the model's graph has no nodes: nothing to profile, so a pass "
+                         "would check nothing (an export that lost the network?); re-export "
+                         "the model, or leave the file out of the model globs", path)
 
 
 def _inline(proto: onnx.ModelProto, path: str) -> onnx.ModelProto:
