@@ -310,10 +310,12 @@ def run_jobs(jobs: Sequence[Job], workers: int,
             with cyclic_gc_paused():  # judging a large model: the same reason
                 done(outcome.key, out)
 
-    started = _STARTED.pop() if _STARTED else None
-    if started is not None and not jobs:
-        _stop(started[0])  # nothing to analyse: no waiting for the workers' imports
-    if started is None and (workers <= 1 or total <= 1) or not jobs:
+    started = _STARTED.pop() if _STARTED else None  # workers_started's, if any
+    if not jobs:
+        if started is not None:
+            _stop(started[0])  # nothing to analyse: no waiting for the workers' imports
+        return out
+    if started is None and (workers <= 1 or total <= 1):
         for job in jobs:
             keep(_analyse_in_process(job), job.model)
         return out

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import io
 import json
 import random
@@ -236,6 +237,53 @@ def test_jobs_read_their_git_blobs_where_they_are_analysed(tmp_path) -> None:
         assert why["models/missing.onnx"].startswith("cannot read the head side from git")
         assert started_here == (workers == 1)
         assert not jobs._BLOB_READERS
+
+
+def _three_gemm_jobs(folder: Path) -> list[jobs.Job]:
+    from gate.synth.builder import save_model
+    from gate.synth.layers import NetBuilder
+
+    out = []
+    for k in range(3):
+        b = NetBuilder("fc")
+        b.output(b.gemm(b.input("x", [1, 16]), 8 + k, name="fc"))
+        save_model(b.build(), folder / f"m{k}.onnx")
+        out.append(jobs.Job(model=f"m{k}.onnx", file=str(folder / f"m{k}.onnx"),
+                            targets=("ws-64x64-4mib",)))
+    return out
+
+
+def test_workers_started_early_do_the_next_run_and_end_with_it(tmp_path) -> None:
+    """``workers_started`` forks the workers before the run is planned; the run inside the
+    block takes them (the same results as in this process) and leaves no process behind."""
+    import multiprocessing
+
+    work = _three_gemm_jobs(tmp_path)
+    alone = jobs.run_jobs(work, 1)
+    with jobs.workers_started(2):
+        assert len(jobs._STARTED) == 1 and len(multiprocessing.active_children()) == 2
+        parallel = jobs.run_jobs(work, 2)
+        assert not jobs._STARTED  # taken by the run
+    assert parallel == alone and sorted(parallel) == ["m0.onnx", "m1.onnx", "m2.onnx"]
+    assert not multiprocessing.active_children()
+
+
+@pytest.mark.parametrize("how", ["unused", "error", "no jobs"])
+def test_workers_started_but_not_used_are_stopped(tmp_path, how: str) -> None:
+    """A command that ends before its run (a config error, nothing changed) stops the
+    workers it started at once, leaving no process and no pool for a later run."""
+    import multiprocessing
+
+    expected = pytest.raises(ValueError) if how == "error" else contextlib.nullcontext()
+    with expected, jobs.workers_started(2):
+        if how == "error":
+            raise ValueError("a config error before the run")
+        if how == "no jobs":
+            assert jobs.run_jobs([], 2) == {}
+    assert not jobs._STARTED
+    for child in multiprocessing.active_children():  # terminated: reaped within moments
+        child.join(timeout=5)
+    assert not multiprocessing.active_children()
 
 
 def test_a_worker_process_that_dies_is_exit_3(tmp_path, monkeypatch) -> None:
