@@ -26,7 +26,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import IO, BinaryIO
 
-from gate.errors import InputError
+from gate.errors import InputError, near_name
 
 STAGED = ""  # as a revision: the index (what `git commit` would record), e.g. ":path"
 LFS_POINTER_PREFIX = b"version https://git-lfs"
@@ -94,31 +94,58 @@ def resolve_commit(ref: str, cwd: str | Path) -> str:
         out = git(["rev-parse", "--verify", "--quiet", "--end-of-options", f"{ref}^{{commit}}"],
                   cwd, what=f"resolving '{ref}'")
     except InputError:
-        raise InputError(f"unknown git revision '{ref}'; fetch it first: "
-                         f"{fetch_hint(ref, cwd)}") from None
+        near = near_name(ref, _local_refs(cwd))
+        typo = f" (did you mean '{near}'?)" if near else ""
+        raise InputError(f"unknown git revision '{ref}'{typo}; {fetch_hint(ref, cwd)}") from None
     return out.decode("ascii").strip()
 
 
+def _local_refs(cwd: str | Path) -> list[str]:
+    """The branch and remote-tracking names this clone has (no network)."""
+    try:
+        out = git(["for-each-ref", "--format=%(refname:short)", "refs/heads", "refs/remotes"],
+                  cwd, what="listing branches")
+    except InputError:
+        return []
+    return out.decode("utf-8", "replace").split()
+
+
 _COMMIT_ID = re.compile(r"^[0-9a-fA-F]{7,64}$")
+_CI_HISTORY = ("in CI fetch full history: actions/checkout with fetch-depth: 0, GitLab "
+               "GIT_DEPTH: 0")
 
 
 def fetch_hint(ref: str, cwd: str | Path) -> str:
-    """A fetch command that makes ``ref`` resolvable, also in a shallow single-branch clone.
+    """What makes ``ref`` resolvable: a fetch command (also right in a shallow
+    single-branch clone), or, with no remote to fetch from, a local name or a SHA.
 
     ``git fetch origin main`` only updates FETCH_HEAD when the clone's refspec
     covers one branch (GitLab's default clone), so a remote-tracking name gets an
-    explicit refspec that creates it.
+    explicit refspec that creates it. The remote is the one ``ref`` names, else
+    ``origin``, else the only one; a ref whose first part names no remote is a
+    branch (``release/1.2``), or a remote's name mistyped, which the hint says.
     """
     remotes = _remotes(cwd)
-    remote, _, branch = ref.partition("/")
-    if branch and remote in remotes:
-        command = f"git fetch {remote} {branch}:refs/remotes/{remote}/{branch}"
-    elif _COMMIT_ID.match(ref):
-        command = f"git fetch origin {ref}"
+    named, _, branch = ref.partition("/")
+    if branch and named in remotes:
+        return (f"fetch it first: git fetch {named} {branch}:refs/remotes/{named}/{branch} "
+                f"(or pass the base commit's SHA; {_CI_HISTORY})")
+    remote = "origin" if "origin" in remotes else next(iter(remotes)) if len(remotes) == 1 \
+        else None
+    if remote is None:
+        where = (f"remotes: {', '.join(sorted(remotes))}" if remotes
+                 else "this repository has no remote")
+        return (f"no remote to fetch it from ({where}); pass a branch or commit this "
+                f"repository has (git branch -a lists them), or the base commit's SHA")
+    if _COMMIT_ID.match(ref):
+        command = f"fetch it first: git fetch {remote} {ref}"
     else:
-        command = f"git fetch origin {ref}:refs/remotes/origin/{ref}, then --base origin/{ref}"
-    return (f"{command} (or pass the base commit's SHA; in CI fetch full history: "
-            "actions/checkout with fetch-depth: 0, GitLab GIT_DEPTH: 0)")
+        first = "fetch it first" if not branch else (
+            f"there is no remote named '{named}' (remotes: {', '.join(sorted(remotes))}); "
+            f"to fetch a branch of that name")
+        command = (f"{first}: git fetch {remote} {ref}:refs/remotes/{remote}/{ref}, then "
+                   f"--base {remote}/{ref}")
+    return f"{command} (or pass the base commit's SHA; {_CI_HISTORY})"
 
 
 def _remotes(cwd: str | Path) -> set[str]:

@@ -231,6 +231,39 @@ def test_hint_for_a_plain_branch_name_and_for_a_commit(origin: Path, tmp_path: P
         gitscan.merge_base("0123456789ab", pr.path)
 
 
+def test_hint_without_a_usable_remote_names_the_problem_not_a_command_that_fails(
+        origin: Path, tmp_path: Path) -> None:
+    """A clone with no remote, or whose remote is not called what the ref says, was told
+    to run ``git fetch origin origin/main:refs/remotes/origin/origin/main``: a command
+    that fails, naming a remote that does not exist."""
+    local = Repo(tmp_path / "local")  # no remote at all
+    local.write("models/m.onnx", b"model" * 20)
+    local.commit("main")
+    with pytest.raises(InputError) as caught:
+        gitscan.merge_base("origin/main", local.path)
+    message = caught.value.format_message()
+    assert "this repository has no remote" in message and "git fetch" not in message
+    assert "git branch -a" in message
+    # The remote is called upstream: the ref's 'origin' is named as missing, and the
+    # command offered fetches from the remote there is.
+    other = clone(origin, tmp_path / "up", "--origin", "upstream", "--single-branch",
+                  "--branch", "pr")
+    with pytest.raises(InputError) as caught:
+        gitscan.merge_base("origin/main", other.path)
+    message = caught.value.format_message()
+    assert "there is no remote named 'origin' (remotes: upstream)" in message, message
+    assert "git fetch upstream " in message and "git fetch origin" not in message
+
+
+def test_a_mistyped_base_gets_a_did_you_mean_from_the_local_branches(
+        origin: Path, tmp_path: Path) -> None:
+    pr = clone(origin, tmp_path / "full")  # every branch: origin/main, origin/pr
+    with pytest.raises(InputError, match=r"unknown git revision 'orgin/main' \(did you mean "
+                                         r"'origin/main'\?\)"):
+        gitscan.merge_base("orgin/main", pr.path)
+    assert gitscan.merge_base("origin/main", pr.path)  # the control: the right name resolves
+
+
 def test_fork_like_branch_from_another_remote(origin: Path, tmp_path: Path) -> None:
     # A fork's pull request: the head comes from a second remote, the base from origin.
     fork = clone(origin, tmp_path / "fork", "--branch", "pr")
