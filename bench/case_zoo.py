@@ -9,7 +9,7 @@ import inputs
 import onnx
 from context import Context, progress
 from inputs import TARGET
-from measure import SAFETY_S, Series, roofgate, rounds, run_process
+from measure import SAFETY_S, Series, roofgate, rounds, run_process, run_together
 from table import Goal, Row, pair_spread, ratio_text, rounds_text, seconds, time_ratio
 
 SECOND_TARGET = "os-16x16-512kib"
@@ -47,6 +47,40 @@ def _parallel_row(label: str, count: int, s: dict[str, Series], goal: Goal | Non
                f"speed-up {ratio_text(value)}" + pair_spread(s["j1"], s["j2"]),
                goal.text if goal else "- (goal set at another size)",
                goal.verdict(value) if goal else "-")
+
+
+def _halves_row(repo: Path, folder: Path, count: int, runs: int) -> Row:
+    """What two processes reach on this host: ``audit -j 1`` of the whole zoo against two
+    ``audit -j 1`` of half the zoo each, started together (each pays its own start-up and
+    writes its own reports). A reference for the ``-j 2`` row, not a goal: ``-j 2`` pays
+    start-up and reports once, so it can beat this, but not by much on a zoo whose
+    models take milliseconds each."""
+    models = [inputs.zoo_path(i) for i in range(count)]
+    halves = [models[: count // 2], models[count // 2:]]
+    together = [roofgate("audit", "-j", "1", *half, "--junit", str(folder / f"half{k}.xml"),
+                         "--markdown", str(folder / f"half{k}.md"),
+                         "--json", str(folder / f"half{k}.json"), cwd=repo)
+                for k, half in enumerate(halves)]
+    whole = roofgate("audit", "-j", "1", cwd=repo)
+    pairs = []
+    for index in range(runs):  # in turns: the whole audit first, then the halves first
+        if index % 2:
+            side_by_side = run_together(together, SAFETY_S)
+        alone = run_process(whole, SAFETY_S).seconds
+        if index % 2 == 0:
+            side_by_side = run_together(together, SAFETY_S)
+        if alone is None:
+            raise SystemExit(f"audit ran past {SAFETY_S:.0f} s")
+        pairs.append((alone, side_by_side))
+    alone_s = statistics.median(a for a, _ in pairs)
+    both_s = statistics.median(b for _, b in pairs)
+    speedups = [a / b for a, b in pairs]
+    return Row("4", f"reference, {count} models: `audit -j 1` vs two `audit -j 1` of half the "
+               f"zoo each, side by side ({rounds_text(runs)})",
+               f"{seconds(alone_s)} vs {seconds(both_s)}",
+               f"speed-up {ratio_text(statistics.median(speedups))} (rounds "
+               f"{min(speedups):.2f}-{max(speedups):.2f})",
+               "- (what two processes reach here)", "-")
 
 
 def shard_rounds(repo: Path, folder: Path, runs: int) -> tuple[Series, list[float], bool]:
@@ -104,6 +138,9 @@ def case_zoos(ctx: Context) -> list[Row]:
                        runs)
         rows.append(_parallel_row(f"`audit` ({size_bytes / 2**20:.0f} MiB of weights)", count,
                                   audit, Goal(">=", 1.7, ">= 1.7x") if count == small else None))
+        if count == small:
+            progress(f"case 4: audit -j 1 vs two half-zoo audits side by side, {count} models")
+            rows.append(_halves_row(repo, folder, count, runs))
         progress(f"case 4: 2-shard matrix vs unsharded, {count} models")
         unsharded, critical, same = shard_rounds(repo, folder, runs)
         rows.append(_shard_row(count, unsharded, critical, same,

@@ -12,6 +12,7 @@ both alike, and every figure is a median over the rounds.
 
 from __future__ import annotations
 
+import concurrent.futures
 import os
 import signal
 import statistics
@@ -98,6 +99,18 @@ def run_process(command: Command, timeout_s: float | None = None) -> Sample:
         raise ProcessFailed(f"{' '.join(command.argv[3:] or command.argv)} exited "
                             f"{proc.returncode}:\n{stderr[-2000:]}")
     return Sample(seconds, peak, proc.returncode, stderr)
+
+
+def run_together(commands: Sequence[Command], timeout_s: float | None = None) -> float:
+    """Wall seconds from starting every one of ``commands`` at once until the last ends
+    (each a whole process, as ``run_process`` runs it; its failure is raised here)."""
+    start = time.perf_counter()
+    with concurrent.futures.ThreadPoolExecutor(len(commands)) as pool:
+        samples = list(pool.map(lambda command: run_process(command, timeout_s), commands))
+    seconds = time.perf_counter() - start
+    if any(sample.seconds is None for sample in samples):
+        raise ProcessFailed("a process run side by side ran past its time limit")
+    return seconds
 
 
 def _kib(report: str) -> int:

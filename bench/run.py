@@ -19,7 +19,7 @@ Inputs are generated in code (bench/inputs.py, gate/synth/); nothing is download
 
 Cases: 1 ResNet-50 vs its floor; 2 external data 4 KiB vs 4 GiB; 3 chain graphs of
 10k-200k nodes (profile, evaluate --baseline, check); 4 zoos of 200 and 1000 models
-(-j 1 vs -j 2, shards); 5 the HTML report; 6 start-up per command; 7 earlier rows
+(-j 1 vs -j 2, two half-zoo audits side by side as a reference, shards); 5 the HTML report; 6 start-up per command; 7 earlier rows
 (fusion, constant folding, targets, demo).
 """
 

@@ -53,6 +53,24 @@ def test_a_process_past_its_limit_is_stopped_with_its_workers(tmp_path: Path) ->
     assert not marker.exists()  # the worker went down with its process group
 
 
+def test_processes_run_together_overlap_and_a_failure_fails_the_measurement(
+        tmp_path: Path) -> None:
+    """The side-by-side reference starts its processes at once: their lifetimes overlap
+    (each writes when it starts and ends; no duration is asserted)."""
+    def stamped(name: str) -> measure.Command:
+        code = (f"import time; p = {str(tmp_path / name)!r}; open(p + '.start', 'w').write("
+                "repr(time.time())); time.sleep(0.3); open(p + '.end', 'w').write("
+                "repr(time.time()))")
+        return measure.python(code)
+
+    measure.run_together([stamped("a"), stamped("b")])
+    at = {f"{n}.{e}": float((tmp_path / f"{n}.{e}").read_text())
+          for n in "ab" for e in ("start", "end")}
+    assert at["a.start"] < at["b.end"] and at["b.start"] < at["a.end"]
+    with pytest.raises(measure.ProcessFailed):
+        measure.run_together([stamped("c"), measure.python("raise SystemExit(3)")])
+
+
 def test_peak_memory_is_the_child_s_own_not_the_driver_s() -> None:
     ballast = bytearray(400 * 2**20)  # the driver is large; a forked child would inherit it
     ballast[::4096] = b"x" * len(ballast[::4096])  # touch every page
