@@ -11,6 +11,7 @@ import os
 from datetime import date, timedelta
 from pathlib import Path
 
+import numpy as np
 import pytest
 from click.testing import CliRunner
 from hypothesis import HealthCheck, given, settings
@@ -181,6 +182,34 @@ def test_a_model_whose_graph_has_no_nodes_is_exit_2_not_a_pass(zoo: Path) -> Non
     assert "PASS     models/wire.onnx" in result.output
     profiled = invoke(["profile", "models/lost.onnx", "-t", TARGET])
     assert profiled.exit_code == 2 and "graph has no nodes" in one_line(profiled)
+
+
+def test_an_input_declared_with_size_0_is_unknown_not_a_model_without_work(
+        zoo: Path) -> None:
+    """An input whose batch axis was exported as 0 (an empty tensor) cost 0 MACs, and
+    every rule passed it. Now the axis is unknown, as -1 is: not costed (exit 1) until
+    --shape sizes it, and then the MatMul's MACs are counted (1 x 256 x 128)."""
+    import json
+
+    import onnx
+    from onnx import TensorProto, helper, numpy_helper
+
+    x = helper.make_tensor_value_info("x", TensorProto.FLOAT, [0, 256])
+    y = helper.make_tensor_value_info("y", TensorProto.FLOAT, [0, 128])
+    weight = numpy_helper.from_array(np.ones((256, 128), np.float32), "W")
+    graph = helper.make_graph([helper.make_node("MatMul", ["x", "W"], ["y"], name="mm")],
+                              "empty_batch", [x], [y], initializer=[weight])
+    onnx.save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]),
+              zoo / "models/a.onnx")
+    result = invoke(["audit"])
+    assert result.exit_code == 1 and "not costed" in result.output, result.output
+    profiled = invoke(["profile", "models/a.onnx", "-t", TARGET])
+    assert "input 'x' declares size 0 on axis 0" in profiled.output + profiled.stderr
+    sized = invoke(["profile", "models/a.onnx", "-t", TARGET, "--shape", "x=1x256",
+                    "--format", "json"])
+    assert sized.exit_code == 0, sized.output
+    layer = json.loads(sized.stdout)["targets"][0]["layers"][0]
+    assert layer["metrics"]["macs"] == 256 * 128
 
 
 def test_audit_of_a_folder_without_models_is_exit_2_not_a_pass(zoo: Path) -> None:

@@ -110,6 +110,7 @@ def _load(text_path: str, dims: Mapping[str, int] | None,
                     for name in unused)
     proto = _inline(proto, text_path)
     _refuse_empty_graph(proto, text_path)
+    warnings.extend(_unknown_zero_sized_io(proto.graph))
     _bind(proto.graph, bindings, shape_bindings, text_path)
     by_path = size_bytes >= PATH_INFERENCE_BYTES and data is None
     proto, inference_warning = infer_checked(proto, text_path,
@@ -274,6 +275,31 @@ def _refuse_empty_graph(proto: onnx.ModelProto, path: str) -> None:
         raise InputError("the model's graph has no nodes: nothing to profile, so a pass "
                          "would check nothing (an export that lost the network?); re-export "
                          "the model, or leave the file out of the model globs", path)
+
+
+def _unknown_zero_sized_io(graph: onnx.GraphProto) -> list[str]:
+    """Make a size-0 dim of a graph input or output unknown, with a note per input.
+
+    Why: an input that is always empty has no work to cost, so every figure came out
+    as zero and every rule passed; such a dim is a dynamic axis an exporter wrote as
+    0, as others write -1. Unknown, it fails the coverage rule until ``--shape``
+    (or ``shapes:``) gives its size.
+    """
+    weights = {tensor.name for tensor in graph.initializer}
+    notes = []
+    for value in (*graph.input, *graph.output):
+        if not value.type.HasField("tensor_type") or value.name in weights:
+            continue
+        zero = [axis for axis, dim in enumerate(value.type.tensor_type.shape.dim)
+                if dim.WhichOneof("value") == "dim_value" and dim.dim_value == 0]
+        for axis in zero:
+            value.type.tensor_type.shape.dim[axis].Clear()
+        if zero and any(value is v for v in graph.input):
+            axes = ", ".join(str(a) for a in zero)
+            notes.append(f"input '{one_safe_line(value.name)}' declares size 0 on axis "
+                         f"{axes}: an empty tensor, most likely a dynamic axis exported as 0; "
+                         "roofgate treats it as unknown")
+    return notes
 
 
 def _inline(proto: onnx.ModelProto, path: str) -> onnx.ModelProto:
