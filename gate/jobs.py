@@ -372,8 +372,10 @@ def workers_started(workers: int) -> Iterator[None]:
     Why early: each worker imports the analysis stack (onnx and numpy, about 0.13 s)
     itself, while this process reads the config and walks the zoo, instead of this
     process importing it alone before forking; this process never imports it.
+    Only up to one per CPU: ``-j`` above that (more processes than the models need,
+    each holding its imports) waits for the run, which starts at most one per model.
     """
-    if workers <= 1 or _STARTED:
+    if workers <= 1 or workers > (os.cpu_count() or 1) or _STARTED:
         yield
         return
     pool = _new_pool(workers)

@@ -269,6 +269,19 @@ def test_workers_started_early_do_the_next_run_and_end_with_it(tmp_path) -> None
     assert not multiprocessing.active_children()
 
 
+def test_workers_are_not_started_early_beyond_one_per_cpu(tmp_path, monkeypatch) -> None:
+    """``-j 64`` on two CPUs for three models: no early pool of 64 processes each holding
+    the analysis stack; the run starts one per model, as it always did."""
+    import multiprocessing
+    import os
+
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    work = _three_gemm_jobs(tmp_path)
+    with jobs.workers_started(64):
+        assert not jobs._STARTED and not multiprocessing.active_children()
+        assert sorted(jobs.run_jobs(work, 64)) == ["m0.onnx", "m1.onnx", "m2.onnx"]
+
+
 @pytest.mark.parametrize("how", ["unused", "error", "no jobs"])
 def test_workers_started_but_not_used_are_stopped(tmp_path, how: str) -> None:
     """A command that ends before its run (a config error, nothing changed) stops the
