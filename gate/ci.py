@@ -36,9 +36,9 @@ from gate.records import RunRecord
 from gate.result import GateResult, ModelError, UngatedModel
 from gate.selection import (
     check_globs,
-    files_under,
     is_onnx,
     model_files,
+    relative_names,
     ungated_model,
     walk_files,
 )
@@ -272,16 +272,22 @@ def _reading_from_git(jobs: Sequence[engine.Job], blobs: Mapping[str, tuple[str,
 # --- audit ---------------------------------------------------------------------------
 
 def find_models(root: Path, config: ProjectConfig, paths: Sequence[str],
+                root_files: Sequence[Path] | None = None,
                 ) -> tuple[list[str], list[UngatedModel]]:
-    """Model files under ``paths`` (default: ``root``) that the config covers, sorted, and the
-    .onnx files there that no group covers (a file named on the command line is a model)."""
+    """Model files under ``paths`` (default: ``root``, whose walk ``root_files`` may hold
+    already) that the config covers, sorted, and the .onnx files there that no group
+    covers (a file named on the command line is a model)."""
     found: set[str] = set()
     ungated: dict[str, UngatedModel] = {}
     for given in paths or (str(root),):
         path = Path(given)
         if not path.exists():
             raise InputError("no such file or folder", given)
-        files = [path] if path.is_file() else walk_files(path)
+        if path.is_file():
+            files = [path]
+        else:
+            files = list(root_files) if root_files is not None and not paths \
+                else walk_files(path)
         if not path.is_file():
             refuse_links_out((root, path), files)
         real_folders: dict[Path, Path] = {}
@@ -335,8 +341,9 @@ def run_audit(root: Path, config: ProjectConfig, paths: Sequence[str], *, baseli
               today: date | None = None) -> tuple[GateResult, list[str]]:
     """Audit the zoo (or one shard); returns the raw combined result and the full model list."""
     today = today or utc_today()
-    check_globs(config, files_under(root))
-    present, ungated = find_models(root, config, paths)
+    walked = walk_files(root)  # once: the config's globs and (by default) the models
+    check_globs(config, relative_names(root, walked))
+    present, ungated = find_models(root, config, paths, walked)
     stored = base_by_model(read_snapshot_runs(baseline)) if baseline else {}
     gone = [m for m in stored if m not in present and _in_scope(root, config, paths, m)]
     models = sorted({*present, *gone})

@@ -75,13 +75,20 @@ def _glob_hint(pattern: str, files: Sequence[str]) -> str:
 
 def files_under(root: Path) -> list[str]:
     """Every file below ``root`` (outside ``.git``), as sorted root-relative POSIX paths
-    (a link to nothing included: ``listed``)."""
-    return sorted(p.relative_to(root).as_posix() for p in walk_files(root))
+    (a link to nothing included, as ``walk_files`` lists it)."""
+    return relative_names(root, walk_files(root))
+
+
+def relative_names(root: Path, files: Iterable[Path]) -> list[str]:
+    """``files`` (found below ``root``) as sorted root-relative POSIX paths."""
+    return sorted(p.relative_to(root).as_posix() for p in files)
 
 
 def walk_files(folder: Path) -> list[Path]:
-    """Every file below ``folder`` outside ``.git`` folders (a link to nothing included:
-    ``listed``; links to folders are not walked into), sorted.
+    """Every file below ``folder`` outside ``.git`` folders, sorted. A link to nothing is
+    listed (a model whose content was never fetched, as git-annex leaves it, or whose
+    target moved), so the loader says what is wrong instead of the audit passing
+    without it; links to folders are not walked into.
 
     One ``scandir`` per folder: the kind of each entry comes with it, so only links
     cost a further system call (``rglob`` and ``is_file`` took one or two per file:
@@ -106,13 +113,6 @@ def walk_files(folder: Path) -> list[Path]:
             elif entry.is_file() or (entry.is_symlink() and not os.path.exists(entry.path)):
                 found.append(Path(entry.path))
     return sorted(found)
-
-
-def listed(path: Path) -> bool:
-    """Whether a walk over a folder lists ``path``: a file, or a link to nothing (a model
-    whose content was never fetched, as git-annex leaves it, or whose target moved), so
-    the loader says what is wrong instead of the audit passing without it."""
-    return path.is_file() or (path.is_symlink() and not path.exists())
 
 
 def model_files(config: ProjectConfig, files: Iterable[str]) -> list[str]:

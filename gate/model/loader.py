@@ -287,19 +287,27 @@ def _unknown_zero_sized_io(graph: onnx.GraphProto) -> list[str]:
     """
     weights = {tensor.name for tensor in graph.initializer}
     notes = []
-    for value in (*graph.input, *graph.output):
-        if not value.type.HasField("tensor_type") or value.name in weights:
-            continue
-        zero = [axis for axis, dim in enumerate(value.type.tensor_type.shape.dim)
-                if dim.WhichOneof("value") == "dim_value" and dim.dim_value == 0]
-        for axis in zero:
-            value.type.tensor_type.shape.dim[axis].Clear()
-        if zero and any(value is v for v in graph.input):
-            axes = ", ".join(str(a) for a in zero)
+    for value in graph.input:
+        zero = _clear_zero_dims(value) if value.name not in weights else []
+        if zero:
             notes.append(f"input '{one_safe_line(value.name)}' declares size 0 on axis "
-                         f"{axes}: an empty tensor, most likely a dynamic axis exported as 0; "
-                         "roofgate treats it as unknown")
+                         f"{', '.join(map(str, zero))}: an empty tensor, most likely a dynamic "
+                         "axis exported as 0; roofgate treats it as unknown")
+    for value in graph.output:  # its declared 0 would contradict the size --shape gives
+        _clear_zero_dims(value)
     return notes
+
+
+def _clear_zero_dims(value: onnx.ValueInfoProto) -> list[int]:
+    """Make each size-0 dim of ``value`` unknown; the axes cleared."""
+    if not value.type.HasField("tensor_type"):
+        return []
+    dims = value.type.tensor_type.shape.dim
+    zero = [axis for axis, dim in enumerate(dims)
+            if dim.WhichOneof("value") == "dim_value" and dim.dim_value == 0]
+    for axis in zero:
+        dims[axis].Clear()
+    return zero
 
 
 def _inline(proto: onnx.ModelProto, path: str) -> onnx.ModelProto:
